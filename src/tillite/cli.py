@@ -1,0 +1,259 @@
+"""The `tillite` command: a thin layer over the Python API (pipeline, model, sqlgen)."""
+
+from __future__ import annotations
+
+import json
+import sys
+import time
+import warnings
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Iterator
+
+import click
+import numpy as np
+
+from . import __version__, sqlgen
+from .engines import TilliteError, open_source
+from .model import Model
+from .pipeline import Settings, label, run_profile, segment
+
+STAGES = ("profile", "cells", "refine", "label")
+
+
+def _split_columns(values: tuple[str, ...]) -> list[str]:
+    out: list[str] = []
+    for v in values:
+        out.extend(p.strip() for p in v.split(",") if p.strip())
+    return out
+
+
+def _parse_weights(text: str | None) -> dict[str, float]:
+    if not text:
+        return {}
+    out: dict[str, float] = {}
+    for part in text.split(","):
+        name, sep, value = part.rpartition("=")
+        if not sep or not name.strip():
+            raise click.BadParameter(f"expected column=number, got {part!r}", param_hint="--weights")
+        try:
+            out[name.strip()] = float(value)
+        except ValueError:
+            raise click.BadParameter(f"weight of {name.strip()} is not a number: {value!r}", param_hint="--weights") from None
+    return out
+
+
+@contextmanager
+def user_errors(quiet: bool = False) -> Iterator[None]:
+    """Turn our errors into clean messages and warnings into stderr lines."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            yield
+        except TilliteError as err:
+            raise click.ClickException(str(err)) from None
+        finally:
+            for w in caught:
+                if issubclass(w.category, UserWarning):
+                    click.echo(f"warning: {w.message}", err=True)
+
+
+def _progress(quiet: bool):
+    def report(stage: str, message: str) -> None:
+        if not quiet:
+            click.echo(f"[tillite] {stage}: {message}", err=True)
+
+    return report
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="tillite")
+def main() -> None:
+    """Segment warehouse tables where they live.
+
+    Row-level work runs in the database as SQL aggregates; only clustering
+    features (count, linear sum, square sum per cell) come back to Python.
+    """
+
+
+source_argument = click.argument("source", metavar="SOURCE")
+table_option = click.option("--table", "-t", help="Table to read (for a database SOURCE; may be schema.table).")
+columns_option = click.option(
+    "--columns", "-c", multiple=True, required=True, help="Numeric columns to segment on, comma-separated (repeatable)."
+)
+
+
+def _settings_options(f):
+    opts = [
+        click.option("--k", "-k", "k", type=int, required=True, help="Number of segments."),
+        click.option("--scaling", type=click.Choice(["zscore", "none"]), default="zscore", show_default=True,
+                     help="zscore: columns in standard deviations; none: original units (still centred)."),
+        click.option("--weights", help="Column multipliers after scaling, e.g. litres=2,zero_hours=0.5."),
+        click.option("--cell-budget", type=int, default=20_000, show_default=True, help="About how many grid cells to aim for."),
+        click.option("--width", type=float, default=None, help="Force the grid width (scaled units) instead of choosing it."),
+        click.option("--refine-passes", type=int, default=3, show_default=True, help="Most refine passes over the rows (0 for none)."),
+        click.option("--tolerance", type=float, default=1e-4, show_default=True, help="Stop refining when a pass improves SSE by less than this share."),
+        click.option("--restarts", type=int, default=10, show_default=True, help="k-means++ restarts on the cells."),
+        click.option("--seed", type=int, default=0, show_default=True),
+        click.option("--sample-rows", type=int, default=100_000, show_default=True, help="Rows the profile sample aims for."),
+    ]
+    for o in reversed(opts):
+        f = o(f)
+    return f
+
+
+def _settings(k, scaling, weights, cell_budget, width, refine_passes, tolerance, restarts, seed, sample_rows) -> Settings:
+    return Settings(
+        k=k, scaling=scaling, weights=_parse_weights(weights), cell_budget=cell_budget, width=width,
+        refine_passes=refine_passes, tolerance=tolerance, n_init=restarts, seed=seed, sample_rows=sample_rows,
+    )
+
+
+@main.command("segment")
+@source_argument
+@table_option
+@columns_option
+@_settings_options
+@click.option("--out", "-o", default="model.json", show_default=True, help="Model file to write.")
+@click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
+@click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
+def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
+    """Segment SOURCE's rows on the chosen columns and write a model file.
+
+    SOURCE is a DuckDB database file (with --table) or a Parquet/CSV path or glob.
+    """
+    with user_errors():
+        settings = _settings(**kw)
+        engine, src = open_source(source, table)
+        try:
+            model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet))
+        finally:
+            engine.close()
+        model.write(out)
+        if not quiet:
+            click.echo(f"[tillite] model: {out} ({model.timings['total']:.2f} s in all)", err=True)
+        click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
+
+
+@main.command("label")
+@source_argument
+@table_option
+@click.option("--model", "-m", "model_path", required=True, help="Model file written by `tillite segment`.")
+@click.option("--into", required=True, help="View (or table) to create; for file sources, a .parquet/.csv file.")
+@click.option("--materialize", is_flag=True, help="Create a table instead of a view.")
+@click.option("--replace", is_flag=True, help="Allow replacing an existing table of that name.")
+@click.option("--quiet", "-q", is_flag=True)
+def label_command(source, table, model_path, into, materialize, replace, quiet) -> None:
+    """Add segment and distance to every row of SOURCE as a view, table or file.
+
+    The source itself is never written; rows skipped for NULL/NaN/Inf get NULL.
+    """
+    with user_errors():
+        model = Model.read(model_path)
+        engine, src = open_source(source, table, writable=True)
+        t0 = time.perf_counter()
+        try:
+            made = label(engine, src, model, into, materialize=materialize, replace=replace)
+        finally:
+            engine.close()
+        _progress(quiet)("label", f"{made} from {src.label}, {time.perf_counter() - t0:.2f} s")
+        click.echo(made)
+
+
+@main.command("show")
+@click.argument("model_path", metavar="MODEL")
+@click.option("--json", "as_json", is_flag=True, help="Machine-readable output.")
+def show_command(model_path, as_json) -> None:
+    """Segment sizes, centroids in original units, radius and SSE of a model file."""
+    with user_errors():
+        model = Model.read(model_path)
+        click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
+
+
+@main.command("sql")
+@source_argument
+@table_option
+@click.option("--columns", "-c", multiple=True, help="Columns (not needed with --model).")
+@click.option("--stage", type=click.Choice(STAGES), required=True, help="Which statement to print.")
+@click.option("--model", "-m", "model_path", help="Model file (needed for refine and label; cells then use its grid).")
+@click.option("--dialect", default="duckdb", show_default=True, help="SQL dialect to render (any sqlglot dialect name).")
+@click.option("--cell-budget", type=int, default=20_000, show_default=True)
+def sql_command(source, table, columns, stage, model_path, dialect, cell_budget) -> None:
+    """Print the SQL a stage would run, without running it."""
+    with user_errors():
+        model = Model.read(model_path) if model_path else None
+        cols = list(model.columns) if model else _split_columns(columns)
+        if not cols:
+            raise click.UsageError("give --columns or --model")
+        engine, src = open_source(source, table)
+        try:
+            statements = _stage_statements(engine, src, cols, stage, model, dialect, cell_budget)
+        finally:
+            engine.close()
+        for st in statements:
+            click.echo(sqlgen.render(st, dialect, pretty=True) + ";")
+
+
+def _stage_statements(engine, src, cols, stage, model, dialect, cell_budget):
+    from .pipeline import check_columns, grid_for_profile
+
+    source_columns = check_columns(engine, src, cols)
+    if stage == "profile":
+        return [sqlgen.count_statement(src), sqlgen.sample_statement(src, cols, dialect, percent=1.0, limit=100_000)]
+    if stage == "cells":
+        if model is not None and model.grid:
+            grid = sqlgen.Grid(
+                center=tuple(model.grid["center"]), inv_scale=tuple(model.grid["inv_scale"]),
+                width=model.grid["width"], axes=tuple(map(tuple, model.grid["axes"])) if model.grid.get("axes") else None,
+            )
+        else:
+            settings = Settings(k=1, cell_budget=cell_budget)
+            grid = grid_for_profile(run_profile(engine, src, cols, settings), settings)
+        return [sqlgen.cells_statement(src, cols, grid, dialect)]
+    if model is None:
+        raise click.UsageError(f"--stage {stage} needs --model")
+    if stage == "refine":
+        return [sqlgen.refine_statement(src, cols, model.assignment(), dialect)]
+    return [sqlgen.label_select(src, cols, source_columns, model.assignment(), dialect)]
+
+
+@main.command("demo")
+@click.option("--db", "db_path", default="tillite-demo.duckdb", show_default=True, help="Demo database file to build or reuse.")
+@click.option("--rows", type=int, default=1_000_000, show_default=True, help="Meter-day rows to generate.")
+@click.option("--days", type=int, default=60, show_default=True)
+@click.option("--seed", type=int, default=7, show_default=True)
+@click.option("--k", "-k", "k", type=int, default=5, show_default=True)
+@click.option("--out", "-o", default="tillite-demo-model.json", show_default=True, help="Model file to write.")
+@click.option("--rebuild", is_flag=True, help="Regenerate the demo data even if the file exists.")
+@click.option("--quiet", "-q", is_flag=True)
+def demo_command(db_path, rows, days, seed, k, out, rebuild, quiet) -> None:
+    """Build the invented water co-operative database and segment it end to end."""
+    from . import demo, report
+
+    with user_errors():
+        progress = _progress(quiet)
+        if rebuild or not Path(db_path).exists():
+            t0 = time.perf_counter()
+            info = demo.build_demo_database(db_path, rows=rows, days=days, seed=seed, replace=True)
+            progress("demo", f"built {db_path}: {info.rows:,} meter-days of {info.meters:,} meters, {time.perf_counter() - t0:.2f} s")
+        else:
+            progress("demo", f"reusing {db_path} (--rebuild to regenerate)")
+        engine, src = open_source(db_path, "meter_days", writable=True)
+        try:
+            model = segment(engine, src, list(demo.DEMO_COLUMNS), Settings(k=k), progress=progress)
+            model.write(out)
+            made = label(engine, src, model, "meter_day_segments")
+            progress("label", made)
+            click.echo(model.describe())
+            click.echo("")
+            click.echo(report.crosstab(engine, "meter_day_segments", demo.METERS_TABLE, "meter_id", "kind"))
+        finally:
+            engine.close()
+        click.echo("")
+        click.echo(f"model written to {out}; labels in view meter_day_segments of {db_path}.")
+        click.echo("Segments are statistical groupings, not diagnoses: a 'probable leak' segment lists meters")
+        click.echo("for the co-operative's usual inspection procedure to confirm.")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

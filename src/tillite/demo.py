@@ -1,0 +1,631 @@
+"""Seeded generator of the invented demo data: meter-days of the Saltmere Bay water co-operative.
+
+Everything here is invented: Saltmere Bay, its water co-operative, its districts,
+its meters and their readings.  No real people, brands, places or data sets.
+
+The co-operative keeps one row per meter per day in ``meter_days``::
+
+    meter_id        INTEGER  meter number, 0 .. meters-1
+    district        VARCHAR  one of DISTRICTS
+    day             DATE     consecutive days from 2026-01-01
+    litres          DOUBLE   litres used that day (NULL on a failed read)
+    night_share     DOUBLE   share of the day's litres used between 00:00 and 05:00
+                             (0..1; NaN on a failed read)
+    peak_litres     DOUBLE   litres in the busiest hour
+    flow_run_hours  INTEGER  longest run of hours with continuous flow, 0..24
+    zero_hours      INTEGER  hours with zero flow, 0..24
+
+and a small ``meters(meter_id, district, kind)`` table holding the kind each meter
+was generated from.  The kind is the invented ground truth, for the walkthrough
+and the tests only; a segment found later is a statistical grouping, not a
+diagnosis.
+
+How the rows are made
+---------------------
+All generation runs inside DuckDB; Python only builds one statement (a sqlglot
+expression tree, rendered for DuckDB) and never holds the rows, so memory on the
+Python side does not grow with the row count.
+
+* Meters come from ``range(meters)``, days from ``range(days)``; the rows are their
+  cross product, cut at exactly ``rows`` rows (the last meter may have fewer days).
+  Per-meter draws (kind, district, the meter's own level) are made once per meter.
+* Every pseudo-random number is ``hash(key, salt, seed)`` of a row, meter or day
+  number, a fixed per-draw salt and the seed, mapped to a uniform in (0, 1) by
+  ``((h >> 11) + 0.5) / 2**53``; normals come from the Box–Muller transform.  The
+  result depends only on (rows, days, seed), not on threads or chunking.
+* Litres and peak litres get multiplicative (log-normal) noise: a per-meter level
+  and a per-day factor, plus a weekend factor for households and a town-wide
+  "dry day" factor for garden irrigation.  Shares and hours get additive normal
+  noise, rounded and clipped to their ranges; ``zero_hours <= 24 - flow_run_hours``
+  and ``peak_litres <= litres`` always hold.
+* About 0.2 % of rows are failed reads: 0.15 % have NULL ``litres`` and 0.05 % have
+  NaN ``night_share``.
+
+At very small sizes (a few dozen meters) the rare kinds may be missing by chance;
+``DemoSummary.kinds`` says how many meters each kind got.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+import operator
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Sequence
+
+import duckdb
+from sqlglot import exp
+
+__all__ = [
+    "DEMO_COLUMNS",
+    "DISTRICTS",
+    "KINDS",
+    "MeterKind",
+    "MIN_ROWS",
+    "MAX_ROWS",
+    "START_DAY",
+    "METERS_TABLE",
+    "DemoSummary",
+    "build_demo_database",
+    "write_demo_parquet",
+    "demo_select",
+]
+
+#: The numeric columns a segmentation of the demo works on.
+DEMO_COLUMNS: tuple[str, ...] = ("litres", "night_share", "peak_litres", "flow_run_hours", "zero_hours")
+
+#: Invented districts of Saltmere Bay.
+DISTRICTS: tuple[str, ...] = ("Harbour Row", "Dune Heights", "Old Quay", "Lantern Hill", "Marsh End", "Cliff Walk")
+
+MIN_ROWS = 1_000
+MAX_ROWS = 100_000_000
+START_DAY = _dt.date(2026, 1, 1)
+METERS_TABLE = "meters"
+
+_FAIL_NULL_LITRES = 0.0015  # share of rows with NULL litres
+_FAIL_NAN_NIGHT = 0.0005  # share of rows with NaN night_share
+
+
+@dataclass(frozen=True)
+class MeterKind:
+    """Generating profile of one meter kind (all figures invented)."""
+
+    name: str
+    share: float  # share of meters
+    litres: float  # typical litres per day (median)
+    litres_meter_sd: float  # log-sd of the meter's own level around `litres`
+    litres_day_sd: float  # log-sd of day-to-day noise
+    weekend: float  # litres factor on Saturdays and Sundays
+    dry_day: float  # log-sensitivity to the town-wide dry-day factor
+    night: float  # typical night share
+    night_meter_sd: float
+    night_day_sd: float
+    peak: float  # typical peak-hour litres (drawn as a ratio to litres, see peak_ratio)
+    peak_sd: float  # log-sd of the peak ratio
+    run: float  # typical longest flow run, hours
+    run_sd: float
+    zero: float  # typical zero-flow hours
+    zero_sd: float
+    habit_sd: float  # per-meter shift of run (and opposite shift of zero), hours
+    districts: tuple[float, ...]  # weights over DISTRICTS
+    always_on: bool = False  # continuous flow: run is 24 most days, zero hours 0
+    always_on_share: float = 0.0  # share of days with a 24-hour run
+
+    @property
+    def peak_ratio(self) -> float:
+        """Typical peak-hour litres as a share of the day's litres."""
+        return self.peak / self.litres
+
+
+#: Meter kinds in code order (code = index).  Shares sum to 1.
+KINDS: tuple[MeterKind, ...] = (
+    MeterKind(
+        "steady household", 0.55, 320.0, 0.25, 0.18, 1.12, 0.0,
+        0.04, 0.010, 0.012, 70.0, 0.15, 3.0, 0.9, 9.0, 1.5, 0.4,
+        (0.15, 0.15, 0.12, 0.22, 0.22, 0.14),
+    ),
+    MeterKind(
+        "large household", 0.20, 850.0, 0.20, 0.18, 1.10, 0.0,
+        0.05, 0.012, 0.015, 190.0, 0.15, 5.0, 1.0, 5.0, 1.3, 0.4,
+        (0.10, 0.25, 0.08, 0.17, 0.15, 0.25),
+    ),
+    MeterKind(
+        "holiday home", 0.12, 25.0, 0.40, 0.45, 1.60, 0.0,
+        0.02, 0.008, 0.012, 10.0, 0.20, 1.0, 0.5, 21.0, 1.2, 0.2,
+        (0.35, 0.10, 0.35, 0.05, 0.05, 0.10),
+    ),
+    MeterKind(
+        "garden irrigation", 0.09, 1400.0, 0.20, 0.22, 1.0, 0.25,
+        0.35, 0.040, 0.050, 450.0, 0.15, 6.0, 1.0, 8.0, 1.5, 0.4,
+        (0.05, 0.30, 0.05, 0.15, 0.20, 0.25),
+    ),
+    MeterKind(
+        "probable leak", 0.04, 700.0, 0.25, 0.12, 1.0, 0.0,
+        0.22, 0.030, 0.030, 80.0, 0.15, 19.0, 2.5, 0.0, 0.0, 0.0,
+        (0.25, 0.10, 0.30, 0.15, 0.10, 0.10),
+        always_on=True, always_on_share=0.85,
+    ),
+)
+
+# Salts of the independent draws.  Meter, day and row numbers overlap, so every
+# draw has its own salt; changing one changes the data of every seed.
+_S_KIND, _S_DISTRICT = 1, 2
+_S_M1A, _S_M1B, _S_M2A, _S_M2B = 3, 4, 5, 6  # per-meter normals (two Box–Muller pairs)
+_S_D1A, _S_D1B = 11, 12  # per-day normal (dry-day factor)
+_S_R1A, _S_R1B, _S_R2A, _S_R2B, _S_R3A, _S_R3B = 21, 22, 23, 24, 25, 26  # per-row normals
+_S_FAIL, _S_ALWAYS_ON = 27, 28
+
+_TWO_POW_53 = 9007199254740992
+
+
+@dataclass(frozen=True)
+class DemoSummary:
+    """What ``build_demo_database`` wrote.
+
+    ``kinds`` maps each kind name of ``KINDS`` to its number of meters (0 if absent).
+    """
+
+    path: Path
+    table: str
+    rows: int
+    days: int
+    meters: int
+    seed: int
+    kinds: dict[str, int] = field(default_factory=dict)
+
+
+# --------------------------------------------------------------------------- sqlglot helpers
+
+
+def _num(value: int | float) -> exp.Expression:
+    """A numeric literal; floats are cast to DOUBLE.
+
+    DuckDB reads ``0.2235294117647059`` as a DECIMAL, and a CASE over several such
+    literals widens to a 128-bit DECIMAL that is slow to compute with, so float
+    literals are typed explicitly (the cast is folded once per statement).
+    """
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        raise ValueError(f"not a finite number: {value!r}")
+    lit = exp.Literal.number(repr(value) if isinstance(value, float) else value)
+    if isinstance(lit, exp.Neg):
+        lit = exp.paren(lit, copy=False)
+    return exp.cast(lit, "DOUBLE") if isinstance(value, float) else lit
+
+
+def _ident(name: str) -> exp.Identifier:
+    return exp.to_identifier(name, quoted=True)
+
+
+def _col(name: str, table: str | None = None) -> exp.Column:
+    return exp.Column(this=_ident(name), table=_ident(table) if table else None)
+
+
+def _fn(name: str, *args: exp.Expression) -> exp.Expression:
+    return exp.func(name, *args)
+
+
+def _as(expression: exp.Expression, name: str) -> exp.Alias:
+    return exp.Alias(this=expression, alias=_ident(name))
+
+
+def _clip(x: exp.Expression, lo: exp.Expression, hi: exp.Expression) -> exp.Expression:
+    return _fn("greatest", lo, _fn("least", hi, x))
+
+
+def _by_kind(values: Sequence[exp.Expression]) -> exp.Expression:
+    """``CASE k WHEN 0 THEN v0 ... ELSE v_last END`` over the kind code column."""
+    case = exp.case(_col("k"))
+    for code, value in enumerate(values[:-1]):
+        case = case.when(_num(code), value)
+    return case.else_(values[-1])
+
+
+def _uniform(key: str, salt: int, seed: int) -> exp.Expression:
+    """Uniform in the open interval (0, 1) from ``hash(key, salt, seed)`` of the BIGINT column ``key``."""
+    h = _fn("hash", _col(key), exp.cast(_num(salt), "BIGINT"), exp.cast(_num(seed), "BIGINT"))
+    top53 = exp.paren(exp.BitwiseRightShift(this=h, expression=_num(11)), copy=False)
+    return (exp.cast(top53, "DOUBLE") + _num(0.5)) / _num(_TWO_POW_53)
+
+
+def _bm_radius(key: str, salt: int, seed: int) -> exp.Expression:
+    """Box–Muller radius sqrt(-2 ln u)."""
+    return _fn("sqrt", _num(-2.0) * _fn("ln", _uniform(key, salt, seed)))
+
+
+def _bm_angle(key: str, salt: int, seed: int) -> exp.Expression:
+    """Box–Muller angle 2 pi u."""
+    return _num(2.0 * math.pi) * _uniform(key, salt, seed)
+
+
+def _bm_pair(radius: str, angle: str) -> tuple[exp.Expression, exp.Expression]:
+    """Two independent standard normals from a Box–Muller radius and angle column."""
+    return (
+        _col(radius) * _fn("cos", _col(angle)),
+        _col(radius) * _fn("sin", _col(angle)),
+    )
+
+
+def _select(projections: Sequence[exp.Expression], source: exp.Expression) -> exp.Select:
+    return exp.select(*projections, copy=False).from_(source, copy=False)
+
+
+def _range(n: int, alias: str, column: str) -> exp.Table:
+    return exp.Table(
+        this=_fn("range", _num(n)),
+        alias=exp.TableAlias(this=_ident(alias), columns=[_ident(column)]),
+    )
+
+
+def _subquery(select: exp.Select, alias: str) -> exp.Subquery:
+    return exp.Subquery(this=select, alias=exp.TableAlias(this=_ident(alias)))
+
+
+# --------------------------------------------------------------------------- statements
+
+
+def _check_int(name: str, value: object, lo: int, hi: int | None = None) -> int:
+    if isinstance(value, bool):
+        raise TypeError(f"{name} must be an int, got {value!r}")
+    try:
+        value = operator.index(value)  # type: ignore[arg-type]
+    except TypeError:
+        raise TypeError(f"{name} must be an int, got {value!r}") from None
+    if value < lo or (hi is not None and value > hi):
+        bound = f"between {lo:,} and {hi:,}" if hi is not None else f">= {lo:,}"
+        raise ValueError(f"{name} must be {bound}, got {value!r}")
+    return value
+
+
+def _check_args(rows: object, days: object, seed: object) -> tuple[int, int, int]:
+    rows = _check_int("rows", rows, MIN_ROWS, MAX_ROWS)
+    days = _check_int("days", days, 1)
+    seed = _check_int("seed", seed, -(2**63), 2**63 - 1)
+    return rows, days, seed
+
+
+def _meter_select(meters: int, seed: int) -> exp.Select:
+    """One row per meter: kind code, district, kind name and the meter's own levels.
+
+    Columns: mid, k, kind, district, lvl_litres, lvl_night, peak_ratio, base_run, base_zero,
+    sd_litres, sd_night, sd_peak, sd_run, sd_zero, log_weekend, dry_sens, always_on, on_share.
+    """
+    mid = "mid"
+    # kind code from cumulative shares
+    kind_case = exp.case()
+    cum = 0.0
+    for code, kind in enumerate(KINDS[:-1]):
+        cum += kind.share
+        kind_case = kind_case.when(_col("uk") < _num(round(cum, 12)), _num(code))
+    kind_case = kind_case.else_(_num(len(KINDS) - 1))
+
+    draws = _select(
+        [
+            _as(_col(mid), "mid"),
+            _as(_uniform(mid, _S_KIND, seed), "uk"),
+            _as(_uniform(mid, _S_DISTRICT, seed), "ud"),
+            _as(_bm_radius(mid, _S_M1A, seed), "r1"),
+            _as(_bm_angle(mid, _S_M1B, seed), "t1"),
+            _as(_bm_radius(mid, _S_M2A, seed), "r2"),
+            _as(_bm_angle(mid, _S_M2B, seed), "t2"),
+        ],
+        _range(meters, "m", "mid"),
+    )
+
+    # district from per-kind weights
+    district_cases = []
+    for kind in KINDS:
+        total = sum(kind.districts)
+        case = exp.case()
+        cum = 0.0
+        for name, weight in zip(DISTRICTS[:-1], kind.districts[:-1]):
+            cum += weight / total
+            case = case.when(_col("ud") < _num(round(cum, 12)), exp.Literal.string(name))
+        district_cases.append(case.else_(exp.Literal.string(DISTRICTS[-1])))
+
+    z_litres, z_night = _bm_pair("r1", "t1")
+
+    def per_kind(attr: str) -> exp.Expression:
+        return _by_kind([_num(getattr(kind, attr)) for kind in KINDS])
+
+    coded = _select([exp.Star(), _as(kind_case, "k")], _subquery(draws, "md"))
+    levels = _select(
+        [
+            _col("mid"),
+            _col("k"),
+            _as(_by_kind([exp.Literal.string(kind.name) for kind in KINDS]), "kind"),
+            _as(_by_kind(district_cases), "district"),
+            _as(
+                per_kind("litres") * _fn("exp", per_kind("litres_meter_sd") * z_litres),
+                "lvl_litres",
+            ),
+            _as(per_kind("night") + per_kind("night_meter_sd") * z_night, "lvl_night"),
+            _as(_by_kind([_num(kind.peak_ratio) for kind in KINDS]), "peak_ratio"),
+            _as(per_kind("run") + per_kind("habit_sd") * _bm_pair("r2", "t2")[0], "base_run"),
+            _as(per_kind("zero") - _num(2.0) * per_kind("habit_sd") * _bm_pair("r2", "t2")[0], "base_zero"),
+            _as(per_kind("litres_day_sd"), "sd_litres"),
+            _as(per_kind("night_day_sd"), "sd_night"),
+            _as(per_kind("peak_sd"), "sd_peak"),
+            _as(per_kind("run_sd"), "sd_run"),
+            _as(per_kind("zero_sd"), "sd_zero"),
+            _as(_by_kind([_num(math.log(kind.weekend)) for kind in KINDS]), "log_weekend"),
+            _as(per_kind("dry_day"), "dry_sens"),
+            _as(_by_kind([exp.true() if kind.always_on else exp.false() for kind in KINDS]), "always_on"),
+            _as(per_kind("always_on_share"), "on_share"),
+        ],
+        _subquery(coded, "mk"),
+    )
+    return levels
+
+
+def _day_select(days: int, seed: int) -> exp.Select:
+    """One row per day: di, weekend flag (0/1) and the town-wide dry-day normal."""
+    di = "di"
+    # 2026-01-01 is a Thursday; with Monday = 0, weekday = (di + 3) % 7; 5, 6 = weekend
+    weekday = exp.paren(_col(di) + _num(START_DAY.weekday()), copy=False) % _num(7)
+    weekend = exp.case().when(weekday >= _num(5), _num(1.0)).else_(_num(0.0))
+    z_dry = _bm_radius(di, _S_D1A, seed) * _fn("cos", _bm_angle(di, _S_D1B, seed))
+    return _select([_as(_col(di), "di"), _as(weekend, "weekend"), _as(z_dry, "z_dry")], _range(days, "d", "di"))
+
+
+def demo_select(rows: int = 1_000_000, days: int = 60, seed: int = 7) -> exp.Select:
+    """The SELECT (a sqlglot tree) producing the ``meter_days`` rows, in column order.
+
+    Render with ``.sql(dialect="duckdb")``; it relies on DuckDB's ``hash`` and ``range``.
+    """
+    rows, days, seed = _check_args(rows, days, seed)
+    meters = math.ceil(rows / days)
+    day_count = min(days, rows)
+
+    def rn() -> exp.Expression:
+        return _col("mid", "ml") * _num(days) + _col("di", "dd")
+
+    crossed = (
+        exp.select(
+            _as(rn(), "rn"),
+            exp.Star(),  # ml.*, dd.*  (column names are disjoint)
+            copy=False,
+        )
+        .from_(_subquery(_meter_select(meters, seed), "ml"), copy=False)
+        .join(_subquery(_day_select(day_count, seed), "dd"), join_type="CROSS", copy=False)
+        .where(rn() < _num(rows), copy=False)
+    )
+
+    key = "rn"
+    draws = _select(
+        [
+            exp.Star(),
+            _as(_bm_radius(key, _S_R1A, seed), "q1"),
+            _as(_bm_angle(key, _S_R1B, seed), "a1"),
+            _as(_bm_radius(key, _S_R2A, seed), "q2"),
+            _as(_bm_angle(key, _S_R2B, seed), "a2"),
+            _as(_bm_radius(key, _S_R3A, seed), "q3"),
+            _as(_bm_angle(key, _S_R3B, seed), "a3"),
+            _as(_uniform(key, _S_FAIL, seed), "uf"),
+        ],
+        _subquery(crossed, "x"),
+    )
+
+    z_l, z_n = _bm_pair("q1", "a1")
+    z_p = _bm_pair("q2", "a2")[0]
+    z_z, _unused = _bm_pair("q3", "a3")
+    litres = _col("lvl_litres") * _fn(
+        "exp",
+        _col("sd_litres") * z_l + _col("log_weekend") * _col("weekend") + _col("dry_sens") * _col("z_dry"),
+    )
+    always_on_run = (
+        exp.case()
+        .when(_uniform(key, _S_ALWAYS_ON, seed) < _col("on_share"), _num(24))
+        .else_(_clip(_fn("round", _col("base_run") + _col("sd_run") * _bm_pair("q2", "a2")[1]), _num(0), _num(23)))
+    )
+    run = (
+        exp.case()
+        .when(_col("always_on"), always_on_run)
+        .else_(_clip(_fn("round", _col("base_run") + _col("sd_run") * _bm_pair("q2", "a2")[1]), _num(0), _num(24)))
+    )
+    values = _select(
+        [
+            _col("mid"),
+            _col("district"),
+            _col("di"),
+            _col("uf"),
+            _as(_fn("round", litres, _num(1)), "v_litres"),
+            _as(_clip(_col("lvl_night") + _col("sd_night") * z_n, _num(0.0), _num(1.0)), "v_night"),
+            _as(_col("peak_ratio") * _fn("exp", _col("sd_peak") * z_p), "v_peak_ratio"),
+            _as(run, "v_run"),
+            _as(_col("base_zero") + _col("sd_zero") * z_z, "v_zero_raw"),
+        ],
+        _subquery(draws, "w"),
+    )
+
+    def v_litres() -> exp.Column:
+        return _col("v_litres")
+
+    def uf() -> exp.Column:
+        return _col("uf")
+
+    final = _select(
+        [
+            _as(exp.cast(_col("mid"), "INTEGER"), "meter_id"),
+            _as(_col("district"), "district"),
+            _as(exp.cast(exp.Literal.string(START_DAY.isoformat()), "DATE") + exp.cast(_col("di"), "INTEGER"), "day"),
+            _as(
+                exp.case().when(uf() < _num(_FAIL_NULL_LITRES), exp.null()).else_(v_litres()),
+                "litres",
+            ),
+            _as(
+                exp.case()
+                .when(
+                    exp.and_(uf() >= _num(_FAIL_NULL_LITRES), uf() < _num(_FAIL_NULL_LITRES + _FAIL_NAN_NIGHT)),
+                    exp.cast(exp.Literal.string("NaN"), "DOUBLE"),
+                )
+                .else_(_fn("round", _col("v_night"), _num(4))),
+                "night_share",
+            ),
+            _as(
+                _fn("round", _fn("least", v_litres(), v_litres() * _col("v_peak_ratio")), _num(1)),
+                "peak_litres",
+            ),
+            _as(exp.cast(_col("v_run"), "INTEGER"), "flow_run_hours"),
+            _as(
+                exp.cast(
+                    _clip(_fn("round", _col("v_zero_raw")), _num(0), _num(24) - _col("v_run")),
+                    "INTEGER",
+                ),
+                "zero_hours",
+            ),
+        ],
+        _subquery(values, "v"),
+    )
+    return final
+
+
+def _meters_table_select(meters: int, seed: int) -> exp.Select:
+    """The SELECT of the ``meters`` table: meter_id, district, kind (the invented ground truth)."""
+    return _select(
+        [
+            _as(exp.cast(_col("mid"), "INTEGER"), "meter_id"),
+            _as(_col("district"), "district"),
+            _as(_col("kind"), "kind"),
+        ],
+        _subquery(_meter_select(meters, seed), "ml"),
+    ).order_by(_col("meter_id"), copy=False)
+
+
+def _connect(database: str) -> duckdb.DuckDBPyConnection:
+    con = duckdb.connect(database)
+    con.execute("SET enable_progress_bar = false")
+    return con
+
+
+def _table_exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
+    query = _select(
+        [_fn("count", exp.Star())],
+        exp.Table(this=_ident("tables"), db=_ident("information_schema")),
+    ).where(
+        exp.and_(
+            _fn("lower", _col("table_name")).eq(_fn("lower", exp.Literal.string(name))),
+            _col("table_schema").eq(_fn("current_schema")),
+        ),
+        copy=False,
+    )
+    row = con.execute(query.sql(dialect="duckdb")).fetchone()
+    return bool(row and row[0])
+
+
+def build_demo_database(
+    path: str | os.PathLike[str],
+    rows: int = 1_000_000,
+    days: int = 60,
+    seed: int = 7,
+    table: str = "meter_days",
+    replace: bool = False,
+) -> DemoSummary:
+    """Create the demo DuckDB file with the tables ``table`` (meter-days) and ``meters``.
+
+    ``rows`` (1,000 .. 100,000,000) rows are written to ``table``: meters
+    ``0 .. ceil(rows / days) - 1`` with ``days`` consecutive days each from
+    2026-01-01, the last meter possibly with fewer days.  The same
+    (rows, days, seed) always gives the same tables.
+
+    The file is created if missing.  If ``table`` or ``meters`` already exists in
+    it, ``FileExistsError`` is raised unless ``replace=True``, which replaces both.
+    Both tables are written in one transaction.
+
+    Raises ValueError for out-of-range ``rows``, ``days`` or ``seed`` and for a
+    ``table`` name that is empty or clashes with ``meters``.
+    """
+    rows, days, seed = _check_args(rows, days, seed)
+    if not isinstance(table, str) or not table.strip():
+        raise ValueError(f"table must be a non-empty name, got {table!r}")
+    if table.lower() == METERS_TABLE:
+        raise ValueError(f"table must not be called {METERS_TABLE!r}: that name holds the meter kinds")
+    meters = math.ceil(rows / days)
+    path = Path(path)
+
+    con = _connect(str(path))
+    try:
+        existing = [name for name in (table, METERS_TABLE) if _table_exists(con, name)]
+        if existing and not replace:
+            raise FileExistsError(
+                f"{path}: table(s) {', '.join(repr(n) for n in existing)} already exist; pass replace=True to replace them"
+            )
+        statements = [
+            exp.Create(
+                this=exp.Table(this=_ident(table)),
+                kind="TABLE",
+                expression=demo_select(rows, days, seed),
+                replace=True,
+            ),
+            exp.Create(
+                this=exp.Table(this=_ident(METERS_TABLE)),
+                kind="TABLE",
+                expression=_meters_table_select(meters, seed),
+                replace=True,
+            ),
+        ]
+        con.execute("BEGIN TRANSACTION")
+        try:
+            for statement in statements:
+                con.execute(statement.sql(dialect="duckdb"))
+            con.execute("COMMIT")
+        except BaseException:
+            con.execute("ROLLBACK")
+            raise
+        counts_query = _select(
+            [_col("kind"), _fn("count", exp.Star())],
+            exp.Table(this=_ident(METERS_TABLE)),
+        ).group_by(_col("kind"), copy=False)
+        found = dict(con.execute(counts_query.sql(dialect="duckdb")).fetchall())
+    finally:
+        con.close()
+
+    kinds = {kind.name: int(found.get(kind.name, 0)) for kind in KINDS}
+    return DemoSummary(path=path, table=table, rows=rows, days=days, meters=meters, seed=seed, kinds=kinds)
+
+
+def write_demo_parquet(
+    directory: str | os.PathLike[str],
+    rows: int = 1_000_000,
+    days: int = 60,
+    seed: int = 7,
+) -> list[Path]:
+    """Write the demo meter-days as one Parquet file per day, hive-style.
+
+    Layout: ``directory/day=YYYY-MM-DD/part-0.parquet``; the files hold every
+    column except ``day``, which lives in the folder name (read back with
+    ``read_parquet('directory/*/*.parquet', hive_partitioning = true)``).  The rows
+    are the same as ``build_demo_database`` writes for the same (rows, days, seed).
+
+    ``directory`` is created if missing and must be empty otherwise
+    (``FileExistsError``).  Returns the written files sorted by day.
+    """
+    rows, days, seed = _check_args(rows, days, seed)
+    directory = Path(directory)
+    if directory.exists():
+        if not directory.is_dir():
+            raise FileExistsError(f"{directory}: exists and is not a directory")
+        if any(directory.iterdir()):
+            raise FileExistsError(f"{directory}: directory is not empty")
+    directory.mkdir(parents=True, exist_ok=True)
+
+    copy = exp.Copy(
+        this=exp.Subquery(this=demo_select(rows, days, seed)),
+        kind=False,
+        files=[exp.Literal.string(str(directory))],
+        params=[
+            exp.CopyParameter(this=exp.var("FORMAT"), expression=exp.var("parquet")),
+            exp.CopyParameter(
+                this=exp.var("PARTITION_BY"),
+                expression=exp.paren(_col("day"), copy=False),
+            ),
+            exp.CopyParameter(this=exp.var("FILENAME_PATTERN"), expression=exp.Literal.string("part-{i}")),
+        ],
+    )
+    con = _connect(":memory:")
+    try:
+        con.execute(copy.sql(dialect="duckdb"))
+    finally:
+        con.close()
+    return sorted(directory.glob("day=*/*.parquet"))

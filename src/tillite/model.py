@@ -1,0 +1,185 @@
+"""The model file: what `segment` writes and `label`, `show` (and later `refresh`) read.
+
+A JSON document with a format name and version of our own.  Centroids are kept
+in original units (``centroids``) and in the standardised units the distances
+are measured in (``centroids_scaled``), so labelling needs nothing else.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .engines import TilliteError
+from .sqlgen import Assignment
+
+FORMAT_NAME = "tillite-model"
+FORMAT_VERSION = 1
+
+__all__ = ["Model", "FORMAT_NAME", "FORMAT_VERSION", "ModelError"]
+
+
+class ModelError(TilliteError):
+    """The model file is missing, unreadable or not one of ours."""
+
+
+@dataclass
+class Model:
+    columns: list[str]
+    center: list[float]
+    scale: list[float]
+    weights: list[float]
+    scaling: str
+    centroids: list[list[float]]
+    centroids_scaled: list[list[float]]
+    sizes: list[int]
+    sse: float
+    segment_sse: list[float]
+    radius: list[float]
+    rows: int
+    skipped: int
+    source: str
+    k: int
+    method: str = "kmeans"
+    constant_columns: list[str] = field(default_factory=list)
+    grid: dict[str, Any] = field(default_factory=dict)
+    params: dict[str, Any] = field(default_factory=dict)
+    passes: list[dict[str, Any]] = field(default_factory=list)
+    timings: dict[str, float] = field(default_factory=dict)
+    created: str = ""
+
+    # ------------------------------------------------------------ derived
+
+    @property
+    def usable(self) -> int:
+        return int(sum(self.sizes))
+
+    def assignment(self) -> Assignment:
+        """What the refine and label SQL need to assign rows to segments."""
+        return Assignment(
+            center=tuple(self.center),
+            inv_scale=tuple(1.0 / s for s in self.scale),
+            weights=tuple(self.weights),
+            centroids=tuple(tuple(c) for c in self.centroids_scaled),
+        )
+
+    # ------------------------------------------------------------ files
+
+    def to_dict(self) -> dict[str, Any]:
+        body = asdict(self)
+        return {"format": FORMAT_NAME, "version": FORMAT_VERSION, **body}
+
+    def to_json(self) -> str:
+        return json.dumps(self.to_dict(), indent=2, default=_plain)
+
+    def write(self, path: str | os.PathLike) -> None:
+        """Write atomically: a failed write leaves any existing file as it was."""
+        path = Path(path)
+        text = self.to_json()
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent if str(path.parent) else ".")
+        try:
+            with os.fdopen(fd, "w") as fh:
+                fh.write(text)
+                fh.write("\n")
+            os.replace(tmp, path)
+        except BaseException:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+            raise
+
+    @staticmethod
+    def from_dict(data: dict[str, Any], where: str = "model") -> "Model":
+        if data.get("format") != FORMAT_NAME:
+            raise ModelError(f"{where} is not a tillite model (format {data.get('format')!r})")
+        if int(data.get("version", 0)) > FORMAT_VERSION:
+            raise ModelError(f"{where} has model version {data['version']}; this tillite reads up to {FORMAT_VERSION}")
+        body = {k: v for k, v in data.items() if k not in ("format", "version")}
+        known = set(Model.__dataclass_fields__)
+        missing = [k for k in ("columns", "center", "scale", "centroids_scaled") if k not in body]
+        if missing:
+            raise ModelError(f"{where} lacks {', '.join(missing)}")
+        return Model(**{k: v for k, v in body.items() if k in known})
+
+    @staticmethod
+    def read(path: str | os.PathLike) -> "Model":
+        try:
+            text = Path(path).read_text()
+        except OSError as err:
+            raise ModelError(f"cannot read model file {path}: {err.strerror}") from None
+        try:
+            data = json.loads(text)
+        except json.JSONDecodeError as err:
+            raise ModelError(f"model file {path} is not valid JSON: {err}") from None
+        return Model.from_dict(data, where=f"model file {path}")
+
+    # ------------------------------------------------------------ summary
+
+    def summary(self) -> dict[str, Any]:
+        """The machine-readable digest printed by --json."""
+        return {
+            "source": self.source,
+            "method": self.method,
+            "k": self.k,
+            "columns": self.columns,
+            "rows": self.rows,
+            "skipped": self.skipped,
+            "sse": self.sse,
+            "segments": [
+                {
+                    "segment": i,
+                    "size": self.sizes[i],
+                    "centroid": dict(zip(self.columns, self.centroids[i])),
+                    "radius": self.radius[i],
+                    "sse": self.segment_sse[i],
+                }
+                for i in range(len(self.sizes))
+            ],
+            "passes": self.passes,
+            "timings": self.timings,
+        }
+
+    def describe(self) -> str:
+        """A plain-text table of segments for people."""
+        lines = [
+            f"source: {self.source}",
+            f"method: {self.method}, k={self.k}, scaling={self.scaling}",
+            f"rows: {self.rows:,} ({self.skipped:,} skipped for NULL/NaN/Inf), segmented: {self.usable:,}",
+            f"SSE (row level, scaled units): {self.sse:.6g}",
+        ]
+        if self.constant_columns:
+            lines.append(f"constant columns (no weight): {', '.join(self.constant_columns)}")
+        head = ["segment", "size", "share", "radius", "SSE"] + list(self.columns)
+        rows = []
+        total = max(self.usable, 1)
+        for i, size in enumerate(self.sizes):
+            rows.append(
+                [str(i), f"{size:,}", f"{100.0 * size / total:.1f}%", f"{self.radius[i]:.3g}", f"{self.segment_sse[i]:.4g}"]
+                + [_fmt(v) for v in self.centroids[i]]
+            )
+        widths = [max(len(h), *(len(r[c]) for r in rows)) for c, h in enumerate(head)]
+        lines.append("")
+        lines.append("  ".join(h.rjust(w) for h, w in zip(head, widths)))
+        lines.extend("  ".join(v.rjust(w) for v, w in zip(r, widths)) for r in rows)
+        lines.append("")
+        lines.append("centroids in original units; radius and SSE in scaled units")
+        return "\n".join(lines)
+
+
+def _fmt(v: float) -> str:
+    return f"{v:.4g}" if abs(v) < 1e5 else f"{v:.6g}"
+
+
+def _plain(o: Any) -> Any:
+    if isinstance(o, np.integer):
+        return int(o)
+    if isinstance(o, np.floating):
+        return float(o)
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    raise TypeError(f"cannot write {type(o).__name__} to a model file")

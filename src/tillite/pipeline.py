@@ -1,0 +1,486 @@
+"""One `segment` run and one `label` run, stage by stage.
+
+profile (SQL, sample) -> cell pass (SQL, one GROUP BY) -> second phase (numpy,
+on cell CFs) -> refine passes (SQL, one GROUP BY segment each) -> model.
+Only samples of bounded size and CFs ever come back to Python.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+import warnings
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from typing import Callable, Sequence
+
+import numpy as np
+
+from . import features as F
+from . import sqlgen
+from .engines import Engine, SourceError, TilliteError, file_reader_for, is_numeric_type
+from .features import CF
+from .model import Model
+from .segmenters import kmeans
+from .sqlgen import Assignment, Grid, Source
+
+__all__ = [
+    "Settings",
+    "Profile",
+    "CellPass",
+    "segment",
+    "label",
+    "check_columns",
+    "run_profile",
+    "run_cell_pass",
+    "choose_width",
+    "grid_for_profile",
+    "ProgressFn",
+    "InputError",
+]
+
+ProgressFn = Callable[[str, str], None]
+
+
+class InputError(TilliteError):
+    """The request cannot be met with this data (empty table, k too large, ...)."""
+
+
+@dataclass
+class Settings:
+    """Everything a `segment` run can be told."""
+
+    k: int
+    scaling: str = "zscore"  # or "none": keep original units (still centred)
+    weights: dict[str, float] = field(default_factory=dict)
+    cell_budget: int = 20_000
+    refine_passes: int = 3
+    tolerance: float = 1e-4
+    n_init: int = 10
+    seed: int = 0
+    sample_rows: int = 100_000
+    principal_above: int = 6  # bin principal-axis scores when there are more columns
+    principal_axes: int = 6
+    width: float | None = None  # force the grid width (scaled units)
+
+    def check(self, columns: Sequence[str]) -> None:
+        if self.k < 1:
+            raise InputError(f"k must be at least 1, got {self.k}")
+        if self.scaling not in ("zscore", "none"):
+            raise InputError(f"scaling must be 'zscore' or 'none', got {self.scaling!r}")
+        unknown = [c for c in self.weights if c not in columns]
+        if unknown:
+            raise InputError(f"weights name columns not chosen for segmenting: {', '.join(unknown)}")
+        bad = {c: w for c, w in self.weights.items() if not (math.isfinite(w) and w >= 0)}
+        if bad:
+            raise InputError(f"weights must be finite and >= 0: {bad}")
+        if self.cell_budget < 1 or self.refine_passes < 0 or self.tolerance < 0 or self.n_init < 1:
+            raise InputError("cell budget, refine passes, tolerance and restarts must be positive")
+        if self.width is not None and not (self.width > 0 and math.isfinite(self.width)):
+            raise InputError(f"grid width must be positive, got {self.width}")
+
+
+def _quiet(stage: str, message: str) -> None:
+    return None
+
+
+# ----------------------------------------------------------------------------- checks
+
+
+def check_columns(engine: Engine, source: Source, columns: Sequence[str]) -> list[str]:
+    """All source columns, after checking the chosen ones exist and are numeric."""
+    if not columns:
+        raise InputError("no columns given to segment on")
+    dupes = sorted({c for c in columns if list(columns).count(c) > 1})
+    if dupes:
+        raise InputError(f"columns given more than once: {', '.join(dupes)}")
+    described = engine.describe(source)
+    types = dict(described)
+    missing = [c for c in columns if c not in types]
+    if missing:
+        listing = ", ".join(f"{n} ({t})" for n, t in described)
+        raise SourceError(f"column {', '.join(missing)} not found in {source.label}; columns there: {listing}")
+    for c in columns:
+        if not is_numeric_type(types[c]):
+            raise SourceError(f"column {c} of {source.label} has type {types[c]}, not a number; choose numeric columns")
+    return [n for n, _ in described]
+
+
+# ----------------------------------------------------------------------------- profile
+
+
+@dataclass
+class Profile:
+    rows: int
+    sample: np.ndarray  # usable sampled rows, original units (bounded size)
+    center: np.ndarray
+    scale: np.ndarray  # of the grid (sample sd, or 1 for scaling none)
+    seconds: float
+
+
+def _fetch_matrix(engine: Engine, statement, d: int) -> np.ndarray:
+    got = engine.query(statement)
+    cols = [np.asarray(got[sqlgen.internal(f"x{j}")], dtype=np.float64) for j in range(d)]
+    return np.column_stack(cols) if cols and len(cols[0]) else np.zeros((0, d))
+
+
+def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings: Settings) -> Profile:
+    """Row count and a bounded sample of usable rows, with its centre and scale."""
+    t0 = time.perf_counter()
+    rows = int(engine.query(sqlgen.count_statement(source))["n"][0])
+    if rows == 0:
+        raise InputError(f"{source.label} has no rows")
+    d = len(columns)
+    target = settings.sample_rows
+    if rows <= 2 * target:
+        sample = _fetch_matrix(engine, sqlgen.sample_statement(source, columns, engine.dialect), d)
+    else:
+        percent = min(100.0, 150.0 * target / rows)
+        stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method="SYSTEM", limit=target)
+        sample = _fetch_matrix(engine, stmt, d)
+        if len(sample) < target // 10:
+            stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method="BERNOULLI", limit=target)
+            sample = _fetch_matrix(engine, stmt, d)
+    if len(sample):
+        center = sample.mean(axis=0)
+        sd = sample.std(axis=0)
+    else:
+        center, sd = np.zeros(d), np.ones(d)
+    scale = np.where(sd > 0, sd, 1.0) if settings.scaling == "zscore" else np.ones(d)
+    return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0)
+
+
+def chao1(counts: np.ndarray) -> float:
+    """Estimated number of classes in the population from sample class counts.
+
+    Chao's (1984) lower-bound estimator D + f1^2 / (2 f2), bias-corrected form
+    D + f1 (f1 - 1) / 2 when no class was seen exactly twice.
+    """
+    f1 = float((counts == 1).sum())
+    f2 = float((counts == 2).sum())
+    d = float(len(counts))
+    return d + (f1 * f1 / (2.0 * f2) if f2 > 0 else f1 * (f1 - 1.0) / 2.0)
+
+
+def grid_axes(sample_u: np.ndarray, weights: np.ndarray, settings: Settings, usable_cols: np.ndarray) -> np.ndarray:
+    """Columns of the matrix mapping standardised values to binned coordinates.
+
+    Weighted columns themselves, or, above ``principal_above`` columns, the top
+    principal axes of the weighted sample (covariance from the profile sample).
+    """
+    d = len(weights)
+    active = np.flatnonzero((weights > 0) & usable_cols)
+    if len(active) == 0:
+        active = np.arange(d)
+    if len(active) <= settings.principal_above or len(sample_u) < 2:
+        axes = np.zeros((d, len(active)))
+        axes[active, np.arange(len(active))] = weights[active]
+        return axes
+    xw = sample_u * weights[None, :]
+    cov = np.cov(xw, rowvar=False, bias=True)
+    vals, vecs = np.linalg.eigh(cov)
+    order = np.argsort(vals)[::-1][: settings.principal_axes]
+    return vecs[:, order] * weights[:, None]
+
+
+def grid_for_profile(prof: Profile, settings: Settings, weights: np.ndarray | None = None) -> Grid:
+    """The grid of a run: standardisation, binned axes and width, all from the sample."""
+    d = len(prof.center)
+    weights = np.ones(d) if weights is None else weights
+    sample_u = (prof.sample - prof.center[None, :]) / prof.scale[None, :]
+    varied = prof.sample.std(axis=0) > 0 if len(prof.sample) else np.ones(d, dtype=bool)
+    axes = grid_axes(sample_u, weights, settings, varied)
+    width = settings.width or choose_width(sample_u @ axes, prof.rows, settings.cell_budget)
+    return Grid(
+        center=tuple(map(float, prof.center)),
+        inv_scale=tuple(map(float, 1.0 / prof.scale)),
+        width=float(width),
+        axes=tuple(tuple(map(float, r)) for r in axes),
+    )
+
+
+def choose_width(coords: np.ndarray, rows: int, budget: int) -> float:
+    """Smallest grid width whose estimated number of occupied cells fits the budget.
+
+    The number of occupied cells in the whole table is estimated from the
+    sample with Chao1 (capped at the row count); searched on a log scale.
+    """
+    if len(coords) == 0:
+        return 1.0
+    scale_full = len(coords) < rows
+
+    mix = np.random.default_rng(12345).integers(1, 2**62, size=coords.shape[1]) | 1
+
+    def estimate(width: float) -> float:
+        keys = np.floor(coords / width).astype(np.int64)
+        with np.errstate(over="ignore"):
+            hashed = (keys * mix[None, :]).sum(axis=1)  # wraps around; collisions are negligible
+        _, counts = np.unique(hashed, return_counts=True)
+        est = chao1(counts) if scale_full else float(len(counts))
+        return min(est, float(rows))
+
+    lo, hi = math.log(1e-3), math.log(50.0)
+    if estimate(math.exp(lo)) <= budget:
+        return math.exp(lo)
+    for _ in range(30):
+        mid = 0.5 * (lo + hi)
+        if estimate(math.exp(mid)) <= budget:
+            hi = mid
+        else:
+            lo = mid
+    return math.exp(hi)
+
+
+# ----------------------------------------------------------------------------- cell pass
+
+
+@dataclass
+class CellPass:
+    cells: CF  # on the grid's standardised values
+    keys: np.ndarray  # packed cell keys
+    usable: int
+    skipped: int
+    seconds: float
+
+
+def cf_from_result(got: dict[str, np.ndarray], d: int, keep: np.ndarray | None = None) -> CF:
+    """CF array from the n, ls*, ss* columns of a cells or refine result."""
+    n = np.asarray(got["n"], dtype=np.float64)
+    ls = np.column_stack([np.asarray(got[f"ls{j}"], dtype=np.float64) for j in range(d)]) if len(n) else np.zeros((0, d))
+    ss = np.column_stack([np.asarray(got[f"ss{j}"], dtype=np.float64) for j in range(d)]) if len(n) else np.zeros((0, d))
+    cf = CF(n, ls, ss)
+    return cf if keep is None else cf[keep]
+
+
+def _null_mask(values: np.ndarray) -> np.ndarray:
+    if np.ma.isMaskedArray(values):
+        return np.ma.getmaskarray(values)
+    values = np.asarray(values)
+    if values.dtype.kind == "f":
+        return np.isnan(values)
+    if values.dtype == object:
+        return np.array([v is None for v in values], dtype=bool)
+    return np.zeros(len(values), dtype=bool)
+
+
+def run_cell_pass(engine: Engine, source: Source, columns: Sequence[str], grid: Grid) -> CellPass:
+    """One GROUP BY over the grid key: cell CFs plus the skipped-row count."""
+    t0 = time.perf_counter()
+    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.dialect))
+    null = _null_mask(got["key"])
+    n = np.asarray(got["n"], dtype=np.int64)
+    skipped = int(n[null].sum())
+    keep = ~null
+    cells = cf_from_result(got, len(columns), keep)
+    keys = np.asarray(np.ma.getdata(got["key"]), dtype=np.int64)[keep]
+    return CellPass(cells=cells, keys=keys, usable=int(n[keep].sum()), skipped=skipped, seconds=time.perf_counter() - t0)
+
+
+# ----------------------------------------------------------------------------- refine
+
+
+@dataclass
+class RefineResult:
+    segments: CF  # per segment, on the model's standardised values
+    sse_assigned: float  # row-level SSE of rows at the centroids they were assigned to
+    skipped: int
+    seconds: float
+
+
+def run_refine_pass(engine: Engine, source: Source, columns: Sequence[str], assign: Assignment) -> RefineResult:
+    t0 = time.perf_counter()
+    got = engine.query(sqlgen.refine_statement(source, columns, assign, engine.dialect))
+    null = _null_mask(got["segment"])
+    n = np.asarray(got["n"], dtype=np.int64)
+    k, d = len(assign.centroids), len(columns)
+    seg = np.asarray(np.ma.getdata(got["segment"]))[~null].astype(np.int64)
+    part = cf_from_result(got, d, ~null)
+    segments = F.group_sum(part, seg, k)
+    dist = np.asarray(np.ma.getdata(got["dist"]), dtype=np.float64)[~null]
+    return RefineResult(
+        segments=segments,
+        sse_assigned=float(dist.sum()),
+        skipped=int(n[null].sum()),
+        seconds=time.perf_counter() - t0,
+    )
+
+
+# ----------------------------------------------------------------------------- segment
+
+
+def _exact_standardisation(total_u: CF, grid_center: np.ndarray, grid_scale: np.ndarray, scaling: str):
+    """Exact mean and population sd in original units from the total CF on grid units."""
+    n = float(total_u.n[0])
+    mean_u = total_u.ls[0] / n
+    var_u = F.column_scatter(total_u)[0] / n
+    center = grid_center + mean_u * grid_scale
+    sd = np.sqrt(var_u) * grid_scale
+    return center, sd
+
+
+def segment(
+    engine: Engine,
+    source: Source,
+    columns: Sequence[str],
+    settings: Settings,
+    progress: ProgressFn = _quiet,
+) -> Model:
+    """Segment the source's rows on the columns; returns the model (nothing is written)."""
+    columns = list(columns)
+    settings.check(columns)
+    t_start = time.perf_counter()
+    check_columns(engine, source, columns)
+    d = len(columns)
+    weights = np.array([float(settings.weights.get(c, 1.0)) for c in columns])
+
+    # 1. profile on a sample, and the grid from it
+    t0 = time.perf_counter()
+    prof = run_profile(engine, source, columns, settings)
+    grid = grid_for_profile(prof, settings, weights)
+    prof.seconds = time.perf_counter() - t0
+    progress("profile", f"{prof.rows:,} rows, sample of {len(prof.sample):,}, grid width {grid.width:.3g} on {grid.dims} axes, {prof.seconds:.2f} s")
+
+    # 2. cell pass
+    cp = run_cell_pass(engine, source, columns, grid)
+    if cp.usable == 0:
+        raise InputError(
+            f"no usable rows in {source.label}: all {cp.skipped:,} rows have a NULL, NaN or infinite value in {', '.join(columns)}"
+        )
+    progress("cells", f"{cp.usable + cp.skipped:,} rows ({cp.skipped:,} skipped) -> {cells_count(cp):,} cells, {cp.seconds:.2f} s")
+
+    # exact standardisation from the sum of the cell CFs, and the cells moved into it
+    center, sd = _exact_standardisation(F.total(cp.cells), prof.center, prof.scale, settings.scaling)
+    constant = ~(sd > 1e-12 * np.maximum(np.abs(center), 1.0))
+    if constant.any():
+        names = ", ".join(c for c, flag in zip(columns, constant) if flag)
+        warnings.warn(f"constant column(s) {names}: they carry no weight", UserWarning, stacklevel=2)
+        weights = np.where(constant, 0.0, weights)
+    scale = np.where(constant, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
+    cells = F.affine(cp.cells, prof.scale / scale, (prof.center - center) / scale)
+
+    # 3. second phase on the cells
+    t0 = time.perf_counter()
+    nonempty = int((cells.n > 0).sum())
+    if settings.k > nonempty:
+        raise InputError(
+            f"k={settings.k} is larger than the {nonempty:,} distinct grid cells of {source.label}"
+            + (" (only that many distinct rows)" if nonempty == cp.usable else "; try a smaller k or a finer --width")
+        )
+    result = kmeans(cells, settings.k, weights, n_init=settings.n_init, seed=settings.seed)
+    centroids = result.centroids
+    t_second = time.perf_counter() - t0
+    progress("second phase", f"k-means++ x{result.restarts} on {nonempty:,} cells, SSE {result.sse:.6g}, {t_second:.2f} s")
+
+    # 4. refine passes in SQL
+    seg_cf = F.group_sum(cells, result.labels, settings.k)
+    sse = result.sse
+    passes: list[dict] = []
+    timings = {"profile": prof.seconds, "cells": cp.seconds, "second_phase": t_second}
+    for p in range(1, settings.refine_passes + 1):
+        assign = Assignment(tuple(center), tuple(1.0 / scale), tuple(weights), tuple(map(tuple, centroids)))
+        rr = run_refine_pass(engine, source, columns, assign)
+        new_sse = F.sse(rr.segments, weights)
+        empty = rr.segments.n == 0
+        new_centroids = np.where(empty[:, None], centroids, F.centroids(rr.segments))
+        gain = (rr.sse_assigned - new_sse) / rr.sse_assigned if rr.sse_assigned > 0 else 0.0
+        passes.append({"pass": p, "sse_assigned": rr.sse_assigned, "sse": new_sse, "gain": gain, "seconds": rr.seconds})
+        timings[f"refine_{p}"] = rr.seconds
+        progress("refine", f"pass {p}: {cp.usable:,} rows, SSE {rr.sse_assigned:.6g} -> {new_sse:.6g}, {rr.seconds:.2f} s")
+        centroids, seg_cf, sse = new_centroids, rr.segments, new_sse
+        if empty.any():
+            warnings.warn(f"refine pass {p}: segment(s) {np.flatnonzero(empty).tolist()} got no rows", UserWarning, stacklevel=2)
+        if gain < settings.tolerance:
+            break
+    timings["total"] = time.perf_counter() - t_start
+
+    original = centroids * scale[None, :] + center[None, :]
+    return Model(
+        columns=columns,
+        center=center.tolist(),
+        scale=scale.tolist(),
+        weights=weights.tolist(),
+        scaling=settings.scaling,
+        centroids=original.tolist(),
+        centroids_scaled=centroids.tolist(),
+        sizes=[int(round(v)) for v in seg_cf.n],
+        sse=float(sse),
+        segment_sse=F.scatter(seg_cf, weights).tolist(),
+        radius=F.radius(seg_cf, weights).tolist(),
+        rows=cp.usable + cp.skipped,
+        skipped=cp.skipped,
+        source=source.label,
+        k=settings.k,
+        constant_columns=[c for c, flag in zip(columns, constant) if flag],
+        grid={
+            "width": grid.width,
+            "center": list(grid.center),
+            "inv_scale": list(grid.inv_scale),
+            "axes": [list(r) for r in grid.axes] if grid.axes else None,
+            "cells": nonempty,
+            "sd": sd.tolist(),
+        },
+        params={
+            "cell_budget": settings.cell_budget,
+            "refine_passes": settings.refine_passes,
+            "tolerance": settings.tolerance,
+            "restarts": settings.n_init,
+            "seed": settings.seed,
+            "sample_rows": settings.sample_rows,
+            "cell_sse": result.sse,
+        },
+        passes=passes,
+        timings=timings,
+        created=datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    )
+
+
+def cells_count(cp: CellPass) -> int:
+    return int((cp.cells.n > 0).sum())
+
+
+# ----------------------------------------------------------------------------- label
+
+
+def label(
+    engine: Engine,
+    source: Source,
+    model: Model,
+    into: str,
+    materialize: bool = False,
+    replace: bool = False,
+) -> str:
+    """Create the labels view (or table, or file for file sources); returns what was made.
+
+    The source is only ever read.  An existing table is replaced only with
+    ``replace``; an existing view of that name is replaced.
+    """
+    source_columns = check_columns(engine, source, model.columns)
+    select = sqlgen.label_select(source, model.columns, source_columns, model.assignment(), engine.dialect)
+    if source.files:
+        fmt = file_reader_for(into)
+        if fmt not in ("parquet", "csv"):
+            raise InputError(f"labels of files go to a .parquet or .csv file; {into!r} is neither")
+        engine.execute(sqlgen.copy_statement(select, into, fmt))
+        return f"file {into}"
+    target = tuple(into.split("."))
+    same_schema = len(target) == 1 or len(source.table) == 1 or target[-2] == source.table[-2]
+    if target[-1] == source.table[-1] and same_schema:
+        raise InputError(f"--into {into} is the source table; labels never overwrite the source")
+    kind = existing_relation_kind(engine, into)
+    if kind == "table" and not replace:
+        raise InputError(f"a table named {into} already exists; pass replace=True (--replace) to overwrite it")
+    if kind == "view" and materialize or kind == "table" and not materialize:
+        engine.run_in_transaction([sqlgen.drop_statement(into, kind), sqlgen.create_relation_statement(into, select, materialize)])
+    else:
+        engine.execute(sqlgen.create_relation_statement(into, select, materialize))
+    return f"{'table' if materialize else 'view'} {into}"
+
+
+def existing_relation_kind(engine: Engine, name: str) -> str | None:
+    """'table', 'view' or None for a (possibly schema-qualified) name."""
+    got = engine.query(sqlgen.list_tables_statement())
+    parts = name.split(".")
+    for schema, table, ttype in zip(got["table_schema"], got["table_name"], got["table_type"]):
+        if table == parts[-1] and (len(parts) == 1 or schema == parts[-2]):
+            return "view" if "VIEW" in str(ttype).upper() else "table"
+    return None
