@@ -45,17 +45,42 @@ def _parse_weights(text: str | None) -> dict[str, float]:
 
 @contextmanager
 def user_errors(quiet: bool = False) -> Iterator[None]:
-    """Turn our errors into clean messages and warnings into stderr lines."""
+    """Turn our errors, and the database's, into clean messages and warnings into stderr lines."""
+    import duckdb
+
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
             yield
         except TilliteError as err:
             raise click.ClickException(str(err)) from None
+        except duckdb.Error as err:
+            # e.g. a schema that does not exist, a locked file, a malformed CSV:
+            # the database's own first line says what is at fault
+            first = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+            raise click.ClickException(f"database error: {first}") from None
         finally:
             for w in caught:
                 if issubclass(w.category, UserWarning):
                     click.echo(f"warning: {w.message}", err=True)
+
+
+def _open(source: str, table: str | None, writable: bool = False):
+    """open_source, with a malformed --table reported as a usage error."""
+    try:
+        return open_source(source, table, writable=writable)
+    except ValueError as err:
+        raise click.BadParameter(str(err), param_hint="--table") from None
+
+
+def _check_dialect(ctx, param, value: str) -> str:
+    from sqlglot.dialects.dialect import Dialect
+
+    try:
+        Dialect.get_or_raise(value)
+    except ValueError as err:
+        raise click.BadParameter(str(err)) from None
+    return value
 
 
 def _progress(quiet: bool):
@@ -95,7 +120,7 @@ def _settings_options(f):
         click.option("--tolerance", type=float, default=1e-4, show_default=True, help="Stop refining when a pass improves SSE by less than this share."),
         click.option("--restarts", type=int, default=10, show_default=True, help="k-means++ restarts on the cells."),
         click.option("--seed", type=int, default=0, show_default=True),
-        click.option("--sample-rows", type=int, default=100_000, show_default=True, help="Rows the profile sample aims for."),
+        click.option("--sample-rows", type=int, default=50_000, show_default=True, help="Rows the profile sample aims for."),
     ]
     for o in reversed(opts):
         f = o(f)
@@ -124,7 +149,7 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
     """
     with user_errors():
         settings = _settings(**kw)
-        engine, src = open_source(source, table)
+        engine, src = _open(source, table)
         try:
             model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet))
         finally:
@@ -150,7 +175,7 @@ def label_command(source, table, model_path, into, materialize, replace, quiet) 
     """
     with user_errors():
         model = Model.read(model_path)
-        engine, src = open_source(source, table, writable=True)
+        engine, src = _open(source, table, writable=True)
         t0 = time.perf_counter()
         try:
             made = label(engine, src, model, into, materialize=materialize, replace=replace)
@@ -176,7 +201,8 @@ def show_command(model_path, as_json) -> None:
 @click.option("--columns", "-c", multiple=True, help="Columns (not needed with --model).")
 @click.option("--stage", type=click.Choice(STAGES), required=True, help="Which statement to print.")
 @click.option("--model", "-m", "model_path", help="Model file (needed for refine and label; cells then use its grid).")
-@click.option("--dialect", default="duckdb", show_default=True, help="SQL dialect to render (any sqlglot dialect name).")
+@click.option("--dialect", default="duckdb", show_default=True, callback=_check_dialect,
+              help="SQL dialect to render (any sqlglot dialect name).")
 @click.option("--cell-budget", type=int, default=20_000, show_default=True)
 def sql_command(source, table, columns, stage, model_path, dialect, cell_budget) -> None:
     """Print the SQL a stage would run, without running it."""
@@ -185,7 +211,7 @@ def sql_command(source, table, columns, stage, model_path, dialect, cell_budget)
         cols = list(model.columns) if model else _split_columns(columns)
         if not cols:
             raise click.UsageError("give --columns or --model")
-        engine, src = open_source(source, table)
+        engine, src = _open(source, table)
         try:
             statements = _stage_statements(engine, src, cols, stage, model, dialect, cell_budget)
         finally:

@@ -58,6 +58,20 @@ from typing import Sequence
 import duckdb
 from sqlglot import exp
 
+from .sqlgen import (
+    all_of,
+    case_when,
+    col,
+    greatest_of,
+    least_of,
+    num,
+    paren,
+    subquery,
+    table_name,
+    to_double,
+    total_sum,
+)
+
 __all__ = [
     "DEMO_COLUMNS",
     "DISTRICTS",
@@ -177,29 +191,15 @@ class DemoSummary:
 
 
 # --------------------------------------------------------------------------- sqlglot helpers
-
-
-def _num(value: int | float) -> exp.Expression:
-    """A numeric literal; floats are cast to DOUBLE.
-
-    DuckDB reads ``0.2235294117647059`` as a DECIMAL, and a CASE over several such
-    literals widens to a 128-bit DECIMAL that is slow to compute with, so float
-    literals are typed explicitly (the cast is folded once per statement).
-    """
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise ValueError(f"not a finite number: {value!r}")
-    lit = exp.Literal.number(repr(value) if isinstance(value, float) else value)
-    if isinstance(lit, exp.Neg):
-        lit = exp.paren(lit, copy=False)
-    return exp.cast(lit, "DOUBLE") if isinstance(value, float) else lit
+#
+# Literals, columns, parens, subqueries, CASE, LEAST/GREATEST and casts come from
+# tillite.sqlgen.  ``num`` writes floats in exponent form (``2.235294117647059e-01``),
+# which DuckDB reads as a DOUBLE: a CASE over plain ``0.2235...`` literals would be
+# read as DECIMALs and widen to a slow 128-bit DECIMAL.
 
 
 def _ident(name: str) -> exp.Identifier:
     return exp.to_identifier(name, quoted=True)
-
-
-def _col(name: str, table: str | None = None) -> exp.Column:
-    return exp.Column(this=_ident(name), table=_ident(table) if table else None)
 
 
 def _fn(name: str, *args: exp.Expression) -> exp.Expression:
@@ -211,39 +211,39 @@ def _as(expression: exp.Expression, name: str) -> exp.Alias:
 
 
 def _clip(x: exp.Expression, lo: exp.Expression, hi: exp.Expression) -> exp.Expression:
-    return _fn("greatest", lo, _fn("least", hi, x))
+    return greatest_of([lo, least_of([hi, x])])
 
 
 def _by_kind(values: Sequence[exp.Expression]) -> exp.Expression:
     """``CASE k WHEN 0 THEN v0 ... ELSE v_last END`` over the kind code column."""
-    case = exp.case(_col("k"))
+    case = exp.case(col("k"))
     for code, value in enumerate(values[:-1]):
-        case = case.when(_num(code), value)
+        case = case.when(num(code), value)
     return case.else_(values[-1])
 
 
 def _uniform(key: str, salt: int, seed: int) -> exp.Expression:
     """Uniform in the open interval (0, 1) from ``hash(key, salt, seed)`` of the BIGINT column ``key``."""
-    h = _fn("hash", _col(key), exp.cast(_num(salt), "BIGINT"), exp.cast(_num(seed), "BIGINT"))
-    top53 = exp.paren(exp.BitwiseRightShift(this=h, expression=_num(11)), copy=False)
-    return (exp.cast(top53, "DOUBLE") + _num(0.5)) / _num(_TWO_POW_53)
+    h = _fn("hash", col(key), exp.cast(num(salt), "BIGINT"), exp.cast(num(seed), "BIGINT"))
+    top53 = paren(exp.BitwiseRightShift(this=h, expression=num(11)))
+    return (to_double(top53) + num(0.5)) / num(_TWO_POW_53)
 
 
 def _bm_radius(key: str, salt: int, seed: int) -> exp.Expression:
     """Box–Muller radius sqrt(-2 ln u)."""
-    return _fn("sqrt", _num(-2.0) * _fn("ln", _uniform(key, salt, seed)))
+    return _fn("sqrt", num(-2.0) * _fn("ln", _uniform(key, salt, seed)))
 
 
 def _bm_angle(key: str, salt: int, seed: int) -> exp.Expression:
     """Box–Muller angle 2 pi u."""
-    return _num(2.0 * math.pi) * _uniform(key, salt, seed)
+    return num(2.0 * math.pi) * _uniform(key, salt, seed)
 
 
 def _bm_pair(radius: str, angle: str) -> tuple[exp.Expression, exp.Expression]:
     """Two independent standard normals from a Box–Muller radius and angle column."""
     return (
-        _col(radius) * _fn("cos", _col(angle)),
-        _col(radius) * _fn("sin", _col(angle)),
+        col(radius) * _fn("cos", col(angle)),
+        col(radius) * _fn("sin", col(angle)),
     )
 
 
@@ -253,13 +253,9 @@ def _select(projections: Sequence[exp.Expression], source: exp.Expression) -> ex
 
 def _range(n: int, alias: str, column: str) -> exp.Table:
     return exp.Table(
-        this=_fn("range", _num(n)),
+        this=_fn("range", num(n)),
         alias=exp.TableAlias(this=_ident(alias), columns=[_ident(column)]),
     )
-
-
-def _subquery(select: exp.Select, alias: str) -> exp.Subquery:
-    return exp.Subquery(this=select, alias=exp.TableAlias(this=_ident(alias)))
 
 
 # --------------------------------------------------------------------------- statements
@@ -297,12 +293,12 @@ def _meter_select(meters: int, seed: int) -> exp.Select:
     cum = 0.0
     for code, kind in enumerate(KINDS[:-1]):
         cum += kind.share
-        kind_case = kind_case.when(_col("uk") < _num(round(cum, 12)), _num(code))
-    kind_case = kind_case.else_(_num(len(KINDS) - 1))
+        kind_case = kind_case.when(col("uk") < num(round(cum, 12)), num(code))
+    kind_case = kind_case.else_(num(len(KINDS) - 1))
 
     draws = _select(
         [
-            _as(_col(mid), "mid"),
+            _as(col(mid), "mid"),
             _as(_uniform(mid, _S_KIND, seed), "uk"),
             _as(_uniform(mid, _S_DISTRICT, seed), "ud"),
             _as(_bm_radius(mid, _S_M1A, seed), "r1"),
@@ -321,19 +317,19 @@ def _meter_select(meters: int, seed: int) -> exp.Select:
         cum = 0.0
         for name, weight in zip(DISTRICTS[:-1], kind.districts[:-1]):
             cum += weight / total
-            case = case.when(_col("ud") < _num(round(cum, 12)), exp.Literal.string(name))
+            case = case.when(col("ud") < num(round(cum, 12)), exp.Literal.string(name))
         district_cases.append(case.else_(exp.Literal.string(DISTRICTS[-1])))
 
     z_litres, z_night = _bm_pair("r1", "t1")
 
     def per_kind(attr: str) -> exp.Expression:
-        return _by_kind([_num(getattr(kind, attr)) for kind in KINDS])
+        return _by_kind([num(getattr(kind, attr)) for kind in KINDS])
 
-    coded = _select([exp.Star(), _as(kind_case, "k")], _subquery(draws, "md"))
+    coded = _select([exp.Star(), _as(kind_case, "k")], subquery(draws, "md"))
     levels = _select(
         [
-            _col("mid"),
-            _col("k"),
+            col("mid"),
+            col("k"),
             _as(_by_kind([exp.Literal.string(kind.name) for kind in KINDS]), "kind"),
             _as(_by_kind(district_cases), "district"),
             _as(
@@ -341,20 +337,20 @@ def _meter_select(meters: int, seed: int) -> exp.Select:
                 "lvl_litres",
             ),
             _as(per_kind("night") + per_kind("night_meter_sd") * z_night, "lvl_night"),
-            _as(_by_kind([_num(kind.peak_ratio) for kind in KINDS]), "peak_ratio"),
+            _as(_by_kind([num(kind.peak_ratio) for kind in KINDS]), "peak_ratio"),
             _as(per_kind("run") + per_kind("habit_sd") * _bm_pair("r2", "t2")[0], "base_run"),
-            _as(per_kind("zero") - _num(2.0) * per_kind("habit_sd") * _bm_pair("r2", "t2")[0], "base_zero"),
+            _as(per_kind("zero") - num(2.0) * per_kind("habit_sd") * _bm_pair("r2", "t2")[0], "base_zero"),
             _as(per_kind("litres_day_sd"), "sd_litres"),
             _as(per_kind("night_day_sd"), "sd_night"),
             _as(per_kind("peak_sd"), "sd_peak"),
             _as(per_kind("run_sd"), "sd_run"),
             _as(per_kind("zero_sd"), "sd_zero"),
-            _as(_by_kind([_num(math.log(kind.weekend)) for kind in KINDS]), "log_weekend"),
+            _as(_by_kind([num(math.log(kind.weekend)) for kind in KINDS]), "log_weekend"),
             _as(per_kind("dry_day"), "dry_sens"),
             _as(_by_kind([exp.true() if kind.always_on else exp.false() for kind in KINDS]), "always_on"),
             _as(per_kind("always_on_share"), "on_share"),
         ],
-        _subquery(coded, "mk"),
+        subquery(coded, "mk"),
     )
     return levels
 
@@ -363,10 +359,10 @@ def _day_select(days: int, seed: int) -> exp.Select:
     """One row per day: di, weekend flag (0/1) and the town-wide dry-day normal."""
     di = "di"
     # 2026-01-01 is a Thursday; with Monday = 0, weekday = (di + 3) % 7; 5, 6 = weekend
-    weekday = exp.paren(_col(di) + _num(START_DAY.weekday()), copy=False) % _num(7)
-    weekend = exp.case().when(weekday >= _num(5), _num(1.0)).else_(_num(0.0))
+    weekday = paren(col(di) + num(START_DAY.weekday())) % num(7)
+    weekend = case_when(weekday >= num(5), num(1.0)).else_(num(0.0), copy=False)
     z_dry = _bm_radius(di, _S_D1A, seed) * _fn("cos", _bm_angle(di, _S_D1B, seed))
-    return _select([_as(_col(di), "di"), _as(weekend, "weekend"), _as(z_dry, "z_dry")], _range(days, "d", "di"))
+    return _select([_as(col(di), "di"), _as(weekend, "weekend"), _as(z_dry, "z_dry")], _range(days, "d", "di"))
 
 
 def demo_select(rows: int = 1_000_000, days: int = 60, seed: int = 7) -> exp.Select:
@@ -379,7 +375,7 @@ def demo_select(rows: int = 1_000_000, days: int = 60, seed: int = 7) -> exp.Sel
     day_count = min(days, rows)
 
     def rn() -> exp.Expression:
-        return _col("mid", "ml") * _num(days) + _col("di", "dd")
+        return col("mid", "ml") * num(days) + col("di", "dd")
 
     crossed = (
         exp.select(
@@ -387,9 +383,9 @@ def demo_select(rows: int = 1_000_000, days: int = 60, seed: int = 7) -> exp.Sel
             exp.Star(),  # ml.*, dd.*  (column names are disjoint)
             copy=False,
         )
-        .from_(_subquery(_meter_select(meters, seed), "ml"), copy=False)
-        .join(_subquery(_day_select(day_count, seed), "dd"), join_type="CROSS", copy=False)
-        .where(rn() < _num(rows), copy=False)
+        .from_(subquery(_meter_select(meters, seed), "ml"), copy=False)
+        .join(subquery(_day_select(day_count, seed), "dd"), join_type="CROSS", copy=False)
+        .where(rn() < num(rows), copy=False)
     )
 
     key = "rn"
@@ -404,79 +400,73 @@ def demo_select(rows: int = 1_000_000, days: int = 60, seed: int = 7) -> exp.Sel
             _as(_bm_angle(key, _S_R3B, seed), "a3"),
             _as(_uniform(key, _S_FAIL, seed), "uf"),
         ],
-        _subquery(crossed, "x"),
+        subquery(crossed, "x"),
     )
 
     z_l, z_n = _bm_pair("q1", "a1")
     z_p = _bm_pair("q2", "a2")[0]
     z_z, _unused = _bm_pair("q3", "a3")
-    litres = _col("lvl_litres") * _fn(
+    litres = col("lvl_litres") * _fn(
         "exp",
-        _col("sd_litres") * z_l + _col("log_weekend") * _col("weekend") + _col("dry_sens") * _col("z_dry"),
+        total_sum([col("sd_litres") * z_l, col("log_weekend") * col("weekend"), col("dry_sens") * col("z_dry")]),
     )
-    always_on_run = (
-        exp.case()
-        .when(_uniform(key, _S_ALWAYS_ON, seed) < _col("on_share"), _num(24))
-        .else_(_clip(_fn("round", _col("base_run") + _col("sd_run") * _bm_pair("q2", "a2")[1]), _num(0), _num(23)))
+    always_on_run = case_when(_uniform(key, _S_ALWAYS_ON, seed) < col("on_share"), num(24)).else_(
+        _clip(_fn("round", col("base_run") + col("sd_run") * _bm_pair("q2", "a2")[1]), num(0), num(23)), copy=False
     )
-    run = (
-        exp.case()
-        .when(_col("always_on"), always_on_run)
-        .else_(_clip(_fn("round", _col("base_run") + _col("sd_run") * _bm_pair("q2", "a2")[1]), _num(0), _num(24)))
+    run = case_when(col("always_on"), always_on_run).else_(
+        _clip(_fn("round", col("base_run") + col("sd_run") * _bm_pair("q2", "a2")[1]), num(0), num(24)), copy=False
     )
     values = _select(
         [
-            _col("mid"),
-            _col("district"),
-            _col("di"),
-            _col("uf"),
-            _as(_fn("round", litres, _num(1)), "v_litres"),
-            _as(_clip(_col("lvl_night") + _col("sd_night") * z_n, _num(0.0), _num(1.0)), "v_night"),
-            _as(_col("peak_ratio") * _fn("exp", _col("sd_peak") * z_p), "v_peak_ratio"),
+            col("mid"),
+            col("district"),
+            col("di"),
+            col("uf"),
+            _as(_fn("round", litres, num(1)), "v_litres"),
+            _as(_clip(col("lvl_night") + col("sd_night") * z_n, num(0.0), num(1.0)), "v_night"),
+            _as(col("peak_ratio") * _fn("exp", col("sd_peak") * z_p), "v_peak_ratio"),
             _as(run, "v_run"),
-            _as(_col("base_zero") + _col("sd_zero") * z_z, "v_zero_raw"),
+            _as(col("base_zero") + col("sd_zero") * z_z, "v_zero_raw"),
         ],
-        _subquery(draws, "w"),
+        subquery(draws, "w"),
     )
 
     def v_litres() -> exp.Column:
-        return _col("v_litres")
+        return col("v_litres")
 
     def uf() -> exp.Column:
-        return _col("uf")
+        return col("uf")
 
     final = _select(
         [
-            _as(exp.cast(_col("mid"), "INTEGER"), "meter_id"),
-            _as(_col("district"), "district"),
-            _as(exp.cast(exp.Literal.string(START_DAY.isoformat()), "DATE") + exp.cast(_col("di"), "INTEGER"), "day"),
+            _as(exp.cast(col("mid"), "INTEGER"), "meter_id"),
+            _as(col("district"), "district"),
+            _as(exp.cast(exp.Literal.string(START_DAY.isoformat()), "DATE") + exp.cast(col("di"), "INTEGER"), "day"),
             _as(
-                exp.case().when(uf() < _num(_FAIL_NULL_LITRES), exp.null()).else_(v_litres()),
+                case_when(uf() < num(_FAIL_NULL_LITRES), exp.null()).else_(v_litres(), copy=False),
                 "litres",
             ),
             _as(
-                exp.case()
-                .when(
-                    exp.and_(uf() >= _num(_FAIL_NULL_LITRES), uf() < _num(_FAIL_NULL_LITRES + _FAIL_NAN_NIGHT)),
-                    exp.cast(exp.Literal.string("NaN"), "DOUBLE"),
-                )
-                .else_(_fn("round", _col("v_night"), _num(4))),
+                case_when(
+                    all_of([uf() >= num(_FAIL_NULL_LITRES), uf() < num(_FAIL_NULL_LITRES + _FAIL_NAN_NIGHT)]),
+                    to_double(exp.Literal.string("NaN")),
+                ).else_(_fn("round", col("v_night"), num(4)), copy=False),
                 "night_share",
             ),
             _as(
-                _fn("round", _fn("least", v_litres(), v_litres() * _col("v_peak_ratio")), _num(1)),
+                _fn("round", least_of([v_litres(), v_litres() * col("v_peak_ratio")]), num(1)),
                 "peak_litres",
             ),
-            _as(exp.cast(_col("v_run"), "INTEGER"), "flow_run_hours"),
+            _as(exp.cast(col("v_run"), "INTEGER"), "flow_run_hours"),
             _as(
                 exp.cast(
-                    _clip(_fn("round", _col("v_zero_raw")), _num(0), _num(24) - _col("v_run")),
+                    _clip(_fn("round", col("v_zero_raw")), num(0), num(24) - col("v_run")),
                     "INTEGER",
                 ),
                 "zero_hours",
             ),
         ],
-        _subquery(values, "v"),
+        subquery(values, "v"),
     )
     return final
 
@@ -485,12 +475,12 @@ def _meters_table_select(meters: int, seed: int) -> exp.Select:
     """The SELECT of the ``meters`` table: meter_id, district, kind (the invented ground truth)."""
     return _select(
         [
-            _as(exp.cast(_col("mid"), "INTEGER"), "meter_id"),
-            _as(_col("district"), "district"),
-            _as(_col("kind"), "kind"),
+            _as(exp.cast(col("mid"), "INTEGER"), "meter_id"),
+            _as(col("district"), "district"),
+            _as(col("kind"), "kind"),
         ],
-        _subquery(_meter_select(meters, seed), "ml"),
-    ).order_by(_col("meter_id"), copy=False)
+        subquery(_meter_select(meters, seed), "ml"),
+    ).order_by(col("meter_id"), copy=False)
 
 
 def _connect(database: str) -> duckdb.DuckDBPyConnection:
@@ -502,11 +492,13 @@ def _connect(database: str) -> duckdb.DuckDBPyConnection:
 def _table_exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
     query = _select(
         [_fn("count", exp.Star())],
-        exp.Table(this=_ident("tables"), db=_ident("information_schema")),
+        table_name("information_schema.tables"),
     ).where(
-        exp.and_(
-            _fn("lower", _col("table_name")).eq(_fn("lower", exp.Literal.string(name))),
-            _col("table_schema").eq(_fn("current_schema")),
+        all_of(
+            [
+                _fn("lower", col("table_name")).eq(_fn("lower", exp.Literal.string(name))),
+                col("table_schema").eq(_fn("current_schema")),
+            ]
         ),
         copy=False,
     )
@@ -574,9 +566,9 @@ def build_demo_database(
             con.execute("ROLLBACK")
             raise
         counts_query = _select(
-            [_col("kind"), _fn("count", exp.Star())],
+            [col("kind"), _fn("count", exp.Star())],
             exp.Table(this=_ident(METERS_TABLE)),
-        ).group_by(_col("kind"), copy=False)
+        ).group_by(col("kind"), copy=False)
         found = dict(con.execute(counts_query.sql(dialect="duckdb")).fetchall())
     finally:
         con.close()
@@ -618,7 +610,7 @@ def write_demo_parquet(
             exp.CopyParameter(this=exp.var("FORMAT"), expression=exp.var("parquet")),
             exp.CopyParameter(
                 this=exp.var("PARTITION_BY"),
-                expression=exp.paren(_col("day"), copy=False),
+                expression=paren(col("day")),
             ),
             exp.CopyParameter(this=exp.var("FILENAME_PATTERN"), expression=exp.Literal.string("part-{i}")),
         ],

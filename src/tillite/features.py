@@ -143,11 +143,10 @@ def group_sum(cf: CF, labels: np.ndarray, k: int | None = None) -> CF:
     if k is None:
         k = int(labels.max()) + 1 if labels.size else 0
     n = np.bincount(labels, weights=cf.n[keep], minlength=k)
-    ls = np.zeros((k, cf.d))
-    ss = np.zeros((k, cf.d))
-    np.add.at(ls, labels, cf.ls[keep])
-    np.add.at(ss, labels, cf.ss[keep])
-    return CF(n, ls, ss)
+    ls, ss = cf.ls[keep], cf.ss[keep]
+    ls = np.column_stack([np.bincount(labels, weights=ls[:, j], minlength=k) for j in range(cf.d)]) if cf.d else np.zeros((k, 0))
+    ss = np.column_stack([np.bincount(labels, weights=ss[:, j], minlength=k) for j in range(cf.d)]) if cf.d else np.zeros((k, 0))
+    return CF(n, ls.reshape(k, cf.d), ss.reshape(k, cf.d))
 
 
 def affine(cf: CF, scale: np.ndarray, offset: np.ndarray) -> CF:

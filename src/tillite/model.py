@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 import os
 import tempfile
-from dataclasses import asdict, dataclass, field
+from dataclasses import MISSING, asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -82,28 +82,43 @@ class Model:
         """Write atomically: a failed write leaves any existing file as it was."""
         path = Path(path)
         text = self.to_json()
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent if str(path.parent) else ".")
+        try:
+            fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent if str(path.parent) else ".")
+        except OSError as err:
+            raise ModelError(f"cannot write model file {path}: {err.strerror}") from None
         try:
             with os.fdopen(fd, "w") as fh:
                 fh.write(text)
                 fh.write("\n")
             os.replace(tmp, path)
-        except BaseException:
+        except BaseException as err:
             if os.path.exists(tmp):
                 os.unlink(tmp)
+            if isinstance(err, OSError):
+                raise ModelError(f"cannot write model file {path}: {err.strerror}") from None
             raise
 
     @staticmethod
     def from_dict(data: dict[str, Any], where: str = "model") -> "Model":
+        if not isinstance(data, dict):
+            raise ModelError(f"{where} is not a tillite model (a JSON {type(data).__name__}, not an object)")
         if data.get("format") != FORMAT_NAME:
             raise ModelError(f"{where} is not a tillite model (format {data.get('format')!r})")
-        if int(data.get("version", 0)) > FORMAT_VERSION:
-            raise ModelError(f"{where} has model version {data['version']}; this tillite reads up to {FORMAT_VERSION}")
+        version = data.get("version", 0)
+        if not isinstance(version, int) or isinstance(version, bool):
+            raise ModelError(f"{where} has an unreadable model version {version!r}")
+        if version > FORMAT_VERSION:
+            raise ModelError(f"{where} has model version {version}; this tillite reads up to {FORMAT_VERSION}")
         body = {k: v for k, v in data.items() if k not in ("format", "version")}
         known = set(Model.__dataclass_fields__)
-        missing = [k for k in ("columns", "center", "scale", "centroids_scaled") if k not in body]
+        required = [
+            name for name, f in Model.__dataclass_fields__.items()
+            if f.default is MISSING and f.default_factory is MISSING
+        ]
+        missing = [k for k in required if k not in body]
         if missing:
             raise ModelError(f"{where} lacks {', '.join(missing)}")
+        _check_shapes(body, where)
         return Model(**{k: v for k, v in body.items() if k in known})
 
     @staticmethod
@@ -112,6 +127,8 @@ class Model:
             text = Path(path).read_text()
         except OSError as err:
             raise ModelError(f"cannot read model file {path}: {err.strerror}") from None
+        except UnicodeDecodeError:
+            raise ModelError(f"model file {path} is not text (is it a database or data file?)") from None
         try:
             data = json.loads(text)
         except json.JSONDecodeError as err:
@@ -157,18 +174,37 @@ class Model:
         head = ["segment", "size", "share", "radius", "SSE"] + list(self.columns)
         rows = []
         total = max(self.usable, 1)
+        # centroids come back as centre + c * scale: round-off of that size is shown as 0
+        tiny = [1e-9 * (abs(m) + abs(s)) for m, s in zip(self.center, self.scale)]
         for i, size in enumerate(self.sizes):
             rows.append(
                 [str(i), f"{size:,}", f"{100.0 * size / total:.1f}%", f"{self.radius[i]:.3g}", f"{self.segment_sse[i]:.4g}"]
-                + [_fmt(v) for v in self.centroids[i]]
+                + [_fmt(0.0 if abs(v) <= t else v) for v, t in zip(self.centroids[i], tiny)]
             )
-        widths = [max(len(h), *(len(r[c]) for r in rows)) for c, h in enumerate(head)]
+        widths = [max([len(h)] + [len(r[c]) for r in rows]) for c, h in enumerate(head)]
         lines.append("")
         lines.append("  ".join(h.rjust(w) for h, w in zip(head, widths)))
         lines.extend("  ".join(v.rjust(w) for v, w in zip(r, widths)) for r in rows)
         lines.append("")
         lines.append("centroids in original units; radius and SSE in scaled units")
         return "\n".join(lines)
+
+
+def _check_shapes(body: dict[str, Any], where: str) -> None:
+    """A model whose lists disagree in length would fail later with an obscure error."""
+    lists = ("columns", "center", "scale", "weights", "centroids", "centroids_scaled", "sizes", "segment_sse", "radius")
+    bad = [k for k in lists if not isinstance(body[k], list)]
+    if bad:
+        raise ModelError(f"{where} is damaged: {', '.join(bad)} should be lists")
+    d, k = len(body["columns"]), len(body["sizes"])
+    problems = [f"{name} has {len(body[name])} values for {d} columns" for name in ("center", "scale", "weights") if len(body[name]) != d]
+    problems += [f"{name} has {len(body[name])} entries for {k} segments" for name in ("centroids", "centroids_scaled", "segment_sse", "radius") if len(body[name]) != k]
+    problems += [
+        f"{name} row {i} has {len(row) if isinstance(row, list) else '?'} values for {d} columns"
+        for name in ("centroids", "centroids_scaled") for i, row in enumerate(body[name]) if not isinstance(row, list) or len(row) != d
+    ]
+    if problems:
+        raise ModelError(f"{where} is damaged: {problems[0]}")
 
 
 def _fmt(v: float) -> str:

@@ -7,7 +7,11 @@ Only samples of bounded size and CFs ever come back to Python.
 
 from __future__ import annotations
 
+import fnmatch
+import glob
 import math
+import os
+import tempfile
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -58,9 +62,9 @@ class Settings:
     tolerance: float = 1e-4
     n_init: int = 10
     seed: int = 0
-    sample_rows: int = 100_000
+    sample_rows: int = 50_000
     principal_above: int = 6  # bin principal-axis scores when there are more columns
-    principal_axes: int = 6
+    principal_axes: int = 4  # how many: a 20,000-cell budget gives ~12 bins per axis
     width: float | None = None  # force the grid width (scaled units)
 
     def check(self, columns: Sequence[str]) -> None:
@@ -150,18 +154,6 @@ def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings
     return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0)
 
 
-def chao1(counts: np.ndarray) -> float:
-    """Estimated number of classes in the population from sample class counts.
-
-    Chao's (1984) lower-bound estimator D + f1^2 / (2 f2), bias-corrected form
-    D + f1 (f1 - 1) / 2 when no class was seen exactly twice.
-    """
-    f1 = float((counts == 1).sum())
-    f2 = float((counts == 2).sum())
-    d = float(len(counts))
-    return d + (f1 * f1 / (2.0 * f2) if f2 > 0 else f1 * (f1 - 1.0) / 2.0)
-
-
 def grid_axes(sample_u: np.ndarray, weights: np.ndarray, settings: Settings, usable_cols: np.ndarray) -> np.ndarray:
     """Columns of the matrix mapping standardised values to binned coordinates.
 
@@ -172,7 +164,7 @@ def grid_axes(sample_u: np.ndarray, weights: np.ndarray, settings: Settings, usa
     active = np.flatnonzero((weights > 0) & usable_cols)
     if len(active) == 0:
         active = np.arange(d)
-    if len(active) <= settings.principal_above or len(sample_u) < 2:
+    if len(active) <= settings.principal_above or len(sample_u) < 2 or settings.principal_axes >= len(active):
         axes = np.zeros((d, len(active)))
         axes[active, np.arange(len(active))] = weights[active]
         return axes
@@ -180,6 +172,7 @@ def grid_axes(sample_u: np.ndarray, weights: np.ndarray, settings: Settings, usa
     cov = np.cov(xw, rowvar=False, bias=True)
     vals, vecs = np.linalg.eigh(cov)
     order = np.argsort(vals)[::-1][: settings.principal_axes]
+    order = order[vals[order] > 1e-12 * max(vals.max(), 1e-300)]
     return vecs[:, order] * weights[:, None]
 
 
@@ -199,30 +192,44 @@ def grid_for_profile(prof: Profile, settings: Settings, weights: np.ndarray | No
     )
 
 
+#: Sample rows used to choose the grid width (more buys little accuracy).
+WIDTH_SEARCH_ROWS = 40_000
+
+
 def choose_width(coords: np.ndarray, rows: int, budget: int) -> float:
     """Smallest grid width whose estimated number of occupied cells fits the budget.
 
-    The number of occupied cells in the whole table is estimated from the
-    sample with Chao1 (capped at the row count); searched on a log scale.
+    Occupied cells keep growing with the row count (the tails fill in), so the
+    count seen in the sample is extrapolated to the table on the log-log slope
+    between a quarter of the sample and the whole sample, capped at the row
+    count.  The width is searched on a log scale (scaled units).
     """
     if len(coords) == 0:
         return 1.0
-    scale_full = len(coords) < rows
-
+    if len(coords) > WIDTH_SEARCH_ROWS:
+        coords = coords[np.random.default_rng(3).permutation(len(coords))[:WIDTH_SEARCH_ROWS]]
+    m = len(coords)
+    growth = math.log(rows / m) if rows > m else 0.0
+    quarter = np.random.default_rng(7).permutation(m)[: max(m // 4, 1)]
     mix = np.random.default_rng(12345).integers(1, 2**62, size=coords.shape[1]) | 1
 
-    def estimate(width: float) -> float:
-        keys = np.floor(coords / width).astype(np.int64)
+    def distinct(rows_coords: np.ndarray, width: float) -> int:
+        keys = np.floor(rows_coords / width).astype(np.int64)
         with np.errstate(over="ignore"):
             hashed = (keys * mix[None, :]).sum(axis=1)  # wraps around; collisions are negligible
-        _, counts = np.unique(hashed, return_counts=True)
-        est = chao1(counts) if scale_full else float(len(counts))
-        return min(est, float(rows))
+        return len(np.unique(hashed))
+
+    def estimate(width: float) -> float:
+        seen = distinct(coords, width)
+        if growth == 0.0:
+            return float(seen)
+        slope = math.log(seen / max(distinct(coords[quarter], width), 1)) / math.log(m / len(quarter))
+        return min(seen * math.exp(min(max(slope, 0.0), 1.0) * growth), float(rows))
 
     lo, hi = math.log(1e-3), math.log(50.0)
     if estimate(math.exp(lo)) <= budget:
         return math.exp(lo)
-    for _ in range(30):
+    for _ in range(12):
         mid = 0.5 * (lo + hi)
         if estimate(math.exp(mid)) <= budget:
             hi = mid
@@ -271,7 +278,7 @@ def run_cell_pass(engine: Engine, source: Source, columns: Sequence[str], grid: 
     n = np.asarray(got["n"], dtype=np.int64)
     skipped = int(n[null].sum())
     keep = ~null
-    cells = cf_from_result(got, len(columns), keep)
+    cells = F.affine(cf_from_result(got, len(columns), keep), np.asarray(grid.inv_scale), np.zeros(len(columns)))
     keys = np.asarray(np.ma.getdata(got["key"]), dtype=np.int64)[keep]
     return CellPass(cells=cells, keys=keys, usable=int(n[keep].sum()), skipped=skipped, seconds=time.perf_counter() - t0)
 
@@ -280,27 +287,51 @@ def run_cell_pass(engine: Engine, source: Source, columns: Sequence[str], grid: 
 
 
 @dataclass
+class SegmentStats:
+    """Per-segment count, centroid and SSE (weighted, scaled units)."""
+
+    n: np.ndarray
+    centroids: np.ndarray
+    sse: np.ndarray
+
+    @staticmethod
+    def of_cfs(cf: CF, weights: np.ndarray) -> "SegmentStats":
+        return SegmentStats(cf.n.copy(), F.centroids(cf), F.scatter(cf, weights))
+
+
+@dataclass
 class RefineResult:
-    segments: CF  # per segment, on the model's standardised values
-    sse_assigned: float  # row-level SSE of rows at the centroids they were assigned to
+    assigned: SegmentStats  # rows at the centroids they were assigned to
+    updated: SegmentStats  # the same rows at their new means
     skipped: int
     seconds: float
 
 
 def run_refine_pass(engine: Engine, source: Source, columns: Sequence[str], assign: Assignment) -> RefineResult:
+    """One SQL pass: assign rows to the nearest centroid, then the exact new means and SSEs.
+
+    Moving a segment's centroid from c to its mean m lowers its SSE by exactly
+    n ||m - c||^2 (weighted), so both SSEs come from n, LS and the summed distances.
+    """
     t0 = time.perf_counter()
     got = engine.query(sqlgen.refine_statement(source, columns, assign, engine.dialect))
     null = _null_mask(got["segment"])
-    n = np.asarray(got["n"], dtype=np.int64)
+    n_all = np.asarray(got["n"], dtype=np.int64)
     k, d = len(assign.centroids), len(columns)
     seg = np.asarray(np.ma.getdata(got["segment"]))[~null].astype(np.int64)
-    part = cf_from_result(got, d, ~null)
-    segments = F.group_sum(part, seg, k)
-    dist = np.asarray(np.ma.getdata(got["dist"]), dtype=np.float64)[~null]
+    n = np.bincount(seg, weights=n_all[~null].astype(np.float64), minlength=k)
+    ls_v = np.column_stack([np.asarray(got[f"ls{j}"], dtype=np.float64)[~null] for j in range(d)])
+    ls_u = np.column_stack([np.bincount(seg, weights=ls_v[:, j], minlength=k) for j in range(d)]) * np.asarray(assign.inv_scale)[None, :]
+    dist = np.bincount(seg, weights=np.asarray(np.ma.getdata(got["dist"]), dtype=np.float64)[~null], minlength=k)
+    old = np.asarray(assign.centroids, dtype=np.float64)
+    means = np.where(n[:, None] > 0, ls_u / np.where(n > 0, n, 1.0)[:, None], old)
+    w = np.asarray(assign.weights, dtype=np.float64)
+    shift = (((means - old) * w[None, :]) ** 2).sum(axis=1)
+    dist = np.maximum(dist, 0.0)
     return RefineResult(
-        segments=segments,
-        sse_assigned=float(dist.sum()),
-        skipped=int(n[null].sum()),
+        assigned=SegmentStats(n, old, dist),
+        updated=SegmentStats(n, means, np.maximum(dist - n * shift, 0.0)),
+        skipped=int(n_all[null].sum()),
         seconds=time.perf_counter() - t0,
     )
 
@@ -372,26 +403,25 @@ def segment(
     progress("second phase", f"k-means++ x{result.restarts} on {nonempty:,} cells, SSE {result.sse:.6g}, {t_second:.2f} s")
 
     # 4. refine passes in SQL
-    seg_cf = F.group_sum(cells, result.labels, settings.k)
-    sse = result.sse
+    stats = SegmentStats.of_cfs(F.group_sum(cells, result.labels, settings.k), weights)
     passes: list[dict] = []
     timings = {"profile": prof.seconds, "cells": cp.seconds, "second_phase": t_second}
     for p in range(1, settings.refine_passes + 1):
         assign = Assignment(tuple(center), tuple(1.0 / scale), tuple(weights), tuple(map(tuple, centroids)))
         rr = run_refine_pass(engine, source, columns, assign)
-        new_sse = F.sse(rr.segments, weights)
-        empty = rr.segments.n == 0
-        new_centroids = np.where(empty[:, None], centroids, F.centroids(rr.segments))
-        gain = (rr.sse_assigned - new_sse) / rr.sse_assigned if rr.sse_assigned > 0 else 0.0
-        passes.append({"pass": p, "sse_assigned": rr.sse_assigned, "sse": new_sse, "gain": gain, "seconds": rr.seconds})
+        before, after = float(rr.assigned.sse.sum()), float(rr.updated.sse.sum())
+        gain = (before - after) / before if before > 0 else 0.0
+        passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain, "seconds": rr.seconds})
         timings[f"refine_{p}"] = rr.seconds
-        progress("refine", f"pass {p}: {cp.usable:,} rows, SSE {rr.sse_assigned:.6g} -> {new_sse:.6g}, {rr.seconds:.2f} s")
-        centroids, seg_cf, sse = new_centroids, rr.segments, new_sse
+        progress("refine", f"pass {p}: {cp.usable:,} rows, SSE {before:.6g} -> {after:.6g}, {rr.seconds:.2f} s")
+        stats, centroids = rr.updated, rr.updated.centroids
+        empty = stats.n == 0
         if empty.any():
             warnings.warn(f"refine pass {p}: segment(s) {np.flatnonzero(empty).tolist()} got no rows", UserWarning, stacklevel=2)
         if gain < settings.tolerance:
             break
     timings["total"] = time.perf_counter() - t_start
+    sse = float(stats.sse.sum())
 
     original = centroids * scale[None, :] + center[None, :]
     return Model(
@@ -402,10 +432,10 @@ def segment(
         scaling=settings.scaling,
         centroids=original.tolist(),
         centroids_scaled=centroids.tolist(),
-        sizes=[int(round(v)) for v in seg_cf.n],
-        sse=float(sse),
-        segment_sse=F.scatter(seg_cf, weights).tolist(),
-        radius=F.radius(seg_cf, weights).tolist(),
+        sizes=[int(round(v)) for v in stats.n],
+        sse=sse,
+        segment_sse=stats.sse.tolist(),
+        radius=np.sqrt(stats.sse / np.where(stats.n > 0, stats.n, 1.0)).tolist(),
         rows=cp.usable + cp.skipped,
         skipped=cp.skipped,
         source=source.label,
@@ -457,14 +487,11 @@ def label(
     source_columns = check_columns(engine, source, model.columns)
     select = sqlgen.label_select(source, model.columns, source_columns, model.assignment(), engine.dialect)
     if source.files:
-        fmt = file_reader_for(into)
-        if fmt not in ("parquet", "csv"):
-            raise InputError(f"labels of files go to a .parquet or .csv file; {into!r} is neither")
-        engine.execute(sqlgen.copy_statement(select, into, fmt))
-        return f"file {into}"
-    target = tuple(into.split("."))
-    same_schema = len(target) == 1 or len(source.table) == 1 or target[-2] == source.table[-2]
-    if target[-1] == source.table[-1] and same_schema:
+        return _label_to_file(engine, source, select, into, replace)
+    target = tuple(p.lower() for p in into.split("."))
+    table = tuple(p.lower() for p in source.table)
+    same_schema = len(target) == 1 or len(table) == 1 or target[-2] == table[-2]
+    if target[-1] == table[-1] and same_schema:
         raise InputError(f"--into {into} is the source table; labels never overwrite the source")
     kind = existing_relation_kind(engine, into)
     if kind == "table" and not replace:
@@ -476,11 +503,42 @@ def label(
     return f"{'table' if materialize else 'view'} {into}"
 
 
+def _label_to_file(engine: Engine, source: Source, select, into: str, replace: bool) -> str:
+    """COPY the labels of a file source to a Parquet/CSV file, atomically.
+
+    Refuses a target that is (or matches) a source file, and an existing file
+    unless ``replace``; the COPY goes to a temporary name first, so a failure
+    leaves any existing file as it was.
+    """
+    fmt = file_reader_for(into)
+    if fmt not in ("parquet", "csv"):
+        raise InputError(f"labels of files go to a .parquet or .csv file; {into!r} is neither")
+    target = os.path.realpath(into)
+    for pattern in source.files:
+        matches = glob.glob(pattern, recursive=True) or [pattern]
+        if any(os.path.realpath(m) == target for m in matches) or fnmatch.fnmatch(target, os.path.realpath(pattern)):
+            raise InputError(f"--into {into} is a source file; labels never overwrite the source")
+    if os.path.exists(into) and not replace:
+        raise InputError(f"file {into} already exists; pass replace=True (--replace) to overwrite it")
+    folder = os.path.dirname(target)
+    if not os.path.isdir(folder):
+        raise InputError(f"folder {folder} for --into {into} does not exist")
+    fd, tmp = tempfile.mkstemp(prefix=".tillite-", suffix=os.path.splitext(into)[1], dir=folder)
+    os.close(fd)
+    try:
+        engine.execute(sqlgen.copy_statement(select, tmp, fmt))
+        os.replace(tmp, into)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    return f"file {into}"
+
+
 def existing_relation_kind(engine: Engine, name: str) -> str | None:
-    """'table', 'view' or None for a (possibly schema-qualified) name."""
+    """'table', 'view' or None for a (possibly schema-qualified) name (case-insensitive, as DuckDB)."""
     got = engine.query(sqlgen.list_tables_statement())
-    parts = name.split(".")
+    parts = [p.lower() for p in name.split(".")]
     for schema, table, ttype in zip(got["table_schema"], got["table_name"], got["table_type"]):
-        if table == parts[-1] and (len(parts) == 1 or schema == parts[-2]):
+        if str(table).lower() == parts[-1] and (len(parts) == 1 or str(schema).lower() == parts[-2]):
             return "view" if "VIEW" in str(ttype).upper() else "table"
     return None

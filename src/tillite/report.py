@@ -37,8 +37,10 @@ def crosstab(engine: Engine, labels: str, lookup: str, key: str, category: str) 
     table = {c: [0] * len(heads) for c in cats}
     for c, s, m, n in zip(got["category"], np.ma.getdata(seg_values), null, got["n"]):
         table[str(c)][len(segs) if m else segs.index(int(s))] += int(n)
-    first = max(len(category), *(len(c) for c in cats))
-    widths = [max(len(h), *(len(f"{table[c][i]:,}") for c in cats)) for i, h in enumerate(heads)]
+    if not cats:
+        return f"rows by {category} (rows) and segment (columns): no rows matched {lookup} on {key}"
+    first = max([len(category)] + [len(c) for c in cats])
+    widths = [max([len(h)] + [len(f"{table[c][i]:,}") for c in cats]) for i, h in enumerate(heads)]
     lines = [f"rows by {category} (rows) and segment (columns):", "  ".join([category.ljust(first)] + [h.rjust(w) for h, w in zip(heads, widths)])]
     for c in cats:
         lines.append("  ".join([c.ljust(first)] + [f"{v:,}".rjust(w) for v, w in zip(table[c], widths)]))

@@ -79,8 +79,7 @@ def _lloyd(
     it = 0
     for it in range(1, max_iter + 1):
         mass = np.bincount(labels, weights=w, minlength=k)
-        sums = np.zeros_like(centres)
-        np.add.at(sums, labels, x * w[:, None])
+        sums = np.column_stack([np.bincount(labels, weights=x[:, j] * w, minlength=k) for j in range(x.shape[1])])
         new = np.where(mass[:, None] > 0, sums / np.where(mass > 0, mass, 1.0)[:, None], centres)
         empty = np.flatnonzero(mass == 0)
         if empty.size:

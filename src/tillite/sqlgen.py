@@ -111,11 +111,16 @@ class Grid:
     def half_range(self) -> int:
         return 1 << (self.bits - 1)
 
-    def keys_of(self, u: np.ndarray) -> np.ndarray:
-        """Per-axis integer keys of standardised rows u (n x d), as SQL computes them."""
-        coords = u @ np.asarray(self.axes) if self.axes else u
+    def key_factors(self) -> np.ndarray:
+        """F (d x p) with key_a = floor(sum_j F_ja (x_j - center_j)): scale, axes and width folded."""
+        axes = np.asarray(self.axes) if self.axes else np.eye(len(self.center))
+        return axes * np.asarray(self.inv_scale)[:, None] / self.width
+
+    def keys_of(self, x: np.ndarray) -> np.ndarray:
+        """Per-axis integer keys of rows x (n x d, original units), as SQL computes them."""
+        coords = (x - np.asarray(self.center)[None, :]) @ self.key_factors()
         h = self.half_range
-        return np.clip(np.floor(coords / self.width), -h, h - 1).astype(np.int64)
+        return np.clip(np.floor(coords), -h, h - 1).astype(np.int64)
 
     def pack(self, keys: np.ndarray) -> np.ndarray:
         """Pack per-axis keys (n x p) into one int64 per row, as SQL does."""
@@ -143,6 +148,20 @@ class Assignment:
     inv_scale: tuple[float, ...]
     weights: tuple[float, ...]
     centroids: tuple[tuple[float, ...], ...] = field(default_factory=tuple)
+
+    def score_coefficients(self) -> tuple[np.ndarray, np.ndarray]:
+        """a (k x d), b (k): dist_i - ||u||_w^2 = b_i + sum_j a_ij (x_j - center_j).
+
+        a_ij = -2 w_j^2 c_ij s_j and b_i = sum_j w_j^2 c_ij^2 with s = inv_scale.
+        """
+        c = np.asarray(self.centroids, dtype=np.float64)
+        w2 = np.asarray(self.weights, dtype=np.float64) ** 2
+        s = np.asarray(self.inv_scale, dtype=np.float64)
+        return -2.0 * c * (w2 * s)[None, :], (c * c * w2[None, :]).sum(axis=1)
+
+    def norm_coefficients(self) -> np.ndarray:
+        """w_j^2 s_j^2: ||u||_w^2 = sum_j w_j^2 s_j^2 (x_j - center_j)^2."""
+        return np.asarray(self.weights, dtype=np.float64) ** 2 * np.asarray(self.inv_scale, dtype=np.float64) ** 2
 
 
 # --------------------------------------------------------------------------- helpers
@@ -230,17 +249,32 @@ def subquery(select: exp.Select, alias: str) -> exp.Subquery:
     return exp.Subquery(this=select, alias=exp.TableAlias(this=exp.to_identifier(alias, quoted=True)))
 
 
-def standardised(columns: Sequence[str], center: Sequence[float], inv_scale: Sequence[float]) -> list[exp.Expression]:
-    """(CAST(x AS DOUBLE) - center) * inv_scale for each column."""
-    out = []
-    for name, c, s in zip(columns, center, inv_scale):
-        out.append(exp.Mul(this=paren(exp.Sub(this=to_double(col(name)), expression=num(c))), expression=num(s)))
-    return out
+def centred(columns: Sequence[str], center: Sequence[float]) -> list[exp.Expression]:
+    """CAST(x AS DOUBLE) - center for each column.
+
+    Sums are taken on centred values so nothing cancels (values near 1e9 with a
+    spread near 1 keep their digits); scaling is exact afterwards (features.affine).
+    """
+    return [exp.Sub(this=to_double(col(name)), expression=num(c)) for name, c in zip(columns, center)]
 
 
-def usable_rows(u_names: Sequence[str], dialect: str) -> exp.Expression:
-    """All standardised values finite (NULL when any is NULL)."""
-    return all_of([is_finite(col(n), dialect) for n in u_names])
+def usable_rows(v_names: Sequence[str], dialect: str) -> exp.Expression:
+    """True when every centred value is finite; NULL when any is NULL.
+
+    One finiteness test of their sum: NaN or an infinity in any term makes the
+    sum non-finite (centred finite values do not overflow a double).
+    """
+    return is_finite(paren(total_sum([col(n) for n in v_names])), dialect)
+
+
+def linear_form(names: Sequence[str], coefs: Sequence[float], constant: float | None = None) -> exp.Expression:
+    """constant + sum_j coefs_j * names_j, leaving out zero coefficients."""
+    terms: list[exp.Expression] = [num(float(constant))] if constant else []
+    for n, c in zip(names, coefs):
+        if c == 0.0:
+            continue
+        terms.append(col(n) if c == 1.0 else exp.Mul(this=num(float(c)), expression=col(n)))
+    return total_sum(terms)
 
 
 # --------------------------------------------------------------------------- statements
@@ -288,103 +322,101 @@ def sample_statement(
 
 
 def _packed_key(coords: list[exp.Expression], grid: Grid) -> exp.Expression:
-    """sum_a (clamp(floor(coord_a / width)) + H) * base^a as BIGINT."""
+    """sum_a (clamp(floor(coord_a)) + H) * base^a as BIGINT (coords already divided by the width)."""
     h, base = grid.half_range, 1 << grid.bits
-    inv_w = 1.0 / grid.width
     terms = []
     for a, coord in enumerate(coords):
-        scaled = exp.Floor(this=exp.Mul(this=paren(coord), expression=num(inv_w)))
-        clamped = least_of([greatest_of([scaled, num(float(-h))]), num(float(h - 1))])
-        key = exp.cast(clamped, exp.DataType.build("BIGINT"))
-        shifted = exp.Add(this=key, expression=num(h))
+        clamped = least_of([greatest_of([exp.Floor(this=coord), num(float(-h))]), num(float(h - 1))])
+        shifted = exp.Add(this=exp.cast(clamped, exp.DataType.build("BIGINT")), expression=num(h))
         terms.append(shifted if a == 0 else exp.Mul(this=paren(shifted), expression=num(base**a)))
     return total_sum(terms)
+
+
+def _sums(v_names: Sequence[str]) -> list[exp.Expression]:
+    """n, ls_j = sum(v_j), ss_j = sum(v_j * v_j)."""
+    aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
+    aggs += [exp.alias_(exp.Sum(this=col(n)), f"ls{j}", quoted=True) for j, n in enumerate(v_names)]
+    aggs += [exp.alias_(exp.Sum(this=square(col(n))), f"ss{j}", quoted=True) for j, n in enumerate(v_names)]
+    return aggs
 
 
 def cells_statement(source: Source, columns: Sequence[str], grid: Grid, dialect: str) -> exp.Select:
     """The cell pass: one GROUP BY over the packed grid key.
 
-    Returns columns key, n, ls0..ls{d-1}, ss0..ss{d-1}, all on the grid's
-    standardised values u.  Rows with a NULL/NaN/Inf value fall in the group
-    whose key is NULL: its n is the skipped count and its sums are meaningless.
+    Returns columns key, n, ls0..ls{d-1}, ss0..ss{d-1} on the centred values
+    v = x - grid.center (scale them with ``Grid.inv_scale`` afterwards).  Rows
+    with a NULL/NaN/Inf value fall in the group whose key is NULL: its n is the
+    skipped count and its sums are meaningless.
     """
     d = len(columns)
-    u = [internal(f"u{j}") for j in range(d)]
-    ok = internal("ok")
-    stage1 = exp.select(
-        *[exp.alias_(e, n, quoted=True) for e, n in zip(standardised(columns, grid.center, grid.inv_scale), u)]
-    ).from_(source.relation())
-    stage2 = exp.select(*[col(n) for n in u], exp.alias_(usable_rows(u, dialect), ok, quoted=True)).from_(
-        subquery(stage1, internal("a"))
+    v = [internal(f"v{j}") for j in range(d)]
+    stage1 = exp.select(*[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, grid.center), v)]).from_(
+        source.relation()
     )
-    if grid.axes:
-        axes = np.asarray(grid.axes)
-        coords = [total_sum([exp.Mul(this=col(u[j]), expression=num(float(axes[j, a]))) for j in range(d)]) for a in range(axes.shape[1])]
-    else:
-        coords = [col(n) for n in u]
-    key = case_when(col(ok), _packed_key(coords, grid))
-    vals = [case_when(col(ok), col(n)) for n in u]
-    stage3 = exp.select(
-        exp.alias_(key, "key", quoted=True),
-        *[exp.alias_(v, n, quoted=True) for v, n in zip(vals, u)],
-    ).from_(subquery(stage2, internal("b")))
-    aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
-    aggs += [exp.alias_(exp.Sum(this=col(n)), f"ls{j}", quoted=True) for j, n in enumerate(u)]
-    aggs += [exp.alias_(exp.Sum(this=square(col(n))), f"ss{j}", quoted=True) for j, n in enumerate(u)]
-    return exp.select(col("key"), *aggs).from_(subquery(stage3, internal("c"))).group_by(col("key"))
+    factors = grid.key_factors()
+    coords = [linear_form(v, factors[:, a]) for a in range(factors.shape[1])]
+    key = case_when(usable_rows(v, dialect), _packed_key(coords, grid))
+    stage2 = exp.select(exp.alias_(key, "key", quoted=True), *[col(n) for n in v]).from_(subquery(stage1, internal("a")))
+    return exp.select(col("key"), *_sums(v)).from_(subquery(stage2, internal("b"))).group_by(col("key"))
 
 
 def _assignment_layers(
     source: Source, columns: Sequence[str], assign: Assignment, dialect: str, keep_source: bool
-) -> tuple[exp.Select, str, str]:
+) -> tuple[exp.Select, str, str, list[str]]:
     """A query with the nearest centroid per row (NULL for unusable rows).
 
-    Returns (select, segment column, squared distance column); when keep_source
-    the select also carries every source column.
+    The squared distance to centroid i is ||u||_w^2 + score_i with
+    score_i = b_i + sum_j a_ij v_j (v = x - center, u = v * inv_scale); the
+    argmin needs only the scores, which cost one multiply-add per column.
+    Returns (select, segment column, best-score column, centred value columns);
+    when keep_source the select also carries every source column.
     """
     d, k = len(columns), len(assign.centroids)
-    u = [internal(f"u{j}") for j in range(d)]
-    dist = [internal(f"d{i}") for i in range(k)]
+    v = [internal(f"v{j}") for j in range(d)]
+    score = [internal(f"s{i}") for i in range(k)]
     best, seg = internal("best"), internal("segment")
     src_cols = [exp.Star()] if keep_source else []
-    stage1 = exp.select(
-        *src_cols, *[exp.alias_(e, n, quoted=True) for e, n in zip(standardised(columns, assign.center, assign.inv_scale), u)]
-    ).from_(source.relation())
-    ok = usable_rows(u, dialect)
-    passthrough = [exp.Star()] if keep_source else [col(n) for n in u]
-    dist_exprs = []
-    for i in range(k):
-        terms = []
-        for j in range(d):
-            w2 = assign.weights[j] ** 2
-            if w2 == 0.0:
-                continue
-            diff = square(exp.Sub(this=col(u[j]), expression=num(float(assign.centroids[i][j]))))
-            terms.append(diff if w2 == 1.0 else exp.Mul(this=num(w2), expression=diff))
-        dist_exprs.append(case_when(ok.copy(), total_sum(terms)))
-    stage2 = exp.select(*passthrough, *[exp.alias_(e, n, quoted=True) for e, n in zip(dist_exprs, dist)]).from_(
-        subquery(stage1, internal("a"))
+    stage1 = exp.select(*src_cols, *[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, assign.center), v)]).from_(
+        source.relation()
     )
-    least = col(dist[0]) if k == 1 else least_of([col(n) for n in dist])
+    a, b = assign.score_coefficients()
+    passthrough = [exp.Star()] if keep_source else [col(n) for n in v]
+    stage2 = exp.select(
+        *passthrough,
+        exp.alias_(usable_rows(v, dialect), internal("ok"), quoted=True),
+        *[exp.alias_(linear_form(v, a[i], b[i]), score[i], quoted=True) for i in range(k)],
+    ).from_(subquery(stage1, internal("a")))
+    least = col(score[0]) if k == 1 else least_of([col(n) for n in score])
     stage3 = exp.select(exp.Star(), exp.alias_(least, best, quoted=True)).from_(subquery(stage2, internal("b")))
-    pick = exp.Case(ifs=[exp.If(this=exp.EQ(this=col(dist[i]), expression=col(best)), true=num(i)) for i in range(k)])
+    pick = exp.Case(
+        ifs=[exp.If(this=exp.Not(this=col(internal("ok"))), true=exp.Null())]
+        + [exp.If(this=exp.EQ(this=col(score[i]), expression=col(best)), true=num(i)) for i in range(k)]
+    )
     stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("c")))
-    return stage4, seg, best
+    return stage4, seg, best, v
+
+
+def _squared_norm(v_names: Sequence[str], assign: Assignment) -> exp.Expression:
+    """||u||_w^2 = sum_j w_j^2 s_j^2 v_j^2 of a row."""
+    norm = assign.norm_coefficients()
+    return total_sum([exp.Mul(this=num(float(c)), expression=square(col(n))) for n, c in zip(v_names, norm) if c != 0.0])
 
 
 def refine_statement(source: Source, columns: Sequence[str], assign: Assignment, dialect: str) -> exp.Select:
     """A refine pass: nearest centroid per row, GROUP BY segment.
 
-    Returns segment, n, ls*, ss* (on u) and dist = the summed squared distance to
-    the assigned centroid (the exact row-level SSE of this assignment).  The
-    segment NULL group counts skipped rows.
+    Returns segment, n, ls0..ls{d-1} (sums of the centred values v = x - center)
+    and dist, the sum of squared (weighted, scaled) distances of the rows to the
+    centroid they were assigned to: with n and LS that is the segment's exact CF
+    in the published scalar form, shifted to the old centroid, so the exact SSE
+    before and after moving the centroid both follow.  The segment NULL group
+    counts skipped rows.
     """
-    inner, seg, best = _assignment_layers(source, columns, assign, dialect, keep_source=False)
-    u = [internal(f"u{j}") for j in range(len(columns))]
+    inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=False)
     aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
-    aggs += [exp.alias_(exp.Sum(this=col(n)), f"ls{j}", quoted=True) for j, n in enumerate(u)]
-    aggs += [exp.alias_(exp.Sum(this=square(col(n))), f"ss{j}", quoted=True) for j, n in enumerate(u)]
-    aggs += [exp.alias_(exp.Sum(this=col(best)), "dist", quoted=True)]
+    aggs += [exp.alias_(exp.Sum(this=col(n)), f"ls{j}", quoted=True) for j, n in enumerate(v)]
+    dist = exp.Add(this=col(best), expression=paren(_squared_norm(v, assign)))
+    aggs.append(exp.alias_(exp.Sum(this=dist), "dist", quoted=True))
     return (
         exp.select(exp.alias_(col(seg), "segment", quoted=True), *aggs)
         .from_(subquery(inner, internal("d")))
@@ -401,9 +433,16 @@ def label_select(
     segment_name: str = "segment",
     distance_name: str = "distance",
 ) -> exp.Select:
-    """Every source column plus the segment id and the distance to its centroid."""
-    inner, seg, best = _assignment_layers(source, columns, assign, dialect, keep_source=True)
-    distance = exp.Sqrt(this=col(best))
+    """Every source column plus the segment id and the distance to its centroid.
+
+    distance = sqrt(max(best score + ||u||_w^2, 0)), NULL for skipped rows.
+    """
+    inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=True)
+    sq_norm = _squared_norm(v, assign)
+    distance = case_when(
+        exp.Not(this=exp.Is(this=col(seg), expression=exp.Null())),
+        exp.Sqrt(this=greatest_of([exp.Add(this=col(best), expression=sq_norm), num(0.0)])),
+    )
     return exp.select(
         *[col(c) for c in source_columns],
         exp.alias_(exp.cast(col(seg), exp.DataType.build("INT")), segment_name, quoted=True),
