@@ -347,7 +347,7 @@ def test_sql_cells_stage_with_a_model_counts_the_cells_numpy_finds(tmp_path, db,
     axes = np.asarray(grid["axes"]) if grid["axes"] else np.eye(3)
     coords = ((x - np.asarray(grid["center"])) * np.asarray(grid["inv_scale"])) @ axes / grid["width"]
     ref_cells = len(np.unique(np.floor(coords).astype(np.int64), axis=0))
-    assert len(got["key"]) == ref_cells == grid["cells"]
+    assert len(got["n"]) == ref_cells == grid["cells"]
     assert int(got["n"].sum()) == len(x)
     # reference: numpy sums of the centred rows equal the sums of the cells' linear sums
     np.testing.assert_allclose([got[f"ls{j}"].sum() for j in range(3)], (x - np.asarray(grid["center"])).sum(axis=0), atol=1e-6)
@@ -361,7 +361,7 @@ def test_sql_cells_stage_without_a_model_runs_in_duckdb(db, blobs):
     got = fetch(db, text)
     # reference: numpy row count; every row is counted in exactly one cell
     assert int(got["n"].sum()) == len(x)
-    assert 1 < len(got["key"]) < len(x)
+    assert 1 < len(got["n"]) < len(x)
 
 
 def test_sql_profile_stage_counts_the_rows_numpy_has(db, blobs):

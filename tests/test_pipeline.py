@@ -48,10 +48,9 @@ def test_cell_pass_cfs_equal_numpy_group_sums_on_the_same_cells(blob_db, blobs, 
     cp = run_cell_pass(engine, src, names, grid)
     # reference: numpy standardisation, binning and per-cell sums of the rows
     u = (x - np.array(grid.center)) * np.array(grid.inv_scale)
-    keys = grid.pack(grid.keys_of(x))
-    uniq, inverse = np.unique(keys, return_inverse=True)
-    ref = F.from_groups(u, inverse, len(uniq))
-    order = np.argsort(cp.keys)
+    uniq, inverse = np.unique(grid.keys_of(x), axis=0, return_inverse=True)
+    ref = F.from_groups(u, inverse.ravel(), len(uniq))
+    order = np.lexsort(cp.keys.T[::-1])
     np.testing.assert_array_equal(cp.keys[order], uniq)
     np.testing.assert_array_equal(cp.cells.n[order], ref.n)
     np.testing.assert_allclose(cp.cells.ls[order], ref.ls, rtol=1e-9, atol=1e-9)

@@ -244,7 +244,7 @@ def choose_width(coords: np.ndarray, rows: int, budget: int) -> float:
 @dataclass
 class CellPass:
     cells: CF  # on the grid's standardised values
-    keys: np.ndarray  # packed cell keys
+    keys: np.ndarray  # (cells x axes) per-axis integer keys, as floats
     usable: int
     skipped: int
     seconds: float
@@ -274,12 +274,13 @@ def run_cell_pass(engine: Engine, source: Source, columns: Sequence[str], grid: 
     """One GROUP BY over the grid key: cell CFs plus the skipped-row count."""
     t0 = time.perf_counter()
     got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.dialect))
-    null = _null_mask(got["key"])
+    names = grid.key_names()
+    null = _null_mask(got[names[0]])
     n = np.asarray(got["n"], dtype=np.int64)
     skipped = int(n[null].sum())
     keep = ~null
     cells = F.affine(cf_from_result(got, len(columns), keep), np.asarray(grid.inv_scale), np.zeros(len(columns)))
-    keys = np.asarray(np.ma.getdata(got["key"]), dtype=np.int64)[keep]
+    keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names])
     return CellPass(cells=cells, keys=keys, usable=int(n[keep].sum()), skipped=skipped, seconds=time.perf_counter() - t0)
 
 

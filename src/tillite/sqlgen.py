@@ -30,14 +30,10 @@ __all__ = [
     "copy_statement",
     "drop_statement",
     "list_tables_statement",
-    "KEY_BITS",
 ]
 
 #: Reserved prefix of the helper columns inside generated queries.
 INTERNAL = "__tillite_"
-
-#: Bits given to the packed cell key; each grid axis gets KEY_BITS // axes of them.
-KEY_BITS = 62
 
 FILE_READERS = {"parquet": "read_parquet", "csv": "read_csv_auto", "json": "read_json_auto"}
 
@@ -90,8 +86,7 @@ class Grid:
 
     u_j = (x_j - center_j) * inv_scale_j are the grid's standardised values.  The
     binned coordinates are u itself, or u @ axes (principal-axis scores) when
-    ``axes`` is given (shape d x p).  key_a = floor(coord_a / width), clamped to
-    the packable range, then packed into one BIGINT.
+    ``axes`` is given (shape d x p).  key_a = floor(coord_a / width).
     """
 
     center: tuple[float, ...]
@@ -103,38 +98,19 @@ class Grid:
     def dims(self) -> int:
         return len(self.axes[0]) if self.axes else len(self.center)
 
-    @property
-    def bits(self) -> int:
-        return KEY_BITS // self.dims
-
-    @property
-    def half_range(self) -> int:
-        return 1 << (self.bits - 1)
-
     def key_factors(self) -> np.ndarray:
         """F (d x p) with key_a = floor(sum_j F_ja (x_j - center_j)): scale, axes and width folded."""
         axes = np.asarray(self.axes) if self.axes else np.eye(len(self.center))
         return axes * np.asarray(self.inv_scale)[:, None] / self.width
 
+    def key_names(self) -> list[str]:
+        """Result columns holding the per-axis cell keys."""
+        return [f"k{a}" for a in range(self.dims)]
+
     def keys_of(self, x: np.ndarray) -> np.ndarray:
-        """Per-axis integer keys of rows x (n x d, original units), as SQL computes them."""
+        """Per-axis cell keys of rows x (n x d, original units), as SQL computes them."""
         coords = (x - np.asarray(self.center)[None, :]) @ self.key_factors()
-        h = self.half_range
-        return np.clip(np.floor(coords), -h, h - 1).astype(np.int64)
-
-    def pack(self, keys: np.ndarray) -> np.ndarray:
-        """Pack per-axis keys (n x p) into one int64 per row, as SQL does."""
-        h, base = self.half_range, 1 << self.bits
-        packed = np.zeros(keys.shape[0], dtype=np.int64)
-        for a in range(keys.shape[1]):
-            packed += (keys[:, a] + h) * (base**a)
-        return packed
-
-    def unpack(self, packed: np.ndarray) -> np.ndarray:
-        """Per-axis keys (n x p) from packed keys."""
-        h, base = self.half_range, 1 << self.bits
-        packed = np.asarray(packed, dtype=np.int64)
-        return np.stack([(packed // (base**a)) % base - h for a in range(self.dims)], axis=1)
+        return np.floor(coords)
 
 
 @dataclass(frozen=True)
@@ -321,17 +297,6 @@ def sample_statement(
     return outer
 
 
-def _packed_key(coords: list[exp.Expression], grid: Grid) -> exp.Expression:
-    """sum_a (clamp(floor(coord_a)) + H) * base^a as BIGINT (coords already divided by the width)."""
-    h, base = grid.half_range, 1 << grid.bits
-    terms = []
-    for a, coord in enumerate(coords):
-        clamped = least_of([greatest_of([exp.Floor(this=coord), num(float(-h))]), num(float(h - 1))])
-        shifted = exp.Add(this=exp.cast(clamped, exp.DataType.build("BIGINT")), expression=num(h))
-        terms.append(shifted if a == 0 else exp.Mul(this=paren(shifted), expression=num(base**a)))
-    return total_sum(terms)
-
-
 def _sums(v_names: Sequence[str]) -> list[exp.Expression]:
     """n, ls_j = sum(v_j), ss_j = sum(v_j * v_j)."""
     aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
@@ -341,12 +306,13 @@ def _sums(v_names: Sequence[str]) -> list[exp.Expression]:
 
 
 def cells_statement(source: Source, columns: Sequence[str], grid: Grid, dialect: str) -> exp.Select:
-    """The cell pass: one GROUP BY over the packed grid key.
+    """The cell pass: one GROUP BY over the per-axis grid keys.
 
-    Returns columns key, n, ls0..ls{d-1}, ss0..ss{d-1} on the centred values
-    v = x - grid.center (scale them with ``Grid.inv_scale`` afterwards).  Rows
-    with a NULL/NaN/Inf value fall in the group whose key is NULL: its n is the
-    skipped count and its sums are meaningless.
+    Returns k0..k{p-1} (floor of each binned coordinate, as DOUBLE: no cast, no
+    clamp, no aliasing of far outliers), n, ls0..ls{d-1} and ss0..ss{d-1} on the
+    centred values v = x - grid.center (scale them with ``Grid.inv_scale``
+    afterwards).  Rows with a NULL/NaN/Inf value get k0 NULL: the groups with k0
+    NULL count the skipped rows and their sums are meaningless.
     """
     d = len(columns)
     v = [internal(f"v{j}") for j in range(d)]
@@ -354,10 +320,14 @@ def cells_statement(source: Source, columns: Sequence[str], grid: Grid, dialect:
         source.relation()
     )
     factors = grid.key_factors()
-    coords = [linear_form(v, factors[:, a]) for a in range(factors.shape[1])]
-    key = case_when(usable_rows(v, dialect), _packed_key(coords, grid))
-    stage2 = exp.select(exp.alias_(key, "key", quoted=True), *[col(n) for n in v]).from_(subquery(stage1, internal("a")))
-    return exp.select(col("key"), *_sums(v)).from_(subquery(stage2, internal("b"))).group_by(col("key"))
+    keys = [exp.Floor(this=linear_form(v, factors[:, a])) for a in range(factors.shape[1])]
+    keys[0] = case_when(usable_rows(v, dialect), keys[0])
+    names = grid.key_names()
+    stage2 = exp.select(*[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *[col(n) for n in v]).from_(
+        subquery(stage1, internal("a"))
+    )
+    key_cols = [col(n) for n in names]
+    return exp.select(*key_cols, *_sums(v)).from_(subquery(stage2, internal("b"))).group_by(*[c.copy() for c in key_cols])
 
 
 def _assignment_layers(
