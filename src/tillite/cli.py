@@ -228,10 +228,7 @@ def _stage_statements(engine, src, cols, stage, model, dialect, cell_budget):
         return [sqlgen.count_statement(src), sqlgen.sample_statement(src, cols, dialect, percent=1.0, limit=100_000)]
     if stage == "cells":
         if model is not None and model.grid:
-            grid = sqlgen.Grid(
-                center=tuple(model.grid["center"]), inv_scale=tuple(model.grid["inv_scale"]),
-                width=model.grid["width"], axes=tuple(map(tuple, model.grid["axes"])) if model.grid.get("axes") else None,
-            )
+            grid = sqlgen.Grid.from_dict(model.grid)
         else:
             settings = Settings(k=1, cell_budget=cell_budget)
             grid = grid_for_profile(run_profile(engine, src, cols, settings), settings)

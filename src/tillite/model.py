@@ -47,6 +47,7 @@ class Model:
     source: str
     k: int
     method: str = "kmeans"
+    ids: list[int] = field(default_factory=list)  # segment id of each centroid (0..k-1 unless a store keeps ids stable)
     constant_columns: list[str] = field(default_factory=list)
     grid: dict[str, Any] = field(default_factory=dict)
     params: dict[str, Any] = field(default_factory=dict)
@@ -67,7 +68,12 @@ class Model:
             inv_scale=tuple(1.0 / s for s in self.scale),
             weights=tuple(self.weights),
             centroids=tuple(tuple(c) for c in self.centroids_scaled),
+            ids=tuple(self.segment_ids()),
         )
+
+    def segment_ids(self) -> list[int]:
+        """Segment id of each centroid."""
+        return list(self.ids) if self.ids else list(range(len(self.centroids_scaled)))
 
     # ------------------------------------------------------------ files
 
@@ -149,7 +155,7 @@ class Model:
             "sse": self.sse,
             "segments": [
                 {
-                    "segment": i,
+                    "segment": self.segment_ids()[i],
                     "size": self.sizes[i],
                     "centroid": dict(zip(self.columns, self.centroids[i])),
                     "radius": self.radius[i],
@@ -178,7 +184,7 @@ class Model:
         tiny = [1e-9 * (abs(m) + abs(s)) for m, s in zip(self.center, self.scale)]
         for i, size in enumerate(self.sizes):
             rows.append(
-                [str(i), f"{size:,}", f"{100.0 * size / total:.1f}%", f"{self.radius[i]:.3g}", f"{self.segment_sse[i]:.4g}"]
+                [str(self.segment_ids()[i]), f"{size:,}", f"{100.0 * size / total:.1f}%", f"{self.radius[i]:.3g}", f"{self.segment_sse[i]:.4g}"]
                 + [_fmt(0.0 if abs(v) <= t else v) for v, t in zip(self.centroids[i], tiny)]
             )
         widths = [max([len(h)] + [len(r[c]) for r in rows]) for c, h in enumerate(head)]

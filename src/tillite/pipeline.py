@@ -25,7 +25,7 @@ from . import sqlgen
 from .engines import Engine, SourceError, TilliteError, file_reader_for, is_numeric_type
 from .features import CF
 from .model import Model
-from .segmenters import kmeans
+from .segmenters import KMeansResult, kmeans
 from .sqlgen import Assignment, Grid, Source
 
 __all__ = [
@@ -340,14 +340,145 @@ def run_refine_pass(engine: Engine, source: Source, columns: Sequence[str], assi
 # ----------------------------------------------------------------------------- segment
 
 
-def _exact_standardisation(total_u: CF, grid_center: np.ndarray, grid_scale: np.ndarray, scaling: str):
-    """Exact mean and population sd in original units from the total CF on grid units."""
-    n = float(total_u.n[0])
-    mean_u = total_u.ls[0] / n
-    var_u = F.column_scatter(total_u)[0] / n
-    center = grid_center + mean_u * grid_scale
-    sd = np.sqrt(var_u) * grid_scale
-    return center, sd
+@dataclass
+class Standardisation:
+    """The exact standardisation of a run: u_j = (x_j - center_j) / scale_j, times weight_j in distances."""
+
+    center: np.ndarray
+    sd: np.ndarray  # exact population standard deviation
+    scale: np.ndarray  # sd, or 1 for scaling "none" and for constant columns
+    weights: np.ndarray
+    constant: np.ndarray  # bool per column
+
+    def assignment(self, centroids: np.ndarray, ids: Sequence[int] | None = None) -> Assignment:
+        return Assignment(
+            tuple(map(float, self.center)),
+            tuple(map(float, 1.0 / self.scale)),
+            tuple(map(float, self.weights)),
+            tuple(tuple(map(float, c)) for c in centroids),
+            ids=tuple(int(i) for i in ids) if ids is not None else (),
+        )
+
+
+def standardise_cells(
+    cells_grid: CF, grid: Grid, columns: Sequence[str], settings: Settings, weights: np.ndarray
+) -> tuple[CF, Standardisation]:
+    """Exact mean and sd from the total of the cell CFs, and the cells moved into that standardisation.
+
+    ``cells_grid`` is on the grid's standardised values; an affine change of a CF
+    is exact.  A column with zero spread warns and gets weight 0.
+    """
+    d = len(columns)
+    grid_center = np.asarray(grid.center)
+    grid_scale = 1.0 / np.asarray(grid.inv_scale)
+    total = F.total(cells_grid)
+    n = float(total.n[0])
+    center = grid_center + total.ls[0] / n * grid_scale
+    sd = np.sqrt(F.column_scatter(total)[0] / n) * grid_scale
+    constant = ~(sd > 1e-12 * np.maximum(np.abs(center), 1.0))
+    if constant.any():
+        names = ", ".join(c for c, flag in zip(columns, constant) if flag)
+        warnings.warn(f"constant column(s) {names}: they carry no weight", UserWarning, stacklevel=3)
+    weights = np.where(constant, 0.0, weights)
+    scale = np.where(constant, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
+    cells = F.affine(cells_grid, grid_scale / scale, (grid_center - center) / scale)
+    return cells, Standardisation(center=center, sd=sd, scale=scale, weights=weights, constant=constant)
+
+
+def second_phase(
+    cells: CF, settings: Settings, weights: np.ndarray, where: str, init: np.ndarray | None = None
+) -> KMeansResult:
+    """Weighted k-means++ on the cells (warm-started from ``init`` when given)."""
+    nonempty = int((cells.n > 0).sum())
+    if settings.k > nonempty:
+        distinct = " (only that many distinct rows)" if nonempty == int(round(cells.n.sum())) else "; try a smaller k or a finer --width"
+        raise InputError(f"k={settings.k} is larger than the {nonempty:,} distinct grid cells of {where}{distinct}")
+    return kmeans(cells, settings.k, weights, n_init=settings.n_init, seed=settings.seed, init=init)
+
+
+def refine_passes(
+    engine: Engine,
+    source: Source,
+    columns: Sequence[str],
+    std: Standardisation,
+    centroids: np.ndarray,
+    stats: SegmentStats,
+    settings: Settings,
+    progress: ProgressFn,
+    usable: int,
+) -> tuple[SegmentStats, list[dict], dict[str, float]]:
+    """Row-level Lloyd passes in SQL until the SSE gain falls below the tolerance."""
+    passes: list[dict] = []
+    timings: dict[str, float] = {}
+    for p in range(1, settings.refine_passes + 1):
+        rr = run_refine_pass(engine, source, columns, std.assignment(centroids))
+        before, after = float(rr.assigned.sse.sum()), float(rr.updated.sse.sum())
+        gain = (before - after) / before if before > 0 else 0.0
+        passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain, "seconds": rr.seconds})
+        timings[f"refine_{p}"] = rr.seconds
+        progress("refine", f"pass {p}: {usable:,} rows, SSE {before:.6g} -> {after:.6g}, {rr.seconds:.2f} s")
+        stats, centroids = rr.updated, rr.updated.centroids
+        empty = stats.n == 0
+        if empty.any():
+            warnings.warn(f"refine pass {p}: segment(s) {np.flatnonzero(empty).tolist()} got no rows", UserWarning, stacklevel=3)
+        if gain < settings.tolerance:
+            break
+    return stats, passes, timings
+
+
+def order_by_size(stats: SegmentStats) -> SegmentStats:
+    """Segments renumbered largest first (ids 0..k-1), so ids read the same way every run."""
+    order = np.argsort(-stats.n, kind="stable")
+    return SegmentStats(stats.n[order], stats.centroids[order], stats.sse[order])
+
+
+def make_model(
+    columns: Sequence[str],
+    std: Standardisation,
+    grid: Grid,
+    stats: SegmentStats,
+    settings: Settings,
+    source: Source,
+    rows: int,
+    skipped: int,
+    cells: int,
+    extra_params: dict | None = None,
+    ids: Sequence[int] | None = None,
+) -> Model:
+    """The model file's content from a finished run."""
+    centroids = stats.centroids
+    original = centroids * std.scale[None, :] + std.center[None, :]
+    params = {
+        "cell_budget": settings.cell_budget,
+        "refine_passes": settings.refine_passes,
+        "tolerance": settings.tolerance,
+        "restarts": settings.n_init,
+        "seed": settings.seed,
+        "sample_rows": settings.sample_rows,
+    }
+    params.update(extra_params or {})
+    return Model(
+        columns=list(columns),
+        center=std.center.tolist(),
+        scale=std.scale.tolist(),
+        weights=std.weights.tolist(),
+        scaling=settings.scaling,
+        centroids=original.tolist(),
+        centroids_scaled=centroids.tolist(),
+        sizes=[int(round(v)) for v in stats.n],
+        sse=float(stats.sse.sum()),
+        segment_sse=stats.sse.tolist(),
+        radius=np.sqrt(stats.sse / np.where(stats.n > 0, stats.n, 1.0)).tolist(),
+        rows=rows,
+        skipped=skipped,
+        source=source.label,
+        k=len(centroids),
+        ids=list(ids) if ids is not None else list(range(len(centroids))),
+        constant_columns=[c for c, flag in zip(columns, std.constant) if flag],
+        grid={**grid.to_dict(), "cells": cells, "sd": std.sd.tolist()},
+        params=params,
+        created=datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    )
 
 
 def segment(
@@ -362,7 +493,6 @@ def segment(
     settings.check(columns)
     t_start = time.perf_counter()
     check_columns(engine, source, columns)
-    d = len(columns)
     weights = np.array([float(settings.weights.get(c, 1.0)) for c in columns])
 
     # 1. profile on a sample, and the grid from it
@@ -372,97 +502,34 @@ def segment(
     prof.seconds = time.perf_counter() - t0
     progress("profile", f"{prof.rows:,} rows, sample of {len(prof.sample):,}, grid width {grid.width:.3g} on {grid.dims} axes, {prof.seconds:.2f} s")
 
-    # 2. cell pass
+    # 2. cell pass, and the exact standardisation from its CFs
     cp = run_cell_pass(engine, source, columns, grid)
     if cp.usable == 0:
         raise InputError(
             f"no usable rows in {source.label}: all {cp.skipped:,} rows have a NULL, NaN or infinite value in {', '.join(columns)}"
         )
     progress("cells", f"{cp.usable + cp.skipped:,} rows ({cp.skipped:,} skipped) -> {cells_count(cp):,} cells, {cp.seconds:.2f} s")
-
-    # exact standardisation from the sum of the cell CFs, and the cells moved into it
-    center, sd = _exact_standardisation(F.total(cp.cells), prof.center, prof.scale, settings.scaling)
-    constant = ~(sd > 1e-12 * np.maximum(np.abs(center), 1.0))
-    if constant.any():
-        names = ", ".join(c for c, flag in zip(columns, constant) if flag)
-        warnings.warn(f"constant column(s) {names}: they carry no weight", UserWarning, stacklevel=2)
-        weights = np.where(constant, 0.0, weights)
-    scale = np.where(constant, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
-    cells = F.affine(cp.cells, prof.scale / scale, (prof.center - center) / scale)
+    cells, std = standardise_cells(cp.cells, grid, columns, settings, weights)
 
     # 3. second phase on the cells
     t0 = time.perf_counter()
-    nonempty = int((cells.n > 0).sum())
-    if settings.k > nonempty:
-        raise InputError(
-            f"k={settings.k} is larger than the {nonempty:,} distinct grid cells of {source.label}"
-            + (" (only that many distinct rows)" if nonempty == cp.usable else "; try a smaller k or a finer --width")
-        )
-    result = kmeans(cells, settings.k, weights, n_init=settings.n_init, seed=settings.seed)
-    centroids = result.centroids
+    result = second_phase(cells, settings, std.weights, source.label)
     t_second = time.perf_counter() - t0
-    progress("second phase", f"k-means++ x{result.restarts} on {nonempty:,} cells, SSE {result.sse:.6g}, {t_second:.2f} s")
+    progress("second phase", f"k-means++ x{result.restarts} on {cells_count(cp):,} cells, SSE {result.sse:.6g}, {t_second:.2f} s")
 
     # 4. refine passes in SQL
-    stats = SegmentStats.of_cfs(F.group_sum(cells, result.labels, settings.k), weights)
-    passes: list[dict] = []
-    timings = {"profile": prof.seconds, "cells": cp.seconds, "second_phase": t_second}
-    for p in range(1, settings.refine_passes + 1):
-        assign = Assignment(tuple(center), tuple(1.0 / scale), tuple(weights), tuple(map(tuple, centroids)))
-        rr = run_refine_pass(engine, source, columns, assign)
-        before, after = float(rr.assigned.sse.sum()), float(rr.updated.sse.sum())
-        gain = (before - after) / before if before > 0 else 0.0
-        passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain, "seconds": rr.seconds})
-        timings[f"refine_{p}"] = rr.seconds
-        progress("refine", f"pass {p}: {cp.usable:,} rows, SSE {before:.6g} -> {after:.6g}, {rr.seconds:.2f} s")
-        stats, centroids = rr.updated, rr.updated.centroids
-        empty = stats.n == 0
-        if empty.any():
-            warnings.warn(f"refine pass {p}: segment(s) {np.flatnonzero(empty).tolist()} got no rows", UserWarning, stacklevel=2)
-        if gain < settings.tolerance:
-            break
-    timings["total"] = time.perf_counter() - t_start
-    sse = float(stats.sse.sum())
-
-    original = centroids * scale[None, :] + center[None, :]
-    return Model(
-        columns=columns,
-        center=center.tolist(),
-        scale=scale.tolist(),
-        weights=weights.tolist(),
-        scaling=settings.scaling,
-        centroids=original.tolist(),
-        centroids_scaled=centroids.tolist(),
-        sizes=[int(round(v)) for v in stats.n],
-        sse=sse,
-        segment_sse=stats.sse.tolist(),
-        radius=np.sqrt(stats.sse / np.where(stats.n > 0, stats.n, 1.0)).tolist(),
-        rows=cp.usable + cp.skipped,
-        skipped=cp.skipped,
-        source=source.label,
-        k=settings.k,
-        constant_columns=[c for c, flag in zip(columns, constant) if flag],
-        grid={
-            "width": grid.width,
-            "center": list(grid.center),
-            "inv_scale": list(grid.inv_scale),
-            "axes": [list(r) for r in grid.axes] if grid.axes else None,
-            "cells": nonempty,
-            "sd": sd.tolist(),
-        },
-        params={
-            "cell_budget": settings.cell_budget,
-            "refine_passes": settings.refine_passes,
-            "tolerance": settings.tolerance,
-            "restarts": settings.n_init,
-            "seed": settings.seed,
-            "sample_rows": settings.sample_rows,
-            "cell_sse": result.sse,
-        },
-        passes=passes,
-        timings=timings,
-        created=datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    stats = SegmentStats.of_cfs(F.group_sum(cells, result.labels, settings.k), std.weights)
+    stats, passes, refine_times = refine_passes(
+        engine, source, columns, std, result.centroids, stats, settings, progress, cp.usable
     )
+    model = make_model(
+        columns, std, grid, order_by_size(stats), settings, source, cp.usable + cp.skipped, cp.skipped,
+        cells_count(cp), extra_params={"cell_sse": result.sse},
+    )
+    model.passes = passes
+    model.timings = {"profile": prof.seconds, "cells": cp.seconds, "second_phase": t_second, **refine_times}
+    model.timings["total"] = time.perf_counter() - t_start
+    return model
 
 
 def cells_count(cp: CellPass) -> int:

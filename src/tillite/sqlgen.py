@@ -103,6 +103,24 @@ class Grid:
         axes = np.asarray(self.axes) if self.axes else np.eye(len(self.center))
         return axes * np.asarray(self.inv_scale)[:, None] / self.width
 
+    def to_dict(self) -> dict:
+        return {
+            "width": self.width,
+            "center": list(self.center),
+            "inv_scale": list(self.inv_scale),
+            "axes": [list(r) for r in self.axes] if self.axes else None,
+        }
+
+    @staticmethod
+    def from_dict(data: dict) -> "Grid":
+        axes = data.get("axes")
+        return Grid(
+            center=tuple(map(float, data["center"])),
+            inv_scale=tuple(map(float, data["inv_scale"])),
+            width=float(data["width"]),
+            axes=tuple(tuple(map(float, r)) for r in axes) if axes else None,
+        )
+
     def key_names(self) -> list[str]:
         """Result columns holding the per-axis cell keys."""
         return [f"k{a}" for a in range(self.dims)]
@@ -124,6 +142,10 @@ class Assignment:
     inv_scale: tuple[float, ...]
     weights: tuple[float, ...]
     centroids: tuple[tuple[float, ...], ...] = field(default_factory=tuple)
+    ids: tuple[int, ...] = ()  # segment id of each centroid; 0..k-1 when empty
+
+    def segment_ids(self) -> tuple[int, ...]:
+        return self.ids if self.ids else tuple(range(len(self.centroids)))
 
     def score_coefficients(self) -> tuple[np.ndarray, np.ndarray]:
         """a (k x d), b (k): dist_i - ||u||_w^2 = b_i + sum_j a_ij (x_j - center_j).
@@ -360,7 +382,7 @@ def _assignment_layers(
     stage3 = exp.select(exp.Star(), exp.alias_(least, best, quoted=True)).from_(subquery(stage2, internal("b")))
     pick = exp.Case(
         ifs=[exp.If(this=exp.Not(this=col(internal("ok"))), true=exp.Null())]
-        + [exp.If(this=exp.EQ(this=col(score[i]), expression=col(best)), true=num(i)) for i in range(k)]
+        + [exp.If(this=exp.EQ(this=col(score[i]), expression=col(best)), true=num(sid)) for i, sid in enumerate(assign.segment_ids())]
     )
     stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("c")))
     return stage4, seg, best, v
