@@ -14,7 +14,7 @@ import click
 import numpy as np
 
 from . import __version__, sqlgen
-from .engines import TilliteError, open_source
+from .engines import TilliteError, open_source, open_database
 from .model import Model
 from .pipeline import Settings, label, run_profile, segment
 
@@ -66,11 +66,32 @@ def user_errors(quiet: bool = False) -> Iterator[None]:
 
 
 def _open(source: str, table: str | None, writable: bool = False):
-    """open_source, with a malformed --table reported as a usage error."""
+    """open_source with --engine/--spark-conf, and a malformed --table reported as a usage error."""
+    ctx = click.get_current_context(silent=True)
+    meta = ctx.meta if ctx is not None else {}
     try:
-        return open_source(source, table, writable=writable)
+        return open_source(
+            source, table, writable=writable,
+            engine=meta.get("tillite.engine"), spark_conf=_parse_spark_conf(meta.get("tillite.spark_conf", ())),
+        )
     except ValueError as err:
         raise click.BadParameter(str(err), param_hint="--table") from None
+
+
+def _parse_spark_conf(values: tuple[str, ...]) -> dict[str, str]:
+    out: dict[str, str] = {}
+    for item in values:
+        key, sep, value = item.partition("=")
+        if not sep or not key.strip():
+            raise click.BadParameter(f"expected key=value, got {item!r}", param_hint="--spark-conf")
+        out[key.strip()] = value.strip()
+    return out
+
+
+def _remember_engine_option(ctx, param, value):
+    """--engine and --spark-conf are read by _open, so commands keep their signatures."""
+    ctx.meta[f"tillite.{param.name}"] = value
+    return value
 
 
 def _check_dialect(ctx, param, value: str) -> str:
@@ -102,7 +123,16 @@ def main() -> None:
 
 
 source_argument = click.argument("source", metavar="SOURCE")
-table_option = click.option("--table", "-t", help="Table to read (for a database SOURCE; may be schema.table).")
+def table_option(f):
+    """--table, plus the engine options: --engine and --spark-conf (repeatable)."""
+    f = click.option("--spark-conf", "spark_conf", multiple=True, metavar="KEY=VALUE", expose_value=False,
+                     callback=_remember_engine_option,
+                     help="Spark setting for the session tillite starts, e.g. spark.executor.memory=4g (repeatable).")(f)
+    f = click.option("--engine", type=click.Choice(["auto", "duckdb", "postgres", "spark"]), default="auto",
+                     show_default=True, expose_value=False, callback=_remember_engine_option,
+                     help="Where the SQL runs. auto: postgresql://... is PostgreSQL; spark://..., local[N], yarn "
+                          "are Spark masters; a file is DuckDB. With --engine spark a Parquet path is read by Spark.")(f)
+    return click.option("--table", "-t", help="Table to read (for a database SOURCE; may be schema.table).")(f)
 columns_option = click.option(
     "--columns", "-c", multiple=True, required=True, help="Numeric columns to segment on, comma-separated (repeatable)."
 )
@@ -163,17 +193,32 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
 @main.command("label")
 @source_argument
 @table_option
-@click.option("--model", "-m", "model_path", required=True, help="Model file written by `tillite segment`.")
+@click.option("--model", "-m", "model_path", help="Model file written by `tillite segment`.")
+@click.option("--store", "store_name", help="Instead of --model: a summary store's current model; "
+              "the labels are then re-created by every `tillite refresh`.")
 @click.option("--into", required=True, help="View (or table) to create; for file sources, a .parquet/.csv file.")
 @click.option("--materialize", is_flag=True, help="Create a table instead of a view.")
 @click.option("--replace", is_flag=True, help="Allow replacing an existing table of that name.")
 @click.option("--quiet", "-q", is_flag=True)
-def label_command(source, table, model_path, into, materialize, replace, quiet) -> None:
+def label_command(source, table, model_path, store_name, into, materialize, replace, quiet) -> None:
     """Add segment and distance to every row of SOURCE as a view, table or file.
 
     The source itself is never written; rows skipped for NULL/NaN/Inf get NULL.
     """
+    if bool(model_path) == bool(store_name):
+        raise click.UsageError("give exactly one of --model and --store")
     with user_errors():
+        if store_name:
+            from . import store as store_api
+
+            engine = open_database(source, writable=True)
+            try:
+                made = store_api.label(engine, store_name, into, materialize=materialize, replace=replace)
+            finally:
+                engine.close()
+            _progress(quiet)("label", f"{made} from store {store_name}")
+            click.echo(made)
+            return
         model = Model.read(model_path)
         engine, src = _open(source, table, writable=True)
         t0 = time.perf_counter()
@@ -276,6 +321,16 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, quiet) -> None:
         click.echo(f"model written to {out}; labels in view meter_day_segments of {db_path}.")
         click.echo("Segments are statistical groupings, not diagnoses: a 'probable leak' segment lists meters")
         click.echo("for the co-operative's usual inspection procedure to confirm.")
+
+
+def _register_subcommands() -> None:
+    from .cli_store import refresh_command, store_group
+
+    main.add_command(store_group)
+    main.add_command(refresh_command)
+
+
+_register_subcommands()
 
 
 if __name__ == "__main__":  # pragma: no cover

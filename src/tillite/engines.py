@@ -7,10 +7,15 @@ and list the tables there are (for error messages).
 
 from __future__ import annotations
 
+import glob
+import importlib
 import os
-from dataclasses import dataclass
+import re
+import shutil
+from contextlib import contextmanager
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Protocol, Sequence
+from typing import Any, ContextManager, Iterator, Mapping, Protocol, Sequence
 
 import numpy as np
 from sqlglot import exp
@@ -21,8 +26,14 @@ from .sqlgen import Source
 __all__ = [
     "Engine",
     "DuckDBEngine",
+    "PostgresEngine",
+    "SparkEngine",
     "TilliteError",
     "SourceError",
+    "EngineError",
+    "MissingExtraError",
+    "ENGINES",
+    "engine_kind",
     "open_source",
     "FILE_SUFFIXES",
     "NUMERIC_TYPES",
@@ -52,6 +63,8 @@ NUMERIC_TYPES = (
     "TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT",
     "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "UHUGEINT",
     "FLOAT", "DOUBLE", "REAL", "DECIMAL", "NUMERIC", "INT",
+    # PostgreSQL's own spellings, and Spark's
+    "DOUBLE PRECISION", "FLOAT4", "FLOAT8", "INT2", "INT4", "INT8", "LONG", "SHORT", "BYTE",
 )
 
 
@@ -66,7 +79,13 @@ class Engine(Protocol):
     dialect: str
 
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
-        """Run a query; its columns as numpy arrays (NULL as NaN for floats, masked otherwise)."""
+        """Run a query; its columns as numpy arrays.
+
+        A column with NULLs is a numpy masked array (masked where NULL; the data
+        under the mask is NaN for floats), as DuckDB's fetchnumpy gives; a NaN in
+        the data stays an unmasked NaN.  ``bytes_fetched`` and ``rows_fetched``
+        add up what came back to Python.
+        """
 
     def execute(self, statement: exp.Expression) -> None:
         """Run a statement that returns nothing."""
@@ -74,11 +93,17 @@ class Engine(Protocol):
     def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
         """Run statements all-or-nothing."""
 
+    def transaction(self) -> ContextManager[None]:
+        """A context in which every statement commits together or not at all."""
+
     def describe(self, source: Source) -> list[tuple[str, str]]:
         """(name, type) of each column of the source."""
 
     def tables(self) -> list[str]:
         """Tables and views there are, as schema.name."""
+
+    def relation_kind(self, name: str) -> str | None:
+        """'table', 'view' or None for a (possibly schema-qualified) relation name."""
 
     def close(self) -> None: ...
 
@@ -90,6 +115,8 @@ class DuckDBEngine:
     path: str = ":memory:"
     read_only: bool = False
     dialect: str = "duckdb"
+    bytes_fetched: int = 0
+    rows_fetched: int = 0
 
     def __post_init__(self) -> None:
         import duckdb
@@ -104,20 +131,28 @@ class DuckDBEngine:
         return sqlgen.render(statement, self.dialect)
 
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
-        return self.con.execute(self.sql_text(statement)).fetchnumpy()
+        got = self.con.execute(self.sql_text(statement)).fetchnumpy()
+        _count_fetched(self, got)
+        return got
 
     def execute(self, statement: exp.Expression) -> None:
         self.con.execute(self.sql_text(statement))
 
     def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
-        self.con.execute("BEGIN TRANSACTION")
-        try:
+        with self.transaction():
             for st in statements:
                 self.con.execute(self.sql_text(st))
+
+    @contextmanager
+    def transaction(self) -> Iterator[None]:
+        """All statements inside commit together, or none do (rollback on any error)."""
+        self.con.begin()
+        try:
+            yield
         except BaseException:
-            self.con.execute("ROLLBACK")
+            self.con.rollback()
             raise
-        self.con.execute("COMMIT")
+        self.con.commit()
 
     def describe(self, source: Source) -> list[tuple[str, str]]:
         try:
@@ -133,6 +168,10 @@ class DuckDBEngine:
     def tables(self) -> list[str]:
         got = self.query(sqlgen.list_tables_statement())
         return [f"{s}.{t}" if s not in ("main",) else str(t) for s, t in zip(got["table_schema"], got["table_name"])]
+
+    def relation_kind(self, name: str) -> str | None:
+        """Through information_schema, case-insensitively as DuckDB resolves names."""
+        return _relation_kind_from_listing(self.query(sqlgen.list_tables_statement()), name, None, case_sensitive=False)
 
     def _missing_table_message(self, source: Source) -> str:
         existing = self.tables()
@@ -153,14 +192,39 @@ def file_reader_for(path: str) -> str | None:
     return None
 
 
-def open_source(location: str, table: str | None, writable: bool = False) -> tuple[Engine, Source]:
+def open_database(path: str, writable: bool = False) -> Engine:
+    """The DuckDB database file at ``path``, which must exist (DuckDB would create an empty one)."""
+    if not os.path.exists(path):
+        raise SourceError(f"database {path} does not exist")
+    return DuckDBEngine(path, read_only=not writable)
+
+
+def open_source(
+    location: str,
+    table: str | None,
+    writable: bool = False,
+    database: str | None = None,
+    engine: str | None = None,
+    spark_conf: Mapping[str, str] | None = None,
+) -> tuple[Engine, Source]:
     """Engine and Source for a command-line SOURCE and --table.
 
+    ``engine`` (duckdb, postgres, spark; None or "auto" to tell from SOURCE):
+    a ``postgresql://`` URL is PostgreSQL, a Spark master (``spark://host:7077``,
+    ``local[2]``, ``yarn``, ``k8s://...``) is Spark, anything else is DuckDB.
+    See ``_open_postgres``/``_open_spark`` for those two.
+
     A Parquet/CSV/JSON path or glob (or a directory of Parquet files) is read in
-    place through an in-memory DuckDB; anything else is a DuckDB database file,
-    which must exist (DuckDB would otherwise create an empty one) and is opened
+    place through DuckDB (in memory, or the ``database`` file when given, e.g. to
+    keep a summary store there); anything else is a DuckDB database file, which
+    must exist (DuckDB would otherwise create an empty one) and is opened
     read-only unless the caller must write (labels).
     """
+    kind = engine_kind(location, engine)
+    if kind == "postgres":
+        return _open_postgres(location, table, writable)
+    if kind == "spark":
+        return _open_spark(location, table, dict(spark_conf or {}))
     reader = file_reader_for(location)
     if reader is None and os.path.isdir(location):
         reader = "parquet"
@@ -168,9 +232,471 @@ def open_source(location: str, table: str | None, writable: bool = False) -> tup
     if reader is not None:
         if not any(ch in location for ch in "*?[") and not os.path.exists(location):
             raise SourceError(f"data file {location} does not exist")
+        if database is not None:
+            return DuckDBEngine(database, read_only=not writable), Source.of_files(location, reader)
         return DuckDBEngine(":memory:"), Source.of_files(location, reader)
     if not os.path.exists(location):
         raise SourceError(f"database {location} does not exist (give a .duckdb file, or a Parquet/CSV path)")
     if not table:
         raise SourceError(f"--table is needed to read the database {location}")
     return DuckDBEngine(location, read_only=not writable), Source.of_table(table)
+
+
+# ----------------------------------------------------------------------------- shared by the engines
+
+
+class EngineError(TilliteError):
+    """The database refused or failed a statement; the message is the database's own first line."""
+
+
+class MissingExtraError(TilliteError):
+    """An engine's driver is not installed; the message names the extra to install."""
+
+
+#: The engines there are, and the optional extra that installs each one's driver.
+ENGINES = {"duckdb": None, "postgres": "postgres", "spark": "spark"}
+
+#: SOURCE strings that name a Spark master rather than a file or a database.
+SPARK_MASTER = re.compile(r"^(spark://|k8s://|mesos://|local(\[[0-9*]+(,[0-9]+)?\])?$|yarn$)")
+
+POSTGRES_URL = re.compile(r"^postgres(ql)?://")
+
+
+def require_extra(module: str, extra: str) -> Any:
+    """Import a driver, or say which extra brings it."""
+    try:
+        return importlib.import_module(module)
+    except ImportError:
+        raise MissingExtraError(
+            f"the {extra} engine needs the Python package {module.split('.')[0]}: pip install 'tillite[{extra}]'"
+        ) from None
+
+
+def engine_kind(location: str, engine: str | None = None) -> str:
+    """Which engine serves SOURCE: the one asked for, else told from the SOURCE string."""
+    if engine not in (None, "", "auto"):
+        if engine not in ENGINES:
+            raise SourceError(f"unknown engine {engine!r}; expected one of {', '.join(ENGINES)}")
+        return engine
+    if POSTGRES_URL.match(location):
+        return "postgres"
+    if SPARK_MASTER.match(location):
+        return "spark"
+    return "duckdb"
+
+
+def first_line(err: BaseException) -> str:
+    text = str(err).strip()
+    return text.splitlines()[0] if text else type(err).__name__
+
+
+def column_array(values: Sequence[Any], kind: str) -> np.ndarray:
+    """One result column as numpy, NULLs masked as DuckDB's fetchnumpy does.
+
+    kind is float, int, bool or object.  A None is NULL (masked; NaN under the
+    mask for floats, so np.asarray of the column reads NULL as NaN); a float NaN
+    from the database stays an unmasked NaN.
+    """
+    null = np.fromiter((v is None for v in values), dtype=bool, count=len(values))
+    if kind == "float":
+        data = np.fromiter((np.nan if v is None else float(v) for v in values), dtype=np.float64, count=len(values))
+    elif kind == "int":
+        data = np.fromiter((0 if v is None else int(v) for v in values), dtype=np.int64, count=len(values))
+    elif kind == "bool":
+        data = np.fromiter((False if v is None else bool(v) for v in values), dtype=bool, count=len(values))
+    else:
+        data = np.empty(len(values), dtype=object)
+        for i, v in enumerate(values):
+            data[i] = v
+    return np.ma.MaskedArray(data, mask=null) if null.any() else data
+
+
+def rows_to_columns(names: Sequence[str], kinds: Sequence[str], rows: Sequence[Sequence[Any]]) -> dict[str, np.ndarray]:
+    """Result rows (tuples) as named numpy columns."""
+    return {name: column_array([r[i] for r in rows], kind) for i, (name, kind) in enumerate(zip(names, kinds))}
+
+
+def _count_fetched(engine: Any, got: Mapping[str, np.ndarray]) -> None:
+    """Add a result's size to the engine's tally of what came back to Python."""
+    arrays = list(got.values())
+    engine.bytes_fetched += int(sum(np.ma.getdata(a).nbytes + (a.mask.nbytes if np.ma.isMaskedArray(a) else 0) for a in arrays))
+    engine.rows_fetched += len(arrays[0]) if arrays else 0
+
+
+def _relation_kind_from_listing(
+    got: Mapping[str, np.ndarray], name: str, default_schema: str | None, case_sensitive: bool
+) -> str | None:
+    """'table'/'view'/None from information_schema.tables rows (table_schema, table_name, table_type).
+
+    An unqualified name matches in ``default_schema`` when given, else in any schema.
+    """
+    fold = (lambda t: t) if case_sensitive else (lambda t: t.lower())
+    parts = [fold(p) for p in name.split(".")]
+    schema = parts[-2] if len(parts) >= 2 else (fold(default_schema) if default_schema else None)
+    for s, t, kind in zip(got["table_schema"], got["table_name"], got["table_type"]):
+        if fold(str(t)) == parts[-1] and (schema is None or fold(str(s)) == schema):
+            return "view" if "VIEW" in str(kind).upper() else "table"
+    return None
+
+
+# ----------------------------------------------------------------------------- PostgreSQL
+
+#: Result kinds by PostgreSQL type OID (bool, int2/4/8, float4/8, numeric); the rest are objects.
+PG_KINDS = {16: "bool", 20: "int", 21: "int", 23: "int", 700: "float", 701: "float", 1700: "float"}
+
+#: Type names for describe(), as PostgreSQL's documentation spells them.
+PG_TYPE_NAMES = {
+    16: "BOOLEAN", 20: "BIGINT", 21: "SMALLINT", 23: "INTEGER", 700: "REAL", 701: "DOUBLE PRECISION",
+    1700: "NUMERIC", 25: "TEXT", 1043: "VARCHAR", 1082: "DATE", 1114: "TIMESTAMP", 1184: "TIMESTAMPTZ",
+}
+
+#: Schemas of the server's own catalog, left out of table listings.
+PG_SYSTEM_SCHEMAS = ("pg_catalog", "information_schema", "pg_toast")
+
+
+@dataclass
+class PostgresEngine:
+    """PostgreSQL through psycopg 3: the same trees rendered in the postgres dialect.
+
+    ``conninfo`` is a ``postgresql://`` URL or a ``key=value`` string.  Opened
+    read-only (default_transaction_read_only) unless the caller must write, so
+    segmenting cannot change the database.  Statements run in autocommit mode;
+    ``transaction()`` groups them (PostgreSQL's DDL is transactional).
+    """
+
+    conninfo: str
+    read_only: bool = False
+    dialect: str = "postgres"
+    bytes_fetched: int = 0
+    rows_fetched: int = 0
+
+    def __post_init__(self) -> None:
+        psycopg = require_extra("psycopg", "postgres")
+        self._psycopg = psycopg
+        try:
+            self.con = psycopg.connect(self._connect_string(), autocommit=True)
+        except psycopg.Error as err:
+            raise SourceError(f"cannot connect to PostgreSQL at {self.where}: {first_line(err)}") from None
+
+    def _connect_string(self) -> str:
+        from psycopg.conninfo import conninfo_to_dict, make_conninfo
+
+        try:
+            params = conninfo_to_dict(self.conninfo)
+        except self._psycopg.ProgrammingError as err:
+            raise SourceError(f"not a PostgreSQL connection string: {first_line(err)}") from None
+        if self.read_only:
+            params["options"] = f"{params.get('options') or ''} -c default_transaction_read_only=on".strip()
+        params.setdefault("application_name", "tillite")
+        return make_conninfo("", **params)
+
+    @property
+    def where(self) -> str:
+        """The server and database, for messages (never the password)."""
+        from psycopg.conninfo import conninfo_to_dict
+
+        try:
+            p = conninfo_to_dict(self.conninfo)
+        except Exception:
+            return "(unreadable connection string)"
+        return f"{p.get('user', '')}@{p.get('host', 'localhost')}:{p.get('port', '5432')}/{p.get('dbname', '')}"
+
+    def sql_text(self, statement: exp.Expression) -> str:
+        return sqlgen.render(statement, self.dialect)
+
+    @contextmanager
+    def _errors(self) -> Iterator[None]:
+        try:
+            yield
+        except self._psycopg.Error as err:
+            raise EngineError(f"database error: {first_line(err)}") from None
+
+    def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
+        with self._errors():
+            cur = self.con.execute(self.sql_text(statement))
+            rows = cur.fetchall()
+            desc = cur.description or []
+        got = rows_to_columns([c.name for c in desc], [PG_KINDS.get(c.type_code, "object") for c in desc], rows)
+        _count_fetched(self, got)
+        return got
+
+    def execute(self, statement: exp.Expression) -> None:
+        with self._errors():
+            self.con.execute(self.sql_text(statement))
+
+    def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
+        with self.transaction():
+            for st in statements:
+                self.execute(st)
+
+    @contextmanager
+    def transaction(self) -> Iterator[None]:
+        """BEGIN ... COMMIT, or ROLLBACK on any error inside."""
+        with self._errors(), self.con.transaction():
+            yield
+
+    def describe(self, source: Source) -> list[tuple[str, str]]:
+        errors = self._psycopg.errors
+        try:
+            cur = self.con.execute(self.sql_text(sqlgen.describe_statement(source)))
+        except (errors.UndefinedTable, errors.InvalidSchemaName):
+            raise SourceError(self._missing_table_message(source)) from None
+        except self._psycopg.Error as err:
+            raise SourceError(f"cannot read {source.label}: {first_line(err)}") from None
+        return [(c.name, self._type_name(c.type_code)) for c in cur.description or []]
+
+    def _type_name(self, oid: int) -> str:
+        if oid in PG_TYPE_NAMES:
+            return PG_TYPE_NAMES[oid]
+        info = self._psycopg.postgres.types.get(oid)
+        return info.name.upper() if info is not None else f"OID {oid}"
+
+    def _listing(self) -> dict[str, np.ndarray]:
+        return self.query(sqlgen.list_tables_statement())
+
+    def tables(self) -> list[str]:
+        got = self._listing()
+        out = []
+        for s, t in zip(got["table_schema"], got["table_name"]):
+            if str(s) not in PG_SYSTEM_SCHEMAS:
+                out.append(str(t) if s == "public" else f"{s}.{t}")
+        return out
+
+    def relation_kind(self, name: str) -> str | None:
+        """Through information_schema; an unqualified name is looked up in current_schema(), case as written."""
+        schema = str(self.query(sqlgen.current_schema_statement())["schema"][0])
+        return _relation_kind_from_listing(self._listing(), name, schema, case_sensitive=True)
+
+    def _missing_table_message(self, source: Source) -> str:
+        listing = ", ".join(self.tables()) or "(none)"
+        return f"table {source.label} not found in PostgreSQL database {self.where}; tables there: {listing}"
+
+    def close(self) -> None:
+        self.con.close()
+
+
+def _open_postgres(location: str, table: str | None, writable: bool) -> tuple[Engine, Source]:
+    if not table:
+        raise SourceError("--table is needed to read a PostgreSQL database (schema.table or table)")
+    return PostgresEngine(location, read_only=not writable), Source.of_table(table)
+
+
+# ----------------------------------------------------------------------------- Spark
+
+#: Result kinds by Spark SQL type name; the rest are objects.
+SPARK_KINDS = {
+    "double": "float", "float": "float", "decimal": "float",
+    "long": "int", "integer": "int", "short": "int", "byte": "int",
+    "boolean": "bool",
+}
+
+#: Settings for a session tillite starts with a local master (a user's --spark-conf wins).
+SPARK_LOCAL_DEFAULTS = {
+    "spark.ui.enabled": "false",
+    "spark.ui.showConsoleProgress": "false",
+    "spark.sql.shuffle.partitions": "8",
+    "spark.log.level": "ERROR",
+}
+
+
+@dataclass
+class SparkEngine:
+    """Spark SQL through pyspark: the same trees rendered in the spark dialect.
+
+    Give ``session`` to use a SparkSession you have (it is left running on
+    close), or ``master`` (``local[2]``, ``spark://host:7077``, ``yarn``, ...)
+    and ``conf`` to start one.  Results are collected from the query's few rows
+    (cells and segments); the rows themselves never reach the driver.
+
+    Labels: a CREATE VIEW becomes a TEMPORARY VIEW when it reads a temporary
+    view (Spark refuses a catalog view over one) or when ``temporary_views`` is
+    True; a CREATE TABLE ... AS SELECT is written by the DataFrame writer
+    (``saveAsTable``, overwrite only when the statement says OR REPLACE); a
+    COPY to a file is written by Spark's file writer as one file.  Spark has no
+    multi-statement transactions: ``transaction()`` runs statements one by one.
+    """
+
+    master: str | None = "local[*]"
+    conf: dict[str, str] = field(default_factory=dict)
+    session: Any = None
+    temporary_views: bool | None = None
+    dialect: str = "spark"
+    bytes_fetched: int = 0
+    rows_fetched: int = 0
+
+    def __post_init__(self) -> None:
+        require_extra("pyspark.sql", "spark")
+        from pyspark.errors import PySparkException
+        from py4j.protocol import Py4JError
+
+        self._errors_caught = (PySparkException, Py4JError)
+        self._owns_session = self.session is None
+        if self.session is None:
+            self.session = self._start_session()
+
+    def _start_session(self) -> Any:
+        from pyspark.sql import SparkSession
+
+        builder = SparkSession.builder.appName("tillite")
+        conf = dict(self.conf)
+        master = conf.pop("spark.master", None) or self.master
+        if master:
+            builder = builder.master(master)
+        if master and master.startswith("local"):
+            conf = {**SPARK_LOCAL_DEFAULTS, **conf}
+        for key, value in conf.items():
+            builder = builder.config(key, value)
+        try:
+            return builder.getOrCreate()
+        except Exception as err:  # a JVM that cannot start shows as several exception types
+            raise SourceError(f"cannot start Spark with master {master}: {first_line(err)}") from None
+
+    @property
+    def spark(self) -> Any:
+        return self.session
+
+    def sql_text(self, statement: exp.Expression) -> str:
+        try:
+            return sqlgen.render(statement, self.dialect)
+        except ValueError as err:
+            raise SourceError(str(err)) from None
+
+    @contextmanager
+    def _errors(self) -> Iterator[None]:
+        try:
+            yield
+        except self._errors_caught as err:
+            raise EngineError(f"database error: {first_line(err)}") from None
+
+    def _frame(self, statement: exp.Expression) -> Any:
+        return self.spark.sql(self.sql_text(statement))
+
+    def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
+        with self._errors():
+            frame = self._frame(statement)
+            rows = frame.collect()
+        fields = frame.schema.fields
+        kinds = [SPARK_KINDS.get(f.dataType.typeName(), "object") for f in fields]
+        got = rows_to_columns([f.name for f in fields], kinds, rows)
+        _count_fetched(self, got)
+        return got
+
+    def execute(self, statement: exp.Expression) -> None:
+        with self._errors():
+            if _is_create(statement, "TABLE") and isinstance(statement.expression, exp.Query):
+                self._save_as_table(statement)
+            elif isinstance(statement, exp.Copy):
+                self._write_file(statement)
+            elif _is_create(statement, "VIEW") and self._needs_temporary(statement):
+                self.spark.sql(self.sql_text(sqlgen.temporary_view(statement)))
+            else:
+                self.spark.sql(self.sql_text(statement))
+
+    def _save_as_table(self, create: exp.Create) -> None:
+        """CREATE [OR REPLACE] TABLE name AS SELECT, written by Spark's own table writer."""
+        mode = "overwrite" if create.args.get("replace") else "errorifexists"
+        self._frame(create.expression).write.mode(mode).saveAsTable(sqlgen.render(create.this, self.dialect))
+
+    def _write_file(self, copy: exp.Copy) -> None:
+        """COPY (select) TO 'path' (FORMAT f): Spark writes one part file, which becomes ``path``.
+
+        Local filesystem paths only (local mode, or a path every executor shares).
+        """
+        path = copy.args["files"][0].name
+        fmt = next((p.expression.name.lower() for p in copy.args.get("params") or [] if p.name.upper() == "FORMAT"), "parquet")
+        staging = f"{path}.spark-parts"
+        writer = self._frame(copy.this.this).coalesce(1).write.mode("overwrite").format(fmt)
+        if fmt == "csv":
+            writer = writer.option("header", "true")
+        writer.save(staging)
+        try:
+            parts = sorted(glob.glob(os.path.join(staging, "part-*")))
+            if len(parts) != 1:
+                raise EngineError(f"Spark wrote {len(parts)} part files to {staging}; expected one")
+            os.replace(parts[0], path)
+        finally:
+            shutil.rmtree(staging, ignore_errors=True)
+
+    def _needs_temporary(self, create: exp.Create) -> bool:
+        if self.temporary_views is not None:
+            return self.temporary_views
+        query = create.expression
+        return any(self._is_temporary(t) for t in query.find_all(exp.Table)) if query is not None else False
+
+    def _is_temporary(self, table: exp.Table) -> bool:
+        if table.args.get("db") is not None:
+            return table.db.lower() == "global_temp"
+        if not table.name:
+            return False
+        try:
+            return bool(self.spark.catalog.getTable(sqlgen.render(table, self.dialect)).isTemporary)
+        except self._errors_caught:
+            return False
+
+    def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
+        with self.transaction():
+            for st in statements:
+                self.execute(st)
+
+    @contextmanager
+    def transaction(self) -> Iterator[None]:
+        """Spark SQL has no multi-statement transactions: statements inside run one by one."""
+        yield
+
+    def describe(self, source: Source) -> list[tuple[str, str]]:
+        try:
+            frame = self._frame(sqlgen.describe_statement(source))
+        except self._errors_caught as err:
+            text = str(err)
+            if "TABLE_OR_VIEW_NOT_FOUND" in text or "SCHEMA_NOT_FOUND" in text:
+                raise SourceError(self._missing_table_message(source)) from None
+            if "PATH_NOT_FOUND" in text:
+                raise SourceError(f"data file {source.label} does not exist") from None
+            raise SourceError(f"cannot read {source.label}: {first_line(err)}") from None
+        return [(f.name, f.dataType.simpleString().upper()) for f in frame.schema.fields]
+
+    def tables(self) -> list[str]:
+        with self._errors():
+            listed = self.spark.catalog.listTables()
+        return [".".join([*(t.namespace or []), t.name]) if not t.isTemporary else t.name for t in listed]
+
+    def relation_kind(self, name: str) -> str | None:
+        """Through Spark's catalog (Spark SQL has no information_schema)."""
+        try:
+            found = self.spark.catalog.getTable(sqlgen.render(sqlgen.table_name(name), self.dialect))
+        except self._errors_caught:
+            return None
+        return "view" if found.isTemporary or str(found.tableType).upper() in ("VIEW", "TEMPORARY") else "table"
+
+    def _missing_table_message(self, source: Source) -> str:
+        listing = ", ".join(self.tables()) or "(none)"
+        return f"table {source.label} not found in Spark's catalog; tables there: {listing}"
+
+    def close(self) -> None:
+        if self._owns_session and self.session is not None:
+            self.session.stop()
+            self.session = None
+
+
+def _is_create(statement: exp.Expression, kind: str) -> bool:
+    return isinstance(statement, exp.Create) and str(statement.args.get("kind") or "").upper() == kind
+
+
+def _open_spark(location: str, table: str | None, conf: dict[str, str]) -> tuple[Engine, Source]:
+    """SOURCE is a Spark master (with --table), or a Parquet/JSON path read in place by Spark.
+
+    For a path the master comes from --spark-conf spark.master=..., else local[*].
+    """
+    reader = file_reader_for(location)
+    is_dir = reader is None and os.path.isdir(location)
+    if reader is None and not is_dir:
+        if not table:
+            raise SourceError(f"--table is needed to read from Spark at {location}")
+        return SparkEngine(master=location, conf=conf), Source.of_table(table)
+    reader = reader or "parquet"
+    if reader not in ("parquet", "json"):
+        raise SourceError(f"Spark SQL reads {reader} files without their header; convert {location} to Parquet or register it as a table")
+    local = "://" not in location
+    if local and not any(ch in location for ch in "*?[") and not os.path.exists(location):
+        raise SourceError(f"data file {location} does not exist")
+    return SparkEngine(master=conf.get("spark.master", "local[*]"), conf=conf), Source.of_files(location, reader)

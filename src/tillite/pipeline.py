@@ -546,11 +546,13 @@ def label(
     into: str,
     materialize: bool = False,
     replace: bool = False,
+    in_transaction: bool = False,
 ) -> str:
     """Create the labels view (or table, or file for file sources); returns what was made.
 
     The source is only ever read.  An existing table is replaced only with
-    ``replace``; an existing view of that name is replaced.
+    ``replace``; an existing view of that name is replaced.  ``in_transaction``:
+    the caller already holds a transaction (a store refresh).
     """
     source_columns = check_columns(engine, source, model.columns)
     select = sqlgen.label_select(source, model.columns, source_columns, model.assignment(), engine.dialect)
@@ -564,10 +566,14 @@ def label(
     kind = existing_relation_kind(engine, into)
     if kind == "table" and not replace:
         raise InputError(f"a table named {into} already exists; pass replace=True (--replace) to overwrite it")
-    if kind == "view" and materialize or kind == "table" and not materialize:
-        engine.run_in_transaction([sqlgen.drop_statement(into, kind), sqlgen.create_relation_statement(into, select, materialize)])
+    statements = [sqlgen.create_relation_statement(into, select, materialize)]
+    if kind == "view" and materialize or kind == "table":  # no engine but DuckDB has CREATE OR REPLACE TABLE
+        statements.insert(0, sqlgen.drop_statement(into, kind))
+    if in_transaction:
+        for st in statements:
+            engine.execute(st)
     else:
-        engine.execute(sqlgen.create_relation_statement(into, select, materialize))
+        engine.run_in_transaction(statements)
     return f"{'table' if materialize else 'view'} {into}"
 
 
@@ -603,10 +609,10 @@ def _label_to_file(engine: Engine, source: Source, select, into: str, replace: b
 
 
 def existing_relation_kind(engine: Engine, name: str) -> str | None:
-    """'table', 'view' or None for a (possibly schema-qualified) name (case-insensitive, as DuckDB)."""
-    got = engine.query(sqlgen.list_tables_statement())
-    parts = [p.lower() for p in name.split(".")]
-    for schema, table, ttype in zip(got["table_schema"], got["table_name"], got["table_type"]):
-        if str(table).lower() == parts[-1] and (len(parts) == 1 or str(schema).lower() == parts[-2]):
-            return "view" if "VIEW" in str(ttype).upper() else "table"
-    return None
+    """'table', 'view' or None for a (possibly schema-qualified) name.
+
+    Each engine answers in its own way: DuckDB and PostgreSQL through
+    information_schema (case-insensitive in DuckDB; in PostgreSQL case as
+    written, unqualified names in current_schema()), Spark through its catalog.
+    """
+    return engine.relation_kind(name)

@@ -45,6 +45,7 @@ class Source:
     table: tuple[str, ...] = ()
     files: tuple[str, ...] = ()
     reader: str = "parquet"
+    filename: bool = False  # add the file name as a column `filename` (files only)
 
     @staticmethod
     def of_table(name: str | Sequence[str]) -> "Source":
@@ -77,7 +78,10 @@ class Source:
             return exp.Table(**kwargs)
         paths = [exp.Literal.string(f) for f in self.files]
         arg = paths[0] if len(paths) == 1 else exp.Array(expressions=paths)
-        return exp.Table(this=exp.Anonymous(this=FILE_READERS[self.reader], expressions=[arg]))
+        args: list[exp.Expression] = [arg]
+        if self.filename:
+            args.append(exp.EQ(this=exp.column("filename"), expression=exp.true()))
+        return exp.Table(this=exp.Anonymous(this=FILE_READERS[self.reader], expressions=args))
 
 
 @dataclass(frozen=True)
@@ -167,7 +171,7 @@ class Assignment:
 
 def render(statement: exp.Expression, dialect: str = "duckdb", pretty: bool = False) -> str:
     """SQL text of a tree for one dialect."""
-    return statement.sql(dialect=dialect, pretty=pretty)
+    return for_dialect(statement, dialect).sql(dialect=dialect, pretty=pretty)
 
 
 def num(value: float | int) -> exp.Expression:
@@ -310,7 +314,7 @@ def sample_statement(
     """
     rel = source.relation()
     if percent is not None and percent < 100.0:
-        rel.set("sample", exp.TableSample(method=exp.var(method), percent=num(float(percent))))
+        rel.set("sample", table_sample(float(percent), method, dialect))
     names = [internal(f"x{j}") for j in range(len(columns))]
     inner = exp.select(*[exp.alias_(to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)]).from_(rel)
     outer = exp.select(*[col(n) for n in names]).from_(subquery(inner, internal("s"))).where(usable_rows(names, dialect))
@@ -327,7 +331,81 @@ def _sums(v_names: Sequence[str]) -> list[exp.Expression]:
     return aggs
 
 
-def cells_statement(source: Source, columns: Sequence[str], grid: Grid, dialect: str) -> exp.Select:
+@dataclass(frozen=True)
+class Partitioning:
+    """How rows map to partitions: raw expressions grouped on, and their text form.
+
+    Grouping on the raw values (a DATE, an INTEGER) is cheaper than building a
+    text per row; the text ``part`` is built once per group from the grouped
+    values p0, p1, ...  With ``only`` given, the scan keeps only those
+    partitions, compared on the raw typed columns so the engine can skip blocks.
+    """
+
+    expressions: tuple[exp.Expression, ...]
+    names: tuple[str, ...]  # source column names, for the text form; empty for files
+
+    def aliases(self) -> list[str]:
+        return [internal(f"p{i}") for i in range(len(self.expressions))]
+
+    def projected(self) -> list[exp.Expression]:
+        return [exp.alias_(e.copy(), a, quoted=True) for e, a in zip(self.expressions, self.aliases())]
+
+    def text(self) -> exp.Expression:
+        """The partition's text: one value, or name=value pairs joined by '/'; NULL reads 'NULL'."""
+        def as_text(alias: str) -> exp.Expression:
+            return exp.Coalesce(this=exp.cast(col(alias), exp.DataType.build("VARCHAR")), expressions=[exp.Literal.string("NULL")])
+
+        aliases = self.aliases()
+        if len(aliases) == 1:
+            return as_text(aliases[0])
+        pieces: list[exp.Expression] = []
+        for i, (name, alias) in enumerate(zip(self.names, aliases)):
+            pieces += ([exp.Literal.string("/")] if i else []) + [exp.Literal.string(f"{name}="), as_text(alias)]
+        out = pieces[0]
+        for piece in pieces[1:]:
+            out = exp.DPipe(this=out, expression=piece)
+        return out
+
+    def value_columns(self) -> list[exp.Expression]:
+        """Each grouped value as text (NULL stays NULL), returned as pv0, pv1, ..."""
+        return [
+            exp.alias_(exp.cast(col(a), exp.DataType.build("VARCHAR")), f"pv{i}", quoted=True)
+            for i, a in enumerate(self.aliases())
+        ]
+
+    def filter(self, types: Sequence[str], values: Sequence[Sequence[str | None]]) -> exp.Expression:
+        """Rows of the listed partitions: OR over partitions of AND over columns of col = CAST('v' AS type)."""
+        alternatives = []
+        for row in values:
+            terms = []
+            for e, t, v in zip(self.expressions, types, row):
+                if v is None:
+                    terms.append(exp.Is(this=e.copy(), expression=exp.Null()))
+                else:
+                    terms.append(exp.EQ(this=e.copy(), expression=exp.cast(exp.Literal.string(v), exp.DataType.build(t))))
+            alternatives.append(paren(all_of(terms)))
+        out = alternatives[0]
+        for alt in alternatives[1:]:
+            out = exp.Or(this=out, expression=alt)
+        return out
+
+    @staticmethod
+    def of_columns(names: Sequence[str]) -> "Partitioning":
+        return Partitioning(tuple(col(n) for n in names), tuple(names))
+
+    @staticmethod
+    def of_files() -> "Partitioning":
+        return Partitioning((exp.column("filename"),), ())
+
+
+def cells_statement(
+    source: Source,
+    columns: Sequence[str],
+    grid: Grid,
+    dialect: str,
+    partition: Partitioning | None = None,
+    where: exp.Expression | None = None,
+) -> exp.Select:
     """The cell pass: one GROUP BY over the per-axis grid keys.
 
     Returns k0..k{p-1} (floor of each binned coordinate, as DOUBLE: no cast, no
@@ -335,21 +413,119 @@ def cells_statement(source: Source, columns: Sequence[str], grid: Grid, dialect:
     centred values v = x - grid.center (scale them with ``Grid.inv_scale``
     afterwards).  Rows with a NULL/NaN/Inf value get k0 NULL: the groups with k0
     NULL count the skipped rows and their sums are meaningless.
+
+    With ``partition`` the cells are keyed by (partition, cell) and the first
+    result column is the partition's text ``part``; ``where`` filters the rows
+    scanned (e.g. ``Partitioning.filter``).
     """
     d = len(columns)
     v = [internal(f"v{j}") for j in range(d)]
-    stage1 = exp.select(*[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, grid.center), v)]).from_(
+    parts = partition.projected() if partition is not None else []
+    stage1 = exp.select(*parts, *[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, grid.center), v)]).from_(
         source.relation()
     )
+    if where is not None:
+        stage1 = stage1.where(where)
     factors = grid.key_factors()
-    keys = [exp.Floor(this=linear_form(v, factors[:, a])) for a in range(factors.shape[1])]
+    keys = [floor_of(linear_form(v, factors[:, a]), dialect) for a in range(factors.shape[1])]
     keys[0] = case_when(usable_rows(v, dialect), keys[0])
     names = grid.key_names()
-    stage2 = exp.select(*[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *[col(n) for n in v]).from_(
-        subquery(stage1, internal("a"))
+    part_cols = [col(a) for a in partition.aliases()] if partition is not None else []
+    stage2 = exp.select(
+        *[c.copy() for c in part_cols], *[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *[col(n) for n in v]
+    ).from_(subquery(stage1, internal("a")))
+    part_text = [exp.alias_(partition.text(), "part", quoted=True)] if partition is not None else []
+    group = [*part_cols, *[col(n) for n in names]]
+    return exp.select(*part_text, *[col(n) for n in names], *_sums(v)).from_(subquery(stage2, internal("b"))).group_by(
+        *[c.copy() for c in group]
     )
-    key_cols = [col(n) for n in names]
-    return exp.select(*key_cols, *_sums(v)).from_(subquery(stage2, internal("b"))).group_by(*[c.copy() for c in key_cols])
+
+
+def fingerprint_statement(source: Source, columns: Sequence[str], partition: Partitioning, dialect: str) -> exp.Select:
+    """Per partition: its text, its values, row count and an order-independent hash aggregate.
+
+    Grouped on the raw partition values; the hash sum (of the chosen columns) is
+    returned as text so no digits are lost on the way to Python.
+    """
+    if dialect != "duckdb":
+        raise NotImplementedError(f"partition fingerprints are not built for the {dialect} dialect yet")
+    row_hash = exp.Anonymous(this="hash", expressions=[col(c) for c in columns])
+    text = exp.cast(exp.Sum(this=row_hash), exp.DataType.build("VARCHAR"))
+    inner = (
+        exp.select(
+            *partition.projected(),
+            exp.alias_(exp.Count(this=exp.Star()), "rows", quoted=True),
+            exp.alias_(text, "fingerprint", quoted=True),
+        )
+        .from_(source.relation())
+        .group_by(*[e.copy() for e in partition.expressions])
+    )
+    return exp.select(
+        exp.alias_(partition.text(), "part", quoted=True), *partition.value_columns(), col("rows"), col("fingerprint")
+    ).from_(subquery(inner, internal("f")))
+
+
+def merged_cells_statement(cells_table: str, key_names: Sequence[str], d: int) -> exp.Select:
+    """The store's cells summed over partitions: one CF per grid cell (NULL key = skipped rows)."""
+    keys = [col(k) for k in key_names]
+    aggs = [exp.alias_(exp.Sum(this=col("n")), "n", quoted=True)]
+    aggs += [exp.alias_(exp.Sum(this=col(f"ls{j}")), f"ls{j}", quoted=True) for j in range(d)]
+    aggs += [exp.alias_(exp.Sum(this=col(f"ss{j}")), f"ss{j}", quoted=True) for j in range(d)]
+    return exp.select(*keys, *aggs).from_(table_name(cells_table)).group_by(*[k.copy() for k in keys])
+
+
+def insert_select_statement(table: str, select: exp.Select) -> exp.Insert:
+    return exp.Insert(this=table_name(table), expression=select)
+
+
+def insert_values_statement(table: str, rows: Sequence[Sequence[object]]) -> exp.Insert:
+    """INSERT INTO table VALUES (...), built from Python values as literals."""
+    return exp.Insert(this=table_name(table), expression=exp.Values(expressions=[exp.Tuple(expressions=[literal(v) for v in r]) for r in rows]))
+
+
+def literal(value: object) -> exp.Expression:
+    """A SQL literal of a Python value (None, bool, int, float, str)."""
+    if value is None:
+        return exp.Null()
+    if isinstance(value, bool):
+        return exp.Boolean(this=value)
+    if isinstance(value, (int, np.integer, float, np.floating)):
+        return num(value)
+    return exp.Literal.string(str(value))
+
+
+def equals_all(pairs: dict[str, object]) -> exp.Expression:
+    return all_of([exp.EQ(this=col(k), expression=literal(v)) for k, v in pairs.items()])
+
+
+def delete_statement(table: str, where: exp.Expression) -> exp.Delete:
+    return exp.Delete(this=table_name(table), where=exp.Where(this=where))
+
+
+def in_list(column: str, values: Sequence[object]) -> exp.Expression:
+    return exp.In(this=col(column), expressions=[literal(v) for v in values])
+
+
+def select_where(table: str, where: exp.Expression | None = None, columns: Sequence[str] | None = None) -> exp.Select:
+    sel = exp.select(*([col(c) for c in columns] if columns else [exp.Star()])).from_(table_name(table))
+    return sel.where(where) if where is not None else sel
+
+
+def update_statement(table: str, values: dict[str, object], where: exp.Expression) -> exp.Update:
+    return exp.Update(
+        this=table_name(table),
+        expressions=[exp.EQ(this=col(k), expression=literal(v)) for k, v in values.items()],
+        where=exp.Where(this=where),
+    )
+
+
+def create_table_statement(table: str, columns: Sequence[tuple[str, str]], if_not_exists: bool = True) -> exp.Create:
+    """CREATE TABLE [IF NOT EXISTS] table (name type, ...)."""
+    schema = exp.Schema(
+        this=table_name(table),
+        expressions=[exp.ColumnDef(this=exp.to_identifier(n, quoted=True), kind=exp.DataType.build(t)) for n, t in columns],
+    )
+    return exp.Create(this=schema, kind="TABLE", exists=if_not_exists)
 
 
 def _assignment_layers(
@@ -453,13 +629,17 @@ def table_name(name: str) -> exp.Table:
 
 
 def create_relation_statement(name: str, select: exp.Select, materialize: bool) -> exp.Create:
-    """CREATE OR REPLACE VIEW (or TABLE) name AS select."""
-    return exp.Create(this=table_name(name), kind="TABLE" if materialize else "VIEW", replace=True, expression=select)
+    """CREATE OR REPLACE VIEW name AS select, or CREATE TABLE name AS select.
+
+    Only views say OR REPLACE: PostgreSQL and Spark have no CREATE OR REPLACE
+    TABLE, so an existing table is dropped first, in the same transaction.
+    """
+    return exp.Create(this=table_name(name), kind="TABLE" if materialize else "VIEW", replace=not materialize, expression=select)
 
 
 def drop_statement(name: str, kind: str) -> exp.Drop:
     """DROP VIEW / DROP TABLE IF EXISTS name."""
-    return exp.Drop(this=table_name(name), kind="VIEW" if kind == "view" else "TABLE", exists=True)
+    return exp.Drop(tables=[table_name(name)], kind="VIEW" if kind == "view" else "TABLE", exists=True)
 
 
 def copy_statement(select: exp.Select, path: str, file_format: str) -> exp.Copy:
@@ -470,3 +650,90 @@ def copy_statement(select: exp.Select, path: str, file_format: str) -> exp.Copy:
         files=[exp.Literal.string(path)],
         params=[exp.CopyParameter(this=exp.var("FORMAT"), expression=exp.var(file_format.upper()))],
     )
+
+
+# --------------------------------------------------------------------------- dialects
+#
+# The same statement for other engines.  Where a dialect lacks a form DuckDB
+# has, the builders above call these helpers, which build an equivalent tree for
+# that dialect; ``render`` applies ``for_dialect`` to what only shows at the end
+# (file relations).  Engines never write SQL of their own.
+
+#: sqlglot dialect names that speak Spark SQL.
+SPARK_DIALECTS = ("spark", "spark2", "databricks", "hive")
+
+#: Spark SQL reads files in place as ``format.`path```; CSV has no header there.
+SPARK_FILE_FORMATS = {"read_parquet": "parquet", "read_json_auto": "json"}
+
+
+def floor_of(e: exp.Expression, dialect: str) -> exp.Expression:
+    """floor(e) as a DOUBLE, exact for every double.
+
+    Spark's FLOOR returns BIGINT, which overflows (an error under ANSI mode)
+    for far outliers and turns NaN into 0; there floor(e) is built from the
+    exact remainder r = e % 1 (sign of e): (e - r) - 1 when r < 0, else e - r.
+    e - r is exact (an integer-valued double) and r is 0 beyond 2^52.
+    """
+    if dialect not in SPARK_DIALECTS:
+        return exp.Floor(this=e)
+    rem = exp.Mod(this=paren(e), expression=num(1.0))
+    whole = exp.Sub(this=paren(e.copy()), expression=paren(rem))
+    below = exp.LT(this=paren(rem.copy()), expression=num(0.0))
+    return exp.Case(ifs=[exp.If(this=below, true=exp.Sub(this=paren(whole), expression=num(1.0)))], default=whole.copy())
+
+
+def table_sample(percent: float, method: str, dialect: str) -> exp.TableSample:
+    """TABLESAMPLE METHOD (percent) in the dialect's own form.
+
+    Spark SQL has a single row-sampling form, ``TABLESAMPLE (p PERCENT)``, whose
+    percentage must be a plain decimal (it refuses exponent literals); BigQuery
+    has SYSTEM only.  PostgreSQL, Trino and Snowflake take SYSTEM and BERNOULLI.
+    """
+    if dialect in SPARK_DIALECTS:
+        text = np.format_float_positional(percent, trim="-", precision=12, fractional=True)
+        return exp.TableSample(percent=exp.Literal.number(text))
+    if dialect == "bigquery":
+        method = "SYSTEM"
+    return exp.TableSample(method=exp.var(method), percent=num(float(percent)))
+
+
+def for_dialect(statement: exp.Expression, dialect: str) -> exp.Expression:
+    """The tree as the dialect needs it; the same tree when nothing differs."""
+    if dialect in SPARK_DIALECTS and any(_file_reader_call(t) for t in statement.find_all(exp.Table)):
+        return statement.transform(_spark_file_relation)
+    return statement
+
+
+def _file_reader_call(node: exp.Expression) -> bool:
+    return isinstance(node, exp.Table) and isinstance(node.this, exp.Anonymous) and node.this.name.lower() in FILE_READERS.values()
+
+
+def _spark_file_relation(node: exp.Expression) -> exp.Expression:
+    """read_parquet('p') -> parquet.`p` (one path or glob; Spark reads folders as well)."""
+    if not _file_reader_call(node):
+        return node
+    reader = node.this.name.lower()
+    args = node.this.expressions
+    if reader not in SPARK_FILE_FORMATS:
+        raise ValueError(f"Spark SQL cannot read {reader} sources in place with their header; convert them to Parquet or register a table")
+    if len(args) != 1 or not isinstance(args[0], exp.Literal):
+        raise ValueError("Spark SQL reads one path or glob per source, without extra reader options")
+    table = exp.Table(this=exp.to_identifier(args[0].name, quoted=True), db=exp.to_identifier(SPARK_FILE_FORMATS[reader]))
+    if node.args.get("alias"):
+        table.set("alias", node.args["alias"].copy())
+    return table
+
+
+def temporary_view(create: exp.Create) -> exp.Create:
+    """The same CREATE VIEW as a session-scoped TEMPORARY VIEW (Spark: a view over a temporary view)."""
+    out = create.copy()
+    props = out.args.get("properties") or exp.Properties(expressions=[])
+    if not any(isinstance(p, exp.TemporaryProperty) for p in props.expressions):
+        props.append("expressions", exp.TemporaryProperty())
+    out.set("properties", props)
+    return out
+
+
+def current_schema_statement() -> exp.Select:
+    """The schema unqualified names resolve to (PostgreSQL: the first of search_path that exists)."""
+    return exp.select(exp.alias_(exp.CurrentSchema(), "schema", quoted=True))

@@ -1,0 +1,754 @@
+"""The summary store: per-partition cell CFs kept in the database, and refresh.
+
+A store freezes the grid at build time, so every partition's cells share the
+same keys and add up.  Tables of our own naming, in the source's database:
+
+- ``tillite_stores``: one row per store (source, columns, partitioning, frozen
+  grid, the current model as JSON, the next unused segment id, a version);
+- ``tillite_store_parts``: one row per partition (rows, skipped, fingerprint,
+  file size and modification time for file partitions, when summarised);
+- ``tillite_store_labels``: label views/tables to re-create after a refresh;
+- ``tillite_cells_<store>``: the cells, keyed by (part, k0..), with n, ls*, ss*
+  on the centred values v = x - grid.center.
+
+A refresh fingerprints every partition in one aggregate pass, recomputes cells
+only for new and changed partitions (one statement restricted to them), drops
+vanished ones, re-segments from the merged cells warm-started from the last
+model, and swaps everything in one transaction: if anything fails, the store is
+exactly as it was.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import time
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Callable, Sequence
+
+import numpy as np
+
+from . import features as F
+from . import sqlgen
+from .engines import Engine, TilliteError
+from .features import CF
+from .model import Model
+from .pipeline import (
+    InputError,
+    ProgressFn,
+    SegmentStats,
+    Settings,
+    _null_mask,
+    _quiet,
+    cf_from_result,
+    check_columns,
+    grid_for_profile,
+    label as label_relation,
+    make_model,
+    order_by_size,
+    refine_passes,
+    run_profile,
+    second_phase,
+    standardise_cells,
+)
+from .segmenters import nearest
+from .sqlgen import Grid, Source
+
+__all__ = [
+    "StoreError",
+    "StoreBusy",
+    "PartitionSpec",
+    "StoreInfo",
+    "RefreshReport",
+    "build",
+    "refresh",
+    "status",
+    "load",
+    "label",
+    "subtract_rows",
+    "resegment",
+    "match_segments",
+]
+
+STORES = "tillite_stores"
+PARTS = "tillite_store_parts"
+LABELS = "tillite_store_labels"
+
+STORES_COLUMNS = [
+    ("store", "VARCHAR"), ("source", "VARCHAR"), ("columns", "VARCHAR"), ("partition_by", "VARCHAR"),
+    ("cells_table", "VARCHAR"), ("grid", "VARCHAR"), ("key_range", "VARCHAR"), ("model", "VARCHAR"),
+    ("settings", "VARCHAR"), ("next_id", "BIGINT"), ("version", "BIGINT"), ("built_at", "VARCHAR"),
+    ("refreshed_at", "VARCHAR"),
+]
+PARTS_COLUMNS = [
+    ("store", "VARCHAR"), ("part", "VARCHAR"), ("rows", "BIGINT"), ("fingerprint", "VARCHAR"),
+    ("file_size", "BIGINT"), ("file_mtime", "DOUBLE"), ("summarised_at", "VARCHAR"), ("part_values", "VARCHAR"),
+]
+LABELS_COLUMNS = [("store", "VARCHAR"), ("name", "VARCHAR"), ("materialized", "BOOLEAN")]
+
+
+class StoreError(TilliteError):
+    """The store is missing, damaged, or cannot be changed as asked."""
+
+
+class StoreBusy(StoreError):
+    """Another refresh changed the store first; nothing was changed by this one."""
+
+
+@dataclass(frozen=True)
+class PartitionSpec:
+    """How a source splits into partitions: columns of a table, or one partition per file."""
+
+    columns: tuple[str, ...] = ()
+    files: bool = False
+
+    def to_dict(self) -> dict:
+        return {"columns": list(self.columns), "files": self.files}
+
+    @staticmethod
+    def from_dict(data: dict) -> "PartitionSpec":
+        return PartitionSpec(tuple(data.get("columns", ())), bool(data.get("files", False)))
+
+
+@dataclass
+class StoreInfo:
+    name: str
+    source: Source
+    columns: list[str]
+    partition: PartitionSpec
+    cells_table: str
+    grid: Grid
+    key_range: np.ndarray  # (2, p): per-axis key min and max at build
+    model: Model
+    settings: dict[str, Any]
+    next_id: int
+    version: int
+    built_at: str
+    refreshed_at: str
+
+
+@dataclass
+class RefreshReport:
+    store: str
+    new: list[str] = field(default_factory=list)
+    changed: list[str] = field(default_factory=list)
+    vanished: list[str] = field(default_factory=list)
+    unchanged: int = 0
+    drift: list[dict[str, Any]] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    seconds: dict[str, float] = field(default_factory=dict)
+    model: Model | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "store": self.store,
+            "partitions": {"new": self.new, "changed": self.changed, "vanished": self.vanished, "unchanged": self.unchanged},
+            "drift": self.drift,
+            "warnings": self.warnings,
+            "seconds": self.seconds,
+        }
+
+    def describe(self) -> str:
+        lines = [
+            f"store {self.store}: {len(self.new)} new, {len(self.changed)} changed, {len(self.vanished)} vanished, "
+            f"{self.unchanged} unchanged partition(s)"
+        ]
+        if self.drift:
+            head = f"{'segment':>7}  {'size before':>11}  {'size after':>10}  {'shift (sd)':>10}  {'cells moved':>11}"
+            lines += ["", head]
+            for d in self.drift:
+                before = "-" if d["size_before"] is None else f"{d['size_before']:,}"
+                after = "-" if d["size_after"] is None else f"{d['size_after']:,}"
+                shift = "-" if d["shift_sd"] is None else f"{d['shift_sd']:.3f}"
+                moved = "-" if d["cells_moved"] is None else f"{100 * d['cells_moved']:.1f}%"
+                lines.append(f"{d['segment']:>7}  {before:>11}  {after:>10}  {shift:>10}  {moved:>11}")
+        lines += [f"warning: {w}" for w in self.warnings]
+        return "\n".join(lines)
+
+
+# ----------------------------------------------------------------------------- tables
+
+
+def cells_table_name(store: str) -> str:
+    """Our cells table for a store: tillite_cells_<store, folded to [a-z0-9_]> (quoted anyway)."""
+    folded = re.sub(r"[^a-z0-9_]+", "_", store.lower()).strip("_") or "store"
+    return f"tillite_cells_{folded}"
+
+
+def ensure_tables(engine: Engine) -> None:
+    for table, columns in ((STORES, STORES_COLUMNS), (PARTS, PARTS_COLUMNS), (LABELS, LABELS_COLUMNS)):
+        engine.execute(sqlgen.create_table_statement(table, columns))
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+def _cells_columns(p: int, d: int) -> list[tuple[str, str]]:
+    return (
+        [("part", "VARCHAR")]
+        + [(f"k{a}", "DOUBLE") for a in range(p)]
+        + [("n", "BIGINT")]
+        + [(f"ls{j}", "DOUBLE") for j in range(d)]
+        + [(f"ss{j}", "DOUBLE") for j in range(d)]
+    )
+
+
+def _source_to_dict(source: Source) -> dict:
+    return {"table": list(source.table), "files": list(source.files), "reader": source.reader}
+
+
+def _source_from_dict(data: dict) -> Source:
+    if data.get("table"):
+        return Source.of_table(data["table"])
+    return Source.of_files(data["files"], data["reader"])
+
+
+def _rows(got: dict[str, np.ndarray]) -> list[dict[str, Any]]:
+    names = list(got)
+    count = len(got[names[0]]) if names else 0
+    out = []
+    for i in range(count):
+        row = {}
+        for n in names:
+            v = got[n][i]
+            masked = np.ma.isMaskedArray(got[n]) and np.ma.getmaskarray(got[n])[i]
+            row[n] = None if masked else (v.item() if hasattr(v, "item") else v)
+        out.append(row)
+    return out
+
+
+# ----------------------------------------------------------------------------- partitions
+
+
+def _partitioning(spec: PartitionSpec) -> sqlgen.Partitioning:
+    return sqlgen.Partitioning.of_files() if spec.files else sqlgen.Partitioning.of_columns(spec.columns)
+
+
+def _scan_source(source: Source, spec: PartitionSpec, files: Sequence[str] | None = None) -> Source:
+    """The source as scanned by the store: files carry their name; optionally only some files."""
+    if not spec.files:
+        return source
+    return Source(files=tuple(files) if files is not None else source.files, reader=source.reader, filename=True)
+
+
+def _list_files(source: Source) -> list[str]:
+    import glob
+
+    found: set[str] = set()
+    for pattern in source.files:
+        found.update(glob.glob(pattern, recursive=True) or ([pattern] if os.path.exists(pattern) else []))
+    return sorted(found)
+
+
+@dataclass
+class Fingerprint:
+    rows: int
+    fingerprint: str
+    file_size: int | None = None
+    file_mtime: float | None = None
+    values: list[str | None] = field(default_factory=list)  # the partition column values, as text
+
+
+def _fingerprints_of(got: dict[str, np.ndarray], width: int, files: dict[str, Fingerprint] | None = None) -> dict[str, Fingerprint]:
+    out = {}
+    for r in _rows(got):
+        part = str(r["part"])
+        base = (files or {}).get(part)
+        out[part] = Fingerprint(
+            int(r["rows"]), str(r["fingerprint"]), base.file_size if base else None, base.file_mtime if base else None,
+            [r[f"pv{i}"] for i in range(width)],
+        )
+    return out
+
+
+def fingerprint_partitions(
+    engine: Engine, source: Source, columns: Sequence[str], spec: PartitionSpec, stored: dict[str, Fingerprint]
+) -> dict[str, Fingerprint]:
+    """Current fingerprints of every partition (one aggregate pass; files only where size/mtime moved)."""
+    partitioning = _partitioning(spec)
+    if not spec.files:
+        got = engine.query(sqlgen.fingerprint_statement(source, columns, partitioning, engine.dialect))
+        return _fingerprints_of(got, len(spec.columns))
+    out: dict[str, Fingerprint] = {}
+    to_hash = []
+    for path in _list_files(source):
+        st = os.stat(path)
+        old = stored.get(path)
+        if old is not None and old.file_size == st.st_size and old.file_mtime == st.st_mtime:
+            out[path] = old
+        else:
+            out[path] = Fingerprint(0, "", st.st_size, st.st_mtime)
+            to_hash.append(path)
+    if to_hash:
+        scan = _scan_source(source, spec, to_hash)
+        got = engine.query(sqlgen.fingerprint_statement(scan, columns, partitioning, engine.dialect))
+        out.update(_fingerprints_of(got, 1, out))
+    return out
+
+
+def _stored_fingerprints(engine: Engine, store: str) -> dict[str, Fingerprint]:
+    got = engine.query(sqlgen.select_where(PARTS, sqlgen.equals_all({"store": store})))
+    return {
+        r["part"]: Fingerprint(int(r["rows"]), str(r["fingerprint"]), r["file_size"], r["file_mtime"], json.loads(r["part_values"]))
+        for r in _rows(got)
+    }
+
+
+def _part_rows(store: str, fps: dict[str, Fingerprint], parts: Sequence[str]) -> list[tuple]:
+    now = _now()
+    return [
+        (store, p, fps[p].rows, fps[p].fingerprint, fps[p].file_size, fps[p].file_mtime, now, json.dumps(fps[p].values))
+        for p in parts
+    ]
+
+
+# ----------------------------------------------------------------------------- load / save
+
+
+def load(engine: Engine, store: str) -> StoreInfo:
+    """The store's metadata and current model."""
+    known = {t.split(".")[-1].lower() for t in engine.tables()}
+    if STORES not in known:
+        raise StoreError(f"no summary store here (table {STORES} not found); build one with `tillite store build`")
+    got = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": store}))))
+    if not got:
+        names = [r["store"] for r in _rows(engine.query(sqlgen.select_where(STORES, None, ["store"])))]
+        raise StoreError(f"store {store} not found; stores here: {', '.join(names) if names else '(none)'}")
+    r = got[0]
+    return StoreInfo(
+        name=store,
+        source=_source_from_dict(json.loads(r["source"])),
+        columns=json.loads(r["columns"]),
+        partition=PartitionSpec.from_dict(json.loads(r["partition_by"])),
+        cells_table=r["cells_table"],
+        grid=Grid.from_dict(json.loads(r["grid"])),
+        key_range=np.asarray(json.loads(r["key_range"]), dtype=np.float64),
+        model=Model.from_dict(json.loads(r["model"]), where=f"store {store}"),
+        settings=json.loads(r["settings"]),
+        next_id=int(r["next_id"]),
+        version=int(r["version"]),
+        built_at=r["built_at"],
+        refreshed_at=r["refreshed_at"] or "",
+    )
+
+
+def _settings_of(info_settings: dict[str, Any], **override: Any) -> Settings:
+    data = {**info_settings, **{k: v for k, v in override.items() if v is not None}}
+    return Settings(**data)
+
+
+def _settings_dict(settings: Settings) -> dict[str, Any]:
+    return {
+        "k": settings.k, "scaling": settings.scaling, "weights": settings.weights, "cell_budget": settings.cell_budget,
+        "refine_passes": settings.refine_passes, "tolerance": settings.tolerance, "n_init": settings.n_init,
+        "seed": settings.seed, "sample_rows": settings.sample_rows,
+    }
+
+
+# ----------------------------------------------------------------------------- merged cells and segmentation
+
+
+def merged_cells(engine: Engine, cells_table: str, grid: Grid, d: int) -> tuple[CF, np.ndarray, int]:
+    """All partitions' cells summed per grid cell: (cells on grid units, keys, skipped rows)."""
+    names = grid.key_names()
+    got = engine.query(sqlgen.merged_cells_statement(cells_table, names, d))
+    null = _null_mask(got[names[0]])
+    n = np.asarray(got["n"], dtype=np.float64)
+    keep = ~null
+    cells = F.affine(cf_from_result(got, d, keep), np.asarray(grid.inv_scale), np.zeros(d))
+    keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names]) if keep.any() else np.zeros((0, len(names)))
+    return cells, keys, int(n[null].sum())
+
+
+def _segment_cells(
+    engine: Engine,
+    source: Source,
+    columns: Sequence[str],
+    cells_grid: CF,
+    skipped: int,
+    grid: Grid,
+    settings: Settings,
+    where: str,
+    init_original: np.ndarray | None,
+    progress: ProgressFn,
+) -> tuple[Model, CF, Any]:
+    """Second phase on merged cells (warm-started from centroids in original units), optional refine."""
+    weights = np.array([float(settings.weights.get(c, 1.0)) for c in columns])
+    cells, std = standardise_cells(cells_grid, grid, columns, settings, weights)
+    init = None if init_original is None else (np.asarray(init_original) - std.center[None, :]) / std.scale[None, :]
+    t0 = time.perf_counter()
+    result = second_phase(cells, settings, std.weights, where, init=init)
+    progress("second phase", f"{'warm start' if init is not None else f'k-means++ x{result.restarts}'} on {int((cells.n > 0).sum()):,} cells, SSE {result.sse:.6g}, {time.perf_counter() - t0:.2f} s")
+    stats = SegmentStats.of_cfs(F.group_sum(cells, result.labels, settings.k), std.weights)
+    usable = int(round(cells.n.sum()))
+    stats, passes, _ = refine_passes(engine, source, columns, std, result.centroids, stats, settings, progress, usable)
+    if init is None:
+        stats = order_by_size(stats)
+    model = make_model(columns, std, grid, stats, settings, source, usable + skipped, skipped, int((cells.n > 0).sum()))
+    model.passes = passes
+    return model, cells, std
+
+
+def match_segments(
+    old_centroids: np.ndarray, old_ids: Sequence[int], new_centroids: np.ndarray, next_id: int, scale: np.ndarray,
+    new_segment_shift: float,
+) -> tuple[list[int], int]:
+    """Ids for new segments: matched to old ones by minimum total centroid distance.
+
+    Distances are in standard deviations (``scale``).  A new segment farther than
+    ``new_segment_shift`` from its match, or left unmatched, is genuinely new and
+    gets a fresh id; ids of vanished segments are never reused (``next_id`` only grows).
+    """
+    from scipy.optimize import linear_sum_assignment
+
+    k_new = len(new_centroids)
+    ids = [-1] * k_new
+    if len(old_centroids):
+        gap = (np.asarray(new_centroids)[:, None, :] - np.asarray(old_centroids)[None, :, :]) / scale[None, None, :]
+        dist = np.sqrt((gap**2).sum(axis=2))
+        rows, cols = linear_sum_assignment(dist)
+        for r, c in zip(rows, cols):
+            if dist[r, c] <= new_segment_shift:
+                ids[r] = int(old_ids[c])
+    for r in range(k_new):
+        if ids[r] < 0:
+            ids[r] = next_id
+            next_id += 1
+    return ids, next_id
+
+
+def _drift(
+    old: Model, new: Model, cells: CF, scale: np.ndarray, threshold: float
+) -> tuple[list[dict[str, Any]], list[str]]:
+    """Per segment id: size before/after, centroid shift (sd), share of its cells now elsewhere."""
+    w = np.asarray(new.weights)
+    u = F.centroids(cells) * w[None, :]
+    old_c = (np.asarray(old.centroids) - np.asarray(new.center)[None, :]) / np.asarray(new.scale)[None, :]
+    new_c = np.asarray(new.centroids_scaled)
+    old_lab = np.asarray(old.segment_ids())[nearest(u, old_c * w[None, :])[0]] if len(u) else np.zeros(0, int)
+    new_lab = np.asarray(new.segment_ids())[nearest(u, new_c * w[None, :])[0]] if len(u) else np.zeros(0, int)
+    rows, warns = [], []
+    old_by_id = dict(zip(old.segment_ids(), range(len(old.sizes))))
+    new_by_id = dict(zip(new.segment_ids(), range(len(new.sizes))))
+    for sid in sorted(set(old_by_id) | set(new_by_id)):
+        i, j = old_by_id.get(sid), new_by_id.get(sid)
+        shift = None
+        if i is not None and j is not None:
+            gap = (np.asarray(new.centroids[j]) - np.asarray(old.centroids[i])) / scale
+            shift = float(np.sqrt((gap**2).sum()))
+        was = old_lab == sid
+        moved = float((new_lab[was] != sid).mean()) if was.any() else None
+        rows.append({
+            "segment": sid,
+            "size_before": old.sizes[i] if i is not None else None,
+            "size_after": new.sizes[j] if j is not None else None,
+            "shift_sd": shift,
+            "cells_moved": moved,
+        })
+        if shift is not None and shift > threshold:
+            warns.append(f"segment {sid} moved {shift:.2f} standard deviations (threshold {threshold})")
+        if i is None:
+            warns.append(f"segment {sid} is new")
+        if j is None:
+            warns.append(f"segment {sid} vanished")
+    return rows, warns
+
+
+# ----------------------------------------------------------------------------- build
+
+
+def build(
+    engine: Engine,
+    source: Source,
+    columns: Sequence[str],
+    partition: PartitionSpec,
+    settings: Settings,
+    store: str | None = None,
+    progress: ProgressFn = _quiet,
+    grid: Grid | None = None,
+    init_centroids: np.ndarray | None = None,
+    replace: bool = False,
+) -> tuple[StoreInfo, Model]:
+    """Build a store from scratch: frozen grid, per-partition cells and fingerprints, first model.
+
+    ``grid`` and ``init_centroids`` (original units) reproduce a build with a given
+    frozen grid and warm start (used to check refreshes against fresh builds).
+    """
+    columns = list(columns)
+    settings.check(columns)
+    name = store or (source.table[-1] if source.table else Path(source.files[0]).stem)
+    if not partition.files and not partition.columns:
+        raise InputError("give the partition column(s) (--partition-by) for a table source")
+    source_columns = check_columns(engine, source, columns)
+    missing = [c for c in partition.columns if c not in source_columns]
+    if missing:
+        raise InputError(f"partition column {', '.join(missing)} not found in {source.label}; columns there: {', '.join(source_columns)}")
+    ensure_tables(engine)
+    exists = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": name}), ["store"])))
+    if exists and not replace:
+        raise StoreError(f"store {name} already exists; refresh it, or rebuild with replace=True (--regrid)")
+    t0 = time.perf_counter()
+    weights = np.array([float(settings.weights.get(c, 1.0)) for c in columns])
+    if grid is None:
+        prof = run_profile(engine, source, columns, settings)
+        grid = grid_for_profile(prof, settings, weights)
+        progress("profile", f"{prof.rows:,} rows, frozen grid width {grid.width:.3g} on {grid.dims} axes, {time.perf_counter() - t0:.2f} s")
+    scan = _scan_source(source, partition)
+    fps = fingerprint_partitions(engine, scan, columns, partition, {})
+    cells_table = cells_table_name(name)
+    d = len(columns)
+    with engine.transaction():
+        for st in _drop_store_statements(name, cells_table):
+            engine.execute(st)
+        engine.execute(sqlgen.create_table_statement(cells_table, _cells_columns(grid.dims, d), if_not_exists=False))
+        t1 = time.perf_counter()
+        engine.execute(sqlgen.insert_select_statement(cells_table, sqlgen.cells_statement(scan, columns, grid, engine.dialect, _partitioning(partition))))
+        cells_grid, keys, skipped = merged_cells(engine, cells_table, grid, d)
+        if cells_grid.m == 0:
+            raise InputError(f"no usable rows in {source.label}")
+        progress("cells", f"{len(fps):,} partitions -> {cells_grid.m:,} cells ({skipped:,} rows skipped), {time.perf_counter() - t1:.2f} s")
+        model, _, _ = _segment_cells(engine, source, columns, cells_grid, skipped, grid, settings, source.label, init_centroids, progress)
+        key_range = np.stack([keys.min(axis=0), keys.max(axis=0)])
+        if partition.files:
+            model.source = f"{source.label} (one partition per file)"
+        engine.execute(sqlgen.insert_values_statement(PARTS, _part_rows(name, fps, sorted(fps))))
+        engine.execute(sqlgen.insert_values_statement(STORES, [(
+            name, json.dumps(_source_to_dict(source)), json.dumps(columns), json.dumps(partition.to_dict()), cells_table,
+            json.dumps(grid.to_dict()), json.dumps(key_range.tolist()), model.to_json(), json.dumps(_settings_dict(settings)),
+            settings.k, 0, _now(), None,
+        )]))
+    model.timings = {"total": time.perf_counter() - t0}
+    return load(engine, name), model
+
+
+def _drop_store_statements(name: str, cells_table: str) -> list:
+    return [
+        sqlgen.delete_statement(STORES, sqlgen.equals_all({"store": name})),
+        sqlgen.delete_statement(PARTS, sqlgen.equals_all({"store": name})),
+        sqlgen.drop_statement(cells_table, "table"),
+    ]
+
+
+# ----------------------------------------------------------------------------- refresh
+
+
+def refresh(
+    engine: Engine,
+    store: str,
+    progress: ProgressFn = _quiet,
+    drift_threshold: float = 0.5,
+    new_segment_shift: float = 3.0,
+    k: int | None = None,
+    refine: int | None = None,
+    force: bool = False,
+    before_commit: Callable[[], None] | None = None,
+) -> RefreshReport:
+    """Bring the store up to date with its source; re-segment and report drift.
+
+    ``before_commit`` is called inside the transaction after the new cells and
+    model are in place (tests use it to inject a failure).
+    """
+    t0 = time.perf_counter()
+    info = load(engine, store)
+    report = RefreshReport(store=store)
+    scan = _scan_source(info.source, info.partition)
+    stored = _stored_fingerprints(engine, store)
+    current = fingerprint_partitions(engine, scan, info.columns, info.partition, stored)
+    report.seconds["fingerprints"] = time.perf_counter() - t0
+    report.new = sorted(set(current) - set(stored))
+    report.vanished = sorted(set(stored) - set(current))
+    report.changed = sorted(p for p in set(current) & set(stored) if (current[p].rows, current[p].fingerprint) != (stored[p].rows, stored[p].fingerprint))
+    touched_meta = [p for p in set(current) & set(stored) if p not in report.changed and current[p] != stored[p]]
+    report.unchanged = len(current) - len(report.new) - len(report.changed)
+    progress("fingerprints", f"{len(current):,} partitions: {len(report.new)} new, {len(report.changed)} changed, {len(report.vanished)} vanished, {report.seconds['fingerprints']:.2f} s")
+    settings = _settings_of(info.settings, k=k, refine_passes=refine if refine is not None else info.settings.get("refine_passes"))
+    recompute = report.new + report.changed
+    if not (recompute or report.vanished or touched_meta or force or k is not None):
+        report.model = info.model
+        return report
+    d = len(info.columns)
+    try:
+        with engine.transaction():
+            _claim(engine, info)
+            t1 = time.perf_counter()
+            gone = report.changed + report.vanished
+            if gone:
+                engine.execute(sqlgen.delete_statement(info.cells_table, sqlgen.in_list("part", gone)))
+            if recompute:
+                engine.execute(sqlgen.insert_select_statement(info.cells_table, _restricted_cells(engine, info, scan, [current[p] for p in recompute], recompute)))
+            report.seconds["cells"] = time.perf_counter() - t1
+            progress("cells", f"{len(recompute)} partition(s) summarised, {len(gone)} dropped, {report.seconds['cells']:.2f} s")
+            stale = gone + touched_meta
+            if stale:
+                engine.execute(sqlgen.delete_statement(PARTS, sqlgen.all_of([sqlgen.equals_all({"store": store}), sqlgen.in_list("part", stale)])))
+            fresh = recompute + touched_meta
+            if fresh:
+                engine.execute(sqlgen.insert_values_statement(PARTS, _part_rows(store, current, fresh)))
+            t2 = time.perf_counter()
+            model, cells, std = _resegment(engine, info, settings, progress, new_segment_shift)
+            report.seconds["segment"] = time.perf_counter() - t2
+            report.drift, report.warnings = _drift(info.model, model, cells, np.where(std.sd > 0, std.sd, 1.0), drift_threshold)
+            _save_model(engine, info, model)
+            _relabel(engine, info, model)
+            if before_commit is not None:
+                before_commit()
+    except TilliteError:
+        raise
+    except Exception as err:  # the transaction rolled back: the store is as it was
+        if _is_conflict(err):
+            raise StoreBusy(f"store {store} was changed by another refresh at the same time; nothing was changed by this one, run it again") from None
+        raise
+    report.model = model
+    report.seconds["total"] = time.perf_counter() - t0
+    return report
+
+
+def _restricted_cells(engine: Engine, info: StoreInfo, scan: Source, fps: Sequence[Fingerprint], parts: Sequence[str]):
+    """The cell pass over only the given partitions (files: only those files are read).
+
+    Table partitions are picked by their raw typed values so the engine can skip
+    the blocks of other partitions.
+    """
+    partitioning = _partitioning(info.partition)
+    if info.partition.files:
+        return sqlgen.cells_statement(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.dialect, partitioning)
+    types = dict(engine.describe(info.source))
+    where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps])
+    return sqlgen.cells_statement(scan, info.columns, info.grid, engine.dialect, partitioning, where=where)
+
+
+def _claim(engine: Engine, info: StoreInfo) -> None:
+    """Bump the store's version inside the transaction: a concurrent refresh conflicts here."""
+    engine.execute(sqlgen.update_statement(
+        STORES, {"version": info.version + 1}, sqlgen.equals_all({"store": info.name, "version": info.version})
+    ))
+
+
+def _is_conflict(err: Exception) -> bool:
+    text = str(err).lower()
+    return "conflict" in text or "lock" in text
+
+
+def _resegment(engine: Engine, info: StoreInfo, settings: Settings, progress: ProgressFn, new_segment_shift: float):
+    cells_grid, _, skipped = merged_cells(engine, info.cells_table, info.grid, len(info.columns))
+    if cells_grid.m == 0:
+        raise InputError(f"store {info.name} has no usable rows left")
+    old = info.model
+    init = np.asarray(old.centroids) if settings.k == old.k else None
+    model, cells, std = _segment_cells(engine, info.source, info.columns, cells_grid, skipped, info.grid, settings, f"store {info.name}", init, progress)
+    ids, next_id = match_segments(np.asarray(old.centroids), old.segment_ids(), np.asarray(model.centroids), info.next_id, np.where(std.sd > 0, std.sd, 1.0), new_segment_shift)
+    model.ids = ids
+    info.next_id = next_id
+    if info.partition.files:
+        model.source = old.source
+    return model, cells, std
+
+
+def _save_model(engine: Engine, info: StoreInfo, model: Model) -> None:
+    engine.execute(sqlgen.update_statement(
+        STORES, {"model": model.to_json(), "next_id": info.next_id, "refreshed_at": _now()}, sqlgen.equals_all({"store": info.name})
+    ))
+
+
+def _relabel(engine: Engine, info: StoreInfo, model: Model) -> None:
+    """Re-create the store's registered label views/tables with the current model."""
+    for r in _rows(engine.query(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": info.name})))):
+        label_relation(engine, info.source, model, r["name"], materialize=bool(r["materialized"]), replace=True, in_transaction=True)
+
+
+def resegment(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segment_shift: float = 3.0) -> Model:
+    """Re-segment from the stored cells without scanning the source (e.g. after subtract_rows)."""
+    info = load(engine, store)
+    with engine.transaction():
+        _claim(engine, info)
+        model, _, _ = _resegment(engine, info, _settings_of(info.settings), progress, new_segment_shift)
+        _save_model(engine, info, model)
+        _relabel(engine, info, model)
+    return model
+
+
+# ----------------------------------------------------------------------------- deltas, labels, status
+
+
+def subtract_rows(engine: Engine, store: str, part: str, rows: np.ndarray) -> int:
+    """Subtract deleted rows (original units, store column order) from a partition's cells.
+
+    For users who stream deletes.  The partition's fingerprint is marked stale,
+    so the next refresh re-verifies it with a scan.  Returns the cells touched.
+    """
+    info = load(engine, store)
+    rows = np.asarray(rows, dtype=np.float64).reshape(-1, len(info.columns))
+    rows = rows[np.isfinite(rows).all(axis=1)]
+    if not len(rows):
+        return 0
+    keys = info.grid.keys_of(rows)
+    uniq, inverse = np.unique(keys, axis=0, return_inverse=True)
+    delta = F.from_groups(rows - np.asarray(info.grid.center)[None, :], inverse.ravel(), len(uniq))
+    names = info.grid.key_names()
+    d = len(info.columns)
+    with engine.transaction():
+        _claim(engine, info)
+        for i in range(len(uniq)):
+            where = sqlgen.equals_all({"part": part, **{k: float(v) for k, v in zip(names, uniq[i])}})
+            got = _rows(engine.query(sqlgen.select_where(info.cells_table, where)))
+            if not got or got[0]["n"] < delta.n[i]:
+                raise StoreError(f"partition {part} of store {store} does not hold the rows being subtracted")
+            cur = got[0]
+            values = {"n": int(cur["n"] - delta.n[i])}
+            values.update({f"ls{j}": float(cur[f"ls{j}"] - delta.ls[i, j]) for j in range(d)})
+            values.update({f"ss{j}": float(cur[f"ss{j}"] - delta.ss[i, j]) for j in range(d)})
+            engine.execute(sqlgen.update_statement(info.cells_table, values, where))
+        engine.execute(sqlgen.delete_statement(info.cells_table, sqlgen.equals_all({"n": 0})))
+        engine.execute(sqlgen.update_statement(PARTS, {"fingerprint": "delta applied"}, sqlgen.equals_all({"store": store, "part": part})))
+    return len(uniq)
+
+
+def label(engine: Engine, store: str, into: str, materialize: bool = False, replace: bool = False) -> str:
+    """Labels from the store's current model, re-created by every refresh."""
+    info = load(engine, store)
+    made = label_relation(engine, info.source, info.model, into, materialize=materialize, replace=replace)
+    with engine.transaction():
+        engine.execute(sqlgen.delete_statement(LABELS, sqlgen.equals_all({"store": store, "name": into})))
+        engine.execute(sqlgen.insert_values_statement(LABELS, [(store, into, materialize)]))
+    return made
+
+
+def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, Any]:
+    """Partitions, rows, when summarised, the grid in use, and rows outside the built key range."""
+    info = load(engine, store)
+    parts = _rows(engine.query(sqlgen.select_where(PARTS, sqlgen.equals_all({"store": store}))))
+    cells_grid, keys, skipped = merged_cells(engine, info.cells_table, info.grid, len(info.columns))
+    lo, hi = info.key_range
+    outside = ((keys < lo[None, :]) | (keys > hi[None, :])).any(axis=1) if len(keys) else np.zeros(0, bool)
+    usable = float(cells_grid.n.sum())
+    share = float(cells_grid.n[outside].sum() / usable) if usable else 0.0
+    warnings_ = []
+    if share > outside_warn:
+        warnings_.append(
+            f"{100 * share:.1f}% of rows fall outside the grid's built range (over {100 * outside_warn:.1f}%): "
+            "consider rebuilding the grid (--regrid)"
+        )
+    return {
+        "store": store,
+        "source": info.source.label,
+        "columns": info.columns,
+        "partition_by": info.partition.to_dict(),
+        "partitions": len(parts),
+        "rows": int(sum(p["rows"] for p in parts)),
+        "usable_rows": int(usable),
+        "skipped_rows": skipped,
+        "cells": int(cells_grid.m),
+        "grid": {**info.grid.to_dict(), "axes_count": info.grid.dims},
+        "outside_share": share,
+        "built_at": info.built_at,
+        "refreshed_at": info.refreshed_at,
+        "last_summarised": max((p["summarised_at"] for p in parts), default=None),
+        "k": info.model.k,
+        "segment_ids": info.model.segment_ids(),
+        "warnings": warnings_,
+        "partition_list": [{"part": p["part"], "rows": p["rows"], "summarised_at": p["summarised_at"]} for p in parts],
+    }

@@ -1,0 +1,264 @@
+"""Summary store and refresh: merged cells equal a fresh cell pass, failures change nothing, ids stay stable."""
+
+from __future__ import annotations
+
+import threading
+
+import duckdb
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from tillite import store as S
+from tillite.cli import main
+from tillite.demo import DEMO_COLUMNS, build_demo_database, write_demo_parquet
+from tillite.engines import DuckDBEngine
+from tillite.pipeline import Settings, run_cell_pass
+from tillite.sqlgen import Source
+
+COLS = list(DEMO_COLUMNS)
+
+
+@pytest.fixture
+def demo_db(tmp_path):
+    path = tmp_path / "water.duckdb"
+    build_demo_database(path, rows=24_000, days=12, seed=3)
+    return path
+
+
+@pytest.fixture
+def built(demo_db):
+    engine = DuckDBEngine(str(demo_db))
+    info, model = S.build(engine, Source.of_table("meter_days"), COLS, S.PartitionSpec(("day",)), Settings(k=5, refine_passes=0))
+    yield engine, info, model
+    engine.close()
+
+
+def sorted_cells(cells, keys):
+    order = np.lexsort(keys.T[::-1])
+    return keys[order], cells.n[order], cells.ls[order], cells.ss[order]
+
+
+def assert_store_equals_fresh_cell_pass(engine, info):
+    merged, keys, skipped = S.merged_cells(engine, info.cells_table, info.grid, len(COLS))
+    fresh = run_cell_pass(engine, Source.of_table("meter_days"), COLS, info.grid)
+    a, b = sorted_cells(merged, keys), sorted_cells(fresh.cells, fresh.keys)
+    np.testing.assert_array_equal(a[0], b[0])
+    np.testing.assert_array_equal(a[1], b[1])  # n exactly
+    np.testing.assert_allclose(a[2], b[2], rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(a[3], b[3], rtol=1e-9, atol=1e-9)
+    assert skipped == fresh.skipped
+    # reference: DuckDB's own count of the rows, outside our SQL
+    total = engine.con.execute('SELECT count(*) FROM "meter_days"').fetchone()[0]
+    assert int(merged.n.sum()) + skipped == total
+
+
+def change_partitions(con):
+    """An update, a delete of a whole partition, an append of a new one, and deleted rows inside one."""
+    con.execute("UPDATE meter_days SET litres = litres * 2.5 WHERE day = DATE '2026-01-03'")
+    con.execute("DELETE FROM meter_days WHERE day = DATE '2026-01-04'")
+    con.execute("DELETE FROM meter_days WHERE day = DATE '2026-01-05' AND meter_id % 3 = 0")
+    con.execute(
+        "INSERT INTO meter_days SELECT meter_id, district, day + 40, litres, night_share, peak_litres, flow_run_hours, "
+        "zero_hours FROM meter_days WHERE day = DATE '2026-01-06'"
+    )
+
+
+def store_snapshot(con, info):
+    tables = [S.STORES, S.PARTS, S.LABELS, info.cells_table]
+    return {t: sorted(map(repr, con.execute(f'SELECT * FROM "{t}"').fetchall())) for t in tables}
+
+
+def test_build_then_refresh_with_no_change_scans_nothing_new(built):
+    engine, info, _ = built
+    report = S.refresh(engine, "meter_days")
+    assert (report.new, report.changed, report.vanished) == ([], [], [])
+    assert report.unchanged == 12
+    assert_store_equals_fresh_cell_pass(engine, info)
+
+
+def test_merged_store_equals_fresh_cell_pass_after_appends_updates_and_deletes(built):
+    engine, info, _ = built
+    change_partitions(engine.con)
+    report = S.refresh(engine, "meter_days")
+    assert report.changed == ["2026-01-03", "2026-01-05"]
+    assert report.vanished == ["2026-01-04"] and report.new == ["2026-02-15"]
+    assert_store_equals_fresh_cell_pass(engine, info)
+    engine.con.execute("DELETE FROM meter_days WHERE day = DATE '2026-01-07'")
+    S.refresh(engine, "meter_days")
+    assert_store_equals_fresh_cell_pass(engine, info)
+
+
+def test_refreshed_segments_equal_a_fresh_build_warm_started_from_the_same_centroids(built, tmp_path):
+    engine, info, before = built
+    change_partitions(engine.con)
+    after = S.refresh(engine, "meter_days").model
+    _, fresh = S.build(
+        engine, Source.of_table("meter_days"), COLS, S.PartitionSpec(("day",)), Settings(k=5, refine_passes=0),
+        store="fresh_copy", grid=info.grid, init_centroids=np.asarray(before.centroids),
+    )
+    by_id = dict(zip(after.segment_ids(), after.centroids))
+    # the fresh build numbers segments in warm-start order, which is the old model's order
+    for sid, centroid in zip(before.segment_ids(), fresh.centroids):
+        np.testing.assert_allclose(by_id[sid], centroid, rtol=1e-9, atol=1e-9)
+    assert sorted(fresh.sizes) == sorted(after.sizes)
+
+
+def test_failure_after_the_cell_pass_leaves_the_store_exactly_as_before(built):
+    engine, info, _ = built
+    S.label(engine, "meter_days", "water_labels")
+    before = store_snapshot(engine.con, info)
+    view_sql = "SELECT sql FROM duckdb_views() WHERE view_name = 'water_labels'"
+    view_before = engine.con.execute(view_sql).fetchall()
+    change_partitions(engine.con)
+
+    def fail():
+        raise RuntimeError("injected failure after the cell pass")
+
+    with pytest.raises(RuntimeError, match="injected"):
+        S.refresh(engine, "meter_days", before_commit=fail)
+    assert store_snapshot(engine.con, info) == before
+    # the label view was re-created inside the transaction: it must be the old one still
+    assert engine.con.execute(view_sql).fetchall() == view_before
+    # and a later refresh still works
+    S.refresh(engine, "meter_days")
+    assert_store_equals_fresh_cell_pass(engine, info)
+
+
+def test_two_refreshes_at_once_the_second_fails_cleanly(demo_db):
+    first = DuckDBEngine(str(demo_db))
+    S.build(first, Source.of_table("meter_days"), COLS, S.PartitionSpec(("day",)), Settings(k=5, refine_passes=0))
+    change_partitions(first.con)
+    second = DuckDBEngine.__new__(DuckDBEngine)
+    second.path, second.read_only, second.dialect = str(demo_db), False, "duckdb"
+    second._duckdb = duckdb
+    second.con = first.con.cursor()  # a second connection to the same database
+    inside, release = threading.Event(), threading.Event()
+    errors: list[Exception] = []
+
+    def hold():
+        inside.set()
+        release.wait(30)
+
+    def run_first():
+        try:
+            S.refresh(first, "meter_days", before_commit=hold)
+        except Exception as err:  # pragma: no cover - reported below
+            errors.append(err)
+
+    t = threading.Thread(target=run_first)
+    t.start()
+    assert inside.wait(30)
+    with pytest.raises(S.StoreBusy, match="changed by another refresh"):
+        S.refresh(second, "meter_days")
+    release.set()
+    t.join(30)
+    assert not errors
+    info = S.load(first, "meter_days")
+    assert info.version == 1
+    assert_store_equals_fresh_cell_pass(first, info)
+    first.close()
+
+
+def test_segment_ids_stay_stable_and_vanished_ids_are_not_reused(built):
+    engine, info, model = built
+    change_partitions(engine.con)
+    after = S.refresh(engine, "meter_days").model
+    assert sorted(after.segment_ids()) == sorted(model.segment_ids())
+    fewer = S.refresh(engine, "meter_days", k=4).model
+    assert set(fewer.segment_ids()) < set(model.segment_ids())
+    vanished = set(model.segment_ids()) - set(fewer.segment_ids())
+    more = S.refresh(engine, "meter_days", k=5).model
+    new_ids = set(more.segment_ids()) - set(fewer.segment_ids())
+    assert len(new_ids) == 1 and not (new_ids & vanished) and min(new_ids) >= 5
+
+
+def test_drift_report_names_sizes_shift_and_warns_on_large_moves(built):
+    engine, _, _ = built
+    engine.con.execute("UPDATE meter_days SET zero_hours = 0, flow_run_hours = 24 WHERE day >= DATE '2026-01-05'")
+    report = S.refresh(engine, "meter_days", drift_threshold=0.2)
+    assert {"segment", "size_before", "size_after", "shift_sd", "cells_moved"} <= set(report.drift[0])
+    assert any("moved" in w for w in report.warnings)
+    assert "shift (sd)" in report.describe()
+
+
+def test_label_view_follows_the_current_model_after_a_refresh(built):
+    engine, _, _ = built
+    S.label(engine, "meter_days", "water_labels")
+    change_partitions(engine.con)
+    model = S.refresh(engine, "meter_days").model
+    got = engine.con.execute('SELECT "litres", "night_share", "peak_litres", "flow_run_hours", "zero_hours", "segment" FROM "water_labels"').fetchnumpy()
+    x = np.column_stack([np.ma.filled(np.ma.asarray(got[c], dtype=float), np.nan) for c in COLS])
+    ok = np.isfinite(x).all(axis=1)
+    z = (x[ok] - np.array(model.center)) / np.array(model.scale)
+    d2 = ((z[:, None, :] - np.array(model.centroids_scaled)[None]) ** 2).sum(axis=2)
+    # reference: numpy nearest centroid of the refreshed model
+    np.testing.assert_array_equal(np.asarray(got["segment"])[ok], np.array(model.segment_ids())[d2.argmin(axis=1)])
+
+
+def test_subtract_rows_equals_recomputing_the_partition(built):
+    engine, info, _ = built
+    rows = engine.con.execute(
+        'SELECT "litres", "night_share", "peak_litres", "flow_run_hours", "zero_hours" FROM meter_days '
+        "WHERE day = DATE '2026-01-08' AND meter_id % 4 = 1"
+    ).fetchnumpy()
+    S.subtract_rows(engine, "meter_days", "2026-01-08", np.column_stack([rows[c] for c in COLS]))
+    engine.con.execute("DELETE FROM meter_days WHERE day = DATE '2026-01-08' AND meter_id % 4 = 1")
+    assert_store_equals_fresh_cell_pass(engine, info)
+    report = S.refresh(engine, "meter_days")
+    assert report.changed == ["2026-01-08"]  # the delta marks the partition for re-verification
+
+
+def test_status_warns_when_rows_fall_outside_the_built_range(built):
+    engine, _, _ = built
+    st = S.status(engine, "meter_days")
+    assert st["partitions"] == 12 and st["rows"] == 24_000 and not st["warnings"]
+    engine.con.execute(
+        "INSERT INTO meter_days SELECT meter_id, district, day + 100, litres * 40, night_share, peak_litres * 40, "
+        "flow_run_hours, zero_hours FROM meter_days WHERE day <= DATE '2026-01-03'"
+    )
+    S.refresh(engine, "meter_days")
+    st = S.status(engine, "meter_days")
+    assert st["outside_share"] > 0.05 and "outside the grid's built range" in st["warnings"][0]
+
+
+def test_file_partitions_detect_new_changed_and_vanished_files(tmp_path):
+    folder = tmp_path / "days"
+    files = write_demo_parquet(folder, rows=6_000, days=6, seed=5)
+    db = tmp_path / "store.duckdb"
+    engine = DuckDBEngine(str(db))
+    src = Source.of_files(str(folder / "**" / "*.parquet"), "parquet")
+    info, _ = S.build(engine, src, COLS, S.PartitionSpec(files=True), Settings(k=3, refine_passes=0), store="days")
+    assert S.refresh(engine, "days").unchanged == 6
+    con = duckdb.connect()
+    first = str(files[0])
+    con.execute(f"COPY (SELECT * REPLACE (litres * 3 AS litres) FROM read_parquet('{first}')) TO '{first}.tmp' (FORMAT parquet)")
+    import os
+
+    os.replace(first + ".tmp", first)
+    os.remove(files[1])
+    report = S.refresh(engine, "days")
+    assert report.changed == [first] and report.vanished == [str(files[1])]
+    merged, _, _ = S.merged_cells(engine, info.cells_table, info.grid, len(COLS))
+    # reference: DuckDB's count of the rows left in the files
+    left = con.execute(f"SELECT count(*) FROM read_parquet('{folder}/**/*.parquet') WHERE litres IS NOT NULL AND NOT isnan(night_share)").fetchone()[0]
+    assert int(merged.n.sum()) == left
+    engine.close()
+
+
+def test_store_commands_run_from_the_cli(demo_db):
+    runner = CliRunner()
+    res = runner.invoke(main, ["store", "build", str(demo_db), "-t", "meter_days", "-c", ",".join(COLS), "--partition-by", "day", "--k", "4", "-q"])
+    assert res.exit_code == 0, res.output
+    res = runner.invoke(main, ["label", str(demo_db), "--store", "meter_days", "--into", "water_segments", "-q"])
+    assert res.exit_code == 0, res.output
+    res = runner.invoke(main, ["store", "status", str(demo_db), "--store", "meter_days"])
+    assert res.exit_code == 0 and "partitions: 12" in res.output
+    con = duckdb.connect(str(demo_db))
+    change_partitions(con)
+    con.close()
+    res = runner.invoke(main, ["refresh", str(demo_db), "--store", "meter_days", "--json", "-q"])
+    assert res.exit_code == 0, res.output
+    assert '"vanished": [' in res.output
+    res = runner.invoke(main, ["refresh", str(demo_db), "--store", "nope"])
+    assert res.exit_code == 1 and "store nope not found" in res.output
