@@ -1,0 +1,109 @@
+"""`tillite macros`: put tillite's SQL macros into a DuckDB file, print them, or take them out.
+
+A thin layer over tillite.macros.  Registered on the main command with
+``main.add_command(macros)``.
+"""
+
+from __future__ import annotations
+
+from contextlib import contextmanager
+from typing import Iterator
+
+import click
+import duckdb
+
+from . import macros as M
+from .engines import TilliteError
+from .model import Model
+
+__all__ = ["macros"]
+
+
+@contextmanager
+def _user_errors() -> Iterator[None]:
+    """Our errors and the database's as one-line messages with exit code 1."""
+    try:
+        yield
+    except TilliteError as err:
+        raise click.ClickException(str(err)) from None
+    except duckdb.Error as err:
+        first = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+        raise click.ClickException(f"database error: {first}") from None
+
+
+def _model(model_path: str | None, name: str | None) -> Model | None:
+    """The model behind --model/--name (both or neither), or None for the generic macros."""
+    if model_path is None and name is None:
+        return None
+    if model_path is None:
+        raise click.UsageError("--name names the scoring macros of a model: give --model too")
+    if name is None:
+        raise click.UsageError("--model needs --name: the scoring macros are called <name>_segment and <name>_distance")
+    return Model.read(model_path)
+
+
+def _definitions(model: Model | None, name: str | None) -> list[M.MacroDefinition]:
+    return M.generic_macros() if model is None else M.scoring_macros(model, name or "")
+
+
+def _example(definitions: list[M.MacroDefinition], model: Model | None) -> str:
+    """One line showing how to call what was installed."""
+    if model is None:
+        return "try: SELECT * FROM tillite_profile('my_table', ['col_a', 'col_b']);"
+    call = f"{M.identifier(definitions[0].name).text}({M.identifiers(model.columns).text})"
+    return f"try: SELECT *, {call} AS segment FROM my_table;"
+
+
+@click.group("macros")
+def macros() -> None:
+    """SQL macros so that a SQL console can profile, bin and segment tables and score rows, with no Python.
+
+    \b
+    Generic macros (install once per database):
+      tillite_profile(table, columns)            per column: rows, usable, skipped, mean, sd, min, max
+      tillite_cells(table, columns, width)       the grid cells' CFs: cell, n, ls, ss, centroid
+      tillite_segments(table, columns, k)        k-means on the cells: segment, size, centroid, sse
+      tillite_rows(table, columns)               the chosen columns of each row as a list, and ok
+    Scoring macros of one model (--model, --name NAME):
+      NAME_segment(col1, ..., colN)              the nearest segment id, NULL for NULL/NaN/Inf input
+      NAME_distance(col1, ..., colN)             the distance to its centroid (scaled units)
+    """
+
+
+@macros.command("install")
+@click.argument("database", type=click.Path(dir_okay=False))
+@click.option("--model", "model_path", type=click.Path(dir_okay=False), help="Model file: install its scoring macros.")
+@click.option("--name", help="Prefix of the scoring macros: NAME_segment and NAME_distance.")
+def install_command(database: str, model_path: str | None, name: str | None) -> None:
+    """Create (or replace) tillite's macros in an existing DuckDB file DATABASE."""
+    with _user_errors():
+        model = _model(model_path, name)
+        definitions = _definitions(model, name)
+        names = M.install_into(database, definitions)
+    hint = _example(definitions, model)
+    click.echo(f"installed into {database}: {', '.join(names)}")
+    click.echo(hint)
+
+
+@macros.command("show")
+@click.option("--model", "model_path", type=click.Path(dir_okay=False), help="Model file: show its scoring macros.")
+@click.option("--name", help="Prefix of the scoring macros: NAME_segment and NAME_distance.")
+def show_command(model_path: str | None, name: str | None) -> None:
+    """Print the macros' SQL, to paste into any DuckDB console."""
+    with _user_errors():
+        text = M.script(_definitions(_model(model_path, name), name))
+    click.echo(text, nl=False)
+
+
+@macros.command("remove")
+@click.argument("database", type=click.Path(dir_okay=False))
+@click.option("--name", help="Only the scoring macros installed under this name.")
+def remove_command(database: str, name: str | None) -> None:
+    """Drop the macros tillite installed in DATABASE (all of them, or one model's); nothing else."""
+    with _user_errors():
+        dropped = M.remove_from(database, name)
+    if dropped:
+        click.echo(f"removed from {database}: {', '.join(dropped)}")
+    else:
+        which = f"under the name {name!r}" if name is not None else "at all"
+        click.echo(f"no tillite macros are recorded in {database} {which}; nothing removed")
