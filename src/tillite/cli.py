@@ -138,9 +138,33 @@ columns_option = click.option(
 )
 
 
+def _parse_k(text: str | None) -> tuple[int, tuple[int, ...]]:
+    """--k: a number, 'auto' (2..12) or a range 'lo..hi' chosen on the CFs."""
+    if text is None:
+        return 0, ()
+    text = text.strip().lower()
+    if text == "auto":
+        return 0, tuple(range(2, 13))
+    lo, sep, hi = text.partition("..")
+    try:
+        if sep:
+            a, b = int(lo), int(hi)
+            if not 1 <= a <= b:
+                raise ValueError
+            return 0, tuple(range(a, b + 1))
+        return int(text), ()
+    except ValueError:
+        raise click.BadParameter(f"expected a number, 'auto' or a range like 2..12, got {text!r}", param_hint="--k") from None
+
+
 def _settings_options(f):
     opts = [
-        click.option("--k", "-k", "k", type=int, required=True, help="Number of segments."),
+        click.option("--k", "-k", "k", help="Number of segments, 'auto' (2..12) or a range like 2..8 chosen on the CFs "
+                     "(not needed for --method density)."),
+        click.option("--method", type=click.Choice(["kmeans", "ward", "density"]), default="kmeans", show_default=True,
+                     help="Second phase: k-means++, Ward agglomeration, or density-connected cells (non-convex shapes)."),
+        click.option("--k-rule", type=click.Choice(["calinski_harabasz", "bic"]), default="calinski_harabasz", show_default=True,
+                     help="How --k auto/range picks k: largest Calinski-Harabasz, or smallest spherical-Gaussian BIC."),
         click.option("--scaling", type=click.Choice(["zscore", "none"]), default="zscore", show_default=True,
                      help="zscore: columns in standard deviations; none: original units (still centred)."),
         click.option("--weights", help="Column multipliers after scaling, e.g. litres=2,zero_hours=0.5."),
@@ -151,16 +175,38 @@ def _settings_options(f):
         click.option("--restarts", type=int, default=10, show_default=True, help="k-means++ restarts on the cells."),
         click.option("--seed", type=int, default=0, show_default=True),
         click.option("--sample-rows", type=int, default=50_000, show_default=True, help="Rows the profile sample aims for."),
+        click.option("--tree-budget", type=int, default=None,
+                     help="Condense the cells with a CF tree when there are more than this (default: the cell budget; 0: never)."),
+        click.option("--threshold", type=float, default=None, help="CF tree threshold T (default: chosen from the cells)."),
+        click.option("--branching", type=int, default=50, show_default=True, help="CF tree branching factor B."),
+        click.option("--leaf-capacity", type=int, default=50, show_default=True, help="CF tree leaf capacity L."),
+        click.option("--criterion", type=click.Choice(["diameter", "radius"]), default="diameter", show_default=True,
+                     help="What the threshold T bounds."),
+        click.option("--keep-outliers", is_flag=True, help="Keep every cell; no outlier group (segment -1)."),
+        click.option("--min-count", type=float, default=None, help="density: rows a cell needs to be dense (default from the data)."),
+        click.option("--adjacency", type=click.Choice(["face", "distance"]), default="face", show_default=True,
+                     help="density: join cells sharing a grid face, or with centroids within --radius."),
+        click.option("--radius", type=float, default=None, help="density: joining distance for --adjacency distance."),
+        click.option("--noise", type=click.Choice(["attach", "drop"]), default="attach", show_default=True,
+                     help="density: sparse cells join the nearest segment, or stay noise (segment -1)."),
     ]
     for o in reversed(opts):
         f = o(f)
     return f
 
 
-def _settings(k, scaling, weights, cell_budget, width, refine_passes, tolerance, restarts, seed, sample_rows) -> Settings:
+def _settings(k, method, k_rule, scaling, weights, cell_budget, width, refine_passes, tolerance, restarts, seed, sample_rows,
+              tree_budget, threshold, branching, leaf_capacity, criterion, keep_outliers, min_count, adjacency, radius,
+              noise) -> Settings:
+    k_value, candidates = _parse_k(k)
+    if method != "density" and not k_value and not candidates:
+        raise click.UsageError("give --k (a number, 'auto' or a range like 2..12)")
     return Settings(
-        k=k, scaling=scaling, weights=_parse_weights(weights), cell_budget=cell_budget, width=width,
+        k=k_value, scaling=scaling, weights=_parse_weights(weights), cell_budget=cell_budget, width=width,
         refine_passes=refine_passes, tolerance=tolerance, n_init=restarts, seed=seed, sample_rows=sample_rows,
+        method=method, k_candidates=candidates, k_rule=k_rule, tree_budget=tree_budget, threshold=threshold,
+        branching=branching, leaf_capacity=leaf_capacity, criterion=criterion, keep_outliers=keep_outliers,
+        min_count=min_count, adjacency=adjacency, radius=radius, noise=noise,
     )
 
 

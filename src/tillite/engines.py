@@ -413,7 +413,13 @@ class PostgresEngine:
 
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
         with self._errors():
-            cur = self.con.execute(self.sql_text(statement))
+            try:
+                cur = self.con.execute(self.sql_text(statement))
+            except (self._psycopg.errors.FeatureNotSupported, self._psycopg.errors.WrongObjectType) as err:
+                if statement.find(exp.TableSample) is None or "TABLESAMPLE" not in str(err):
+                    raise
+                # a view: PostgreSQL samples only tables and materialized views by blocks
+                cur = self.con.execute(self.sql_text(sqlgen.sample_by_filter(statement)))
             rows = cur.fetchall()
             desc = cur.description or []
         got = rows_to_columns([c.name for c in desc], [PG_KINDS.get(c.type_code, "object") for c in desc], rows)
@@ -495,7 +501,7 @@ SPARK_LOCAL_DEFAULTS = {
     "spark.ui.enabled": "false",
     "spark.ui.showConsoleProgress": "false",
     "spark.sql.shuffle.partitions": "8",
-    "spark.log.level": "ERROR",
+    "spark.log.level": "FATAL",  # our errors carry the first line; Spark would add a JSON stack dump
 }
 
 
@@ -530,8 +536,12 @@ class SparkEngine:
         from py4j.protocol import Py4JError
 
         self._errors_caught = (PySparkException, Py4JError)
-        self._owns_session = self.session is None
+        self._owns_session = False
         if self.session is None:
+            from pyspark.sql import SparkSession
+
+            # a session already running in this process is shared, and left running on close
+            self._owns_session = SparkSession.getActiveSession() is None
             self.session = self._start_session()
 
     def _start_session(self) -> Any:

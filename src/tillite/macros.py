@@ -262,6 +262,12 @@ def scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
 def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
     """<name>_segment(x...) and <name>_distance(x...) for one model."""
     name = _check_model_name(name)
+    if model.cell_map_spec() is not None:
+        raise MacroError(
+            f"the model labels some rows through their grid cell ({model.method} segments or an outlier group), "
+            "which a scalar macro of the row's values does not reproduce; use `tillite label`, or segment with "
+            "--keep-outliers for k-means/Ward"
+        )
     segment, distance = scoring_bodies(model)
     params = identifiers(model.columns)
     out = []

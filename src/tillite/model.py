@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from .engines import TilliteError
-from .sqlgen import Assignment
+from .sqlgen import Assignment, CellMap, Grid
 
 FORMAT_NAME = "tillite-model"
 FORMAT_VERSION = 1
@@ -48,6 +48,8 @@ class Model:
     k: int
     method: str = "kmeans"
     ids: list[int] = field(default_factory=list)  # segment id of each centroid (0..k-1 unless a store keeps ids stable)
+    extras: dict[str, Any] = field(default_factory=dict)  # outlier group, Ward merge heights, density noise
+    cell_map: dict[str, Any] = field(default_factory=dict)  # cells labelled by their cell: keys, segments, unmapped
     constant_columns: list[str] = field(default_factory=list)
     grid: dict[str, Any] = field(default_factory=dict)
     params: dict[str, Any] = field(default_factory=dict)
@@ -69,6 +71,17 @@ class Model:
             weights=tuple(self.weights),
             centroids=tuple(tuple(c) for c in self.centroids_scaled),
             ids=tuple(self.segment_ids()),
+        )
+
+    def cell_map_spec(self) -> CellMap | None:
+        """Cells whose rows are labelled through their cell (outlier group, density segments)."""
+        if not self.cell_map or not self.cell_map.get("keys"):
+            return None
+        return CellMap(
+            grid=Grid.from_dict(self.grid),
+            keys=tuple(tuple(map(float, k)) for k in self.cell_map["keys"]),
+            segments=tuple(int(s) for s in self.cell_map["segments"]),
+            unmapped=self.cell_map.get("unmapped", "nearest"),
         )
 
     def segment_ids(self) -> list[int]:
@@ -143,6 +156,39 @@ class Model:
 
     # ------------------------------------------------------------ summary
 
+    def _method_lines(self) -> list[str]:
+        """The second phase's parameters, outlier group and (Ward) how sharp the cut is."""
+        out = []
+        tree = self.params.get("tree")
+        if tree:
+            out.append(
+                f"CF tree: T={tree['threshold']:.4g} ({tree['criterion']}), B={tree['branching']}, L={tree['leaf_capacity']}, "
+                f"budget {tree['budget']:,}, {tree['entries']:,} entries after {tree['rebuilds']} rebuild(s)"
+            )
+        outliers = self.extras.get("outliers")
+        if outliers:
+            out.append(f"outlier group (segment -1): {outliers['rows']:,} rows in {outliers['cells']:,} cells")
+        if self.method == "density":
+            out.append(
+                f"density: dense cells have n >= {self.params.get('min_count', 0):.4g}, adjacency {self.params.get('adjacency')}, "
+                f"noise {self.params.get('noise')} ({self.extras.get('noise_rows', 0):,} noise rows)"
+            )
+        choice = self.params.get("k_choice")
+        if choice:
+            out.append(f"k chosen among {[r['k'] for r in choice['table']]} by {choice['rule'].replace('_', '-')}: {choice['k']}")
+        heights = self.extras.get("merge_heights")
+        if heights:
+            k = len(self.sizes)
+            shown = ", ".join(f"{h:.4g}" for h in heights[-min(len(heights), 10):])
+            out.append(f"Ward merge heights (last {min(len(heights), 10)} of the last 30): {shown}")
+            if 2 <= k <= len(heights):
+                made, undone = heights[-k], heights[-(k - 1)]
+                out.append(
+                    f"cut at k={k}: the next merge would cost height {undone:.4g}, {undone / made:.2f}x the last one kept "
+                    f"({made:.4g}); a large ratio means a sharp cut"
+                )
+        return out
+
     def summary(self) -> dict[str, Any]:
         """The machine-readable digest printed by --json."""
         return {
@@ -165,6 +211,8 @@ class Model:
             ],
             "passes": self.passes,
             "timings": self.timings,
+            "params": self.params,
+            "extras": self.extras,
         }
 
     def describe(self) -> str:
@@ -177,6 +225,7 @@ class Model:
         ]
         if self.constant_columns:
             lines.append(f"constant columns (no weight): {', '.join(self.constant_columns)}")
+        lines.extend(self._method_lines())
         head = ["segment", "size", "share", "radius", "SSE"] + list(self.columns)
         rows = []
         total = max(self.usable, 1)

@@ -14,9 +14,9 @@ import os
 import tempfile
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
-from typing import Callable, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
@@ -66,10 +66,29 @@ class Settings:
     principal_above: int = 6  # bin principal-axis scores when there are more columns
     principal_axes: int = 4  # how many: a 20,000-cell budget gives ~12 bins per axis
     width: float | None = None  # force the grid width (scaled units)
+    method: str = "kmeans"  # or "ward", "density"
+    k_candidates: tuple[int, ...] = ()  # choose k among these on the CFs (then k is ignored)
+    k_rule: str = "calinski_harabasz"  # or "bic"
+    tree_budget: int | None = None  # condense with a CF tree above this many cells (None: the cell budget; 0: never)
+    threshold: float | None = None  # CF tree threshold T (None: chosen from the data)
+    branching: int = 50
+    leaf_capacity: int = 50
+    criterion: str = "diameter"  # or "radius"
+    keep_outliers: bool = False
+    min_count: float | None = None  # density: cells with at least this many rows are dense
+    adjacency: str = "face"  # density: "face" (grid neighbours) or "distance"
+    radius: float | None = None  # density: joining distance with adjacency="distance"
+    noise: str = "attach"  # density: sparse cells "attach" to the nearest segment, or stay noise ("drop")
 
     def check(self, columns: Sequence[str]) -> None:
-        if self.k < 1:
+        if self.method not in ("kmeans", "ward", "density"):
+            raise InputError(f"method must be kmeans, ward or density, got {self.method!r}")
+        if any(c < 1 for c in self.k_candidates):
+            raise InputError(f"k candidates must be at least 1, got {list(self.k_candidates)}")
+        if not self.k_candidates and self.method != "density" and self.k < 1:
             raise InputError(f"k must be at least 1, got {self.k}")
+        if self.noise not in ("attach", "drop") or self.adjacency not in ("face", "distance") or self.criterion not in ("diameter", "radius"):
+            raise InputError("noise must be attach/drop, adjacency face/distance, criterion diameter/radius")
         if self.scaling not in ("zscore", "none"):
             raise InputError(f"scaling must be 'zscore' or 'none', got {self.scaling!r}")
         unknown = [c for c in self.weights if c not in columns]
@@ -308,18 +327,23 @@ class RefineResult:
     seconds: float
 
 
-def run_refine_pass(engine: Engine, source: Source, columns: Sequence[str], assign: Assignment) -> RefineResult:
+def run_refine_pass(
+    engine: Engine, source: Source, columns: Sequence[str], assign: Assignment, cell_map: sqlgen.CellMap | None = None
+) -> RefineResult:
     """One SQL pass: assign rows to the nearest centroid, then the exact new means and SSEs.
 
     Moving a segment's centroid from c to its mean m lowers its SSE by exactly
     n ||m - c||^2 (weighted), so both SSEs come from n, LS and the summed distances.
     """
     t0 = time.perf_counter()
-    got = engine.query(sqlgen.refine_statement(source, columns, assign, engine.dialect))
+    got = engine.query(sqlgen.refine_statement(source, columns, assign, engine.dialect, cell_map=cell_map))
     null = _null_mask(got["segment"])
+    ids = np.asarray(np.ma.getdata(got["segment"]), dtype=np.float64)
+    null = null | (ids < 0)  # the outlier group takes no part in the centroids
     n_all = np.asarray(got["n"], dtype=np.int64)
     k, d = len(assign.centroids), len(columns)
-    seg = np.asarray(np.ma.getdata(got["segment"]))[~null].astype(np.int64)
+    position = {sid: i for i, sid in enumerate(assign.segment_ids())}
+    seg = np.array([position[int(i)] for i in ids[~null]], dtype=np.int64)
     n = np.bincount(seg, weights=n_all[~null].astype(np.float64), minlength=k)
     ls_v = np.column_stack([np.asarray(got[f"ls{j}"], dtype=np.float64)[~null] for j in range(d)])
     ls_u = np.column_stack([np.bincount(seg, weights=ls_v[:, j], minlength=k) for j in range(d)]) * np.asarray(assign.inv_scale)[None, :]
@@ -396,6 +420,105 @@ def second_phase(
     return kmeans(cells, settings.k, weights, n_init=settings.n_init, seed=settings.seed, init=init)
 
 
+@dataclass
+class PhaseResult:
+    """The second phase's outcome on the cells."""
+
+    cell_labels: np.ndarray  # (cells,) position of each cell's segment, -1 outliers/noise
+    centroids: np.ndarray  # (k, d) unweighted standardised coordinates
+    k: int
+    sse: float
+    summary: str
+    params: dict[str, Any] = field(default_factory=dict)
+    extras: dict[str, Any] = field(default_factory=dict)
+    needs_cell_map: bool = False
+    map_all: bool = False  # every cell in the map (density), else only the outlier group's cells
+    unmapped: str = "nearest"  # what rows of cells not in the map get: "nearest" or "noise"
+
+    def cell_map(self, grid: Grid, keys: np.ndarray) -> sqlgen.CellMap | None:
+        """The outlier cells (-1) for the refine passes, or None."""
+        if self.needs_cell_map and not self.map_all:
+            out = self.cell_labels < 0
+            if out.any():
+                return sqlgen.CellMap(grid, tuple(map(tuple, keys[out])), tuple([-1] * int(out.sum())), "nearest")
+        return None
+
+    def cell_map_dict(self, grid: Grid, keys: np.ndarray, ids: np.ndarray) -> dict[str, Any]:
+        """The map the label SQL needs: outlier cells only (k-means, Ward), or every cell (density)."""
+        rows = np.ones(len(self.cell_labels), bool) if self.map_all else self.cell_labels < 0
+        segs = np.where(self.cell_labels[rows] < 0, -1, ids[np.maximum(self.cell_labels[rows], 0)])
+        return {"keys": keys[rows].tolist(), "segments": segs.astype(int).tolist(), "unmapped": self.unmapped}
+
+
+def ordered_ids(stats: SegmentStats, ordered: SegmentStats) -> np.ndarray:
+    """For each segment position before ordering by size, its id after."""
+    order = np.argsort(-stats.n, kind="stable") if ordered is not stats else np.arange(len(stats.n))
+    ids = np.empty(len(order), dtype=np.int64)
+    ids[order] = np.arange(len(order))
+    return ids
+
+
+def run_second_phase(
+    cells: CF, keys: np.ndarray, settings: Settings, weights: np.ndarray, where: str, progress: ProgressFn
+) -> PhaseResult:
+    """k-means, Ward or density segments on the cells; a CF tree first when the cells exceed its budget."""
+    from . import tree as cftree
+    from .segmenters import choose_k, density, format_k_table, ward
+
+    if settings.method == "density":
+        res = density(cells, keys, min_count=settings.min_count, adjacency=settings.adjacency, radius=settings.radius,
+                      noise="attach" if settings.noise == "attach" else "drop", weights=weights)
+        if res.n_segments == 0:
+            raise InputError(f"no dense cells in {where}: lower the density threshold (--min-count, now {res.min_count:.3g})")
+        noise_rows = int(cells.n[res.labels < 0].sum())
+        sse = F.sse(F.group_sum(cells, res.labels, res.n_segments), weights)
+        return PhaseResult(
+            res.labels, res.centroids, res.n_segments, sse,
+            f"density: {res.n_segments} segment(s) from {int(res.dense.sum()):,} dense cells (n >= {res.min_count:.3g}), {noise_rows:,} noise rows",
+            params={"min_count": res.min_count, "adjacency": settings.adjacency, "radius": res.radius, "noise": settings.noise},
+            extras={"noise_rows": noise_rows},
+            needs_cell_map=True, map_all=True, unmapped="noise" if settings.noise == "drop" else "nearest",
+        )
+    entries, membership, params, extras = cells, np.arange(cells.m), {}, {}
+    tree_budget = settings.cell_budget if settings.tree_budget is None else settings.tree_budget
+    if tree_budget and cells.m > tree_budget:
+        cond = cftree.condense(cells, threshold=settings.threshold, branching=settings.branching,
+                               leaf_capacity=settings.leaf_capacity, budget=tree_budget,
+                               criterion=settings.criterion, weights=weights, keep_outliers=settings.keep_outliers,
+                               seed=settings.seed)
+        entries, membership = cond.entries, cond.membership
+        params.update({"tree": {"threshold": cond.threshold, "branching": cond.branching, "leaf_capacity": cond.leaf_capacity,
+                                "budget": cond.budget, "criterion": cond.criterion, "rebuilds": cond.rebuilds,
+                                "entries": int(entries.m)}})
+        out_rows = int(cells.n[membership < 0].sum())
+        extras["outliers"] = {"rows": out_rows, "cells": int((membership < 0).sum()), "entries": int(cond.outliers.m)}
+        progress("tree", f"{cells.m:,} cells -> {entries.m:,} entries (T {cond.threshold:.3g}, {cond.rebuilds} rebuild(s)), "
+                         f"{out_rows:,} rows in the outlier group")
+    k = settings.k
+    if settings.k_candidates:
+        usable = [c for c in settings.k_candidates if c <= int((entries.n > 0).sum())]
+        if not usable:
+            raise InputError(f"every candidate k is larger than the {int((entries.n > 0).sum()):,} cells of {where}")
+        choice = choose_k(entries, usable, weights, n_init=settings.n_init, seed=settings.seed, rule=settings.k_rule)
+        k = choice.k
+        params["k_choice"] = {"rule": choice.rule, "table": choice.table, "k": k}
+        progress("choose k", "\n" + format_k_table(choice))
+    if settings.method == "ward":
+        if k > int((entries.n > 0).sum()):
+            raise InputError(f"k={k} is larger than the {int((entries.n > 0).sum()):,} distinct grid cells of {where}")
+        res = ward(entries, k, weights)
+        labels, centroids, sse = res.labels, res.centroids, res.sse
+        extras["merge_heights"] = [float(h) for h in res.heights[-30:]]
+        summary = f"Ward on {entries.m:,} entries, SSE {sse:.6g}"
+    else:
+        res = second_phase(entries, replace(settings, k=k), weights, where)
+        labels, centroids, sse = res.labels, res.centroids, res.sse
+        summary = f"k-means++ x{res.restarts} on {entries.m:,} {'entries' if entries is not cells else 'cells'}, SSE {sse:.6g}"
+    cell_labels = np.where(membership >= 0, labels[np.maximum(membership, 0)], -1)
+    return PhaseResult(cell_labels, centroids, k, sse, summary, params=params, extras=extras,
+                       needs_cell_map=bool((cell_labels < 0).any()), unmapped="nearest")
+
+
 def refine_passes(
     engine: Engine,
     source: Source,
@@ -406,12 +529,17 @@ def refine_passes(
     settings: Settings,
     progress: ProgressFn,
     usable: int,
+    cell_map: sqlgen.CellMap | None = None,
 ) -> tuple[SegmentStats, list[dict], dict[str, float]]:
-    """Row-level Lloyd passes in SQL until the SSE gain falls below the tolerance."""
+    """Row-level Lloyd passes in SQL until the SSE gain falls below the tolerance.
+
+    Rows of cells in ``cell_map`` (the outlier group) keep their mapped segment
+    (-1) and take no part in the centroids.
+    """
     passes: list[dict] = []
     timings: dict[str, float] = {}
     for p in range(1, settings.refine_passes + 1):
-        rr = run_refine_pass(engine, source, columns, std.assignment(centroids))
+        rr = run_refine_pass(engine, source, columns, std.assignment(centroids), cell_map)
         before, after = float(rr.assigned.sse.sum()), float(rr.updated.sse.sum())
         gain = (before - after) / before if before > 0 else 0.0
         passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain, "seconds": rr.seconds})
@@ -511,21 +639,28 @@ def segment(
     progress("cells", f"{cp.usable + cp.skipped:,} rows ({cp.skipped:,} skipped) -> {cells_count(cp):,} cells, {cp.seconds:.2f} s")
     cells, std = standardise_cells(cp.cells, grid, columns, settings, weights)
 
-    # 3. second phase on the cells
+    # 3. second phase on the cells (condensed by a CF tree when there are too many)
     t0 = time.perf_counter()
-    result = second_phase(cells, settings, std.weights, source.label)
+    phase = run_second_phase(cells, cp.keys, settings, std.weights, source.label, progress)
     t_second = time.perf_counter() - t0
-    progress("second phase", f"k-means++ x{result.restarts} on {cells_count(cp):,} cells, SSE {result.sse:.6g}, {t_second:.2f} s")
+    progress("second phase", f"{phase.summary}, {t_second:.2f} s")
 
-    # 4. refine passes in SQL
-    stats = SegmentStats.of_cfs(F.group_sum(cells, result.labels, settings.k), std.weights)
-    stats, passes, refine_times = refine_passes(
-        engine, source, columns, std, result.centroids, stats, settings, progress, cp.usable
-    )
+    # 4. refine passes in SQL (not for density segments: they would undo the shapes)
+    stats = SegmentStats.of_cfs(F.group_sum(cells, phase.cell_labels, phase.k), std.weights)
+    passes, refine_times = [], {}
+    if settings.method != "density":
+        stats, passes, refine_times = refine_passes(
+            engine, source, columns, std, phase.centroids, stats, settings, progress, cp.usable,
+            cell_map=phase.cell_map(grid, cp.keys),
+        )
+    ordered = order_by_size(stats) if settings.method != "density" else stats
     model = make_model(
-        columns, std, grid, order_by_size(stats), settings, source, cp.usable + cp.skipped, cp.skipped,
-        cells_count(cp), extra_params={"cell_sse": result.sse},
+        columns, std, grid, ordered, settings, source, cp.usable + cp.skipped, cp.skipped,
+        cells_count(cp), extra_params={"cell_sse": phase.sse, **phase.params},
     )
+    model.method = settings.method
+    model.extras = phase.extras
+    model.cell_map = phase.cell_map_dict(grid, cp.keys, ordered_ids(stats, ordered)) if phase.needs_cell_map else {}
     model.passes = passes
     model.timings = {"profile": prof.seconds, "cells": cp.seconds, "second_phase": t_second, **refine_times}
     model.timings["total"] = time.perf_counter() - t_start
@@ -555,7 +690,9 @@ def label(
     the caller already holds a transaction (a store refresh).
     """
     source_columns = check_columns(engine, source, model.columns)
-    select = sqlgen.label_select(source, model.columns, source_columns, model.assignment(), engine.dialect)
+    select = sqlgen.label_select(
+        source, model.columns, source_columns, model.assignment(), engine.dialect, cell_map=model.cell_map_spec()
+    )
     if source.files:
         return _label_to_file(engine, source, select, into, replace)
     target = tuple(p.lower() for p in into.split("."))

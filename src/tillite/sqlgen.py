@@ -30,6 +30,11 @@ __all__ = [
     "copy_statement",
     "drop_statement",
     "list_tables_statement",
+    "current_schema_statement",
+    "floor_of",
+    "table_sample",
+    "for_dialect",
+    "temporary_view",
 ]
 
 #: Reserved prefix of the helper columns inside generated queries.
@@ -528,40 +533,97 @@ def create_table_statement(table: str, columns: Sequence[tuple[str, str]], if_no
     return exp.Create(this=schema, kind="TABLE", exists=if_not_exists)
 
 
+@dataclass(frozen=True)
+class CellMap:
+    """Rows labelled through their grid cell rather than their nearest centroid.
+
+    ``keys`` (per-axis cell keys) map to ``segments`` (ids, -1 for the outlier
+    group or noise).  Rows of other cells get the nearest centroid
+    (``unmapped="nearest"``) or -1 (``"noise"``).  The keys are computed exactly
+    as the cell pass computes them, so a row lands in the cell it was counted in.
+    """
+
+    grid: Grid
+    keys: tuple[tuple[float, ...], ...]
+    segments: tuple[int, ...]
+    unmapped: str = "nearest"
+
+    def values(self, names: Sequence[str]) -> exp.Subquery:
+        rows = [exp.Tuple(expressions=[num(float(x)) for x in key] + [num(int(sid))]) for key, sid in zip(self.keys, self.segments)]
+        alias = exp.TableAlias(this=exp.to_identifier(internal("m"), quoted=True), columns=[exp.to_identifier(n, quoted=True) for n in names])
+        return exp.Values(expressions=rows, alias=alias)
+
+
 def _assignment_layers(
-    source: Source, columns: Sequence[str], assign: Assignment, dialect: str, keep_source: bool
+    source: Source,
+    columns: Sequence[str],
+    assign: Assignment,
+    dialect: str,
+    keep_source: bool,
+    cell_map: CellMap | None = None,
 ) -> tuple[exp.Select, str, str, list[str]]:
-    """A query with the nearest centroid per row (NULL for unusable rows).
+    """A query with the segment of each row (NULL for unusable rows).
 
     The squared distance to centroid i is ||u||_w^2 + score_i with
     score_i = b_i + sum_j a_ij v_j (v = x - center, u = v * inv_scale); the
-    argmin needs only the scores, which cost one multiply-add per column.
-    Returns (select, segment column, best-score column, centred value columns);
-    when keep_source the select also carries every source column.
+    argmin needs only the scores, which cost one multiply-add per column.  With
+    ``cell_map`` rows of mapped cells take their cell's segment instead.
+    Returns (select, segment column, the assigned segment's score column,
+    centred value columns); when keep_source the select also carries every
+    source column.
     """
     d, k = len(columns), len(assign.centroids)
     v = [internal(f"v{j}") for j in range(d)]
     score = [internal(f"s{i}") for i in range(k)]
     best, seg = internal("best"), internal("segment")
     src_cols = [exp.Star()] if keep_source else []
-    stage1 = exp.select(*src_cols, *[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, assign.center), v)]).from_(
-        source.relation()
-    )
+    grid_v = [internal(f"g{j}") for j in range(d)] if cell_map is not None else []
+    stage1 = exp.select(
+        *src_cols,
+        *[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, assign.center), v)],
+        *([exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, cell_map.grid.center), grid_v)] if cell_map else []),
+    ).from_(source.relation())
     a, b = assign.score_coefficients()
-    passthrough = [exp.Star()] if keep_source else [col(n) for n in v]
+    passthrough = [exp.Star()] if keep_source else [col(n) for n in v + grid_v]
     stage2 = exp.select(
         *passthrough,
         exp.alias_(usable_rows(v, dialect), internal("ok"), quoted=True),
         *[exp.alias_(linear_form(v, a[i], b[i]), score[i], quoted=True) for i in range(k)],
     ).from_(subquery(stage1, internal("a")))
+    if not keep_source:
+        stage2 = scan_fence(stage2, dialect)
     least = col(score[0]) if k == 1 else least_of([col(n) for n in score])
     stage3 = exp.select(exp.Star(), exp.alias_(least, best, quoted=True)).from_(subquery(stage2, internal("b")))
+    if not keep_source:
+        stage3 = scan_fence(stage3, dialect)
+    ids = assign.segment_ids()
     pick = exp.Case(
         ifs=[exp.If(this=exp.Not(this=col(internal("ok"))), true=exp.Null())]
-        + [exp.If(this=exp.EQ(this=col(score[i]), expression=col(best)), true=num(sid)) for i, sid in enumerate(assign.segment_ids())]
+        + [exp.If(this=exp.EQ(this=col(score[i]), expression=col(best)), true=num(sid)) for i, sid in enumerate(ids)]
     )
-    stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("c")))
-    return stage4, seg, best, v
+    if cell_map is None:
+        stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("c")))
+        return stage4, seg, best, v
+    # rows take their cell's segment when the cell is in the map
+    factors = cell_map.grid.key_factors()
+    key_names = [internal(f"c{a_}") for a_ in range(factors.shape[1])]
+    map_names = [internal(f"mk{a_}") for a_ in range(factors.shape[1])] + [internal("mseg")]
+    keyed = exp.select(
+        exp.Star(), *[exp.alias_(floor_of(linear_form(grid_v, factors[:, a_]), dialect), n, quoted=True) for a_, n in enumerate(key_names)]
+    ).from_(subquery(stage3, internal("c")))
+    on = all_of([exp.EQ(this=col(kn, internal("k")), expression=col(mn, internal("m"))) for kn, mn in zip(key_names, map_names)])
+    fallback = pick if cell_map.unmapped == "nearest" else case_when(col(internal("ok")), num(-1))
+    mapped = case_when(col(internal("ok")), exp.Coalesce(this=col(internal("mseg")), expressions=[fallback]))
+    chosen = exp.Case(
+        ifs=[exp.If(this=exp.EQ(this=col(seg), expression=num(sid)), true=col(score[i])) for i, sid in enumerate(ids)]
+    )
+    joined = (
+        exp.select(exp.Star(), exp.alias_(mapped, seg, quoted=True))
+        .from_(subquery(keyed, internal("k")))
+        .join(cell_map.values(map_names), on=on, join_type="LEFT")
+    )
+    stage5 = exp.select(exp.Star(), exp.alias_(chosen, internal("chosen"), quoted=True)).from_(subquery(joined, internal("j")))
+    return stage5, seg, internal("chosen"), v
 
 
 def _squared_norm(v_names: Sequence[str], assign: Assignment) -> exp.Expression:
@@ -570,7 +632,9 @@ def _squared_norm(v_names: Sequence[str], assign: Assignment) -> exp.Expression:
     return total_sum([exp.Mul(this=num(float(c)), expression=square(col(n))) for n, c in zip(v_names, norm) if c != 0.0])
 
 
-def refine_statement(source: Source, columns: Sequence[str], assign: Assignment, dialect: str) -> exp.Select:
+def refine_statement(
+    source: Source, columns: Sequence[str], assign: Assignment, dialect: str, cell_map: CellMap | None = None
+) -> exp.Select:
     """A refine pass: nearest centroid per row, GROUP BY segment.
 
     Returns segment, n, ls0..ls{d-1} (sums of the centred values v = x - center)
@@ -580,7 +644,7 @@ def refine_statement(source: Source, columns: Sequence[str], assign: Assignment,
     before and after moving the centroid both follow.  The segment NULL group
     counts skipped rows.
     """
-    inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=False)
+    inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=False, cell_map=cell_map)
     aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
     aggs += [exp.alias_(exp.Sum(this=col(n)), f"ls{j}", quoted=True) for j, n in enumerate(v)]
     dist = exp.Add(this=col(best), expression=paren(_squared_norm(v, assign)))
@@ -600,15 +664,17 @@ def label_select(
     dialect: str,
     segment_name: str = "segment",
     distance_name: str = "distance",
+    cell_map: CellMap | None = None,
 ) -> exp.Select:
     """Every source column plus the segment id and the distance to its centroid.
 
-    distance = sqrt(max(best score + ||u||_w^2, 0)), NULL for skipped rows.
+    distance = sqrt(max(score + ||u||_w^2, 0)) for the segment's centroid; NULL
+    for skipped rows and for the outlier group / noise (segment -1).
     """
-    inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=True)
+    inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=True, cell_map=cell_map)
     sq_norm = _squared_norm(v, assign)
     distance = case_when(
-        exp.Not(this=exp.Is(this=col(seg), expression=exp.Null())),
+        exp.GTE(this=col(seg), expression=num(0)),
         exp.Sqrt(this=greatest_of([exp.Add(this=col(best), expression=sq_norm), num(0.0)])),
     )
     return exp.select(
@@ -737,3 +803,37 @@ def temporary_view(create: exp.Create) -> exp.Create:
 def current_schema_statement() -> exp.Select:
     """The schema unqualified names resolve to (PostgreSQL: the first of search_path that exists)."""
     return exp.select(exp.alias_(exp.CurrentSchema(), "schema", quoted=True))
+
+
+def sample_by_filter(statement: exp.Expression) -> exp.Expression:
+    """The statement with each TABLESAMPLE replaced by a per-row ``random() < p / 100`` filter.
+
+    For relations that cannot be sampled by blocks: PostgreSQL allows
+    TABLESAMPLE on tables and materialized views only, not on views.  The filter
+    keeps each row with probability p%, as BERNOULLI does.
+    """
+    out = statement.copy()
+    for select in list(out.find_all(exp.Select)):
+        source = select.args.get("from_") or select.args.get("from")
+        table = source.this if source is not None else None
+        sample = table.args.get("sample") if isinstance(table, exp.Table) else None
+        if sample is None:
+            continue
+        table.set("sample", None)
+        keep = exp.LT(this=exp.Rand(), expression=exp.Div(this=sample.args["percent"].copy(), expression=num(100.0)))
+        select.where(keep, copy=False)
+    return out
+
+
+def scan_fence(select: exp.Select, dialect: str) -> exp.Select:
+    """The subquery computed once per row where the planner would inline it.
+
+    PostgreSQL pulls simple subqueries up into their parent and has no common
+    subexpression elimination, so the refine pass's k scores and their LEAST
+    would be recomputed in every CASE branch (about 6x slower at k = 6).
+    ``OFFSET 0`` keeps the subquery a separate step.  Used for the refine pass
+    only: on a labels view it would also stop filters reaching the source.
+    """
+    if dialect != "postgres":
+        return select
+    return select.offset(num(0), copy=False)

@@ -1,0 +1,258 @@
+"""The pipeline on a real PostgreSQL server equals the DuckDB path.
+
+A throwaway server is made with initdb/pg_ctl in a temporary directory (as an
+unprivileged user when the tests run as root) and loaded with the same rows as
+a DuckDB file.  Reference for every equality: DuckDB running the same sqlgen
+tree, an independent SQL engine; where stated, numpy on the raw rows.  The
+tests skip loudly when no server can start, and fail instead when CI=true.
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from sqlglot import exp
+
+from tillite import sqlgen
+from tillite.cli import main
+from tillite.engines import DuckDBEngine, EngineError, MissingExtraError, PostgresEngine, SourceError, open_source
+from tillite.pipeline import (
+    InputError,
+    Settings,
+    existing_relation_kind,
+    grid_for_profile,
+    label,
+    run_cell_pass,
+    run_profile,
+    run_refine_pass,
+    segment,
+)
+from tillite.sqlgen import Source
+
+from engine_checks import (
+    COLUMNS,
+    TABLE,
+    assert_same_cell_pass,
+    assert_same_labels,
+    assert_same_model,
+    assert_same_refine,
+    make_rows,
+    ordered_rows,
+    write_duckdb,
+)
+from throwaway_servers import start_postgres
+
+SETTINGS = dict(k=5, width=0.5, seed=0, cell_budget=2_000)
+
+
+@pytest.fixture(scope="module")
+def server():
+    pg = start_postgres()
+    yield pg
+    pg.stop()
+
+
+@pytest.fixture(scope="module")
+def rows():
+    return make_rows()
+
+
+@pytest.fixture(scope="module")
+def loaded(server, rows, tmp_path_factory):
+    """The rows in PostgreSQL table points and in a DuckDB file; returns the DuckDB path."""
+    import psycopg
+    from psycopg import sql
+
+    with psycopg.connect(server.conninfo, autocommit=True) as con:
+        con.execute(sql.SQL("CREATE TABLE {} (id BIGINT, {} DOUBLE PRECISION, {} DOUBLE PRECISION, {} DOUBLE PRECISION, kind TEXT)").format(
+            sql.Identifier(TABLE), *[sql.Identifier(c) for c in COLUMNS]))
+        with con.cursor().copy(sql.SQL("COPY {} FROM STDIN").format(sql.Identifier(TABLE))) as copy:
+            for row in rows.tuples():
+                copy.write_row(row)
+        con.execute(sql.SQL("CREATE SCHEMA {}").format(sql.Identifier("field data")))
+        con.execute(sql.SQL("CREATE VIEW {}.{} AS SELECT * FROM {}").format(
+            sql.Identifier("field data"), sql.Identifier("points view"), sql.Identifier(TABLE)))
+    return write_duckdb(tmp_path_factory.mktemp("pg") / "points.duckdb", rows)
+
+
+@pytest.fixture
+def engines(server, loaded):
+    pg = PostgresEngine(server.conninfo)
+    duck = DuckDBEngine(str(loaded), read_only=True)
+    yield pg, duck
+    pg.close()
+    duck.close()
+
+
+SRC = Source.of_table(TABLE)
+
+
+def test_profile_sees_the_same_rows_as_duckdb(engines, rows):
+    pg, duck = engines
+    settings = Settings(**SETTINGS)
+    got, ref = run_profile(pg, SRC, COLUMNS, settings), run_profile(duck, SRC, COLUMNS, settings)
+    # reference: DuckDB on the same rows, and numpy's count of finite rows
+    assert got.rows == ref.rows == len(rows.ids)
+    assert len(got.sample) == len(ref.sample) == int(rows.usable.sum())
+    np.testing.assert_allclose(got.center, ref.center, rtol=1e-12)
+    np.testing.assert_allclose(got.center, rows.x[rows.usable].mean(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(got.scale, ref.scale, rtol=1e-12)
+
+
+def test_sampled_profile_uses_tablesample_and_stays_bounded(engines):
+    pg, _ = engines
+    prof = run_profile(pg, SRC, COLUMNS, Settings(k=5, sample_rows=2_000))
+    # reference: the table has 20,000 rows, so a 2,000-row target samples 15% with TABLESAMPLE SYSTEM
+    assert prof.rows == 20_000 and 0 < len(prof.sample) <= 2_000
+
+
+def test_cell_pass_cfs_equal_duckdb_on_the_same_grid(engines):
+    pg, duck = engines
+    settings = Settings(**SETTINGS)
+    grid = grid_for_profile(run_profile(duck, SRC, COLUMNS, settings), settings)
+    # reference: DuckDB running the same cells tree over the same rows
+    assert_same_cell_pass(run_cell_pass(pg, SRC, COLUMNS, grid), run_cell_pass(duck, SRC, COLUMNS, grid))
+
+
+def test_refine_pass_equals_duckdb_from_the_same_centroids(engines):
+    pg, duck = engines
+    model = segment(duck, SRC, COLUMNS, Settings(**SETTINGS))
+    assign = model.assignment()
+    # reference: DuckDB running the same refine tree from the same centroids
+    assert_same_refine(run_refine_pass(pg, SRC, COLUMNS, assign), run_refine_pass(duck, SRC, COLUMNS, assign))
+
+
+def test_segment_gives_the_duckdb_model(engines):
+    pg, duck = engines
+    # reference: DuckDB; both read the whole table as the sample (20,000 rows <= 2 x 50,000)
+    assert_same_model(segment(pg, SRC, COLUMNS, Settings(**SETTINGS)), segment(duck, SRC, COLUMNS, Settings(**SETTINGS)))
+
+
+def test_labels_view_equals_duckdb_row_for_row(server, loaded, rows):
+    pg = PostgresEngine(server.conninfo)
+    duck = DuckDBEngine(str(loaded))
+    try:
+        model = segment(duck, SRC, COLUMNS, Settings(**SETTINGS))
+        assert label(pg, SRC, model, "point_segments") == "view point_segments"
+        label(duck, SRC, model, "point_segments")
+        # reference: DuckDB's labels view over the same rows
+        assert_same_labels(ordered_rows(pg, "point_segments"), ordered_rows(duck, "point_segments"), rows)
+        assert existing_relation_kind(pg, "point_segments") == "view"
+        assert existing_relation_kind(pg, "public.point_segments") == "view"
+        assert existing_relation_kind(pg, "Point_Segments") is None  # quoted names keep their case in PostgreSQL
+        label(pg, SRC, model, "point_segments")  # CREATE OR REPLACE VIEW over itself
+    finally:
+        pg.close()
+        duck.close()
+
+
+def test_labels_table_needs_replace_and_source_is_untouched(server, loaded):
+    pg = PostgresEngine(server.conninfo)
+    duck = DuckDBEngine(str(loaded), read_only=True)
+    try:
+        model = segment(duck, SRC, COLUMNS, Settings(**SETTINGS))
+        assert label(pg, SRC, model, "segments_table", materialize=True) == "table segments_table"
+        assert existing_relation_kind(pg, "segments_table") == "table"
+        with pytest.raises(InputError, match="already exists"):
+            label(pg, SRC, model, "segments_table", materialize=True)
+        label(pg, SRC, model, "segments_table", materialize=True, replace=True)
+        label(pg, SRC, model, "segments_table", replace=True)  # table -> view, one transaction
+        assert existing_relation_kind(pg, "segments_table") == "view"
+        with pytest.raises(InputError, match="source"):
+            label(pg, SRC, model, TABLE)
+        # reference: the row count the fixture loaded
+        assert int(pg.query(sqlgen.count_statement(SRC))["n"][0]) == 20_000
+    finally:
+        pg.close()
+        duck.close()
+
+
+def test_schema_qualified_view_source_with_quoted_names(server, loaded):
+    pg = PostgresEngine(server.conninfo)
+    duck = DuckDBEngine(str(loaded), read_only=True)
+    try:
+        view = Source.of_table(("field data", "points view"))
+        got = segment(pg, view, COLUMNS, Settings(**SETTINGS))
+        # reference: DuckDB on the table the view selects from
+        assert_same_model(got, segment(duck, SRC, COLUMNS, Settings(**SETTINGS)))
+        made = label(pg, view, got, "field data.labelled points")
+        assert made == "view field data.labelled points"
+        assert existing_relation_kind(pg, "field data.labelled points") == "view"
+    finally:
+        pg.close()
+        duck.close()
+
+
+def test_sampled_profile_of_a_view_falls_back_to_a_row_filter(server, loaded):
+    pg = PostgresEngine(server.conninfo, read_only=True)
+    try:
+        prof = run_profile(pg, Source.of_table(("field data", "points view")), COLUMNS, Settings(k=5, sample_rows=2_000))
+    finally:
+        pg.close()
+    # reference: PostgreSQL refuses TABLESAMPLE on views; random() < 15% keeps about 3,000 rows, LIMIT 2,000
+    assert prof.rows == 20_000 and 1_000 < len(prof.sample) <= 2_000
+
+
+def test_finiteness_test_is_right_for_nan_and_infinity_float8(engines):
+    pg, _ = engines
+    values = ["1.5", "NaN", "Infinity", "-Infinity", None]
+    cols = [sqlgen.is_finite(exp.cast(exp.Literal.string(v) if v else exp.Null(), "DOUBLE"), "postgres") for v in values]
+    got = pg.query(exp.select(*[exp.alias_(c, f"f{i}") for i, c in enumerate(cols)]))
+    # reference: IEEE 754 (NaN and the infinities are not finite); NULL stays NULL
+    assert [bool(got[f"f{i}"][0]) for i in range(4)] == [True, False, False, False]
+    assert np.ma.getmaskarray(got["f4"])[0]
+
+
+@pytest.mark.parametrize("value", [1e9 + 0.123456789, -3.5e-300, 0.1, 123456789012345678.0, 2.0**-1074])
+def test_exponent_literals_are_read_exactly_as_double_precision(engines, value):
+    pg, _ = engines
+    stmt = exp.select(exp.alias_(exp.Mul(this=sqlgen.to_double(sqlgen.num(1)), expression=sqlgen.num(value)), "v"))
+    got = pg.query(stmt)["v"]
+    # reference: Python float equality; PostgreSQL reads 5.0e-01 as an exact numeric constant and converts it to float8
+    assert got.dtype == np.float64 and got[0] == value
+
+
+def test_missing_table_names_the_tables_there(engines):
+    pg, _ = engines
+    with pytest.raises(SourceError, match=r"not found .*points"):
+        pg.describe(Source.of_table("nope"))
+    with pytest.raises(EngineError, match="database error"):
+        pg.query(exp.select(sqlgen.col("no such column")).from_(sqlgen.table_name(TABLE)))
+
+
+def test_segment_connection_is_read_only(server):
+    engine, src = open_source(server.url, TABLE)
+    try:
+        with pytest.raises(EngineError, match="read-only"):
+            engine.execute(sqlgen.create_relation_statement("not_allowed", sqlgen.count_statement(src), False))
+    finally:
+        engine.close()
+
+
+def test_cli_segment_and_label_on_a_postgresql_url(server, loaded, tmp_path):
+    runner = CliRunner()
+    out = tmp_path / "model.json"
+    args = ["--table", TABLE, "--columns", ",".join(COLUMNS), "--k", "5", "--width", "0.5", "--cell-budget", "2000"]
+    done = runner.invoke(main, ["segment", server.url, *args, "--out", str(out), "--quiet"])
+    assert done.exit_code == 0, done.output
+    ref = runner.invoke(main, ["segment", str(loaded), *args, "--out", str(tmp_path / "ref.json"), "--quiet"])
+    assert ref.exit_code == 0, ref.output
+    # reference: the model DuckDB writes for the same table
+    assert json.loads(out.read_text())["sizes"] == json.loads((tmp_path / "ref.json").read_text())["sizes"]
+    done = runner.invoke(main, ["label", server.conninfo, "--engine", "postgres", "--table", TABLE, "--model", str(out),
+                                "--into", "cli_segments", "--quiet"])
+    assert done.exit_code == 0, done.output
+    assert "view cli_segments" in done.output
+    bad = runner.invoke(main, ["segment", server.url, *args, "--table", "missing_table", "--quiet"])
+    assert bad.exit_code == 1 and "tables there" in bad.output
+
+
+def test_missing_driver_names_the_extra(monkeypatch):
+    import sys
+
+    monkeypatch.setitem(sys.modules, "psycopg", None)
+    with pytest.raises(MissingExtraError, match=r"pip install 'tillite\[postgres\]'"):
+        PostgresEngine("postgresql://nobody@/nothing")

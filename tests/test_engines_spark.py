@@ -1,0 +1,247 @@
+"""The pipeline on Spark (a local SparkSession) equals the DuckDB path.
+
+Spark reads a Parquet copy of the DuckDB table in place, and the same rows as a
+table registered in its catalog.  Reference for every equality: DuckDB running
+the same sqlgen tree, an independent SQL engine; where stated, numpy on the raw
+rows.  The tests skip loudly when Spark cannot start, and fail when CI=true.
+"""
+
+from __future__ import annotations
+
+import json
+
+import duckdb
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from sqlglot import exp
+
+from tillite import sqlgen
+from tillite.cli import main
+from tillite.engines import DuckDBEngine, EngineError, MissingExtraError, SourceError, SparkEngine, open_source
+from tillite.pipeline import (
+    Settings,
+    existing_relation_kind,
+    grid_for_profile,
+    label,
+    run_cell_pass,
+    run_profile,
+    run_refine_pass,
+    segment,
+)
+from tillite.sqlgen import Source
+
+from engine_checks import (
+    COLUMNS,
+    NAN_IDS,
+    NULL_IDS,
+    TABLE,
+    assert_same_cell_pass,
+    assert_same_labels,
+    assert_same_model,
+    assert_same_refine,
+    make_rows,
+    ordered_rows,
+    write_duckdb,
+    write_parquet,
+)
+from throwaway_servers import start_spark
+
+SETTINGS = dict(k=5, width=0.5, seed=0, cell_budget=2_000)
+REGISTERED = "points_table"
+
+
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory):
+    return tmp_path_factory.mktemp("spark")
+
+
+@pytest.fixture(scope="module")
+def spark(folder):
+    session = start_spark(folder)
+    yield session
+    session.stop()
+
+
+@pytest.fixture(scope="module")
+def rows():
+    return make_rows()
+
+
+@pytest.fixture(scope="module")
+def data(folder, rows, spark):
+    """(DuckDB file, Parquet copy); the Parquet rows are also a catalog table and a temporary view."""
+    db = write_duckdb(folder / "points.duckdb", rows)
+    parquet = write_parquet(db, folder / "points.parquet")
+    frame = spark.read.parquet(str(parquet))
+    frame.write.saveAsTable(REGISTERED)
+    frame.createOrReplaceTempView("points_temp")
+    return db, parquet
+
+
+@pytest.fixture(scope="module")
+def duck(data):
+    engine = DuckDBEngine(str(data[0]), read_only=True)
+    yield engine
+    engine.close()
+
+
+@pytest.fixture(scope="module")
+def sparks(spark, data):
+    return SparkEngine(session=spark)
+
+
+def sources(data):
+    """The Parquet copy read in place, and the registered table."""
+    return [Source.of_files(str(data[1]), "parquet"), Source.of_table(REGISTERED)]
+
+
+DUCK_SRC = Source.of_table(TABLE)
+
+
+def duckdb_labels(duck: DuckDBEngine, model) -> dict[str, np.ndarray]:
+    """DuckDB's labels of the same rows, ordered by id: the reference for Spark's."""
+    select = sqlgen.label_select(DUCK_SRC, COLUMNS, ["id", *COLUMNS, "kind"], model.assignment(), "duckdb")
+    return duck.query(exp.select(exp.Star()).from_(sqlgen.subquery(select, "l")).order_by(sqlgen.col("id")))
+
+
+def test_profile_sees_the_same_rows_as_duckdb(sparks, duck, data, rows):
+    settings = Settings(**SETTINGS)
+    ref = run_profile(duck, DUCK_SRC, COLUMNS, settings)
+    for src in sources(data):
+        got = run_profile(sparks, src, COLUMNS, settings)
+        # reference: DuckDB on the same rows, and numpy's count and mean of the finite rows
+        assert got.rows == ref.rows == len(rows.ids)
+        assert len(got.sample) == int(rows.usable.sum())
+        np.testing.assert_allclose(got.center, ref.center, rtol=1e-12)
+        np.testing.assert_allclose(got.center, rows.x[rows.usable].mean(axis=0), rtol=1e-12)
+
+
+def test_sampled_profile_uses_tablesample_percent_and_stays_bounded(sparks, data):
+    for src in sources(data):
+        prof = run_profile(sparks, src, COLUMNS, Settings(k=5, sample_rows=2_000))
+        # reference: 20,000 rows and a 2,000-row target: TABLESAMPLE (15 PERCENT), then LIMIT 2,000
+        assert prof.rows == 20_000 and 0 < len(prof.sample) <= 2_000
+
+
+def test_cell_pass_cfs_equal_duckdb_on_the_same_grid(sparks, duck, data):
+    settings = Settings(**SETTINGS)
+    grid = grid_for_profile(run_profile(duck, DUCK_SRC, COLUMNS, settings), settings)
+    ref = run_cell_pass(duck, DUCK_SRC, COLUMNS, grid)
+    for src in sources(data):
+        # reference: DuckDB running the same cells tree (Spark's floor is built without FLOOR there)
+        assert_same_cell_pass(run_cell_pass(sparks, src, COLUMNS, grid), ref)
+
+
+def test_refine_pass_equals_duckdb_from_the_same_centroids(sparks, duck, data):
+    assign = segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS)).assignment()
+    ref = run_refine_pass(duck, DUCK_SRC, COLUMNS, assign)
+    for src in sources(data):
+        # reference: DuckDB running the same refine tree from the same centroids
+        assert_same_refine(run_refine_pass(sparks, src, COLUMNS, assign), ref)
+
+
+def test_segment_gives_the_duckdb_model(sparks, duck, data):
+    ref = segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS))
+    for src in sources(data):
+        # reference: DuckDB; both read the whole table as the sample (20,000 rows <= 2 x 50,000)
+        assert_same_model(segment(sparks, src, COLUMNS, Settings(**SETTINGS)), ref)
+
+
+def test_labels_equal_duckdb_row_for_row_as_view_and_table(sparks, duck, data, rows):
+    model = segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS))
+    ref = duckdb_labels(duck, model)
+    src = Source.of_table(REGISTERED)
+    assert label(sparks, src, model, "point_segments") == "view point_segments"
+    assert existing_relation_kind(sparks, "point_segments") == "view"
+    assert not sparks.spark.catalog.getTable("point_segments").isTemporary  # a catalog view over a catalog table
+    # reference: DuckDB's labels over the same rows
+    assert_same_labels(ordered_rows(sparks, "point_segments"), ref, rows)
+    assert label(sparks, src, model, "segments_table", materialize=True) == "table segments_table"
+    assert existing_relation_kind(sparks, "segments_table") == "table"
+    label(sparks, src, model, "segments_table", materialize=True, replace=True)
+    assert_same_labels(ordered_rows(sparks, "segments_table"), ref, rows)
+
+
+def test_labels_over_a_temporary_view_are_a_temporary_view(sparks, duck, data, rows):
+    model = segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS))
+    label(sparks, Source.of_table("points_temp"), model, "temp_segments")
+    assert sparks.spark.catalog.getTable("temp_segments").isTemporary
+    assert existing_relation_kind(sparks, "temp_segments") == "view"
+    # reference: DuckDB's labels over the same rows
+    assert_same_labels(ordered_rows(sparks, "temp_segments"), duckdb_labels(duck, model), rows)
+
+
+def test_labels_of_a_parquet_source_go_to_one_parquet_file(sparks, duck, data, rows, folder):
+    model = segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS))
+    out = folder / "labelled.parquet"
+    assert label(sparks, Source.of_files(str(data[1]), "parquet"), model, str(out)) == f"file {out}"
+    assert out.is_file()
+    con = duckdb.connect()
+    got = con.execute(f"SELECT * FROM read_parquet('{out}') ORDER BY id").fetchnumpy()
+    con.close()
+    # reference: DuckDB reading Spark's file, against DuckDB's own labels
+    assert_same_labels(got, duckdb_labels(duck, model), rows)
+
+
+def test_nan_is_nan_and_null_is_masked_in_results(sparks, data):
+    got = ordered_rows(sparks, REGISTERED)
+    # reference: the rows the fixture wrote (numpy NaN, SQL NULL)
+    assert np.ma.getmaskarray(got["litres"])[list(NULL_IDS)].all()
+    assert not np.ma.getmaskarray(got["unit price"]).any()
+    assert np.isnan(np.asarray(got["unit price"])[list(NAN_IDS)]).all()
+
+
+def test_floor_built_for_spark_equals_numpy_floor(sparks):
+    values = [-2.5, -1e-20, -0.0, 0.0, 2.5, 1e300, -1e300, 2.0**53 + 2, -(2.0**52) - 0.5, 7.0]
+    stmt = exp.select(*[exp.alias_(sqlgen.floor_of(sqlgen.num(v), "spark"), f"f{i}") for i, v in enumerate(values)])
+    got = sparks.query(stmt)
+    # reference: numpy.floor (Spark's own FLOOR would overflow a BIGINT at 1e300)
+    assert [float(got[f"f{i}"][0]) for i in range(len(values))] == [float(np.floor(v)) for v in values]
+
+
+def test_finiteness_test_and_exponent_literals_in_spark(sparks):
+    cells = [sqlgen.is_finite(exp.cast(exp.Literal.string(v), "DOUBLE"), "spark") for v in ("1.5", "NaN", "Infinity", "-Infinity")]
+    got = sparks.query(exp.select(*[exp.alias_(c, f"f{i}") for i, c in enumerate(cells)], exp.alias_(sqlgen.num(1e9 + 0.123456789), "lit")))
+    # reference: IEEE 754 (NaN and infinities are not finite); Python float equality for the literal
+    assert [bool(got[f"f{i}"][0]) for i in range(4)] == [True, False, False, False]
+    assert got["lit"].dtype == np.float64 and got["lit"][0] == 1e9 + 0.123456789
+
+
+def test_missing_table_names_the_tables_there(sparks):
+    with pytest.raises(SourceError, match=r"not found.*points_table"):
+        sparks.describe(Source.of_table("nope"))
+    with pytest.raises(EngineError, match="database error"):
+        sparks.query(exp.select(sqlgen.col("no such column")).from_(sqlgen.table_name(REGISTERED)))
+
+
+def test_open_source_reads_parquet_with_spark_and_refuses_csv(spark, data, tmp_path):
+    engine, src = open_source(str(data[1]), None, engine="spark")
+    try:
+        assert isinstance(engine, SparkEngine) and src.files == (str(data[1]),)
+    finally:
+        engine.close()
+    csv = tmp_path / "x.csv"
+    csv.write_text("a\n1\n")
+    with pytest.raises(SourceError, match="Parquet"):
+        open_source(str(csv), None, engine="spark")
+
+
+def test_cli_segment_on_a_local_master_equals_duckdb(spark, data, tmp_path):
+    runner = CliRunner()
+    args = ["--columns", ",".join(COLUMNS), "--k", "5", "--width", "0.5", "--cell-budget", "2000", "--quiet"]
+    done = runner.invoke(main, ["segment", "local[2]", "--table", REGISTERED, *args, "--out", str(tmp_path / "m.json"),
+                                "--spark-conf", "spark.sql.shuffle.partitions=2"])
+    assert done.exit_code == 0, done.output
+    ref = runner.invoke(main, ["segment", str(data[0]), "--table", TABLE, *args, "--out", str(tmp_path / "ref.json")])
+    assert ref.exit_code == 0, ref.output
+    # reference: the model DuckDB writes for the same rows
+    assert json.loads((tmp_path / "m.json").read_text())["sizes"] == json.loads((tmp_path / "ref.json").read_text())["sizes"]
+
+
+def test_missing_driver_names_the_extra(monkeypatch):
+    import sys
+
+    monkeypatch.setitem(sys.modules, "pyspark.sql", None)
+    with pytest.raises(MissingExtraError, match=r"pip install 'tillite\[spark\]'"):
+        SparkEngine(master="local[1]")
