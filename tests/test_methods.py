@@ -1,0 +1,102 @@
+"""Second-phase methods end to end: SQL cells -> CF tree / Ward / density / k choice -> refine -> labels."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from sklearn.datasets import make_blobs, make_circles, make_moons
+from sklearn.metrics import adjusted_rand_score
+
+from tillite.cli import main
+from tillite.engines import DuckDBEngine
+from tillite.pipeline import Settings, label, segment
+from tillite.sqlgen import Source
+
+from conftest import columns_of, write_table
+
+
+def labelled(engine: DuckDBEngine, model, table: str = "t") -> dict[str, np.ndarray]:
+    label(engine, Source.of_table(table), model, "labels")
+    return engine.con.execute('SELECT "truth", "segment" FROM "labels"').fetchnumpy()
+
+
+@pytest.mark.parametrize("maker", [make_moons, make_circles], ids=["moons", "circles"])
+def test_density_segments_recover_non_convex_shapes_where_kmeans_cannot(tmp_path, maker):
+    kwargs = {"noise": 0.05, "random_state": 0} if maker is make_moons else {"noise": 0.05, "factor": 0.5, "random_state": 0}
+    x, y = maker(n_samples=200_000, **kwargs)
+    data = columns_of(x, ["a", "b"])
+    data["truth"] = y
+    path = write_table(tmp_path / "shapes.duckdb", "t", data)
+    engine = DuckDBEngine(str(path))
+    dense = segment(engine, Source.of_table("t"), ["a", "b"], Settings(k=0, method="density"))
+    got = labelled(engine, dense)
+    # reference: scikit-learn adjusted_rand_score against the generating labels, rows labelled through their cell
+    assert adjusted_rand_score(got["truth"], got["segment"]) >= 0.95
+    assert dense.method == "density" and dense.k == 2 and dense.passes == []  # no k-means refinement
+    kmeans = segment(engine, Source.of_table("t"), ["a", "b"], Settings(k=2))
+    got = labelled(engine, kmeans)
+    assert adjusted_rand_score(got["truth"], got["segment"]) < 0.6
+    engine.close()
+
+
+def test_ward_method_ends_with_refinement_and_recovers_blobs(tmp_path, blobs):
+    x, y = blobs
+    data = columns_of(x, ["a", "b", "c", "d"])
+    data["truth"] = y
+    engine = DuckDBEngine(str(write_table(tmp_path / "b.duckdb", "t", data)))
+    model = segment(engine, Source.of_table("t"), ["a", "b", "c", "d"], Settings(k=5, method="ward"))
+    assert model.method == "ward" and len(model.extras["merge_heights"]) == 30
+    got = labelled(engine, model)
+    # reference: scikit-learn adjusted_rand_score against make_blobs' labels
+    assert adjusted_rand_score(got["truth"], got["segment"]) >= 0.99
+    engine.close()
+
+
+def test_cf_tree_outlier_group_is_labelled_minus_one(tmp_path):
+    x, y = make_blobs(n_samples=60_000, centers=4, n_features=3, cluster_std=0.5, center_box=(-15, 15), random_state=8)
+    far = np.random.default_rng(1).uniform(40, 60, size=(30, 3)) * np.array([1, -1, 1])
+    data = columns_of(np.vstack([x, far]), ["a", "b", "c"])
+    data["truth"] = np.concatenate([y, np.full(30, -1)])
+    engine = DuckDBEngine(str(write_table(tmp_path / "o.duckdb", "t", data)))
+    model = segment(engine, Source.of_table("t"), ["a", "b", "c"], Settings(k=4, cell_budget=20_000, tree_budget=1_000))
+    assert model.params["tree"]["entries"] <= 1_000
+    outliers = model.extras["outliers"]
+    got = labelled(engine, model)
+    seg = np.asarray(got["segment"])
+    assert (seg == -1).sum() == outliers["rows"] > 0
+    # the planted far points are in the outlier group
+    assert (seg[np.asarray(got["truth"]) == -1] == -1).all()
+    inliers = seg >= 0
+    # reference: scikit-learn adjusted_rand_score on the rows kept
+    assert adjusted_rand_score(np.asarray(got["truth"])[inliers], seg[inliers]) >= 0.99
+    kept = segment(engine, Source.of_table("t"), ["a", "b", "c"], Settings(k=4, tree_budget=1_000, keep_outliers=True))
+    assert "outliers" not in kept.extras or kept.extras["outliers"]["rows"] == 0
+    engine.close()
+
+
+def test_k_range_is_chosen_on_cfs_and_recorded(tmp_path):
+    x, y = make_blobs(n_samples=40_000, centers=5, n_features=4, cluster_std=0.6, center_box=(-15, 15), random_state=11)
+    engine = DuckDBEngine(str(write_table(tmp_path / "k.duckdb", "t", columns_of(x, ["a", "b", "c", "d"]))))
+    model = segment(engine, Source.of_table("t"), ["a", "b", "c", "d"], Settings(k=0, k_candidates=tuple(range(2, 10))))
+    assert model.k == 5 and model.params["k_choice"]["k"] == 5
+    assert [r["k"] for r in model.params["k_choice"]["table"]] == list(range(2, 10))
+    engine.close()
+
+
+def test_cli_method_options_reach_the_model_and_show_prints_the_cut(tmp_path, blobs):
+    x, _ = blobs
+    db = write_table(tmp_path / "c.duckdb", "t", columns_of(x, ["a", "b", "c", "d"]))
+    out = tmp_path / "m.json"
+    runner = CliRunner()
+    res = runner.invoke(main, ["segment", str(db), "-t", "t", "-c", "a,b,c,d", "--k", "5", "--method", "ward", "-q", "-o", str(out)])
+    assert res.exit_code == 0, res.output
+    assert json.loads(out.read_text())["method"] == "ward"
+    shown = runner.invoke(main, ["show", str(out)])
+    assert "Ward merge heights" in shown.output and "sharp cut" in shown.output
+    res = runner.invoke(main, ["segment", str(db), "-t", "t", "-c", "a,b,c,d", "--k", "auto", "-o", str(out)])
+    assert res.exit_code == 0 and "Calinski-Harabasz" in res.stderr and json.loads(out.read_text())["k"] == 5
+    res = runner.invoke(main, ["segment", str(db), "-t", "t", "-c", "a,b", "--k", "two"])
+    assert res.exit_code == 2 and "--k" in res.output
