@@ -11,7 +11,6 @@ from pathlib import Path
 from typing import Iterator
 
 import click
-import numpy as np
 
 from . import __version__, sqlgen
 from .engines import TilliteError, open_source, open_database

@@ -6,29 +6,19 @@ A thin layer over tillite.macros.  Registered on the main command with
 
 from __future__ import annotations
 
-from contextlib import contextmanager
-from typing import Iterator
-
 import click
-import duckdb
 
 from . import macros as M
-from .engines import TilliteError
 from .model import Model
 
 __all__ = ["macros"]
 
 
-@contextmanager
-def _user_errors() -> Iterator[None]:
-    """Our errors and the database's as one-line messages with exit code 1."""
-    try:
-        yield
-    except TilliteError as err:
-        raise click.ClickException(str(err)) from None
-    except duckdb.Error as err:
-        first = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
-        raise click.ClickException(f"database error: {first}") from None
+def _user_errors():
+    """Our errors and the database's as one-line messages with exit code 1 (the main command's handler)."""
+    from .cli import user_errors
+
+    return user_errors()
 
 
 def _model(model_path: str | None, name: str | None) -> Model | None:

@@ -74,13 +74,7 @@ class Source:
     def relation(self) -> exp.Expression:
         """The FROM item for this source."""
         if self.table:
-            parts = [exp.to_identifier(p, quoted=True) for p in self.table]
-            kwargs = {"this": parts[-1]}
-            if len(parts) >= 2:
-                kwargs["db"] = parts[-2]
-            if len(parts) >= 3:
-                kwargs["catalog"] = parts[-3]
-            return exp.Table(**kwargs)
+            return table_of(self.table)
         paths = [exp.Literal.string(f) for f in self.files]
         arg = paths[0] if len(paths) == 1 else exp.Array(expressions=paths)
         args: list[exp.Expression] = [arg]
@@ -685,7 +679,13 @@ def label_select(
 
 
 def table_name(name: str) -> exp.Table:
-    parts = [exp.to_identifier(p, quoted=True) for p in name.split(".")]
+    """A (possibly schema- and catalog-qualified, dotted) name as a table reference."""
+    return table_of(name.split("."))
+
+
+def table_of(name_parts: Sequence[str]) -> exp.Table:
+    """[catalog, [schema,]] table as a quoted table reference."""
+    parts = [exp.to_identifier(p, quoted=True) for p in name_parts]
     kwargs = {"this": parts[-1]}
     if len(parts) >= 2:
         kwargs["db"] = parts[-2]

@@ -570,7 +570,6 @@ def refresh(
     if not (recompute or report.vanished or touched_meta or force or k is not None):
         report.model = info.model
         return report
-    d = len(info.columns)
     try:
         with engine.transaction():
             _claim(engine, info)
