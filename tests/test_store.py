@@ -262,3 +262,16 @@ def test_store_commands_run_from_the_cli(demo_db):
     assert '"vanished": [' in res.output
     res = runner.invoke(main, ["refresh", str(demo_db), "--store", "nope"])
     assert res.exit_code == 1 and "store nope not found" in res.output
+
+
+def test_store_refuses_spark_for_want_of_transactions_and_names_the_alternatives():
+    from tillite.engines import SparkEngine
+
+    spark = SparkEngine.__new__(SparkEngine)  # the engine's type alone; no Spark session is started
+    spark.dialect = "spark"
+    for attempt in (
+        lambda: S.build(spark, Source.of_table("meter_days"), COLS, S.PartitionSpec(("day",)), Settings(k=3)),
+        lambda: S.refresh(spark, "meter_days"),
+    ):
+        with pytest.raises(S.StoreError, match="multi-statement transactions.*Spark SQL does not have.*DuckDB or PostgreSQL"):
+            attempt()

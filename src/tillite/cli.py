@@ -13,7 +13,7 @@ from typing import Iterator
 import click
 
 from . import __version__, sqlgen
-from .engines import TilliteError, open_source, open_database
+from .engines import TilliteError, open_source
 from .model import Model
 from .pipeline import Settings, label, run_profile, segment
 
@@ -255,8 +255,9 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
     with user_errors():
         if store_name:
             from . import store as store_api
+            from .cli_store import open_store_database
 
-            engine = open_database(source, writable=True)
+            engine = open_store_database(source, writable=True)
             try:
                 made = store_api.label(engine, store_name, into, materialize=materialize, replace=replace)
             finally:

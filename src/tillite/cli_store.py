@@ -7,7 +7,7 @@ import json
 import click
 
 from . import store as store_api
-from .engines import open_database, open_source
+from .engines import Engine, PostgresEngine, engine_kind, open_database, open_source
 
 
 def _cli():
@@ -66,6 +66,13 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
         click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
 
 
+def open_store_database(location: str, writable: bool = False) -> Engine:
+    """The database keeping a store: a DuckDB file, or PostgreSQL by its postgresql:// URL."""
+    if engine_kind(location) == "postgres":
+        return PostgresEngine(location, read_only=not writable)
+    return open_database(location, writable=writable)
+
+
 def src_is_files(source: str) -> bool:
     import os
 
@@ -84,7 +91,7 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
     """Partitions, rows, when summarised, and the grid in use."""
     cli = _cli()
     with cli.user_errors():
-        engine = open_database(source)
+        engine = open_store_database(source)
         try:
             st = store_api.status(engine, store_name, outside_warn=outside_warn)
         finally:
@@ -117,7 +124,7 @@ def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force,
     """Scan only new and changed partitions, re-segment, and report drift."""
     cli = _cli()
     with cli.user_errors():
-        engine = open_database(source, writable=True)
+        engine = open_store_database(source, writable=True)
         try:
             report = store_api.refresh(engine, store_name, progress=cli._progress(quiet), drift_threshold=drift_warn,
                                        new_segment_shift=new_segment_shift, k=k, force=force)

@@ -246,7 +246,15 @@ def open_source(
 
 
 class EngineError(TilliteError):
-    """The database refused or failed a statement; the message is the database's own first line."""
+    """The database refused or failed a statement; the message is the database's own first line.
+
+    ``sqlstate`` is the SQL standard's error code where the driver gives one
+    (PostgreSQL: 55P03 when a NOWAIT lock is held elsewhere).
+    """
+
+    def __init__(self, message: str, sqlstate: str | None = None) -> None:
+        super().__init__(message)
+        self.sqlstate = sqlstate
 
 
 class MissingExtraError(TilliteError):
@@ -409,7 +417,7 @@ class PostgresEngine:
         try:
             yield
         except self._psycopg.Error as err:
-            raise EngineError(f"database error: {first_line(err)}") from None
+            raise EngineError(f"database error: {first_line(err)}", getattr(err, "sqlstate", None)) from None
 
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
         with self._errors():

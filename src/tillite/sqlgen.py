@@ -372,8 +372,14 @@ class Partitioning:
             for i, a in enumerate(self.aliases())
         ]
 
-    def filter(self, types: Sequence[str], values: Sequence[Sequence[str | None]]) -> exp.Expression:
-        """Rows of the listed partitions: OR over partitions of AND over columns of col = CAST('v' AS type)."""
+    def filter(
+        self, types: Sequence[str], values: Sequence[Sequence[str | None]], dialect: str | None = None
+    ) -> exp.Expression:
+        """Rows of the listed partitions: OR over partitions of AND over columns of col = CAST('v' AS type).
+
+        ``types`` are the column types as the engine's describe() names them,
+        read in ``dialect`` (PostgreSQL's DOUBLE PRECISION, TIMESTAMPTZ, ...).
+        """
         alternatives = []
         for row in values:
             terms = []
@@ -381,7 +387,8 @@ class Partitioning:
                 if v is None:
                     terms.append(exp.Is(this=e.copy(), expression=exp.Null()))
                 else:
-                    terms.append(exp.EQ(this=e.copy(), expression=exp.cast(exp.Literal.string(v), exp.DataType.build(t))))
+                    kind = exp.DataType.build(t, dialect=dialect)
+                    terms.append(exp.EQ(this=e.copy(), expression=exp.cast(exp.Literal.string(v), kind)))
             alternatives.append(paren(all_of(terms)))
         out = alternatives[0]
         for alt in alternatives[1:]:
@@ -443,13 +450,13 @@ def cells_statement(
 def fingerprint_statement(source: Source, columns: Sequence[str], partition: Partitioning, dialect: str) -> exp.Select:
     """Per partition: its text, its values, row count and an order-independent hash aggregate.
 
-    Grouped on the raw partition values; the hash sum (of the chosen columns) is
-    returned as text so no digits are lost on the way to Python.
+    Grouped on the raw partition values; the fingerprint is the sum over the
+    partition's rows of a 64-bit hash of the chosen columns (``row_hash``),
+    summed exactly and returned as text so no digits are lost on the way to
+    Python.  Fingerprints are compared only with earlier ones from the same
+    engine, never across engines.
     """
-    if dialect != "duckdb":
-        raise NotImplementedError(f"partition fingerprints are not built for the {dialect} dialect yet")
-    row_hash = exp.Anonymous(this="hash", expressions=[col(c) for c in columns])
-    text = exp.cast(exp.Sum(this=row_hash), exp.DataType.build("VARCHAR"))
+    text = exp.cast(exp.Sum(this=row_hash(columns, dialect)), exp.DataType.build("VARCHAR"))
     inner = (
         exp.select(
             *partition.projected(),
@@ -462,6 +469,68 @@ def fingerprint_statement(source: Source, columns: Sequence[str], partition: Par
     return exp.select(
         exp.alias_(partition.text(), "part", quoted=True), *partition.value_columns(), col("rows"), col("fingerprint")
     ).from_(subquery(inner, internal("f")))
+
+
+#: Dialects whose 64-bit row hash ``row_hash`` builds.
+FINGERPRINT_DIALECTS = ("duckdb", "postgres", "spark", "databricks", "trino", "bigquery", "snowflake")
+
+#: Row text (``row_text``): the NULL marker and the column separator.  Neither
+#: can be the text of a number, which is all the store hashes (it checks its columns).
+ROW_TEXT_NULL = "~"
+ROW_TEXT_SEPARATOR = "|"
+
+
+def row_hash(columns: Sequence[str], dialect: str) -> exp.Expression:
+    """A 64-bit hash of a row's columns that tells NULL from values and keeps column boundaries.
+
+    Built so that SUM over it is exact in the dialect (no 64-bit overflow):
+
+    - DuckDB: hash(c0, c1, ...) (UBIGINT; SUM gives HUGEINT);
+    - PostgreSQL: hashtextextended(row text, 0) (BIGINT; SUM gives NUMERIC);
+    - Spark: xxhash64(c0 IS NULL, c0, c1 IS NULL, c1, ...) as DECIMAL(38,0) -- xxhash64
+      skips NULL arguments, so each column's NULL flag goes in before it;
+    - Trino: from_big_endian_64(xxhash64(to_utf8(row text))) as DECIMAL(38,0);
+    - BigQuery: farm_fingerprint(to_json_string(STRUCT(c0, c1, ...))) as BIGNUMERIC;
+    - Snowflake: hash(c0, c1, ...) as NUMBER(38,0) (Snowflake's HASH hashes NULL as a value).
+    """
+    cols = [col(c) for c in columns]
+    if dialect == "duckdb":
+        return exp.Anonymous(this="hash", expressions=cols)
+    if dialect == "postgres":
+        return exp.Anonymous(this="hashtextextended", expressions=[row_text(columns), num(0)])
+    wide = exp.DataType.build("DECIMAL(38, 0)")
+    if dialect in ("spark", "databricks"):
+        flagged = [e for c in cols for e in (exp.Is(this=c.copy(), expression=exp.Null()), c)]
+        return exp.cast(exp.Anonymous(this="xxhash64", expressions=flagged), wide)
+    if dialect == "trino":
+        digest = exp.Anonymous(this="xxhash64", expressions=[exp.Anonymous(this="to_utf8", expressions=[row_text(columns)])])
+        return exp.cast(exp.Anonymous(this="from_big_endian_64", expressions=[digest]), wide)
+    if dialect == "bigquery":
+        as_json = exp.Anonymous(this="TO_JSON_STRING", expressions=[exp.Struct(expressions=cols)])
+        return exp.cast(exp.Anonymous(this="FARM_FINGERPRINT", expressions=[as_json]), exp.DataType.build("BIGNUMERIC", dialect="bigquery"))
+    if dialect == "snowflake":
+        return exp.cast(exp.Anonymous(this="hash", expressions=cols), wide)
+    raise NotImplementedError(
+        f"partition fingerprints are not built for the {dialect} dialect; built for {', '.join(FINGERPRINT_DIALECTS)}"
+    )
+
+
+def row_text(columns: Sequence[str]) -> exp.Expression:
+    """c0 | c1 | ... as text, a NULL column reading ``~``: distinct rows of numbers give distinct texts.
+
+    Numbers print as digits, sign, point, exponent, NaN or Infinity, never as
+    ``~`` and never holding ``|``, so the text tells NULL from a value and
+    where each column ends.  PostgreSQL prints a double with the shortest
+    digits that read back exactly (extra_float_digits = 1, its default).
+    """
+    pieces = [
+        exp.Coalesce(this=exp.cast(col(c), exp.DataType.build("VARCHAR")), expressions=[exp.Literal.string(ROW_TEXT_NULL)])
+        for c in columns
+    ]
+    out = pieces[0]
+    for piece in pieces[1:]:
+        out = exp.DPipe(this=exp.DPipe(this=out, expression=exp.Literal.string(ROW_TEXT_SEPARATOR)), expression=piece)
+    return out
 
 
 def merged_cells_statement(cells_table: str, key_names: Sequence[str], d: int) -> exp.Select:
@@ -508,6 +577,19 @@ def in_list(column: str, values: Sequence[object]) -> exp.Expression:
 def select_where(table: str, where: exp.Expression | None = None, columns: Sequence[str] | None = None) -> exp.Select:
     sel = exp.select(*([col(c) for c in columns] if columns else [exp.Star()])).from_(table_name(table))
     return sel.where(where) if where is not None else sel
+
+
+def lock_rows_statement(table: str, where: exp.Expression, columns: Sequence[str], dialect: str) -> exp.Select:
+    """SELECT columns FROM table WHERE ..., locking the rows until the transaction ends where the dialect can.
+
+    PostgreSQL: FOR UPDATE NOWAIT, which fails at once (SQLSTATE 55P03) while
+    another transaction holds one of the rows, instead of waiting for it.
+    DuckDB has no row locks: there the update that follows conflicts instead.
+    """
+    sel = select_where(table, where, columns)
+    if dialect == "postgres":
+        sel.set("locks", [exp.Lock(update=True, wait=True)])  # sqlglot: wait=True renders NOWAIT
+    return sel
 
 
 def update_statement(table: str, values: dict[str, object], where: exp.Expression) -> exp.Update:

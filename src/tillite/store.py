@@ -71,6 +71,7 @@ __all__ = [
     "subtract_rows",
     "resegment",
     "match_segments",
+    "require_transactions",
 ]
 
 STORES = "tillite_stores"
@@ -478,6 +479,7 @@ def build(
     ``grid`` and ``init_centroids`` (original units) reproduce a build with a given
     frozen grid and warm start (used to check refreshes against fresh builds).
     """
+    require_transactions(engine)
     columns = list(columns)
     settings.check(columns)
     name = store or (source.table[-1] if source.table else Path(source.files[0]).stem)
@@ -552,6 +554,7 @@ def refresh(
     ``before_commit`` is called inside the transaction after the new cells and
     model are in place (tests use it to inject a failure).
     """
+    require_transactions(engine)
     t0 = time.perf_counter()
     info = load(engine, store)
     report = RefreshReport(store=store)
@@ -595,11 +598,9 @@ def refresh(
             _relabel(engine, info, model)
             if before_commit is not None:
                 before_commit()
-    except TilliteError:
-        raise
     except Exception as err:  # the transaction rolled back: the store is as it was
         if _is_conflict(err):
-            raise StoreBusy(f"store {store} was changed by another refresh at the same time; nothing was changed by this one, run it again") from None
+            raise _busy(store) from None
         raise
     report.model = model
     report.seconds["total"] = time.perf_counter() - t0
@@ -616,20 +617,59 @@ def _restricted_cells(engine: Engine, info: StoreInfo, scan: Source, fps: Sequen
     if info.partition.files:
         return sqlgen.cells_statement(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.dialect, partitioning)
     types = dict(engine.describe(info.source))
-    where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps])
+    where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps], engine.dialect)
     return sqlgen.cells_statement(scan, info.columns, info.grid, engine.dialect, partitioning, where=where)
 
 
 def _claim(engine: Engine, info: StoreInfo) -> None:
-    """Bump the store's version inside the transaction: a concurrent refresh conflicts here."""
-    engine.execute(sqlgen.update_statement(
-        STORES, {"version": info.version + 1}, sqlgen.equals_all({"store": info.name, "version": info.version})
-    ))
+    """Claim the store inside the transaction: a concurrent refresh fails here, without waiting.
+
+    The store's row is read with a lock where the dialect has one (PostgreSQL:
+    FOR UPDATE NOWAIT errors at once while another transaction holds it) and
+    its version bumped (DuckDB: the update conflicts with another open one).  A
+    version other than the one loaded means another refresh committed since.
+    """
+    where = sqlgen.equals_all({"store": info.name})
+    try:
+        got = engine.query(sqlgen.lock_rows_statement(STORES, where, ["version"], engine.dialect))
+        if len(got["version"]) != 1 or int(got["version"][0]) != info.version:
+            raise _busy(info.name)
+        engine.execute(sqlgen.update_statement(
+            STORES, {"version": info.version + 1}, sqlgen.equals_all({"store": info.name, "version": info.version})
+        ))
+    except Exception as err:
+        if _is_conflict(err):
+            raise _busy(info.name) from None
+        raise
+
+
+def _busy(store: str) -> StoreBusy:
+    return StoreBusy(f"store {store} was changed by another refresh at the same time; nothing was changed by this one, run it again")
+
+
+#: SQLSTATEs of losing a race for rows: lock_not_available, serialization_failure, deadlock_detected.
+CONFLICT_STATES = ("55P03", "40001", "40P01")
 
 
 def _is_conflict(err: Exception) -> bool:
-    text = str(err).lower()
+    """A database error from another transaction holding or changing the same rows."""
+    state = getattr(err, "sqlstate", None)
+    if state is not None:
+        return state in CONFLICT_STATES
+    if isinstance(err, TilliteError):
+        return False
+    text = str(err).lower()  # DuckDB: "Conflict on update" / "write-write conflict"
     return "conflict" in text or "lock" in text
+
+
+def require_transactions(engine: Engine) -> None:
+    """Refuse engines without multi-statement transactions: a store must change all at once or not at all."""
+    if engine.dialect in sqlgen.SPARK_DIALECTS:
+        raise StoreError(
+            "the summary store needs multi-statement transactions (a refresh swaps cells, partitions and model "
+            "together, or changes nothing), which Spark SQL does not have; keep the store in DuckDB or PostgreSQL "
+            "(for Parquet files: tillite store build PATH --db store.duckdb)"
+        )
 
 
 def _resegment(engine: Engine, info: StoreInfo, settings: Settings, progress: ProgressFn, new_segment_shift: float):
@@ -661,6 +701,7 @@ def _relabel(engine: Engine, info: StoreInfo, model: Model) -> None:
 
 def resegment(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segment_shift: float = 3.0) -> Model:
     """Re-segment from the stored cells without scanning the source (e.g. after subtract_rows)."""
+    require_transactions(engine)
     info = load(engine, store)
     with engine.transaction():
         _claim(engine, info)
@@ -679,6 +720,7 @@ def subtract_rows(engine: Engine, store: str, part: str, rows: np.ndarray) -> in
     For users who stream deletes.  The partition's fingerprint is marked stale,
     so the next refresh re-verifies it with a scan.  Returns the cells touched.
     """
+    require_transactions(engine)
     info = load(engine, store)
     rows = np.asarray(rows, dtype=np.float64).reshape(-1, len(info.columns))
     rows = rows[np.isfinite(rows).all(axis=1)]
