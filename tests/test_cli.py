@@ -563,3 +563,17 @@ def test_crosstab_with_no_matching_rows_says_so_instead_of_failing():
         assert "no rows matched" in report.crosstab(engine, "l", "m", "id", "kind")
     finally:
         engine.close()
+
+
+@pytest.mark.parametrize("dialect", ["spark", "postgres", "trino", "bigquery", "snowflake", "duckdb"])
+def test_sql_without_a_source_prints_every_stage_in_any_dialect(model_file, dialect):
+    import sqlglot
+
+    for stage in ("profile", "cells", "refine", "label"):
+        result = run("sql", "--table", "warehouse.points", "--model", model_file, "--stage", stage, "--dialect", dialect)
+        assert result.exit_code == 0, result.output
+        # reference: sqlglot's own parser reads every printed statement back in that dialect
+        for text in statements(result.stdout):
+            assert sqlglot.parse_one(text, read=dialect) is not None
+    result = run("sql", "--columns", "a", "--stage", "cells")
+    assert result.exit_code == 2 and "--table" in result.output

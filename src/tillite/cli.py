@@ -287,7 +287,7 @@ def show_command(model_path, as_json) -> None:
 
 
 @main.command("sql")
-@source_argument
+@click.argument("source", metavar="[SOURCE]", required=False)
 @table_option
 @click.option("--columns", "-c", multiple=True, help="Columns (not needed with --model).")
 @click.option("--stage", type=click.Choice(STAGES), required=True, help="Which statement to print.")
@@ -296,25 +296,39 @@ def show_command(model_path, as_json) -> None:
               help="SQL dialect to render (any sqlglot dialect name).")
 @click.option("--cell-budget", type=int, default=20_000, show_default=True)
 def sql_command(source, table, columns, stage, model_path, dialect, cell_budget) -> None:
-    """Print the SQL a stage would run, without running it."""
+    """Print the SQL a stage would run, without running it.
+
+    Without SOURCE nothing is connected to: give --table, and --model for the
+    cells, refine and label stages (the label select then lists the model's
+    columns only, as the source's other columns are unknown).
+    """
     with user_errors():
         model = Model.read(model_path) if model_path else None
         cols = list(model.columns) if model else _split_columns(columns)
         if not cols:
             raise click.UsageError("give --columns or --model")
-        engine, src = _open(source, table)
-        try:
-            statements = _stage_statements(engine, src, cols, stage, model, dialect, cell_budget)
-        finally:
-            engine.close()
+        if source is None:
+            if not table:
+                raise click.UsageError("without SOURCE, give --table (the statements are only printed)")
+            if stage != "profile" and model is None:
+                raise click.UsageError(f"without SOURCE, --stage {stage} needs --model (its grid and centroids)")
+            statements = _stage_statements(None, sqlgen.Source.of_table(table), cols, cols, stage, model, dialect, cell_budget)
+        else:
+            engine, src = _open(source, table)
+            try:
+                from .pipeline import check_columns
+
+                source_columns = check_columns(engine, src, cols)
+                statements = _stage_statements(engine, src, cols, source_columns, stage, model, dialect, cell_budget)
+            finally:
+                engine.close()
         for st in statements:
             click.echo(sqlgen.render(st, dialect, pretty=True) + ";")
 
 
-def _stage_statements(engine, src, cols, stage, model, dialect, cell_budget):
-    from .pipeline import check_columns, grid_for_profile
+def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, cell_budget):
+    from .pipeline import grid_for_profile
 
-    source_columns = check_columns(engine, src, cols)
     if stage == "profile":
         return [sqlgen.count_statement(src), sqlgen.sample_statement(src, cols, dialect, percent=1.0, limit=100_000)]
     if stage == "cells":
@@ -327,8 +341,8 @@ def _stage_statements(engine, src, cols, stage, model, dialect, cell_budget):
     if model is None:
         raise click.UsageError(f"--stage {stage} needs --model")
     if stage == "refine":
-        return [sqlgen.refine_statement(src, cols, model.assignment(), dialect)]
-    return [sqlgen.label_select(src, cols, source_columns, model.assignment(), dialect)]
+        return [sqlgen.refine_statement(src, cols, model.assignment(), dialect, cell_map=model.cell_map_spec())]
+    return [sqlgen.label_select(src, cols, source_columns, model.assignment(), dialect, cell_map=model.cell_map_spec())]
 
 
 @main.command("demo")
