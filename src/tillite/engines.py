@@ -108,8 +108,22 @@ class Engine(Protocol):
     def close(self) -> None: ...
 
 
+class StatementRunner:
+    """What every engine shares: rendering for its dialect, and statements all-or-nothing."""
+
+    dialect: str
+
+    def sql_text(self, statement: exp.Expression) -> str:
+        return sqlgen.render(statement, self.dialect)
+
+    def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
+        with self.transaction():
+            for st in statements:
+                self.execute(st)
+
+
 @dataclass
-class DuckDBEngine:
+class DuckDBEngine(StatementRunner):
     """The embedded default: a .duckdb file, or an in-memory database over files."""
 
     path: str = ":memory:"
@@ -127,9 +141,6 @@ class DuckDBEngine:
         except duckdb.Error as err:
             raise SourceError(f"cannot open DuckDB database {self.path}: {err}") from None
 
-    def sql_text(self, statement: exp.Expression) -> str:
-        return sqlgen.render(statement, self.dialect)
-
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
         got = self.con.execute(self.sql_text(statement)).fetchnumpy()
         _count_fetched(self, got)
@@ -137,11 +148,6 @@ class DuckDBEngine:
 
     def execute(self, statement: exp.Expression) -> None:
         self.con.execute(self.sql_text(statement))
-
-    def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
-        with self.transaction():
-            for st in statements:
-                self.con.execute(self.sql_text(st))
 
     @contextmanager
     def transaction(self) -> Iterator[None]:
@@ -363,7 +369,7 @@ PG_SYSTEM_SCHEMAS = ("pg_catalog", "information_schema", "pg_toast")
 
 
 @dataclass
-class PostgresEngine:
+class PostgresEngine(StatementRunner):
     """PostgreSQL through psycopg 3: the same trees rendered in the postgres dialect.
 
     ``conninfo`` is a ``postgresql://`` URL or a ``key=value`` string.  Opened
@@ -409,9 +415,6 @@ class PostgresEngine:
             return "(unreadable connection string)"
         return f"{p.get('user', '')}@{p.get('host', 'localhost')}:{p.get('port', '5432')}/{p.get('dbname', '')}"
 
-    def sql_text(self, statement: exp.Expression) -> str:
-        return sqlgen.render(statement, self.dialect)
-
     @contextmanager
     def _errors(self) -> Iterator[None]:
         try:
@@ -437,11 +440,6 @@ class PostgresEngine:
     def execute(self, statement: exp.Expression) -> None:
         with self._errors():
             self.con.execute(self.sql_text(statement))
-
-    def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
-        with self.transaction():
-            for st in statements:
-                self.execute(st)
 
     @contextmanager
     def transaction(self) -> Iterator[None]:
@@ -514,7 +512,7 @@ SPARK_LOCAL_DEFAULTS = {
 
 
 @dataclass
-class SparkEngine:
+class SparkEngine(StatementRunner):
     """Spark SQL through pyspark: the same trees rendered in the spark dialect.
 
     Give ``session`` to use a SparkSession you have (it is left running on
@@ -650,11 +648,6 @@ class SparkEngine:
             return bool(self.spark.catalog.getTable(sqlgen.render(table, self.dialect)).isTemporary)
         except self._errors_caught:
             return False
-
-    def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
-        with self.transaction():
-            for st in statements:
-                self.execute(st)
 
     @contextmanager
     def transaction(self) -> Iterator[None]:
