@@ -275,3 +275,21 @@ def test_store_refuses_spark_for_want_of_transactions_and_names_the_alternatives
     ):
         with pytest.raises(S.StoreError, match="multi-statement transactions.*Spark SQL does not have.*DuckDB or PostgreSQL"):
             attempt()
+
+
+def test_regrid_rebuilds_on_a_new_grid_keeps_ids_and_relabels(built):
+    engine, info, model = built
+    S.label(engine, "meter_days", "water_labels")
+    engine.con.execute(
+        "INSERT INTO meter_days SELECT meter_id, district, day + 100, litres * 40, night_share, peak_litres * 40, "
+        "flow_run_hours, zero_hours FROM meter_days WHERE day <= DATE '2026-01-03'"
+    )
+    S.refresh(engine, "meter_days")
+    assert S.status(engine, "meter_days")["warnings"]
+    after = S.regrid(engine, "meter_days")
+    new_info = S.load(engine, "meter_days")
+    assert new_info.grid != info.grid and not S.status(engine, "meter_days")["warnings"]
+    assert set(after.segment_ids()) & set(model.segment_ids())
+    assert_store_equals_fresh_cell_pass(engine, new_info)
+    got = engine.con.execute('SELECT DISTINCT "segment" FROM "water_labels" WHERE "segment" IS NOT NULL').fetchall()
+    assert {g for (g,) in got} <= set(after.segment_ids())

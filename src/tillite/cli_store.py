@@ -118,14 +118,20 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
 @click.option("--new-segment-shift", type=float, default=3.0, show_default=True,
               help="A segment farther than this (sd) from every old one gets a new id.")
 @click.option("--force", is_flag=True, help="Re-segment even when no partition changed.")
+@click.option("--regrid", is_flag=True, help="Rebuild every partition on a new grid (when `store status` warns "
+              "that rows fall outside the built range); segment ids are kept where segments match.")
 @click.option("--quiet", "-q", is_flag=True)
 @click.option("--json", "as_json", is_flag=True)
-def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force, quiet, as_json) -> None:
+def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force, regrid, quiet, as_json) -> None:
     """Scan only new and changed partitions, re-segment, and report drift."""
     cli = _cli()
     with cli.user_errors():
         engine = open_store_database(source, writable=True)
         try:
+            if regrid:
+                model = store_api.regrid(engine, store_name, progress=cli._progress(quiet), new_segment_shift=new_segment_shift)
+                click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
+                return
             report = store_api.refresh(engine, store_name, progress=cli._progress(quiet), drift_threshold=drift_warn,
                                        new_segment_shift=new_segment_shift, k=k, force=force)
         finally:

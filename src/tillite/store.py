@@ -70,6 +70,7 @@ __all__ = [
     "label",
     "subtract_rows",
     "resegment",
+    "regrid",
     "match_segments",
     "require_transactions",
 ]
@@ -473,11 +474,16 @@ def build(
     grid: Grid | None = None,
     init_centroids: np.ndarray | None = None,
     replace: bool = False,
+    previous: StoreInfo | None = None,
+    new_segment_shift: float = 3.0,
 ) -> tuple[StoreInfo, Model]:
     """Build a store from scratch: frozen grid, per-partition cells and fingerprints, first model.
 
     ``grid`` and ``init_centroids`` (original units) reproduce a build with a given
     frozen grid and warm start (used to check refreshes against fresh builds).
+    ``previous`` (a regrid of an existing store): segment ids are matched to its
+    model, its next id carries on, and its label views are re-created, all in
+    the build's transaction.
     """
     require_transactions(engine)
     columns = list(columns)
@@ -515,16 +521,39 @@ def build(
         progress("cells", f"{len(fps):,} partitions -> {cells_grid.m:,} cells ({skipped:,} rows skipped), {time.perf_counter() - t1:.2f} s")
         model, _, _ = _segment_cells(engine, source, columns, cells_grid, skipped, grid, settings, source.label, init_centroids, progress)
         key_range = np.stack([keys.min(axis=0), keys.max(axis=0)])
+        next_id = settings.k
+        if previous is not None:
+            sd = np.asarray(model.grid["sd"])
+            model.ids, next_id = match_segments(
+                np.asarray(previous.model.centroids), previous.model.segment_ids(), np.asarray(model.centroids),
+                previous.next_id, np.where(sd > 0, sd, 1.0), new_segment_shift,
+            )
         if partition.files:
             model.source = f"{source.label} (one partition per file)"
         engine.execute(sqlgen.insert_values_statement(PARTS, _part_rows(name, fps, sorted(fps))))
         engine.execute(sqlgen.insert_values_statement(STORES, [(
             name, json.dumps(_source_to_dict(source)), json.dumps(columns), json.dumps(partition.to_dict()), cells_table,
             json.dumps(grid.to_dict()), json.dumps(key_range.tolist()), model.to_json(), json.dumps(_settings_dict(settings)),
-            settings.k, 0, _now(), None,
+            next_id, previous.version + 1 if previous is not None else 0, _now(), None,
         )]))
+        if previous is not None:
+            _relabel(engine, previous, model)
     model.timings = {"total": time.perf_counter() - t0}
     return load(engine, name), model
+
+
+def regrid(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segment_shift: float = 3.0) -> Model:
+    """Rebuild a store with a new grid from a new profile: every partition is rescanned.
+
+    For when rows increasingly fall outside the built range (``status`` warns).
+    Segment ids are matched to the current model's, and label views follow.
+    """
+    info = load(engine, store)
+    _, model = build(
+        engine, info.source, info.columns, info.partition, _settings_of(info.settings), store=store,
+        progress=progress, replace=True, previous=info, new_segment_shift=new_segment_shift,
+    )
+    return model
 
 
 def _drop_store_statements(name: str, cells_table: str) -> list:
