@@ -691,7 +691,8 @@ def label(
     """
     source_columns = check_columns(engine, source, model.columns)
     select = sqlgen.label_select(
-        source, model.columns, source_columns, model.assignment(), engine.dialect, cell_map=model.cell_map_spec()
+        source, model.columns, source_columns, model.assignment(), engine.dialect, cell_map=model.cell_map_spec(),
+        materialize=materialize or bool(source.files),
     )
     if source.files:
         return _label_to_file(engine, source, select, into, replace)

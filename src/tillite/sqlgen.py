@@ -637,6 +637,7 @@ def _assignment_layers(
     dialect: str,
     keep_source: bool,
     cell_map: CellMap | None = None,
+    fence: bool | None = None,
 ) -> tuple[exp.Select, str, str, list[str]]:
     """A query with the segment of each row (NULL for unusable rows).
 
@@ -646,8 +647,10 @@ def _assignment_layers(
     ``cell_map`` rows of mapped cells take their cell's segment instead.
     Returns (select, segment column, the assigned segment's score column,
     centred value columns); when keep_source the select also carries every
-    source column.
+    source column.  ``fence`` (default: when not keeping the source) computes
+    the scores once per row on engines that would inline them (``scan_fence``).
     """
+    fence = (not keep_source) if fence is None else fence
     d, k = len(columns), len(assign.centroids)
     v = [internal(f"v{j}") for j in range(d)]
     score = [internal(f"s{i}") for i in range(k)]
@@ -666,11 +669,11 @@ def _assignment_layers(
         exp.alias_(usable_rows(v, dialect), internal("ok"), quoted=True),
         *[exp.alias_(linear_form(v, a[i], b[i]), score[i], quoted=True) for i in range(k)],
     ).from_(subquery(stage1, internal("a")))
-    if not keep_source:
+    if fence:
         stage2 = scan_fence(stage2, dialect)
     least = col(score[0]) if k == 1 else least_of([col(n) for n in score])
     stage3 = exp.select(exp.Star(), exp.alias_(least, best, quoted=True)).from_(subquery(stage2, internal("b")))
-    if not keep_source:
+    if fence:
         stage3 = scan_fence(stage3, dialect)
     ids = assign.segment_ids()
     pick = exp.Case(
@@ -741,13 +744,20 @@ def label_select(
     segment_name: str = "segment",
     distance_name: str = "distance",
     cell_map: CellMap | None = None,
+    materialize: bool = False,
 ) -> exp.Select:
     """Every source column plus the segment id and the distance to its centroid.
+
+    ``materialize``: the select fills a table once, so the scores are fenced
+    (computed once per row); a view is left unfenced so filters on it reach
+    the source.
 
     distance = sqrt(max(score + ||u||_w^2, 0)) for the segment's centroid; NULL
     for skipped rows and for the outlier group / noise (segment -1).
     """
-    inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=True, cell_map=cell_map)
+    inner, seg, best, v = _assignment_layers(
+        source, columns, assign, dialect, keep_source=True, cell_map=cell_map, fence=materialize
+    )
     sq_norm = _squared_norm(v, assign)
     distance = case_when(
         exp.GTE(this=col(seg), expression=num(0)),
