@@ -22,7 +22,7 @@ import re
 import stat
 from dataclasses import dataclass
 from importlib import resources
-from typing import Iterable, Mapping, Sequence
+from typing import Callable, Iterable, Mapping, Sequence
 
 import duckdb
 from sqlglot import exp
@@ -415,23 +415,22 @@ def open_database(path: str | os.PathLike) -> duckdb.DuckDBPyConnection:
         raise MacroError(f"cannot open DuckDB database {path}: {err}") from None
 
 
-def install_into(path: str | os.PathLike, definitions: Sequence[MacroDefinition]) -> list[str]:
-    """install() on the DuckDB file at path."""
+def _on_database(path: str | os.PathLike, action: Callable[[duckdb.DuckDBPyConnection], list[str]], what: str) -> list[str]:
+    """Run action on the DuckDB file at path; database errors name the file and what was being done."""
     con = open_database(path)
     try:
-        return install(con, definitions)
+        return action(con)
     except duckdb.Error as err:
-        raise MacroError(f"cannot install macros into {os.fspath(path)}: {err}") from None
+        raise MacroError(f"cannot {what} {os.fspath(path)}: {err}") from None
     finally:
         con.close()
+
+
+def install_into(path: str | os.PathLike, definitions: Sequence[MacroDefinition]) -> list[str]:
+    """install() on the DuckDB file at path."""
+    return _on_database(path, lambda con: install(con, definitions), "install macros into")
 
 
 def remove_from(path: str | os.PathLike, model: str | None = None) -> list[str]:
     """remove() on the DuckDB file at path."""
-    con = open_database(path)
-    try:
-        return remove(con, model)
-    except duckdb.Error as err:
-        raise MacroError(f"cannot remove macros from {os.fspath(path)}: {err}") from None
-    finally:
-        con.close()
+    return _on_database(path, lambda con: remove(con, model), "remove macros from")

@@ -35,6 +35,7 @@ __all__ = [
     "segment",
     "label",
     "check_columns",
+    "cells_from_result",
     "run_profile",
     "run_cell_pass",
     "choose_width",
@@ -79,6 +80,10 @@ class Settings:
     adjacency: str = "face"  # density: "face" (grid neighbours) or "distance"
     radius: float | None = None  # density: joining distance with adjacency="distance"
     noise: str = "attach"  # density: sparse cells "attach" to the nearest segment, or stay noise ("drop")
+
+    def column_weights(self, columns: Sequence[str]) -> np.ndarray:
+        """The multiplier of each column (1 unless --weights says otherwise)."""
+        return np.array([float(self.weights.get(c, 1.0)) for c in columns])
 
     def check(self, columns: Sequence[str]) -> None:
         if self.method not in ("kmeans", "ward", "density"):
@@ -293,14 +298,24 @@ def run_cell_pass(engine: Engine, source: Source, columns: Sequence[str], grid: 
     """One GROUP BY over the grid key: cell CFs plus the skipped-row count."""
     t0 = time.perf_counter()
     got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.dialect))
+    cells, keys, skipped = cells_from_result(got, grid, len(columns))
+    return CellPass(cells=cells, keys=keys, usable=int(round(cells.n.sum())), skipped=skipped, seconds=time.perf_counter() - t0)
+
+
+def cells_from_result(got: dict[str, np.ndarray], grid: Grid, d: int) -> tuple[CF, np.ndarray, int]:
+    """Cell CFs on the grid's standardised values, their per-axis keys, and the skipped rows.
+
+    The groups whose first key is NULL hold the rows with a NULL/NaN/Inf value.
+    """
     names = grid.key_names()
     null = _null_mask(got[names[0]])
-    n = np.asarray(got["n"], dtype=np.int64)
-    skipped = int(n[null].sum())
+    skipped = int(np.asarray(got["n"], dtype=np.int64)[null].sum())
     keep = ~null
-    cells = F.affine(cf_from_result(got, len(columns), keep), np.asarray(grid.inv_scale), np.zeros(len(columns)))
+    cells = F.affine(cf_from_result(got, d, keep), np.asarray(grid.inv_scale), np.zeros(d))
+    if not keep.any():
+        return cells, np.zeros((0, len(names))), skipped
     keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names])
-    return CellPass(cells=cells, keys=keys, usable=int(n[keep].sum()), skipped=skipped, seconds=time.perf_counter() - t0)
+    return cells, keys, skipped
 
 
 # ----------------------------------------------------------------------------- refine
@@ -313,6 +328,10 @@ class SegmentStats:
     n: np.ndarray
     centroids: np.ndarray
     sse: np.ndarray
+
+    def take(self, order: np.ndarray) -> "SegmentStats":
+        """The segments in the given order."""
+        return SegmentStats(self.n[order], self.centroids[order], self.sse[order])
 
     @staticmethod
     def of_cfs(cf: CF, weights: np.ndarray) -> "SegmentStats":
@@ -409,14 +428,19 @@ def standardise_cells(
     return cells, Standardisation(center=center, sd=sd, scale=scale, weights=weights, constant=constant)
 
 
+def check_k_fits(cells: CF, k: int, where: str) -> None:
+    """A clear error when k exceeds the non-empty cells (or entries) there are to segment."""
+    nonempty = int((cells.n > 0).sum())
+    if k > nonempty:
+        distinct = " (only that many distinct rows)" if nonempty == int(round(cells.n.sum())) else "; try a smaller k or a finer --width"
+        raise InputError(f"k={k} is larger than the {nonempty:,} distinct grid cells of {where}{distinct}")
+
+
 def second_phase(
     cells: CF, settings: Settings, weights: np.ndarray, where: str, init: np.ndarray | None = None
 ) -> KMeansResult:
     """Weighted k-means++ on the cells (warm-started from ``init`` when given)."""
-    nonempty = int((cells.n > 0).sum())
-    if settings.k > nonempty:
-        distinct = " (only that many distinct rows)" if nonempty == int(round(cells.n.sum())) else "; try a smaller k or a finer --width"
-        raise InputError(f"k={settings.k} is larger than the {nonempty:,} distinct grid cells of {where}{distinct}")
+    check_k_fits(cells, settings.k, where)
     return kmeans(cells, settings.k, weights, n_init=settings.n_init, seed=settings.seed, init=init)
 
 
@@ -448,14 +472,6 @@ class PhaseResult:
         rows = np.ones(len(self.cell_labels), bool) if self.map_all else self.cell_labels < 0
         segs = np.where(self.cell_labels[rows] < 0, -1, ids[np.maximum(self.cell_labels[rows], 0)])
         return {"keys": keys[rows].tolist(), "segments": segs.astype(int).tolist(), "unmapped": self.unmapped}
-
-
-def ordered_ids(stats: SegmentStats, ordered: SegmentStats) -> np.ndarray:
-    """For each segment position before ordering by size, its id after."""
-    order = np.argsort(-stats.n, kind="stable") if ordered is not stats else np.arange(len(stats.n))
-    ids = np.empty(len(order), dtype=np.int64)
-    ids[order] = np.arange(len(order))
-    return ids
 
 
 def run_second_phase(
@@ -504,8 +520,7 @@ def run_second_phase(
         params["k_choice"] = {"rule": choice.rule, "table": choice.table, "k": k}
         progress("choose k", "\n" + format_k_table(choice))
     if settings.method == "ward":
-        if k > int((entries.n > 0).sum()):
-            raise InputError(f"k={k} is larger than the {int((entries.n > 0).sum()):,} distinct grid cells of {where}")
+        check_k_fits(entries, k, where)
         res = ward(entries, k, weights)
         labels, centroids, sse = res.labels, res.centroids, res.sse
         extras["merge_heights"] = [float(h) for h in res.heights[-30:]]
@@ -554,10 +569,14 @@ def refine_passes(
     return stats, passes, timings
 
 
+def size_order(stats: SegmentStats) -> np.ndarray:
+    """Segment positions largest first, so ids read the same way every run."""
+    return np.argsort(-stats.n, kind="stable")
+
+
 def order_by_size(stats: SegmentStats) -> SegmentStats:
-    """Segments renumbered largest first (ids 0..k-1), so ids read the same way every run."""
-    order = np.argsort(-stats.n, kind="stable")
-    return SegmentStats(stats.n[order], stats.centroids[order], stats.sse[order])
+    """Segments renumbered largest first (ids 0..k-1)."""
+    return stats.take(size_order(stats))
 
 
 def make_model(
@@ -621,7 +640,7 @@ def segment(
     settings.check(columns)
     t_start = time.perf_counter()
     check_columns(engine, source, columns)
-    weights = np.array([float(settings.weights.get(c, 1.0)) for c in columns])
+    weights = settings.column_weights(columns)
 
     # 1. profile on a sample, and the grid from it
     t0 = time.perf_counter()
@@ -653,14 +672,18 @@ def segment(
             engine, source, columns, std, phase.centroids, stats, settings, progress, cp.usable,
             cell_map=phase.cell_map(grid, cp.keys),
         )
-    ordered = order_by_size(stats) if settings.method != "density" else stats
+    # density segments come numbered largest first already; the others are renumbered so
+    order = size_order(stats) if settings.method != "density" else np.arange(len(stats.n))
+    ordered = stats.take(order)
+    new_id = np.empty(len(order), dtype=np.int64)
+    new_id[order] = np.arange(len(order))
     model = make_model(
         columns, std, grid, ordered, settings, source, cp.usable + cp.skipped, cp.skipped,
         cells_count(cp), extra_params={"cell_sse": phase.sse, **phase.params},
     )
     model.method = settings.method
     model.extras = phase.extras
-    model.cell_map = phase.cell_map_dict(grid, cp.keys, ordered_ids(stats, ordered)) if phase.needs_cell_map else {}
+    model.cell_map = phase.cell_map_dict(grid, cp.keys, new_id) if phase.needs_cell_map else {}
     model.passes = passes
     model.timings = {"profile": prof.seconds, "cells": cp.seconds, "second_phase": t_second, **refine_times}
     model.timings["total"] = time.perf_counter() - t_start

@@ -41,9 +41,8 @@ from .pipeline import (
     ProgressFn,
     SegmentStats,
     Settings,
-    _null_mask,
     _quiet,
-    cf_from_result,
+    cells_from_result,
     check_columns,
     grid_for_profile,
     label as label_relation,
@@ -356,14 +355,8 @@ def _settings_dict(settings: Settings) -> dict[str, Any]:
 
 def merged_cells(engine: Engine, cells_table: str, grid: Grid, d: int) -> tuple[CF, np.ndarray, int]:
     """All partitions' cells summed per grid cell: (cells on grid units, keys, skipped rows)."""
-    names = grid.key_names()
-    got = engine.query(sqlgen.merged_cells_statement(cells_table, names, d))
-    null = _null_mask(got[names[0]])
-    n = np.asarray(got["n"], dtype=np.float64)
-    keep = ~null
-    cells = F.affine(cf_from_result(got, d, keep), np.asarray(grid.inv_scale), np.zeros(d))
-    keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names]) if keep.any() else np.zeros((0, len(names)))
-    return cells, keys, int(n[null].sum())
+    got = engine.query(sqlgen.merged_cells_statement(cells_table, grid.key_names(), d))
+    return cells_from_result(got, grid, d)
 
 
 def _segment_cells(
@@ -379,7 +372,7 @@ def _segment_cells(
     progress: ProgressFn,
 ) -> tuple[Model, CF, Any]:
     """Second phase on merged cells (warm-started from centroids in original units), optional refine."""
-    weights = np.array([float(settings.weights.get(c, 1.0)) for c in columns])
+    weights = settings.column_weights(columns)
     cells, std = standardise_cells(cells_grid, grid, columns, settings, weights)
     init = None if init_original is None else (np.asarray(init_original) - std.center[None, :]) / std.scale[None, :]
     t0 = time.perf_counter()
@@ -500,7 +493,7 @@ def build(
     if exists and not replace:
         raise StoreError(f"store {name} already exists; refresh it, or rebuild with replace=True (--regrid)")
     t0 = time.perf_counter()
-    weights = np.array([float(settings.weights.get(c, 1.0)) for c in columns])
+    weights = settings.column_weights(columns)
     if grid is None:
         prof = run_profile(engine, source, columns, settings)
         grid = grid_for_profile(prof, settings, weights)
