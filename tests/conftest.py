@@ -1,8 +1,12 @@
-"""Shared fixtures: tables loaded from numpy arrays into throwaway DuckDB files."""
+"""Shared fixtures: tables loaded from numpy arrays into throwaway DuckDB files, a throwaway
+PostgreSQL server, and a refresh held open inside its transaction."""
 
 from __future__ import annotations
 
+import threading
+from contextlib import contextmanager
 from pathlib import Path
+from typing import Iterator
 
 import duckdb
 import numpy as np
@@ -10,6 +14,8 @@ import pytest
 from sklearn.datasets import make_blobs
 
 from tillite.engines import DuckDBEngine
+
+from throwaway_servers import start_postgres
 
 
 def write_table(path: Path, table: str, data: dict[str, np.ndarray]) -> Path:
@@ -56,3 +62,43 @@ def open_engine():
     yield opener
     for e in engines:
         e.close()
+
+
+@pytest.fixture(scope="module")
+def server():
+    """A throwaway PostgreSQL server for the tests of one module."""
+    pg = start_postgres()
+    yield pg
+    pg.stop()
+
+
+@contextmanager
+def refresh_held_open(engine, store: str) -> Iterator[None]:
+    """A refresh of ``store`` running in a thread, held inside its transaction for the with-block.
+
+    On leaving, the held refresh is let go and must finish without error.
+    """
+    from tillite import store as S
+
+    inside, release = threading.Event(), threading.Event()
+    errors: list[Exception] = []
+
+    def hold():
+        inside.set()
+        release.wait(30)
+
+    def run_first():
+        try:
+            S.refresh(engine, store, before_commit=hold)
+        except Exception as err:  # pragma: no cover - reported below
+            errors.append(err)
+
+    t = threading.Thread(target=run_first)
+    t.start()
+    try:
+        assert inside.wait(30)
+        yield
+    finally:
+        release.set()
+        t.join(30)
+    assert not errors

@@ -43,16 +43,8 @@ from engine_checks import (
     ordered_rows,
     write_duckdb,
 )
-from throwaway_servers import start_postgres
 
 SETTINGS = dict(k=5, width=0.5, seed=0, cell_budget=2_000)
-
-
-@pytest.fixture(scope="module")
-def server():
-    pg = start_postgres()
-    yield pg
-    pg.stop()
 
 
 @pytest.fixture(scope="module")

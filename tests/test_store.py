@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import threading
 
 import duckdb
 import numpy as np
@@ -15,6 +14,8 @@ from tillite.demo import DEMO_COLUMNS, build_demo_database, write_demo_parquet
 from tillite.engines import DuckDBEngine
 from tillite.pipeline import Settings, run_cell_pass
 from tillite.sqlgen import Source
+
+from conftest import refresh_held_open
 
 COLS = list(DEMO_COLUMNS)
 
@@ -133,27 +134,9 @@ def test_two_refreshes_at_once_the_second_fails_cleanly(demo_db):
     second.path, second.read_only, second.dialect = str(demo_db), False, "duckdb"
     second._duckdb = duckdb
     second.con = first.con.cursor()  # a second connection to the same database
-    inside, release = threading.Event(), threading.Event()
-    errors: list[Exception] = []
-
-    def hold():
-        inside.set()
-        release.wait(30)
-
-    def run_first():
-        try:
-            S.refresh(first, "meter_days", before_commit=hold)
-        except Exception as err:  # pragma: no cover - reported below
-            errors.append(err)
-
-    t = threading.Thread(target=run_first)
-    t.start()
-    assert inside.wait(30)
-    with pytest.raises(S.StoreBusy, match="changed by another refresh"):
-        S.refresh(second, "meter_days")
-    release.set()
-    t.join(30)
-    assert not errors
+    with refresh_held_open(first, "meter_days"):
+        with pytest.raises(S.StoreBusy, match="changed by another refresh"):
+            S.refresh(second, "meter_days")
     info = S.load(first, "meter_days")
     assert info.version == 1
     assert_store_equals_fresh_cell_pass(first, info)

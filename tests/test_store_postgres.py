@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import itertools
 import shutil
-import threading
 import time
 
 import duckdb
@@ -28,7 +27,8 @@ from tillite.engines import DuckDBEngine, PostgresEngine
 from tillite.pipeline import Settings, run_cell_pass
 from tillite.sqlgen import Source
 
-from throwaway_servers import start_postgres
+from conftest import refresh_held_open
+
 
 COLS = list(DEMO_COLUMNS)
 TABLE = "meter_days"
@@ -60,13 +60,6 @@ EXPECTED = {
 }
 
 _databases = itertools.count()
-
-
-@pytest.fixture(scope="module")
-def server():
-    pg = start_postgres()
-    yield pg
-    pg.stop()
 
 
 @pytest.fixture(scope="module")
@@ -227,32 +220,12 @@ def test_second_concurrent_postgres_refresh_fails_at_once_with_store_busy(engine
     info, _ = S.build(pg, SRC, COLS, S.PartitionSpec(("day",)), Settings(**SETTINGS))
     run_pg(pg, CHANGES)
     second = PostgresEngine(pg.conninfo)
-    inside, release = threading.Event(), threading.Event()
-    errors: list[Exception] = []
-
-    def hold():
-        inside.set()
-        release.wait(30)
-
-    def run_first():
-        try:
-            S.refresh(pg, TABLE, before_commit=hold)
-        except Exception as err:  # pragma: no cover - reported below
-            errors.append(err)
-
-    t = threading.Thread(target=run_first)
-    t.start()
-    try:
-        assert inside.wait(30)
+    with refresh_held_open(pg, TABLE):
         t0 = time.perf_counter()
         with pytest.raises(S.StoreBusy, match="changed by another refresh"):
             S.refresh(second, TABLE)
         # FOR UPDATE NOWAIT: no waiting for the first refresh, which holds its row for up to 30 s
         assert time.perf_counter() - t0 < 10
-    finally:
-        release.set()
-        t.join(30)
-    assert not errors
     assert S.load(second, TABLE).version == 1
     assert S.refresh(second, TABLE).unchanged == 12  # the first refresh's work is all there
     assert_pg_store_equals_fresh_cell_pass(second, info)
