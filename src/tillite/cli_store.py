@@ -7,7 +7,7 @@ import json
 import click
 
 from . import store as store_api
-from .engines import Engine, PostgresEngine, engine_kind, open_database, open_source
+from .engines import Engine, PostgresEngine, engine_kind, open_database, open_source, is_file_source
 
 
 def _cli():
@@ -52,7 +52,7 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
             k=k, scaling=scaling, weights=cli._parse_weights(weights), cell_budget=cell_budget,
             refine_passes=refine_passes, n_init=restarts, seed=seed,
         )
-        if src_is_files(source) and not database:
+        if is_file_source(source) and not database:
             raise click.UsageError("a store over files needs --db, the DuckDB file that keeps it")
         engine, src = open_source(source, table, writable=True, database=database)
         try:
@@ -71,14 +71,6 @@ def open_store_database(location: str, writable: bool = False) -> Engine:
     if engine_kind(location) == "postgres":
         return PostgresEngine(location, read_only=not writable)
     return open_database(location, writable=writable)
-
-
-def src_is_files(source: str) -> bool:
-    import os
-
-    from .engines import file_reader_for
-
-    return file_reader_for(source) is not None or os.path.isdir(source)
 
 
 @store_group.command("status")

@@ -189,6 +189,11 @@ class DuckDBEngine(StatementRunner):
         self.con.close()
 
 
+def is_file_source(location: str) -> bool:
+    """A Parquet/CSV/JSON path or glob, or a folder of such files, rather than a database."""
+    return file_reader_for(location) is not None or os.path.isdir(location)
+
+
 def file_reader_for(path: str) -> str | None:
     """The DuckDB reader for a data file path or glob, or None for a database file."""
     lower = path.lower()
