@@ -26,12 +26,13 @@ from sklearn.datasets import make_blobs
 from tillite import macros as M
 from tillite.cli_macros import macros as macros_group
 from tillite.demo import build_demo_database
-from tillite.engines import DuckDBEngine
+from tillite.engines import DUCKDB_STORAGE_VERSION, DuckDBEngine
 from tillite.pipeline import Settings, label, run_cell_pass, segment
 from tillite.segmenters import kmeans
 from tillite.sqlgen import Grid, Source
 
 from conftest import columns_of, write_table
+from throwaway_servers import unavailable
 
 COLS = ["a", "unit price", "c"]
 DEMO_COLS = ["litres", "night_share", "peak_litres", "flow_run_hours", "zero_hours"]
@@ -452,18 +453,20 @@ def duckdb_shell() -> str | None:
     return shutil.which("duckdb")
 
 
-def shell_version(shell: str) -> str:
-    out = subprocess.run([shell, "-version"], capture_output=True, text=True, timeout=30).stdout.strip()
-    return out.split()[0].lstrip("v") if out else ""
-
-
 def run_shell(shell: str, script: str, database: str = ":memory:") -> str:
     done = subprocess.run([shell, "-csv", database], input=script, capture_output=True, text=True, timeout=60)
     assert done.returncode == 0 and not done.stderr.strip(), done.stderr
     return done.stdout
 
 
-@pytest.mark.skipif(duckdb_shell() is None, reason="no DuckDB command-line shell (pip install duckdb-cli)")
+def required_shell() -> str:
+    """The shell, or a loud skip (a failure when CI=true: the test extra installs duckdb-cli)."""
+    shell = duckdb_shell()
+    if shell is None:
+        unavailable("no DuckDB command-line shell (pip install duckdb-cli)")
+    return shell
+
+
 def test_console_shell_runs_the_shown_macros_on_sql_alone(tmp_path):
     x, _ = make_blobs(n_samples=2_000, centers=3, n_features=2, random_state=8)
     data = tmp_path / "pts.csv"
@@ -473,7 +476,7 @@ def test_console_shell_runs_the_shown_macros_on_sql_alone(tmp_path):
         "SELECT column_name, usable, mean, sd FROM tillite_profile('pts', ['unit price', 'a']);\n"
         "SELECT segment, size FROM tillite_segments('pts', ['a', 'unit price'], 3);\n"
     )
-    out = run_shell(duckdb_shell(), script)
+    out = run_shell(required_shell(), script)
     rows = list(csv.reader(io.StringIO(out)))
     profile = [r for r in rows if r and r[0] in ("unit price", "a")]
     assert [r[0] for r in profile] == ["unit price", "a"]
@@ -484,17 +487,41 @@ def test_console_shell_runs_the_shown_macros_on_sql_alone(tmp_path):
     assert sum(sizes) == 2_000
 
 
-@pytest.mark.skipif(duckdb_shell() is None, reason="no DuckDB command-line shell (pip install duckdb-cli)")
 def test_console_shell_scores_rows_of_our_database_file(tmp_path):
-    shell = duckdb_shell()
-    if shell_version(shell).split(".")[0] != duckdb.__version__.split(".")[0]:
-        pytest.skip(f"the shell (DuckDB {shell_version(shell)}) cannot open files written by duckdb {duckdb.__version__}")
+    """The shell the registry offers (duckdb-cli, possibly older than the Python duckdb) opens our files."""
+    shell = required_shell()
     path, model = demo_labelled(tmp_path)
     M.install_into(path, M.scoring_macros(model, "water"))
     args = ", ".join(DEMO_COLS)
+    # run_shell also checks that the shell printed nothing on stderr (no error, no deprecation warning)
     out = run_shell(shell, f"SELECT count(*) FROM labelled WHERE water_segment({args}) IS NOT DISTINCT FROM segment;\n", str(path))
     # reference: the Python path's label view
     assert out.strip().splitlines()[-1] == "20000"
+
+
+def test_console_shell_takes_the_pasted_scoring_macros_without_warnings(tmp_path):
+    shell = required_shell()
+    path, model = demo_labelled(tmp_path)
+    pasted = M.script(M.scoring_macros(model, "water"))
+    args = ", ".join(DEMO_COLS)
+    # run_shell checks that stderr is empty: no error and no deprecation warning for the pasted text
+    out = run_shell(shell, pasted + f"SELECT count(*) FROM labelled WHERE water_segment({args}) IS NOT DISTINCT FROM segment;\n", str(path))
+    # reference: the Python path's label view
+    assert out.strip().splitlines()[-1] == "20000"
+
+
+def test_files_tillite_creates_open_in_the_registry_shell_and_keep_their_storage_version(tmp_path):
+    """New files get DuckDB's 1.0 storage format; existing files keep theirs (DuckDB never rewrites them)."""
+    shell = required_shell()
+    path, _ = demo_labelled(tmp_path)
+    con = duckdb.connect(str(path), read_only=True)
+    try:
+        tag = con.execute("SELECT tags['storage_version'] FROM duckdb_databases() WHERE database_name = current_database()").fetchone()[0]
+    finally:
+        con.close()
+    # reference: DuckDB's own storage_version tag of the attached file
+    assert tag == f"{DUCKDB_STORAGE_VERSION}+"
+    assert run_shell(shell, "SELECT count(*) FROM meter_days;\n", str(path)).strip().splitlines()[-1] == "20000"
 
 
 def test_templates_ship_inside_the_package_and_keep_placeholders_out_of_comments():
@@ -506,3 +533,24 @@ def test_templates_ship_inside_the_package_and_keep_placeholders_out_of_comments
         assert text.lstrip().startswith("--")
         # a placeholder in a -- comment could end the comment with a newline of its value
         assert not [line for line in text.splitlines() if "--" in line and "{{" in line.split("--", 1)[1]]
+
+
+def test_an_existing_file_read_for_segmenting_is_not_rewritten_in_another_storage_format(tmp_path):
+    import hashlib
+
+    from tillite.engines import open_source
+
+    x, _ = make_blobs(n_samples=3_000, centers=3, n_features=2, random_state=3)
+    path = write_table(tmp_path / "v2.duckdb", "pts", {"a": x[:, 0], "b": x[:, 1]})  # the Python duckdb's own default format
+
+    def state() -> tuple[str, int]:
+        return hashlib.sha256(Path(path).read_bytes()).hexdigest(), Path(path).stat().st_mtime_ns
+
+    before = state()
+    engine, src = open_source(str(path), "pts")
+    try:
+        segment(engine, src, ["a", "b"], Settings(k=3))
+    finally:
+        engine.close()
+    # reference: the file's bytes (sha256) and modification time, as the file system reports them
+    assert state() == before

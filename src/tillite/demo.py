@@ -484,7 +484,9 @@ def _meters_table_select(meters: int, seed: int) -> exp.Select:
 
 
 def _connect(database: str) -> duckdb.DuckDBPyConnection:
-    con = duckdb.connect(database)
+    from .engines import connect_duckdb  # new files in the storage format older DuckDB shells open
+
+    con = connect_duckdb(database)
     con.execute("SET enable_progress_bar = false")
     return con
 

@@ -37,6 +37,8 @@ __all__ = [
     "open_source",
     "FILE_SUFFIXES",
     "NUMERIC_TYPES",
+    "DUCKDB_STORAGE_VERSION",
+    "connect_duckdb",
 ]
 
 
@@ -122,6 +124,19 @@ class StatementRunner:
                 self.execute(st)
 
 
+#: Storage format of every DuckDB file tillite creates: DuckDB's 1.0 format, which the DuckDB
+#: shells and clients from 1.0 on open (the 2.0 default format only opens in 2.0 and later).
+#: DuckDB keeps an existing file in the format it was created with; this only applies to new files.
+DUCKDB_STORAGE_VERSION = "v1.0.0"
+
+
+def connect_duckdb(path: str, read_only: bool = False) -> Any:
+    """duckdb.connect, creating any new file in DUCKDB_STORAGE_VERSION (the SQL console promise)."""
+    import duckdb
+
+    return duckdb.connect(path, read_only=read_only, config={"storage_compatibility_version": DUCKDB_STORAGE_VERSION})
+
+
 @dataclass
 class DuckDBEngine(StatementRunner):
     """The embedded default: a .duckdb file, or an in-memory database over files."""
@@ -137,7 +152,7 @@ class DuckDBEngine(StatementRunner):
 
         self._duckdb = duckdb
         try:
-            self.con = duckdb.connect(self.path, read_only=self.read_only)
+            self.con = connect_duckdb(self.path, read_only=self.read_only)
         except duckdb.Error as err:
             raise SourceError(f"cannot open DuckDB database {self.path}: {err}") from None
 

@@ -28,7 +28,7 @@ import duckdb
 from sqlglot import exp
 
 from . import __version__, sqlgen
-from .engines import TilliteError
+from .engines import TilliteError, connect_duckdb
 from .model import Model
 
 __all__ = [
@@ -410,7 +410,7 @@ def open_database(path: str | os.PathLike) -> duckdb.DuckDBPyConnection:
     if not os.access(folder, os.W_OK):
         raise MacroError(f"database {path} is in a read-only folder ({folder}); DuckDB needs to write its journal there")
     try:
-        return duckdb.connect(path)
+        return connect_duckdb(path)
     except duckdb.Error as err:
         raise MacroError(f"cannot open DuckDB database {path}: {err}") from None
 
