@@ -64,12 +64,16 @@ def macros() -> None:
 @click.argument("database", type=click.Path(dir_okay=False))
 @click.option("--model", "model_path", type=click.Path(dir_okay=False), help="Model file: install its scoring macros.")
 @click.option("--name", help="Prefix of the scoring macros: NAME_segment and NAME_distance.")
-def install_command(database: str, model_path: str | None, name: str | None) -> None:
-    """Create (or replace) tillite's macros in an existing DuckDB file DATABASE."""
+@click.option("--replace", is_flag=True, help="Also replace macros of the same names that tillite did not install.")
+def install_command(database: str, model_path: str | None, name: str | None, replace: bool) -> None:
+    """Create (or replace) tillite's macros in an existing DuckDB file DATABASE.
+
+    A macro of the same name that tillite did not install is replaced only with --replace.
+    """
     with _user_errors():
         model = _model(model_path, name)
         definitions = _definitions(model, name)
-        names = M.install_into(database, definitions)
+        names = M.install_into(database, definitions, replace=replace)
     hint = _example(definitions, model)
     click.echo(f"installed into {database}: {', '.join(names)}")
     click.echo(hint)

@@ -107,6 +107,9 @@ class Engine(Protocol):
     def relation_kind(self, name: str) -> str | None:
         """'table', 'view' or None for a (possibly schema-qualified) relation name."""
 
+    def relation_comment(self, name: str) -> str | None:
+        """The comment on a view or table (None when it has none): where tillite marks what it made."""
+
     def close(self) -> None: ...
 
 
@@ -122,6 +125,12 @@ class StatementRunner:
         with self.transaction():
             for st in statements:
                 self.execute(st)
+
+    def relation_comment(self, name: str) -> str | None:
+        """The comment on a view or table through the catalog (DuckDB, PostgreSQL)."""
+        got = self.query(sqlgen.comment_of_statement(name, self.dialect))  # type: ignore[attr-defined]
+        values = [v for v in got.get("comment", []) if v is not None and not np.ma.is_masked(v)]
+        return str(values[0]) if values else None
 
 
 #: Storage format of every DuckDB file tillite creates: DuckDB's 1.0 format, which the DuckDB
@@ -625,6 +634,8 @@ class SparkEngine(StatementRunner):
                 self._write_file(statement)
             elif _is_create(statement, "VIEW") and self._needs_temporary(statement):
                 self.spark.sql(self.sql_text(sqlgen.temporary_view(statement)))
+            elif _is_view_mark(statement) and self._is_temporary(statement.this):
+                pass  # a temporary view keeps no comment (and lives only as long as this session)
             else:
                 self.spark.sql(self.sql_text(statement))
 
@@ -699,6 +710,14 @@ class SparkEngine(StatementRunner):
             return None
         return "view" if found.isTemporary or str(found.tableType).upper() in ("VIEW", "TEMPORARY") else "table"
 
+    def relation_comment(self, name: str) -> str | None:
+        """Through Spark's catalog: a table's comment, a catalog view's 'comment' property (temporary views: None)."""
+        try:
+            found = self.spark.catalog.getTable(sqlgen.render(sqlgen.table_name(name), self.dialect))
+        except self._errors_caught:
+            return None
+        return None if found.isTemporary else found.description
+
     def _missing_table_message(self, source: Source) -> str:
         listing = ", ".join(self.tables()) or "(none)"
         return f"table {source.label} not found in Spark's catalog; tables there: {listing}"
@@ -711,6 +730,11 @@ class SparkEngine(StatementRunner):
 
 def _is_create(statement: exp.Expression, kind: str) -> bool:
     return isinstance(statement, exp.Create) and str(statement.args.get("kind") or "").upper() == kind
+
+
+def _is_view_mark(statement: exp.Expression) -> bool:
+    """ALTER VIEW ... SET TBLPROPERTIES: sqlgen.mark_statement on a Spark view."""
+    return isinstance(statement, exp.Alter) and str(statement.args.get("kind") or "").upper() == "VIEW"
 
 
 def _open_spark(location: str, table: str | None, conf: dict[str, str]) -> tuple[Engine, Source]:

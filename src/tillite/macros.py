@@ -12,7 +12,10 @@ Two kinds of macro go into a DuckDB database:
   built from ``Model.assignment()`` with the arithmetic of the label view.
 
 Every installed macro is recorded in the table ``tillite_macro_registry`` of the
-same database, so ``remove`` drops what tillite installed and nothing else.
+same database and carries tillite's mark as its comment (``COMMENT ON MACRO``).
+``install`` refuses to replace a macro of the same name without the mark unless
+asked to (``replace``), and ``remove`` drops only registered macros that still
+carry it: one a user put in place of ours is left alone, with a warning.
 """
 
 from __future__ import annotations
@@ -20,6 +23,7 @@ from __future__ import annotations
 import os
 import re
 import stat
+import warnings
 from dataclasses import dataclass
 from importlib import resources
 from typing import Callable, Iterable, Mapping, Sequence
@@ -55,6 +59,7 @@ __all__ = [
     "install",
     "remove",
     "installed",
+    "existing_macros",
     "install_into",
     "remove_from",
 ]
@@ -331,8 +336,7 @@ def installed(con: duckdb.DuckDBPyConnection) -> list[InstalledMacro]:
 
 
 def _drop(definition_kind: str, name: str) -> exp.Drop:
-    kind = "MACRO TABLE" if definition_kind == "table" else "MACRO"
-    return exp.Drop(tables=[exp.Table(this=exp.to_identifier(name, quoted=True))], kind=kind, exists=True)
+    return exp.Drop(tables=[exp.Table(this=exp.to_identifier(name, quoted=True))], kind=_macro_kind(definition_kind), exists=True)
 
 
 def _forget(name: str) -> exp.Delete:
@@ -363,11 +367,55 @@ def _in_transaction(con: duckdb.DuckDBPyConnection, statements: Sequence[str]) -
     con.execute("COMMIT")
 
 
-def install(con: duckdb.DuckDBPyConnection, definitions: Sequence[MacroDefinition]) -> list[str]:
-    """Create (or replace) the macros and record them, all in one transaction."""
+#: The comment on every macro tillite installs.
+MACRO_MARK = f"{sqlgen.OWNED_MARK}: macro"
+
+
+def _is_ours(comment: str | None) -> bool:
+    return comment is not None and comment.startswith(sqlgen.OWNED_MARK)
+
+
+def _macro_kind(definition_kind: str) -> str:
+    return "MACRO TABLE" if definition_kind == "table" else "MACRO"
+
+
+def _mark(definition: MacroDefinition) -> exp.Comment:
+    target = exp.Table(this=exp.to_identifier(definition.name, quoted=True))
+    return exp.Comment(this=target, kind=_macro_kind(definition.kind), expression=exp.Literal.string(MACRO_MARK))
+
+
+def existing_macros(con: duckdb.DuckDBPyConnection, names: Sequence[str]) -> dict[str, str | None]:
+    """Macros of these names in the current schema, with their comments (DuckDB's catalog)."""
+    if not names:
+        return {}
+    query = (
+        exp.select(sqlgen.col("function_name"), sqlgen.col("comment"))
+        .from_(exp.Table(this=_call("duckdb_functions")))
+        .where(
+            exp.and_(
+                exp.In(this=sqlgen.col("function_type"), expressions=[exp.Literal.string("macro"), exp.Literal.string("table_macro")]),
+                exp.EQ(this=sqlgen.col("schema_name"), expression=_current_schema()),
+                exp.EQ(this=sqlgen.col("database_name"), expression=_call("current_database")),
+                exp.In(this=sqlgen.col("function_name"), expressions=[exp.Literal.string(n) for n in names]),
+            )
+        )
+    )
+    return {name: comment for name, comment in con.execute(sqlgen.render(query)).fetchall()}
+
+
+def install(con: duckdb.DuckDBPyConnection, definitions: Sequence[MacroDefinition], replace: bool = False) -> list[str]:
+    """Create (or replace) the macros, mark and record them, all in one transaction.
+
+    A macro of the same name that tillite did not install is replaced only with ``replace``.
+    """
+    foreign = [name for name, comment in existing_macros(con, [d.name for d in definitions]).items() if not _is_ours(comment)]
+    if foreign and not replace:
+        raise MacroError(
+            f"macro {', '.join(sorted(foreign))} already exists and was not installed by tillite; --replace overwrites it"
+        )
     statements = [fill(template("registry"), {"registry": identifier(REGISTRY)})]
     for d in definitions:
-        statements += [d.sql, sqlgen.render(_forget(d.name)), sqlgen.render(_record(d))]
+        statements += [d.sql, sqlgen.render(_mark(d)), sqlgen.render(_forget(d.name)), sqlgen.render(_record(d))]
     _in_transaction(con, statements)
     return [d.name for d in definitions]
 
@@ -375,20 +423,28 @@ def install(con: duckdb.DuckDBPyConnection, definitions: Sequence[MacroDefinitio
 def remove(con: duckdb.DuckDBPyConnection, model: str | None = None) -> list[str]:
     """Drop the macros the registry records (only those of one model when given).
 
-    Macros tillite did not install are never touched, whatever their names.  The
+    Macros tillite did not install are never touched, whatever their names: a
+    recorded macro that no longer carries tillite's mark (someone replaced it)
+    is left in place with a warning, and only its registry row goes.  The
     registry table itself goes when nothing is left in it.
     """
     recorded = installed(con)
     chosen = [m for m in recorded if model is None or m.model == model]
     if not chosen:
         return []
-    statements = []
+    present = existing_macros(con, [m.name for m in chosen])
+    statements, dropped = [], []
     for m in chosen:
-        statements += [sqlgen.render(_drop(m.kind, m.name)), sqlgen.render(_forget(m.name))]
+        if m.name in present and not _is_ours(present[m.name]):
+            warnings.warn(f"macro {m.name} was replaced by one tillite did not install; left in place", UserWarning, stacklevel=2)
+        else:
+            statements.append(sqlgen.render(_drop(m.kind, m.name)))
+            dropped.append(m.name)
+        statements.append(sqlgen.render(_forget(m.name)))
     if len(chosen) == len(recorded):
         statements.append(sqlgen.render(exp.Drop(tables=[_registry_table()], kind="TABLE", exists=True)))
     _in_transaction(con, statements)
-    return [m.name for m in chosen]
+    return dropped
 
 
 def open_database(path: str | os.PathLike) -> duckdb.DuckDBPyConnection:
@@ -426,9 +482,9 @@ def _on_database(path: str | os.PathLike, action: Callable[[duckdb.DuckDBPyConne
         con.close()
 
 
-def install_into(path: str | os.PathLike, definitions: Sequence[MacroDefinition]) -> list[str]:
+def install_into(path: str | os.PathLike, definitions: Sequence[MacroDefinition], replace: bool = False) -> list[str]:
     """install() on the DuckDB file at path."""
-    return _on_database(path, lambda con: install(con, definitions), "install macros into")
+    return _on_database(path, lambda con: install(con, definitions, replace), "install macros into")
 
 
 def remove_from(path: str | os.PathLike, model: str | None = None) -> list[str]:

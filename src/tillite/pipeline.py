@@ -705,12 +705,17 @@ def label(
     materialize: bool = False,
     replace: bool = False,
     in_transaction: bool = False,
+    store: str | None = None,
 ) -> str:
     """Create the labels view (or table, or file for file sources); returns what was made.
 
-    The source is only ever read.  An existing table is replaced only with
-    ``replace``; an existing view of that name is replaced.  ``in_transaction``:
-    the caller already holds a transaction (a store refresh).
+    The source is only ever read.  Every view or table made here carries
+    tillite's mark (a comment, see ``owner_comment``).  An existing relation of
+    that name is replaced without ``replace`` only when it is a view tillite
+    made, and not another store's labels; anything else (a table, a view or
+    table someone else made) needs ``replace``.  ``store``: the summary store
+    whose labels these are.  ``in_transaction``: the caller already holds a
+    transaction (a store refresh).
     """
     source_columns = check_columns(engine, source, model.columns)
     select = sqlgen.label_select(
@@ -725,9 +730,13 @@ def label(
     if target[-1] == table[-1] and same_schema:
         raise InputError(f"--into {into} is the source table; labels never overwrite the source")
     kind = existing_relation_kind(engine, into)
-    if kind == "table" and not replace:
-        raise InputError(f"a table named {into} already exists; pass replace=True (--replace) to overwrite it")
-    statements = [sqlgen.create_relation_statement(into, select, materialize)]
+    if kind is not None and not replace:
+        check_may_replace(engine, into, kind, store)
+    made = "table" if materialize else "view"
+    statements = [
+        sqlgen.create_relation_statement(into, select, materialize),
+        sqlgen.mark_statement(into, made, owner_comment(store), engine.dialect),
+    ]
     if kind == "view" and materialize or kind == "table":  # no engine but DuckDB has CREATE OR REPLACE TABLE
         statements.insert(0, sqlgen.drop_statement(into, kind))
     if in_transaction:
@@ -735,7 +744,58 @@ def label(
             engine.execute(st)
     else:
         engine.run_in_transaction(statements)
-    return f"{'table' if materialize else 'view'} {into}"
+    return f"{made} {into}"
+
+
+OWNED_MARK = sqlgen.OWNED_MARK
+_STORE_MARK = f"{OWNED_MARK}: labels of store "
+
+
+def owner_comment(store: str | None = None) -> str:
+    """The comment on labels tillite made (for a summary store: naming the store)."""
+    return f"{_STORE_MARK}{store}" if store is not None else f"{OWNED_MARK}: labels"
+
+
+def is_owned(comment: str | None) -> bool:
+    """Whether a relation's comment is tillite's mark."""
+    return comment is not None and comment.startswith(OWNED_MARK)
+
+
+def store_of_comment(comment: str | None) -> str | None:
+    """The summary store whose labels a relation with this comment holds, if any."""
+    return comment[len(_STORE_MARK):] if comment is not None and comment.startswith(_STORE_MARK) else None
+
+
+def check_may_replace(engine: Engine, into: str, kind: str, store: str | None = None) -> None:
+    """Refuse (one line) to replace an existing view/table without --replace unless it is ours to replace."""
+    comment = engine.relation_comment(into)
+    if not is_owned(comment):
+        raise InputError(f"a {kind} named {into} already exists and was not made by tillite; --replace overwrites it")
+    holder = store_of_comment(comment)
+    if holder is not None and holder != store:
+        raise InputError(
+            f"{kind} {into} holds the labels of store {holder}, re-created by every refresh; "
+            f"label with --store {holder}, or choose another --into (--replace takes it over)"
+        )
+    if kind == "table":
+        raise InputError(f"a table named {into} already exists; --replace overwrites it")
+
+
+def store_owns_label(engine: Engine, name: str, store: str) -> bool:
+    """Whether a refresh of ``store`` may re-create its registered label ``name``; warns when not.
+
+    True when nothing of that name exists or it carries this store's mark.  A
+    relation someone else made (or took over with --replace) is never dropped.
+    """
+    kind = existing_relation_kind(engine, name)
+    if kind is None or store_of_comment(engine.relation_comment(name)) == store:
+        return True
+    warnings.warn(
+        f"{kind} {name} is no longer store {store}'s labels (replaced by something else); not re-created. "
+        f"Drop it and run `tillite label --store {store} --into {name}` to have it refreshed again",
+        UserWarning, stacklevel=2,
+    )
+    return False
 
 
 def _label_to_file(engine: Engine, source: Source, select, into: str, replace: bool) -> str:

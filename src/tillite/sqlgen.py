@@ -929,3 +929,51 @@ def scan_fence(select: exp.Select, dialect: str) -> exp.Select:
     if dialect != "postgres":
         return select
     return select.offset(num(0), copy=False)
+
+
+# --------------------------------------------------------------------------- ownership marks
+
+#: Start of the comment tillite writes on every view, table and macro it creates: its mark of ownership.
+OWNED_MARK = "made by tillite"
+
+
+def mark_statement(name: str, kind: str, text: str, dialect: str) -> exp.Expression:
+    """Write ``text`` as the comment of a view or table: tillite's mark on what it created.
+
+    DuckDB and PostgreSQL: COMMENT ON VIEW|TABLE.  Spark has COMMENT ON TABLE for
+    tables only; a catalog view takes its comment as the table property 'comment'.
+    """
+    target = table_name(name)
+    if dialect == "spark" and kind == "view":
+        prop = exp.Property(this=exp.Literal.string("comment"), value=exp.Literal.string(text))
+        return exp.Alter(this=target, kind="VIEW", actions=[exp.AlterSet(expressions=[exp.Properties(expressions=[prop])])])
+    return exp.Comment(this=target, kind="VIEW" if kind == "view" else "TABLE", expression=exp.Literal.string(text))
+
+
+def comment_of_statement(name: str, dialect: str) -> exp.Select:
+    """SELECT the comment (column ``comment``) of a view or table; no row or NULL when it has none.
+
+    DuckDB: its catalog functions, names compared case-insensitively as DuckDB
+    resolves them, an unqualified name in current_schema().  PostgreSQL:
+    obj_description of to_regclass, which resolves the (quoted) name as the
+    server would and gives NULL for a missing relation.
+    """
+    parts = name.split(".")
+    if dialect == "postgres":
+        regclass = exp.Anonymous(this="to_regclass", expressions=[exp.Literal.string(render(table_name(name), "postgres"))])
+        described = exp.Anonymous(this="obj_description", expressions=[regclass, exp.Literal.string("pg_class")])
+        return exp.select(exp.alias_(described, "comment", quoted=True))
+    listed = [
+        exp.select(col("database_name"), col("schema_name"), exp.alias_(col(name_column), "name", quoted=True), col("comment"))
+        .from_(exp.Table(this=exp.Anonymous(this=function, expressions=[])))
+        for function, name_column in (("duckdb_views", "view_name"), ("duckdb_tables", "table_name"))
+    ]
+    relations = exp.union(listed[0], listed[1], distinct=False).subquery("r")
+
+    def same(column: str, value: exp.Expression) -> exp.Expression:
+        return exp.EQ(this=exp.Lower(this=col(column)), expression=exp.Lower(this=value))
+
+    schema = exp.Literal.string(parts[-2]) if len(parts) >= 2 else exp.Anonymous(this="current_schema", expressions=[])
+    catalog = exp.Literal.string(parts[-3]) if len(parts) >= 3 else exp.Anonymous(this="current_database", expressions=[])
+    where = exp.and_(same("name", exp.Literal.string(parts[-1])), same("schema_name", schema), same("database_name", catalog))
+    return exp.select(col("comment")).from_(relations).where(where)

@@ -52,6 +52,7 @@ from .pipeline import (
     run_profile,
     second_phase,
     standardise_cells,
+    store_owns_label,
 )
 from .segmenters import nearest
 from .sqlgen import Grid, Source
@@ -718,7 +719,9 @@ def _save_model(engine: Engine, info: StoreInfo, model: Model) -> None:
 def _relabel(engine: Engine, info: StoreInfo, model: Model) -> None:
     """Re-create the store's registered label views/tables with the current model."""
     for r in _rows(engine.query(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": info.name})))):
-        label_relation(engine, info.source, model, r["name"], materialize=bool(r["materialized"]), replace=True, in_transaction=True)
+        if store_owns_label(engine, r["name"], info.name):  # never drops what it did not make: warns and skips
+            label_relation(engine, info.source, model, r["name"], materialize=bool(r["materialized"]), replace=True,
+                           in_transaction=True, store=info.name)
 
 
 def resegment(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segment_shift: float = 3.0) -> Model:
@@ -773,7 +776,7 @@ def subtract_rows(engine: Engine, store: str, part: str, rows: np.ndarray) -> in
 def label(engine: Engine, store: str, into: str, materialize: bool = False, replace: bool = False) -> str:
     """Labels from the store's current model, re-created by every refresh."""
     info = load(engine, store)
-    made = label_relation(engine, info.source, info.model, into, materialize=materialize, replace=replace)
+    made = label_relation(engine, info.source, info.model, into, materialize=materialize, replace=replace, store=store)
     with engine.transaction():
         engine.execute(sqlgen.delete_statement(LABELS, sqlgen.equals_all({"store": store, "name": into})))
         engine.execute(sqlgen.insert_values_statement(LABELS, [(store, into, materialize)]))
