@@ -248,3 +248,39 @@ def test_missing_driver_names_the_extra(monkeypatch):
     monkeypatch.setitem(sys.modules, "psycopg", None)
     with pytest.raises(MissingExtraError, match=r"pip install 'tillite\[postgres\]'"):
         PostgresEngine("postgresql://nobody@/nothing")
+
+
+def test_labels_carry_tillites_mark_and_a_users_view_or_table_is_refused(server, loaded):
+    """The ownership mark is a COMMENT ON VIEW/TABLE; PostgreSQL's obj_description reads it back."""
+    import psycopg
+    from psycopg import sql
+
+    from tillite.pipeline import OWNED_MARK
+
+    with psycopg.connect(server.conninfo, autocommit=True) as con:
+        con.execute(sql.SQL("CREATE VIEW {} AS SELECT 1 AS one").format(sql.Identifier("Users View")))
+        con.execute(sql.SQL("CREATE TABLE {} AS SELECT 2 AS two").format(sql.Identifier("users_table")))
+    pg = PostgresEngine(server.conninfo)
+    duck = DuckDBEngine(str(loaded), read_only=True)
+    try:
+        model = segment(duck, SRC, COLUMNS, Settings(**SETTINGS))
+        for name in ("Users View", "users_table"):
+            for materialize in (False, True):
+                with pytest.raises(InputError, match="not made by tillite"):
+                    label(pg, SRC, model, name, materialize=materialize)
+        # reference: PostgreSQL's own catalog (pg_class, pg_description) read directly
+        with psycopg.connect(server.conninfo, autocommit=True) as con:
+            kinds = con.execute("SELECT relname, relkind, obj_description(oid, 'pg_class') FROM pg_class "
+                                "WHERE relname IN ('Users View', 'users_table') ORDER BY relname").fetchall()
+        assert kinds == [("Users View", "v", None), ("users_table", "r", None)]
+        assert pg.relation_comment("Users View") is None and pg.relation_comment("missing") is None
+        label(pg, SRC, model, "Marked Labels")
+        assert pg.relation_comment("Marked Labels").startswith(OWNED_MARK)
+        label(pg, SRC, model, "Marked Labels", materialize=True)  # a view tillite made: no --replace needed
+        assert existing_relation_kind(pg, "Marked Labels") == "table"
+        assert pg.relation_comment("public.Marked Labels").startswith(OWNED_MARK)
+        label(pg, SRC, model, "Users View", replace=True)  # asked for: taken over and marked
+        assert pg.relation_comment("Users View").startswith(OWNED_MARK)
+    finally:
+        pg.close()
+        duck.close()

@@ -261,3 +261,26 @@ def test_missing_driver_names_the_extra(monkeypatch):
     monkeypatch.setitem(sys.modules, "pyspark.sql", None)
     with pytest.raises(MissingExtraError, match=r"pip install 'tillite\[spark\]'"):
         SparkEngine(master="local[1]")
+
+
+def test_labels_carry_tillites_mark_in_sparks_catalog_and_a_users_view_is_refused(sparks, duck, data):
+    """Catalog views take the mark as their 'comment' property, tables as COMMENT ON TABLE; temporary
+    views keep no comment, so an existing temporary view is replaced only with replace=True."""
+    from tillite.pipeline import OWNED_MARK, InputError
+
+    model = segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS))
+    src = Source.of_table(REGISTERED)
+    sparks.spark.sql(f"CREATE VIEW users_view AS SELECT * FROM {REGISTERED}")
+    with pytest.raises(InputError, match="not made by tillite"):
+        label(sparks, src, model, "users_view")
+    # reference: Spark's own catalog entry of the user's view
+    assert sparks.spark.catalog.getTable("users_view").description is None
+    label(sparks, src, model, "marked_view")
+    assert sparks.spark.catalog.getTable("marked_view").description.startswith(OWNED_MARK)
+    label(sparks, src, model, "marked_view")  # a view tillite made: replaced without replace=True
+    label(sparks, src, model, "marked_table", materialize=True)
+    assert sparks.spark.catalog.getTable("marked_table").description.startswith(OWNED_MARK)
+    label(sparks, Source.of_table("points_temp"), model, "temp_marked")
+    with pytest.raises(InputError, match="not made by tillite"):
+        label(sparks, Source.of_table("points_temp"), model, "temp_marked")
+    label(sparks, Source.of_table("points_temp"), model, "temp_marked", replace=True)

@@ -730,14 +730,17 @@ def label(
     if target[-1] == table[-1] and same_schema:
         raise InputError(f"--into {into} is the source table; labels never overwrite the source")
     kind = existing_relation_kind(engine, into)
+    comment = engine.relation_comment(into) if kind is not None else None
     if kind is not None and not replace:
-        check_may_replace(engine, into, kind, store)
+        check_may_replace(into, kind, comment, store)
     made = "table" if materialize else "view"
     statements = [
         sqlgen.create_relation_statement(into, select, materialize),
         sqlgen.mark_statement(into, made, owner_comment(store), engine.dialect),
     ]
-    if kind == "view" and materialize or kind == "table":  # no engine but DuckDB has CREATE OR REPLACE TABLE
+    # no engine but DuckDB has CREATE OR REPLACE TABLE, and PostgreSQL replaces a view only by one
+    # with the same leading columns: anything but a view of ours is dropped first, in the same transaction
+    if kind == "table" or kind == "view" and (materialize or not is_owned(comment)):
         statements.insert(0, sqlgen.drop_statement(into, kind))
     if in_transaction:
         for st in statements:
@@ -766,9 +769,8 @@ def store_of_comment(comment: str | None) -> str | None:
     return comment[len(_STORE_MARK):] if comment is not None and comment.startswith(_STORE_MARK) else None
 
 
-def check_may_replace(engine: Engine, into: str, kind: str, store: str | None = None) -> None:
-    """Refuse (one line) to replace an existing view/table without --replace unless it is ours to replace."""
-    comment = engine.relation_comment(into)
+def check_may_replace(into: str, kind: str, comment: str | None, store: str | None = None) -> None:
+    """Refuse (one line) to replace an existing view/table (with this comment) unless it is ours to replace."""
     if not is_owned(comment):
         raise InputError(f"a {kind} named {into} already exists and was not made by tillite; --replace overwrites it")
     holder = store_of_comment(comment)
