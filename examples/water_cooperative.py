@@ -20,6 +20,7 @@ from tillite import DuckDBEngine, Settings, Source, label, segment
 from tillite import macros, report
 from tillite import store as summary_store
 from tillite.demo import DEMO_COLUMNS, METERS_TABLE, build_demo_database
+from tillite.model import default_model_path
 
 
 def main() -> None:
@@ -40,6 +41,9 @@ def main() -> None:
     print("\n2. segmenting in the database: only cell summaries come back to Python")
     model = segment(engine, meter_days, columns, Settings(k=5), progress=lambda stage, msg: print(f"   {stage}: {msg}"))
     print(model.describe())
+    model_file = work / default_model_path(str(db), "meter_days")  # meter_days.model.json, as `tillite segment` names it
+    model.write(model_file)
+    print(f"   model written to {model_file}")
 
     print("\n3. labelling every row with a view (the source table is never written)")
     print("  ", label(engine, meter_days, model, "meter_day_segments"))

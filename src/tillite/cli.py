@@ -214,24 +214,33 @@ def _settings(k, method, k_rule, scaling, weights, cell_budget, width, refine_pa
 @table_option
 @columns_option
 @_settings_options
-@click.option("--out", "-o", default="model.json", show_default=True, help="Model file to write.")
+@click.option("--out", "-o", default=None, help="Model file to write [default: SOURCE's table or file name + .model.json, "
+              "e.g. meter_days.model.json, in the current folder].")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
 def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
     """Segment SOURCE's rows on the chosen columns and write a model file.
 
     SOURCE is a DuckDB database file (with --table) or a Parquet/CSV path or glob.
+    The model file's path is printed on stderr; replacing a file that held the
+    model of another source or column list is said in a warning line.
     """
+    from .model import default_model_path, replaced_model_note
+
     with user_errors():
         settings = _settings(**kw)
+        out = out or default_model_path(source, table)
         engine, src = _open(source, table)
         try:
             model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet))
         finally:
             engine.close()
+        note = replaced_model_note(out, model)
         model.write(out)
+        if note:
+            warnings.warn(note, UserWarning)
         if not quiet:
-            click.echo(f"[tillite] model: {out} ({model.timings['total']:.2f} s in all)", err=True)
+            click.echo(f"[tillite] model: written to {out} ({model.timings['total']:.2f} s in all)", err=True)
         click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
 
 

@@ -22,7 +22,11 @@ from .sqlgen import Assignment, CellMap, Grid
 FORMAT_NAME = "tillite-model"
 FORMAT_VERSION = 1
 
-__all__ = ["Model", "FORMAT_NAME", "FORMAT_VERSION", "ModelError"]
+__all__ = ["Model", "FORMAT_NAME", "FORMAT_VERSION", "ModelError", "default_model_path", "replaced_model_note",
+           "usual_file_mode", "MODEL_SUFFIX"]
+
+#: Ending of the model file name segment gives when --out is not given: <source>.model.json.
+MODEL_SUFFIX = ".model.json"
 
 
 class ModelError(TilliteError):
@@ -98,7 +102,8 @@ class Model:
         return json.dumps(self.to_dict(), indent=2, default=_plain)
 
     def write(self, path: str | os.PathLike) -> None:
-        """Write atomically: a failed write leaves any existing file as it was."""
+        """Write atomically (a temporary file in the same folder, then a rename): a failed write
+        leaves any existing file as it was.  The file gets the process's usual mode (0666 less the umask)."""
         path = Path(path)
         text = self.to_json()
         try:
@@ -106,6 +111,7 @@ class Model:
         except OSError as err:
             raise ModelError(f"cannot write model file {path}: {err.strerror}") from None
         try:
+            os.fchmod(fd, usual_file_mode())  # mkstemp makes 0600; colleagues read model files
             with os.fdopen(fd, "w") as fh:
                 fh.write(text)
                 fh.write("\n")
@@ -274,3 +280,53 @@ def _plain(o: Any) -> Any:
     if isinstance(o, np.ndarray):
         return o.tolist()
     raise TypeError(f"cannot write {type(o).__name__} to a model file")
+
+
+def usual_file_mode() -> int:
+    """0666 less the process's umask: the mode open() would give a new file."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+def default_model_path(source: str, table: str | None) -> str:
+    """<source>.model.json in the current folder: the table's name, or a data file's (or folder's) name.
+
+    ``meter_days`` -> ``meter_days.model.json``; ``exports/*.parquet`` -> ``exports.model.json``.
+    Characters other than letters, digits, ``.``, ``_`` and ``-`` become ``_``.
+    """
+    if table:
+        stem = table
+    else:
+        path = Path(source.rstrip("/\\"))
+        stem = path.stem if path.suffix and not _has_glob(path.name) else path.name
+        while _has_glob(stem) or not stem:
+            path = path.parent
+            if str(path) in ("", ".", "/"):
+                stem = "source"
+                break
+            stem = path.name
+    safe = "".join(ch if ch.isalnum() or ch in "._-" else "_" for ch in stem).strip(".") or "source"
+    return safe + MODEL_SUFFIX
+
+
+def _has_glob(text: str) -> bool:
+    return any(ch in text for ch in "*?[")
+
+
+def replaced_model_note(path: str | os.PathLike, model: "Model") -> str | None:
+    """A warning when writing ``model`` to ``path`` replaces a file that is not an earlier model of
+    the same source and columns (None when nothing or such a model is there)."""
+    path = Path(path)
+    if not path.exists():
+        return None
+    try:
+        old = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError):
+        old = None
+    if not isinstance(old, dict) or old.get("format") != FORMAT_NAME:
+        return f"replaced {path}, which was not a tillite model file"
+    if old.get("source") != model.source or old.get("columns") != list(model.columns):
+        cols = ", ".join(map(str, old.get("columns") or []))
+        return f"replaced {path}, the model of another source or column list ({old.get('source')}: {cols})"
+    return None

@@ -24,7 +24,7 @@ from . import features as F
 from . import sqlgen
 from .engines import Engine, SourceError, TilliteError, file_reader_for, is_numeric_type
 from .features import CF
-from .model import Model
+from .model import Model, usual_file_mode
 from .segmenters import KMeansResult, kmeans
 from .sqlgen import Assignment, Grid, Source
 
@@ -824,6 +824,7 @@ def _label_to_file(engine: Engine, source: Source, select, into: str, replace: b
     os.close(fd)
     try:
         engine.execute(sqlgen.copy_statement(select, tmp, fmt))
+        os.chmod(tmp, usual_file_mode())  # the writer may keep mkstemp's 0600; colleagues read label files
         os.replace(tmp, into)
     finally:
         if os.path.exists(tmp):
