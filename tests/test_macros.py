@@ -456,6 +456,8 @@ def duckdb_shell() -> str | None:
 def run_shell(shell: str, script: str, database: str = ":memory:") -> str:
     done = subprocess.run([shell, "-csv", database], input=script, capture_output=True, text=True, timeout=60)
     assert done.returncode == 0 and not done.stderr.strip(), done.stderr
+    # the shell prints its warnings (e.g. deprecated syntax) among the results on stdout
+    assert "warning" not in done.stdout.lower() and "deprecat" not in done.stdout.lower(), done.stdout
     return done.stdout
 
 

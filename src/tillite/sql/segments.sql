@@ -60,7 +60,7 @@ WITH RECURSIVE
         SELECT 0, 0, centres, CAST([] AS BIGINT[]), true
         FROM __seeds
         WHERE step = CAST(k AS BIGINT)
-        UNION
+        UNION ALL
         (
             WITH
                 __now AS MATERIALIZED (
