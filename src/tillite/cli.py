@@ -252,7 +252,8 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
               "the labels are then re-created by every `tillite refresh`.")
 @click.option("--into", required=True, help="View (or table) to create; for file sources, a .parquet/.csv file.")
 @click.option("--materialize", is_flag=True, help="Create a table instead of a view.")
-@click.option("--replace", is_flag=True, help="Allow replacing an existing table of that name.")
+@click.option("--replace", is_flag=True, help="Allow replacing an existing table of that name, or a view or table "
+              "tillite did not make (a view tillite made is replaced without it).")
 @click.option("--quiet", "-q", is_flag=True)
 def label_command(source, table, model_path, store_name, into, materialize, replace, quiet) -> None:
     """Add segment and distance to every row of SOURCE as a view, table or file.
