@@ -93,11 +93,14 @@ def show_command(model_path: str | None, name: str | None) -> None:
 @click.argument("database", type=click.Path(dir_okay=False))
 @click.option("--name", help="Only the scoring macros installed under this name.")
 def remove_command(database: str, name: str | None) -> None:
-    """Drop the macros tillite installed in DATABASE (all of them, or one model's); nothing else."""
+    """Drop the macros tillite installed in DATABASE (all of them, or one model's); nothing else.
+
+    A recorded macro that someone replaced with their own is left in place, with a warning line.
+    """
     with _user_errors():
         dropped = M.remove_from(database, name)
     if dropped:
         click.echo(f"removed from {database}: {', '.join(dropped)}")
     else:
-        which = f"under the name {name!r}" if name is not None else "at all"
-        click.echo(f"no tillite macros are recorded in {database} {which}; nothing removed")
+        which = f" under the name {name!r}" if name is not None else ""
+        click.echo(f"no macro tillite installed{which} is left in {database}; nothing removed")
