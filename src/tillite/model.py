@@ -283,9 +283,17 @@ def _plain(o: Any) -> Any:
 
 
 def usual_file_mode() -> int:
-    """0666 less the process's umask: the mode open() would give a new file."""
-    mask = os.umask(0o022)
-    os.umask(mask)
+    """0666 less the process's umask: the mode open() would give a new file.
+
+    Linux reports the umask in /proc/self/status; elsewhere it is read by setting
+    and restoring it (which other threads could see for that instant).
+    """
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            mask = next(int(line.split()[1], 8) for line in fh if line.startswith("Umask:"))
+    except (OSError, StopIteration, ValueError, IndexError):
+        mask = os.umask(0o022)
+        os.umask(mask)
     return 0o666 & ~mask
 
 
