@@ -385,7 +385,11 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, quiet) -> None:
 
 def _register_subcommands() -> None:
     from .cli_macros import macros
+    from .cli_report import name_command, report_command
     from .cli_store import refresh_command, store_group
+
+    main.add_command(report_command)
+    main.add_command(name_command)
 
     main.add_command(store_group)
     main.add_command(refresh_command)
