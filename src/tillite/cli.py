@@ -353,8 +353,10 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
 @click.option("--k", "-k", "k", type=int, default=5, show_default=True)
 @click.option("--out", "-o", default="tillite-demo-model.json", show_default=True, help="Model file to write.")
 @click.option("--rebuild", is_flag=True, help="Regenerate the demo data even if the file exists.")
+@click.option("--report", "report_path", default="tillite-demo-report.html", show_default=True,
+              help="Report page to write (segments by district; see `tillite report`).")
 @click.option("--quiet", "-q", is_flag=True)
-def demo_command(db_path, rows, days, seed, k, out, rebuild, quiet) -> None:
+def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet) -> None:
     """Build the invented water co-operative database and segment it end to end."""
     from . import demo, report
 
@@ -375,10 +377,12 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, quiet) -> None:
             click.echo(model.describe())
             click.echo("")
             click.echo(report.crosstab(engine, "meter_day_segments", demo.METERS_TABLE, "meter_id", "kind"))
+            written = report.write_report(report.report_of_model(engine, src, model, ["district"], progress), report_path)
         finally:
             engine.close()
         click.echo("")
         click.echo(f"model written to {out}; labels in view meter_day_segments of {db_path}.")
+        click.echo(f"report written to {Path(written).resolve()} (open it in a browser; no network needed).")
         click.echo("Segments are statistical groupings, not diagnoses: a 'probable leak' segment lists meters")
         click.echo("for the co-operative's usual inspection procedure to confirm.")
 

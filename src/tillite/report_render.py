@@ -100,12 +100,13 @@ def _line(x1: float, y1: float, x2: float, y2: float, stroke: str = "#444444", w
     return f'<line x1="{x1:.1f}" y1="{y1:.1f}" x2="{x2:.1f}" y2="{y2:.1f}" stroke="{stroke}" stroke-width="{width}"/>'
 
 
-def _table(head: Sequence[str], rows: Sequence[Sequence[Any]], numeric_from: int = 1) -> str:
+def _table(head: Sequence[str], rows: Sequence[Sequence[Any]], numeric_from: int = 1, text_columns: Sequence[int] = ()) -> str:
     th = "".join(f"<th>{esc(h)}</th>" for h in head)
     body = []
     for r in rows:
         cells = "".join(
-            f'<td class="num">{esc(v)}</td>' if i >= numeric_from else f"<td>{esc(v)}</td>" for i, v in enumerate(r)
+            f'<td class="num">{esc(v)}</td>' if i >= numeric_from and i not in text_columns else f"<td>{esc(v)}</td>"
+            for i, v in enumerate(r)
         )
         body.append(f"<tr>{cells}</tr>")
     return f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(body)}</tbody></table>"
@@ -119,6 +120,24 @@ def _figure(chart: str, svg: str, caption: str, table: str) -> str:
 
 
 # --------------------------------------------------------------------------- charts
+
+
+def _frame(values: Sequence[float], weights: Sequence[float], always: Sequence[float]) -> tuple[float, float]:
+    """The range holding the middle 99% of the rows (by weight) and every centroid, padded by 5%."""
+    pairs = sorted(zip(values, weights))
+    total = sum(weights) or 1.0
+    lo = hi = None
+    run = 0.0
+    for v, w in pairs:
+        run += w
+        if lo is None and run >= 0.005 * total:
+            lo = v
+        if hi is None and run >= 0.995 * total:
+            hi = v
+    lo = min([lo if lo is not None else 0.0, *always])
+    hi = max([hi if hi is not None else 1.0, *always])
+    span = (hi - lo) or 1.0
+    return lo - 0.05 * span, hi + 0.05 * span
 
 
 def sizes_chart(segments: list[dict[str, Any]]) -> str:
@@ -135,7 +154,7 @@ def sizes_chart(segments: list[dict[str, Any]]) -> str:
     table = _table(
         ["segment", "name", "rows", "share", "description"],
         [[s["segment"], s.get("name") or "", fmt(s["rows"]), pct(s["share"]), s["description"]] for s in segments],
-        numeric_from=2,
+        numeric_from=2, text_columns=(4,),
     )
     return _figure("sizes", svg, "Share of the segmented rows in each segment.", table)
 
@@ -227,18 +246,14 @@ def map_chart(content: dict[str, Any]) -> str:
     label = {s["segment"]: segment_label(s) for s in segments}
     dots, cents = m["dots"], m["centroids"]
     size, pad = 440, 30
-    xs = dots["x"] + [c["x"] for c in cents]
-    ys = dots["y"] + [c["y"] for c in cents]
-    x0, x1, y0, y1 = min(xs), max(xs), min(ys), max(ys)
-    sx = (x1 - x0) or 1.0
-    sy = (y1 - y0) or 1.0
-    scale = (size - 2 * pad) / max(sx, sy)
+    x0, x1 = _frame(dots["x"], dots["n"], [c["x"] for c in cents])
+    y0, y1 = _frame(dots["y"], dots["n"], [c["y"] for c in cents])
 
     def px(x: float) -> float:
-        return pad + (x - x0) * scale
+        return pad + (min(max(x, x0), x1) - x0) / (x1 - x0) * (size - 2 * pad)
 
     def py(y: float) -> float:
-        return size - pad - (y - y0) * scale
+        return size - pad - (min(max(y, y0), y1) - y0) / (y1 - y0) * (size - 2 * pad)
 
     nmax = max(dots["n"], default=1.0) or 1.0
     body = [_rect(0, 0, size, size, "#FFFFFF", stroke="#DDDDDD")]
@@ -256,7 +271,9 @@ def map_chart(content: dict[str, Any]) -> str:
             f'<path d="M{cx:.1f} {cy - 8:.1f} L{cx + 8:.1f} {cy:.1f} L{cx:.1f} {cy + 8:.1f} L{cx - 8:.1f} {cy:.1f} Z" '
             f'fill="#FFFFFF" stroke="#000000" stroke-width="2"><title>{esc(label.get(c["segment"], c["segment"]))} centroid</title></path>'
         )
-        body.append(_text(cx + 10, cy - 8, _short(label.get(c["segment"], str(c["segment"])), 22), size=11, weight="bold"))
+        right = cx > size * 0.65
+        body.append(_text(cx - 10 if right else cx + 10, cy - 8, _short(label.get(c["segment"], str(c["segment"])), 22), size=11,
+                          anchor="end" if right else "start", weight="bold"))
     a1, a2 = m["variance_share"][0], m["variance_share"][1] if len(m["variance_share"]) > 1 else 0.0
     body.append(_text(size / 2, size - 8, f"axis 1 ({pct(a1)} of variance)", size=11, anchor="middle"))
     body.append(f'<text x="12" y="{size / 2:.0f}" font-size="11" text-anchor="middle" transform="rotate(-90 12 {size / 2:.0f})">'
@@ -275,7 +292,8 @@ def map_chart(content: dict[str, Any]) -> str:
     caption = (
         f"Every grid cell of the table drawn from its summary alone (no row exported): a dot per cell, area proportional "
         f"to its rows, coloured by segment; white diamonds mark the centroids. The two axes hold {pct(a1 + a2)} of the "
-        f"variance ({pct(a1)} and {pct(a2)}) in the model's scaled units. Cells on the same spot are drawn as one dot."
+        f"variance ({pct(a1)} and {pct(a2)}) in the model's scaled units. Cells on the same spot are drawn as one dot; "
+        "the frame holds 99% of the rows on each axis (each axis on its own scale), cells beyond it sit on its edge."
     )
     return f'<p class="legend">{" ".join(legend)}</p>' + _figure("map", svg, caption, table)
 
