@@ -102,7 +102,7 @@ def test_postgres_report_statistics_equal_duckdb_and_numpy(postgres, reference, 
         x = rows.x[labels == sid]
         for j, c in enumerate(COLUMNS):
             np.testing.assert_allclose(got[sid]["columns"][c]["q50"], np.percentile(x[:, j], 50), rtol=1e-12)
-    # DuckDB's approx_quantile is a T-digest: its rank error stays within the 2% allowed in test_report.py
+    # DuckDB's reservoir_quantile: within the 2% rank tolerance explained in test_report.py
     assert_same_statistics(got, stats, rows, model, rank_tolerance=0.02)
 
 

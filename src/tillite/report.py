@@ -108,12 +108,20 @@ def segment_statistics(engine: Engine, source: Source, model: Model) -> dict[int
     )
     got = engine.query(sqlgen.segment_stats_statement(labels, model.columns, engine.dialect))
     out: dict[int, dict[str, Any]] = {}
+    skipped = np.ma.getmaskarray(got["s"]) if np.ma.isMaskedArray(got["s"]) else np.zeros(len(got["s"]), bool)
     for i in range(len(got["s"])):
+        if skipped[i] or got["s"][i] is None:  # the rows skipped for NULL/NaN/Inf
+            continue
         sid = int(np.ma.getdata(got["s"])[i])
         per = {}
         for j, name in enumerate(model.columns):
-            per[name] = {key: _float(got[f"{key}{j}" if not key.startswith("q") else f"{key}_{j}"][i])
-                         for key in ("mean", "sd", "min", "max", "q25", "q50", "q75")}
+            per[name] = {key: _float(got[f"{key}{j}"][i]) for key in ("mean", "sd", "min", "max")}
+            if f"q_{j}" in got:  # one list of the three quartiles (DuckDB)
+                listed = got[f"q_{j}"][i]
+                values = [None] * 3 if np.ma.is_masked(listed) or listed is None else list(listed)
+            else:
+                values = [got[f"q{int(round(q * 100))}_{j}"][i] for q in sqlgen.QUARTILES]
+            per[name].update({f"q{int(round(q * 100))}": _float(v) for q, v in zip(sqlgen.QUARTILES, values)})
         out[sid] = {"n": int(np.ma.getdata(got["n"])[i]), "columns": per}
     return out
 
@@ -123,17 +131,20 @@ def breakdown(engine: Engine, source: Source, model: Model, column: str, top: in
     labels = sqlgen.report_labels_select(
         source, model.columns, [column], model.assignment(), engine.dialect, cell_map=model.cell_map_spec()
     )
-    got = engine.query(sqlgen.breakdown_statement(labels, column, top))
-    ranks = [int(b) for b in np.ma.getdata(got["b"])]
-    cats = _masked_texts(got["c"])
+    got = engine.query(sqlgen.breakdown_statement(labels, column, top, engine.dialect))
+    segs = _masked_texts(got["s"])
+    keep = [i for i, s in enumerate(segs) if s is not None]  # groups with a NULL segment hold the skipped rows
+    all_cats = _masked_texts(got["c"])
+    ranks = [int(np.ma.getdata(got["b"])[i]) for i in keep]
     names: dict[int, str] = {}
-    for b, c in zip(ranks, cats):
-        names[b] = "other" if b > top else ("(missing)" if c is None else c)
+    for i, b in zip(keep, ranks):
+        names[b] = "other" if b > top else ("(missing)" if all_cats[i] is None else all_cats[i])
     order = sorted(names)
     ids = model.segment_ids()
     counts = {sid: [0] * len(order) for sid in ids}
-    for s, b, n in zip(np.ma.getdata(got["s"]), ranks, np.ma.getdata(got["n"])):
-        counts.setdefault(int(s), [0] * len(order))[order.index(b)] += int(n)
+    for i, b in zip(keep, ranks):
+        s, n = int(np.ma.getdata(got["s"])[i]), int(np.ma.getdata(got["n"])[i])
+        counts.setdefault(s, [0] * len(order))[order.index(b)] += n
     return {"column": column, "categories": [names[b] for b in order], "counts": {str(k): v for k, v in counts.items()}}
 
 

@@ -973,7 +973,11 @@ def report_labels_select(
 def segment_stats_statement(labels: exp.Select, columns: Sequence[str], dialect: str) -> exp.Select:
     """Per segment: n, and per column j mean{j}, sd{j} (population), min{j}, max{j}, q25_{j}, q50_{j}, q75_{j}.
 
-    Rows without a segment (skipped for NULL/NaN/Inf) are left out.
+    On DuckDB the quartiles come back as one list q_{j} per column from
+    reservoir_quantile (a uniform sample of 8,192 values per group: exact for
+    smaller segments, bounded memory, about 5x faster here than approx_quantile's
+    T-digest).  Rows without a segment (skipped for NULL/NaN/Inf) form the
+    group whose s is NULL, for the caller to leave out.
     """
     seg = col(internal("segment"))
     projections: list[exp.Expression] = [exp.alias_(seg, "s"), exp.alias_(exp.Count(this=exp.Star()), "n")]
@@ -985,36 +989,43 @@ def segment_stats_statement(labels: exp.Select, columns: Sequence[str], dialect:
             exp.alias_(exp.Min(this=x.copy()), f"min{j}"),
             exp.alias_(exp.Max(this=x.copy()), f"max{j}"),
         ]
+        if dialect == "duckdb":  # one reservoir per column for all three quartiles: q_{j} is a list
+            quartiles = exp.Array(expressions=[exp.Literal.number(repr(q)) for q in QUARTILES])
+            projections.append(exp.alias_(exp.func("reservoir_quantile", x.copy(), quartiles), f"q_{j}"))
+            continue
         projections += [
             exp.alias_(approx_quantile(x.copy(), q, dialect), f"q{int(round(q * 100))}_{j}") for q in QUARTILES
         ]
-    return (
-        exp.select(*projections)
-        .from_(subquery(labels, internal("r")))
-        .where(exp.Not(this=exp.Is(this=seg.copy(), expression=exp.Null())))
-        .group_by(seg.copy())
-    )
+    # no WHERE on the segment: DuckDB pushes such a filter down to the rows and computes the assignment twice
+    return exp.select(*projections).from_(subquery(labels, internal("r"))).group_by(seg.copy())
 
 
-def breakdown_statement(labels: exp.Select, column: str, top: int = 20) -> exp.Select:
+def breakdown_statement(labels: exp.Select, column: str, top: int = 20, dialect: str = "duckdb") -> exp.Select:
     """Rows per (segment, category) of one column, the ``top`` categories by rows kept and the rest summed.
 
     Returns s, b (the category's rank 1..top, or top+1 for "other"), c (the
     category as text, NULL for a missing value) and n.  Ranks order categories
-    by their total rows, ties by the text.
+    by their usable rows, ties by the text.  The per-(segment, category) counts
+    are a MATERIALIZED CTE where the dialect has one: DuckDB otherwise turns the
+    window over them into a self-join that scans the source twice.  Skipped
+    rows (NULL segment) come back as groups with a NULL s for the caller to
+    drop: a filter on the segment is pushed down to the rows and computes the
+    assignment twice per row.
     """
     seg = internal("segment")
     text = exp.cast(col(column), exp.DataType.build("VARCHAR"))
+    # grouped on the raw column, turned into text once per group (not once per row)
     per = (
         exp.select(exp.alias_(col(seg), "s"), exp.alias_(text, "c"), exp.alias_(exp.Count(this=exp.Star()), "n"))
         .from_(subquery(labels, internal("r")))
-        .where(exp.Not(this=exp.Is(this=col(seg), expression=exp.Null())))
-        .group_by(col(seg), text.copy())
+        .group_by(col(seg), col(column))
     )
+    usable = exp.Not(this=exp.Is(this=col("s"), expression=exp.Null()))
+    counts = internal("p")
     totals = exp.select(
         col("s"), col("c"), col("n"),
-        exp.alias_(exp.Window(this=exp.Sum(this=col("n")), partition_by=[col("c")]), "t"),
-    ).from_(subquery(per, internal("p")))
+        exp.alias_(exp.Window(this=exp.Sum(this=case_when(usable, col("n"))), partition_by=[col("c")]), "t"),
+    ).from_(exp.to_identifier(counts, quoted=True))
     ranked = exp.select(
         col("s"), col("c"), col("n"),
         exp.alias_(
@@ -1034,6 +1045,7 @@ def breakdown_statement(labels: exp.Select, column: str, top: int = 20) -> exp.S
         exp.select(col("s"), exp.alias_(bucket, "b"), exp.alias_(category, "c"), exp.alias_(exp.Sum(this=col("n")), "n"))
         .from_(subquery(ranked, internal("k")))
         .group_by(col("s"), bucket.copy())
+        .with_(exp.to_identifier(counts, quoted=True), as_=per, materialized=dialect not in SPARK_DIALECTS)
     )
 
 
