@@ -377,3 +377,18 @@ def test_report_opens_in_headless_chromium_with_every_chart_drawn(tmp_path):
         assert region_is_drawn(look.png, box), f"{chart} is blank"
     assert look.errors == []
     assert look.requests == []
+
+
+@pytest.mark.parametrize("dialect", ["duckdb", "postgres", "spark"])
+def test_report_statements_render_and_parse_back_in_each_dialect(dialect):
+    import sqlglot
+
+    assign = sqlgen.Assignment(center=(0.0, 1.0), inv_scale=(1.0, 0.5), weights=(1.0, 1.0), centroids=((0.0, 0.0), (1.0, 1.0)))
+    labels = sqlgen.report_labels_select(Source.of_table("points"), ["unit price", "select"], ["district"], assign, dialect)
+    for statement in (sqlgen.segment_stats_statement(labels, ["unit price", "select"], dialect),
+                      sqlgen.breakdown_statement(labels, "district", 20, dialect)):
+        text = sqlgen.render(statement, dialect)
+        # reference: sqlglot's own parser for the dialect reads the text back
+        assert sqlglot.parse_one(text, read=dialect) is not None
+        assert '"unit price"' in text or "`unit price`" in text
+    assert ("MATERIALIZED" in sqlgen.render(sqlgen.breakdown_statement(labels, "district", 20, dialect), dialect)) == (dialect != "spark")

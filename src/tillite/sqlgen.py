@@ -1045,7 +1045,7 @@ def breakdown_statement(labels: exp.Select, column: str, top: int = 20, dialect:
         exp.select(col("s"), exp.alias_(bucket, "b"), exp.alias_(category, "c"), exp.alias_(exp.Sum(this=col("n")), "n"))
         .from_(subquery(ranked, internal("k")))
         .group_by(col("s"), bucket.copy())
-        .with_(exp.to_identifier(counts, quoted=True), as_=per, materialized=dialect not in SPARK_DIALECTS)
+        .with_(exp.to_identifier(counts, quoted=True), as_=per, materialized=None if dialect in SPARK_DIALECTS else True)
     )
 
 
