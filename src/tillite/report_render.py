@@ -372,7 +372,9 @@ def history_charts(content: dict[str, Any]) -> str:
           "–" if h["largest_shift"] is None else f"{h['largest_shift']:.3f}"] + [fmt(h["sizes"].get(i)) for i in ids] for h in hist],
         numeric_from=2,
     )
-    return (_figure("history-sizes", sizes_svg, "Rows per segment at each build and refresh of the store.", "")
+    legend = " ".join(f'<span class="swatch" style="background:{colour.get(i, OUTLIER)}"></span>{esc(i)}' for i in ids)
+    return (f'<p class="legend">segments: {legend}</p>'
+            + _figure("history-sizes", sizes_svg, "Rows per segment at each build and refresh of the store.", "")
             + _figure("history-drift", drift_svg, "How far the most-moved centroid travelled at each refresh.", table))
 
 
