@@ -975,7 +975,7 @@ def segment_stats_statement(labels: exp.Select, columns: Sequence[str], dialect:
 
     On DuckDB the quartiles come back as one list q_{j} per column from
     reservoir_quantile (a uniform sample of 8,192 values per group: exact for
-    smaller segments, bounded memory, about 5x faster here than approx_quantile's
+    smaller segments, bounded memory, and faster here than approx_quantile's
     T-digest).  Rows without a segment (skipped for NULL/NaN/Inf) form the
     group whose s is NULL, for the caller to leave out.
     """
