@@ -392,3 +392,12 @@ def test_report_statements_render_and_parse_back_in_each_dialect(dialect):
         assert sqlglot.parse_one(text, read=dialect) is not None
         assert '"unit price"' in text or "`unit price`" in text
     assert ("MATERIALIZED" in sqlgen.render(sqlgen.breakdown_statement(labels, "district", 20, dialect), dialect)) == (dialect != "spark")
+
+
+def test_demo_ends_by_writing_its_report_beside_the_database_and_says_where(tmp_path):
+    db = tmp_path / "demo.duckdb"
+    got = CliRunner().invoke(main, ["demo", "--db", str(db), "--rows", "5000", "--days", "10", "--out", str(tmp_path / "m.json"), "-q"])
+    assert got.exit_code == 0, got.output
+    page = tmp_path / "tillite-demo-report.html"
+    assert page.exists() and f"report written to {page.resolve()}" in got.output
+    assert 'id="chart-breakdown-0"' in page.read_text(encoding="utf-8")

@@ -353,8 +353,9 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
 @click.option("--k", "-k", "k", type=int, default=5, show_default=True)
 @click.option("--out", "-o", default="tillite-demo-model.json", show_default=True, help="Model file to write.")
 @click.option("--rebuild", is_flag=True, help="Regenerate the demo data even if the file exists.")
-@click.option("--report", "report_path", default="tillite-demo-report.html", show_default=True,
-              help="Report page to write (segments by district; see `tillite report`).")
+@click.option("--report", "report_path", default=None,
+              help="Report page to write (segments by district; see `tillite report`) "
+                   "[default: tillite-demo-report.html beside the database].")
 @click.option("--quiet", "-q", is_flag=True)
 def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet) -> None:
     """Build the invented water co-operative database and segment it end to end."""
@@ -377,7 +378,8 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
             click.echo(model.describe())
             click.echo("")
             click.echo(report.crosstab(engine, "meter_day_segments", demo.METERS_TABLE, "meter_id", "kind"))
-            written = report.write_report(report.report_of_model(engine, src, model, ["district"], progress), report_path)
+            page = report_path or Path(db_path).with_name("tillite-demo-report.html")
+            written = report.write_report(report.report_of_model(engine, src, model, ["district"], progress), page)
         finally:
             engine.close()
         click.echo("")
