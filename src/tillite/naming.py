@@ -16,7 +16,7 @@ from .model import Model
 __all__ = ["apply_names", "read_names_file", "name_model_file", "name_store_segments"]
 
 
-class NameError_(TilliteError):
+class NamingError(TilliteError):
     """A segment id or name given to `tillite name` is not usable."""
 
 
@@ -25,11 +25,11 @@ def read_names_file(path: str | Path) -> dict[str, Any]:
     try:
         data = json.loads(Path(path).read_text(encoding="utf-8"))
     except OSError as err:
-        raise NameError_(f"cannot read --names file {path}: {err.strerror}") from None
+        raise NamingError(f"cannot read --names file {path}: {err.strerror}") from None
     except (json.JSONDecodeError, UnicodeDecodeError) as err:
-        raise NameError_(f"--names file {path} is not valid JSON: {err}") from None
+        raise NamingError(f"--names file {path} is not valid JSON: {err}") from None
     if not isinstance(data, dict):
-        raise NameError_(f'--names file {path} must hold a JSON object such as {{"4": "probable leak"}}')
+        raise NamingError(f'--names file {path} must hold a JSON object such as {{"4": "probable leak"}}')
     return data
 
 
@@ -41,11 +41,11 @@ def apply_names(model: Model, given: dict[Any, Any]) -> Model:
         try:
             sid = int(str(key).strip())
         except ValueError:
-            raise NameError_(f"segment id {key!r} is not a whole number; the model's ids are {ids}") from None
+            raise NamingError(f"segment id {key!r} is not a whole number; the model's ids are {ids}") from None
         if sid not in ids and sid != -1:
-            raise NameError_(f"segment id {sid} is not in the model; its ids are {ids}")
+            raise NamingError(f"segment id {sid} is not in the model; its ids are {ids}")
         if not isinstance(value, str):
-            raise NameError_(f"the name of segment {sid} must be text, got {json.dumps(value)}")
+            raise NamingError(f"the name of segment {sid} must be text, got {json.dumps(value)}")
         if value == "":
             names.pop(str(sid), None)
         else:
