@@ -363,8 +363,11 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
 @click.option("--k", "-k", "k", type=int, default=5, show_default=True)
 @click.option("--out", "-o", default="tillite-demo-model.json", show_default=True, help="Model file to write.")
 @click.option("--rebuild", is_flag=True, help="Regenerate the demo data even if the file exists.")
+@click.option("--report", "report_path", default=None,
+              help="Report page to write (segments by district; see `tillite report`) "
+                   "[default: tillite-demo-report.html beside the database].")
 @click.option("--quiet", "-q", is_flag=True)
-def demo_command(db_path, rows, days, seed, k, out, rebuild, quiet) -> None:
+def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet) -> None:
     """Build the invented water co-operative database and segment it end to end."""
     from . import demo, report
 
@@ -385,17 +388,24 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, quiet) -> None:
             click.echo(model.describe())
             click.echo("")
             click.echo(report.crosstab(engine, "meter_day_segments", demo.METERS_TABLE, "meter_id", "kind"))
+            page = report_path or Path(db_path).with_name("tillite-demo-report.html")
+            written = report.write_report(report.report_of_model(engine, src, model, ["district"], progress), page)
         finally:
             engine.close()
         click.echo("")
         click.echo(f"model written to {out}; labels in view meter_day_segments of {db_path}.")
+        click.echo(f"report written to {Path(written).resolve()} (open it in a browser; no network needed).")
         click.echo("Segments are statistical groupings, not diagnoses: a 'probable leak' segment lists meters")
         click.echo("for the co-operative's usual inspection procedure to confirm.")
 
 
 def _register_subcommands() -> None:
     from .cli_macros import macros
+    from .cli_report import name_command, report_command
     from .cli_store import refresh_command, store_group
+
+    main.add_command(report_command)
+    main.add_command(name_command)
 
     main.add_command(store_group)
     main.add_command(refresh_command)

@@ -97,6 +97,7 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
         click.echo(f"grid: width {st['grid']['width']:.4g} on {st['grid']['axes_count']} axes; "
                    f"{100 * st['outside_share']:.2f}% of rows outside the built range")
         click.echo(f"segments: k={st['k']}, ids {st['segment_ids']}")
+        _echo_history(source, store_name)
         for w in st["warnings"]:
             click.echo(f"warning: {w}", err=True)
 
@@ -132,3 +133,18 @@ def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force,
         if not as_json:
             for w in report.warnings:
                 click.echo(f"warning: {w}", err=True)
+
+
+def _echo_history(source: str, store_name: str, last: int = 5) -> None:
+    """The last few builds and refreshes of the store (tillite_store_history)."""
+    from . import store_history
+
+    engine = open_store_database(source)
+    try:
+        rows = store_history.history(engine, store_name, last=last)
+    finally:
+        engine.close()
+    if rows:
+        click.echo(f"last {len(rows)} build(s)/refresh(es):")
+        for line in store_history.describe(rows):
+            click.echo(line)

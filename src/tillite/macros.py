@@ -280,6 +280,8 @@ def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
         macro = f"{name}_{suffix}"
         values = {"macro": identifier(macro), "params": params, "body": expression(body, pretty=True)}
         out.append(MacroDefinition(macro, "scalar", fill(template("scoring"), values), model=name))
+    if model.names:  # <name>_segment_name once segments are named (`tillite name`)
+        out.append(segment_name_macro(model, name, segment))
     return out
 
 
@@ -490,3 +492,17 @@ def install_into(path: str | os.PathLike, definitions: Sequence[MacroDefinition]
 def remove_from(path: str | os.PathLike, model: str | None = None) -> list[str]:
     """remove() on the DuckDB file at path."""
     return _on_database(path, lambda con: remove(con, model), "remove macros from")
+
+
+def segment_name_macro(model: Model, name: str, segment: exp.Expression) -> MacroDefinition:
+    """<name>_segment_name(x...): the name given to the row's segment (NULL where unnamed or unusable).
+
+    Names go in as string literals made by sqlglot.
+    """
+    case = exp.Case(this=segment.copy(), ifs=[
+        exp.If(this=sqlgen.num(i), true=exp.Literal.string(str(model.segment_name(sid))))
+        for i, sid in enumerate(model.segment_ids()) if model.segment_name(sid) is not None
+    ])
+    macro = f"{name}_segment_name"
+    values = {"macro": identifier(macro), "params": identifiers(model.columns), "body": expression(case, pretty=True)}
+    return MacroDefinition(macro, "scalar", fill(template("scoring"), values), model=name)

@@ -60,6 +60,7 @@ class Model:
     passes: list[dict[str, Any]] = field(default_factory=list)
     timings: dict[str, float] = field(default_factory=dict)
     created: str = ""
+    names: dict[str, str] = field(default_factory=dict)  # segment id (as text) -> name given by `tillite name`
 
     # ------------------------------------------------------------ derived
 
@@ -212,6 +213,8 @@ class Model:
                     "centroid": dict(zip(self.columns, self.centroids[i])),
                     "radius": self.radius[i],
                     "sse": self.segment_sse[i],
+                    "name": self.segment_name(self.segment_ids()[i]),
+                    "description": self.segment_description(i),
                 }
                 for i in range(len(self.sizes))
             ],
@@ -248,7 +251,37 @@ class Model:
         lines.extend("  ".join(v.rjust(w) for v, w in zip(r, widths)) for r in rows)
         lines.append("")
         lines.append("centroids in original units; radius and SSE in scaled units")
+        lines.extend(self._name_lines())
         return "\n".join(lines)
+
+    # ------------------------------------------------------------ names and descriptions
+
+    def segment_name(self, segment_id: int) -> str | None:
+        """The name given to a segment id with `tillite name`, or None."""
+        return self.names.get(str(int(segment_id)))
+
+    def column_sd(self) -> np.ndarray:
+        """Exact population sd per column (from the cells), or the scale when the model predates it."""
+        sd = self.grid.get("sd") if isinstance(self.grid, dict) else None
+        values = np.asarray(sd if sd is not None and len(sd) == len(self.columns) else self.scale, dtype=np.float64)
+        return np.where(values > 0, values, 1.0)
+
+    def segment_description(self, i: int, most: int = 3, floor: float = 0.5) -> str:
+        """Segment i in words by its most distinctive columns, e.g. "zero_hours 1.9 sd below average"."""
+        z = (np.asarray(self.centroids[i]) - np.asarray(self.center)) / self.column_sd()
+        order = [j for j in np.argsort(-np.abs(z), kind="stable") if abs(z[j]) >= floor][:most]
+        if not order:
+            return "close to the average on every column"
+        return ", ".join(f"{self.columns[j]} {abs(z[j]):.1f} sd {'above' if z[j] > 0 else 'below'} average" for j in order)
+
+    def _name_lines(self) -> list[str]:
+        """One line per segment: id, name (if any) and description."""
+        lines = ["", "segments in words (a segment is a statistical grouping, not a diagnosis):"]
+        for i, sid in enumerate(self.segment_ids()):
+            name = self.segment_name(sid)
+            label = f"{sid} \"{name}\"" if name is not None else f"{sid}"
+            lines.append(f"  {label}: {self.segment_description(i)}")
+        return lines
 
 
 def _check_shapes(body: dict[str, Any], where: str) -> None:

@@ -722,6 +722,8 @@ def label(
         source, model.columns, source_columns, model.assignment(), engine.dialect, cell_map=model.cell_map_spec(),
         materialize=materialize or bool(source.files),
     )
+    if model.names:  # a segment_name column once segments are named (`tillite name`)
+        select = sqlgen.segment_names_column(select, "segment", {int(k): v for k, v in model.names.items()})
     if source.files:
         return _label_to_file(engine, source, select, into, replace)
     target = tuple(p.lower() for p in into.split("."))

@@ -977,3 +977,133 @@ def comment_of_statement(name: str, dialect: str) -> exp.Select:
     catalog = exp.Literal.string(parts[-3]) if len(parts) >= 3 else exp.Anonymous(this="current_database", expressions=[])
     where = exp.and_(same("name", exp.Literal.string(parts[-1])), same("schema_name", schema), same("database_name", catalog))
     return exp.select(col("comment")).from_(relations).where(where)
+# --------------------------------------------------------------------------- report statistics
+#
+# The report's figures come back as aggregates over the labels: one GROUP BY
+# segment for the per-column statistics, one GROUP BY (segment, category) per
+# breakdown column.  Output names are our own short aliases (s, n, mean0, ...),
+# never user text.
+
+QUARTILES = (0.25, 0.5, 0.75)
+
+#: Rank accuracy asked of Spark's percentile_approx: its documented relative
+#: rank error is 1 / accuracy.
+SPARK_QUANTILE_ACCURACY = 10_000
+
+
+def approx_quantile(e: exp.Expression, q: float, dialect: str) -> exp.Expression:
+    """The engine's own approximate quantile: DuckDB approx_quantile (T-digest),
+    PostgreSQL percentile_cont WITHIN GROUP (exact), Spark percentile_approx."""
+    fraction = exp.Literal.number(repr(float(q)))  # a plain decimal: DuckDB wants a FLOAT/DECIMAL here, not DOUBLE
+    if dialect in ("postgres", "postgresql"):
+        return exp.WithinGroup(
+            this=exp.PercentileCont(this=fraction), expression=exp.Order(expressions=[exp.Ordered(this=e)])
+        )
+    if dialect in SPARK_DIALECTS:
+        return exp.ApproxQuantile(this=e, quantile=fraction, accuracy=exp.Literal.number(SPARK_QUANTILE_ACCURACY))
+    return exp.ApproxQuantile(this=e, quantile=fraction)
+
+
+def report_labels_select(
+    source: Source, columns: Sequence[str], extra_columns: Sequence[str], assign: Assignment, dialect: str,
+    cell_map: CellMap | None = None,
+) -> exp.Select:
+    """The model's columns, the breakdown columns and the segment of every row (as internal names)."""
+    keep = list(dict.fromkeys(list(columns) + list(extra_columns)))
+    return label_select(
+        source, columns, keep, assign, dialect, segment_name=internal("segment"), distance_name=internal("distance"),
+        cell_map=cell_map,
+    )
+
+
+def segment_stats_statement(labels: exp.Select, columns: Sequence[str], dialect: str) -> exp.Select:
+    """Per segment: n, and per column j mean{j}, sd{j} (population), min{j}, max{j}, q25_{j}, q50_{j}, q75_{j}.
+
+    On DuckDB the quartiles come back as one list q_{j} per column from
+    reservoir_quantile (a uniform sample of 8,192 values per group: exact for
+    smaller segments, bounded memory, and faster here than approx_quantile's
+    T-digest).  Rows without a segment (skipped for NULL/NaN/Inf) form the
+    group whose s is NULL, for the caller to leave out.
+    """
+    seg = col(internal("segment"))
+    projections: list[exp.Expression] = [exp.alias_(seg, "s"), exp.alias_(exp.Count(this=exp.Star()), "n")]
+    for j, name in enumerate(columns):
+        x = to_double(col(name))
+        projections += [
+            exp.alias_(exp.Avg(this=x.copy()), f"mean{j}"),
+            exp.alias_(exp.StddevPop(this=x.copy()), f"sd{j}"),
+            exp.alias_(exp.Min(this=x.copy()), f"min{j}"),
+            exp.alias_(exp.Max(this=x.copy()), f"max{j}"),
+        ]
+        if dialect == "duckdb":  # one reservoir per column for all three quartiles: q_{j} is a list
+            quartiles = exp.Array(expressions=[exp.Literal.number(repr(q)) for q in QUARTILES])
+            projections.append(exp.alias_(exp.func("reservoir_quantile", x.copy(), quartiles), f"q_{j}"))
+            continue
+        projections += [
+            exp.alias_(approx_quantile(x.copy(), q, dialect), f"q{int(round(q * 100))}_{j}") for q in QUARTILES
+        ]
+    # no WHERE on the segment: DuckDB pushes such a filter down to the rows and computes the assignment twice
+    return exp.select(*projections).from_(subquery(labels, internal("r"))).group_by(seg.copy())
+
+
+def breakdown_statement(labels: exp.Select, column: str, top: int = 20, dialect: str = "duckdb") -> exp.Select:
+    """Rows per (segment, category) of one column, the ``top`` categories by rows kept and the rest summed.
+
+    Returns s, b (the category's rank 1..top, or top+1 for "other"), c (the
+    category as text, NULL for a missing value) and n.  Ranks order categories
+    by their usable rows, ties by the text.  The per-(segment, category) counts
+    are a MATERIALIZED CTE where the dialect has one: DuckDB otherwise turns the
+    window over them into a self-join that scans the source twice.  Skipped
+    rows (NULL segment) come back as groups with a NULL s for the caller to
+    drop: a filter on the segment is pushed down to the rows and computes the
+    assignment twice per row.
+    """
+    seg = internal("segment")
+    text = exp.cast(col(column), exp.DataType.build("VARCHAR"))
+    # grouped on the raw column, turned into text once per group (not once per row)
+    per = (
+        exp.select(exp.alias_(col(seg), "s"), exp.alias_(text, "c"), exp.alias_(exp.Count(this=exp.Star()), "n"))
+        .from_(subquery(labels, internal("r")))
+        .group_by(col(seg), col(column))
+    )
+    usable = exp.Not(this=exp.Is(this=col("s"), expression=exp.Null()))
+    counts = internal("p")
+    totals = exp.select(
+        col("s"), col("c"), col("n"),
+        exp.alias_(exp.Window(this=exp.Sum(this=case_when(usable, col("n"))), partition_by=[col("c")]), "t"),
+    ).from_(exp.to_identifier(counts, quoted=True))
+    ranked = exp.select(
+        col("s"), col("c"), col("n"),
+        exp.alias_(
+            exp.Window(
+                this=exp.func("DENSE_RANK"),
+                order=exp.Order(expressions=[
+                    exp.Ordered(this=col("t"), desc=True, nulls_first=False),
+                    exp.Ordered(this=col("c"), nulls_first=False),
+                ]),
+            ),
+            "k",
+        ),
+    ).from_(subquery(totals, internal("t")))
+    bucket = case_when(exp.LTE(this=col("k"), expression=num(top)), col("k")).else_(num(top + 1))
+    category = exp.Min(this=case_when(exp.LTE(this=col("k"), expression=num(top)), col("c")))
+    return (
+        exp.select(col("s"), exp.alias_(bucket, "b"), exp.alias_(category, "c"), exp.alias_(exp.Sum(this=col("n")), "n"))
+        .from_(subquery(ranked, internal("k")))
+        .group_by(col("s"), bucket.copy())
+        .with_(exp.to_identifier(counts, quoted=True), as_=per, materialized=None if dialect in SPARK_DIALECTS else True)
+    )
+
+
+def segment_names_column(select: exp.Select, segment: str, names: dict[int, str], alias: str = "segment_name") -> exp.Select:
+    """The label select wrapped to add a text column naming each row's segment (NULL where unnamed).
+
+    Names are string literals made by sqlglot, never pasted text.
+    """
+    if not names:
+        cased: exp.Expression = exp.cast(exp.Null(), exp.DataType.build("VARCHAR"))
+    else:
+        cased = exp.case(col(segment))
+        for sid, name in sorted(names.items()):
+            cased = cased.when(num(int(sid)), exp.Literal.string(str(name)))
+    return exp.select(exp.Star(), exp.alias_(cased, alias, quoted=True)).from_(subquery(select, internal("n")))

@@ -32,7 +32,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from . import features as F
-from . import sqlgen
+from . import sqlgen, store_history
 from .engines import Engine, TilliteError
 from .features import CF
 from .model import Model
@@ -522,6 +522,7 @@ def build(
                 np.asarray(previous.model.centroids), previous.model.segment_ids(), np.asarray(model.centroids),
                 previous.next_id, np.where(sd > 0, sd, 1.0), new_segment_shift,
             )
+            model.names = dict(previous.model.names)
         if partition.files:
             model.source = f"{source.label} (one partition per file)"
         engine.execute(sqlgen.insert_values_statement(PARTS, _part_rows(name, fps, sorted(fps))))
@@ -532,6 +533,7 @@ def build(
         )]))
         if previous is not None:
             _relabel(engine, previous, model)
+        store_history.record(engine, name, "regrid" if previous is not None else "build", model)
     model.timings = {"total": time.perf_counter() - t0}
     return load(engine, name), model
 
@@ -619,6 +621,7 @@ def refresh(
             report.drift, report.warnings = _drift(info.model, model, cells, np.where(std.sd > 0, std.sd, 1.0), drift_threshold)
             _save_model(engine, info, model)
             _relabel(engine, info, model)
+            store_history.record(engine, store, "refresh", model, report)
             if before_commit is not None:
                 before_commit()
     except Exception as err:  # the transaction rolled back: the store is as it was
@@ -704,6 +707,7 @@ def _resegment(engine: Engine, info: StoreInfo, settings: Settings, progress: Pr
     model, cells, std = _segment_cells(engine, info.source, info.columns, cells_grid, skipped, info.grid, settings, f"store {info.name}", init, progress)
     ids, next_id = match_segments(np.asarray(old.centroids), old.segment_ids(), np.asarray(model.centroids), info.next_id, np.where(std.sd > 0, std.sd, 1.0), new_segment_shift)
     model.ids = ids
+    model.names = dict(old.names)  # names follow the ids, which a refresh keeps
     info.next_id = next_id
     if info.partition.files:
         model.source = old.source

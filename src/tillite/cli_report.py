@@ -1,0 +1,122 @@
+"""`tillite report` and `tillite name`: see and name segments from the command line.
+
+A thin layer over tillite.report and tillite.naming; registered on the main
+command in cli._register_subcommands.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import click
+
+from . import naming
+from . import report as R
+
+__all__ = ["report_command", "name_command"]
+
+
+def _cli():
+    """The shared helpers of the main command module (imported late: it registers us)."""
+    from . import cli
+
+    return cli
+
+
+def _split(values: tuple[str, ...]) -> list[str]:
+    return [p.strip() for v in values for p in v.split(",") if p.strip()]
+
+
+def _default_out(fmt: str) -> str:
+    return {"html": "segments.html", "md": "segments.md", "json": "segments.json"}[fmt]
+
+
+@click.command("report")
+@click.argument("source", metavar="SOURCE")
+@click.option("--table", "-t", help="Table to read (for a database SOURCE; may be schema.table).")
+@click.option("--engine", type=click.Choice(["auto", "duckdb", "postgres", "spark"]), default="auto", show_default=True,
+              expose_value=False, callback=lambda ctx, p, v: _cli()._remember_engine_option(ctx, p, v),
+              help="Where the SQL runs (as for `tillite segment`).")
+@click.option("--spark-conf", "spark_conf", multiple=True, metavar="KEY=VALUE", expose_value=False,
+              callback=lambda ctx, p, v: _cli()._remember_engine_option(ctx, p, v),
+              help="Spark setting for the session tillite starts (repeatable).")
+@click.option("--model", "-m", "model_path", help="Model file written by `tillite segment`.")
+@click.option("--store", "store_name", help="Instead of --model and --table: a summary store in the database SOURCE "
+              "(adds its refresh history; the map uses the store's kept cells).")
+@click.option("--by", "by", multiple=True, help="Breakdown column(s), comma-separated (repeatable): the share of each "
+              "category per segment (top 20 categories, the rest as 'other').")
+@click.option("--out", "-o", "out", help="File to write (default: segments.html, .md or .json by --format).")
+@click.option("--format", "fmt", type=click.Choice(list(R.FORMATS)), default="html", show_default=True,
+              help="html: one self-contained page with inline SVG; md and json: the same content as text.")
+@click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
+def report_command(source, table, model_path, store_name, by, out, fmt, quiet) -> None:
+    """Write a report of the segments: sizes, profile, spread, map, breakdowns (and a store's refresh history).
+
+    Every figure is computed in the database as an aggregate; no row is exported.
+    """
+    cli = _cli()
+    if bool(model_path) == bool(store_name):
+        raise click.UsageError("give exactly one of --model and --store")
+    if store_name and table:
+        raise click.UsageError("--table is not needed with --store: the store knows its source")
+    out = out or _default_out(fmt)
+    progress = cli._progress(quiet)
+    with cli.user_errors():
+        if store_name:
+            from .cli_store import open_store_database
+
+            engine = open_store_database(source)
+            try:
+                content = R.report_of_store(engine, store_name, _split(by), progress)
+            finally:
+                engine.close()
+        else:
+            from .model import Model
+
+            model = Model.read(model_path)
+            engine, src = cli._open(source, table)
+            try:
+                content = R.report_of_model(engine, src, model, _split(by), progress)
+            finally:
+                engine.close()
+        path = R.write_report(content, out, fmt)
+    click.echo(f"report written to {path}")
+
+
+@click.command("name")
+@click.argument("target", metavar="MODEL")
+@click.argument("pairs", nargs=-1, metavar="[ID NAME]...")
+@click.option("--names", "names_file", type=click.Path(dir_okay=False), help='JSON file of names: {"4": "probable leak", ...}.')
+@click.option("--store", "store_name", help="Name the segments of a summary store instead: MODEL is then its database.")
+def name_command(target, pairs, names_file, store_name) -> None:
+    """Give segments names: `tillite name model.json 4 "probable leak"`.
+
+    Ids never change; an empty name removes one. Names are stored in the model
+    file (written atomically) or in the store, and shown by `show`, `report`, the
+    segment_name column of label views made afterwards (a store's views are
+    re-created at once) and the <name>_segment_name macro.
+    """
+    cli = _cli()
+    if len(pairs) % 2:
+        raise click.UsageError("give segment ids and names in pairs: ID NAME [ID NAME ...]")
+    if not pairs and not names_file:
+        raise click.UsageError("give ID NAME, or --names FILE")
+    with cli.user_errors():
+        given = naming.read_names_file(names_file) if names_file else {}
+        given.update({pairs[i]: pairs[i + 1] for i in range(0, len(pairs), 2)})
+        if store_name:
+            from .cli_store import open_store_database
+
+            engine = open_store_database(target, writable=True)
+            try:
+                model = naming.name_store_segments(engine, store_name, given)
+            finally:
+                engine.close()
+            where = f"store {store_name} (label views re-created)"
+        else:
+            model = naming.name_model_file(Path(target), given)
+            where = f"{target} (re-run `tillite label` to add segment_name to existing views)"
+    click.echo(f"names written to {where}:")
+    for sid in model.segment_ids():
+        click.echo(f"  {sid}: {json.dumps(model.segment_name(sid), ensure_ascii=False) if model.segment_name(sid) is not None else '(no name)'}")

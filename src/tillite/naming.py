@@ -1,0 +1,75 @@
+"""Segment names: `tillite name` writes them into a model file or a summary store.
+
+Names are any text, keyed by segment id (ids never change).  They are kept as
+data only: escaped in HTML by the report, passed as string literals in SQL.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+from .engines import Engine, TilliteError
+from .model import Model
+
+__all__ = ["apply_names", "read_names_file", "name_model_file", "name_store_segments"]
+
+
+class NamingError(TilliteError):
+    """A segment id or name given to `tillite name` is not usable."""
+
+
+def read_names_file(path: str | Path) -> dict[str, Any]:
+    """A JSON object of segment id -> name."""
+    try:
+        data = json.loads(Path(path).read_text(encoding="utf-8"))
+    except OSError as err:
+        raise NamingError(f"cannot read --names file {path}: {err.strerror}") from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as err:
+        raise NamingError(f"--names file {path} is not valid JSON: {err}") from None
+    if not isinstance(data, dict):
+        raise NamingError(f'--names file {path} must hold a JSON object such as {{"4": "probable leak"}}')
+    return data
+
+
+def apply_names(model: Model, given: dict[Any, Any]) -> Model:
+    """Set names on a model (in place): keys are segment ids, values text; an empty text removes a name."""
+    ids = model.segment_ids()
+    names = dict(model.names)
+    for key, value in given.items():
+        try:
+            sid = int(str(key).strip())
+        except ValueError:
+            raise NamingError(f"segment id {key!r} is not a whole number; the model's ids are {ids}") from None
+        if sid not in ids and sid != -1:
+            raise NamingError(f"segment id {sid} is not in the model; its ids are {ids}")
+        if not isinstance(value, str):
+            raise NamingError(f"the name of segment {sid} must be text, got {json.dumps(value)}")
+        if value == "":
+            names.pop(str(sid), None)
+        else:
+            names[str(sid)] = value
+    model.names = {k: names[k] for k in sorted(names, key=int)}
+    return model
+
+
+def name_model_file(path: Path, given: dict[Any, Any]) -> Model:
+    """Read, name, and write back atomically (a failure leaves the file as it was)."""
+    model = apply_names(Model.read(path), given)
+    model.write(path)
+    return model
+
+
+def name_store_segments(engine: Engine, store: str, given: dict[Any, Any]) -> Model:
+    """Name a store's segments and re-create its label views, in one transaction."""
+    from . import sqlgen
+    from . import store as S
+
+    info = S.load(engine, store)
+    model = apply_names(info.model, given)
+    with engine.transaction():
+        S._claim(engine, info)
+        engine.execute(sqlgen.update_statement(S.STORES, {"model": model.to_json()}, sqlgen.equals_all({"store": store})))
+        S._relabel(engine, info, model)
+    return model

@@ -1,0 +1,98 @@
+"""Refresh history of a summary store: one row per build, regrid and refresh, in our own table.
+
+Rows are written inside the build's or refresh's transaction (a rolled-back
+refresh leaves no history row).  Each row keeps what a person wants to see
+later: when, how many partitions changed, the segment sizes and how far each
+segment's centroid moved (standard deviations).
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import datetime, timezone
+from typing import Any
+
+import numpy as np
+
+from . import sqlgen
+from .engines import Engine
+from .model import Model
+
+__all__ = ["HISTORY", "HISTORY_COLUMNS", "record", "history", "describe"]
+
+HISTORY = "tillite_store_history"
+HISTORY_COLUMNS = [
+    ("store", "VARCHAR"),
+    ("at", "VARCHAR"),
+    ("event", "VARCHAR"),
+    ("new_parts", "INTEGER"),
+    ("changed_parts", "INTEGER"),
+    ("vanished_parts", "INTEGER"),
+    ("rows", "BIGINT"),
+    ("k", "INTEGER"),
+    ("sizes", "VARCHAR"),
+    ("shifts", "VARCHAR"),
+]
+
+
+def record(engine: Engine, store: str, event: str, model: Model, report: Any = None) -> None:
+    """Add one history row (call inside the transaction that changes the store).
+
+    ``report`` is the refresh's RefreshReport (partitions and drift); a build
+    starts the history afresh.
+    """
+    engine.execute(sqlgen.create_table_statement(HISTORY, HISTORY_COLUMNS))
+    if event == "build":
+        engine.execute(sqlgen.delete_statement(HISTORY, sqlgen.equals_all({"store": store})))
+    sizes = {str(sid): int(n) for sid, n in zip(model.segment_ids(), model.sizes)}
+    shifts = {}
+    if report is not None:
+        shifts = {str(d["segment"]): d["shift_sd"] for d in report.drift if d.get("shift_sd") is not None}
+    row = (
+        store,
+        datetime.now(timezone.utc).isoformat(timespec="microseconds"),
+        event,
+        len(report.new) if report is not None else 0,
+        len(report.changed) if report is not None else 0,
+        len(report.vanished) if report is not None else 0,
+        int(model.rows),
+        int(model.k),
+        json.dumps(sizes),
+        json.dumps(shifts),
+    )
+    engine.execute(sqlgen.insert_values_statement(HISTORY, [row]))
+
+
+def history(engine: Engine, store: str, last: int | None = None) -> list[dict[str, Any]]:
+    """The store's history rows, oldest first (only the ``last`` ones when given); [] before any."""
+    if engine.relation_kind(HISTORY) is None:
+        return []
+    got = engine.query(sqlgen.select_where(HISTORY, sqlgen.equals_all({"store": store})))
+    rows = []
+    for i in range(len(got["store"])):
+        rows.append({
+            "at": str(got["at"][i]),
+            "event": str(got["event"][i]),
+            "new": int(got["new_parts"][i]),
+            "changed": int(got["changed_parts"][i]),
+            "vanished": int(got["vanished_parts"][i]),
+            "rows": int(got["rows"][i]),
+            "k": int(got["k"][i]),
+            "sizes": {int(k): int(v) for k, v in json.loads(str(got["sizes"][i])).items()},
+            "shifts": {int(k): float(v) for k, v in json.loads(str(got["shifts"][i])).items()},
+        })
+    rows.sort(key=lambda r: r["at"])
+    return rows[-last:] if last else rows
+
+
+def describe(rows: list[dict[str, Any]]) -> list[str]:
+    """Text lines for `store status`: one per history row."""
+    out = []
+    for r in rows:
+        largest = max(r["shifts"].values(), default=None)
+        moved = "-" if largest is None or not np.isfinite(largest) else f"{largest:.3f} sd"
+        out.append(
+            f"  {r['at'][:19]}  {r['event']:<7}  {r['new']} new, {r['changed']} changed, {r['vanished']} vanished; "
+            f"{r['rows']:,} rows, k={r['k']}; largest centroid move {moved}"
+        )
+    return out
