@@ -144,6 +144,7 @@ class Profile:
     center: np.ndarray
     scale: np.ndarray  # of the grid (sample sd, or 1 for scaling none)
     seconds: float
+    repeats: str = "yes"  # whether the same data and seed give the same sample ("yes", "no", or the condition)
 
 
 def _fetch_matrix(engine: Engine, statement, d: int) -> np.ndarray:
@@ -153,7 +154,14 @@ def _fetch_matrix(engine: Engine, statement, d: int) -> np.ndarray:
 
 
 def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings: Settings) -> Profile:
-    """Row count and a bounded sample of usable rows, with its centre and scale."""
+    """Row count and a bounded sample of usable rows, with its centre and scale.
+
+    The sample follows ``settings.seed``: a seeded ``TABLESAMPLE ... REPEATABLE``
+    (DuckDB: BERNOULLI, since its SYSTEM sample changes with the threads), no
+    LIMIT in SQL, and the rows put in a fixed order before anything uses them,
+    so the same data and seed give the same grid (``sample_repeats`` says where
+    an engine cannot promise that).
+    """
     t0 = time.perf_counter()
     rows = int(engine.query(sqlgen.count_statement(source))["n"][0])
     if rows == 0:
@@ -164,18 +172,50 @@ def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings
         sample = _fetch_matrix(engine, sqlgen.sample_statement(source, columns, engine.dialect), d)
     else:
         percent = min(100.0, 150.0 * target / rows)
-        stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method="SYSTEM", limit=target)
+        first = "BERNOULLI" if engine.dialect == "duckdb" else "SYSTEM"
+        stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method=first,
+                                       limit=4 * target, seed=settings.seed)
         sample = _fetch_matrix(engine, stmt, d)
-        if len(sample) < target // 10:
-            stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method="BERNOULLI", limit=target)
+        if len(sample) < target // 10 and first != "BERNOULLI":
+            stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method="BERNOULLI",
+                                           limit=4 * target, seed=settings.seed)
             sample = _fetch_matrix(engine, stmt, d)
-    if len(sample):
-        center = sample.mean(axis=0)
-        sd = sample.std(axis=0)
-    else:
-        center, sd = np.zeros(d), np.ones(d)
+    sample = canonical_sample(sample, target, settings.seed)
+    center, sd = robust_mean_sd(sample)
     scale = np.where(sd > 0, sd, 1.0) if settings.scaling == "zscore" else np.ones(d)
-    return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0)
+    repeats = "yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.dialect)
+    return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
+
+
+def canonical_sample(sample: np.ndarray, target: int, seed: int) -> np.ndarray:
+    """The sampled rows in lexicographic order, cut to ``target`` rows by a seeded choice.
+
+    Engines return rows in any order (parallel scans), and later steps take
+    seeded subsets by position, so the order is fixed here.
+    """
+    if len(sample) == 0:
+        return sample
+    sample = sample[np.lexsort(sample.T[::-1])]
+    if len(sample) > target:
+        keep = np.sort(np.random.default_rng(seed).choice(len(sample), size=target, replace=False))
+        sample = sample[keep]
+    return sample
+
+
+def robust_mean_sd(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per-column mean and population sd that neither overflow (values near 1e152)
+    nor underflow (near 1e-300): deviations are divided by their largest size first."""
+    d = x.shape[1]
+    if len(x) == 0:
+        return np.zeros(d), np.ones(d)
+    center = x.mean(axis=0)
+    if not np.isfinite(center).all():  # the sum overflowed: average in halves
+        center = (x / 2.0).mean(axis=0) * 2.0
+    dev = x - center[None, :]
+    big = np.abs(dev).max(axis=0)
+    safe = np.where(big > 0, big, 1.0)
+    sd = np.sqrt(((dev / safe[None, :]) ** 2).mean(axis=0)) * np.where(big > 0, big, 0.0)
+    return center, sd
 
 
 def grid_axes(sample_u: np.ndarray, weights: np.ndarray, settings: Settings, usable_cols: np.ndarray) -> np.ndarray:
@@ -205,7 +245,7 @@ def grid_for_profile(prof: Profile, settings: Settings, weights: np.ndarray | No
     d = len(prof.center)
     weights = np.ones(d) if weights is None else weights
     sample_u = (prof.sample - prof.center[None, :]) / prof.scale[None, :]
-    varied = prof.sample.std(axis=0) > 0 if len(prof.sample) else np.ones(d, dtype=bool)
+    varied = np.ptp(prof.sample, axis=0) > 0 if len(prof.sample) else np.ones(d, dtype=bool)
     axes = grid_axes(sample_u, weights, settings, varied)
     width = settings.width or choose_width(sample_u @ axes, prof.rows, settings.cell_budget)
     return Grid(
@@ -213,6 +253,7 @@ def grid_for_profile(prof: Profile, settings: Settings, weights: np.ndarray | No
         inv_scale=tuple(map(float, 1.0 / prof.scale)),
         width=float(width),
         axes=tuple(tuple(map(float, r)) for r in axes),
+        sums_scaled=True,
     )
 
 
@@ -311,11 +352,14 @@ def cells_from_result(got: dict[str, np.ndarray], grid: Grid, d: int) -> tuple[C
     null = _null_mask(got[names[0]])
     skipped = int(np.asarray(got["n"], dtype=np.int64)[null].sum())
     keep = ~null
-    cells = F.affine(cf_from_result(got, d, keep), np.asarray(grid.inv_scale), np.zeros(d))
+    cells = cf_from_result(got, d, keep)
+    if not grid.sums_scaled:
+        cells = F.affine(cells, np.asarray(grid.inv_scale), np.zeros(d))
     if not keep.any():
         return cells, np.zeros((0, len(names))), skipped
     keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names])
-    return cells, keys, skipped
+    order = np.lexsort(keys.T[::-1])  # groups come back in any order; later steps pick cells by position
+    return cells[order], keys[order], skipped
 
 
 # ----------------------------------------------------------------------------- refine
@@ -418,14 +462,40 @@ def standardise_cells(
     n = float(total.n[0])
     center = grid_center + total.ls[0] / n * grid_scale
     sd = np.sqrt(F.column_scatter(total)[0] / n) * grid_scale
-    constant = ~(sd > 1e-12 * np.maximum(np.abs(center), 1.0))
+    constant = constant_columns(center, sd)
     if constant.any():
         names = ", ".join(c for c, flag in zip(columns, constant) if flag)
         warnings.warn(f"constant column(s) {names}: they carry no weight", UserWarning, stacklevel=3)
+    if not (np.where(constant, 0.0, weights) > 0).any():
+        raise InputError(nothing_to_segment_on(columns, constant, weights))
     weights = np.where(constant, 0.0, weights)
     scale = np.where(constant, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
     cells = F.affine(cells_grid, grid_scale / scale, (grid_center - center) / scale)
     return cells, Standardisation(center=center, sd=sd, scale=scale, weights=weights, constant=constant)
+
+
+#: A column is constant when its spread is within this many units of round-off of its own size.
+CONSTANT_ULPS = 4.0
+
+
+def constant_columns(center: np.ndarray, sd: np.ndarray) -> np.ndarray:
+    """True for columns whose exact spread is round-off of their own magnitude.
+
+    Relative to each column's own size only (no absolute floor), so data in
+    units of 1e-300 or shifted by 1e13 keep their spread.
+    """
+    magnitude = np.abs(center) + sd
+    return ~(sd > CONSTANT_ULPS * np.finfo(np.float64).eps * magnitude)
+
+
+def nothing_to_segment_on(columns: Sequence[str], constant: np.ndarray, weights: np.ndarray) -> str:
+    """Why every column carries weight 0."""
+    if not (weights > 0).any():
+        return "every weight is 0: at least one column needs a weight above 0"
+    zero = [c for c, w in zip(columns, weights) if not w > 0]
+    const = [c for c, flag in zip(columns, constant) if flag]
+    why = f"constant column(s) {', '.join(const)}" + (f" and weight 0 on {', '.join(zero)}" if zero else "")
+    return f"nothing to segment on: {why}; every row would fall in one segment"
 
 
 def check_k_fits(cells: CF, k: int, where: str) -> None:
@@ -679,7 +749,7 @@ def segment(
     new_id[order] = np.arange(len(order))
     model = make_model(
         columns, std, grid, ordered, settings, source, cp.usable + cp.skipped, cp.skipped,
-        cells_count(cp), extra_params={"cell_sse": phase.sse, **phase.params},
+        cells_count(cp), extra_params={"cell_sse": phase.sse, "sample_repeats": prof.repeats, **phase.params},
     )
     model.method = settings.method
     model.extras = phase.extras
