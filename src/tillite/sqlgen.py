@@ -55,7 +55,7 @@ class Source:
 
     @staticmethod
     def of_table(name: str | Sequence[str]) -> "Source":
-        parts = tuple(name.split(".")) if isinstance(name, str) else tuple(name)
+        parts = split_table_name(name) if isinstance(name, str) else tuple(name)
         if not parts or any(not p for p in parts):
             raise ValueError(f"not a table name: {name!r}")
         return Source(table=parts)
@@ -69,8 +69,8 @@ class Source:
 
     @property
     def label(self) -> str:
-        """Human-readable name for messages."""
-        return ".".join(self.table) if self.table else ", ".join(self.files)
+        """Human-readable name for messages (a part holding a dot in double quotes, as it is written)."""
+        return ".".join(quote_name_part(p) for p in self.table) if self.table else ", ".join(self.files)
 
     def relation(self) -> exp.Expression:
         """The FROM item for this source."""
@@ -82,6 +82,42 @@ class Source:
         if self.filename:
             args.append(exp.EQ(this=exp.column("filename"), expression=exp.true()))
         return exp.Table(this=exp.Anonymous(this=FILE_READERS[self.reader], expressions=args))
+
+
+def split_table_name(name: str) -> tuple[str, ...]:
+    """schema.table -> its parts; a part in double quotes may hold dots ("my.table"), and "" is a quote.
+
+    Raises ValueError for an unclosed quote.
+    """
+    parts: list[str] = []
+    current, quoted, i = "", False, 0
+    while i < len(name):
+        ch = name[i]
+        if quoted:
+            if ch == '"' and name[i + 1:i + 2] == '"':
+                current += '"'
+                i += 1
+            elif ch == '"':
+                quoted = False
+            else:
+                current += ch
+        elif ch == '"':
+            quoted = True
+        elif ch == ".":
+            parts.append(current)
+            current = ""
+        else:
+            current += ch
+        i += 1
+    if quoted:
+        raise ValueError(f"not a table name (unclosed quote): {name!r}")
+    parts.append(current)
+    return tuple(parts)
+
+
+def quote_name_part(part: str) -> str:
+    """A name part as written on the command line: in double quotes when it holds a dot or a quote."""
+    return '"' + part.replace('"', '""') + '"' if "." in part or '"' in part else part
 
 
 @dataclass(frozen=True)

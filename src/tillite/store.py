@@ -39,6 +39,7 @@ from .model import Model
 from .pipeline import (
     InputError,
     ProgressFn,
+    check_refresh_options,
     SegmentStats,
     Settings,
     _quiet,
@@ -541,6 +542,7 @@ def regrid(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segmen
     For when rows increasingly fall outside the built range (``status`` warns).
     Segment ids are matched to the current model's, and label views follow.
     """
+    check_refresh_options(new_segment_shift=new_segment_shift)
     info = load(engine, store)
     _, model = build(
         engine, info.source, info.columns, info.partition, _settings_of(info.settings), store=store,
@@ -576,6 +578,7 @@ def refresh(
     ``before_commit`` is called inside the transaction after the new cells and
     model are in place (tests use it to inject a failure).
     """
+    check_refresh_options(k=k, drift_threshold=drift_threshold, new_segment_shift=new_segment_shift)
     require_transactions(engine)
     t0 = time.perf_counter()
     info = load(engine, store)
@@ -782,6 +785,7 @@ def label(engine: Engine, store: str, into: str, materialize: bool = False, repl
 
 def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, Any]:
     """Partitions, rows, when summarised, the grid in use, and rows outside the built key range."""
+    check_refresh_options(outside_warn=outside_warn)
     info = load(engine, store)
     parts = _rows(engine.query(sqlgen.select_where(PARTS, sqlgen.equals_all({"store": store}))))
     cells_grid, keys, skipped = merged_cells(engine, info.cells_table, info.grid, len(info.columns))
