@@ -269,7 +269,9 @@ def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings
             sample = _fetch_matrix(engine, stmt, d)
     sample = canonical_sample(sample, target, settings.seed)
     center, sd = robust_mean_sd(sample)
-    scale = np.where(sd > 0, sd, 1.0) if settings.scaling == "zscore" else np.ones(d)
+    # a column equal in every sampled row has only the mean's round-off as sd (1/sd may overflow): scale 1
+    flat = np.ptp(sample, axis=0) == 0 if len(sample) else np.ones(d, dtype=bool)
+    scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
     repeats = "yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.dialect)
     return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
 
