@@ -9,7 +9,7 @@ same keys and add up.  Tables of our own naming, in the source's database:
   file size and modification time for file partitions, when summarised);
 - ``tillite_store_labels``: label views/tables to re-create after a refresh;
 - ``tillite_cells_<store>``: the cells, keyed by (part, k0..), with n, ls*, ss*
-  on the centred values v = x - grid.center.
+  on the centred values v = x - grid.center (times grid.inv_scale for grids with sums_scaled).
 
 A refresh fingerprints every partition in one aggregate pass, recomputes cells
 only for new and changed partitions (one statement restricted to them), drops
@@ -753,7 +753,10 @@ def subtract_rows(engine: Engine, store: str, part: str, rows: np.ndarray) -> in
         return 0
     keys = info.grid.keys_of(rows)
     uniq, inverse = np.unique(keys, axis=0, return_inverse=True)
-    delta = F.from_groups(rows - np.asarray(info.grid.center)[None, :], inverse.ravel(), len(uniq))
+    values = rows - np.asarray(info.grid.center)[None, :]
+    if info.grid.sums_scaled:  # the cells hold sums of (x - center) * inv_scale
+        values = values * np.asarray(info.grid.inv_scale)[None, :]
+    delta = F.from_groups(values, inverse.ravel(), len(uniq))
     names = info.grid.key_names()
     d = len(info.columns)
     with engine.transaction():
