@@ -267,7 +267,7 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
 @click.option("--into", required=True, help="View (or table) to create; for file sources, a .parquet/.csv file.")
 @click.option("--materialize", is_flag=True, help="Create a table instead of a view.")
 @click.option("--replace", is_flag=True, help="Allow replacing an existing table of that name.")
-@click.option("--quiet", "-q", is_flag=True)
+@click.option("--quiet", "-q", is_flag=True, help="No progress line on stderr.")
 def label_command(source, table, model_path, store_name, into, materialize, replace, quiet) -> None:
     """Add segment and distance to every row of SOURCE as a view, table or file.
 
@@ -334,7 +334,8 @@ def show_command(model_path, as_json) -> None:
 @click.option("--model", "-m", "model_path", help="Model file (needed for refine and label; cells then use its grid).")
 @click.option("--dialect", default="duckdb", show_default=True, callback=_check_dialect,
               help="SQL dialect to render (any sqlglot dialect name).")
-@click.option("--cell-budget", type=int, default=20_000, show_default=True)
+@click.option("--cell-budget", type=int, default=20_000, show_default=True,
+              help="About how many grid cells the cells stage aims for (without --model).")
 def sql_command(source, table, columns, stage, model_path, dialect, cell_budget) -> None:
     """Print the SQL a stage would run, without running it.
 
@@ -392,12 +393,12 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
 @main.command("demo")
 @click.option("--db", "db_path", default="tillite-demo.duckdb", show_default=True, help="Demo database file to build or reuse.")
 @click.option("--rows", type=int, default=1_000_000, show_default=True, help="Meter-day rows to generate.")
-@click.option("--days", type=int, default=60, show_default=True)
-@click.option("--seed", type=int, default=7, show_default=True)
-@click.option("--k", "-k", "k", type=int, default=5, show_default=True)
+@click.option("--days", type=int, default=60, show_default=True, help="Days of meter readings to generate.")
+@click.option("--seed", type=int, default=7, show_default=True, help="Seed of the invented data.")
+@click.option("--k", "-k", "k", type=int, default=5, show_default=True, help="Number of segments.")
 @click.option("--out", "-o", default="tillite-demo-model.json", show_default=True, help="Model file to write.")
 @click.option("--rebuild", is_flag=True, help="Regenerate the demo data even if the file exists.")
-@click.option("--quiet", "-q", is_flag=True)
+@click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
 def demo_command(db_path, rows, days, seed, k, out, rebuild, quiet) -> None:
     """Build the invented water co-operative database and segment it end to end."""
     from . import demo, report
