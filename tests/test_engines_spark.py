@@ -261,3 +261,14 @@ def test_missing_driver_names_the_extra(monkeypatch):
     monkeypatch.setitem(sys.modules, "pyspark.sql", None)
     with pytest.raises(MissingExtraError, match=r"pip install 'tillite\[spark\]'"):
         SparkEngine(master="local[1]")
+
+
+def test_two_seeded_runs_on_spark_write_the_same_model_file(sparks, data):
+    """Trust rule on Spark: the profile sample is a rand(seed) filter, repeatable for the same
+    input partitioning, and the model says so."""
+    from test_trust import comparable
+
+    for src in sources(data):
+        runs = [comparable(segment(sparks, src, COLUMNS, Settings(k=5, seed=3, sample_rows=2_000))) for _ in range(2)]
+        assert runs[0] == runs[1]
+        assert json.loads(runs[0])["params"]["sample_repeats"] == "for the same input partitioning"
