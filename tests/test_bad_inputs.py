@@ -91,6 +91,8 @@ SEGMENT_CASES = [
     (["--k", 0], ["--k", "at least 1"]),
     (["--k", -1], ["--k", "at least 1"]),
     (["--k", 3, "--weights", "a=0,b=0,c=0"], ["--weights", "0"]),
+    (["--k", 3, "--weights", "a=nan"], ["--weights", "nan"]),
+    (["--k", 3, "--weights", "a=-1"], ["--weights", "-1"]),
     (["--method", "density", "--k", 5], ["--k", "--method density"]),
     (["--method", "density", "--adjacency", "distance", "--radius", "nan"], ["--radius", "nan"]),
     (["--method", "density", "--adjacency", "distance", "--radius", 0], ["--radius"]),
@@ -243,3 +245,8 @@ def test_into_the_table_under_a_view_source_is_refused_and_the_table_kept(tmp_pa
     con = duckdb.connect(str(copy), read_only=True)
     assert con.execute("SELECT count(*) FROM points").fetchone()[0] == 900
     con.close()
+
+
+def test_second_store_build_names_the_regrid_option_not_the_python_parameter(store_db):
+    res = run("store", "build", store_db, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "-q")
+    assert_one_error_line(res, "--regrid")

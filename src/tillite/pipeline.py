@@ -161,7 +161,10 @@ class ParameterError(InputError):
         def spell(p: str) -> str:
             return names[p] if p in names or hasattr(type(names), "__missing__") else self.spelled.get(p, p)
 
-        return self.template.format(**{p: spell(p) for p in self.parameters})
+        out = self.template  # replace, not str.format: values in the message may hold braces
+        for p in self.parameters:
+            out = out.replace("{" + p + "}", spell(p))
+        return out
 
 
 def check_range(name: str, value: Any, low: float, bound: str = "min") -> None:
