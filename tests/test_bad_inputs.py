@@ -80,10 +80,11 @@ SEGMENT_CASES = [
     (["--k", 3, "--threshold", -1], ["--threshold", "-1"]),
     (["--k", 3, "--threshold", "nan"], ["--threshold", "nan"]),
     (["--k", 3, "--branching", 1], ["--branching", "at least 2"]),
-    (["--k", 3, "--leaf-capacity", 0], ["--leaf-capacity", "at least 1"]),
+    (["--k", 3, "--leaf-capacity", 0], ["--leaf-capacity", "at least 2"]),
+    (["--k", 3, "--method", "ward", "--tree-budget", 10, "--leaf-capacity", 1], ["--leaf-capacity", "at least 2"]),
     (["--k", 3, "--tolerance", "nan"], ["--tolerance", "nan"]),
     (["--k", 3, "--tolerance", -1], ["--tolerance"]),
-    (["--k", 3, "--sample-rows", 0], ["--sample-rows", "at least 1"]),
+    (["--k", 3, "--sample-rows", 0], ["--sample-rows", "at least 2"]),
     (["--k", 3, "--cell-budget", 0], ["--cell-budget"]),
     (["--k", 3, "--refine-passes", -1], ["--refine-passes"]),
     (["--k", 3, "--restarts", 0], ["--restarts"]),
@@ -93,6 +94,7 @@ SEGMENT_CASES = [
     (["--k", 3, "--weights", "a=0,b=0,c=0"], ["--weights", "0"]),
     (["--k", 3, "--weights", "a=nan"], ["--weights", "nan"]),
     (["--k", 3, "--weights", "a=-1"], ["--weights", "-1"]),
+    (["--k", 3, "--weights", "a=1e300"], ["--weights", "1e+300"]),
     (["--method", "density", "--k", 5], ["--k", "--method density"]),
     (["--method", "density", "--adjacency", "distance", "--radius", "nan"], ["--radius", "nan"]),
     (["--method", "density", "--adjacency", "distance", "--radius", 0], ["--radius"]),
@@ -250,3 +252,12 @@ def test_into_the_table_under_a_view_source_is_refused_and_the_table_kept(tmp_pa
 def test_second_store_build_names_the_regrid_option_not_the_python_parameter(store_db):
     res = run("store", "build", store_db, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "-q")
     assert_one_error_line(res, "--regrid")
+
+
+@pytest.mark.parametrize("into", ["", "a..b", "s."])
+def test_empty_into_name_is_a_usage_error(db, model, into):
+    assert_one_error_line(run("label", db, "-t", "points", "-m", model, "--into", into), "--into", code=2)
+
+
+def test_sql_cells_stage_refuses_a_cell_budget_below_one(db):
+    assert_one_error_line(run("sql", db, "-t", "points", "-c", "a,b", "--stage", "cells", "--cell-budget", 0), "--cell-budget")

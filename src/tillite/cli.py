@@ -275,6 +275,7 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
     """
     if bool(model_path) == bool(store_name):
         raise click.UsageError("give exactly one of --model and --store")
+    _check_into(into)
     with user_errors():
         if store_name:
             from . import store as store_api
@@ -297,6 +298,18 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
             engine.close()
         _progress(quiet)("label", f"{made} from {src.label}, {time.perf_counter() - t0:.2f} s")
         click.echo(made)
+
+
+def _check_into(into: str) -> None:
+    """--into must be a name (schema.name) or a file path; an empty part is a usage error."""
+    if "/" in into or "\\" in into or into.lower().endswith((".parquet", ".csv")):
+        return
+    try:
+        parts = sqlgen.split_table_name(into)
+    except ValueError as err:
+        raise click.BadParameter(str(err), param_hint="--into") from None
+    if not all(p.strip() for p in parts):
+        raise click.BadParameter(f"not a view or table name: {into!r}", param_hint="--into")
 
 
 def _label_explained(engine, src, model, into: str, materialize: bool, replace: bool) -> str:
@@ -381,6 +394,7 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
             grid = sqlgen.Grid.from_dict(model.grid)
         else:
             settings = Settings(k=1, cell_budget=cell_budget)
+            settings.check(cols)
             grid = grid_for_profile(run_profile(engine, src, cols, settings), settings)
         return [sqlgen.cells_statement(src, cols, grid, dialect)]
     if model is None:

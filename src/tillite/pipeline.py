@@ -103,9 +103,9 @@ class Settings:
         unknown = [c for c in self.weights if c not in columns]
         if unknown:
             raise ParameterError(f"{{weights}} name columns not chosen for segmenting: {', '.join(unknown)}", "weights")
-        bad = {c: w for c, w in self.weights.items() if not (math.isfinite(w) and w >= 0)}
+        bad = {c: w for c, w in self.weights.items() if not (math.isfinite(w) and 0 <= w <= MAX_WEIGHT)}
         if bad:
-            raise ParameterError(f"{{weights}} must be finite and >= 0: {bad}", "weights")
+            raise ParameterError(f"{{weights}} must be numbers from 0 to {MAX_WEIGHT:g}: {bad}", "weights")
         if columns and not (self.column_weights(columns) > 0).any():
             raise ParameterError("every {weights} value is 0: at least one column needs a weight above 0", "weights")
 
@@ -127,17 +127,20 @@ SETTING_RANGES: tuple[tuple[str, float, str], ...] = (
     ("tolerance", 0, "min"),
     ("n_init", 1, "min"),
     ("seed", 0, "min"),
-    ("sample_rows", 1, "min"),
+    ("sample_rows", 2, "min"),
     ("principal_above", 1, "min"),
     ("principal_axes", 1, "min"),
     ("width", 0, "above"),
     ("tree_budget", 0, "min"),
     ("threshold", 0, "min"),
     ("branching", 2, "min"),
-    ("leaf_capacity", 1, "min"),
+    ("leaf_capacity", 2, "min"),
     ("min_count", 0, "min"),
     ("radius", 0, "above"),
 )
+
+#: Largest column weight: squared weights go into the SQL and must stay far from overflow.
+MAX_WEIGHT = 1e6
 
 #: Seeds are passed to every engine's sampler: keep them in a 32-bit signed range.
 MAX_SEED = 2**31 - 1
@@ -380,7 +383,7 @@ def choose_width(coords: np.ndarray, rows: int, budget: int) -> float:
     if len(coords) > WIDTH_SEARCH_ROWS:
         coords = coords[np.random.default_rng(3).permutation(len(coords))[:WIDTH_SEARCH_ROWS]]
     m = len(coords)
-    growth = math.log(rows / m) if rows > m else 0.0
+    growth = math.log(rows / m) if rows > m and m >= 4 else 0.0  # a quarter of fewer than 4 rows shows no growth
     quarter = np.random.default_rng(7).permutation(m)[: max(m // 4, 1)]
     mix = np.random.default_rng(12345).integers(1, 2**62, size=coords.shape[1]) | 1
 
