@@ -63,7 +63,7 @@ def main() -> None:
         "SELECT water_segment(litres, night_share, peak_litres, flow_run_hours, zero_hours) AS segment, count(*) AS n "
         "FROM meter_days GROUP BY ALL ORDER BY segment NULLS LAST"
     ).fetchall()
-    print("   " + ", ".join(f"segment {s}: {n:,}" for s, n in rows))
+    print("   " + ", ".join(f"segment {s}: {n:,}" if s is not None else f"skipped (a NULL value): {n:,}" for s, n in rows))
     engine.close()
     print(f"\nall of it is in {db}; open it with any DuckDB client.")
 

@@ -288,3 +288,29 @@ def test_cli_sql_prints_every_stage_in_every_dialect(tmp_path, dialect):
         statements = [s for s in done.output.split(";\n") if s.strip()]
         # reference: sqlglot's parser for the dialect
         assert statements and all(sqlglot.parse_one(s, read=dialect) is not None for s in statements), stage
+
+
+def test_seeded_profile_sample_repeats_in_each_engines_own_form():
+    src = Source.of_table("t")
+
+    def sample(dialect: str, method: str) -> str:
+        return sqlgen.render(sqlgen.sample_statement(src, ["a"], dialect, percent=1.5, method=method, seed=42), dialect)
+
+    # reference: the engines' documented grammars (DuckDB and PostgreSQL: TABLESAMPLE ... REPEATABLE (seed);
+    # Spark SQL's REPEATABLE is not what sqlglot renders, so a rand(seed) filter, seeded per partition)
+    assert "TABLESAMPLE BERNOULLI (1.5e+00 PERCENT) REPEATABLE (42)" in sample("duckdb", "BERNOULLI")
+    assert "TABLESAMPLE SYSTEM (1.5e+00) REPEATABLE (42)" in sample("postgres", "SYSTEM")
+    spark = sample("spark", "SYSTEM")
+    assert "TABLESAMPLE" not in spark and "RAND(42) < 1.5e-02" in spark
+    assert "42" not in sample("trino", "BERNOULLI")  # no seed where the engine cannot repeat a sample
+    assert sqlgen.sample_repeats("duckdb") == sqlgen.sample_repeats("postgres") == "yes"
+    assert sqlgen.sample_repeats("trino") == "no"
+    for dialect in ("duckdb", "postgres", "spark"):
+        sqlglot.parse_one(sample(dialect, "BERNOULLI"), read=dialect)
+
+
+def test_duckdb_float_sums_are_compensated_and_others_plain():
+    grid = GRID
+    duck = sqlgen.render(sqlgen.cells_statement(Source.of_table("t"), NAMES, grid, "duckdb"), "duckdb")
+    pg = sqlgen.render(sqlgen.cells_statement(Source.of_table("t"), NAMES, grid, "postgres"), "postgres")
+    assert "FSUM(" in duck and "FSUM(" not in pg and "SUM(" in pg

@@ -284,3 +284,14 @@ def test_labels_carry_tillites_mark_and_a_users_view_or_table_is_refused(server,
     finally:
         pg.close()
         duck.close()
+@pytest.mark.parametrize("method", ["kmeans", "ward", "density"])
+def test_three_runs_on_postgres_with_one_seed_write_the_same_model_file(engines, method):
+    """Trust rule: same data, options and seed give the same model file apart from timings,
+    with the profile sampled (TABLESAMPLE ... REPEATABLE (seed)), not read whole."""
+    from test_trust import comparable
+
+    pg, _ = engines
+    settings = dict(kmeans=dict(k=5), ward=dict(k=5, method="ward"), density=dict(k=0, method="density"))[method]
+    runs = [comparable(segment(pg, SRC, COLUMNS, Settings(**settings, seed=3, sample_rows=2_000))) for _ in range(3)]
+    assert runs[0] == runs[1] == runs[2]
+    assert json.loads(runs[0])["params"]["sample_repeats"] == "yes"

@@ -284,3 +284,12 @@ def test_labels_carry_tillites_mark_in_sparks_catalog_and_a_users_view_is_refuse
     with pytest.raises(InputError, match="not made by tillite"):
         label(sparks, Source.of_table("points_temp"), model, "temp_marked")
     label(sparks, Source.of_table("points_temp"), model, "temp_marked", replace=True)
+def test_two_seeded_runs_on_spark_write_the_same_model_file(sparks, data):
+    """Trust rule on Spark: the profile sample is a rand(seed) filter, repeatable for the same
+    input partitioning, and the model says so."""
+    from test_trust import comparable
+
+    for src in sources(data):
+        runs = [comparable(segment(sparks, src, COLUMNS, Settings(k=5, seed=3, sample_rows=2_000))) for _ in range(2)]
+        assert runs[0] == runs[1]
+        assert json.loads(runs[0])["params"]["sample_repeats"] == "for the same input partitioning"

@@ -16,4 +16,5 @@ def test_water_cooperative_walkthrough_runs_end_to_end(tmp_path):
     )
     assert res.returncode == 0, res.stderr
     assert "1 changed" in res.stdout and "segment 0:" in res.stdout
+    assert "None" not in res.stdout and "=True" not in res.stdout  # Python wording never reaches the reader
     assert (tmp_path / "saltmere.duckdb").exists()

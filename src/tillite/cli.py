@@ -15,7 +15,7 @@ import click
 from . import __version__, sqlgen
 from .engines import TilliteError, open_source
 from .model import Model
-from .pipeline import Settings, label, run_profile, segment
+from .pipeline import ParameterError, Settings, label, run_profile, segment
 
 STAGES = ("profile", "cells", "refine", "label")
 
@@ -42,6 +42,27 @@ def _parse_weights(text: str | None) -> dict[str, float]:
     return out
 
 
+#: API parameter -> CLI option, where the option is not just the parameter with dashes.
+OPTION_NAMES = {"n_init": "--restarts", "drift_threshold": "--drift-warn", "replace": "--replace"}
+
+
+class _OptionNames(dict):
+    """--option spelling of any API parameter."""
+
+    def __missing__(self, key: str) -> str:
+        return OPTION_NAMES.get(key, "--" + key.replace("_", "-"))
+
+
+def cli_message(err: Exception) -> str:
+    """One line for the terminal: parameters spelled as options, API spellings such as
+    ``replace=True (--replace)`` reduced to the option."""
+    import re
+
+    text = err.text(_OptionNames()) if isinstance(err, ParameterError) else str(err)
+    text = re.sub(r"\b\w+=(True|False) \((--[\w-]+)\)", r"\2", text)
+    return " ".join(text.split()) if "\n" in text.strip() else text
+
+
 @contextmanager
 def user_errors(quiet: bool = False) -> Iterator[None]:
     """Turn our errors, and the database's, into clean messages and warnings into stderr lines."""
@@ -52,7 +73,7 @@ def user_errors(quiet: bool = False) -> Iterator[None]:
         try:
             yield
         except TilliteError as err:
-            raise click.ClickException(str(err)) from None
+            raise click.ClickException(cli_message(err)) from None
         except duckdb.Error as err:
             # e.g. a schema that does not exist, a locked file, a malformed CSV:
             # the database's own first line says what is at fault
@@ -172,7 +193,9 @@ def _settings_options(f):
         click.option("--refine-passes", type=int, default=3, show_default=True, help="Most refine passes over the rows (0 for none)."),
         click.option("--tolerance", type=float, default=1e-4, show_default=True, help="Stop refining when a pass improves SSE by less than this share."),
         click.option("--restarts", type=int, default=10, show_default=True, help="k-means++ restarts on the cells."),
-        click.option("--seed", type=int, default=0, show_default=True),
+        click.option("--seed", type=int, default=0, show_default=True,
+                     help="Seed of the profile sample, k-means++ and the CF tree (0 to 2147483647); the same data, "
+                          "options and seed give the same model."),
         click.option("--sample-rows", type=int, default=50_000, show_default=True, help="Rows the profile sample aims for."),
         click.option("--tree-budget", type=int, default=None,
                      help="Condense the cells with a CF tree when there are more than this (default: the cell budget; 0: never)."),
@@ -198,7 +221,7 @@ def _settings(k, method, k_rule, scaling, weights, cell_budget, width, refine_pa
               tree_budget, threshold, branching, leaf_capacity, criterion, keep_outliers, min_count, adjacency, radius,
               noise) -> Settings:
     k_value, candidates = _parse_k(k)
-    if method != "density" and not k_value and not candidates:
+    if method != "density" and k is None:
         raise click.UsageError("give --k (a number, 'auto' or a range like 2..12)")
     return Settings(
         k=k_value, scaling=scaling, weights=_parse_weights(weights), cell_budget=cell_budget, width=width,
@@ -254,7 +277,7 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
 @click.option("--materialize", is_flag=True, help="Create a table instead of a view.")
 @click.option("--replace", is_flag=True, help="Allow replacing an existing table of that name, or a view or table "
               "tillite did not make (a view tillite made is replaced without it).")
-@click.option("--quiet", "-q", is_flag=True)
+@click.option("--quiet", "-q", is_flag=True, help="No progress line on stderr.")
 def label_command(source, table, model_path, store_name, into, materialize, replace, quiet) -> None:
     """Add segment and distance to every row of SOURCE as a view, table or file.
 
@@ -262,6 +285,7 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
     """
     if bool(model_path) == bool(store_name):
         raise click.UsageError("give exactly one of --model and --store")
+    _check_into(into)
     with user_errors():
         if store_name:
             from . import store as store_api
@@ -279,11 +303,40 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
         engine, src = _open(source, table, writable=True)
         t0 = time.perf_counter()
         try:
-            made = label(engine, src, model, into, materialize=materialize, replace=replace)
+            made = _label_explained(engine, src, model, into, materialize, replace)
         finally:
             engine.close()
         _progress(quiet)("label", f"{made} from {src.label}, {time.perf_counter() - t0:.2f} s")
         click.echo(made)
+
+
+def _check_into(into: str) -> None:
+    """--into must be a name (schema.name) or a file path; an empty part is a usage error."""
+    if "/" in into or "\\" in into or into.lower().endswith((".parquet", ".csv")):
+        return
+    try:
+        parts = sqlgen.split_table_name(into)
+    except ValueError as err:
+        raise click.BadParameter(str(err), param_hint="--into") from None
+    if not all(p.strip() for p in parts):
+        raise click.BadParameter(f"not a view or table name: {into!r}", param_hint="--into")
+
+
+def _label_explained(engine, src, model, into: str, materialize: bool, replace: bool) -> str:
+    """label(), with a database error while replacing an object the source reads through a view
+    said as such (the transaction has rolled back: nothing changed)."""
+    import duckdb
+
+    existed = engine.relation_kind(into) if not src.files else None
+    try:
+        return label(engine, src, model, into, materialize=materialize, replace=replace)
+    except duckdb.Error as err:
+        if existed and engine.relation_kind(src.label) == "view":
+            raise click.ClickException(
+                f"--into {into} cannot replace the {existed} {into}: the source {src.label} is a view that reads it; "
+                f"nothing was changed (choose another --into)"
+            ) from None
+        raise
 
 
 @main.command("show")
@@ -304,7 +357,8 @@ def show_command(model_path, as_json) -> None:
 @click.option("--model", "-m", "model_path", help="Model file (needed for refine and label; cells then use its grid).")
 @click.option("--dialect", default="duckdb", show_default=True, callback=_check_dialect,
               help="SQL dialect to render (any sqlglot dialect name).")
-@click.option("--cell-budget", type=int, default=20_000, show_default=True)
+@click.option("--cell-budget", type=int, default=20_000, show_default=True,
+              help="About how many grid cells the cells stage aims for (without --model).")
 def sql_command(source, table, columns, stage, model_path, dialect, cell_budget) -> None:
     """Print the SQL a stage would run, without running it.
 
@@ -322,7 +376,11 @@ def sql_command(source, table, columns, stage, model_path, dialect, cell_budget)
                 raise click.UsageError("without SOURCE, give --table (the statements are only printed)")
             if stage != "profile" and model is None:
                 raise click.UsageError(f"without SOURCE, --stage {stage} needs --model (its grid and centroids)")
-            statements = _stage_statements(None, sqlgen.Source.of_table(table), cols, cols, stage, model, dialect, cell_budget)
+            try:
+                src = sqlgen.Source.of_table(table)
+            except ValueError as err:
+                raise click.BadParameter(str(err), param_hint="--table") from None
+            statements = _stage_statements(None, src, cols, cols, stage, model, dialect, cell_budget)
         else:
             engine, src = _open(source, table)
             try:
@@ -346,6 +404,7 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
             grid = sqlgen.Grid.from_dict(model.grid)
         else:
             settings = Settings(k=1, cell_budget=cell_budget)
+            settings.check(cols)
             grid = grid_for_profile(run_profile(engine, src, cols, settings), settings)
         return [sqlgen.cells_statement(src, cols, grid, dialect)]
     if model is None:
@@ -358,15 +417,15 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
 @main.command("demo")
 @click.option("--db", "db_path", default="tillite-demo.duckdb", show_default=True, help="Demo database file to build or reuse.")
 @click.option("--rows", type=int, default=1_000_000, show_default=True, help="Meter-day rows to generate.")
-@click.option("--days", type=int, default=60, show_default=True)
-@click.option("--seed", type=int, default=7, show_default=True)
-@click.option("--k", "-k", "k", type=int, default=5, show_default=True)
+@click.option("--days", type=int, default=60, show_default=True, help="Days of meter readings to generate.")
+@click.option("--seed", type=int, default=7, show_default=True, help="Seed of the invented data.")
+@click.option("--k", "-k", "k", type=int, default=5, show_default=True, help="Number of segments.")
 @click.option("--out", "-o", default="tillite-demo-model.json", show_default=True, help="Model file to write.")
 @click.option("--rebuild", is_flag=True, help="Regenerate the demo data even if the file exists.")
 @click.option("--report", "report_path", default=None,
               help="Report page to write (segments by district; see `tillite report`) "
                    "[default: tillite-demo-report.html beside the database].")
-@click.option("--quiet", "-q", is_flag=True)
+@click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
 def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet) -> None:
     """Build the invented water co-operative database and segment it end to end."""
     from . import demo, report

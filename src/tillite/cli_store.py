@@ -38,7 +38,8 @@ def store_group() -> None:
               help="Row-level refine passes at build and refresh (each scans every partition; 0 keeps refresh cost "
                    "proportional to changed partitions).")
 @click.option("--restarts", type=int, default=10, show_default=True)
-@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--seed", type=int, default=0, show_default=True,
+              help="Seed of the profile sample and k-means++ (0 to 2147483647).")
 @click.option("--regrid", is_flag=True, help="Replace an existing store of that name, with a new grid.")
 @click.option("--out", "-o", help="Also write the model file here.")
 @click.option("--quiet", "-q", is_flag=True)

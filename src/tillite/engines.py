@@ -197,7 +197,8 @@ class DuckDBEngine(StatementRunner):
 
     def tables(self) -> list[str]:
         got = self.query(sqlgen.list_tables_statement())
-        return [f"{s}.{t}" if s not in ("main",) else str(t) for s, t in zip(got["table_schema"], got["table_name"])]
+        names = [(str(s), str(t)) for s, t in zip(got["table_schema"], got["table_name"])]
+        return [sqlgen.quote_name_part(t) if s == "main" else f"{sqlgen.quote_name_part(s)}.{sqlgen.quote_name_part(t)}" for s, t in names]
 
     def relation_kind(self, name: str) -> str | None:
         """Through information_schema, case-insensitively as DuckDB resolves names."""
@@ -207,6 +208,10 @@ class DuckDBEngine(StatementRunner):
         existing = self.tables()
         where = f" in {self.path}" if self.path != ":memory:" else ""
         listing = ", ".join(existing) if existing else "(none)"
+        dotted = ".".join(source.table)
+        if len(source.table) > 1 and sqlgen.quote_name_part(dotted) in existing:
+            return (f"table {source.label} not found{where} (read as schema {source.table[0]}); "
+                    f"a name holding a dot is written in double quotes: '{sqlgen.quote_name_part(dotted)}'")
         return f"table {source.label} not found{where}; tables there: {listing}"
 
     def close(self) -> None:

@@ -8,6 +8,7 @@ are measured in (``centroids_scaled``), so labelling needs nothing else.
 from __future__ import annotations
 
 import json
+import math
 import os
 import tempfile
 from dataclasses import MISSING, asdict, dataclass, field
@@ -145,6 +146,7 @@ class Model:
         if missing:
             raise ModelError(f"{where} lacks {', '.join(missing)}")
         _check_shapes(body, where)
+        _check_values(body, where)
         return Model(**{k: v for k, v in body.items() if k in known})
 
     @staticmethod
@@ -230,7 +232,7 @@ class Model:
             f"source: {self.source}",
             f"method: {self.method}, k={self.k}, scaling={self.scaling}",
             f"rows: {self.rows:,} ({self.skipped:,} skipped for NULL/NaN/Inf), segmented: {self.usable:,}",
-            f"SSE (row level, scaled units): {self.sse:.6g}",
+            f"SSE (row level, {self.units()}): {self.sse:.6g}",
         ]
         if self.constant_columns:
             lines.append(f"constant columns (no weight): {', '.join(self.constant_columns)}")
@@ -250,9 +252,28 @@ class Model:
         lines.append("  ".join(h.rjust(w) for h, w in zip(head, widths)))
         lines.extend("  ".join(v.rjust(w) for v, w in zip(r, widths)) for r in rows)
         lines.append("")
-        lines.append("centroids in original units; radius and SSE in scaled units")
+        lines.append(f"centroids in original units; radius and SSE in {self.units()}")
+        left_out = self._rows_outside_segments()
+        if left_out:
+            lines.append(f"shares are of the {self.usable:,} rows in segments; {left_out} are not counted in them")
         lines.extend(self._name_lines())
         return "\n".join(lines)
+
+    def units(self) -> str:
+        """What distances are measured in: standard deviations or the columns' own units, maybe weighted."""
+        base = "scaled units (standard deviations)" if self.scaling == "zscore" else "original units"
+        return base + (", weighted" if any(w not in (0, 1) for w in self.weights) else "")
+
+    def _rows_outside_segments(self) -> str:
+        """Rows segmented but in no segment: density noise with noise drop, or the outlier group."""
+        parts = []
+        noise = self.extras.get("noise_rows", 0) if self.params.get("noise") == "drop" else 0
+        if noise:
+            parts.append(f"{noise:,} noise rows (segment -1)")
+        outliers = (self.extras.get("outliers") or {}).get("rows", 0)
+        if outliers:
+            parts.append(f"{outliers:,} outlier-group rows (segment -1)")
+        return " and ".join(parts)
 
     # ------------------------------------------------------------ names and descriptions
 
@@ -299,6 +320,44 @@ def _check_shapes(body: dict[str, Any], where: str) -> None:
     ]
     if problems:
         raise ModelError(f"{where} is damaged: {problems[0]}")
+
+
+def _finite_numbers(values: Any) -> bool:
+    """True when values (a number or nested lists of them) are all finite numbers."""
+    if isinstance(values, list):
+        return all(_finite_numbers(v) for v in values)
+    return isinstance(values, (int, float)) and not isinstance(values, bool) and math.isfinite(values)
+
+
+def _check_values(body: dict[str, Any], where: str) -> None:
+    """Values that would make labels wrong or a later step fail: NaN, zero scales, ids that merge segments."""
+    for name in ("center", "scale", "weights", "centroids", "centroids_scaled", "sizes"):
+        if not _finite_numbers(body[name]):
+            raise ModelError(f"{where} is damaged: {name} holds a value that is not a finite number")
+    if any(v <= 0 for v in body["scale"]):
+        raise ModelError(f"{where} is damaged: scale holds {min(body['scale'])}; every scale must be above 0")
+    if any(v < 0 for v in body["weights"]):
+        raise ModelError(f"{where} is damaged: weights must be 0 or more")
+    if any(v < 0 for v in body["sizes"]):
+        raise ModelError(f"{where} is damaged: sizes must be 0 or more")
+    k = len(body["sizes"])
+    if body["k"] != k:
+        raise ModelError(f"{where} is damaged: k is {body['k']!r} but it describes {k} segments")
+    ids = body.get("ids") or []
+    if ids:
+        if len(ids) != k or not all(isinstance(i, int) and not isinstance(i, bool) for i in ids):
+            raise ModelError(f"{where} is damaged: ids should be {k} whole numbers, one per segment")
+        if len(set(ids)) != len(ids):
+            dup = sorted({i for i in ids if ids.count(i) > 1})
+            raise ModelError(f"{where} is damaged: segment id(s) {dup} appear more than once (their rows would merge)")
+    grid = body.get("grid") or {}
+    if grid:
+        width = grid.get("width")
+        if not (_finite_numbers(width) and width > 0) or not _finite_numbers(grid.get("inv_scale", [])) \
+                or not _finite_numbers(grid.get("center", [])):
+            raise ModelError(f"{where} is damaged: its grid needs a width above 0 and finite centre and scale")
+    if body.get("method", "kmeans") not in ("kmeans", "ward", "density") or body.get("scaling") not in ("zscore", "none"):
+        raise ModelError(f"{where} is damaged: method {body.get('method')!r} or scaling {body.get('scaling')!r} is not one of ours")
 
 
 def _fmt(v: float) -> str:

@@ -42,6 +42,7 @@ __all__ = [
     "grid_for_profile",
     "ProgressFn",
     "InputError",
+    "ParameterError",
 ]
 
 ProgressFn = Callable[[str, str], None]
@@ -86,26 +87,112 @@ class Settings:
         return np.array([float(self.weights.get(c, 1.0)) for c in columns])
 
     def check(self, columns: Sequence[str]) -> None:
-        if self.method not in ("kmeans", "ward", "density"):
-            raise InputError(f"method must be kmeans, ward or density, got {self.method!r}")
+        """Refuse values no run can use, naming the parameter (the CLI names the option)."""
+        for name, choices in SETTING_CHOICES.items():
+            if getattr(self, name) not in choices:
+                raise ParameterError(f"{{{name}}} must be one of {', '.join(choices)}, got {getattr(self, name)!r}", name)
+        if self.method == "density" and (self.k or self.k_candidates):
+            raise ParameterError("{k} is not used by {method} density, which finds the number of segments itself; "
+                                 "leave {k} out", "k", "method")
         if any(c < 1 for c in self.k_candidates):
-            raise InputError(f"k candidates must be at least 1, got {list(self.k_candidates)}")
+            raise ParameterError(f"{{k}} candidates must be at least 1, got {list(self.k_candidates)}", "k")
         if not self.k_candidates and self.method != "density" and self.k < 1:
-            raise InputError(f"k must be at least 1, got {self.k}")
-        if self.noise not in ("attach", "drop") or self.adjacency not in ("face", "distance") or self.criterion not in ("diameter", "radius"):
-            raise InputError("noise must be attach/drop, adjacency face/distance, criterion diameter/radius")
-        if self.scaling not in ("zscore", "none"):
-            raise InputError(f"scaling must be 'zscore' or 'none', got {self.scaling!r}")
+            raise ParameterError(f"{{k}} must be at least 1, got {self.k}", "k")
+        for name, low, bound in SETTING_RANGES:
+            check_range(name, getattr(self, name), low, bound)
         unknown = [c for c in self.weights if c not in columns]
         if unknown:
-            raise InputError(f"weights name columns not chosen for segmenting: {', '.join(unknown)}")
-        bad = {c: w for c, w in self.weights.items() if not (math.isfinite(w) and w >= 0)}
+            raise ParameterError(f"{{weights}} name columns not chosen for segmenting: {', '.join(unknown)}", "weights")
+        bad = {c: w for c, w in self.weights.items() if not (math.isfinite(w) and 0 <= w <= MAX_WEIGHT)}
         if bad:
-            raise InputError(f"weights must be finite and >= 0: {bad}")
-        if self.cell_budget < 1 or self.refine_passes < 0 or self.tolerance < 0 or self.n_init < 1:
-            raise InputError("cell budget, refine passes, tolerance and restarts must be positive")
-        if self.width is not None and not (self.width > 0 and math.isfinite(self.width)):
-            raise InputError(f"grid width must be positive, got {self.width}")
+            raise ParameterError(f"{{weights}} must be numbers from 0 to {MAX_WEIGHT:g}: {bad}", "weights")
+        if columns and not (self.column_weights(columns) > 0).any():
+            raise ParameterError("every {weights} value is 0: at least one column needs a weight above 0", "weights")
+
+
+#: Parameters with a fixed set of values.
+SETTING_CHOICES: dict[str, tuple[str, ...]] = {
+    "method": ("kmeans", "ward", "density"),
+    "scaling": ("zscore", "none"),
+    "k_rule": ("calinski_harabasz", "bic"),
+    "criterion": ("diameter", "radius"),
+    "adjacency": ("face", "distance"),
+    "noise": ("attach", "drop"),
+}
+
+#: (parameter, lowest value, "min" (inclusive) or "above" (exclusive)); None values are left alone.
+SETTING_RANGES: tuple[tuple[str, float, str], ...] = (
+    ("cell_budget", 1, "min"),
+    ("refine_passes", 0, "min"),
+    ("tolerance", 0, "min"),
+    ("n_init", 1, "min"),
+    ("seed", 0, "min"),
+    ("sample_rows", 2, "min"),
+    ("principal_above", 1, "min"),
+    ("principal_axes", 1, "min"),
+    ("width", 0, "above"),
+    ("tree_budget", 0, "min"),
+    ("threshold", 0, "min"),
+    ("branching", 2, "min"),
+    ("leaf_capacity", 2, "min"),
+    ("min_count", 0, "min"),
+    ("radius", 0, "above"),
+)
+
+#: Largest column weight: squared weights go into the SQL and must stay far from overflow.
+MAX_WEIGHT = 1e6
+
+#: Seeds are passed to every engine's sampler: keep them in a 32-bit signed range.
+MAX_SEED = 2**31 - 1
+
+
+class ParameterError(InputError):
+    """A parameter value no run can use.
+
+    The message is a template: ``{name}`` stands for the parameter, spelled as
+    the API names it (``str(err)``) or as the CLI names its option (``err.text(names)``).
+    """
+
+    def __init__(self, template: str, *parameters: str, spelled: dict[str, str] | None = None) -> None:
+        self.template = template
+        self.parameters = parameters
+        self.spelled = spelled or {}
+        super().__init__(self.text({}))
+
+    def text(self, names: dict[str, str]) -> str:
+        """The message with each parameter spelled by ``names`` (else as the API spells it)."""
+        def spell(p: str) -> str:
+            return names[p] if p in names or hasattr(type(names), "__missing__") else self.spelled.get(p, p)
+
+        out = self.template  # replace, not str.format: values in the message may hold braces
+        for p in self.parameters:
+            out = out.replace("{" + p + "}", spell(p))
+        return out
+
+
+def check_range(name: str, value: Any, low: float, bound: str = "min") -> None:
+    """A finite number at or above ``low`` ("min") or above it ("above"); None passes."""
+    if value is None:
+        return
+    ok = isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool) and math.isfinite(value)
+    ok = ok and (value >= low if bound == "min" else value > low)
+    if name == "seed" and ok:
+        ok = value <= MAX_SEED
+    if not ok:
+        if name == "seed":
+            want = f"a whole number from 0 to {MAX_SEED}"
+        else:
+            want = f"a number {'at least' if bound == 'min' else 'above'} {low:g}"
+        raise ParameterError(f"{{{name}}} must be {want}, got {value!r}", name)
+
+
+def check_refresh_options(k: int | None = None, drift_threshold: float | None = None,
+                          new_segment_shift: float | None = None, outside_warn: float | None = None) -> None:
+    """The options of a store refresh, regrid or status, checked before any work (None: not given)."""
+    check_range("k", k, 1)
+    check_range("drift_threshold", drift_threshold, 0)
+    check_range("new_segment_shift", new_segment_shift, 0, "above")
+    check_range("outside_warn", outside_warn, 0)
 
 
 def _quiet(stage: str, message: str) -> None:
@@ -129,9 +216,15 @@ def check_columns(engine: Engine, source: Source, columns: Sequence[str]) -> lis
         listing = ", ".join(f"{n} ({t})" for n, t in described)
         raise SourceError(f"column {', '.join(missing)} not found in {source.label}; columns there: {listing}")
     for c in columns:
+        if not is_numeric_type(types[c]) and source.files and not engine_has_rows(engine, source):
+            raise InputError(f"{source.label} has no rows (a header only?)")
         if not is_numeric_type(types[c]):
             raise SourceError(f"column {c} of {source.label} has type {types[c]}, not a number; choose numeric columns")
     return [n for n, _ in described]
+
+
+def engine_has_rows(engine: Engine, source: Source) -> bool:
+    return int(engine.query(sqlgen.count_statement(source))["n"][0]) > 0
 
 
 # ----------------------------------------------------------------------------- profile
@@ -144,6 +237,7 @@ class Profile:
     center: np.ndarray
     scale: np.ndarray  # of the grid (sample sd, or 1 for scaling none)
     seconds: float
+    repeats: str = "yes"  # whether the same data and seed give the same sample ("yes", "no", or the condition)
 
 
 def _fetch_matrix(engine: Engine, statement, d: int) -> np.ndarray:
@@ -153,7 +247,14 @@ def _fetch_matrix(engine: Engine, statement, d: int) -> np.ndarray:
 
 
 def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings: Settings) -> Profile:
-    """Row count and a bounded sample of usable rows, with its centre and scale."""
+    """Row count and a bounded sample of usable rows, with its centre and scale.
+
+    The sample follows ``settings.seed``: a seeded ``TABLESAMPLE ... REPEATABLE``
+    (DuckDB: BERNOULLI, since its SYSTEM sample changes with the threads), no
+    LIMIT in SQL, and the rows put in a fixed order before anything uses them,
+    so the same data and seed give the same grid (``sample_repeats`` says where
+    an engine cannot promise that).
+    """
     t0 = time.perf_counter()
     rows = int(engine.query(sqlgen.count_statement(source))["n"][0])
     if rows == 0:
@@ -164,18 +265,52 @@ def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings
         sample = _fetch_matrix(engine, sqlgen.sample_statement(source, columns, engine.dialect), d)
     else:
         percent = min(100.0, 150.0 * target / rows)
-        stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method="SYSTEM", limit=target)
+        first = "BERNOULLI" if engine.dialect == "duckdb" else "SYSTEM"
+        stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method=first,
+                                       limit=4 * target, seed=settings.seed)
         sample = _fetch_matrix(engine, stmt, d)
-        if len(sample) < target // 10:
-            stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method="BERNOULLI", limit=target)
+        if len(sample) < target // 10 and first != "BERNOULLI":
+            stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method="BERNOULLI",
+                                           limit=4 * target, seed=settings.seed)
             sample = _fetch_matrix(engine, stmt, d)
-    if len(sample):
-        center = sample.mean(axis=0)
-        sd = sample.std(axis=0)
-    else:
-        center, sd = np.zeros(d), np.ones(d)
-    scale = np.where(sd > 0, sd, 1.0) if settings.scaling == "zscore" else np.ones(d)
-    return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0)
+    sample = canonical_sample(sample, target, settings.seed)
+    center, sd = robust_mean_sd(sample)
+    # a column equal in every sampled row has only the mean's round-off as sd (1/sd may overflow): scale 1
+    flat = np.ptp(sample, axis=0) == 0 if len(sample) else np.ones(d, dtype=bool)
+    scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
+    repeats = "yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.dialect)
+    return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
+
+
+def canonical_sample(sample: np.ndarray, target: int, seed: int) -> np.ndarray:
+    """The sampled rows in lexicographic order, cut to ``target`` rows by a seeded choice.
+
+    Engines return rows in any order (parallel scans), and later steps take
+    seeded subsets by position, so the order is fixed here.
+    """
+    if len(sample) == 0:
+        return sample
+    sample = sample[np.lexsort(sample.T[::-1])]
+    if len(sample) > target:
+        keep = np.sort(np.random.default_rng(seed).choice(len(sample), size=target, replace=False))
+        sample = sample[keep]
+    return sample
+
+
+def robust_mean_sd(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per-column mean and population sd that neither overflow (values near 1e152)
+    nor underflow (near 1e-300): deviations are divided by their largest size first."""
+    d = x.shape[1]
+    if len(x) == 0:
+        return np.zeros(d), np.ones(d)
+    center = x.mean(axis=0)
+    if not np.isfinite(center).all():  # the sum overflowed: average in halves
+        center = (x / 2.0).mean(axis=0) * 2.0
+    dev = x - center[None, :]
+    big = np.abs(dev).max(axis=0)
+    safe = np.where(big > 0, big, 1.0)
+    sd = np.sqrt(((dev / safe[None, :]) ** 2).mean(axis=0)) * np.where(big > 0, big, 0.0)
+    return center, sd
 
 
 def grid_axes(sample_u: np.ndarray, weights: np.ndarray, settings: Settings, usable_cols: np.ndarray) -> np.ndarray:
@@ -205,15 +340,30 @@ def grid_for_profile(prof: Profile, settings: Settings, weights: np.ndarray | No
     d = len(prof.center)
     weights = np.ones(d) if weights is None else weights
     sample_u = (prof.sample - prof.center[None, :]) / prof.scale[None, :]
-    varied = prof.sample.std(axis=0) > 0 if len(prof.sample) else np.ones(d, dtype=bool)
+    varied = np.ptp(prof.sample, axis=0) > 0 if len(prof.sample) else np.ones(d, dtype=bool)
     axes = grid_axes(sample_u, weights, settings, varied)
-    width = settings.width or choose_width(sample_u @ axes, prof.rows, settings.cell_budget)
+    width = settings.width or choose_width(sample_u @ axes, prof.rows, cell_target(settings, prof.rows))
     return Grid(
         center=tuple(map(float, prof.center)),
         inv_scale=tuple(map(float, 1.0 / prof.scale)),
         width=float(width),
         axes=tuple(tuple(map(float, r)) for r in axes),
+        sums_scaled=True,
     )
+
+
+#: density: rows an occupied cell should hold on average, so that a blob's cells are
+#: dense and touch; the grid of a small table is then chosen from the data's scale
+#: rather than the cell budget alone (one row per cell leaves nothing dense).
+DENSITY_ROWS_PER_CELL = 20
+
+
+def cell_target(settings: Settings, rows: int) -> int:
+    """How many occupied cells the grid aims for: the cell budget, and for density at most
+    rows / DENSITY_ROWS_PER_CELL."""
+    if settings.method == "density":
+        return max(min(settings.cell_budget, rows // DENSITY_ROWS_PER_CELL), 1)
+    return settings.cell_budget
 
 
 #: Sample rows used to choose the grid width (more buys little accuracy).
@@ -233,7 +383,7 @@ def choose_width(coords: np.ndarray, rows: int, budget: int) -> float:
     if len(coords) > WIDTH_SEARCH_ROWS:
         coords = coords[np.random.default_rng(3).permutation(len(coords))[:WIDTH_SEARCH_ROWS]]
     m = len(coords)
-    growth = math.log(rows / m) if rows > m else 0.0
+    growth = math.log(rows / m) if rows > m and m >= 4 else 0.0  # a quarter of fewer than 4 rows shows no growth
     quarter = np.random.default_rng(7).permutation(m)[: max(m // 4, 1)]
     mix = np.random.default_rng(12345).integers(1, 2**62, size=coords.shape[1]) | 1
 
@@ -311,11 +461,14 @@ def cells_from_result(got: dict[str, np.ndarray], grid: Grid, d: int) -> tuple[C
     null = _null_mask(got[names[0]])
     skipped = int(np.asarray(got["n"], dtype=np.int64)[null].sum())
     keep = ~null
-    cells = F.affine(cf_from_result(got, d, keep), np.asarray(grid.inv_scale), np.zeros(d))
+    cells = cf_from_result(got, d, keep)
+    if not grid.sums_scaled:
+        cells = F.affine(cells, np.asarray(grid.inv_scale), np.zeros(d))
     if not keep.any():
         return cells, np.zeros((0, len(names))), skipped
     keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names])
-    return cells, keys, skipped
+    order = np.lexsort(keys.T[::-1])  # groups come back in any order; later steps pick cells by position
+    return cells[order], keys[order], skipped
 
 
 # ----------------------------------------------------------------------------- refine
@@ -418,14 +571,40 @@ def standardise_cells(
     n = float(total.n[0])
     center = grid_center + total.ls[0] / n * grid_scale
     sd = np.sqrt(F.column_scatter(total)[0] / n) * grid_scale
-    constant = ~(sd > 1e-12 * np.maximum(np.abs(center), 1.0))
+    constant = constant_columns(center, sd)
     if constant.any():
         names = ", ".join(c for c, flag in zip(columns, constant) if flag)
         warnings.warn(f"constant column(s) {names}: they carry no weight", UserWarning, stacklevel=3)
+    if not (np.where(constant, 0.0, weights) > 0).any():
+        raise InputError(nothing_to_segment_on(columns, constant, weights))
     weights = np.where(constant, 0.0, weights)
     scale = np.where(constant, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
     cells = F.affine(cells_grid, grid_scale / scale, (grid_center - center) / scale)
     return cells, Standardisation(center=center, sd=sd, scale=scale, weights=weights, constant=constant)
+
+
+#: A column is constant when its spread is within this many units of round-off of its own size.
+CONSTANT_ULPS = 4.0
+
+
+def constant_columns(center: np.ndarray, sd: np.ndarray) -> np.ndarray:
+    """True for columns whose exact spread is round-off of their own magnitude.
+
+    Relative to each column's own size only (no absolute floor), so data in
+    units of 1e-300 or shifted by 1e13 keep their spread.
+    """
+    magnitude = np.abs(center) + sd
+    return ~(sd > CONSTANT_ULPS * np.finfo(np.float64).eps * magnitude)
+
+
+def nothing_to_segment_on(columns: Sequence[str], constant: np.ndarray, weights: np.ndarray) -> str:
+    """Why every column carries weight 0."""
+    if not (weights > 0).any():
+        return "every weight is 0: at least one column needs a weight above 0"
+    zero = [c for c, w in zip(columns, weights) if not w > 0]
+    const = [c for c, flag in zip(columns, constant) if flag]
+    why = f"constant column(s) {', '.join(const)}" + (f" and weight 0 on {', '.join(zero)}" if zero else "")
+    return f"nothing to segment on: {why}; every row would fall in one segment"
 
 
 def check_k_fits(cells: CF, k: int, where: str) -> None:
@@ -512,9 +691,12 @@ def run_second_phase(
                          f"{out_rows:,} rows in the outlier group")
     k = settings.k
     if settings.k_candidates:
-        usable = [c for c in settings.k_candidates if c <= int((entries.n > 0).sum())]
+        filled = int((entries.n > 0).sum())
+        # a k equal to the cells puts every cell alone: no score can rank it (Calinski-Harabasz needs k < cells)
+        usable = [c for c in settings.k_candidates if c < filled or c == 1]
         if not usable:
-            raise InputError(f"every candidate k is larger than the {int((entries.n > 0).sum()):,} cells of {where}")
+            raise ParameterError(f"every candidate {{k}} ({settings.k_candidates[0]}..{settings.k_candidates[-1]}) is not "
+                                 f"smaller than the {filled:,} distinct grid cells of {where}; give a smaller {{k}}", "k")
         choice = choose_k(entries, usable, weights, n_init=settings.n_init, seed=settings.seed, rule=settings.k_rule)
         k = choice.k
         params["k_choice"] = {"rule": choice.rule, "table": choice.table, "k": k}
@@ -549,9 +731,13 @@ def refine_passes(
     """Row-level Lloyd passes in SQL until the SSE gain falls below the tolerance.
 
     Rows of cells in ``cell_map`` (the outlier group) keep their mapped segment
-    (-1) and take no part in the centroids.
+    (-1) and take no part in the centroids.  The stats returned are those of the
+    last pass's assignment (its centroids, counts and SSE), so a model made from
+    them describes exactly the assignment `label` produces with those centroids;
+    the last pass's move of the centroids to the means is not kept.
     """
     passes: list[dict] = []
+    last: SegmentStats | None = None
     timings: dict[str, float] = {}
     for p in range(1, settings.refine_passes + 1):
         rr = run_refine_pass(engine, source, columns, std.assignment(centroids), cell_map)
@@ -560,13 +746,14 @@ def refine_passes(
         passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain, "seconds": rr.seconds})
         timings[f"refine_{p}"] = rr.seconds
         progress("refine", f"pass {p}: {usable:,} rows, SSE {before:.6g} -> {after:.6g}, {rr.seconds:.2f} s")
+        last = rr.assigned
         stats, centroids = rr.updated, rr.updated.centroids
         empty = stats.n == 0
         if empty.any():
             warnings.warn(f"refine pass {p}: segment(s) {np.flatnonzero(empty).tolist()} got no rows", UserWarning, stacklevel=3)
         if gain < settings.tolerance:
             break
-    return stats, passes, timings
+    return (last if last is not None else stats), passes, timings
 
 
 def size_order(stats: SegmentStats) -> np.ndarray:
@@ -679,7 +866,9 @@ def segment(
     new_id[order] = np.arange(len(order))
     model = make_model(
         columns, std, grid, ordered, settings, source, cp.usable + cp.skipped, cp.skipped,
-        cells_count(cp), extra_params={"cell_sse": phase.sse, **phase.params},
+        cells_count(cp), extra_params={"cell_sse": phase.sse, "sample_repeats": prof.repeats,
+                                      "sizes_from": "cells" if settings.method != "density" and not passes else "labels",
+                                      **phase.params},
     )
     model.method = settings.method
     model.extras = phase.extras

@@ -33,6 +33,7 @@ __all__ = [
     "current_schema_statement",
     "floor_of",
     "table_sample",
+    "sample_repeats",
     "for_dialect",
     "temporary_view",
 ]
@@ -54,7 +55,7 @@ class Source:
 
     @staticmethod
     def of_table(name: str | Sequence[str]) -> "Source":
-        parts = tuple(name.split(".")) if isinstance(name, str) else tuple(name)
+        parts = split_table_name(name) if isinstance(name, str) else tuple(name)
         if not parts or any(not p for p in parts):
             raise ValueError(f"not a table name: {name!r}")
         return Source(table=parts)
@@ -68,8 +69,8 @@ class Source:
 
     @property
     def label(self) -> str:
-        """Human-readable name for messages."""
-        return ".".join(self.table) if self.table else ", ".join(self.files)
+        """Human-readable name for messages (a part holding a dot in double quotes, as it is written)."""
+        return ".".join(quote_name_part(p) for p in self.table) if self.table else ", ".join(self.files)
 
     def relation(self) -> exp.Expression:
         """The FROM item for this source."""
@@ -81,6 +82,42 @@ class Source:
         if self.filename:
             args.append(exp.EQ(this=exp.column("filename"), expression=exp.true()))
         return exp.Table(this=exp.Anonymous(this=FILE_READERS[self.reader], expressions=args))
+
+
+def split_table_name(name: str) -> tuple[str, ...]:
+    """schema.table -> its parts; a part in double quotes may hold dots ("my.table"), and "" is a quote.
+
+    Raises ValueError for an unclosed quote.
+    """
+    parts: list[str] = []
+    current, quoted, i = "", False, 0
+    while i < len(name):
+        ch = name[i]
+        if quoted:
+            if ch == '"' and name[i + 1:i + 2] == '"':
+                current += '"'
+                i += 1
+            elif ch == '"':
+                quoted = False
+            else:
+                current += ch
+        elif ch == '"':
+            quoted = True
+        elif ch == ".":
+            parts.append(current)
+            current = ""
+        else:
+            current += ch
+        i += 1
+    if quoted:
+        raise ValueError(f"not a table name (unclosed quote): {name!r}")
+    parts.append(current)
+    return tuple(parts)
+
+
+def quote_name_part(part: str) -> str:
+    """A name part as written on the command line: in double quotes when it holds a dot or a quote."""
+    return '"' + part.replace('"', '""') + '"' if "." in part or '"' in part else part
 
 
 @dataclass(frozen=True)
@@ -96,6 +133,10 @@ class Grid:
     inv_scale: tuple[float, ...]
     width: float
     axes: tuple[tuple[float, ...], ...] | None = None
+    #: the cell pass sums u = (x - center) * inv_scale (True), or the centred v = x - center
+    #: (False: grids written before the sums were scaled in SQL, which over- or underflow for
+    #: values near 1e152 or 1e-300)
+    sums_scaled: bool = False
 
     @property
     def dims(self) -> int:
@@ -112,6 +153,7 @@ class Grid:
             "center": list(self.center),
             "inv_scale": list(self.inv_scale),
             "axes": [list(r) for r in self.axes] if self.axes else None,
+            **({"sums": "scaled"} if self.sums_scaled else {}),
         }
 
     @staticmethod
@@ -122,6 +164,7 @@ class Grid:
             inv_scale=tuple(map(float, data["inv_scale"])),
             width=float(data["width"]),
             axes=tuple(tuple(map(float, r)) for r in axes) if axes else None,
+            sums_scaled=data.get("sums") == "scaled",
         )
 
     def key_names(self) -> list[str]:
@@ -306,28 +349,45 @@ def sample_statement(
     percent: float | None = None,
     method: str = "SYSTEM",
     limit: int | None = None,
+    seed: int | None = None,
 ) -> exp.Select:
     """Rows of the chosen columns as DOUBLE, optionally from a TABLESAMPLE.
 
     NULL/NaN/Inf rows are filtered out in SQL so the sample holds usable rows only.
+    With ``seed`` the sample repeats where the engine can repeat one
+    (``REPEATABLE (seed)``; on Spark a ``rand(seed)`` filter, repeatable for the
+    same input partitioning); see ``sample_repeats``.
     """
     rel = source.relation()
-    if percent is not None and percent < 100.0:
-        rel.set("sample", table_sample(float(percent), method, dialect))
+    sampled = percent is not None and percent < 100.0
+    spark_seeded = sampled and seed is not None and dialect in SPARK_DIALECTS
+    if sampled and not spark_seeded:
+        rel.set("sample", table_sample(float(percent), method, dialect, seed=seed))
     names = [internal(f"x{j}") for j in range(len(columns))]
     inner = exp.select(*[exp.alias_(to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)]).from_(rel)
+    if spark_seeded:
+        inner = inner.where(exp.LT(this=exp.Rand(this=num(int(seed))), expression=num(float(percent) / 100.0)))
     outer = exp.select(*[col(n) for n in names]).from_(subquery(inner, internal("s"))).where(usable_rows(names, dialect))
     if limit is not None:
         outer = outer.limit(num(int(limit)))
     return outer
 
 
-def _sums(v_names: Sequence[str]) -> list[exp.Expression]:
+def _sums(v_names: Sequence[str], dialect: str = "duckdb") -> list[exp.Expression]:
     """n, ls_j = sum(v_j), ss_j = sum(v_j * v_j)."""
     aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
-    aggs += [exp.alias_(exp.Sum(this=col(n)), f"ls{j}", quoted=True) for j, n in enumerate(v_names)]
-    aggs += [exp.alias_(exp.Sum(this=square(col(n))), f"ss{j}", quoted=True) for j, n in enumerate(v_names)]
+    aggs += [exp.alias_(float_sum(col(n), dialect), f"ls{j}", quoted=True) for j, n in enumerate(v_names)]
+    aggs += [exp.alias_(float_sum(square(col(n)), dialect), f"ss{j}", quoted=True) for j, n in enumerate(v_names)]
     return aggs
+
+
+def float_sum(e: exp.Expression, dialect: str) -> exp.Expression:
+    """Sum of doubles; in DuckDB its compensated ``fsum``, whose result does not change with
+    the order the threads combine their parts in (plain ``sum`` moves in the last bits from
+    run to run, and so would the model file).  Measured no slower than ``sum`` here."""
+    if dialect == "duckdb":
+        return exp.Anonymous(this="fsum", expressions=[e])
+    return exp.Sum(this=e)
 
 
 @dataclass(frozen=True)
@@ -416,8 +476,9 @@ def cells_statement(
 
     Returns k0..k{p-1} (floor of each binned coordinate, as DOUBLE: no cast, no
     clamp, no aliasing of far outliers), n, ls0..ls{d-1} and ss0..ss{d-1} on the
-    centred values v = x - grid.center (scale them with ``Grid.inv_scale``
-    afterwards).  Rows with a NULL/NaN/Inf value get k0 NULL: the groups with k0
+    standardised values u = (x - grid.center) * inv_scale when ``grid.sums_scaled``
+    (squares of values near 1e152 would overflow and of values near 1e-300
+    underflow), else on the centred values v = x - grid.center.  Rows with a NULL/NaN/Inf value get k0 NULL: the groups with k0
     NULL count the skipped rows and their sums are meaningless.
 
     With ``partition`` the cells are keyed by (partition, cell) and the first
@@ -437,12 +498,17 @@ def cells_statement(
     keys[0] = case_when(usable_rows(v, dialect), keys[0])
     names = grid.key_names()
     part_cols = [col(a) for a in partition.aliases()] if partition is not None else []
+    summed = [col(n) for n in v]
+    if grid.sums_scaled:
+        u = [internal(f"u{j}") for j in range(d)]
+        summed = [exp.alias_(exp.Mul(this=col(n), expression=num(float(s))), un, quoted=True) for n, s, un in zip(v, grid.inv_scale, u)]
+        v = u
     stage2 = exp.select(
-        *[c.copy() for c in part_cols], *[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *[col(n) for n in v]
+        *[c.copy() for c in part_cols], *[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *summed
     ).from_(subquery(stage1, internal("a")))
     part_text = [exp.alias_(partition.text(), "part", quoted=True)] if partition is not None else []
     group = [*part_cols, *[col(n) for n in names]]
-    return exp.select(*part_text, *[col(n) for n in names], *_sums(v)).from_(subquery(stage2, internal("b"))).group_by(
+    return exp.select(*part_text, *[col(n) for n in names], *_sums(v, dialect)).from_(subquery(stage2, internal("b"))).group_by(
         *[c.copy() for c in group]
     )
 
@@ -706,9 +772,13 @@ def _assignment_layers(
 
 
 def _squared_norm(v_names: Sequence[str], assign: Assignment) -> exp.Expression:
-    """||u||_w^2 = sum_j w_j^2 s_j^2 v_j^2 of a row."""
-    norm = assign.norm_coefficients()
-    return total_sum([exp.Mul(this=num(float(c)), expression=square(col(n))) for n, c in zip(v_names, norm) if c != 0.0])
+    """||u||_w^2 = sum_j (w_j s_j v_j)^2 of a row.
+
+    The factor is applied before squaring: (w s)^2 alone overflows when s is
+    near 1e300 (values near 1e-300), and v^2 underflows there.
+    """
+    factor = np.abs(np.asarray(assign.weights, dtype=np.float64) * np.asarray(assign.inv_scale, dtype=np.float64))
+    return total_sum([square(exp.Mul(this=num(float(c)), expression=col(n))) for n, c in zip(v_names, factor) if c != 0.0])
 
 
 def refine_statement(
@@ -725,9 +795,9 @@ def refine_statement(
     """
     inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=False, cell_map=cell_map)
     aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
-    aggs += [exp.alias_(exp.Sum(this=col(n)), f"ls{j}", quoted=True) for j, n in enumerate(v)]
+    aggs += [exp.alias_(float_sum(col(n), dialect), f"ls{j}", quoted=True) for j, n in enumerate(v)]
     dist = exp.Add(this=col(best), expression=paren(_squared_norm(v, assign)))
-    aggs.append(exp.alias_(exp.Sum(this=dist), "dist", quoted=True))
+    aggs.append(exp.alias_(float_sum(dist, dialect), "dist", quoted=True))
     return (
         exp.select(exp.alias_(col(seg), "segment", quoted=True), *aggs)
         .from_(subquery(inner, internal("d")))
@@ -840,19 +910,34 @@ def floor_of(e: exp.Expression, dialect: str) -> exp.Expression:
     return exp.Case(ifs=[exp.If(this=below, true=exp.Sub(this=paren(whole), expression=num(1.0)))], default=whole.copy())
 
 
-def table_sample(percent: float, method: str, dialect: str) -> exp.TableSample:
+#: Dialects whose TABLESAMPLE takes REPEATABLE (seed) and repeats the sample with it.
+REPEATABLE_SAMPLE_DIALECTS = ("duckdb", "postgres")
+
+
+def sample_repeats(dialect: str) -> str:
+    """What a seeded profile sample guarantees on this dialect (stated in the model's params)."""
+    if dialect in REPEATABLE_SAMPLE_DIALECTS:
+        return "yes"
+    if dialect in SPARK_DIALECTS:
+        return "for the same input partitioning"
+    return "no"
+
+
+def table_sample(percent: float, method: str, dialect: str, seed: int | None = None) -> exp.TableSample:
     """TABLESAMPLE METHOD (percent) in the dialect's own form.
 
     Spark SQL has a single row-sampling form, ``TABLESAMPLE (p PERCENT)``, whose
     percentage must be a plain decimal (it refuses exponent literals); BigQuery
     has SYSTEM only.  PostgreSQL, Trino and Snowflake take SYSTEM and BERNOULLI.
+    ``seed`` adds ``REPEATABLE (seed)`` where the dialect has it (DuckDB, PostgreSQL).
     """
     if dialect in SPARK_DIALECTS:
         text = np.format_float_positional(percent, trim="-", precision=12, fractional=True)
         return exp.TableSample(percent=exp.Literal.number(text))
     if dialect == "bigquery":
         method = "SYSTEM"
-    return exp.TableSample(method=exp.var(method), percent=num(float(percent)))
+    repeat = {"seed": num(int(seed))} if seed is not None and dialect in REPEATABLE_SAMPLE_DIALECTS else {}
+    return exp.TableSample(method=exp.var(method), percent=num(float(percent)), **repeat)
 
 
 def for_dialect(statement: exp.Expression, dialect: str) -> exp.Expression:

@@ -9,7 +9,7 @@ same keys and add up.  Tables of our own naming, in the source's database:
   file size and modification time for file partitions, when summarised);
 - ``tillite_store_labels``: label views/tables to re-create after a refresh;
 - ``tillite_cells_<store>``: the cells, keyed by (part, k0..), with n, ls*, ss*
-  on the centred values v = x - grid.center.
+  on the centred values v = x - grid.center (times grid.inv_scale for grids with sums_scaled).
 
 A refresh fingerprints every partition in one aggregate pass, recomputes cells
 only for new and changed partitions (one statement restricted to them), drops
@@ -39,6 +39,7 @@ from .model import Model
 from .pipeline import (
     InputError,
     ProgressFn,
+    check_refresh_options,
     SegmentStats,
     Settings,
     _quiet,
@@ -544,6 +545,7 @@ def regrid(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segmen
     For when rows increasingly fall outside the built range (``status`` warns).
     Segment ids are matched to the current model's, and label views follow.
     """
+    check_refresh_options(new_segment_shift=new_segment_shift)
     info = load(engine, store)
     _, model = build(
         engine, info.source, info.columns, info.partition, _settings_of(info.settings), store=store,
@@ -579,6 +581,7 @@ def refresh(
     ``before_commit`` is called inside the transaction after the new cells and
     model are in place (tests use it to inject a failure).
     """
+    check_refresh_options(k=k, drift_threshold=drift_threshold, new_segment_shift=new_segment_shift)
     require_transactions(engine)
     t0 = time.perf_counter()
     info = load(engine, store)
@@ -757,7 +760,10 @@ def subtract_rows(engine: Engine, store: str, part: str, rows: np.ndarray) -> in
         return 0
     keys = info.grid.keys_of(rows)
     uniq, inverse = np.unique(keys, axis=0, return_inverse=True)
-    delta = F.from_groups(rows - np.asarray(info.grid.center)[None, :], inverse.ravel(), len(uniq))
+    values = rows - np.asarray(info.grid.center)[None, :]
+    if info.grid.sums_scaled:  # the cells hold sums of (x - center) * inv_scale
+        values = values * np.asarray(info.grid.inv_scale)[None, :]
+    delta = F.from_groups(values, inverse.ravel(), len(uniq))
     names = info.grid.key_names()
     d = len(info.columns)
     with engine.transaction():
@@ -789,6 +795,7 @@ def label(engine: Engine, store: str, into: str, materialize: bool = False, repl
 
 def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, Any]:
     """Partitions, rows, when summarised, the grid in use, and rows outside the built key range."""
+    check_refresh_options(outside_warn=outside_warn)
     info = load(engine, store)
     parts = _rows(engine.query(sqlgen.select_where(PARTS, sqlgen.equals_all({"store": store}))))
     cells_grid, keys, skipped = merged_cells(engine, info.cells_table, info.grid, len(info.columns))

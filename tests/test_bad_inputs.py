@@ -1,0 +1,263 @@
+"""Bad inputs on the command line: one error line naming the option, table, column or file at
+fault, exit 1 (or click's usage exit 2), and never a Python traceback or Python spelling
+(``replace=True``, ``None``) in what the user reads.
+
+The data is scikit-learn's make_blobs; what is checked here is the command's contract, so no
+outside reference is needed beyond the exit code and the message.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+
+import duckdb
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from sklearn.datasets import make_blobs
+
+from tillite.cli import main
+
+from conftest import write_table
+
+
+def run(*args: object):
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+def assert_one_error_line(result, *needles: str, code: int = 1) -> str:
+    """The exit code, exactly one line starting 'Error:' on stderr naming every needle, no traceback."""
+    assert result.exit_code == code, (result.exit_code, result.output)
+    assert isinstance(result.exception, SystemExit), repr(result.exception)
+    assert "Traceback" not in result.output
+    lines = result.stderr.strip().splitlines()
+    errors = [ln for ln in lines if ln.startswith("Error:")]
+    assert len(errors) == 1, lines
+    if code == 1:
+        assert len(lines) == 1, lines
+    line = errors[0]
+    for needle in needles:
+        assert needle in line, (needle, line)
+    assert "=True" not in line and "None" not in line, line
+    return line
+
+
+@pytest.fixture(scope="module")
+def db(tmp_path_factory) -> Path:
+    x, _ = make_blobs(n_samples=900, centers=3, n_features=3, cluster_std=0.5, random_state=4)
+    path = tmp_path_factory.mktemp("bad") / "bad.duckdb"
+    write_table(path, "points", {"id": np.arange(len(x)), "a": x[:, 0], "b": x[:, 1], "c": x[:, 2], "part": np.arange(len(x)) % 3})
+    write_table(path, "three", {"a": np.array([1.0, 2.0, 5.0]), "b": np.array([2.0, 3.5, 1.0])})
+    write_table(path, "my.table", {"a": x[:50, 0], "b": x[:50, 1]})
+    return path
+
+
+@pytest.fixture(scope="module")
+def model(db, tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("model") / "m.json"
+    res = run("segment", db, "-t", "points", "-c", "a,b,c", "--k", 3, "-o", out, "-q")
+    assert res.exit_code == 0, res.output
+    return out
+
+
+@pytest.fixture(scope="module")
+def store_db(tmp_path_factory) -> Path:
+    x, _ = make_blobs(n_samples=900, centers=3, n_features=2, cluster_std=0.5, random_state=4)
+    path = tmp_path_factory.mktemp("store") / "store.duckdb"
+    write_table(path, "points", {"a": x[:, 0], "b": x[:, 1], "part": np.arange(len(x)) % 3})
+    res = run("store", "build", path, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "-q")
+    assert res.exit_code == 0, res.output
+    return path
+
+
+SEGMENT_CASES = [
+    # (extra options, needles in the one error line)
+    (["--k", 3, "--seed", -1], ["--seed", "-1"]),
+    (["--k", 3, "--seed", 2**40], ["--seed"]),
+    (["--k", 3, "--tree-budget", -1], ["--tree-budget", "-1"]),
+    (["--k", 3, "--threshold", -1], ["--threshold", "-1"]),
+    (["--k", 3, "--threshold", "nan"], ["--threshold", "nan"]),
+    (["--k", 3, "--branching", 1], ["--branching", "at least 2"]),
+    (["--k", 3, "--leaf-capacity", 0], ["--leaf-capacity", "at least 2"]),
+    (["--k", 3, "--method", "ward", "--tree-budget", 10, "--leaf-capacity", 1], ["--leaf-capacity", "at least 2"]),
+    (["--k", 3, "--tolerance", "nan"], ["--tolerance", "nan"]),
+    (["--k", 3, "--tolerance", -1], ["--tolerance"]),
+    (["--k", 3, "--sample-rows", 0], ["--sample-rows", "at least 2"]),
+    (["--k", 3, "--cell-budget", 0], ["--cell-budget"]),
+    (["--k", 3, "--refine-passes", -1], ["--refine-passes"]),
+    (["--k", 3, "--restarts", 0], ["--restarts"]),
+    (["--k", 3, "--width", "nan"], ["--width"]),
+    (["--k", 0], ["--k", "at least 1"]),
+    (["--k", -1], ["--k", "at least 1"]),
+    (["--k", 3, "--weights", "a=0,b=0,c=0"], ["--weights", "0"]),
+    (["--k", 3, "--weights", "a=nan"], ["--weights", "nan"]),
+    (["--k", 3, "--weights", "a=-1"], ["--weights", "-1"]),
+    (["--k", 3, "--weights", "a=1e300"], ["--weights", "1e+300"]),
+    (["--method", "density", "--k", 5], ["--k", "--method density"]),
+    (["--method", "density", "--adjacency", "distance", "--radius", "nan"], ["--radius", "nan"]),
+    (["--method", "density", "--adjacency", "distance", "--radius", 0], ["--radius"]),
+    (["--method", "density", "--min-count", "nan"], ["--min-count"]),
+    (["--method", "density", "--min-count", -1], ["--min-count"]),
+]
+
+
+@pytest.mark.parametrize("options,needles", SEGMENT_CASES, ids=[" ".join(map(str, o)) for o, _ in SEGMENT_CASES])
+def test_segment_option_out_of_range_is_one_error_line_naming_the_option(tmp_path, db, options, needles):
+    res = run("segment", db, "-t", "points", "-c", "a,b,c", "-o", tmp_path / "m.json", "-q", *options)
+    assert_one_error_line(res, *needles)
+    assert not (tmp_path / "m.json").exists()
+
+
+def test_store_build_with_a_negative_seed_is_one_error_line(tmp_path, db):
+    res = run("store", "build", db, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "--seed", -1,
+              "--store", "s_bad", "-q")
+    assert_one_error_line(res, "--seed")
+
+
+REFRESH_CASES = [
+    (["refresh", "{db}", "--store", "points", "--k", 0], ["--k", "at least 1"]),
+    (["refresh", "{db}", "--store", "points", "--k", -1], ["--k"]),
+    (["refresh", "{db}", "--store", "points", "--drift-warn", "nan"], ["--drift-warn"]),
+    (["refresh", "{db}", "--store", "points", "--new-segment-shift", "nan"], ["--new-segment-shift"]),
+    (["refresh", "{db}", "--store", "points", "--new-segment-shift", -1], ["--new-segment-shift", "-1"]),
+    (["refresh", "{db}", "--store", "points", "--regrid", "--new-segment-shift", -1], ["--new-segment-shift"]),
+    (["store", "status", "{db}", "--store", "points", "--outside-warn", "nan"], ["--outside-warn"]),
+]
+
+
+@pytest.mark.parametrize("args,needles", REFRESH_CASES, ids=[" ".join(map(str, a[3:])) or a[1] for a, _ in REFRESH_CASES])
+def test_store_option_out_of_range_is_one_error_line_naming_the_option(store_db, args, needles):
+    res = run(*[str(store_db) if a == "{db}" else a for a in args])
+    assert_one_error_line(res, *needles)
+
+
+def _damaged(model: Path, tmp_path: Path, change) -> Path:
+    data = json.loads(model.read_text())
+    change(data)
+    out = tmp_path / "damaged.json"
+    out.write_text(json.dumps(data))  # json writes NaN as NaN, as a hand edit or another tool might
+    return out
+
+
+def _set(key, value):
+    def change(d):
+        d[key] = value
+    return change
+
+
+def _set_cell(key, i, j, value):
+    def change(d):
+        d[key][i][j] = value
+    return change
+
+
+def _set_item(key, i, value):
+    def change(d):
+        d[key][i] = value
+    return change
+
+
+MODEL_CASES = [
+    ("scale 0", _set_item("scale", 0, 0.0), ["scale"]),
+    ("scale NaN", _set_item("scale", 1, math.nan), ["scale"]),
+    ("centroids_scaled NaN", _set_cell("centroids_scaled", 0, 0, math.nan), ["centroids_scaled"]),
+    ("centroids NaN", _set_cell("centroids", 1, 2, math.nan), ["centroids"]),
+    ("k mismatched", _set("k", 7), ["k is 7"]),
+    ("duplicate ids", _set("ids", [0, 1, 1]), ["more than once"]),
+    ("ids too few", _set("ids", [0, 1]), ["ids"]),
+    ("negative weight", _set_item("weights", 0, -1.0), ["weights"]),
+    ("grid width 0", lambda d: d["grid"].__setitem__("width", 0.0), ["grid"]),
+]
+
+
+@pytest.mark.parametrize("name,change,needles", MODEL_CASES, ids=[c[0] for c in MODEL_CASES])
+def test_damaged_model_file_is_one_error_line_for_show_and_label(tmp_path, db, model, name, change, needles):
+    bad = _damaged(model, tmp_path, change)
+    assert_one_error_line(run("show", bad), "damaged", str(bad), *needles)
+    assert_one_error_line(run("label", db, "-t", "points", "-m", bad, "--into", "never_made"), "damaged", *needles)
+
+
+def test_csv_with_only_a_header_says_it_has_no_rows(tmp_path):
+    path = tmp_path / "empty.csv"
+    path.write_text("a,b\n")
+    res = run("segment", path, "-c", "a,b", "--k", 2, "-o", tmp_path / "m.json", "-q")
+    assert_one_error_line(res, "no rows", "empty.csv")
+
+
+def test_dotted_table_name_is_explained_and_works_quoted(tmp_path, db):
+    res = run("segment", db, "-t", "my.table", "-c", "a,b", "--k", 2, "-o", tmp_path / "m.json", "-q")
+    assert_one_error_line(res, '"my.table"', "double quotes")
+    ok = run("segment", db, "-t", '"my.table"', "-c", "a,b", "--k", 2, "-o", tmp_path / "m.json", "-q")
+    assert ok.exit_code == 0, ok.output
+
+
+def test_malformed_table_without_source_is_a_usage_error_not_a_traceback():
+    # issue 13: `tillite sql --table a..b -c x --stage profile` ended in a ValueError traceback
+    res = run("sql", "--table", "a..b", "-c", "x", "--stage", "profile")
+    assert_one_error_line(res, "--table", "a..b", code=2)
+
+
+def test_k_auto_on_a_three_row_table_segments_instead_of_failing(tmp_path, db):
+    # issue 13: Calinski-Harabasz raised ValueError for k equal to the number of cells
+    res = run("segment", db, "-t", "three", "-c", "a,b", "--k", "auto", "-o", tmp_path / "m.json", "-q")
+    assert res.exit_code == 0, res.output
+    assert json.loads((tmp_path / "m.json").read_text())["k"] < 3
+
+
+def test_existing_table_without_replace_names_the_option_not_the_python_parameter(tmp_path, db, model):
+    copy = tmp_path / "copy.duckdb"
+    copy.write_bytes(db.read_bytes())
+    con = duckdb.connect(str(copy))
+    con.execute("CREATE TABLE taken AS SELECT 1 AS x")
+    con.close()
+    res = run("label", copy, "-t", "points", "-m", model, "--into", "taken")
+    assert_one_error_line(res, "taken", "--replace")
+
+
+def test_dropped_source_column_at_label_time_names_the_column(tmp_path, db, model):
+    copy = tmp_path / "copy.duckdb"
+    copy.write_bytes(db.read_bytes())
+    con = duckdb.connect(str(copy))
+    con.execute("ALTER TABLE points DROP COLUMN b")
+    con.execute("CREATE TABLE base AS SELECT * FROM three")
+    con.close()
+    assert_one_error_line(run("label", copy, "-t", "points", "-m", model, "--into", "labels"), "column b", "points")
+
+
+def test_dropped_column_under_a_view_source_names_the_view(tmp_path, db, model):
+    copy = tmp_path / "copy.duckdb"
+    copy.write_bytes(db.read_bytes())
+    con = duckdb.connect(str(copy))
+    con.execute("CREATE VIEW pv AS SELECT a, b, c FROM points")
+    con.execute("ALTER TABLE points DROP COLUMN c")
+    con.close()
+    assert_one_error_line(run("label", copy, "-t", "pv", "-m", model, "--into", "labels"), "pv")
+
+
+def test_into_the_table_under_a_view_source_is_refused_and_the_table_kept(tmp_path, db, model):
+    copy = tmp_path / "copy.duckdb"
+    copy.write_bytes(db.read_bytes())
+    con = duckdb.connect(str(copy))
+    con.execute("CREATE VIEW pv AS SELECT * FROM points")
+    con.close()
+    res = run("label", copy, "-t", "pv", "-m", model, "--into", "points", "--replace", "--materialize")
+    assert_one_error_line(res, "points", "pv")
+    con = duckdb.connect(str(copy), read_only=True)
+    assert con.execute("SELECT count(*) FROM points").fetchone()[0] == 900
+    con.close()
+
+
+def test_second_store_build_names_the_regrid_option_not_the_python_parameter(store_db):
+    res = run("store", "build", store_db, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "-q")
+    assert_one_error_line(res, "--regrid")
+
+
+@pytest.mark.parametrize("into", ["", "a..b", "s."])
+def test_empty_into_name_is_a_usage_error(db, model, into):
+    assert_one_error_line(run("label", db, "-t", "points", "-m", model, "--into", into), "--into", code=2)
+
+
+def test_sql_cells_stage_refuses_a_cell_budget_below_one(db):
+    assert_one_error_line(run("sql", db, "-t", "points", "-c", "a,b", "--stage", "cells", "--cell-budget", 0), "--cell-budget")

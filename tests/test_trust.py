@@ -1,0 +1,204 @@
+"""Trust rules: the same data and options give the same model file; segments do not depend on a
+column's unit; the model describes exactly the labels; what is printed is true.
+
+References: scikit-learn's adjusted_rand_score against the unscaled run and against make_blobs'
+truth; DuckDB's own count(*) of the label view for the sizes.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+from pathlib import Path
+
+import duckdb
+import numpy as np
+import pytest
+from sklearn.datasets import make_blobs
+from sklearn.metrics import adjusted_rand_score
+
+from tillite.engines import DuckDBEngine
+from tillite.pipeline import InputError, Settings, label, segment
+from tillite.sqlgen import Source
+
+from conftest import write_table
+
+METHODS = {
+    "kmeans": dict(k=4),
+    "ward": dict(k=4, method="ward"),
+    "density": dict(k=0, method="density"),
+    "density distance": dict(k=0, method="density", adjacency="distance"),  # radius chosen from the data
+}
+
+
+def comparable(model) -> str:
+    """The model file without what may differ between identical runs: timings, creation time."""
+    data = model.to_dict()
+    data.pop("timings")
+    data.pop("created")
+    for p in data["passes"]:
+        p.pop("seconds")
+    return json.dumps(data, sort_keys=True)
+
+
+@pytest.fixture(scope="module")
+def large_db(tmp_path_factory) -> Path:
+    """Several DuckDB row groups (parallel scans) and more rows than the profile sample takes."""
+    x, _ = make_blobs(n_samples=260_000, centers=4, n_features=3, cluster_std=1.0, center_box=(-8, 8), random_state=5)
+    return write_table(tmp_path_factory.mktemp("rep") / "large.duckdb", "t", {"a": x[:, 0], "b": x[:, 1], "c": x[:, 2]})
+
+
+@pytest.mark.parametrize("method", list(METHODS))
+def test_three_runs_with_one_seed_write_the_same_model_file(large_db, method):
+    runs = []
+    for _ in range(3):
+        engine = DuckDBEngine(str(large_db), read_only=True)
+        try:
+            model = segment(engine, Source.of_table("t"), ["a", "b", "c"], Settings(**METHODS[method], seed=11, sample_rows=5_000))
+        finally:
+            engine.close()
+        runs.append(comparable(model))
+    assert runs[0] == runs[1] == runs[2]
+    assert json.loads(runs[0])["params"]["sample_repeats"] == "yes"
+
+
+def test_the_profile_sample_follows_the_seed(large_db):
+    widths = set()
+    for seed in (1, 2):
+        engine = DuckDBEngine(str(large_db), read_only=True)
+        try:
+            model = segment(engine, Source.of_table("t"), ["a", "b", "c"], Settings(k=4, seed=seed, sample_rows=5_000))
+        finally:
+            engine.close()
+        widths.add(tuple(model.grid["center"]))
+    assert len(widths) == 2  # another seed, another sample (another grid centre): the seed is what repeats it
+
+
+# ----------------------------------------------------------------------------- numerics
+
+
+@pytest.fixture(scope="module")
+def blobs():
+    x, y = make_blobs(n_samples=6_000, centers=4, n_features=3, cluster_std=1.0, center_box=(-8, 8), random_state=5)
+    return x, y
+
+
+def labels_of(tmp_path: Path, x: np.ndarray, settings: Settings, name: str = "t") -> tuple[np.ndarray, object]:
+    path = write_table(tmp_path / f"{name}.duckdb", "t", {"id": np.arange(len(x)), "a": x[:, 0], "b": x[:, 1], "c": x[:, 2]})
+    engine = DuckDBEngine(str(path))
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")  # no column may be taken for a constant one
+            model = segment(engine, Source.of_table("t"), ["a", "b", "c"], settings)
+        label(engine, Source.of_table("t"), model, "labels")
+        got = engine.con.execute("SELECT segment FROM labels ORDER BY id").fetchnumpy()["segment"]
+    finally:
+        engine.close()
+    return np.asarray(got), model
+
+
+UNITS = {
+    "x 1e-300": lambda x: x * 1e-300,
+    "x 1e-13": lambda x: x * 1e-13,
+    "x 1e13": lambda x: x * 1e13,
+    "x 1e150": lambda x: x * 1e150,
+    "x 1e152": lambda x: x * 1e152,  # squares near 1e304: summed in SQL they overflowed before
+    "+ 1e13": lambda x: x + 1e13,  # spread about 4 on values near 1e13
+}
+
+
+@pytest.mark.parametrize("method", ["kmeans", "ward", "density"])
+@pytest.mark.parametrize("unit", list(UNITS))
+def test_segments_do_not_depend_on_the_unit_of_the_columns(tmp_path, blobs, unit, method):
+    x, _ = blobs
+    settings = Settings(**METHODS[method])
+    ref, _ = labels_of(tmp_path, x, settings, "ref")
+    got, model = labels_of(tmp_path, UNITS[unit](x), settings, "scaled")
+    # reference: scikit-learn adjusted_rand_score against the run on the unscaled data
+    assert adjusted_rand_score(ref, got) == 1.0
+    assert model.constant_columns == []
+
+
+def test_a_truly_constant_column_is_still_found_constant_at_any_magnitude(tmp_path, blobs):
+    x, _ = blobs
+    ref = None
+    for level in (0.0, 1e-300, 3.7, 1e13, 1e150):
+        data = x.copy()
+        data[:, 2] = level
+        with pytest.warns(UserWarning, match="constant column"):
+            got, model = _labels_allowing_warnings(tmp_path, data, level)
+        assert model.constant_columns == ["c"]
+        ref = got if ref is None else ref
+        # reference: scikit-learn adjusted_rand_score against the run with the constant column at 0
+        assert adjusted_rand_score(ref, got) == 1.0
+
+
+def _labels_allowing_warnings(tmp_path, data, level):
+    path = write_table(tmp_path / f"c{level:g}.duckdb", "t", {"id": np.arange(len(data)), "a": data[:, 0], "b": data[:, 1], "c": data[:, 2]})
+    engine = DuckDBEngine(str(path))
+    try:
+        model = segment(engine, Source.of_table("t"), ["a", "b", "c"], Settings(k=4))
+        label(engine, Source.of_table("t"), model, "labels")
+        got = engine.con.execute("SELECT segment FROM labels ORDER BY id").fetchnumpy()["segment"]
+    finally:
+        engine.close()
+    return np.asarray(got), model
+
+
+def test_only_constant_columns_is_an_error_not_one_segment_and_empty_ones(tmp_path):
+    path = write_table(tmp_path / "flat.duckdb", "t", {"a": np.full(500, 2.5), "b": np.full(500, -1e13)})
+    engine = DuckDBEngine(str(path), read_only=True)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            with pytest.raises(InputError, match="nothing to segment on"):
+                segment(engine, Source.of_table("t"), ["a", "b"], Settings(k=4))
+    finally:
+        engine.close()
+
+
+# ----------------------------------------------------------------------------- results
+
+
+@pytest.mark.parametrize("method", ["kmeans", "ward", "density"])
+@pytest.mark.parametrize("extra", [{}, {"tree_budget": 50}, {"refine_passes": 1}], ids=["plain", "outlier group", "one pass"])
+def test_model_sizes_are_the_label_view_counts(tmp_path, large_db, method, extra):
+    if method == "density" and extra:
+        pytest.skip("density has no refine passes and no CF tree")
+    engine = DuckDBEngine(str(large_db))
+    try:
+        model = segment(engine, Source.of_table("t"), ["a", "b", "c"], Settings(**METHODS[method], sample_rows=5_000, **extra))
+        label(engine, Source.of_table("t"), model, "labels")
+        got = engine.con.execute("SELECT segment, count(*) FROM labels WHERE segment >= 0 GROUP BY 1").fetchall()
+    finally:
+        engine.close()
+    # reference: DuckDB's own count of the label view
+    counts = dict(got)
+    assert {int(i): int(n) for i, n in counts.items()} == dict(zip(model.segment_ids(), model.sizes))
+    assert model.params["sizes_from"] == "labels"
+
+
+@pytest.mark.parametrize("rows", [2_000, 20_000])
+@pytest.mark.parametrize("min_count", [None, 1, 0.5, 0])
+def test_density_on_small_tables_finds_four_clear_blobs(tmp_path, rows, min_count):
+    x, y = make_blobs(n_samples=rows, centers=[[-9, -9, 0], [9, -9, 0], [-9, 9, 0], [9, 9, 9]], n_features=3,
+                      cluster_std=1.0, random_state=2)
+    got, model = labels_of(tmp_path, x, Settings(k=0, method="density", min_count=min_count))
+    # reference: make_blobs' truth
+    assert model.k == 4
+    assert adjusted_rand_score(y, got) == 1.0
+
+
+def test_scaling_none_does_not_speak_of_scaled_units(tmp_path, blobs):
+    _, model = labels_of(tmp_path, blobs[0], Settings(k=4, scaling="none"))
+    text = model.describe()
+    assert "scaled units" not in text and "original units" in text
+
+
+def test_noise_drop_says_shares_exclude_noise(tmp_path):
+    x, _ = make_blobs(n_samples=4_000, centers=[[-9, -9, 0], [9, 9, 0]], n_features=3, cluster_std=1.0, random_state=2)
+    x = np.vstack([x, np.random.default_rng(0).uniform(-30, 30, size=(200, 3))])
+    _, model = labels_of(tmp_path, x, Settings(k=0, method="density", noise="drop"))
+    assert model.extras["noise_rows"] > 0
+    assert f"{model.extras['noise_rows']:,} noise rows" in model.describe()
+    assert "not counted" in model.describe()
