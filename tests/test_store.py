@@ -276,3 +276,109 @@ def test_regrid_rebuilds_on_a_new_grid_keeps_ids_and_relabels(built):
     assert_store_equals_fresh_cell_pass(engine, new_info)
     got = engine.con.execute('SELECT DISTINCT "segment" FROM "water_labels" WHERE "segment" IS NOT NULL').fetchall()
     assert {g for (g,) in got} <= set(after.segment_ids())
+
+
+# ----------------------------------------------------------------------------- integrity (issue 10)
+
+from conftest import write_table  # noqa: E402
+
+
+def cells_of_store(engine, info):
+    merged, keys, skipped = S.merged_cells(engine, info.cells_table, info.grid, len(info.columns))
+    return sorted_cells(merged, keys) + (skipped,)
+
+
+def assert_store_equals_fresh_pass(engine, info, table, rtol=1e-9):
+    """The store's merged cells equal a from-scratch cell pass over ``table`` on the store's grid."""
+    got = cells_of_store(engine, info)
+    fresh = run_cell_pass(engine, Source.of_table(table), info.columns, info.grid)
+    ref = sorted_cells(fresh.cells, fresh.keys)
+    np.testing.assert_array_equal(got[0], ref[0])
+    np.testing.assert_array_equal(got[1], ref[1])
+    for g, r in ((got[2], ref[2]), (got[3], ref[3])):
+        np.testing.assert_allclose(g, r, rtol=rtol, atol=rtol * max(1.0, float(np.abs(r).max(initial=0))))
+    assert got[4] == fresh.skipped
+
+
+def test_stores_whose_names_fold_alike_keep_separate_cells_each_equal_to_a_fresh_pass(demo_db):
+    engine = DuckDBEngine(str(demo_db))
+    engine.con.execute("CREATE TABLE meter_days_eu AS SELECT * REPLACE (litres * 3 AS litres) FROM meter_days")
+    spec = S.PartitionSpec(("day",))
+    a, _ = S.build(engine, Source.of_table("meter_days"), COLS, spec, Settings(k=4, refine_passes=0), store="sales-eu")
+    b, _ = S.build(engine, Source.of_table("meter_days_eu"), COLS, spec, Settings(k=4, refine_passes=0), store="sales_eu")
+    assert a.cells_table != b.cells_table
+    engine.con.execute("UPDATE meter_days SET litres = litres + 100 WHERE day = DATE '2026-01-02'")
+    assert S.refresh(engine, "sales-eu").changed == ["2026-01-02"]
+    assert S.refresh(engine, "sales_eu").changed == []
+    # reference: a from-scratch cell pass over each store's own table
+    assert_store_equals_fresh_pass(engine, S.load(engine, "sales-eu"), "meter_days")
+    assert_store_equals_fresh_pass(engine, S.load(engine, "sales_eu"), "meter_days_eu")
+    engine.close()
+
+
+def test_a_new_store_never_takes_a_table_the_user_made_and_drop_removes_only_its_own(demo_db):
+    engine = DuckDBEngine(str(demo_db))
+    engine.con.execute("CREATE TABLE tillite_cells_meter_days AS SELECT 42 AS mine")
+    info, _ = S.build(engine, Source.of_table("meter_days"), COLS, S.PartitionSpec(("day",)), Settings(k=3, refine_passes=0))
+    assert info.cells_table == "tillite_cells_meter_days_2"
+    S.build(engine, Source.of_table("meter_days"), COLS, S.PartitionSpec(("day",)), Settings(k=3, refine_passes=0), store="other")
+    S.label(engine, "meter_days", "water_labels")
+    assert S.drop(engine, "meter_days") == ["tillite_cells_meter_days_2"]
+    tables = {t for (t,) in engine.con.execute("SELECT table_name FROM information_schema.tables").fetchall()}
+    assert "tillite_cells_meter_days_2" not in tables and {"tillite_cells_meter_days", "tillite_cells_other", "water_labels"} <= tables
+    assert engine.con.execute("SELECT mine FROM tillite_cells_meter_days").fetchall() == [(42,)]
+    with pytest.raises(S.StoreError, match="store meter_days not found; stores here: other"):
+        S.load(engine, "meter_days")
+    S.drop(engine, "other")
+    tables = {t for (t,) in engine.con.execute("SELECT table_name FROM information_schema.tables").fetchall()}
+    assert not {t for t in tables if t.startswith("tillite_")} - {"tillite_cells_meter_days"} and "water_labels" in tables
+    engine.close()
+
+
+def test_a_store_of_the_previous_version_is_read_and_its_first_refresh_rescans_every_partition(built):
+    engine, info, _ = built
+    # the previous version keyed partitions by their plain text
+    for table in (S.PARTS, info.cells_table):
+        engine.con.execute(f'UPDATE "{table}" SET part = substr(part, strpos(part, \':\') + 1)')
+    report = S.refresh(engine, "meter_days")
+    assert len(report.new) == 12 and len(report.vanished) == 12 and not report.changed
+    assert_store_equals_fresh_cell_pass(engine, info)
+    assert S.refresh(engine, "meter_days").unchanged == 12
+
+
+def typed_partition_table(path):
+    """30,000 rows: VARCHAR partitions SQL NULL, 'NULL' and 'x'; pairs (r, s) whose values hold / and =; mixed types."""
+    rng = np.random.default_rng(11)
+    n = 30_000
+    write_table(path, "base", {"a": rng.normal(size=n), "b": rng.normal(size=n), "grp": np.repeat(np.arange(3), n // 3)})
+    con = duckdb.connect(str(path))
+    con.execute(
+        "CREATE TABLE t AS SELECT a, b, CASE grp WHEN 0 THEN NULL WHEN 1 THEN 'NULL' ELSE 'x' END AS p, "
+        "CASE grp WHEN 0 THEN 'a/s=b' WHEN 1 THEN 'a' ELSE 'q' END AS r, CASE grp WHEN 0 THEN 'c' WHEN 1 THEN 'b/s=c' ELSE 'q' END AS s, "
+        "CASE grp WHEN 2 THEN NULL ELSE grp END AS i, DATE '2026-01-01' + CAST(grp % 2 AS INTEGER) AS d FROM base"
+    )
+    con.execute("DROP TABLE base")
+    con.close()
+    return path
+
+
+@pytest.mark.parametrize("partition_by", [("p",), ("r", "s"), ("i", "d", "p")])
+def test_partitions_are_told_apart_by_their_typed_values(tmp_path, partition_by):
+    engine = DuckDBEngine(str(typed_partition_table(tmp_path / "typed.duckdb")))
+    info, _ = S.build(engine, Source.of_table("t"), ["a", "b"], S.PartitionSpec(partition_by), Settings(k=2, refine_passes=0))
+    st = S.status(engine, "t")
+    # reference: DuckDB's own count of the rows and of the distinct partition values
+    assert st["rows"] == 30_000 and st["partitions"] == 3
+    for where in ("p IS NULL", "p = 'NULL'"):  # a change to one of the look-alike groups only
+        engine.con.execute(f"UPDATE t SET a = a + 5 WHERE {where}")
+        report = S.refresh(engine, "t")
+        assert len(report.changed) == 1 and report.unchanged == 2, report.to_dict()
+        assert_store_equals_fresh_pass(engine, info, "t")
+    assert S.status(engine, "t")["rows"] == 30_000
+    engine.close()
+
+
+def test_partition_labels_show_null_apart_from_the_string_null():
+    assert S.part_label([None], ["p"]) == "NULL"
+    assert S.part_label(["NULL"], ["p"]) == '"NULL"'
+    assert S.part_label(["a/s=b", "c"], ["r", "s"]) != S.part_label(["a", "b/s=c"], ["r", "s"])
