@@ -382,3 +382,60 @@ def test_partition_labels_show_null_apart_from_the_string_null():
     assert S.part_label([None], ["p"]) == "NULL"
     assert S.part_label(["NULL"], ["p"]) == '"NULL"'
     assert S.part_label(["a/s=b", "c"], ["r", "s"]) != S.part_label(["a", "b/s=c"], ["r", "s"])
+
+
+def test_fingerprints_and_cells_come_from_one_snapshot_while_a_writer_commits_in_between(built):
+    engine, info, _ = built
+    writer = engine.con.cursor()  # another connection to the same database, committing at once
+    day = "DATE '2026-01-03'"
+    writer.execute(f"UPDATE meter_days SET litres = litres + 10 WHERE day = {day}")
+
+    def commit_a_change_mid_refresh():
+        writer.execute(f"UPDATE meter_days SET flow_run_hours = flow_run_hours + 1000 WHERE day = {day}")
+
+    report = S.refresh(engine, "meter_days", after_fingerprints=commit_a_change_mid_refresh)
+    assert report.changed == ["2026-01-03"]
+    writer.execute(f"UPDATE meter_days SET flow_run_hours = flow_run_hours - 1000 WHERE day = {day}")  # the writer restores the values
+    assert S.refresh(engine, "meter_days").changed == []
+    # reference: a from-scratch cell pass over the table as it now is
+    assert_store_equals_fresh_cell_pass(engine, info)
+
+
+@pytest.mark.parametrize("into", ["tillite_stores", "tillite_store_parts", "TILLITE_CELLS_METER_DAYS", "tillite_macro_registry"])
+def test_labels_never_go_into_tillites_own_tables_whatever_the_flags(built, into):
+    engine, info, _ = built
+    before = store_snapshot(engine.con, info)
+    with pytest.raises(S.InputError, match=f"--into {into}: names starting with tillite_ are kept"):
+        S.label(engine, "meter_days", into, materialize=True, replace=True)
+    assert store_snapshot(engine.con, info) == before
+    engine.close()
+    res = CliRunner().invoke(main, ["label", engine.path, "--store", "meter_days", "--into", into, "--materialize", "--replace"])
+    assert res.exit_code == 1 and "Traceback" not in res.output
+    assert [ln for ln in res.output.splitlines() if ln.strip()] == [f"Error: --into {into}: names starting with tillite_ are kept for tillite's own tables (store registry, cells, macro registry); choose another name"]
+
+
+def test_k_given_to_a_refresh_is_kept_by_later_refreshes_and_shown_by_status(built):
+    engine, _, _ = built
+    assert S.refresh(engine, "meter_days", k=4).model.k == 4
+    engine.con.execute("UPDATE meter_days SET litres = litres * 1.1 WHERE day = DATE '2026-01-09'")
+    report = S.refresh(engine, "meter_days")
+    assert report.model.k == 4 and not any("new" in w or "vanished" in w for w in report.warnings)
+    assert S.status(engine, "meter_days")["settings"]["k"] == 4
+    engine.close()
+    res = CliRunner().invoke(main, ["store", "status", engine.path, "--store", "meter_days"])
+    assert res.exit_code == 0 and "settings kept by refreshes: k=4" in res.output
+
+
+def test_too_many_partitions_are_refused_naming_the_column_unless_asked(demo_db, monkeypatch):
+    monkeypatch.setattr(S, "PARTITIONS_LIMIT", 5_000)
+    monkeypatch.setattr(S, "PARTITIONS_WARN", 100)
+    res = CliRunner().invoke(main, ["store", "build", str(demo_db), "-t", "meter_days", "-c", ",".join(COLS),
+                                    "--partition-by", "litres", "--k", "3", "-q"])
+    assert res.exit_code == 1 and "Traceback" not in res.output
+    lines = [ln for ln in res.output.splitlines() if ln.strip()]
+    assert len(lines) == 1 and "--partition-by litres gives more than 5,000 partitions" in lines[0] and "--many-partitions" in lines[0]
+    res = CliRunner().invoke(main, ["store", "build", str(demo_db), "-t", "meter_days", "-c", ",".join(COLS),
+                                    "--partition-by", "meter_id", "--k", "3", "-q"])
+    # reference: the demo has 2,000 meters, over the warning level here
+    assert res.exit_code == 0, res.output
+    assert res.stderr.count("warning: --partition-by meter_id gives 2,000 partitions") == 1
