@@ -280,7 +280,7 @@ def test_regrid_rebuilds_on_a_new_grid_keeps_ids_and_relabels(built):
 
 # ----------------------------------------------------------------------------- integrity (issue 10)
 
-from conftest import write_table  # noqa: E402
+from conftest import sixty_days_of_blobs, typed_partition_table, write_table  # noqa: E402
 
 
 def cells_of_store(engine, info):
@@ -344,22 +344,6 @@ def test_a_store_of_the_previous_version_is_read_and_its_first_refresh_rescans_e
     assert len(report.new) == 12 and len(report.vanished) == 12 and not report.changed
     assert_store_equals_fresh_cell_pass(engine, info)
     assert S.refresh(engine, "meter_days").unchanged == 12
-
-
-def typed_partition_table(path):
-    """30,000 rows: VARCHAR partitions SQL NULL, 'NULL' and 'x'; pairs (r, s) whose values hold / and =; mixed types."""
-    rng = np.random.default_rng(11)
-    n = 30_000
-    write_table(path, "base", {"a": rng.normal(size=n), "b": rng.normal(size=n), "grp": np.repeat(np.arange(3), n // 3)})
-    con = duckdb.connect(str(path))
-    con.execute(
-        "CREATE TABLE t AS SELECT a, b, CASE grp WHEN 0 THEN NULL WHEN 1 THEN 'NULL' ELSE 'x' END AS p, "
-        "CASE grp WHEN 0 THEN 'a/s=b' WHEN 1 THEN 'a' ELSE 'q' END AS r, CASE grp WHEN 0 THEN 'c' WHEN 1 THEN 'b/s=c' ELSE 'q' END AS s, "
-        "CASE grp WHEN 2 THEN NULL ELSE grp END AS i, DATE '2026-01-01' + CAST(grp % 2 AS INTEGER) AS d FROM base"
-    )
-    con.execute("DROP TABLE base")
-    con.close()
-    return path
 
 
 @pytest.mark.parametrize("partition_by", [("p",), ("r", "s"), ("i", "d", "p")])
@@ -439,14 +423,6 @@ def test_too_many_partitions_are_refused_naming_the_column_unless_asked(demo_db,
     # reference: the demo has 2,000 meters, over the warning level here
     assert res.exit_code == 0, res.output
     assert res.stderr.count("warning: --partition-by meter_id gives 2,000 partitions") == 1
-
-
-def sixty_days_of_blobs(path):
-    """make_blobs (scikit-learn) rows a, b, c spread over 60 daily partitions of 1,000 rows."""
-    from sklearn.datasets import make_blobs
-
-    x, _ = make_blobs(n_samples=60_000, centers=4, n_features=3, cluster_std=1.0, center_box=(-10, 10), random_state=7)
-    return write_table(path, "readings", {"a": x[:, 0], "b": x[:, 1], "c": x[:, 2], "day": np.repeat(np.arange(60), 1000)})
 
 
 def kmeans_reference_sse(con, k):
