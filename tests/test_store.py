@@ -599,3 +599,19 @@ def test_named_partition_refresh_refuses_bad_input_in_one_line(built, args, faul
     con = duckdb.connect(engine.path)
     assert store_snapshot(con, info) == before
     con.close()
+
+
+def test_segment_matching_assignment_equals_scipys_linear_sum_assignment():
+    from scipy.optimize import linear_sum_assignment
+
+    rng = np.random.default_rng(5)
+    for trial in range(500):
+        n, m = (int(v) for v in rng.integers(1, 10, 2))
+        cost = rng.random((n, m)) * 10
+        if trial % 3 == 0:
+            cost = np.round(cost)  # ties
+        rows, cols = S.min_cost_assignment(cost)
+        ref_rows, ref_cols = linear_sum_assignment(cost)
+        # reference: scipy's solver; the total cost is unique even where the assignment is not
+        assert len(rows) == min(n, m) == len(set(cols.tolist())) == len(set(rows.tolist()))
+        assert cost[rows, cols].sum() == pytest.approx(cost[ref_rows, ref_cols].sum(), abs=1e-9)

@@ -524,14 +524,12 @@ def match_segments(
     ``new_segment_shift`` from its match, or left unmatched, is genuinely new and
     gets a fresh id; ids of vanished segments are never reused (``next_id`` only grows).
     """
-    from scipy.optimize import linear_sum_assignment
-
     k_new = len(new_centroids)
     ids = [-1] * k_new
     if len(old_centroids):
         gap = (np.asarray(new_centroids)[:, None, :] - np.asarray(old_centroids)[None, :, :]) / scale[None, None, :]
         dist = np.sqrt((gap**2).sum(axis=2))
-        rows, cols = linear_sum_assignment(dist)
+        rows, cols = min_cost_assignment(dist)
         for r, c in zip(rows, cols):
             if dist[r, c] <= new_segment_shift:
                 ids[r] = int(old_ids[c])
@@ -540,6 +538,56 @@ def match_segments(
             ids[r] = next_id
             next_id += 1
     return ids, next_id
+
+
+def min_cost_assignment(cost: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Rows and columns of a minimum-cost one-to-one assignment (Hungarian method, O(n^2 m)).
+
+    Same answer as scipy.optimize.linear_sum_assignment, for the small matrices
+    of segment matching (k x k), without importing scipy.optimize, which alone
+    takes longer than a refresh of one partition.  Potentials form of the
+    method (Kuhn 1955; Munkres 1957), rows <= columns, transposed otherwise.
+    """
+    a = np.asarray(cost, dtype=np.float64)
+    transposed = a.shape[0] > a.shape[1]
+    if transposed:
+        a = a.T
+    n, m = a.shape
+    u, v = np.zeros(n + 1), np.zeros(m + 1)
+    owner = np.zeros(m + 1, dtype=np.int64)  # owner[j]: the row (1-based) holding column j, 0 free
+    way = np.zeros(m + 1, dtype=np.int64)
+    for i in range(1, n + 1):
+        owner[0] = i
+        j0 = 0
+        slack = np.full(m + 1, np.inf)
+        used = np.zeros(m + 1, dtype=bool)
+        while True:
+            used[j0] = True
+            i0 = owner[j0]
+            free = ~used[1:]
+            cur = a[i0 - 1] - u[i0] - v[1:]
+            better = free & (cur < slack[1:])
+            slack[1:][better] = cur[better]
+            way[1:][better] = j0
+            masked = np.where(free, slack[1:], np.inf)
+            j1 = int(np.argmin(masked)) + 1
+            delta = masked[j1 - 1]
+            u[owner[used]] += delta
+            v[used] -= delta
+            slack[~used] -= delta
+            j0 = j1
+            if owner[j0] == 0:
+                break
+        while j0:
+            j1 = way[j0]
+            owner[j0] = owner[j1]
+            j0 = j1
+    cols = np.flatnonzero(owner[1:])
+    rows = owner[1:][cols] - 1
+    if transposed:
+        rows, cols = cols, rows
+    order = np.argsort(rows)
+    return rows[order], cols[order]
 
 
 def _drift(
