@@ -150,6 +150,8 @@ def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force,
     with cli.user_errors():
         engine = open_store_database(source, writable=True)
         try:
+            if regrid and (partitions or where):
+                raise click.UsageError("--regrid rescans every partition; it takes no --partitions or --where")
             if regrid:
                 model = store_api.regrid(engine, store_name, progress=cli._progress(quiet), new_segment_shift=new_segment_shift)
                 click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
