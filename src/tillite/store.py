@@ -792,7 +792,8 @@ def refresh(
     t0 = time.perf_counter()
     info = load(engine, store)
     report = RefreshReport(store=store)
-    predicate = named_partitions_predicate(engine, info, partitions, where)
+    types = dict(engine.describe(info.source)) if (partitions or where) and not info.partition.files else None
+    predicate = named_partitions_predicate(engine, info, partitions, where, types)
     if predicate is not None:
         report.checked = "named partitions"
     scan = _scan_source(info.source, info.partition)
@@ -807,7 +808,7 @@ def refresh(
                 in_scope = set(stored)
             else:
                 current = _fingerprints_where(engine, scan, info, predicate)
-                in_scope = _stored_matching(engine, info, stored, predicate)
+                in_scope = _stored_matching(engine, info, stored, predicate, types)
             if after_fingerprints is not None:
                 after_fingerprints()
             report.seconds["fingerprints"] = time.perf_counter() - t0
@@ -831,7 +832,7 @@ def refresh(
             if gone:
                 engine.execute(sqlgen.delete_statement(info.cells_table, sqlgen.in_list("part", gone)))
             if recompute:
-                engine.execute(sqlgen.insert_select_statement(info.cells_table, _restricted_cells(engine, info, scan, [current[p] for p in recompute], recompute)))
+                engine.execute(sqlgen.insert_select_statement(info.cells_table, _restricted_cells(engine, info, scan, [current[p] for p in recompute], recompute, types)))
             report.seconds["cells"] = time.perf_counter() - t1
             progress("cells", f"{len(recompute)} partition(s) summarised, {len(gone)} dropped, {report.seconds['cells']:.2f} s")
             # 4. their bookkeeping rows
@@ -882,7 +883,7 @@ def _reseeded_warning(seeding: dict[str, Any]) -> str:
 
 
 def named_partitions_predicate(
-    engine: Engine, info: StoreInfo, partitions: Sequence[str] | None, where: str | None
+    engine: Engine, info: StoreInfo, partitions: Sequence[str] | None, where: str | None, types: dict[str, str] | None = None
 ) -> Any:
     """The rows of the partitions a refresh was limited to (a sqlglot tree), or None for every partition."""
     if not partitions and not where:
@@ -900,7 +901,7 @@ def named_partitions_predicate(
             return sqlgen.partition_predicate(where, names, engine.dialect)
         except ValueError as err:
             raise InputError(f"--where {where!r}: {err}") from None
-    types = dict(engine.describe(info.source))
+    types = types or dict(engine.describe(info.source))
     by_lower = {n.lower(): n for n in names}
     wanted: dict[str, list[str]] = {}
     for item in partitions or ():
@@ -926,12 +927,14 @@ def _fingerprints_where(engine: Engine, scan: Source, info: StoreInfo, predicate
     return _fingerprints_of(engine.query(statement), len(info.partition.columns))
 
 
-def _stored_matching(engine: Engine, info: StoreInfo, stored: dict[str, Fingerprint], predicate: Any) -> set[str]:
+def _stored_matching(
+    engine: Engine, info: StoreInfo, stored: dict[str, Fingerprint], predicate: Any, types: dict[str, str] | None = None
+) -> set[str]:
     """The stored partitions whose values satisfy ``predicate``: it is evaluated by the database on a
     VALUES list of their typed values, so it means exactly what it means on the source."""
     if not stored:
         return set()
-    types = dict(engine.describe(info.source))
+    types = types or dict(engine.describe(info.source))
     names = list(info.partition.columns)
     kinds = [sqlgen.exp.DataType.build(types[n], dialect=engine.dialect) for n in names]
     key_alias = sqlgen.internal("part")
@@ -949,7 +952,9 @@ def _stored_matching(engine: Engine, info: StoreInfo, stored: dict[str, Fingerpr
     return {str(v) for v in got[key_alias]}
 
 
-def _restricted_cells(engine: Engine, info: StoreInfo, scan: Source, fps: Sequence[Fingerprint], parts: Sequence[str]):
+def _restricted_cells(
+    engine: Engine, info: StoreInfo, scan: Source, fps: Sequence[Fingerprint], parts: Sequence[str], types: dict[str, str] | None = None
+):
     """The cell pass over only the given partitions (files: only those files are read).
 
     Table partitions are picked by their raw typed values so the engine can skip
@@ -958,7 +963,7 @@ def _restricted_cells(engine: Engine, info: StoreInfo, scan: Source, fps: Sequen
     partitioning = _partitioning(info.partition)
     if info.partition.files:
         return sqlgen.cells_statement(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.dialect, partitioning)
-    types = dict(engine.describe(info.source))
+    types = types or dict(engine.describe(info.source))
     where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps], engine.dialect)
     return sqlgen.cells_statement(scan, info.columns, info.grid, engine.dialect, partitioning, where=where)
 
