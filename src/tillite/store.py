@@ -9,13 +9,17 @@ same keys and add up.  Tables of our own naming, in the source's database:
   file size and modification time for file partitions, when summarised);
 - ``tillite_store_labels``: label views/tables to re-create after a refresh;
 - ``tillite_cells_<store>``: the cells, keyed by (part, k0..), with n, ls*, ss*
-  on the centred values v = x - grid.center.
+  on the centred values v = x - grid.center.  The name is unique among the
+  stores and tables of the database (``choose_cells_table``); ``part`` is the
+  partition's key, one-to-one with its typed values (``Partitioning.key``).
 
-A refresh fingerprints every partition in one aggregate pass, recomputes cells
-only for new and changed partitions (one statement restricted to them), drops
-vanished ones, re-segments from the merged cells warm-started from the last
-model, and swaps everything in one transaction: if anything fails, the store is
-exactly as it was.
+A refresh fingerprints every partition (or only named ones) in one aggregate
+pass, recomputes cells only for new and changed partitions (one statement
+restricted to them), drops vanished ones, re-segments from the merged cells
+(warm-started from the last model and freshly seeded, keeping the better), and
+does all of it in one transaction reading one snapshot: if anything fails, the
+store is exactly as it was, and the stored fingerprints always vouch for the
+cells stored with them.
 """
 
 from __future__ import annotations
@@ -817,8 +821,8 @@ def refresh(
             changed = sorted(p for p in set(current) & set(stored) if (current[p].rows, current[p].fingerprint) != (stored[p].rows, stored[p].fingerprint))
             touched_meta = [p for p in set(current) & set(stored) if p not in changed and current[p] != stored[p]]
             report.unchanged = len(current) - len(new) - len(changed)
-            report.new, report.changed = _labels(info, current, new), _labels(info, current, changed)
-            report.vanished = _labels(info, stored, vanished)
+            report.new, report.changed = _shown(info, current, new), _shown(info, current, changed)
+            report.vanished = _shown(info, stored, vanished)
             progress("fingerprints", f"{len(current):,} partitions{' (named)' if predicate is not None else ''}: {len(new)} new, {len(changed)} changed, {len(vanished)} vanished, {report.seconds['fingerprints']:.2f} s")
             recompute = new + changed
             if not (recompute or vanished or touched_meta or force or settings_moved):
@@ -869,7 +873,7 @@ def _snapshot_transaction(engine: Engine):
     return snapshot() if snapshot is not None else engine.transaction()
 
 
-def _labels(info: StoreInfo, fps: dict[str, Fingerprint], keys: Sequence[str]) -> list[str]:
+def _shown(info: StoreInfo, fps: dict[str, Fingerprint], keys: Sequence[str]) -> list[str]:
     return sorted(part_label(fps[p].values, info.partition.columns, p) for p in keys)
 
 
