@@ -631,3 +631,13 @@ def test_partition_keys_are_one_to_one_with_typed_values_even_for_adversarial_te
     keys = [k for (k,) in con.execute(keyed.sql(dialect="duckdb")).fetchall()]
     # reference: Python's own count of the distinct typed tuples
     assert len(set(keys)) == len(set(tuples)) == len(tuples)
+
+
+def test_store_drop_of_an_unknown_store_names_the_stores_there_in_one_line(built):
+    engine, _, _ = built
+    engine.close()
+    res = CliRunner().invoke(main, ["store", "drop", engine.path, "--store", "nope"])
+    assert res.exit_code == 1 and "Traceback" not in res.output
+    assert [ln for ln in res.output.splitlines() if ln.strip()] == ["Error: store nope not found; stores here: meter_days"]
+    res = CliRunner().invoke(main, ["store", "drop", engine.path, "--store", "meter_days"])
+    assert res.exit_code == 0 and res.output.startswith("store meter_days dropped: tillite_cells_meter_days, tillite_stores")

@@ -890,6 +890,8 @@ def named_partitions_predicate(
     engine: Engine, info: StoreInfo, partitions: Sequence[str] | None, where: str | None, types: dict[str, str] | None = None
 ) -> Any:
     """The rows of the partitions a refresh was limited to (a sqlglot tree), or None for every partition."""
+    if isinstance(partitions, str):
+        partitions = [p for p in partitions.split(",") if p]
     if not partitions and not where:
         return None
     if partitions and where:
