@@ -31,14 +31,17 @@ def store_group() -> None:
 @click.option("--store", "store_name", help="Store name (default: the table name, or the folder of the files).")
 @click.option("--db", "database", help="For a Parquet/CSV SOURCE: the DuckDB file that keeps the store (created if missing).")
 @click.option("--k", "-k", "k", type=int, required=True, help="Number of segments.")
-@click.option("--scaling", type=click.Choice(["zscore", "none"]), default="zscore", show_default=True)
+@click.option("--scaling", type=click.Choice(["zscore", "none"]), default="zscore", show_default=True,
+              help="Put columns on a common scale (z-scores) before measuring distances, or use them as they are.")
 @click.option("--weights", help="Column multipliers after scaling, e.g. litres=2.")
-@click.option("--cell-budget", type=int, default=20_000, show_default=True)
+@click.option("--cell-budget", type=int, default=20_000, show_default=True,
+              help="About how many grid cells the frozen grid aims for.")
 @click.option("--refine-passes", type=int, default=0, show_default=True,
               help="Row-level refine passes at build and refresh (each scans every partition; 0 keeps refresh cost "
                    "proportional to changed partitions).")
-@click.option("--restarts", type=int, default=10, show_default=True)
-@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--restarts", type=int, default=10, show_default=True,
+              help="k-means++ restarts on the cells (at build, and for each refresh's fresh seeding).")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed of the sample and of k-means++ seeding.")
 @click.option("--regrid", is_flag=True, help="Replace an existing store of that name, with a new grid.")
 @click.option("--many-partitions", is_flag=True,
               help=f"Build even when the partition column gives more than {store_api.PARTITIONS_LIMIT:,} partitions.")
@@ -95,7 +98,7 @@ def open_store_database(location: str, writable: bool = False) -> Engine:
 @click.option("--store", "store_name", required=True, help="Store name.")
 @click.option("--outside-warn", type=float, default=0.01, show_default=True,
               help="Warn when more than this share of rows falls outside the grid's built range.")
-@click.option("--json", "as_json", is_flag=True)
+@click.option("--json", "as_json", is_flag=True, help="Print the status as JSON.")
 def status_command(source, store_name, outside_warn, as_json) -> None:
     """Partitions, rows, when summarised, and the grid in use."""
     cli = _cli()
