@@ -641,3 +641,12 @@ def test_store_drop_of_an_unknown_store_names_the_stores_there_in_one_line(built
     assert [ln for ln in res.output.splitlines() if ln.strip()] == ["Error: store nope not found; stores here: meter_days"]
     res = CliRunner().invoke(main, ["store", "drop", engine.path, "--store", "meter_days"])
     assert res.exit_code == 0 and res.output.startswith("store meter_days dropped: tillite_cells_meter_days, tillite_stores")
+
+
+def test_a_database_without_stores_is_told_so_in_one_line(tmp_path):
+    db = write_table(tmp_path / "empty.duckdb", "t", {"a": np.arange(3.0)})
+    res = CliRunner().invoke(main, ["refresh", str(db), "--store", "t"])
+    assert res.exit_code == 1 and "Traceback" not in res.output
+    assert [ln for ln in res.output.splitlines() if ln.strip()] == [
+        "Error: no summary store here (table tillite_stores not found); build one with `tillite store build`"
+    ]

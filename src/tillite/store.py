@@ -414,11 +414,19 @@ def _part_rows(store: str, fps: dict[str, Fingerprint], parts: Sequence[str]) ->
 
 
 def load(engine: Engine, store: str) -> StoreInfo:
-    """The store's metadata and current model."""
-    known = {t.split(".")[-1].lower() for t in engine.tables()}
-    if STORES not in known:
-        raise StoreError(f"no summary store here (table {STORES} not found); build one with `tillite store build`")
-    got = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": store}))))
+    """The store's metadata and current model.
+
+    The registry is read directly; the catalog (slow to list on a cold
+    connection) is consulted only when that fails, to say why.  Not for use
+    inside a transaction (a failed read would end a PostgreSQL one).
+    """
+    try:
+        got = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": store}))))
+    except Exception:
+        known = {t.split(".")[-1].lower() for t in engine.tables()}
+        if STORES not in known:
+            raise StoreError(f"no summary store here (table {STORES} not found); build one with `tillite store build`") from None
+        raise
     if not got:
         names = [r["store"] for r in _rows(engine.query(sqlgen.select_where(STORES, None, ["store"])))]
         raise StoreError(f"store {store} not found; stores here: {', '.join(names) if names else '(none)'}")
