@@ -102,3 +102,25 @@ def refresh_held_open(engine, store: str) -> Iterator[None]:
         release.set()
         t.join(30)
     assert not errors
+
+
+def typed_partition_table(path):
+    """30,000 rows: VARCHAR partitions SQL NULL, 'NULL' and 'x'; pairs (r, s) whose values hold / and =; mixed types."""
+    rng = np.random.default_rng(11)
+    n = 30_000
+    write_table(path, "base", {"a": rng.normal(size=n), "b": rng.normal(size=n), "grp": np.repeat(np.arange(3), n // 3)})
+    con = duckdb.connect(str(path))
+    con.execute(
+        "CREATE TABLE t AS SELECT a, b, CASE grp WHEN 0 THEN NULL WHEN 1 THEN 'NULL' ELSE 'x' END AS p, "
+        "CASE grp WHEN 0 THEN 'a/s=b' WHEN 1 THEN 'a' ELSE 'q' END AS r, CASE grp WHEN 0 THEN 'c' WHEN 1 THEN 'b/s=c' ELSE 'q' END AS s, "
+        "CASE grp WHEN 2 THEN NULL ELSE grp END AS i, DATE '2026-01-01' + CAST(grp % 2 AS INTEGER) AS d FROM base"
+    )
+    con.execute("DROP TABLE base")
+    con.close()
+    return path
+
+
+def sixty_days_of_blobs(path):
+    """make_blobs (scikit-learn) rows a, b, c spread over 60 daily partitions of 1,000 rows."""
+    x, _ = make_blobs(n_samples=60_000, centers=4, n_features=3, cluster_std=1.0, center_box=(-10, 10), random_state=7)
+    return write_table(path, "readings", {"a": x[:, 0], "b": x[:, 1], "c": x[:, 2], "day": np.repeat(np.arange(60), 1000)})

@@ -282,7 +282,7 @@ def test_postgres_fingerprints_ignore_row_order_and_tell_null_from_values(engine
         "(4, 1.5, 3), (4, 2, NULL), (5, 1.5, 0), (5, 2, 3), (6, 0.3, 0), (6, 2, 3), (7, 0.30000000000000004, 0), (7, 2, 3)",
     ])
     got = pg.query(sqlgen.fingerprint_statement(Source.of_table("probe"), ["a", "b"], sqlgen.Partitioning.of_columns(["part"]), "postgres"))
-    fp = dict(zip(got["part"], got["fingerprint"]))
+    fp = dict(zip(got["pv0"], got["fingerprint"]))  # keyed by the partition value as text
     # reference: the definition of the fingerprint (a sum over rows: order-free; a hash of each row: NULLs,
     # column boundaries and the shortest exact digits of a double all count)
     assert fp["1"] == fp["2"]
@@ -332,3 +332,84 @@ def test_store_commands_run_on_a_postgresql_url(server, engines):
     assert done.exit_code == 0, done.output
     # reference: the partitions CHANGES touched
     assert '"vanished": [\n      "3"\n    ]' in done.output
+
+
+# ----------------------------------------------------------------------------- integrity (issue 10)
+
+from conftest import sixty_days_of_blobs, typed_partition_table  # noqa: E402
+
+
+def copy_table_to_postgres(pg: PostgresEngine, duck_path, table: str, columns) -> None:
+    """The DuckDB table's rows, as they are, into a new PostgreSQL table of the given column types."""
+    from psycopg import sql
+
+    con = duckdb.connect(str(duck_path))
+    rows = con.execute(f"SELECT {', '.join(n for n, _ in columns)} FROM {table}").fetchall()
+    con.close()
+    spec = sql.SQL(", ").join(sql.SQL("{} {}").format(sql.Identifier(n), sql.SQL(t)) for n, t in columns)
+    pg.con.execute(sql.SQL("CREATE TABLE {} ({})").format(sql.Identifier(table), spec))
+    with pg.con.cursor().copy(sql.SQL("COPY {} FROM STDIN").format(sql.Identifier(table))) as copy:
+        for row in rows:
+            copy.write_row(row)
+
+
+def assert_pg_store_equals_fresh_pass_of(pg: PostgresEngine, info, table: str) -> None:
+    fresh = run_cell_pass(pg, Source.of_table(table), info.columns, info.grid)
+    # reference: PostgreSQL's own GROUP BY over the current table, outside the store
+    assert_same_cells(S.merged_cells(pg, info.cells_table, info.grid, len(info.columns)), (fresh.cells, fresh.keys, fresh.skipped))
+
+
+TYPED_COLUMNS = (("a", "DOUBLE PRECISION"), ("b", "DOUBLE PRECISION"), ("p", "TEXT"), ("r", "TEXT"), ("s", "TEXT"), ("i", "INTEGER"), ("d", "DATE"))
+
+
+@pytest.mark.parametrize("partition_by", [("p",), ("r", "s"), ("i", "d", "p")])
+def test_postgres_partitions_are_told_apart_by_their_typed_values(engines, tmp_path, partition_by):
+    pg, _ = engines
+    copy_table_to_postgres(pg, typed_partition_table(tmp_path / "typed.duckdb"), "t", TYPED_COLUMNS)
+    info, _ = S.build(pg, Source.of_table("t"), ["a", "b"], S.PartitionSpec(partition_by), Settings(k=2, refine_passes=0))
+    st = S.status(pg, "t")
+    assert st["rows"] == 30_000 and st["partitions"] == 3
+    for where in ("p IS NULL", "p = 'NULL'"):
+        pg.con.execute(f"UPDATE t SET a = a + 5 WHERE {where}")
+        report = S.refresh(pg, "t")
+        assert len(report.changed) == 1 and report.unchanged == 2, report.to_dict()
+        assert_pg_store_equals_fresh_pass_of(pg, info, "t")
+
+
+def test_postgres_fingerprints_and_cells_come_from_one_snapshot_while_a_writer_commits_in_between(engines):
+    import psycopg
+
+    pg, _ = engines
+    info, _ = S.build(pg, SRC, COLS, S.PartitionSpec(("day",)), Settings(**SETTINGS))
+    day = "DATE '2026-01-03'"
+    with psycopg.connect(pg.conninfo, autocommit=True) as writer:
+        writer.execute(f"UPDATE meter_days SET litres = litres + 10 WHERE day = {day}")
+
+        def commit_a_change_mid_refresh():  # a writer commits between the fingerprints and the cell pass
+            writer.execute(f"UPDATE meter_days SET flow_run_hours = flow_run_hours + 1000 WHERE day = {day}")
+
+        assert S.refresh(pg, TABLE, after_fingerprints=commit_a_change_mid_refresh).changed == ["2026-01-03"]
+        writer.execute(f"UPDATE meter_days SET flow_run_hours = flow_run_hours - 1000 WHERE day = {day}")  # and restores
+    assert S.refresh(pg, TABLE).changed == []
+    assert_pg_store_equals_fresh_cell_pass(pg, info)
+
+
+def test_postgres_refresh_finds_a_newly_arrived_group_that_the_warm_start_misses(engines, tmp_path):
+    pg, duck = engines
+    copy_table_to_postgres(pg, sixty_days_of_blobs(tmp_path / "blobs.duckdb"), "readings",
+                           (("a", "DOUBLE PRECISION"), ("b", "DOUBLE PRECISION"), ("c", "DOUBLE PRECISION"), ("day", "BIGINT")))
+    S.build(pg, Source.of_table("readings"), ["a", "b", "c"], S.PartitionSpec(("day",)), Settings(k=4, refine_passes=0))
+    pg.con.execute("UPDATE readings SET a = a + 50 WHERE day = 17")
+    report = S.refresh(pg, "readings")
+    assert report.seeding["kept"] == "fresh" and report.seeding["segments_changed"]
+    assert report.warnings[0].startswith("the segments changed") and 1000 in report.model.sizes
+
+
+def test_postgres_refresh_of_named_partitions_gives_the_same_cells_as_a_fingerprint_refresh(engines):
+    pg, _ = engines
+    info, _ = S.build(pg, SRC, COLS, S.PartitionSpec(("day",)), Settings(**SETTINGS))
+    run_pg(pg, CHANGES)
+    got = S.refresh(pg, TABLE, where="day BETWEEN DATE '2026-01-03' AND DATE '2026-01-05' OR day > DATE '2026-02-01'")
+    assert (got.changed, got.vanished, got.new) == EXPECTED["day"]
+    assert S.refresh(pg, TABLE).unchanged == 12  # 12 - 1 vanished + 1 new, all verified by the named refresh
+    assert_pg_store_equals_fresh_cell_pass(pg, info)

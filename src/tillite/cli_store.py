@@ -7,7 +7,7 @@ import json
 import click
 
 from . import store as store_api
-from .engines import Engine, PostgresEngine, engine_kind, open_database, open_source, is_file_source
+from .engines import DatabaseLocked, Engine, PostgresEngine, engine_kind, open_database, open_source, is_file_source
 
 
 def _cli():
@@ -28,24 +28,29 @@ def store_group() -> None:
 @click.option("--columns", "-c", multiple=True, required=True, help="Numeric columns to segment on, comma-separated.")
 @click.option("--partition-by", "partition_by", multiple=True,
               help="Partition column(s), comma-separated; for a Parquet/CSV SOURCE each file is a partition.")
-@click.option("--store", "store_name", help="Store name (default: the table name).")
+@click.option("--store", "store_name", help="Store name (default: the table name, or the folder of the files).")
 @click.option("--db", "database", help="For a Parquet/CSV SOURCE: the DuckDB file that keeps the store (created if missing).")
 @click.option("--k", "-k", "k", type=int, required=True, help="Number of segments.")
-@click.option("--scaling", type=click.Choice(["zscore", "none"]), default="zscore", show_default=True)
+@click.option("--scaling", type=click.Choice(["zscore", "none"]), default="zscore", show_default=True,
+              help="Put columns on a common scale (z-scores) before measuring distances, or use them as they are.")
 @click.option("--weights", help="Column multipliers after scaling, e.g. litres=2.")
-@click.option("--cell-budget", type=int, default=20_000, show_default=True)
+@click.option("--cell-budget", type=int, default=20_000, show_default=True,
+              help="About how many grid cells the frozen grid aims for.")
 @click.option("--refine-passes", type=int, default=0, show_default=True,
               help="Row-level refine passes at build and refresh (each scans every partition; 0 keeps refresh cost "
                    "proportional to changed partitions).")
-@click.option("--restarts", type=int, default=10, show_default=True)
+@click.option("--restarts", type=int, default=10, show_default=True,
+              help="k-means++ restarts on the cells (at build, and for each refresh's fresh seeding).")
 @click.option("--seed", type=int, default=0, show_default=True,
               help="Seed of the profile sample and k-means++ (0 to 2147483647).")
 @click.option("--regrid", is_flag=True, help="Replace an existing store of that name, with a new grid.")
+@click.option("--many-partitions", is_flag=True,
+              help=f"Build even when the partition column gives more than {store_api.PARTITIONS_LIMIT:,} partitions.")
 @click.option("--out", "-o", help="Also write the model file here.")
-@click.option("--quiet", "-q", is_flag=True)
-@click.option("--json", "as_json", is_flag=True)
+@click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
+@click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
 def build_command(source, table, columns, partition_by, store_name, database, k, scaling, weights, cell_budget, refine_passes,
-                  restarts, seed, regrid, out, quiet, as_json) -> None:
+                  restarts, seed, regrid, many_partitions, out, quiet, as_json) -> None:
     """Build a summary store for SOURCE: frozen grid, per-partition cells, first segments."""
     cli = _cli()
     with cli.user_errors():
@@ -58,20 +63,35 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
         engine, src = open_source(source, table, writable=True, database=database)
         try:
             spec = store_api.PartitionSpec(files=True) if src.files else store_api.PartitionSpec(tuple(cli._split_columns(partition_by)))
-            _, model = store_api.build(engine, src, cli._split_columns(columns), spec, settings, store=store_name,
-                                       progress=cli._progress(quiet), replace=regrid)
+            info, model = store_api.build(engine, src, cli._split_columns(columns), spec, settings, store=store_name,
+                                          progress=cli._progress(quiet), replace=regrid, many_partitions=many_partitions)
+            tables = store_api.store_tables(engine, info.name)
         finally:
             engine.close()
         if out:
             model.write(out)
-        click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
+        for w in info.warnings:
+            click.echo(f"warning: {w}", err=True)
+        if as_json:
+            click.echo(json.dumps({**model.summary(), "store": info.name, "tables": tables}, indent=2))
+            return
+        click.echo(f"store {info.name}: cells in {info.cells_table}; registry in {', '.join(t for t in tables if t != info.cells_table)}")
+        click.echo(model.describe())
 
 
 def open_store_database(location: str, writable: bool = False) -> Engine:
-    """The database keeping a store: a DuckDB file, or PostgreSQL by its postgresql:// URL."""
+    """The database keeping a store: a DuckDB file, or PostgreSQL by its postgresql:// URL.
+
+    A DuckDB file another process is writing (a refresh running) gives StoreBusy.
+    """
     if engine_kind(location) == "postgres":
         return PostgresEngine(location, read_only=not writable)
-    return open_database(location, writable=writable)
+    try:
+        return open_database(location, writable=writable)
+    except DatabaseLocked as err:
+        if not writable:
+            raise
+        raise store_api.StoreBusy(f"another refresh is running; nothing was changed ({err})") from None
 
 
 @store_group.command("status")
@@ -79,7 +99,7 @@ def open_store_database(location: str, writable: bool = False) -> Engine:
 @click.option("--store", "store_name", required=True, help="Store name.")
 @click.option("--outside-warn", type=float, default=0.01, show_default=True,
               help="Warn when more than this share of rows falls outside the grid's built range.")
-@click.option("--json", "as_json", is_flag=True)
+@click.option("--json", "as_json", is_flag=True, help="Print the status as JSON.")
 def status_command(source, store_name, outside_warn, as_json) -> None:
     """Partitions, rows, when summarised, and the grid in use."""
     cli = _cli()
@@ -98,6 +118,11 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
         click.echo(f"grid: width {st['grid']['width']:.4g} on {st['grid']['axes_count']} axes; "
                    f"{100 * st['outside_share']:.2f}% of rows outside the built range")
         click.echo(f"segments: k={st['k']}, ids {st['segment_ids']}")
+        kept = st["settings"]
+        click.echo(f"settings kept by refreshes: k={kept.get('k')}, refine passes {kept.get('refine_passes')}, "
+                   f"restarts {kept.get('n_init')}, seed {kept.get('seed')}, scaling {kept.get('scaling')}")
+        click.echo(f"tables: {st['cells_table']} (cells), {store_api.STORES}, {store_api.PARTS}, {store_api.LABELS}, "
+                   f"{store_api.store_history.HISTORY}")
         _echo_history(source, store_name)
         for w in st["warnings"]:
             click.echo(f"warning: {w}", err=True)
@@ -114,26 +139,38 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
 @click.option("--force", is_flag=True, help="Re-segment even when no partition changed.")
 @click.option("--regrid", is_flag=True, help="Rebuild every partition on a new grid (when `store status` warns "
               "that rows fall outside the built range); segment ids are kept where segments match.")
-@click.option("--quiet", "-q", is_flag=True)
-@click.option("--json", "as_json", is_flag=True)
-def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force, regrid, quiet, as_json) -> None:
-    """Scan only new and changed partitions, re-segment, and report drift."""
+@click.option("--partitions", "partitions", multiple=True,
+              help="Refresh only these partitions, skipping the fingerprint pass over the others: COLUMN=VALUE items, "
+                   "comma-separated (e.g. day=2026-01-15,day=2026-01-16); values of one column are alternatives, "
+                   "different columns must all match.")
+@click.option("--where", "where", help="Refresh only the partitions whose rows satisfy this SQL predicate on the "
+              "partition columns alone (e.g. \"day >= DATE '2026-01-15'\"); no other column, function or subquery.")
+@click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
+@click.option("--json", "as_json", is_flag=True, help="Print the refresh report as JSON.")
+def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force, regrid, partitions, where, quiet, as_json) -> None:
+    """Scan only new and changed partitions, re-segment, and report drift.
+
+    Options given to a refresh (--k) are kept by later refreshes; `store status` shows them.
+    """
     cli = _cli()
     with cli.user_errors():
         engine = open_store_database(source, writable=True)
         try:
+            if regrid and (partitions or where):
+                raise click.UsageError("--regrid rescans every partition; it takes no --partitions or --where")
             if regrid:
                 model = store_api.regrid(engine, store_name, progress=cli._progress(quiet), new_segment_shift=new_segment_shift)
                 click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
                 return
             report = store_api.refresh(engine, store_name, progress=cli._progress(quiet), drift_threshold=drift_warn,
-                                       new_segment_shift=new_segment_shift, k=k, force=force)
+                                       new_segment_shift=new_segment_shift, k=k, force=force,
+                                       partitions=[p for item in partitions for p in item.split(",") if p] or None,
+                                       where=where)
         finally:
             engine.close()
-        click.echo(json.dumps(report.to_dict(), indent=2, default=str) if as_json else report.describe())
-        if not as_json:
-            for w in report.warnings:
-                click.echo(f"warning: {w}", err=True)
+        click.echo(json.dumps(report.to_dict(), indent=2, default=str) if as_json else report.describe(with_warnings=False))
+        for w in report.warnings:
+            click.echo(f"warning: {w}", err=True)
 
 
 def _echo_history(source: str, store_name: str, last: int = 5) -> None:
@@ -149,3 +186,19 @@ def _echo_history(source: str, store_name: str, last: int = 5) -> None:
         click.echo(f"last {len(rows)} build(s)/refresh(es):")
         for line in store_history.describe(rows):
             click.echo(line)
+
+
+@store_group.command("drop")
+@click.argument("source", metavar="DATABASE")
+@click.option("--store", "store_name", required=True, help="Store name.")
+def drop_command(source, store_name) -> None:
+    """Remove a store: its cells table and its rows in tillite's registry tables (the registry tables too
+    when no store is left). Tables and views you made, label views included, stay."""
+    cli = _cli()
+    with cli.user_errors():
+        engine = open_store_database(source, writable=True)
+        try:
+            dropped = store_api.drop(engine, store_name)
+        finally:
+            engine.close()
+        click.echo(f"store {store_name} dropped: {', '.join(dropped)}")

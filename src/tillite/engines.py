@@ -50,6 +50,10 @@ class SourceError(TilliteError):
     """The database, table or column asked for is missing or unusable."""
 
 
+class DatabaseLocked(SourceError):
+    """Another process holds the DuckDB file's write lock (DuckDB lets one process write a file at a time)."""
+
+
 FILE_SUFFIXES = {
     ".parquet": "parquet",
     ".pq": "parquet",
@@ -163,6 +167,8 @@ class DuckDBEngine(StatementRunner):
         try:
             self.con = connect_duckdb(self.path, read_only=self.read_only)
         except duckdb.Error as err:
+            if "could not set lock" in str(err).lower():
+                raise DatabaseLocked(f"DuckDB database {self.path} is in use by another process, which holds its write lock") from None
             raise SourceError(f"cannot open DuckDB database {self.path}: {err}") from None
 
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
@@ -183,6 +189,10 @@ class DuckDBEngine(StatementRunner):
             self.con.rollback()
             raise
         self.con.commit()
+
+    def snapshot_transaction(self) -> ContextManager[None]:
+        """A transaction whose reads all see one snapshot: every DuckDB transaction does."""
+        return self.transaction()
 
     def describe(self, source: Source) -> list[tuple[str, str]]:
         try:
@@ -480,6 +490,22 @@ class PostgresEngine(StatementRunner):
         """BEGIN ... COMMIT, or ROLLBACK on any error inside."""
         with self._errors(), self.con.transaction():
             yield
+
+    @contextmanager
+    def snapshot_transaction(self) -> Iterator[None]:
+        """A REPEATABLE READ transaction: every read inside sees the snapshot of its first statement.
+
+        A store refresh fingerprints partitions and summarises them inside one
+        such transaction, so a writer committing in between cannot make the
+        fingerprints vouch for cells computed from other rows.
+        """
+        previous = self.con.isolation_level
+        self.con.isolation_level = self._psycopg.IsolationLevel.REPEATABLE_READ
+        try:
+            with self.transaction():
+                yield
+        finally:
+            self.con.isolation_level = previous
 
     def describe(self, source: Source) -> list[tuple[str, str]]:
         errors = self._psycopg.errors

@@ -920,6 +920,7 @@ def label(
     same_schema = len(target) == 1 or len(table) == 1 or target[-2] == table[-2]
     if target[-1] == table[-1] and same_schema:
         raise InputError(f"--into {into} is the source table; labels never overwrite the source")
+    refuse_own_table(into)
     kind = existing_relation_kind(engine, into)
     comment = engine.relation_comment(into) if kind is not None else None
     if kind is not None and not replace:
@@ -989,6 +990,19 @@ def store_owns_label(engine: Engine, name: str, store: str) -> bool:
         UserWarning, stacklevel=2,
     )
     return False
+
+
+#: Every table tillite keeps for itself (store registry and cells, macro registry) starts with this.
+OWN_TABLE_PREFIX = "tillite_"
+
+
+def refuse_own_table(into: str) -> None:
+    """Labels never go into a table of tillite's own naming (tillite_stores, tillite_cells_*, ...), whatever the flags."""
+    if into.split(".")[-1].strip('"').lower().startswith(OWN_TABLE_PREFIX):
+        raise InputError(
+            f"--into {into}: names starting with {OWN_TABLE_PREFIX} are kept for tillite's own tables "
+            "(store registry, cells, macro registry); choose another name"
+        )
 
 
 def _label_to_file(engine: Engine, source: Source, select, into: str, replace: bool) -> str:

@@ -425,6 +425,29 @@ class Partitioning:
             out = exp.DPipe(this=out, expression=piece)
         return out
 
+    def key(self) -> exp.Expression:
+        """The partition's key: an injective text of its typed values (the store keys partitions by it).
+
+        Files: the file name.  Columns: per column ``~`` for NULL, else the value's
+        text prefixed by its length in characters and ``:`` (``10:2026-01-15``), all
+        concatenated.  NULL and the string 'NULL' get different keys, and values
+        holding separators cannot run into the next column, unlike ``text()``.
+        """
+        if not self.names:
+            return self.text()
+
+        def piece(alias: str) -> exp.Expression:
+            text = exp.cast(col(alias), exp.DataType.build("VARCHAR"))
+            length = exp.cast(exp.Length(this=text.copy()), exp.DataType.build("VARCHAR"))
+            value = exp.DPipe(this=exp.DPipe(this=length, expression=exp.Literal.string(":")), expression=text)
+            return exp.Coalesce(this=value, expressions=[exp.Literal.string("~")])  # NULL || text is NULL
+
+        pieces = [piece(a) for a in self.aliases()]
+        out = pieces[0]
+        for p in pieces[1:]:
+            out = exp.DPipe(this=out, expression=p)
+        return out
+
     def value_columns(self) -> list[exp.Expression]:
         """Each grouped value as text (NULL stays NULL), returned as pv0, pv1, ..."""
         return [
@@ -506,14 +529,16 @@ def cells_statement(
     stage2 = exp.select(
         *[c.copy() for c in part_cols], *[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *summed
     ).from_(subquery(stage1, internal("a")))
-    part_text = [exp.alias_(partition.text(), "part", quoted=True)] if partition is not None else []
+    part_text = [exp.alias_(partition.key(), "part", quoted=True)] if partition is not None else []
     group = [*part_cols, *[col(n) for n in names]]
     return exp.select(*part_text, *[col(n) for n in names], *_sums(v, dialect)).from_(subquery(stage2, internal("b"))).group_by(
         *[c.copy() for c in group]
     )
 
 
-def fingerprint_statement(source: Source, columns: Sequence[str], partition: Partitioning, dialect: str) -> exp.Select:
+def fingerprint_statement(
+    source: Source, columns: Sequence[str], partition: Partitioning, dialect: str, where: exp.Expression | None = None
+) -> exp.Select:
     """Per partition: its text, its values, row count and an order-independent hash aggregate.
 
     Grouped on the raw partition values; the fingerprint is the sum over the
@@ -532,8 +557,10 @@ def fingerprint_statement(source: Source, columns: Sequence[str], partition: Par
         .from_(source.relation())
         .group_by(*[e.copy() for e in partition.expressions])
     )
+    if where is not None:  # only some partitions (a refresh of named partitions)
+        inner = inner.where(where)
     return exp.select(
-        exp.alias_(partition.text(), "part", quoted=True), *partition.value_columns(), col("rows"), col("fingerprint")
+        exp.alias_(partition.key(), "part", quoted=True), *partition.value_columns(), col("rows"), col("fingerprint")
     ).from_(subquery(inner, internal("f")))
 
 
@@ -597,6 +624,57 @@ def row_text(columns: Sequence[str]) -> exp.Expression:
     for piece in pieces[1:]:
         out = exp.DPipe(this=exp.DPipe(this=out, expression=exp.Literal.string(ROW_TEXT_SEPARATOR)), expression=piece)
     return out
+
+
+def distinct_count_statement(source: Source, columns: Sequence[str], limit: int) -> exp.Select:
+    """How many distinct combinations of ``columns`` the source holds, counting no further than ``limit``."""
+    distinct = exp.select(*[col(c) for c in columns]).from_(source.relation()).distinct().limit(num(int(limit)))
+    return exp.select(exp.alias_(exp.Count(this=exp.Star()), "partitions", quoted=True)).from_(subquery(distinct, internal("d")))
+
+
+#: Expression kinds a partition predicate (``refresh --where``) may hold: comparisons, logic,
+#: literals, casts and the partition columns.  No function calls, no subqueries.
+PREDICATE_KINDS = (
+    exp.Column, exp.Identifier, exp.Literal, exp.Boolean, exp.Null, exp.Cast, exp.DataType, exp.DataTypeParam,
+    exp.And, exp.Or, exp.Not, exp.Paren, exp.EQ, exp.NEQ, exp.GT, exp.GTE, exp.LT, exp.LTE, exp.In, exp.Between,
+    exp.Is, exp.Like, exp.ILike, exp.Tuple, exp.Neg, exp.Add, exp.Sub, exp.Mul, exp.Div, exp.Interval, exp.Var,
+)
+
+
+def partition_predicate(text: str, partition_columns: Sequence[str], dialect: str) -> exp.Expression:
+    """Parse a user's predicate on the partition columns into a tree of ours, or raise ValueError.
+
+    Only comparisons, AND/OR/NOT, IN, BETWEEN, IS [NOT] NULL, LIKE, casts and
+    literals are accepted, naming only ``partition_columns`` (matched without
+    regard to case and re-quoted exactly): no other column, no function call
+    (none can have a side effect), no subquery.
+    """
+    import sqlglot
+    from sqlglot.errors import ParseError
+
+    try:
+        tree = sqlglot.parse_one(text, read=dialect)
+    except ParseError as err:
+        raise ValueError(f"cannot parse it: {str(err).splitlines()[0]}") from None
+    if not isinstance(tree, (exp.Predicate, exp.Connector, exp.Not, exp.Paren)):
+        raise ValueError("it is not a predicate")
+    by_lower = {c.lower(): c for c in partition_columns}
+    for node in tree.walk():
+        if isinstance(node, exp.Column):
+            if node.table or node.name.lower() not in by_lower:
+                raise ValueError(f"it names {node.sql(dialect=dialect)}, which is not a partition column ({', '.join(partition_columns)})")
+        elif not isinstance(node, PREDICATE_KINDS):
+            if isinstance(node, (exp.Query, exp.Subquery)):
+                kind = "a subquery"
+            elif isinstance(node, exp.Func):
+                kind = f"a function call ({node.sql(dialect=dialect)})"
+            else:
+                kind = node.key.upper()
+            raise ValueError(f"it holds {kind}; only comparisons, AND/OR/NOT, IN, BETWEEN, IS NULL, LIKE, casts and literals are allowed")
+    tree = tree.copy()
+    for node in list(tree.find_all(exp.Column)):
+        node.replace(col(by_lower[node.name.lower()]))
+    return tree
 
 
 def merged_cells_statement(cells_table: str, key_names: Sequence[str], d: int) -> exp.Select:

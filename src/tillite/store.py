@@ -10,12 +10,17 @@ same keys and add up.  Tables of our own naming, in the source's database:
 - ``tillite_store_labels``: label views/tables to re-create after a refresh;
 - ``tillite_cells_<store>``: the cells, keyed by (part, k0..), with n, ls*, ss*
   on the centred values v = x - grid.center (times grid.inv_scale for grids with sums_scaled).
+  The name is unique among the
+  stores and tables of the database (``choose_cells_table``); ``part`` is the
+  partition's key, one-to-one with its typed values (``Partitioning.key``).
 
-A refresh fingerprints every partition in one aggregate pass, recomputes cells
-only for new and changed partitions (one statement restricted to them), drops
-vanished ones, re-segments from the merged cells warm-started from the last
-model, and swaps everything in one transaction: if anything fails, the store is
-exactly as it was.
+A refresh fingerprints every partition (or only named ones) in one aggregate
+pass, recomputes cells only for new and changed partitions (one statement
+restricted to them), drops vanished ones, re-segments from the merged cells
+(warm-started from the last model and freshly seeded, keeping the better), and
+does all of it in one transaction reading one snapshot: if anything fails, the
+store is exactly as it was, and the stored fingerprints always vouch for the
+cells stored with them.
 """
 
 from __future__ import annotations
@@ -33,7 +38,7 @@ import numpy as np
 
 from . import features as F
 from . import sqlgen, store_history
-from .engines import Engine, TilliteError
+from .engines import DatabaseLocked, Engine, TilliteError
 from .features import CF
 from .model import Model
 from .pipeline import (
@@ -74,11 +79,23 @@ __all__ = [
     "regrid",
     "match_segments",
     "require_transactions",
+    "drop",
+    "store_tables",
+    "part_label",
+    "PARTITIONS_WARN",
+    "PARTITIONS_LIMIT",
 ]
 
 STORES = "tillite_stores"
 PARTS = "tillite_store_parts"
 LABELS = "tillite_store_labels"
+#: Every cells table starts with this; the rest is the store's key, unique among the stores of a database.
+CELLS_PREFIX = "tillite_cells_"
+
+#: Partition counts: a build warns above PARTITIONS_WARN and refuses above PARTITIONS_LIMIT
+#: (unless asked), since each partition costs a row of bookkeeping and a group in every pass.
+PARTITIONS_WARN = 10_000
+PARTITIONS_LIMIT = 100_000
 
 STORES_COLUMNS = [
     ("store", "VARCHAR"), ("source", "VARCHAR"), ("columns", "VARCHAR"), ("partition_by", "VARCHAR"),
@@ -131,6 +148,7 @@ class StoreInfo:
     version: int
     built_at: str
     refreshed_at: str
+    warnings: list[str] = field(default_factory=list)  # from the build that returned this
 
 
 @dataclass
@@ -144,21 +162,31 @@ class RefreshReport:
     warnings: list[str] = field(default_factory=list)
     seconds: dict[str, float] = field(default_factory=dict)
     model: Model | None = None
+    checked: str = "every partition"  # or "named partitions" (refresh --partitions/--where)
+    seeding: dict[str, Any] = field(default_factory=dict)  # warm-start and fresh-seeding SSE, and which was kept
 
     def to_dict(self) -> dict[str, Any]:
         return {
             "store": self.store,
+            "checked": self.checked,
             "partitions": {"new": self.new, "changed": self.changed, "vanished": self.vanished, "unchanged": self.unchanged},
+            "seeding": self.seeding,
             "drift": self.drift,
             "warnings": self.warnings,
             "seconds": self.seconds,
         }
 
-    def describe(self) -> str:
+    def describe(self, with_warnings: bool = True) -> str:
+        """The report as text; ``with_warnings=False`` leaves the warnings to the caller (the CLI prints them on stderr)."""
         lines = [
             f"store {self.store}: {len(self.new)} new, {len(self.changed)} changed, {len(self.vanished)} vanished, "
-            f"{self.unchanged} unchanged partition(s)"
+            f"{self.unchanged} unchanged partition(s)" + (" (named partitions only)" if self.checked != "every partition" else "")
         ]
+        if self.seeding.get("kept") == "fresh":
+            lines.append(
+                f"re-segmented from a fresh k-means++ seeding (SSE {self.seeding['fresh_sse']:.6g}; "
+                f"warm start from the last model: {self.seeding['warm_sse']:.6g})"
+            )
         if self.drift:
             head = f"{'segment':>7}  {'size before':>11}  {'size after':>10}  {'shift (sd)':>10}  {'cells moved':>11}"
             lines += ["", head]
@@ -168,7 +196,8 @@ class RefreshReport:
                 shift = "-" if d["shift_sd"] is None else f"{d['shift_sd']:.3f}"
                 moved = "-" if d["cells_moved"] is None else f"{100 * d['cells_moved']:.1f}%"
                 lines.append(f"{d['segment']:>7}  {before:>11}  {after:>10}  {shift:>10}  {moved:>11}")
-        lines += [f"warning: {w}" for w in self.warnings]
+        if with_warnings:
+            lines += [f"warning: {w}" for w in self.warnings]
         return "\n".join(lines)
 
 
@@ -176,9 +205,60 @@ class RefreshReport:
 
 
 def cells_table_name(store: str) -> str:
-    """Our cells table for a store: tillite_cells_<store, folded to [a-z0-9_]> (quoted anyway)."""
+    """The readable stem of a store's cells table: tillite_cells_<store, folded to [a-z0-9_]>.
+
+    Folding is not one-to-one (``sales-eu`` and ``sales_eu`` fold alike), so a new
+    store's table is picked by ``choose_cells_table``, which makes it unique.
+    """
     folded = re.sub(r"[^a-z0-9_]+", "_", store.lower()).strip("_") or "store"
-    return f"tillite_cells_{folded}"
+    return f"{CELLS_PREFIX}{folded}"
+
+
+def choose_cells_table(engine: Engine, store: str) -> str:
+    """A cells table name no other store of this database uses and no table here has.
+
+    A store being rebuilt keeps its own table.  Otherwise the folded name, or
+    the folded name with the first free suffix _2, _3, ... when another store
+    (or any table, ours or the user's) already has it.
+    """
+    registry = {r["store"]: r["cells_table"] for r in _rows(engine.query(sqlgen.select_where(STORES, None, ["store", "cells_table"])))}
+    if store in registry:
+        return registry[store]
+    taken = {t.lower() for t in registry.values()} | {t.split(".")[-1].lower() for t in engine.tables()}
+    stem = cells_table_name(store)
+    name, i = stem, 1
+    while name.lower() in taken:
+        i += 1
+        name = f"{stem}_{i}"
+    return name
+
+
+def store_tables(engine: Engine, store: str | None = None) -> list[str]:
+    """The tillite_* tables a store keeps in its database: the registry tables and its cells table
+    (every store's, when ``store`` is None)."""
+    known = {t.split(".")[-1].lower() for t in engine.tables()}
+    if STORES not in known:
+        return []
+    where = sqlgen.equals_all({"store": store}) if store is not None else None
+    cells = [r["cells_table"] for r in _rows(engine.query(sqlgen.select_where(STORES, where, ["cells_table"])))]
+    return [STORES, PARTS, LABELS, *sorted(cells)]
+
+
+def default_store_name(source: Source) -> str:
+    """A store's name when none is given: the table's name, or for files the folder (or file) they are in.
+
+    ``data/days/**/*.parquet`` gives ``days``; ``data/meters.parquet`` gives ``meters``.
+    """
+    if source.table:
+        return source.table[-1]
+    parts = Path(source.files[0]).parts
+    globbed = [i for i, p in enumerate(parts) if any(ch in p for ch in "*?[")]
+    if not globbed:  # one file, or a folder
+        path = Path(source.files[0])
+        return path.name if path.is_dir() else path.stem
+    before = parts[: globbed[0]]
+    name = Path(*before).name if before else ""
+    return name if name not in ("", "/", ".") else "files"
 
 
 def ensure_tables(engine: Engine) -> None:
@@ -256,6 +336,30 @@ class Fingerprint:
     values: list[str | None] = field(default_factory=list)  # the partition column values, as text
 
 
+_PLAIN_VALUE = re.compile(r"^[\w.:+\- ]*$")
+
+
+def part_label(values: Sequence[str | None], names: Sequence[str], key: str = "") -> str:
+    """A partition as people read it: ``2026-01-15``, or ``region=eu/day=2026-01-15`` for several columns.
+
+    SQL NULL reads NULL; a value that could be mistaken for it or for the
+    separators (the string 'NULL', text holding ``/`` or ``=``) is shown quoted.
+    Only for display: the store keys partitions by ``sqlgen.Partitioning.key``.
+    File partitions (no names) read as their path (``key``).
+    """
+    if not names:
+        return key
+
+    def show(v: str | None) -> str:
+        if v is None:
+            return "NULL"
+        return v if v != "NULL" and _PLAIN_VALUE.match(v) else json.dumps(v)
+
+    if len(names) == 1:
+        return show(values[0])
+    return "/".join(f"{n}={show(v)}" for n, v in zip(names, values))
+
+
 def _fingerprints_of(got: dict[str, np.ndarray], width: int, files: dict[str, Fingerprint] | None = None) -> dict[str, Fingerprint]:
     out = {}
     for r in _rows(got):
@@ -313,11 +417,19 @@ def _part_rows(store: str, fps: dict[str, Fingerprint], parts: Sequence[str]) ->
 
 
 def load(engine: Engine, store: str) -> StoreInfo:
-    """The store's metadata and current model."""
-    known = {t.split(".")[-1].lower() for t in engine.tables()}
-    if STORES not in known:
-        raise StoreError(f"no summary store here (table {STORES} not found); build one with `tillite store build`")
-    got = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": store}))))
+    """The store's metadata and current model.
+
+    The registry is read directly; the catalog (slow to list on a cold
+    connection) is consulted only when that fails, to say why.  Not for use
+    inside a transaction (a failed read would end a PostgreSQL one).
+    """
+    try:
+        got = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": store}))))
+    except Exception:
+        known = {t.split(".")[-1].lower() for t in engine.tables()}
+        if STORES not in known:
+            raise StoreError(f"no summary store here (table {STORES} not found); build one with `tillite store build`") from None
+        raise
     if not got:
         names = [r["store"] for r in _rows(engine.query(sqlgen.select_where(STORES, None, ["store"])))]
         raise StoreError(f"store {store} not found; stores here: {', '.join(names) if names else '(none)'}")
@@ -372,13 +484,23 @@ def _segment_cells(
     where: str,
     init_original: np.ndarray | None,
     progress: ProgressFn,
+    seeding: dict[str, Any] | None = None,
 ) -> tuple[Model, CF, Any]:
-    """Second phase on merged cells (warm-started from centroids in original units), optional refine."""
+    """Second phase on merged cells (warm-started from centroids in original units), optional refine.
+
+    With ``seeding`` (a dict to fill) a warm start is also tried against fresh
+    k-means++ seeding on the same cells, and the lower SSE is kept: a warm start
+    cannot find a group of rows that arrived since the last model.
+    """
     weights = settings.column_weights(columns)
     cells, std = standardise_cells(cells_grid, grid, columns, settings, weights)
     init = None if init_original is None else (np.asarray(init_original) - std.center[None, :]) / std.scale[None, :]
     t0 = time.perf_counter()
     result = second_phase(cells, settings, std.weights, where, init=init)
+    if seeding is not None and init is not None:
+        result = _better_of_warm_and_fresh(cells, settings, std.weights, where, result, seeding)
+        if seeding["kept"] == "fresh":
+            init = None  # ordered by size below, like a fresh build
     progress("second phase", f"{'warm start' if init is not None else f'k-means++ x{result.restarts}'} on {int((cells.n > 0).sum()):,} cells, SSE {result.sse:.6g}, {time.perf_counter() - t0:.2f} s")
     stats = SegmentStats.of_cfs(F.group_sum(cells, result.labels, settings.k), std.weights)
     usable = int(round(cells.n.sum()))
@@ -388,6 +510,23 @@ def _segment_cells(
     model = make_model(columns, std, grid, stats, settings, source, usable + skipped, skipped, int((cells.n > 0).sum()))
     model.passes = passes
     return model, cells, std
+
+
+def _better_of_warm_and_fresh(cells: CF, settings: Settings, weights: np.ndarray, where: str, warm: Any, seeding: dict[str, Any]) -> Any:
+    """The warm-started result or a freshly seeded one, whichever has the lower SSE; fills ``seeding``."""
+    fresh = second_phase(cells, settings, weights, where, init=None)
+    kept = fresh if fresh.sse < warm.sse * (1.0 - 1e-9) else warm
+    seeding.update({
+        "warm_sse": float(warm.sse), "fresh_sse": float(fresh.sse), "kept": "fresh" if kept is fresh else "warm",
+        "segments_changed": kept is fresh and not _same_partition(warm.labels, fresh.labels),
+    })
+    return kept
+
+
+def _same_partition(a: np.ndarray, b: np.ndarray) -> bool:
+    """Do two labellings of the same cells group them identically (up to renumbering)?"""
+    pairs = {(int(x), int(y)) for x, y in zip(a, b)}
+    return len(pairs) == len(set(map(int, a))) == len(set(map(int, b)))
 
 
 def match_segments(
@@ -400,14 +539,12 @@ def match_segments(
     ``new_segment_shift`` from its match, or left unmatched, is genuinely new and
     gets a fresh id; ids of vanished segments are never reused (``next_id`` only grows).
     """
-    from scipy.optimize import linear_sum_assignment
-
     k_new = len(new_centroids)
     ids = [-1] * k_new
     if len(old_centroids):
         gap = (np.asarray(new_centroids)[:, None, :] - np.asarray(old_centroids)[None, :, :]) / scale[None, None, :]
         dist = np.sqrt((gap**2).sum(axis=2))
-        rows, cols = linear_sum_assignment(dist)
+        rows, cols = min_cost_assignment(dist)
         for r, c in zip(rows, cols):
             if dist[r, c] <= new_segment_shift:
                 ids[r] = int(old_ids[c])
@@ -416,6 +553,56 @@ def match_segments(
             ids[r] = next_id
             next_id += 1
     return ids, next_id
+
+
+def min_cost_assignment(cost: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Rows and columns of a minimum-cost one-to-one assignment (Hungarian method, O(n^2 m)).
+
+    Same answer as scipy.optimize.linear_sum_assignment, for the small matrices
+    of segment matching (k x k), without importing scipy.optimize, which alone
+    takes longer than a refresh of one partition.  Potentials form of the
+    method (Kuhn 1955; Munkres 1957), rows <= columns, transposed otherwise.
+    """
+    a = np.asarray(cost, dtype=np.float64)
+    transposed = a.shape[0] > a.shape[1]
+    if transposed:
+        a = a.T
+    n, m = a.shape
+    u, v = np.zeros(n + 1), np.zeros(m + 1)
+    owner = np.zeros(m + 1, dtype=np.int64)  # owner[j]: the row (1-based) holding column j, 0 free
+    way = np.zeros(m + 1, dtype=np.int64)
+    for i in range(1, n + 1):
+        owner[0] = i
+        j0 = 0
+        slack = np.full(m + 1, np.inf)
+        used = np.zeros(m + 1, dtype=bool)
+        while True:
+            used[j0] = True
+            i0 = owner[j0]
+            free = ~used[1:]
+            cur = a[i0 - 1] - u[i0] - v[1:]
+            better = free & (cur < slack[1:])
+            slack[1:][better] = cur[better]
+            way[1:][better] = j0
+            masked = np.where(free, slack[1:], np.inf)
+            j1 = int(np.argmin(masked)) + 1
+            delta = masked[j1 - 1]
+            u[owner[used]] += delta
+            v[used] -= delta
+            slack[~used] -= delta
+            j0 = j1
+            if owner[j0] == 0:
+                break
+        while j0:
+            j1 = way[j0]
+            owner[j0] = owner[j1]
+            j0 = j1
+    cols = np.flatnonzero(owner[1:])
+    rows = owner[1:][cols] - 1
+    if transposed:
+        rows, cols = cols, rows
+    order = np.argsort(rows)
+    return rows[order], cols[order]
 
 
 def _drift(
@@ -471,6 +658,7 @@ def build(
     replace: bool = False,
     previous: StoreInfo | None = None,
     new_segment_shift: float = 3.0,
+    many_partitions: bool = False,
 ) -> tuple[StoreInfo, Model]:
     """Build a store from scratch: frozen grid, per-partition cells and fingerprints, first model.
 
@@ -478,22 +666,27 @@ def build(
     frozen grid and warm start (used to check refreshes against fresh builds).
     ``previous`` (a regrid of an existing store): segment ids are matched to its
     model, its next id carries on, and its label views are re-created, all in
-    the build's transaction.
+    the build's transaction.  The returned StoreInfo's ``warnings`` hold the
+    build's warnings (e.g. many partitions).  Above PARTITIONS_LIMIT
+    partitions the build refuses unless ``many_partitions``.
     """
     require_transactions(engine)
     columns = list(columns)
     settings.check(columns)
-    name = store or (source.table[-1] if source.table else Path(source.files[0]).stem)
+    name = store or default_store_name(source)
     if not partition.files and not partition.columns:
         raise InputError("give the partition column(s) (--partition-by) for a table source")
     source_columns = check_columns(engine, source, columns)
     missing = [c for c in partition.columns if c not in source_columns]
     if missing:
         raise InputError(f"partition column {', '.join(missing)} not found in {source.label}; columns there: {', '.join(source_columns)}")
+    if source.table and source.table[-1].lower().startswith("tillite_"):
+        raise InputError(f"{source.label} is one of tillite's own tables; a store summarises the user's tables")
     ensure_tables(engine)
     exists = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": name}), ["store"])))
     if exists and not replace:
         raise StoreError(f"store {name} already exists; refresh it, or rebuild with replace=True (--regrid)")
+    warnings_ = [] if partition.files else _check_partition_count(engine, source, partition, many_partitions)
     t0 = time.perf_counter()
     weights = settings.column_weights(columns)
     if grid is None:
@@ -502,7 +695,7 @@ def build(
         progress("profile", f"{prof.rows:,} rows, frozen grid width {grid.width:.3g} on {grid.dims} axes, {time.perf_counter() - t0:.2f} s")
     scan = _scan_source(source, partition)
     fps = fingerprint_partitions(engine, scan, columns, partition, {})
-    cells_table = cells_table_name(name)
+    cells_table = previous.cells_table if previous is not None else choose_cells_table(engine, name)
     d = len(columns)
     with engine.transaction():
         for st in _drop_store_statements(name, cells_table):
@@ -536,7 +729,27 @@ def build(
             _relabel(engine, previous, model)
         store_history.record(engine, name, "regrid" if previous is not None else "build", model)
     model.timings = {"total": time.perf_counter() - t0}
-    return load(engine, name), model
+    info = load(engine, name)
+    info.warnings = warnings_
+    return info, model
+
+
+def _check_partition_count(engine: Engine, source: Source, partition: PartitionSpec, many_partitions: bool) -> list[str]:
+    """Warn above PARTITIONS_WARN partitions, refuse above PARTITIONS_LIMIT unless asked (counting stops there)."""
+    limit = PARTITIONS_LIMIT
+    got = engine.query(sqlgen.distinct_count_statement(source, partition.columns, limit + 1))
+    count = int(got["partitions"][0])
+    named = ", ".join(partition.columns)
+    if count > limit and not many_partitions:
+        raise InputError(
+            f"--partition-by {named} gives more than {limit:,} partitions (is it a continuous column?); each partition "
+            f"costs a bookkeeping row and a group in every pass: partition by a coarser column (a day, a month), "
+            f"or pass --many-partitions to build anyway"
+        )
+    if count > PARTITIONS_WARN:
+        shown = f"more than {limit:,}" if count > limit else f"{count:,}"
+        return [f"--partition-by {named} gives {shown} partitions (over {PARTITIONS_WARN:,}); refreshes fingerprint each of them: a coarser partition column would be faster"]
+    return []
 
 
 def regrid(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segment_shift: float = 3.0) -> Model:
@@ -575,54 +788,88 @@ def refresh(
     refine: int | None = None,
     force: bool = False,
     before_commit: Callable[[], None] | None = None,
+    partitions: Sequence[str] | None = None,
+    where: str | None = None,
+    after_fingerprints: Callable[[], None] | None = None,
 ) -> RefreshReport:
     """Bring the store up to date with its source; re-segment and report drift.
 
-    ``before_commit`` is called inside the transaction after the new cells and
-    model are in place (tests use it to inject a failure).
+    ``partitions`` (``"day=2026-01-15"`` items; one column's items are
+    alternatives, different columns must all match) or ``where`` (a predicate
+    on the partition columns only) limit the refresh to those partitions: only
+    they are fingerprinted and rescanned, for pipelines that know what they
+    loaded.  ``k`` and ``refine`` are stored and kept by later refreshes.
+
+    Everything, the fingerprints included, runs in one transaction that reads
+    one snapshot (REPEATABLE READ on PostgreSQL), so the stored fingerprints
+    always vouch for the cells stored with them.  ``after_fingerprints`` and
+    ``before_commit`` are called inside it (tests use them to interleave a
+    writer or inject a failure).
     """
     check_refresh_options(k=k, drift_threshold=drift_threshold, new_segment_shift=new_segment_shift)
     require_transactions(engine)
     t0 = time.perf_counter()
     info = load(engine, store)
     report = RefreshReport(store=store)
+    types = dict(engine.describe(info.source)) if (partitions or where) and not info.partition.files else None
+    predicate = named_partitions_predicate(engine, info, partitions, where, types)
+    if predicate is not None:
+        report.checked = "named partitions"
     scan = _scan_source(info.source, info.partition)
-    stored = _stored_fingerprints(engine, store)
-    current = fingerprint_partitions(engine, scan, info.columns, info.partition, stored)
-    report.seconds["fingerprints"] = time.perf_counter() - t0
-    report.new = sorted(set(current) - set(stored))
-    report.vanished = sorted(set(stored) - set(current))
-    report.changed = sorted(p for p in set(current) & set(stored) if (current[p].rows, current[p].fingerprint) != (stored[p].rows, stored[p].fingerprint))
-    touched_meta = [p for p in set(current) & set(stored) if p not in report.changed and current[p] != stored[p]]
-    report.unchanged = len(current) - len(report.new) - len(report.changed)
-    progress("fingerprints", f"{len(current):,} partitions: {len(report.new)} new, {len(report.changed)} changed, {len(report.vanished)} vanished, {report.seconds['fingerprints']:.2f} s")
     settings = _settings_of(info.settings, k=k, refine_passes=refine if refine is not None else info.settings.get("refine_passes"))
-    recompute = report.new + report.changed
-    if not (recompute or report.vanished or touched_meta or force or k is not None):
-        report.model = info.model
-        return report
+    settings_moved = _settings_dict(settings) != _settings_dict(_settings_of(info.settings))
     try:
-        with engine.transaction():
+        with _snapshot_transaction(engine):
+            # 1. fingerprints, read in the transaction's snapshot
+            stored = _stored_fingerprints(engine, store)
+            if predicate is None:
+                current = fingerprint_partitions(engine, scan, info.columns, info.partition, stored)
+                in_scope = set(stored)
+            else:
+                current = _fingerprints_where(engine, scan, info, predicate)
+                in_scope = _stored_matching(engine, info, stored, predicate, types)
+            if after_fingerprints is not None:
+                after_fingerprints()
+            report.seconds["fingerprints"] = time.perf_counter() - t0
+            new = sorted(set(current) - set(stored))
+            vanished = sorted(in_scope - set(current))
+            changed = sorted(p for p in set(current) & set(stored) if (current[p].rows, current[p].fingerprint) != (stored[p].rows, stored[p].fingerprint))
+            touched_meta = [p for p in set(current) & set(stored) if p not in changed and current[p] != stored[p]]
+            report.unchanged = len(current) - len(new) - len(changed)
+            report.new, report.changed = _shown(info, current, new), _shown(info, current, changed)
+            report.vanished = _shown(info, stored, vanished)
+            progress("fingerprints", f"{len(current):,} partitions{' (named)' if predicate is not None else ''}: {len(new)} new, {len(changed)} changed, {len(vanished)} vanished, {report.seconds['fingerprints']:.2f} s")
+            recompute = new + changed
+            if not (recompute or vanished or touched_meta or force or settings_moved):
+                report.model = info.model
+                return report
+            # 2. claim the store: a concurrent refresh fails here
             _claim(engine, info)
+            # 3. replace the cells of changed and vanished partitions, add new ones
             t1 = time.perf_counter()
-            gone = report.changed + report.vanished
+            gone = changed + vanished
             if gone:
                 engine.execute(sqlgen.delete_statement(info.cells_table, sqlgen.in_list("part", gone)))
             if recompute:
-                engine.execute(sqlgen.insert_select_statement(info.cells_table, _restricted_cells(engine, info, scan, [current[p] for p in recompute], recompute)))
+                engine.execute(sqlgen.insert_select_statement(info.cells_table, _restricted_cells(engine, info, scan, [current[p] for p in recompute], recompute, types)))
             report.seconds["cells"] = time.perf_counter() - t1
             progress("cells", f"{len(recompute)} partition(s) summarised, {len(gone)} dropped, {report.seconds['cells']:.2f} s")
+            # 4. their bookkeeping rows
             stale = gone + touched_meta
             if stale:
                 engine.execute(sqlgen.delete_statement(PARTS, sqlgen.all_of([sqlgen.equals_all({"store": store}), sqlgen.in_list("part", stale)])))
             fresh = recompute + touched_meta
             if fresh:
                 engine.execute(sqlgen.insert_values_statement(PARTS, _part_rows(store, current, fresh)))
+            # 5. re-segment the merged cells (warm start and fresh seeding), match ids, drift
             t2 = time.perf_counter()
-            model, cells, std = _resegment(engine, info, settings, progress, new_segment_shift)
+            model, cells, std = _resegment(engine, info, settings, progress, new_segment_shift, report.seeding)
             report.seconds["segment"] = time.perf_counter() - t2
             report.drift, report.warnings = _drift(info.model, model, cells, np.where(std.sd > 0, std.sd, 1.0), drift_threshold)
-            _save_model(engine, info, model)
+            if report.seeding.get("segments_changed"):
+                report.warnings.insert(0, _reseeded_warning(report.seeding))
+            # 6. the new model and settings, then the registered label views
+            _save_model(engine, info, model, settings)
             _relabel(engine, info, model)
             store_history.record(engine, store, "refresh", model, report)
             if before_commit is not None:
@@ -636,7 +883,100 @@ def refresh(
     return report
 
 
-def _restricted_cells(engine: Engine, info: StoreInfo, scan: Source, fps: Sequence[Fingerprint], parts: Sequence[str]):
+def _snapshot_transaction(engine: Engine):
+    """A transaction reading one snapshot: the engine's own, else a plain one (DuckDB's is a snapshot)."""
+    snapshot = getattr(engine, "snapshot_transaction", None)
+    return snapshot() if snapshot is not None else engine.transaction()
+
+
+def _shown(info: StoreInfo, fps: dict[str, Fingerprint], keys: Sequence[str]) -> list[str]:
+    return sorted(part_label(fps[p].values, info.partition.columns, p) for p in keys)
+
+
+def _reseeded_warning(seeding: dict[str, Any]) -> str:
+    gain = 1.0 - seeding["fresh_sse"] / seeding["warm_sse"] if seeding["warm_sse"] > 0 else 0.0
+    return (
+        f"the segments changed: a fresh k-means++ seeding of the merged cells fits {100 * gain:.1f}% better than the "
+        f"warm start from the last model (SSE {seeding['fresh_sse']:.6g} vs {seeding['warm_sse']:.6g}), so it was kept; "
+        "ids were matched to the old segments where centroids are close, but check the segments before relying on them"
+    )
+
+
+def named_partitions_predicate(
+    engine: Engine, info: StoreInfo, partitions: Sequence[str] | None, where: str | None, types: dict[str, str] | None = None
+) -> Any:
+    """The rows of the partitions a refresh was limited to (a sqlglot tree), or None for every partition."""
+    if isinstance(partitions, str):
+        partitions = [p for p in partitions.split(",") if p]
+    if not partitions and not where:
+        return None
+    if partitions and where:
+        raise InputError("give --partitions or --where, not both")
+    if info.partition.files:
+        raise InputError(
+            "--partitions/--where name partitions of a table; a store over files already reads only the files "
+            "whose size or modification time changed"
+        )
+    names = list(info.partition.columns)
+    if where:
+        try:
+            return sqlgen.partition_predicate(where, names, engine.dialect)
+        except ValueError as err:
+            raise InputError(f"--where {where!r}: {err}") from None
+    types = types or dict(engine.describe(info.source))
+    by_lower = {n.lower(): n for n in names}
+    wanted: dict[str, list[str]] = {}
+    for item in partitions or ():
+        name, eq, value = item.partition("=")
+        if not eq or name.strip().lower() not in by_lower:
+            raise InputError(f"--partitions {item!r}: give COLUMN=VALUE with a partition column ({', '.join(names)})")
+        wanted.setdefault(by_lower[name.strip().lower()], []).append(value)
+    terms = []
+    for name, values in wanted.items():
+        kind = sqlgen.exp.DataType.build(types[name], dialect=engine.dialect)
+        casts = [sqlgen.exp.cast(sqlgen.exp.Literal.string(v), kind) for v in values]
+        try:  # each value must read as the column's type: one tiny query, no table
+            engine.query(sqlgen.exp.select(*[sqlgen.exp.alias_(c.copy(), f"v{i}", quoted=True) for i, c in enumerate(casts)]))
+        except Exception:
+            raise InputError(f"--partitions: a value of {name} ({', '.join(values)}) does not read as {types[name]}") from None
+        terms.append(sqlgen.exp.In(this=sqlgen.col(name), expressions=casts))
+    return sqlgen.all_of(terms)
+
+
+def _fingerprints_where(engine: Engine, scan: Source, info: StoreInfo, predicate: Any) -> dict[str, Fingerprint]:
+    """Fingerprints of only the partitions whose rows satisfy ``predicate`` (the engine can skip the others' blocks)."""
+    statement = sqlgen.fingerprint_statement(scan, info.columns, _partitioning(info.partition), engine.dialect, where=predicate)
+    return _fingerprints_of(engine.query(statement), len(info.partition.columns))
+
+
+def _stored_matching(
+    engine: Engine, info: StoreInfo, stored: dict[str, Fingerprint], predicate: Any, types: dict[str, str] | None = None
+) -> set[str]:
+    """The stored partitions whose values satisfy ``predicate``: it is evaluated by the database on a
+    VALUES list of their typed values, so it means exactly what it means on the source."""
+    if not stored:
+        return set()
+    types = types or dict(engine.describe(info.source))
+    names = list(info.partition.columns)
+    kinds = [sqlgen.exp.DataType.build(types[n], dialect=engine.dialect) for n in names]
+    key_alias = sqlgen.internal("part")
+    rows = []
+    for key, fp in stored.items():
+        cells = [sqlgen.exp.Literal.string(key)]
+        cells += [sqlgen.exp.cast(sqlgen.exp.Null() if v is None else sqlgen.exp.Literal.string(v), kind) for v, kind in zip(fp.values, kinds)]
+        rows.append(sqlgen.exp.Tuple(expressions=cells))
+    alias = sqlgen.exp.TableAlias(
+        this=sqlgen.exp.to_identifier(sqlgen.internal("s"), quoted=True),
+        columns=[sqlgen.exp.to_identifier(c, quoted=True) for c in [key_alias, *names]],
+    )
+    values = sqlgen.exp.Values(expressions=rows, alias=alias)
+    got = engine.query(sqlgen.exp.select(sqlgen.col(key_alias)).from_(values).where(predicate.copy()))
+    return {str(v) for v in got[key_alias]}
+
+
+def _restricted_cells(
+    engine: Engine, info: StoreInfo, scan: Source, fps: Sequence[Fingerprint], parts: Sequence[str], types: dict[str, str] | None = None
+):
     """The cell pass over only the given partitions (files: only those files are read).
 
     Table partitions are picked by their raw typed values so the engine can skip
@@ -645,7 +985,7 @@ def _restricted_cells(engine: Engine, info: StoreInfo, scan: Source, fps: Sequen
     partitioning = _partitioning(info.partition)
     if info.partition.files:
         return sqlgen.cells_statement(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.dialect, partitioning)
-    types = dict(engine.describe(info.source))
+    types = types or dict(engine.describe(info.source))
     where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps], engine.dialect)
     return sqlgen.cells_statement(scan, info.columns, info.grid, engine.dialect, partitioning, where=where)
 
@@ -701,13 +1041,18 @@ def require_transactions(engine: Engine) -> None:
         )
 
 
-def _resegment(engine: Engine, info: StoreInfo, settings: Settings, progress: ProgressFn, new_segment_shift: float):
+def _resegment(
+    engine: Engine, info: StoreInfo, settings: Settings, progress: ProgressFn, new_segment_shift: float,
+    seeding: dict[str, Any] | None = None,
+):
     cells_grid, _, skipped = merged_cells(engine, info.cells_table, info.grid, len(info.columns))
     if cells_grid.m == 0:
         raise InputError(f"store {info.name} has no usable rows left")
     old = info.model
     init = np.asarray(old.centroids) if settings.k == old.k else None
-    model, cells, std = _segment_cells(engine, info.source, info.columns, cells_grid, skipped, info.grid, settings, f"store {info.name}", init, progress)
+    model, cells, std = _segment_cells(
+        engine, info.source, info.columns, cells_grid, skipped, info.grid, settings, f"store {info.name}", init, progress, seeding,
+    )
     ids, next_id = match_segments(np.asarray(old.centroids), old.segment_ids(), np.asarray(model.centroids), info.next_id, np.where(std.sd > 0, std.sd, 1.0), new_segment_shift)
     model.ids = ids
     model.names = dict(old.names)  # names follow the ids, which a refresh keeps
@@ -717,10 +1062,12 @@ def _resegment(engine: Engine, info: StoreInfo, settings: Settings, progress: Pr
     return model, cells, std
 
 
-def _save_model(engine: Engine, info: StoreInfo, model: Model) -> None:
-    engine.execute(sqlgen.update_statement(
-        STORES, {"model": model.to_json(), "next_id": info.next_id, "refreshed_at": _now()}, sqlgen.equals_all({"store": info.name})
-    ))
+def _save_model(engine: Engine, info: StoreInfo, model: Model, settings: Settings | None = None) -> None:
+    """The new model; and the settings when given, so an option given to one refresh (--k) is kept."""
+    values: dict[str, object] = {"model": model.to_json(), "next_id": info.next_id, "refreshed_at": _now()}
+    if settings is not None:
+        values["settings"] = json.dumps(_settings_dict(settings))
+    engine.execute(sqlgen.update_statement(STORES, values, sqlgen.equals_all({"store": info.name})))
 
 
 def _relabel(engine: Engine, info: StoreInfo, model: Model) -> None:
@@ -743,6 +1090,31 @@ def resegment(engine: Engine, store: str, progress: ProgressFn = _quiet, new_seg
     return model
 
 
+def drop(engine: Engine, store: str) -> list[str]:
+    """Remove a store: its rows in the registry tables and its cells table, in one transaction.
+
+    Returns the tables dropped.  Label views made with ``label`` stay (they read
+    the source, not the store).  The registry tables themselves are dropped
+    with the last store, so a database without stores holds no tillite_* table
+    of the store's making.
+    """
+    require_transactions(engine)
+    info = load(engine, store)
+    dropped = [info.cells_table]
+    with engine.transaction():
+        _claim(engine, info)
+        for st in _drop_store_statements(store, info.cells_table):
+            engine.execute(st)
+        engine.execute(sqlgen.delete_statement(LABELS, sqlgen.equals_all({"store": store})))
+        left = _rows(engine.query(sqlgen.select_where(STORES, None, ["store"])))
+        store_history.forget(engine, store, drop_table=not left)
+        if not left:
+            for table in (STORES, PARTS, LABELS):
+                engine.execute(sqlgen.drop_statement(table, "table"))
+            dropped += [STORES, PARTS, LABELS, store_history.HISTORY]
+    return dropped
+
+
 # ----------------------------------------------------------------------------- deltas, labels, status
 
 
@@ -754,6 +1126,7 @@ def subtract_rows(engine: Engine, store: str, part: str, rows: np.ndarray) -> in
     """
     require_transactions(engine)
     info = load(engine, store)
+    part = _part_key(engine, info, part)
     rows = np.asarray(rows, dtype=np.float64).reshape(-1, len(info.columns))
     rows = rows[np.isfinite(rows).all(axis=1)]
     if not len(rows):
@@ -781,6 +1154,17 @@ def subtract_rows(engine: Engine, store: str, part: str, rows: np.ndarray) -> in
         engine.execute(sqlgen.delete_statement(info.cells_table, sqlgen.equals_all({"n": 0})))
         engine.execute(sqlgen.update_statement(PARTS, {"fingerprint": "delta applied"}, sqlgen.equals_all({"store": store, "part": part})))
     return len(uniq)
+
+
+def _part_key(engine: Engine, info: StoreInfo, part: str) -> str:
+    """A partition's key from its key or its shown name (``part_label``); refuses an unknown or ambiguous one."""
+    stored = _stored_fingerprints(engine, info.name)
+    if part in stored:
+        return part
+    found = [k for k, fp in stored.items() if part_label(fp.values, info.partition.columns, k) == part]
+    if len(found) != 1:
+        raise StoreError(f"partition {part} {'is ambiguous' if found else 'not found'} in store {info.name}")
+    return found[0]
 
 
 def label(engine: Engine, store: str, into: str, materialize: bool = False, replace: bool = False) -> str:
@@ -825,7 +1209,12 @@ def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, 
         "refreshed_at": info.refreshed_at,
         "last_summarised": max((p["summarised_at"] for p in parts), default=None),
         "k": info.model.k,
+        "settings": info.settings,
+        "cells_table": info.cells_table,
         "segment_ids": info.model.segment_ids(),
         "warnings": warnings_,
-        "partition_list": [{"part": p["part"], "rows": p["rows"], "summarised_at": p["summarised_at"]} for p in parts],
+        "partition_list": [
+            {"part": part_label(json.loads(p["part_values"]), info.partition.columns, p["part"]), "rows": p["rows"], "summarised_at": p["summarised_at"]}
+            for p in parts
+        ],
     }

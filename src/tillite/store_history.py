@@ -18,7 +18,7 @@ from . import sqlgen
 from .engines import Engine
 from .model import Model
 
-__all__ = ["HISTORY", "HISTORY_COLUMNS", "record", "history", "describe"]
+__all__ = ["HISTORY", "HISTORY_COLUMNS", "record", "history", "describe", "forget"]
 
 HISTORY = "tillite_store_history"
 HISTORY_COLUMNS = [
@@ -61,6 +61,14 @@ def record(engine: Engine, store: str, event: str, model: Model, report: Any = N
         json.dumps(shifts),
     )
     engine.execute(sqlgen.insert_values_statement(HISTORY, [row]))
+
+
+def forget(engine: Engine, store: str, drop_table: bool) -> None:
+    """Remove a dropped store's history rows (call inside the drop's transaction); the table too with the last store."""
+    engine.execute(sqlgen.create_table_statement(HISTORY, HISTORY_COLUMNS))
+    engine.execute(sqlgen.delete_statement(HISTORY, sqlgen.equals_all({"store": store})))
+    if drop_table:
+        engine.execute(sqlgen.drop_statement(HISTORY, "table"))
 
 
 def history(engine: Engine, store: str, last: int | None = None) -> list[dict[str, Any]]:
