@@ -12,10 +12,16 @@ from typing import Iterator
 
 import click
 
-from . import __version__, sqlgen
-from .engines import TilliteError, open_source
-from .model import Model
-from .pipeline import Settings, label, run_profile, segment
+from . import __version__
+from .errors import TilliteError
+from .lazy import lazy_module, lazy_name
+
+# imported when a command first uses them, so --version and show start fast
+sqlgen = lazy_module("tillite.sqlgen")
+open_source = lazy_name("tillite.engines", "open_source")
+Model = lazy_name("tillite.model", "Model")
+Settings, label, run_profile, segment = (lazy_name("tillite.pipeline", n) for n in ("Settings", "label", "run_profile", "segment"))
+duckdb = lazy_module("duckdb")
 
 STAGES = ("profile", "cells", "refine", "label")
 
@@ -45,8 +51,6 @@ def _parse_weights(text: str | None) -> dict[str, float]:
 @contextmanager
 def user_errors(quiet: bool = False) -> Iterator[None]:
     """Turn our errors, and the database's, into clean messages and warnings into stderr lines."""
-    import duckdb
-
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:

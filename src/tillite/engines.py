@@ -21,6 +21,7 @@ import numpy as np
 from sqlglot import exp
 
 from . import sqlgen
+from .errors import TilliteError
 from .sqlgen import Source
 
 __all__ = [
@@ -38,10 +39,6 @@ __all__ = [
     "FILE_SUFFIXES",
     "NUMERIC_TYPES",
 ]
-
-
-class TilliteError(Exception):
-    """An error whose message is meant for the user as it is."""
 
 
 class SourceError(TilliteError):

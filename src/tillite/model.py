@@ -12,12 +12,12 @@ import os
 import tempfile
 from dataclasses import MISSING, asdict, dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
+from .errors import TilliteError
 
-from .engines import TilliteError
-from .sqlgen import Assignment, CellMap, Grid
+if TYPE_CHECKING:  # imported where used: `tillite show` needs neither numpy nor sqlglot
+    from .sqlgen import Assignment, CellMap
 
 FORMAT_NAME = "tillite-model"
 FORMAT_VERSION = 1
@@ -65,6 +65,8 @@ class Model:
 
     def assignment(self) -> Assignment:
         """What the refine and label SQL need to assign rows to segments."""
+        from .sqlgen import Assignment
+
         return Assignment(
             center=tuple(self.center),
             inv_scale=tuple(1.0 / s for s in self.scale),
@@ -77,6 +79,8 @@ class Model:
         """Cells whose rows are labelled through their cell (outlier group, density segments)."""
         if not self.cell_map or not self.cell_map.get("keys"):
             return None
+        from .sqlgen import CellMap, Grid
+
         return CellMap(
             grid=Grid.from_dict(self.grid),
             keys=tuple(tuple(map(float, k)) for k in self.cell_map["keys"]),
@@ -267,6 +271,8 @@ def _fmt(v: float) -> str:
 
 
 def _plain(o: Any) -> Any:
+    import numpy as np
+
     if isinstance(o, np.integer):
         return int(o)
     if isinstance(o, np.floating):
