@@ -104,6 +104,13 @@ class Engine(Protocol):
 
     def close(self) -> None: ...
 
+    # optional (see pipeline.temporary_cell_map): a small relation held by this connection only
+    def hold_temporary(self, name: str, columns: Mapping[str, np.ndarray]) -> bool:
+        """Offer numpy columns as relation ``name`` for this session; False when the engine cannot."""
+
+    def drop_temporary(self, name: str) -> None:
+        """Remove what ``hold_temporary`` made."""
+
 
 class StatementRunner:
     """What every engine shares: rendering for its dialect, and statements all-or-nothing."""
@@ -181,6 +188,18 @@ class DuckDBEngine(StatementRunner):
         where = f" in {self.path}" if self.path != ":memory:" else ""
         listing = ", ".join(existing) if existing else "(none)"
         return f"table {source.label} not found{where}; tables there: {listing}"
+
+    def hold_temporary(self, name: str, columns: Mapping[str, np.ndarray]) -> bool:
+        """Offer the columns as a relation ``name`` of this connection only (a registered scan of the arrays).
+
+        Needs no write access, so it works on read-only files too; gone with
+        ``drop_temporary`` or the connection.
+        """
+        self.con.register(name, dict(columns))
+        return True
+
+    def drop_temporary(self, name: str) -> None:
+        self.con.unregister(name)
 
     def close(self) -> None:
         self.con.close()
@@ -485,6 +504,16 @@ class PostgresEngine(StatementRunner):
         listing = ", ".join(self.tables()) or "(none)"
         return f"table {source.label} not found in PostgreSQL database {self.where}; tables there: {listing}"
 
+    def hold_temporary(self, name: str, columns: Mapping[str, np.ndarray]) -> bool:
+        """Not offered: a read-only session (how segmenting connects) may not create temporary tables.
+
+        Callers then put the rows inline in the statement.
+        """
+        return False
+
+    def drop_temporary(self, name: str) -> None:
+        return None
+
     def close(self) -> None:
         self.con.close()
 
@@ -684,6 +713,22 @@ class SparkEngine(StatementRunner):
     def _missing_table_message(self, source: Source) -> str:
         listing = ", ".join(self.tables()) or "(none)"
         return f"table {source.label} not found in Spark's catalog; tables there: {listing}"
+
+    def hold_temporary(self, name: str, columns: Mapping[str, np.ndarray]) -> bool:
+        """Offer the columns as a session-scoped temporary view ``name`` (a small DataFrame)."""
+        from pyspark.sql.types import DoubleType, IntegerType, StructField, StructType
+
+        names = list(columns)
+        rows = list(zip(*(np.asarray(columns[n]).tolist() for n in names)))
+        kinds = [IntegerType() if np.asarray(columns[n]).dtype.kind in "iu" else DoubleType() for n in names]
+        schema = StructType([StructField(n, k, nullable=False) for n, k in zip(names, kinds)])
+        with self._errors():
+            self.spark.createDataFrame(rows, schema=schema).createOrReplaceTempView(name)
+        return True
+
+    def drop_temporary(self, name: str) -> None:
+        with self._errors():
+            self.spark.catalog.dropTempView(name)
 
     def close(self) -> None:
         if self._owns_session and self.session is not None:

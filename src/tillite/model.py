@@ -86,6 +86,7 @@ class Model:
             keys=tuple(tuple(map(float, k)) for k in self.cell_map["keys"]),
             segments=tuple(int(s) for s in self.cell_map["segments"]),
             unmapped=self.cell_map.get("unmapped", "nearest"),
+            table=self.cell_map.get("table"),  # set only while a label run holds the map as a temporary relation
         )
 
     def segment_ids(self) -> list[int]:

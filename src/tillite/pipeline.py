@@ -8,15 +8,18 @@ Only samples of bounded size and CFs ever come back to Python.
 from __future__ import annotations
 
 import fnmatch
+import functools
 import glob
 import math
 import os
 import tempfile
 import time
+import uuid
 import warnings
+from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
-from typing import Any, Callable, Sequence
+from typing import Any, Callable, Iterator, Sequence
 
 import numpy as np
 
@@ -553,6 +556,13 @@ def refine_passes(
     """
     passes: list[dict] = []
     timings: dict[str, float] = {}
+    with temporary_cell_map(engine, cell_map) as held_map:
+        stats, centroids = _refine_loop(engine, source, columns, std, centroids, stats, settings, progress, usable, held_map, passes, timings)
+    return stats, passes, timings
+
+
+def _refine_loop(engine, source, columns, std, centroids, stats, settings, progress, usable, cell_map, passes, timings):
+    """The passes of ``refine_passes``; appends to passes and timings, returns the last stats and centroids."""
     for p in range(1, settings.refine_passes + 1):
         rr = run_refine_pass(engine, source, columns, std.assignment(centroids), cell_map)
         before, after = float(rr.assigned.sse.sum()), float(rr.updated.sse.sum())
@@ -566,7 +576,31 @@ def refine_passes(
             warnings.warn(f"refine pass {p}: segment(s) {np.flatnonzero(empty).tolist()} got no rows", UserWarning, stacklevel=3)
         if gain < settings.tolerance:
             break
-    return stats, passes, timings
+    return stats, centroids
+
+
+@contextmanager
+def temporary_cell_map(engine: Engine, cell_map: sqlgen.CellMap | None) -> Iterator[sqlgen.CellMap | None]:
+    """The cell map held by the engine as a small temporary relation while the block runs, then dropped.
+
+    A statement then joins a table of a few thousand rows instead of carrying
+    them inline as a VALUES list, which costs more to build, render and plan
+    than the pass itself.  Engines that cannot hold one (``hold_temporary``
+    False or missing) get the inline map back unchanged.  Not for views: they
+    outlive the session.
+    """
+    hold = getattr(engine, "hold_temporary", None)
+    if cell_map is None or cell_map.table is not None or hold is None:
+        yield cell_map
+        return
+    name = sqlgen.internal(f"map_{uuid.uuid4().hex[:12]}")
+    if not hold(name, cell_map.columns()):
+        yield cell_map
+        return
+    try:
+        yield replace(cell_map, table=name)
+    finally:
+        engine.drop_temporary(name)
 
 
 def size_order(stats: SegmentStats) -> np.ndarray:
@@ -697,6 +731,24 @@ def cells_count(cp: CellPass) -> int:
 # ----------------------------------------------------------------------------- label
 
 
+def _holding_cell_map(label_fn: Callable[..., str]) -> Callable[..., str]:
+    """Labels written once (a table, a file) join the cell map as a temporary relation, dropped afterwards.
+
+    A view keeps its map inline: it outlives the session.
+    """
+
+    @functools.wraps(label_fn)
+    def wrapper(engine: Engine, source: Source, model: Model, into: str, materialize: bool = False, *args: Any, **kw: Any) -> str:
+        cell_map = model.cell_map_spec() if (materialize or source.files) else None
+        with temporary_cell_map(engine, cell_map) as held:
+            if held is not None and held.table is not None:
+                model = replace(model, cell_map={**model.cell_map, "table": held.table})
+            return label_fn(engine, source, model, into, materialize, *args, **kw)
+
+    return wrapper
+
+
+@_holding_cell_map
 def label(
     engine: Engine,
     source: Source,
