@@ -29,10 +29,12 @@ from tillite.pipeline import (
     run_profile,
     run_refine_pass,
     segment,
+    temporary_cell_map,
 )
 from tillite.sqlgen import Source
 
 from engine_checks import (
+    every_third_cell,
     COLUMNS,
     TABLE,
     assert_same_cell_pass,
@@ -248,3 +250,14 @@ def test_missing_driver_names_the_extra(monkeypatch):
     monkeypatch.setitem(sys.modules, "psycopg", None)
     with pytest.raises(MissingExtraError, match=r"pip install 'tillite\[postgres\]'"):
         PostgresEngine("postgresql://nobody@/nothing")
+
+
+def test_refine_pass_through_an_inline_cell_map_equals_duckdb(engines):
+    pg, duck = engines
+    model = segment(duck, SRC, COLUMNS, Settings(**SETTINGS))
+    cell_map = every_third_cell(duck, SRC, model)
+    with temporary_cell_map(pg, cell_map) as held:
+        assert held.table is None  # a read-only session cannot create one: the map stays inline
+        # reference: DuckDB running the same refine tree with the map inline
+        assert_same_refine(run_refine_pass(pg, SRC, COLUMNS, model.assignment(), held),
+                           run_refine_pass(duck, SRC, COLUMNS, model.assignment(), cell_map))

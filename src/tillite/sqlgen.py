@@ -701,8 +701,8 @@ def _whole(value: float | int) -> exp.Expression:
     """A literal of an integer-valued number (a cell code, key or segment id), built cheaply."""
     whole = int(value)
     if whole < 0:
-        return exp.Paren(this=exp.Neg(this=exp.Literal.number(str(-whole))))
-    return exp.Literal.number(str(whole))
+        return exp.Paren(this=exp.Neg(this=exp.Literal(this=str(-whole), is_string=False)))
+    return exp.Literal(this=str(whole), is_string=False)
 
 
 def _assignment_layers(
@@ -807,7 +807,7 @@ def refine_statement(
     return (
         exp.select(exp.alias_(col(seg), "segment", quoted=True), *aggs)
         .from_(subquery(inner, internal("d")))
-        .group_by(col(seg))
+        .group_by(col(seg), copy=False)  # no deep copy of an inline cell map
     )
 
 
