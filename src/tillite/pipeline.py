@@ -537,6 +537,62 @@ def run_second_phase(
                        needs_cell_map=bool((cell_labels < 0).any()), unmapped="nearest")
 
 
+@dataclass
+class CellBoxes:
+    """Per cell, a box (exact standardised units) that holds every row of the cell, and the cell's segment position.
+
+    A cell of a grid binning the columns themselves is a box in every column
+    that carries weight; principal-axis grids bound only the axes, so they give
+    no boxes.
+    """
+
+    lo: np.ndarray  # (cells, d)
+    hi: np.ndarray  # (cells, d)
+    labels: np.ndarray  # (cells,) segment position, -1 for mapped (outlier) cells
+
+    @staticmethod
+    def of_grid(grid: Grid, keys: np.ndarray, std: Standardisation, labels: np.ndarray) -> "CellBoxes | None":
+        factors = grid.key_factors()
+        weighted = std.weights > 0
+        nonzero = factors != 0
+        if len(keys) == 0 or keys.shape[1] != factors.shape[1]:
+            return None
+        if (nonzero[weighted].sum(axis=1) != 1).any() or (nonzero.sum(axis=0) > 1).any():
+            return None  # a weighted column is not its own axis: rows are unbounded across the axes
+        d = len(std.center)
+        lo, hi = np.zeros((len(keys), d)), np.zeros((len(keys), d))
+        for j in np.flatnonzero(weighted):
+            a = int(np.flatnonzero(nonzero[j])[0])
+            f = factors[j, a]
+            ends = np.stack([keys[:, a] / f, (keys[:, a] + 1.0) / f])  # x_j - grid centre_j
+            shift = grid.center[j] - std.center[j]
+            lo[:, j] = (ends.min(axis=0) + shift) / std.scale[j]
+            hi[:, j] = (ends.max(axis=0) + shift) / std.scale[j]
+        slack = 1e-9 * (np.abs(lo) + np.abs(hi)) + 1e-300  # rounding of the SQL's floor arguments
+        return CellBoxes(lo - slack, hi + slack, np.asarray(labels))
+
+    def all_settled(self, centroids: np.ndarray, weights: np.ndarray) -> bool:
+        """True when every row of every cell is strictly nearer its cell's centroid than any other.
+
+        ||u - c_own||^2 - ||u - c_j||^2 is linear in u, so its largest value over
+        a box is at a corner: sum over columns of the larger end.  A relative
+        margin of 1e-9 keeps the SQL's rounding from breaking a near tie.
+        """
+        keep = self.labels >= 0
+        own = centroids[self.labels[keep]]  # (m, d)
+        w2 = np.asarray(weights, dtype=np.float64) ** 2
+        lo, hi = self.lo[keep], self.hi[keep]
+        for j in range(len(centroids)):
+            coef = -2.0 * w2[None, :] * (own - centroids[j][None, :])  # (m, d)
+            const = (w2[None, :] * (own * own - centroids[j][None, :] ** 2)).sum(axis=1)
+            worst = np.maximum(coef * lo, coef * hi).sum(axis=1) + const
+            scale = (np.abs(coef) * np.maximum(np.abs(lo), np.abs(hi))).sum(axis=1) + np.abs(const)
+            other = self.labels[keep] != j
+            if (worst[other] >= -1e-9 * scale[other] - 1e-300).any():
+                return False
+        return True
+
+
 def refine_passes(
     engine: Engine,
     source: Source,
@@ -548,21 +604,39 @@ def refine_passes(
     progress: ProgressFn,
     usable: int,
     cell_map: sqlgen.CellMap | None = None,
+    cell_boxes: CellBoxes | None = None,
 ) -> tuple[SegmentStats, list[dict], dict[str, float]]:
     """Row-level Lloyd passes in SQL until the SSE gain falls below the tolerance.
 
     Rows of cells in ``cell_map`` (the outlier group) keep their mapped segment
-    (-1) and take no part in the centroids.
+    (-1) and take no part in the centroids.  With ``cell_boxes``, no pass runs
+    when every cell lies wholly nearest the centroid of its own segment (the
+    means of the cells' CFs, ``stats``): a pass would then move no row, and
+    ``stats`` are already the rows' exact counts, means and SSEs.
     """
     passes: list[dict] = []
     timings: dict[str, float] = {}
+    if cell_boxes is not None and settings.refine_passes > 0 and (stats.n > 0).all():
+        t0 = time.perf_counter()
+        settled = cell_boxes.all_settled(stats.centroids, std.weights)
+        timings["refine_check"] = time.perf_counter() - t0
+        if settled:
+            progress("refine", "no pass needed: every cell lies wholly nearest its own segment's centroid")
+            return stats, passes, timings
     with temporary_cell_map(engine, cell_map) as held_map:
         stats, centroids = _refine_loop(engine, source, columns, std, centroids, stats, settings, progress, usable, held_map, passes, timings)
     return stats, passes, timings
 
 
 def _refine_loop(engine, source, columns, std, centroids, stats, settings, progress, usable, cell_map, passes, timings):
-    """The passes of ``refine_passes``; appends to passes and timings, returns the last stats and centroids."""
+    """The passes of ``refine_passes``; appends to passes and timings, returns the last stats and centroids.
+
+    The model keeps the last pass's assignment: the centroids the rows were
+    assigned to, with those rows' exact counts and SSE.  Labels assign with the
+    same centroids, so they reproduce the model's sizes row for row; moving the
+    centroids to the new means afterwards (a gain below the tolerance) could
+    move rows across a boundary and break that.
+    """
     for p in range(1, settings.refine_passes + 1):
         rr = run_refine_pass(engine, source, columns, std.assignment(centroids), cell_map)
         before, after = float(rr.assigned.sse.sum()), float(rr.updated.sse.sum())
@@ -574,8 +648,8 @@ def _refine_loop(engine, source, columns, std, centroids, stats, settings, progr
         empty = stats.n == 0
         if empty.any():
             warnings.warn(f"refine pass {p}: segment(s) {np.flatnonzero(empty).tolist()} got no rows", UserWarning, stacklevel=3)
-        if gain < settings.tolerance:
-            break
+        if gain < settings.tolerance or p == settings.refine_passes:
+            return rr.assigned, rr.assigned.centroids
     return stats, centroids
 
 
@@ -704,7 +778,7 @@ def segment(
     if settings.method != "density":
         stats, passes, refine_times = refine_passes(
             engine, source, columns, std, phase.centroids, stats, settings, progress, cp.usable,
-            cell_map=phase.cell_map(grid, cp.keys),
+            cell_map=phase.cell_map(grid, cp.keys), cell_boxes=CellBoxes.of_grid(grid, cp.keys, std, phase.cell_labels),
         )
     # density segments come numbered largest first already; the others are renumbered so
     order = size_order(stats) if settings.method != "density" else np.arange(len(stats.n))
