@@ -763,7 +763,9 @@ def _assignment_layers(
     row_keys = cell_map.row_keys(grid_v, dialect)
     key_names = [internal(f"c{a_}") for a_ in range(len(row_keys))]
     map_names = cell_map.column_names()
-    keyed = exp.select(exp.Star(), *[exp.alias_(e, n, quoted=True) for e, n in zip(row_keys, key_names)]).from_(
+    # the join carries what the pass needs, not the grid's own centred values
+    carried = [exp.Star()] if keep_source else [col(n) for n in [*v, internal("ok"), *score, best]]
+    keyed = exp.select(*carried, *[exp.alias_(e, n, quoted=True) for e, n in zip(row_keys, key_names)]).from_(
         subquery(stage3, internal("c"))
     )
     on = all_of([exp.EQ(this=col(kn, internal("k")), expression=col(mn, internal("m"))) for kn, mn in zip(key_names, map_names)])
