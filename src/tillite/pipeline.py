@@ -628,7 +628,11 @@ def refine_passes(
     return stats, passes, timings
 
 
-def _refine_loop(engine, source, columns, std, centroids, stats, settings, progress, usable, cell_map, passes, timings):
+def _refine_loop(
+    engine: Engine, source: Source, columns: Sequence[str], std: Standardisation, centroids: np.ndarray,
+    stats: SegmentStats, settings: Settings, progress: ProgressFn, usable: int, cell_map: sqlgen.CellMap | None,
+    passes: list[dict], timings: dict[str, float],
+) -> tuple[SegmentStats, np.ndarray]:
     """The passes of ``refine_passes``; appends to passes and timings, returns the last stats and centroids.
 
     The model keeps the last pass's assignment: the centroids the rows were
