@@ -9,7 +9,9 @@ to numpy plus scikit-learn KMeans(n_init=1); peak memory of both (process RSS
 and Python-side allocations traced by tracemalloc), and tillite's Python-side
 peak at a tenth of the rows to show it does not grow with the row count.
 Each measured job runs in its own fresh process so peaks do not mix.
-Targets: tillite total <= 6 plain scans and <= 1/8 of export-and-cluster.
+Also runs `tillite segment` as a command (fresh process, start-up included).
+Targets: the segment command <= 10 plain scans (start-up included) and <= 1/8
+of export-and-cluster; the API run's total <= 6 plain scans.
 Not a pass/fail test: read the ratios.
 """
 
@@ -99,6 +101,25 @@ def child(kind: str, db: str, table: str, cols: int, k: int) -> None:
     print(json.dumps(out))
 
 
+def measure_command(db: Path, table: str, cols: int, k: int, repeat: int) -> list[float]:
+    """Wall clock of `tillite segment` as a command, start-up included (each run a fresh process)."""
+    import os
+    import tempfile
+
+    env = dict(os.environ)
+    src = str(HERE.parent / "src")
+    env["PYTHONPATH"] = src + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
+    out = Path(tempfile.gettempdir()) / "tillite-bench-command-model.json"
+    cmd = [sys.executable, "-m", "tillite.cli", "segment", str(db), "-t", table,
+           "-c", ",".join(f"c{j}" for j in range(cols)), "--k", str(k), "-q", "-o", str(out)]
+    walls = []
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        subprocess.run(cmd, check=True, capture_output=True, env=env)
+        walls.append(time.perf_counter() - t0)
+    return walls
+
+
 def measure(kind: str, db: Path, table: str, cols: int, k: int) -> dict:
     cmd = [sys.executable, __file__, "--child", kind, "--db", str(db), "--table", table, "--cols", str(cols), "--k", str(k)]
     res = subprocess.run(cmd, capture_output=True, text=True, check=True)
@@ -126,6 +147,8 @@ def main() -> None:
         print(f"built {db} in {time.perf_counter() - t:.1f} s")
 
     scan = measure("scan", db, "blobs", args.cols, args.k)["timings"]["scan"]
+    command_walls = measure_command(db, "blobs", args.cols, args.k, args.repeat)
+    command = statistics.median(command_walls)
     runs = [measure("tillite", db, "blobs", args.cols, args.k) for _ in range(args.repeat)]
     tenth = measure("tillite", db, "blobs_tenth", args.cols, args.k)
     run = sorted(runs, key=lambda r: r["timings"]["total"])[len(runs) // 2]
@@ -138,6 +161,8 @@ def main() -> None:
     print(f"cells: {run['cells']:,}")
     print(f"tillite peak memory: process RSS {run['rss_peak_mb']:.0f} MB, Python-side {run['python_peak_mb']:.1f} MB"
           f" (at a tenth of the rows: Python-side {tenth['python_peak_mb']:.1f} MB)")
+    print(f"{'tillite segment command':<22}{command:>10.3f}{command / scan:>13.2f}   (wall clock, start-up included; runs: "
+          + ", ".join(f"{w:.3f}" for w in command_walls) + ")")
     if not args.skip_export:
         exp = measure("export", db, "blobs", args.cols, args.k)
         ex_total = exp["timings"]["export"] + exp["timings"]["kmeans"]
@@ -146,7 +171,9 @@ def main() -> None:
         print(f"export-and-cluster peak memory: process RSS {exp['rss_peak_mb']:.0f} MB, Python-side {exp['python_peak_mb']:.1f} MB")
         print(f"SSE: tillite {run['sse']:.6g}, sklearn n_init=1 {exp['sse']:.6g} (ratio {run['sse'] / exp['sse']:.5f})")
         print(f"\nratio tillite total / export-and-cluster: {run['timings']['total'] / ex_total:.3f}  (target <= 0.125)")
+        print(f"ratio segment command / export-and-cluster: {command / ex_total:.3f}  (target <= 0.125)")
     print(f"ratio tillite total / plain scan:         {run['timings']['total'] / scan:.2f}  (target <= 6)")
+    print(f"ratio segment command / plain scan:       {command / scan:.2f}  (target <= 10, start-up included)")
 
 
 if __name__ == "__main__":

@@ -155,3 +155,12 @@ def assert_null_and_nan_apart(got: dict[str, np.ndarray], rows: Rows) -> None:
     assert np.isnan(np.asarray(unit)[list(NAN_IDS)]).all()
     assert np.isposinf(np.asarray(got["select"])[list(POSINF_IDS)]).all()
     assert list(np.asarray(got["kind"][:3])) == rows.kind[:3] and np.ma.getmaskarray(got["kind"])[20]
+
+
+def every_third_cell(duck: Engine, source: Source, model: Model) -> sqlgen.CellMap:
+    """A cell map sending every third cell of the model's grid to the outlier group (-1), from DuckDB's cell pass."""
+    from tillite.pipeline import run_cell_pass
+
+    grid = sqlgen.Grid.from_dict(model.grid)
+    keys = run_cell_pass(duck, source, model.columns, grid).keys[::3]
+    return sqlgen.CellMap(grid, tuple(map(tuple, keys.tolist())), tuple([-1] * len(keys)))

@@ -577,3 +577,36 @@ def test_sql_without_a_source_prints_every_stage_in_any_dialect(model_file, dial
             assert sqlglot.parse_one(text, read=dialect) is not None
     result = run("sql", "--columns", "a", "--stage", "cells")
     assert result.exit_code == 2 and "--table" in result.output
+
+
+# ----------------------------------------------------------------------------- start-up
+
+HEAVY_MODULES = ("numpy", "sqlglot", "duckdb", "psycopg", "pyspark", "scipy", "sklearn")
+
+
+def imported_after(code: str) -> set[str]:
+    """Top-level modules a fresh interpreter holds after running code (sys.modules is the reference)."""
+    import subprocess
+    import sys
+
+    probe = code + "\nimport sys; print(' '.join(sorted({m.split('.')[0] for m in sys.modules})))"
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True)
+    return set(done.stdout.split())
+
+
+def test_starting_the_command_imports_no_engine_driver_nor_numerical_library():
+    loaded = imported_after("import tillite.cli")
+    assert not loaded & set(HEAVY_MODULES), sorted(loaded & set(HEAVY_MODULES))
+
+
+def test_show_reads_a_model_without_numpy_sqlglot_or_any_driver(model_file):
+    code = f"from tillite.cli import main\nmain(['show', {str(model_file)!r}], standalone_mode=False)"
+    assert not imported_after(code) & set(HEAVY_MODULES)
+
+
+def test_the_package_still_offers_its_public_names_on_first_use():
+    import tillite
+    from tillite.engines import TilliteError as from_engines
+
+    assert tillite.TilliteError is from_engines and tillite.segment.__module__ == "tillite.pipeline"
+    assert imported_after("import tillite") & set(HEAVY_MODULES) == set()

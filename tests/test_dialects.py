@@ -10,6 +10,7 @@ in test_engines_postgres.py and test_engines_spark.py.
 from __future__ import annotations
 
 import re
+from dataclasses import replace
 
 import duckdb
 import numpy as np
@@ -21,7 +22,7 @@ from sqlglot import exp
 from tillite import sqlgen
 from tillite.cli import main
 from tillite.engines import SourceError, engine_kind
-from tillite.sqlgen import Assignment, Grid, Source
+from tillite.sqlgen import Assignment, CellMap, Grid, Source
 
 from conftest import write_table
 
@@ -31,6 +32,10 @@ GRID = Grid(center=(0.5, -1.0, 2.0, 0.0), inv_scale=(1.0, 2.0, 0.5, 1.0), width=
             axes=((1.0, 0.2), (0.0, 1.0), (0.5, 0.5), (0.1, -0.3)))
 ASSIGN = Assignment(center=(0.0, 0.0, 1.0, 2.0), inv_scale=(1.0, 1.0, 2.0, 0.5), weights=(1.0, 1.0, 0.5, 2.0),
                     centroids=((0.0, 0.0, 0.0, 0.0), (1.0, 1.0, -1.0, 0.5), (2.0, -1.0, 0.0, 1.0)))
+
+#: Cells labelled through the map (packed into one code), and a map too wide to pack (one join column per axis).
+CELL_MAP = CellMap(GRID, ((0.0, 1.0), (-2.0, 3.0), (4.0, -1.0)), (-1, 2, -1))
+WIDE_CELL_MAP = CellMap(GRID, ((0.0, 1.0), (-3.0e15, 3.0e15)), (-1, 0), unmapped="noise")
 
 
 def statement_kinds(dialect: str, source: Source) -> dict[str, exp.Expression]:
@@ -46,6 +51,10 @@ def statement_kinds(dialect: str, source: Source) -> dict[str, exp.Expression]:
         "profile whole": sqlgen.sample_statement(source, NAMES, dialect),
         "cells": sqlgen.cells_statement(source, NAMES, GRID, dialect),
         "refine": sqlgen.refine_statement(source, NAMES, ASSIGN, dialect),
+        "refine, cell map inline": sqlgen.refine_statement(source, NAMES, ASSIGN, dialect, cell_map=CELL_MAP),
+        "refine, cell map held": sqlgen.refine_statement(source, NAMES, ASSIGN, dialect, cell_map=replace(CELL_MAP, table="map rows")),
+        "refine, wide cell map": sqlgen.refine_statement(source, NAMES, ASSIGN, dialect, cell_map=WIDE_CELL_MAP),
+        "label, cell map inline": sqlgen.label_select(source, NAMES, ["id", *NAMES], ASSIGN, dialect, cell_map=CELL_MAP),
         "label": labels,
         "label view": sqlgen.create_relation_statement("analytics.point segments", labels, False),
         "label table": sqlgen.create_relation_statement("analytics.point segments", labels.copy(), True),

@@ -29,10 +29,12 @@ from tillite.pipeline import (
     run_profile,
     run_refine_pass,
     segment,
+    temporary_cell_map,
 )
 from tillite.sqlgen import Source
 
 from engine_checks import (
+    every_third_cell,
     COLUMNS,
     TABLE,
     assert_same_cell_pass,
@@ -295,3 +297,12 @@ def test_three_runs_on_postgres_with_one_seed_write_the_same_model_file(engines,
     runs = [comparable(segment(pg, SRC, COLUMNS, Settings(**settings, seed=3, sample_rows=2_000))) for _ in range(3)]
     assert runs[0] == runs[1] == runs[2]
     assert json.loads(runs[0])["params"]["sample_repeats"] == "yes"
+def test_refine_pass_through_an_inline_cell_map_equals_duckdb(engines):
+    pg, duck = engines
+    model = segment(duck, SRC, COLUMNS, Settings(**SETTINGS))
+    cell_map = every_third_cell(duck, SRC, model)
+    with temporary_cell_map(pg, cell_map) as held:
+        assert held.table is None  # a read-only session cannot create one: the map stays inline
+        # reference: DuckDB running the same refine tree with the map inline
+        assert_same_refine(run_refine_pass(pg, SRC, COLUMNS, model.assignment(), held),
+                           run_refine_pass(duck, SRC, COLUMNS, model.assignment(), cell_map))

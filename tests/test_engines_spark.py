@@ -28,10 +28,12 @@ from tillite.pipeline import (
     run_profile,
     run_refine_pass,
     segment,
+    temporary_cell_map,
 )
 from tillite.sqlgen import Source
 
 from engine_checks import (
+    every_third_cell,
     COLUMNS,
     NAN_IDS,
     NULL_IDS,
@@ -293,3 +295,13 @@ def test_two_seeded_runs_on_spark_write_the_same_model_file(sparks, data):
         runs = [comparable(segment(sparks, src, COLUMNS, Settings(k=5, seed=3, sample_rows=2_000))) for _ in range(2)]
         assert runs[0] == runs[1]
         assert json.loads(runs[0])["params"]["sample_repeats"] == "for the same input partitioning"
+def test_refine_pass_through_a_cell_map_held_as_a_temporary_view_equals_duckdb(sparks, duck, data):
+    model = segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS))
+    cell_map = every_third_cell(duck, DUCK_SRC, model)
+    # reference: DuckDB running the same refine tree with the map inline
+    ref = run_refine_pass(duck, DUCK_SRC, COLUMNS, model.assignment(), cell_map)
+    with temporary_cell_map(sparks, cell_map) as held:
+        assert held.table is not None and sparks.spark.catalog.getTable(held.table).isTemporary
+        for src in sources(data):
+            assert_same_refine(run_refine_pass(sparks, src, COLUMNS, model.assignment(), held), ref)
+    assert all(t.name != held.table for t in sparks.spark.catalog.listTables())

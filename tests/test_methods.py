@@ -116,3 +116,29 @@ def test_two_tree_insertion_orders_agree_after_refinement(tmp_path):
     # reference: scikit-learn adjusted_rand_score between the two seeded insertion orders, after the refine passes
     assert adjusted_rand_score(runs[0], runs[1]) >= 0.95
     engine.close()
+
+
+def test_outlier_rows_are_the_rows_of_mapped_cells_whether_the_map_is_inline_or_held(tmp_path):
+    x, _ = make_blobs(n_samples=40_000, centers=4, n_features=3, cluster_std=0.6, center_box=(-12, 12), random_state=3)
+    far = np.random.default_rng(2).uniform(30, 50, size=(25, 3))
+    rows = np.vstack([x, far])
+    engine = DuckDBEngine(str(write_table(tmp_path / "m.duckdb", "t", columns_of(rows, ["a", "b", "c"]))))
+    model = segment(engine, Source.of_table("t"), ["a", "b", "c"], Settings(k=4, tree_budget=600))
+    cell_map = model.cell_map_spec()
+    assert cell_map is not None and cell_map.packing() is not None
+    label(engine, Source.of_table("t"), model, "as_view")  # map inline in the view
+    label(engine, Source.of_table("t"), model, "as_table", materialize=True)  # map held as a temporary relation
+    order = 'ORDER BY "a", "b", "c"'
+    view = engine.con.execute(f'SELECT "a", "b", "c", "segment" FROM "as_view" {order}').fetchnumpy()
+    table = engine.con.execute(f'SELECT "segment" FROM "as_table" {order}').fetchnumpy()
+    assert engine.con.execute("SELECT count(*) FROM duckdb_views() WHERE view_name LIKE '__tillite_map%'").fetchone()[0] == 0
+    np.testing.assert_array_equal(view["segment"], table["segment"])
+    # reference: numpy floor of the grid coordinates (Grid.keys_of) and a Python set of the mapped cells
+    mapped = set(map(tuple, cell_map.keys))
+    seen = np.column_stack([view[c] for c in ("a", "b", "c")])
+    in_map = np.array([tuple(k) in mapped for k in cell_map.grid.keys_of(seen)])
+    np.testing.assert_array_equal(np.asarray(view["segment"]) == -1, in_map)
+    # the model's sizes are the label counts (the refine pass ran through the same map)
+    counts = np.bincount(np.asarray(table["segment"])[np.asarray(table["segment"]) >= 0], minlength=model.k)
+    assert counts.tolist() == model.sizes
+    engine.close()

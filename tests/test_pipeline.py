@@ -313,3 +313,54 @@ def test_missing_database_file_is_an_error_and_is_not_created(tmp_path):
     with pytest.raises(SourceError, match="does not exist"):
         open_source(str(missing), "t")
     assert not missing.exists()
+
+
+# ----------------------------------------------------------------------------- refine passes and their labels
+
+
+def segment_and_label(tmp_path, x: np.ndarray, k: int):
+    names = [f"c{j}" for j in range(x.shape[1])]
+    engine = DuckDBEngine(str(write_table(tmp_path / "r.duckdb", "t", columns_of(x, names))))
+    stages: list[tuple[str, str]] = []
+    model = segment(engine, Source.of_table("t"), names, Settings(k=k), progress=lambda s, m: stages.append((s, m)))
+    label(engine, Source.of_table("t"), model, "labels")
+    got = engine.con.execute('SELECT "segment", "distance" FROM "labels"').fetchnumpy()
+    engine.close()
+    return model, np.asarray(got["segment"]), np.asarray(got["distance"]), stages
+
+
+def test_model_sizes_and_sse_are_those_of_its_labels_when_segments_overlap(tmp_path):
+    x, _ = make_blobs(n_samples=60_000, centers=5, n_features=3, cluster_std=2.5, center_box=(-20, 20), random_state=1)
+    model, seg, dist, _ = segment_and_label(tmp_path, x, 5)
+    assert model.passes  # rows near the overlaps: the refine pass ran
+    # reference: the labels' own counts (numpy bincount) and squared distances (numpy sum)
+    assert np.bincount(seg, minlength=5).tolist() == model.sizes
+    assert np.isclose((dist**2).sum(), model.sse, rtol=1e-9)
+    # reference: scikit-learn KMeans objective on the same standardised rows
+    inertia = KMeans(n_clusters=5, n_init=10, random_state=0).fit(standardise(x)).inertia_
+    assert model.sse <= inertia * 1.002
+
+
+def test_no_refine_pass_runs_when_every_cell_lies_wholly_in_its_segment(tmp_path):
+    x, truth = make_blobs(n_samples=60_000, centers=4, n_features=3, cluster_std=0.3, center_box=(-20, 20), random_state=2)
+    model, seg, dist, stages = segment_and_label(tmp_path, x, 4)
+    assert model.passes == [] and any(s == "refine" and "no pass needed" in m for s, m in stages)
+    # reference: make_blobs' generating labels (well separated) and numpy bincount of the labels
+    assert adjusted_rand_score(truth, seg) == 1.0
+    assert np.bincount(seg, minlength=4).tolist() == model.sizes
+    # reference: numpy means and squared distances of each segment's rows, in the model's standardisation
+    z = (x - np.asarray(model.center)) / np.asarray(model.scale)
+    for s in range(4):
+        np.testing.assert_allclose(model.centroids_scaled[s], z[seg == s].mean(axis=0), rtol=1e-9, atol=1e-9)
+    assert np.isclose((dist**2).sum(), model.sse, rtol=1e-9)
+
+
+def test_principal_axis_grids_give_no_cell_boxes():
+    from tillite.pipeline import CellBoxes, Standardisation
+    from tillite.sqlgen import Grid
+
+    d = 8
+    axes = np.linalg.qr(np.random.default_rng(0).normal(size=(d, 4)))[0]
+    grid = Grid(center=(0.0,) * d, inv_scale=(1.0,) * d, width=0.5, axes=tuple(map(tuple, axes)))
+    std = Standardisation(np.zeros(d), np.ones(d), np.ones(d), np.ones(d), np.zeros(d, bool))
+    assert CellBoxes.of_grid(grid, np.zeros((3, 4)), std, np.zeros(3, int)) is None

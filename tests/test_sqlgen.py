@@ -88,3 +88,26 @@ def test_statements_parse_back_in_every_target_dialect():
         for dialect in ("duckdb", "postgres", "spark", "trino", "bigquery", "snowflake"):
             text = sqlgen.render(st, dialect)
             assert sqlglot.parse_one(text, read=dialect) is not None
+
+
+def test_packed_cell_codes_match_exactly_the_mapped_cells_and_nothing_outside_them():
+    import duckdb
+
+    from tillite.sqlgen import CellMap, Grid, render
+
+    grid = Grid(center=(0.0, 0.0, 0.0), inv_scale=(1.0, 1.0, 1.0), width=1.0)
+    rng = np.random.default_rng(4)
+    mapped = {tuple(k) for k in rng.integers(-3, 4, size=(40, 3)).astype(float).tolist()}
+    cell_map = CellMap(grid, tuple(sorted(mapped)), tuple([-1] * len(mapped)))
+    # every key from far below to far above the mapped range, one row per cell centre
+    axis = np.array([-1e12, -9.0, -5.0, -4.0, -3.0, 0.0, 3.0, 4.0, 5.0, 1e15])
+    keys = np.array(np.meshgrid(axis, axis, axis)).reshape(3, -1).T
+    frame = {f"g{j}": keys[:, j] + 0.5 for j in range(3)}  # noqa: F841 (scanned by name)
+    code = render(cell_map.row_keys(["g0", "g1", "g2"], "duckdb")[0])
+    con = duckdb.connect()
+    got = con.execute(f"SELECT {code} AS code FROM frame").fetchnumpy()["code"]
+    codes = set(cell_map.codes().tolist())
+    assert len(codes) == len(mapped)  # one code per mapped cell
+    # reference: membership in a Python set of the mapped key tuples
+    expected = np.array([tuple(k) in mapped for k in keys.tolist()])
+    np.testing.assert_array_equal(np.array([c in codes for c in got.tolist()]), expected)

@@ -12,10 +12,16 @@ from typing import Iterator
 
 import click
 
-from . import __version__, sqlgen
-from .engines import TilliteError, open_source
-from .model import Model
-from .pipeline import ParameterError, Settings, label, run_profile, segment
+from . import __version__
+from .errors import ParameterError, TilliteError
+from .lazy import lazy_module, lazy_name
+
+# imported when a command first uses them, so --version and show start fast
+sqlgen = lazy_module("tillite.sqlgen")
+open_source = lazy_name("tillite.engines", "open_source")
+Model = lazy_name("tillite.model", "Model")
+Settings, label, run_profile, segment = (lazy_name("tillite.pipeline", n) for n in ("Settings", "label", "run_profile", "segment"))
+duckdb = lazy_module("duckdb")
 
 STAGES = ("profile", "cells", "refine", "label")
 
@@ -66,8 +72,6 @@ def cli_message(err: Exception) -> str:
 @contextmanager
 def user_errors(quiet: bool = False) -> Iterator[None]:
     """Turn our errors, and the database's, into clean messages and warnings into stderr lines."""
-    import duckdb
-
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:

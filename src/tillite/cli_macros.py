@@ -8,8 +8,10 @@ from __future__ import annotations
 
 import click
 
-from . import macros as M
-from .model import Model
+from .lazy import lazy_module, lazy_name
+
+M = lazy_module("tillite.macros")  # imports duckdb: only when a macros command runs
+Model = lazy_name("tillite.model", "Model")
 
 __all__ = ["macros"]
 

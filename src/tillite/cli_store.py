@@ -6,8 +6,18 @@ import json
 
 import click
 
-from . import store as store_api
-from .engines import DatabaseLocked, Engine, PostgresEngine, engine_kind, open_database, open_source, is_file_source
+from typing import TYPE_CHECKING
+
+from .lazy import lazy_module, lazy_name
+
+if TYPE_CHECKING:
+    from .engines import Engine
+
+# imported when a store command runs
+store_api = lazy_module("tillite.store")
+PostgresEngine, engine_kind, open_database, open_source, is_file_source = (
+    lazy_name("tillite.engines", n) for n in ("PostgresEngine", "engine_kind", "open_database", "open_source", "is_file_source")
+)
 
 
 def _cli():
@@ -84,6 +94,8 @@ def open_store_database(location: str, writable: bool = False) -> Engine:
 
     A DuckDB file another process is writing (a refresh running) gives StoreBusy.
     """
+    from .engines import DatabaseLocked
+
     if engine_kind(location) == "postgres":
         return PostgresEngine(location, read_only=not writable)
     try:

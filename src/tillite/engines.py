@@ -21,6 +21,7 @@ import numpy as np
 from sqlglot import exp
 
 from . import sqlgen
+from .errors import TilliteError
 from .sqlgen import Source
 
 __all__ = [
@@ -40,10 +41,6 @@ __all__ = [
     "DUCKDB_STORAGE_VERSION",
     "connect_duckdb",
 ]
-
-
-class TilliteError(Exception):
-    """An error whose message is meant for the user as it is."""
 
 
 class SourceError(TilliteError):
@@ -115,6 +112,13 @@ class Engine(Protocol):
         """The comment on a view or table (None when it has none): where tillite marks what it made."""
 
     def close(self) -> None: ...
+
+    # optional (see pipeline.temporary_cell_map): a small relation held by this connection only
+    def hold_temporary(self, name: str, columns: Mapping[str, np.ndarray]) -> bool:
+        """Offer numpy columns as relation ``name`` for this session; False when the engine cannot."""
+
+    def drop_temporary(self, name: str) -> None:
+        """Remove what ``hold_temporary`` made."""
 
 
 class StatementRunner:
@@ -223,6 +227,18 @@ class DuckDBEngine(StatementRunner):
             return (f"table {source.label} not found{where} (read as schema {source.table[0]}); "
                     f"a name holding a dot is written in double quotes: '{sqlgen.quote_name_part(dotted)}'")
         return f"table {source.label} not found{where}; tables there: {listing}"
+
+    def hold_temporary(self, name: str, columns: Mapping[str, np.ndarray]) -> bool:
+        """Offer the columns as a relation ``name`` of this connection only (a registered scan of the arrays).
+
+        Needs no write access, so it works on read-only files too; gone with
+        ``drop_temporary`` or the connection.
+        """
+        self.con.register(name, dict(columns))
+        return True
+
+    def drop_temporary(self, name: str) -> None:
+        self.con.unregister(name)
 
     def close(self) -> None:
         self.con.close()
@@ -543,6 +559,16 @@ class PostgresEngine(StatementRunner):
         listing = ", ".join(self.tables()) or "(none)"
         return f"table {source.label} not found in PostgreSQL database {self.where}; tables there: {listing}"
 
+    def hold_temporary(self, name: str, columns: Mapping[str, np.ndarray]) -> bool:
+        """Not offered: a read-only session (how segmenting connects) may not create temporary tables.
+
+        Callers then put the rows inline in the statement.
+        """
+        return False
+
+    def drop_temporary(self, name: str) -> None:
+        return None
+
     def close(self) -> None:
         self.con.close()
 
@@ -752,6 +778,22 @@ class SparkEngine(StatementRunner):
     def _missing_table_message(self, source: Source) -> str:
         listing = ", ".join(self.tables()) or "(none)"
         return f"table {source.label} not found in Spark's catalog; tables there: {listing}"
+
+    def hold_temporary(self, name: str, columns: Mapping[str, np.ndarray]) -> bool:
+        """Offer the columns as a session-scoped temporary view ``name`` (a small DataFrame)."""
+        from pyspark.sql.types import DoubleType, IntegerType, StructField, StructType
+
+        names = list(columns)
+        rows = list(zip(*(np.asarray(columns[n]).tolist() for n in names)))
+        kinds = [IntegerType() if np.asarray(columns[n]).dtype.kind in "iu" else DoubleType() for n in names]
+        schema = StructType([StructField(n, k, nullable=False) for n, k in zip(names, kinds)])
+        with self._errors():
+            self.spark.createDataFrame(rows, schema=schema).createOrReplaceTempView(name)
+        return True
+
+    def drop_temporary(self, name: str) -> None:
+        with self._errors():
+            self.spark.catalog.dropTempView(name)
 
     def close(self) -> None:
         if self._owns_session and self.session is not None:

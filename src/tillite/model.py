@@ -13,12 +13,12 @@ import os
 import tempfile
 from dataclasses import MISSING, asdict, dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
+from .errors import TilliteError
 
-from .engines import TilliteError
-from .sqlgen import Assignment, CellMap, Grid
+if TYPE_CHECKING:  # imported where used: `tillite show` needs neither numpy nor sqlglot
+    from .sqlgen import Assignment, CellMap
 
 FORMAT_NAME = "tillite-model"
 FORMAT_VERSION = 1
@@ -71,6 +71,8 @@ class Model:
 
     def assignment(self) -> Assignment:
         """What the refine and label SQL need to assign rows to segments."""
+        from .sqlgen import Assignment
+
         return Assignment(
             center=tuple(self.center),
             inv_scale=tuple(1.0 / s for s in self.scale),
@@ -83,11 +85,14 @@ class Model:
         """Cells whose rows are labelled through their cell (outlier group, density segments)."""
         if not self.cell_map or not self.cell_map.get("keys"):
             return None
+        from .sqlgen import CellMap, Grid
+
         return CellMap(
             grid=Grid.from_dict(self.grid),
             keys=tuple(tuple(map(float, k)) for k in self.cell_map["keys"]),
             segments=tuple(int(s) for s in self.cell_map["segments"]),
             unmapped=self.cell_map.get("unmapped", "nearest"),
+            table=self.cell_map.get("table"),  # set only while a label run holds the map as a temporary relation
         )
 
     def segment_ids(self) -> list[int]:
@@ -365,6 +370,8 @@ def _fmt(v: float) -> str:
 
 
 def _plain(o: Any) -> Any:
+    import numpy as np
+
     if isinstance(o, np.integer):
         return int(o)
     if isinstance(o, np.floating):

@@ -8,21 +8,25 @@ Only samples of bounded size and CFs ever come back to Python.
 from __future__ import annotations
 
 import fnmatch
+import functools
 import glob
 import math
 import os
 import tempfile
 import time
+import uuid
 import warnings
+from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
-from typing import Any, Callable, Sequence
+from typing import Any, Callable, Iterator, Sequence
 
 import numpy as np
 
 from . import features as F
 from . import sqlgen
 from .engines import Engine, SourceError, TilliteError, file_reader_for, is_numeric_type
+from .errors import InputError, ParameterError
 from .features import CF
 from .model import Model, usual_file_mode
 from .segmenters import KMeansResult, kmeans
@@ -46,10 +50,6 @@ __all__ = [
 ]
 
 ProgressFn = Callable[[str, str], None]
-
-
-class InputError(TilliteError):
-    """The request cannot be met with this data (empty table, k too large, ...)."""
 
 
 @dataclass
@@ -144,30 +144,6 @@ MAX_WEIGHT = 1e6
 
 #: Seeds are passed to every engine's sampler: keep them in a 32-bit signed range.
 MAX_SEED = 2**31 - 1
-
-
-class ParameterError(InputError):
-    """A parameter value no run can use.
-
-    The message is a template: ``{name}`` stands for the parameter, spelled as
-    the API names it (``str(err)``) or as the CLI names its option (``err.text(names)``).
-    """
-
-    def __init__(self, template: str, *parameters: str, spelled: dict[str, str] | None = None) -> None:
-        self.template = template
-        self.parameters = parameters
-        self.spelled = spelled or {}
-        super().__init__(self.text({}))
-
-    def text(self, names: dict[str, str]) -> str:
-        """The message with each parameter spelled by ``names`` (else as the API spells it)."""
-        def spell(p: str) -> str:
-            return names[p] if p in names or hasattr(type(names), "__missing__") else self.spelled.get(p, p)
-
-        out = self.template  # replace, not str.format: values in the message may hold braces
-        for p in self.parameters:
-            out = out.replace("{" + p + "}", spell(p))
-        return out
 
 
 def check_range(name: str, value: Any, low: float, bound: str = "min") -> None:
@@ -716,6 +692,62 @@ def run_second_phase(
                        needs_cell_map=bool((cell_labels < 0).any()), unmapped="nearest")
 
 
+@dataclass
+class CellBoxes:
+    """Per cell, a box (exact standardised units) that holds every row of the cell, and the cell's segment position.
+
+    A cell of a grid binning the columns themselves is a box in every column
+    that carries weight; principal-axis grids bound only the axes, so they give
+    no boxes.
+    """
+
+    lo: np.ndarray  # (cells, d)
+    hi: np.ndarray  # (cells, d)
+    labels: np.ndarray  # (cells,) segment position, -1 for mapped (outlier) cells
+
+    @staticmethod
+    def of_grid(grid: Grid, keys: np.ndarray, std: Standardisation, labels: np.ndarray) -> "CellBoxes | None":
+        factors = grid.key_factors()
+        weighted = std.weights > 0
+        nonzero = factors != 0
+        if len(keys) == 0 or keys.shape[1] != factors.shape[1]:
+            return None
+        if (nonzero[weighted].sum(axis=1) != 1).any() or (nonzero.sum(axis=0) > 1).any():
+            return None  # a weighted column is not its own axis: rows are unbounded across the axes
+        d = len(std.center)
+        lo, hi = np.zeros((len(keys), d)), np.zeros((len(keys), d))
+        for j in np.flatnonzero(weighted):
+            a = int(np.flatnonzero(nonzero[j])[0])
+            f = factors[j, a]
+            ends = np.stack([keys[:, a] / f, (keys[:, a] + 1.0) / f])  # x_j - grid centre_j
+            shift = grid.center[j] - std.center[j]
+            lo[:, j] = (ends.min(axis=0) + shift) / std.scale[j]
+            hi[:, j] = (ends.max(axis=0) + shift) / std.scale[j]
+        slack = 1e-9 * (np.abs(lo) + np.abs(hi)) + 1e-300  # rounding of the SQL's floor arguments
+        return CellBoxes(lo - slack, hi + slack, np.asarray(labels))
+
+    def all_settled(self, centroids: np.ndarray, weights: np.ndarray) -> bool:
+        """True when every row of every cell is strictly nearer its cell's centroid than any other.
+
+        ||u - c_own||^2 - ||u - c_j||^2 is linear in u, so its largest value over
+        a box is at a corner: sum over columns of the larger end.  A relative
+        margin of 1e-9 keeps the SQL's rounding from breaking a near tie.
+        """
+        keep = self.labels >= 0
+        own = centroids[self.labels[keep]]  # (m, d)
+        w2 = np.asarray(weights, dtype=np.float64) ** 2
+        lo, hi = self.lo[keep], self.hi[keep]
+        for j in range(len(centroids)):
+            coef = -2.0 * w2[None, :] * (own - centroids[j][None, :])  # (m, d)
+            const = (w2[None, :] * (own * own - centroids[j][None, :] ** 2)).sum(axis=1)
+            worst = np.maximum(coef * lo, coef * hi).sum(axis=1) + const
+            scale = (np.abs(coef) * np.maximum(np.abs(lo), np.abs(hi))).sum(axis=1) + np.abs(const)
+            other = self.labels[keep] != j
+            if (worst[other] >= -1e-9 * scale[other] - 1e-300).any():
+                return False
+        return True
+
+
 def refine_passes(
     engine: Engine,
     source: Source,
@@ -727,18 +759,43 @@ def refine_passes(
     progress: ProgressFn,
     usable: int,
     cell_map: sqlgen.CellMap | None = None,
+    cell_boxes: CellBoxes | None = None,
 ) -> tuple[SegmentStats, list[dict], dict[str, float]]:
     """Row-level Lloyd passes in SQL until the SSE gain falls below the tolerance.
 
     Rows of cells in ``cell_map`` (the outlier group) keep their mapped segment
-    (-1) and take no part in the centroids.  The stats returned are those of the
-    last pass's assignment (its centroids, counts and SSE), so a model made from
-    them describes exactly the assignment `label` produces with those centroids;
-    the last pass's move of the centroids to the means is not kept.
+    (-1) and take no part in the centroids.  With ``cell_boxes``, no pass runs
+    when every cell lies wholly nearest the centroid of its own segment (the
+    means of the cells' CFs, ``stats``): a pass would then move no row, and
+    ``stats`` are already the rows' exact counts, means and SSEs.
     """
     passes: list[dict] = []
-    last: SegmentStats | None = None
     timings: dict[str, float] = {}
+    if cell_boxes is not None and settings.refine_passes > 0 and (stats.n > 0).all():
+        t0 = time.perf_counter()
+        settled = cell_boxes.all_settled(stats.centroids, std.weights)
+        timings["refine_check"] = time.perf_counter() - t0
+        if settled:
+            progress("refine", "no pass needed: every cell lies wholly nearest its own segment's centroid")
+            return stats, passes, timings
+    with temporary_cell_map(engine, cell_map) as held_map:
+        stats, centroids = _refine_loop(engine, source, columns, std, centroids, stats, settings, progress, usable, held_map, passes, timings)
+    return stats, passes, timings
+
+
+def _refine_loop(
+    engine: Engine, source: Source, columns: Sequence[str], std: Standardisation, centroids: np.ndarray,
+    stats: SegmentStats, settings: Settings, progress: ProgressFn, usable: int, cell_map: sqlgen.CellMap | None,
+    passes: list[dict], timings: dict[str, float],
+) -> tuple[SegmentStats, np.ndarray]:
+    """The passes of ``refine_passes``; appends to passes and timings, returns the last stats and centroids.
+
+    The model keeps the last pass's assignment: the centroids the rows were
+    assigned to, with those rows' exact counts and SSE.  Labels assign with the
+    same centroids, so they reproduce the model's sizes row for row; moving the
+    centroids to the new means afterwards (a gain below the tolerance) could
+    move rows across a boundary and break that.
+    """
     for p in range(1, settings.refine_passes + 1):
         rr = run_refine_pass(engine, source, columns, std.assignment(centroids), cell_map)
         before, after = float(rr.assigned.sse.sum()), float(rr.updated.sse.sum())
@@ -746,14 +803,37 @@ def refine_passes(
         passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain, "seconds": rr.seconds})
         timings[f"refine_{p}"] = rr.seconds
         progress("refine", f"pass {p}: {usable:,} rows, SSE {before:.6g} -> {after:.6g}, {rr.seconds:.2f} s")
-        last = rr.assigned
         stats, centroids = rr.updated, rr.updated.centroids
         empty = stats.n == 0
         if empty.any():
             warnings.warn(f"refine pass {p}: segment(s) {np.flatnonzero(empty).tolist()} got no rows", UserWarning, stacklevel=3)
-        if gain < settings.tolerance:
-            break
-    return (last if last is not None else stats), passes, timings
+        if gain < settings.tolerance or p == settings.refine_passes:
+            return rr.assigned, rr.assigned.centroids
+    return stats, centroids
+
+
+@contextmanager
+def temporary_cell_map(engine: Engine, cell_map: sqlgen.CellMap | None) -> Iterator[sqlgen.CellMap | None]:
+    """The cell map held by the engine as a small temporary relation while the block runs, then dropped.
+
+    A statement then joins a table of a few thousand rows instead of carrying
+    them inline as a VALUES list, which costs more to build, render and plan
+    than the pass itself.  Engines that cannot hold one (``hold_temporary``
+    False or missing) get the inline map back unchanged.  Not for views: they
+    outlive the session.
+    """
+    hold = getattr(engine, "hold_temporary", None)
+    if cell_map is None or cell_map.table is not None or hold is None:
+        yield cell_map
+        return
+    name = sqlgen.internal(f"map_{uuid.uuid4().hex[:12]}")
+    if not hold(name, cell_map.columns()):
+        yield cell_map
+        return
+    try:
+        yield replace(cell_map, table=name)
+    finally:
+        engine.drop_temporary(name)
 
 
 def size_order(stats: SegmentStats) -> np.ndarray:
@@ -857,7 +937,7 @@ def segment(
     if settings.method != "density":
         stats, passes, refine_times = refine_passes(
             engine, source, columns, std, phase.centroids, stats, settings, progress, cp.usable,
-            cell_map=phase.cell_map(grid, cp.keys),
+            cell_map=phase.cell_map(grid, cp.keys), cell_boxes=CellBoxes.of_grid(grid, cp.keys, std, phase.cell_labels),
         )
     # density segments come numbered largest first already; the others are renumbered so
     order = size_order(stats) if settings.method != "density" else np.arange(len(stats.n))
@@ -886,6 +966,24 @@ def cells_count(cp: CellPass) -> int:
 # ----------------------------------------------------------------------------- label
 
 
+def _holding_cell_map(label_fn: Callable[..., str]) -> Callable[..., str]:
+    """Labels written once (a table, a file) join the cell map as a temporary relation, dropped afterwards.
+
+    A view keeps its map inline: it outlives the session.
+    """
+
+    @functools.wraps(label_fn)
+    def wrapper(engine: Engine, source: Source, model: Model, into: str, materialize: bool = False, *args: Any, **kw: Any) -> str:
+        cell_map = model.cell_map_spec() if (materialize or source.files) else None
+        with temporary_cell_map(engine, cell_map) as held:
+            if held is not None and held.table is not None:
+                model = replace(model, cell_map={**model.cell_map, "table": held.table})
+            return label_fn(engine, source, model, into, materialize, *args, **kw)
+
+    return wrapper
+
+
+@_holding_cell_map
 def label(
     engine: Engine,
     source: Source,

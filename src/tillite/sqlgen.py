@@ -10,6 +10,7 @@ text for one dialect; the engines execute the text.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Sequence
 
 import numpy as np
@@ -767,11 +768,85 @@ class CellMap:
     keys: tuple[tuple[float, ...], ...]
     segments: tuple[int, ...]
     unmapped: str = "nearest"
+    #: A relation already holding ``columns()`` (a temporary table or view the
+    #: engine loaded); None: the map goes inline as a VALUES list.
+    table: str | None = None
 
-    def values(self, names: Sequence[str]) -> exp.Subquery:
-        rows = [exp.Tuple(expressions=[num(float(x)) for x in key] + [num(int(sid))]) for key, sid in zip(self.keys, self.segments)]
-        alias = exp.TableAlias(this=exp.to_identifier(internal("m"), quoted=True), columns=[exp.to_identifier(n, quoted=True) for n in names])
-        return exp.Values(expressions=rows, alias=alias)
+    @cached_property
+    def key_array(self) -> np.ndarray:
+        """``keys`` as a (cells x axes) array."""
+        return np.asarray(self.keys, dtype=np.float64).reshape(len(self.keys), -1)
+
+    def packing(self) -> tuple[np.ndarray, np.ndarray] | None:
+        """(low, strides) of the packed cell code, or None when the codes would not be exact doubles.
+
+        code = sum_a strides_a * (clamp(key_a, low_a, high_a + 1) - low_a) with
+        low = (smallest mapped key) - 1 and high the largest, so every key outside the mapped range
+        clamps onto a border value no mapped cell has: one code per row, one
+        join column, and each mapped cell keeps a code of its own.
+        """
+        keys = self.key_array
+        if len(keys) == 0:
+            return None
+        low = keys.min(axis=0) - 1.0
+        span = keys.max(axis=0) - low + 2.0  # low .. high + 1 inclusive
+        strides = np.concatenate([[1.0], np.cumprod(span)[:-1]])
+        if float(np.prod(span)) >= 2.0**52:
+            return None
+        return low, strides
+
+    def codes(self) -> np.ndarray:
+        """The packed code of each mapped cell (see ``packing``)."""
+        low, strides = self.packing()  # type: ignore[misc]
+        return (self.key_array - low[None, :]) @ strides
+
+    def column_names(self) -> list[str]:
+        """The map's columns: the packed code (or one per axis) and the segment."""
+        axes = 1 if self.packing() is not None else self.key_array.shape[1]
+        return [internal(f"mk{a}") for a in range(axes)] + [internal("mseg")]
+
+    def columns(self) -> dict[str, np.ndarray]:
+        """The map as columns, to load into a temporary relation named ``table``."""
+        names = self.column_names()
+        keys = self.codes()[:, None] if self.packing() is not None else self.key_array
+        out = {n: np.ascontiguousarray(keys[:, a]) for a, n in enumerate(names[:-1])}
+        out[names[-1]] = np.asarray(self.segments, dtype=np.int32)
+        return out
+
+    def relation(self) -> exp.Expression:
+        """The map as a FROM item aliased __tillite_m: the loaded ``table``, or an inline VALUES list."""
+        alias = internal("m")
+        if self.table is not None:
+            return exp.alias_(table_name(self.table), alias, quoted=True)
+        names = self.column_names()
+        cols = self.columns()
+        rows = [exp.Tuple(expressions=[_whole(v) for v in row]) for row in zip(*(cols[n].tolist() for n in names))]
+        table_alias = exp.TableAlias(this=exp.to_identifier(alias, quoted=True), columns=[exp.to_identifier(n, quoted=True) for n in names])
+        return exp.Values(expressions=rows, alias=table_alias)
+
+    def row_keys(self, grid_v: Sequence[str], dialect: str) -> list[exp.Expression]:
+        """Each row's packed cell code (or its per-axis keys), computed exactly as the cell pass does."""
+        factors = self.grid.key_factors()
+        keys = [floor_of(linear_form(grid_v, factors[:, a]), dialect) for a in range(factors.shape[1])]
+        packing = self.packing()
+        if packing is None:
+            return keys
+        low, strides = packing
+        top = self.key_array.max(axis=0) + 1.0
+        terms: list[exp.Expression] = []
+        for a, key in enumerate(keys):
+            clamped = least_of([greatest_of([key, num(float(low[a]))]), num(float(top[a]))])
+            shifted = exp.Sub(this=clamped, expression=num(float(low[a])))
+            terms.append(shifted if strides[a] == 1.0 else exp.Mul(this=num(float(strides[a])), expression=paren(shifted)))
+        return [total_sum(terms)]
+
+
+def _whole(value: float | int) -> exp.Expression:
+    """A literal of an integer-valued number (a cell code, key or segment id), built cheaply."""
+    whole = int(value)
+    if whole < 0:
+        return exp.Paren(this=exp.Neg(this=exp.Literal(this=str(-whole), is_string=False)))
+    return exp.Literal(this=str(whole), is_string=False)
 
 
 def _assignment_layers(
@@ -827,13 +902,16 @@ def _assignment_layers(
     if cell_map is None:
         stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("c")))
         return stage4, seg, best, v
-    # rows take their cell's segment when the cell is in the map
-    factors = cell_map.grid.key_factors()
-    key_names = [internal(f"c{a_}") for a_ in range(factors.shape[1])]
-    map_names = [internal(f"mk{a_}") for a_ in range(factors.shape[1])] + [internal("mseg")]
-    keyed = exp.select(
-        exp.Star(), *[exp.alias_(floor_of(linear_form(grid_v, factors[:, a_]), dialect), n, quoted=True) for a_, n in enumerate(key_names)]
-    ).from_(subquery(stage3, internal("c")))
+    # rows take their cell's segment when the cell is in the map: one hash join
+    # on the packed cell code (or on the per-axis keys) against a small relation
+    row_keys = cell_map.row_keys(grid_v, dialect)
+    key_names = [internal(f"c{a_}") for a_ in range(len(row_keys))]
+    map_names = cell_map.column_names()
+    # the join carries what the pass needs, not the grid's own centred values
+    carried = [exp.Star()] if keep_source else [col(n) for n in [*v, internal("ok"), *score, best]]
+    keyed = exp.select(*carried, *[exp.alias_(e, n, quoted=True) for e, n in zip(row_keys, key_names)]).from_(
+        subquery(stage3, internal("c"))
+    )
     on = all_of([exp.EQ(this=col(kn, internal("k")), expression=col(mn, internal("m"))) for kn, mn in zip(key_names, map_names)])
     fallback = pick if cell_map.unmapped == "nearest" else case_when(col(internal("ok")), num(-1))
     mapped = case_when(col(internal("ok")), exp.Coalesce(this=col(internal("mseg")), expressions=[fallback]))
@@ -843,7 +921,7 @@ def _assignment_layers(
     joined = (
         exp.select(exp.Star(), exp.alias_(mapped, seg, quoted=True))
         .from_(subquery(keyed, internal("k")))
-        .join(cell_map.values(map_names), on=on, join_type="LEFT")
+        .join(cell_map.relation(), on=on, join_type="LEFT")
     )
     stage5 = exp.select(exp.Star(), exp.alias_(chosen, internal("chosen"), quoted=True)).from_(subquery(joined, internal("j")))
     return stage5, seg, internal("chosen"), v
@@ -879,7 +957,7 @@ def refine_statement(
     return (
         exp.select(exp.alias_(col(seg), "segment", quoted=True), *aggs)
         .from_(subquery(inner, internal("d")))
-        .group_by(col(seg))
+        .group_by(col(seg), copy=False)  # no deep copy of an inline cell map
     )
 
 
