@@ -286,16 +286,20 @@ class Model:
         """The name given to a segment id with `tillite name`, or None."""
         return self.names.get(str(int(segment_id)))
 
-    def column_sd(self) -> np.ndarray:
-        """Exact population sd per column (from the cells), or the scale when the model predates it."""
+    def column_sd(self) -> list[float]:
+        """Exact population sd per column (from the cells), or the scale when the model predates it; 0 becomes 1.
+
+        Plain Python: `tillite show` describes segments without importing numpy.
+        """
         sd = self.grid.get("sd") if isinstance(self.grid, dict) else None
-        values = np.asarray(sd if sd is not None and len(sd) == len(self.columns) else self.scale, dtype=np.float64)
-        return np.where(values > 0, values, 1.0)
+        values = sd if sd is not None and len(sd) == len(self.columns) else self.scale
+        return [float(v) if float(v) > 0 else 1.0 for v in values]
 
     def segment_description(self, i: int, most: int = 3, floor: float = 0.5) -> str:
         """Segment i in words by its most distinctive columns, e.g. "zero_hours 1.9 sd below average"."""
-        z = (np.asarray(self.centroids[i]) - np.asarray(self.center)) / self.column_sd()
-        order = [j for j in np.argsort(-np.abs(z), kind="stable") if abs(z[j]) >= floor][:most]
+        z = [(float(c) - float(m)) / s for c, m, s in zip(self.centroids[i], self.center, self.column_sd())]
+        by_size = sorted(range(len(z)), key=lambda j: -abs(z[j]))  # stable: ties keep the model's column order
+        order = [j for j in by_size if abs(z[j]) >= floor][:most]
         if not order:
             return "close to the average on every column"
         return ", ".join(f"{self.columns[j]} {abs(z[j]):.1f} sd {'above' if z[j] > 0 else 'below'} average" for j in order)
