@@ -255,6 +255,12 @@ def test_description_names_the_most_distinctive_columns():
 # --------------------------------------------------------------------------- the command
 
 
+def test_report_command_offers_exactly_the_formats_the_report_writes():
+    from tillite.cli_report import REPORT_FORMATS
+
+    assert REPORT_FORMATS == R.FORMATS
+
+
 def test_report_command_writes_html_md_and_json_with_the_same_numbers(district_db, tmp_path):
     path, names = district_db
     runner = CliRunner()

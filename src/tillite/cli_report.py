@@ -11,8 +11,14 @@ from pathlib import Path
 
 import click
 
-from . import naming
-from . import report as R
+from .lazy import lazy_module
+
+# imported when a command runs, so the command line starts without numpy or sqlglot
+naming = lazy_module("tillite.naming")
+R = lazy_module("tillite.report")
+
+#: The same as report.FORMATS (a test checks), written here so building the options imports nothing heavy.
+REPORT_FORMATS = ("html", "md", "json")
 
 __all__ = ["report_command", "name_command"]
 
@@ -47,7 +53,7 @@ def _default_out(fmt: str) -> str:
 @click.option("--by", "by", multiple=True, help="Breakdown column(s), comma-separated (repeatable): the share of each "
               "category per segment (top 20 categories, the rest as 'other').")
 @click.option("--out", "-o", "out", help="File to write (default: segments.html, .md or .json by --format).")
-@click.option("--format", "fmt", type=click.Choice(list(R.FORMATS)), default="html", show_default=True,
+@click.option("--format", "fmt", type=click.Choice(list(REPORT_FORMATS)), default="html", show_default=True,
               help="html: one self-contained page with inline SVG; md and json: the same content as text.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
 def report_command(source, table, model_path, store_name, by, out, fmt, quiet) -> None:

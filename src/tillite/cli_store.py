@@ -55,7 +55,8 @@ def store_group() -> None:
               help="Seed of the profile sample and k-means++ (0 to 2147483647).")
 @click.option("--regrid", is_flag=True, help="Replace an existing store of that name, with a new grid.")
 @click.option("--many-partitions", is_flag=True,
-              help=f"Build even when the partition column gives more than {store_api.PARTITIONS_LIMIT:,} partitions.")
+              help="Build even when the partition column gives more partitions than the hard limit "
+                   "(the refusal names it).")
 @click.option("--out", "-o", help="Also write the model file here.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
