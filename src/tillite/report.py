@@ -103,12 +103,21 @@ def segment_colour(position: int, segment_id: int) -> str:
 # --------------------------------------------------------------------------- statistics in the engine
 
 
+def assigned_rows(engine: Engine, source: Source, model: Model, by: Sequence[str], labels: Source | None = None) -> exp.Select:
+    """The model's and the breakdown columns with each row's segment: assigned in SQL, or read from a
+    materialized labels table (``labels``, made by `tillite label --materialize` with this model)."""
+    if labels is not None:
+        return sqlgen.labelled_rows_select(labels, model.columns, by)
+    return sqlgen.report_rows_select(source, model.columns, by, model.assignment(), engine.dialect, cell_map=model.cell_map_spec())
+
+
 def report_scan(
-    engine: Engine, source: Source, model: Model, by: Sequence[str] = (), top: int = TOP_CATEGORIES
+    engine: Engine, source: Source, model: Model, by: Sequence[str] = (), top: int = TOP_CATEGORIES,
+    labels: Source | None = None,
 ) -> tuple[dict[int, dict[str, Any]], list[dict[str, Any]]]:
     """Per-segment statistics (no quartiles) and the breakdowns by ``by``, from ONE statement that assigns
-    each row once and groups by (segment, category): the groups are pooled exactly here."""
-    rows = sqlgen.report_rows_select(source, model.columns, by, model.assignment(), engine.dialect, cell_map=model.cell_map_spec())
+    each row once (or reads ``labels``) and groups by (segment, category): the groups are pooled exactly here."""
+    rows = assigned_rows(engine, source, model, by, labels)
     got = engine.query(sqlgen.report_scan_statement(rows, model.columns, by))
     segs = _masked_ints(got["s"])
     keep = [i for i, s in enumerate(segs) if s is not None]  # groups with a NULL segment hold the skipped rows
@@ -120,12 +129,11 @@ def report_scan(
 
 
 def _grouping_sets(got: dict[str, np.ndarray], m: int, rows: Sequence[int]) -> dict[int, int]:
-    """Which breakdown column each result row groups by: GROUPING(c0..c{m-1}) has bit m-1-b clear for c_b."""
+    """Which breakdown column each result row groups by: GROUPING(c_b), g{b}, is 0 in the set of c_b."""
     if m <= 1:
         return {i: 0 for i in rows}
-    g = np.ma.getdata(got["g"])
-    by_mask = {(2**m - 1) - 2 ** (m - 1 - b): b for b in range(m)}
-    return {i: by_mask[int(g[i])] for i in rows}
+    flags = np.column_stack([np.ma.getdata(got[f"g{b}"]).astype(np.int64) for b in range(m)])
+    return {i: int(np.flatnonzero(flags[i] == 0)[0]) for i in rows}
 
 
 def _pooled_statistics(got: dict[str, np.ndarray], columns: Sequence[str], rows: Sequence[int], segs: list[int | None]) -> dict[int, dict[str, Any]]:
@@ -177,11 +185,13 @@ def quartile_sample_percent(model: Model, rows: int = sqlgen.QUARTILE_SAMPLE_ROW
     return min(100.0, 100.0 * rows / max(int(model.rows), 1))
 
 
-def sample_quartiles(engine: Engine, source: Source, model: Model, percent: float | None = None) -> tuple[dict[int, dict[str, Any]], int]:
+def sample_quartiles(
+    engine: Engine, source: Source, model: Model, percent: float | None = None, labels: Source | None = None
+) -> tuple[dict[int, dict[str, Any]], int]:
     """Per segment: sampled rows and per column q25, q50, q75 from a seeded Bernoulli sample of the rows
     (all rows when the table is small); returns them and the sample's size."""
     percent = quartile_sample_percent(model) if percent is None else percent
-    rows = sqlgen.report_rows_select(source, model.columns, [], model.assignment(), engine.dialect, cell_map=model.cell_map_spec())
+    rows = assigned_rows(engine, source, model, [], labels)
     got = engine.query(sqlgen.quartile_statement(sqlgen.sampled_rows(rows, percent, engine.dialect), model.columns, engine.dialect))
     out: dict[int, dict[str, Any]] = {}
     segs = _masked_ints(got["s"])
@@ -555,9 +565,15 @@ def _say(progress: Any, stage: str, message: str) -> None:
         progress(stage, message)
 
 
-def report_of_model(engine: Engine, source: Source, model: Model, by: Sequence[str] = (), progress: Any = None) -> dict[str, Any]:
+def report_of_model(
+    engine: Engine, source: Source, model: Model, by: Sequence[str] = (), progress: Any = None, labels: str | None = None
+) -> dict[str, Any]:
     """The report of a model over its source: one scan for statistics and breakdowns, the quartiles from a
-    seeded sample, the map from the model file (a cell pass for older model files)."""
+    seeded sample, the map from the model file (a cell pass for older model files).
+
+    ``labels``: a labels table made by `tillite label --materialize` with this model; its segment column
+    is read instead of assigning every row again (the rows are then those of the table).
+    """
     import time
 
     from .pipeline import check_columns
@@ -566,11 +582,13 @@ def report_of_model(engine: Engine, source: Source, model: Model, by: Sequence[s
     missing = [c for c in by if c not in present]
     if missing:
         raise TilliteError(f"--by column {', '.join(missing)} not found in {source.label}; columns there: {', '.join(present)}")
+    labelled = _labels_table(engine, labels, model, by) if labels else None
     t0 = time.perf_counter()
-    stats, breakdowns = report_scan(engine, source, model, by)
-    _say(progress, "report", f"per-segment statistics{' and breakdowns by ' + ', '.join(by) if by else ''}, one scan, {time.perf_counter() - t0:.2f} s")
+    stats, breakdowns = report_scan(engine, source, model, by, labels=labelled)
+    how = f"read from {labels}" if labels else "one scan"
+    _say(progress, "report", f"per-segment statistics{' and breakdowns by ' + ', '.join(by) if by else ''}, {how}, {time.perf_counter() - t0:.2f} s")
     t1 = time.perf_counter()
-    quartiles, sampled = sample_quartiles(engine, source, model)
+    quartiles, sampled = sample_quartiles(engine, source, model, labels=labelled)
     _say(progress, "report", f"quartiles from a sample of {sampled:,} rows, {time.perf_counter() - t1:.2f} s")
     t2 = time.perf_counter()
     figure = report_map(engine, source, model)
@@ -578,6 +596,18 @@ def report_of_model(engine: Engine, source: Source, model: Model, by: Sequence[s
     _say(progress, "report", f"map {where}, {time.perf_counter() - t2:.2f} s")
     return assemble(model, with_quartiles(stats, quartiles), _no_cells(model), breakdowns, [], None, None,
                     figure=figure, sampled=sampled)
+
+
+def _labels_table(engine: Engine, labels: str, model: Model, by: Sequence[str]) -> Source:
+    """The --labels table as a Source, checked to hold a segment column, the model's and the --by columns."""
+    from .pipeline import check_columns
+
+    src = Source.of_table(labels)
+    present = check_columns(engine, src, ["segment"])
+    missing = [c for c in list(model.columns) + list(by) if c not in present]
+    if missing:
+        raise TilliteError(f"--labels {labels} lacks column {', '.join(missing)}; columns there: {', '.join(present)}")
+    return src
 
 
 def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress: Any = None) -> dict[str, Any]:

@@ -1096,8 +1096,7 @@ def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence
 
     One GROUP BY over the assigned rows: by (segment) alone without breakdowns,
     by (segment, c0) with one, by GROUPING SETS ((segment, c0), (segment, c1), ...)
-    with more, where g = GROUPING(c0, c1, ...) tells the sets apart (bit i of g is
-    0 in the set of c_i).  Categories come back as text c{i}.  Rows without a
+    with more, where g{i} = GROUPING(c_i) is 0 in the set of c_i.  Categories come back as text c{i}.  Rows without a
     segment (skipped for NULL/NaN/Inf) form groups whose s is NULL, for the
     caller to leave out (a filter would be pushed down and assign rows twice).
     """
@@ -1105,8 +1104,8 @@ def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence
     text = exp.DataType.build("VARCHAR")
     projections: list[exp.Expression] = [exp.alias_(seg, "s")]
     projections += [exp.alias_(exp.cast(col(c), text), f"c{i}") for i, c in enumerate(by)]
-    if len(by) > 1:
-        projections.append(exp.alias_(exp.Grouping(expressions=[col(c) for c in by]), "g"))
+    if len(by) > 1:  # one single-column GROUPING per set: the form DuckDB, PostgreSQL and Spark all take
+        projections += [exp.alias_(exp.Grouping(expressions=[col(c)]), f"g{i}") for i, c in enumerate(by)]
     projections.append(exp.alias_(exp.Count(this=exp.Star()), "n"))
     for j, name in enumerate(columns):
         x = to_double(col(name))
@@ -1160,3 +1159,12 @@ def sample_quantile(e: exp.Expression, q: float, dialect: str) -> exp.Expression
     (rank error 1/10,000); DuckDB takes quantile_cont over a list of the three (exact on the sample).
     The sample keeps the memory bounded."""
     return approx_quantile(e, q, dialect)
+
+
+def labelled_rows_select(labels: Source, columns: Sequence[str], by: Sequence[str], segment: str = "segment") -> exp.Select:
+    """report_rows_select's output read from a materialized labels table: its segment column, no assignment."""
+    keep = list(dict.fromkeys(list(columns) + list(by)))
+    return exp.select(
+        *[col(c) for c in keep],
+        exp.alias_(exp.cast(col(segment), exp.DataType.build("INT")), internal("segment"), quoted=True),
+    ).from_(labels.relation())
