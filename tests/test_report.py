@@ -164,6 +164,14 @@ def test_report_reads_a_materialized_labels_table_with_the_same_figures(labelled
     assert read["spread"] == assigned["spread"]
 
 
+def test_a_breakdown_column_named_twice_is_one_breakdown_and_small_tables_say_all_rows(labelled):
+    engine, src, model, _, _, _, _ = labelled
+    content = R.report_of_model(engine, src, model, ["district", "district"])
+    assert [b["column"] for b in content["breakdowns"]] == ["district"]
+    # the 30,000-row table is smaller than the quartile sample: read whole, and the page says so
+    assert "from all" in render_markdown(content)
+
+
 def test_skipped_rows_are_left_out_of_the_statistics(labelled):
     engine, src, model, x, seg, _, _ = labelled
     stats = R.segment_statistics(engine, src, model)

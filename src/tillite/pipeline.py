@@ -692,10 +692,16 @@ def segment(
 
 
 def model_map(cp: CellPass, model: Model) -> dict:
-    """The report's map from the cells in hand (so `tillite report` needs no cell pass): a few thousand dots."""
+    """The report's map from the cells in hand (so `tillite report` needs no cell pass): a few thousand dots.
+
+    A map that cannot be drawn (degenerate cells) is left out: the report then makes one cell pass."""
     from .report import stored_map
 
-    return stored_map(cp.cells, cp.keys, model)
+    try:
+        with np.errstate(all="ignore"):
+            return stored_map(cp.cells, cp.keys, model)
+    except (ValueError, FloatingPointError, np.linalg.LinAlgError):
+        return {}
 
 
 def cells_count(cp: CellPass) -> int:

@@ -479,6 +479,7 @@ def assemble(
             "sse": model.sse,
             "calinski_harabasz": calinski_harabasz_of(present, model),
             "quartile_sample": sampled,
+            "quartile_sample_percent": quartile_sample_percent(model),
             "caution": CAUTION,
         },
         "overall": {"mean": mu.tolist(), "sd": sd.tolist()},
@@ -578,6 +579,7 @@ def report_of_model(
 
     from .pipeline import check_columns
 
+    by = list(dict.fromkeys(by))  # a column named twice is one breakdown
     present = check_columns(engine, source, list(model.columns))
     missing = [c for c in by if c not in present]
     if missing:
@@ -617,6 +619,7 @@ def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress
     from .pipeline import check_columns
 
     info = S.load(engine, store)
+    by = list(dict.fromkeys(by))  # a column named twice is one breakdown
     present = check_columns(engine, info.source, list(info.model.columns))
     missing = [c for c in by if c not in present]
     if missing:

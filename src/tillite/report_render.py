@@ -244,6 +244,8 @@ def quartile_note(content: dict[str, Any]) -> str:
     sampled = content["header"].get("quartile_sample")
     if sampled is None:
         return "Quartiles are the engine's approximate quantiles."
+    if content["header"].get("quartile_sample_percent", 0.0) >= 100.0:
+        return f"Min, max, mean, sd and the quartiles are computed from all {sampled:,} usable rows (the table is smaller than the quartile sample)."
     return (f"Min, max, mean and sd are exact over all rows; the quartiles are approximate, computed from a seeded "
             f"sample of {sampled:,} rows.")
 
