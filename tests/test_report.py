@@ -26,10 +26,17 @@ from conftest import columns_of, write_table
 
 HOSTILE = '<script>alert("x")</script> \'quoted\' "double" – Überlauf 漏水'
 
-#: Rank tolerance for DuckDB's reservoir_quantile: DuckDB documents it as a quantile of a uniform reservoir
-#: sample of 8,192 values, so it is exact for smaller segments (those here); above that the rank's standard
-#: error is about sqrt(q(1-q)/8192) < 0.6%, and 2% is a bound chosen here (over 3 standard errors).
+#: Rank tolerance kept for the rank checks below.  Tables of at most sqlgen.QUARTILE_SAMPLE_ROWS rows (those
+#: here) are read whole for the quartiles, and DuckDB's quantile_cont is exact on them; the sampled case has
+#: its own test with a bound from the sample's size (test_quartiles_from_a_sample_...).
 QUANTILE_RANK_TOLERANCE = 0.02
+
+
+def dkw_rank_bound(m: int, alpha: float = 1e-6) -> float:
+    """Dvoretzky-Kiefer-Wolfowitz inequality with Massart's constant (recalled from memory):
+    P(sup_x |F_m(x) - F(x)| > eps) <= 2 exp(-2 m eps^2), so eps = sqrt(ln(2 / alpha) / (2 m)).
+    For a simple random sample without replacement the same bound holds (Hoeffding 1963, also from memory)."""
+    return float(np.sqrt(np.log(2.0 / alpha) / (2.0 * m)))
 
 
 @pytest.fixture
@@ -78,10 +85,91 @@ def test_segment_statistics_equal_numpy_on_the_same_rows_and_labels(labelled):
             np.testing.assert_allclose(got["sd"], rows[:, j].std(ddof=0), rtol=1e-7)
             assert got["min"] == rows[:, j].min() and got["max"] == rows[:, j].max()
             for q in (25, 50, 75):
-                # reference: numpy.percentile; the engine's value must sit within the rank tolerance
+                # reference: numpy.percentile (linear interpolation, the rule of quantile_cont): the table is
+                # smaller than the quartile sample, so every row is read and the quartile is exact
+                np.testing.assert_allclose(got[f"q{q}"], np.percentile(rows[:, j], q), rtol=1e-12, atol=1e-12)
                 rank = (rows[:, j] <= got[f"q{q}"]).mean()
                 assert abs(rank - q / 100) <= QUANTILE_RANK_TOLERANCE, (sid, c, q, rank)
                 assert np.percentile(rows[:, j], q - 100 * QUANTILE_RANK_TOLERANCE) <= got[f"q{q}"] <= np.percentile(rows[:, j], q + 100 * QUANTILE_RANK_TOLERANCE)
+
+
+def test_quartiles_from_a_sample_sit_within_the_dkw_bound_of_numpy_percentile(labelled):
+    engine, src, model, x, seg, _, _ = labelled
+    percent = 20.0  # the 30,000 rows read as a Bernoulli sample of about 6,000
+    quartiles, sampled = R.sample_quartiles(engine, src, model, percent=percent)
+    usable = seg != -99
+    assert sampled == sum(q["n"] for q in quartiles.values())
+    # reference: a Bernoulli sample's size is binomial(N, p): within 6 standard deviations of N p
+    n_usable = int(usable.sum())
+    assert abs(sampled - n_usable * percent / 100) < 6 * np.sqrt(n_usable * 0.2 * 0.8)
+    assert R.sample_quartiles(engine, src, model, percent=percent) == (quartiles, sampled)  # seeded: repeatable
+    for sid, q in quartiles.items():
+        rows = x[seg == sid]
+        m = q["n"]
+        tolerance = dkw_rank_bound(m) + 1.0 / m  # DKW on the sample, plus one rank for interpolation between values
+        for j, c in enumerate(model.columns):
+            for p in (25, 50, 75):
+                got = q["columns"][c][f"q{p}"]
+                # reference: numpy.percentile over ALL the segment's rows, within the DKW rank bound of the sample
+                lo = np.percentile(rows[:, j], max(0.0, p - 100 * tolerance))
+                hi = np.percentile(rows[:, j], min(100.0, p + 100 * tolerance))
+                assert lo <= got <= hi, (sid, c, p, m, tolerance)
+
+
+def test_one_scan_with_two_breakdowns_equals_numpy_and_the_single_breakdowns(labelled):
+    engine, src, model, x, seg, districts, many = labelled
+    stats, (by_district, by_many) = R.report_scan(engine, src, model, ["district", "many"])
+    for sid, st in stats.items():
+        rows = x[seg == sid]
+        # reference: numpy count, mean, population sd, min, max of the segment's rows (pooled from the groups)
+        assert st["n"] == len(rows)
+        for j, c in enumerate(model.columns):
+            got = st["columns"][c]
+            np.testing.assert_allclose(got["mean"], rows[:, j].mean(), rtol=1e-9, atol=1e-12)
+            np.testing.assert_allclose(got["sd"], rows[:, j].std(ddof=0), rtol=1e-7)
+            assert got["min"] == rows[:, j].min() and got["max"] == rows[:, j].max()
+    # reference: the one-column statement (itself checked against a numpy crosstab above)
+    assert by_district == R.breakdown(engine, src, model, "district")
+    assert by_many == R.breakdown(engine, src, model, "many")
+
+
+def test_map_kept_in_the_model_file_equals_a_cell_pass_map_and_old_files_fall_back(labelled, tmp_path):
+    engine, src, model, x, _, _, _ = labelled
+    assert model.report_map, "segment keeps the map in the model"
+    path = tmp_path / "m.json"
+    model.write(path)
+    kept = Model.read(path)
+    figure = R.report_map(engine, src, kept)
+    assert figure["from"] == "model"
+    # reference: numpy's count of usable rows; every usable row is in some dot
+    assert round(sum(figure["dots"]["n"])) == int(np.isfinite(x).all(axis=1).sum())
+    assert len(figure["dots"]["n"]) <= R.MAP_BINS**2 * (model.k + 1)
+    old = Model.read(path)
+    old.report_map = {}
+    fallback = R.report_map(engine, src, old)
+    assert fallback["from"] == "cell pass"
+    # the same cells drawn at report time: the same dots, to the 6 digits the model file keeps
+    np.testing.assert_allclose(fallback["variance_share"], figure["variance_share"], rtol=1e-5)
+    np.testing.assert_allclose(sorted(fallback["dots"]["n"]), sorted(figure["dots"]["n"]), rtol=1e-5)
+    np.testing.assert_allclose(sorted(fallback["dots"]["x"]), sorted(figure["dots"]["x"]), rtol=1e-4, atol=1e-5)
+
+
+def test_report_reads_a_materialized_labels_table_with_the_same_figures(labelled):
+    engine, src, model, _, _, _, _ = labelled
+    label(engine, src, model, "labels_table", materialize=True)
+    assigned = R.report_of_model(engine, src, model, ["district"])
+    read = R.report_of_model(engine, src, model, ["district"], labels="labels_table")
+    # reference: the report that assigns the rows itself (checked against numpy above)
+    assert read["segments"] == assigned["segments"] and read["breakdowns"] == assigned["breakdowns"]
+    assert read["spread"] == assigned["spread"]
+
+
+def test_a_breakdown_column_named_twice_is_one_breakdown_and_small_tables_say_all_rows(labelled):
+    engine, src, model, _, _, _, _ = labelled
+    content = R.report_of_model(engine, src, model, ["district", "district"])
+    assert [b["column"] for b in content["breakdowns"]] == ["district"]
+    # the 30,000-row table is smaller than the quartile sample: read whole, and the page says so
+    assert "from all" in render_markdown(content)
 
 
 def test_skipped_rows_are_left_out_of_the_statistics(labelled):
@@ -285,6 +373,8 @@ def test_report_command_writes_html_md_and_json_with_the_same_numbers(district_d
     (["--by", "nowhere"], "--by column nowhere"),
     (["--format", "pdf"], "--format"),
     (["--out", "/no/such/folder/r.html"], "/no/such/folder"),
+    (["--labels", "nowhere"], "nowhere"),
+    (["--labels", "points"], "segment"),
 ])
 def test_report_refuses_bad_options_in_one_line(district_db, tmp_path, args, fault):
     path, names = district_db
@@ -391,8 +481,12 @@ def test_report_statements_render_and_parse_back_in_each_dialect(dialect):
 
     assign = sqlgen.Assignment(center=(0.0, 1.0), inv_scale=(1.0, 0.5), weights=(1.0, 1.0), centroids=((0.0, 0.0), (1.0, 1.0)))
     labels = sqlgen.report_labels_select(Source.of_table("points"), ["unit price", "select"], ["district"], assign, dialect)
+    rows = sqlgen.report_rows_select(Source.of_table("points"), ["unit price", "select"], ["district", "kind"], assign, dialect)
     for statement in (sqlgen.segment_stats_statement(labels, ["unit price", "select"], dialect),
-                      sqlgen.breakdown_statement(labels, "district", 20, dialect)):
+                      sqlgen.breakdown_statement(labels, "district", 20, dialect),
+                      sqlgen.report_scan_statement(rows, ["unit price", "select"], ["district"]),
+                      sqlgen.report_scan_statement(rows, ["unit price", "select"], ["district", "kind"]),
+                      sqlgen.quartile_statement(sqlgen.sampled_rows(rows, 1.0, dialect), ["unit price", "select"], dialect)):
         text = sqlgen.render(statement, dialect)
         # reference: sqlglot's own parser for the dialect reads the text back
         assert sqlglot.parse_one(text, read=dialect) is not None

@@ -52,11 +52,13 @@ def _default_out(fmt: str) -> str:
               "(adds its refresh history; the map uses the store's kept cells).")
 @click.option("--by", "by", multiple=True, help="Breakdown column(s), comma-separated (repeatable): the share of each "
               "category per segment (top 20 categories, the rest as 'other').")
+@click.option("--labels", "labels", metavar="TABLE", help="A labels table made by `tillite label --materialize` with "
+              "this model: the report reads its segment column instead of assigning every row again (faster).")
 @click.option("--out", "-o", "out", help="File to write (default: segments.html, .md or .json by --format).")
 @click.option("--format", "fmt", type=click.Choice(list(REPORT_FORMATS)), default="html", show_default=True,
               help="html: one self-contained page with inline SVG; md and json: the same content as text.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
-def report_command(source, table, model_path, store_name, by, out, fmt, quiet) -> None:
+def report_command(source, table, model_path, store_name, by, labels, out, fmt, quiet) -> None:
     """Write a report of the segments: sizes, profile, spread, map, breakdowns (and a store's refresh history).
 
     Every figure is computed in the database as an aggregate; no row is exported.
@@ -66,6 +68,8 @@ def report_command(source, table, model_path, store_name, by, out, fmt, quiet) -
         raise click.UsageError("give exactly one of --model and --store")
     if store_name and table:
         raise click.UsageError("--table is not needed with --store: the store knows its source")
+    if store_name and labels:
+        raise click.UsageError("--labels goes with --model, not --store")
     out = out or _default_out(fmt)
     progress = cli._progress(quiet)
     with cli.user_errors():
@@ -83,7 +87,7 @@ def report_command(source, table, model_path, store_name, by, out, fmt, quiet) -
             model = Model.read(model_path)
             engine, src = cli._open(source, table)
             try:
-                content = R.report_of_model(engine, src, model, _split(by), progress)
+                content = R.report_of_model(engine, src, model, _split(by), progress, labels=labels)
             finally:
                 engine.close()
         path = R.write_report(content, out, fmt)

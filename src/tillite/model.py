@@ -62,6 +62,9 @@ class Model:
     timings: dict[str, float] = field(default_factory=dict)
     created: str = ""
     names: dict[str, str] = field(default_factory=dict)  # segment id (as text) -> name given by `tillite name`
+    # the report's map drawn at segment time from the cells (report.map_figure): dots on the first two
+    # principal axes with row counts and segments, and the variance share; older files lack it
+    report_map: dict[str, Any] = field(default_factory=dict)
 
     # ------------------------------------------------------------ derived
 

@@ -954,9 +954,23 @@ def segment(
     model.extras = phase.extras
     model.cell_map = phase.cell_map_dict(grid, cp.keys, new_id) if phase.needs_cell_map else {}
     model.passes = passes
+    model.report_map = model_map(cp, model)
     model.timings = {"profile": prof.seconds, "cells": cp.seconds, "second_phase": t_second, **refine_times}
     model.timings["total"] = time.perf_counter() - t_start
     return model
+
+
+def model_map(cp: CellPass, model: Model) -> dict:
+    """The report's map from the cells in hand (so `tillite report` needs no cell pass): a few thousand dots.
+
+    A map that cannot be drawn (degenerate cells) is left out: the report then makes one cell pass."""
+    from .report import stored_map
+
+    try:
+        with np.errstate(all="ignore"):
+            return stored_map(cp.cells, cp.keys, model)
+    except (ValueError, FloatingPointError, np.linalg.LinAlgError):
+        return {}
 
 
 def cells_count(cp: CellPass) -> int:

@@ -76,6 +76,8 @@ REPORT_FORMAT = "tillite-report"
 REPORT_VERSION = 1
 FORMATS = ("html", "md", "json")
 TOP_CATEGORIES = 20
+#: Raster of the map: cells of one segment on the same spot of a MAP_BINS x MAP_BINS grid are one dot.
+MAP_BINS = 64
 
 CAUTION = (
     "A segment is a statistical grouping of rows that look alike on the chosen columns, not a diagnosis. "
@@ -101,51 +103,136 @@ def segment_colour(position: int, segment_id: int) -> str:
 # --------------------------------------------------------------------------- statistics in the engine
 
 
-def segment_statistics(engine: Engine, source: Source, model: Model) -> dict[int, dict[str, Any]]:
-    """Per segment id: n and per column (mean, sd, min, q25, q50, q75, max), from ONE GROUP BY over the labels."""
-    labels = sqlgen.report_labels_select(
-        source, model.columns, [], model.assignment(), engine.dialect, cell_map=model.cell_map_spec()
-    )
-    got = engine.query(sqlgen.segment_stats_statement(labels, model.columns, engine.dialect))
+def assigned_rows(engine: Engine, source: Source, model: Model, by: Sequence[str], labels: Source | None = None) -> exp.Select:
+    """The model's and the breakdown columns with each row's segment: assigned in SQL, or read from a
+    materialized labels table (``labels``, made by `tillite label --materialize` with this model)."""
+    if labels is not None:
+        return sqlgen.labelled_rows_select(labels, model.columns, by)
+    return sqlgen.report_rows_select(source, model.columns, by, model.assignment(), engine.dialect, cell_map=model.cell_map_spec())
+
+
+def report_scan(
+    engine: Engine, source: Source, model: Model, by: Sequence[str] = (), top: int = TOP_CATEGORIES,
+    labels: Source | None = None,
+) -> tuple[dict[int, dict[str, Any]], list[dict[str, Any]]]:
+    """Per-segment statistics (no quartiles) and the breakdowns by ``by``, from ONE statement that assigns
+    each row once (or reads ``labels``) and groups by (segment, category): the groups are pooled exactly here."""
+    rows = assigned_rows(engine, source, model, by, labels)
+    got = engine.query(sqlgen.report_scan_statement(rows, model.columns, by))
+    segs = _masked_ints(got["s"])
+    keep = [i for i, s in enumerate(segs) if s is not None]  # groups with a NULL segment hold the skipped rows
+    sets = _grouping_sets(got, len(by), keep)
+    stats = _pooled_statistics(got, model.columns, [i for i in keep if sets[i] == 0], segs)
+    breakdowns = [_ranked_breakdown(got, model, column, f"c{b}", [i for i in keep if sets[i] == b], segs, top)
+                  for b, column in enumerate(by)]
+    return stats, breakdowns
+
+
+def _grouping_sets(got: dict[str, np.ndarray], m: int, rows: Sequence[int]) -> dict[int, int]:
+    """Which breakdown column each result row groups by: GROUPING(c_b), g{b}, is 0 in the set of c_b."""
+    if m <= 1:
+        return {i: 0 for i in rows}
+    flags = np.column_stack([np.ma.getdata(got[f"g{b}"]).astype(np.int64) for b in range(m)])
+    return {i: int(np.flatnonzero(flags[i] == 0)[0]) for i in rows}
+
+
+def _pooled_statistics(got: dict[str, np.ndarray], columns: Sequence[str], rows: Sequence[int], segs: list[int | None]) -> dict[int, dict[str, Any]]:
+    """Per segment: n and per column mean, population sd, min, max pooled exactly from its groups' figures
+    (the pooled variance is the groups' mean variance plus the variance of their means)."""
+    n_all = np.ma.getdata(got["n"]).astype(np.float64)
     out: dict[int, dict[str, Any]] = {}
-    skipped = np.ma.getmaskarray(got["s"]) if np.ma.isMaskedArray(got["s"]) else np.zeros(len(got["s"]), bool)
-    for i in range(len(got["s"])):
-        if skipped[i] or got["s"][i] is None:  # the rows skipped for NULL/NaN/Inf
+    for sid in sorted({segs[i] for i in rows}):
+        idx = [i for i in rows if segs[i] == sid]
+        n = n_all[idx]
+        total = n.sum()
+        per = {}
+        for j, name in enumerate(columns):
+            mean = np.array([_float(got[f"mean{j}"][i]) for i in idx], dtype=np.float64)
+            sd = np.array([_float(got[f"sd{j}"][i]) for i in idx], dtype=np.float64)
+            mu = float((n * mean).sum() / total)
+            var = float((n * (sd**2 + (mean - mu) ** 2)).sum() / total)
+            per[name] = {
+                "mean": mu,
+                "sd": math.sqrt(max(var, 0.0)),
+                "min": min(_float(got[f"min{j}"][i]) for i in idx),
+                "max": max(_float(got[f"max{j}"][i]) for i in idx),
+            }
+        out[int(sid)] = {"n": int(total), "columns": per}
+    return out
+
+
+def _ranked_breakdown(
+    got: dict[str, np.ndarray], model: Model, column: str, key: str, rows: Sequence[int], segs: list[int | None], top: int
+) -> dict[str, Any]:
+    """Rows per (segment, category): the ``top`` categories by usable rows (ties by text, missing last), the rest as "other"."""
+    cats = _masked_texts(got[key])
+    n_all = np.ma.getdata(got["n"])
+    totals: dict[str | None, int] = {}
+    for i in rows:
+        totals[cats[i]] = totals.get(cats[i], 0) + int(n_all[i])
+    order = sorted(totals, key=lambda c: (-totals[c], c is None, c or ""))
+    kept = order[:top]
+    names = ["(missing)" if c is None else c for c in kept] + (["other"] if len(order) > top else [])
+    slot = {c: b for b, c in enumerate(kept)}
+    counts = {sid: [0] * len(names) for sid in model.segment_ids()}
+    for i in rows:
+        counts.setdefault(int(segs[i]), [0] * len(names))[slot.get(cats[i], top)] += int(n_all[i])
+    return {"column": column, "categories": names, "counts": {str(k): v for k, v in counts.items()}}
+
+
+def quartile_sample_percent(model: Model, rows: int = sqlgen.QUARTILE_SAMPLE_ROWS) -> float:
+    """The share of rows (in %) the quartile sample reads: about ``rows`` rows of the model's table."""
+    return min(100.0, 100.0 * rows / max(int(model.rows), 1))
+
+
+def sample_quartiles(
+    engine: Engine, source: Source, model: Model, percent: float | None = None, labels: Source | None = None
+) -> tuple[dict[int, dict[str, Any]], int]:
+    """Per segment: sampled rows and per column q25, q50, q75 from a seeded Bernoulli sample of the rows
+    (all rows when the table is small); returns them and the sample's size."""
+    percent = quartile_sample_percent(model) if percent is None else percent
+    rows = assigned_rows(engine, source, model, [], labels)
+    got = engine.query(sqlgen.quartile_statement(sqlgen.sampled_rows(rows, percent, engine.dialect), model.columns, engine.dialect))
+    out: dict[int, dict[str, Any]] = {}
+    segs = _masked_ints(got["s"])
+    sampled = 0
+    for i, sid in enumerate(segs):
+        if sid is None:
             continue
-        sid = int(np.ma.getdata(got["s"])[i])
         per = {}
         for j, name in enumerate(model.columns):
-            per[name] = {key: _float(got[f"{key}{j}"][i]) for key in ("mean", "sd", "min", "max")}
             if f"q_{j}" in got:  # one list of the three quartiles (DuckDB)
                 listed = got[f"q_{j}"][i]
                 values = [None] * 3 if np.ma.is_masked(listed) or listed is None else list(listed)
             else:
                 values = [got[f"q{int(round(q * 100))}_{j}"][i] for q in sqlgen.QUARTILES]
-            per[name].update({f"q{int(round(q * 100))}": _float(v) for q, v in zip(sqlgen.QUARTILES, values)})
-        out[sid] = {"n": int(np.ma.getdata(got["n"])[i]), "columns": per}
-    return out
+            per[name] = {f"q{int(round(q * 100))}": _float(v) for q, v in zip(sqlgen.QUARTILES, values)}
+        n = int(np.ma.getdata(got["n"])[i])
+        sampled += n
+        out[sid] = {"n": n, "columns": per}
+    return out, sampled
+
+
+def with_quartiles(stats: dict[int, dict[str, Any]], quartiles: dict[int, dict[str, Any]]) -> dict[int, dict[str, Any]]:
+    """The statistics with each segment's sampled quartiles (None where the sample holds none of its rows)."""
+    for sid, st in stats.items():
+        q = quartiles.get(sid, {"n": 0, "columns": {}})
+        st["sampled"] = q["n"]
+        for name, per in st["columns"].items():
+            per.update(q["columns"].get(name, dict.fromkeys(("q25", "q50", "q75"))))
+    return stats
+
+
+def segment_statistics(engine: Engine, source: Source, model: Model) -> dict[int, dict[str, Any]]:
+    """Per segment id: n and per column (mean, sd, min, q25, q50, q75, max): one GROUP BY over the
+    labels, the quartiles from the seeded sample (sample_quartiles)."""
+    stats, _ = report_scan(engine, source, model)
+    return with_quartiles(stats, sample_quartiles(engine, source, model)[0])
 
 
 def breakdown(engine: Engine, source: Source, model: Model, column: str, top: int = TOP_CATEGORIES) -> dict[str, Any]:
     """Rows per (segment, category) of ``column``: the ``top`` categories by rows, the rest as "other"."""
-    labels = sqlgen.report_labels_select(
-        source, model.columns, [column], model.assignment(), engine.dialect, cell_map=model.cell_map_spec()
-    )
-    got = engine.query(sqlgen.breakdown_statement(labels, column, top, engine.dialect))
-    segs = _masked_texts(got["s"])
-    keep = [i for i, s in enumerate(segs) if s is not None]  # groups with a NULL segment hold the skipped rows
-    all_cats = _masked_texts(got["c"])
-    ranks = [int(np.ma.getdata(got["b"])[i]) for i in keep]
-    names: dict[int, str] = {}
-    for i, b in zip(keep, ranks):
-        names[b] = "other" if b > top else ("(missing)" if all_cats[i] is None else all_cats[i])
-    order = sorted(names)
-    ids = model.segment_ids()
-    counts = {sid: [0] * len(order) for sid in ids}
-    for i, b in zip(keep, ranks):
-        s, n = int(np.ma.getdata(got["s"])[i]), int(np.ma.getdata(got["n"])[i])
-        counts.setdefault(s, [0] * len(order))[order.index(b)] += n
-    return {"column": column, "categories": [names[b] for b in order], "counts": {str(k): v for k, v in counts.items()}}
+    return report_scan(engine, source, model, [column], top)[1][0]
 
 
 def map_cells(engine: Engine, source: Source, model: Model) -> tuple[CF, np.ndarray]:
@@ -242,7 +329,7 @@ def cell_segments(cells: CF, model: Model, keys: np.ndarray | None = None) -> np
     return out
 
 
-def map_figure(cells_grid: CF, model: Model, keys: np.ndarray | None = None, bins: int = 120) -> dict[str, Any]:
+def map_figure(cells_grid: CF, model: Model, keys: np.ndarray | None = None, bins: int = MAP_BINS) -> dict[str, Any]:
     """The cells on the first two principal axes; cells on the same spot of a bins x bins raster are summed."""
     cells = cells_in_model_space(cells_grid, model)
     keep = cells.n > 0
@@ -274,6 +361,34 @@ def map_figure(cells_grid: CF, model: Model, keys: np.ndarray | None = None, bin
     }
 
 
+def stored_map(cells_grid: CF, keys: np.ndarray | None, model: Model) -> dict[str, Any]:
+    """The map kept in the model file: map_figure's dots, numbers to 6 significant digits ({} without cells)."""
+    if cells_grid.m == 0 or not (cells_grid.n > 0).any():
+        return {}
+    figure = map_figure(cells_grid, model, keys, bins=MAP_BINS)
+    return _rounded(figure)
+
+
+def _rounded(value: Any) -> Any:
+    if isinstance(value, float):
+        return float(f"{value:.6g}")
+    if isinstance(value, list):
+        return [_rounded(v) for v in value]
+    if isinstance(value, dict):
+        return {k: _rounded(v) for k, v in value.items()}
+    return value
+
+
+def report_map(engine: Engine, source: Source, model: Model) -> dict[str, Any] | None:
+    """The map: the one kept in the model file, else (older model files) one cell pass with the model's grid."""
+    if model.report_map:
+        return {**model.report_map, "from": "model"}
+    if not model.grid:
+        return None
+    cells_grid, keys = map_cells(engine, source, model)
+    return {**map_figure(cells_grid, model, keys, bins=MAP_BINS), "from": "cell pass"} if cells_grid.m else None
+
+
 # --------------------------------------------------------------------------- the report's content
 
 
@@ -288,13 +403,24 @@ def build_report(
 ) -> dict[str, Any]:
     """Everything the report shows, as plain data (what --format json writes).
 
-    ``cells``: the cells' CFs in the grid's units and their keys (a store's kept
-    cells); without them one cell pass with the model's grid draws the map.
+    Two statements: one scan for the statistics and every breakdown, one over
+    a seeded sample for the quartiles.  ``cells``: the cells' CFs in the grid's
+    units and their keys (a store's kept cells) to draw the map from; without
+    them the map kept in the model file, else (older files) one cell pass.
     """
-    stats = segment_statistics(engine, source, model)
-    cells_grid, keys = cells if cells is not None else map_cells(engine, source, model)
-    breakdowns = [breakdown(engine, source, model, c) for c in by]
-    return assemble(model, stats, cells_grid, breakdowns, history or [], store, keys)
+    stats, breakdowns = report_scan(engine, source, model, by)
+    quartiles, sampled = sample_quartiles(engine, source, model)
+    stats = with_quartiles(stats, quartiles)
+    if cells is not None:
+        figure = map_figure(cells[0], model, cells[1]) if cells[0].m else None
+    else:
+        figure = report_map(engine, source, model)
+    return assemble(model, stats, _no_cells(model), breakdowns, history or [], store, None, figure=figure, sampled=sampled)
+
+
+def _no_cells(model: Model) -> CF:
+    d = len(model.columns)
+    return CF(np.zeros(0), np.zeros((0, d)), np.zeros((0, d)))
 
 
 def assemble(
@@ -305,8 +431,14 @@ def assemble(
     history: list[dict[str, Any]],
     store: str | None = None,
     keys: np.ndarray | None = None,
+    figure: dict[str, Any] | None = None,
+    sampled: int | None = None,
 ) -> dict[str, Any]:
-    """The report's content from the engine's aggregates (no engine needed: testable on its own)."""
+    """The report's content from the engine's aggregates (no engine needed: testable on its own).
+
+    ``figure``: the map already drawn (kept in the model file), else drawn from ``cells_grid``;
+    ``sampled``: rows of the sample the quartiles come from.
+    """
     columns = list(model.columns)
     ids = model.segment_ids() + ([-1] if -1 in stats and -1 not in model.segment_ids() else [])
     present = {sid: stats[sid] for sid in ids if sid in stats}
@@ -346,13 +478,15 @@ def assemble(
             "built": model.created,
             "sse": model.sse,
             "calinski_harabasz": calinski_harabasz_of(present, model),
+            "quartile_sample": sampled,
+            "quartile_sample_percent": quartile_sample_percent(model),
             "caution": CAUTION,
         },
         "overall": {"mean": mu.tolist(), "sd": sd.tolist()},
         "segments": segments,
         "profile": profile,
         "spread": spread,
-        "map": map_figure(cells_grid, model, keys) if cells_grid.m else None,
+        "map": figure if figure is not None else (map_figure(cells_grid, model, keys) if cells_grid.m else None),
         "breakdowns": breakdowns,
         "history": _history_series(history, ids),
     }
@@ -372,6 +506,12 @@ def _float(v: Any) -> float | None:
         return None
     f = float(v)
     return f if math.isfinite(f) else None
+
+
+def _masked_ints(values: np.ndarray) -> list[int | None]:
+    mask = np.ma.getmaskarray(values) if np.ma.isMaskedArray(values) else np.zeros(len(values), bool)
+    data = np.ma.getdata(values)
+    return [None if m or v is None else int(v) for v, m in zip(data, mask)]
 
 
 def _masked_texts(values: np.ndarray) -> list[str | None]:
@@ -426,27 +566,50 @@ def _say(progress: Any, stage: str, message: str) -> None:
         progress(stage, message)
 
 
-def report_of_model(engine: Engine, source: Source, model: Model, by: Sequence[str] = (), progress: Any = None) -> dict[str, Any]:
-    """The report of a model over its source: statistics, map (one cell pass), breakdowns."""
+def report_of_model(
+    engine: Engine, source: Source, model: Model, by: Sequence[str] = (), progress: Any = None, labels: str | None = None
+) -> dict[str, Any]:
+    """The report of a model over its source: one scan for statistics and breakdowns, the quartiles from a
+    seeded sample, the map from the model file (a cell pass for older model files).
+
+    ``labels``: a labels table made by `tillite label --materialize` with this model; its segment column
+    is read instead of assigning every row again (the rows are then those of the table).
+    """
     import time
 
     from .pipeline import check_columns
 
+    by = list(dict.fromkeys(by))  # a column named twice is one breakdown
     present = check_columns(engine, source, list(model.columns))
     missing = [c for c in by if c not in present]
     if missing:
         raise TilliteError(f"--by column {', '.join(missing)} not found in {source.label}; columns there: {', '.join(present)}")
+    labelled = _labels_table(engine, labels, model, by) if labels else None
     t0 = time.perf_counter()
-    stats = segment_statistics(engine, source, model)
-    _say(progress, "report", f"per-segment statistics, {time.perf_counter() - t0:.2f} s")
+    stats, breakdowns = report_scan(engine, source, model, by, labels=labelled)
+    how = f"read from {labels}" if labels else "one scan"
+    _say(progress, "report", f"per-segment statistics{' and breakdowns by ' + ', '.join(by) if by else ''}, {how}, {time.perf_counter() - t0:.2f} s")
     t1 = time.perf_counter()
-    cells_grid, keys = map_cells(engine, source, model) if model.grid else (CF(np.zeros(0), np.zeros((0, len(model.columns))), np.zeros((0, len(model.columns)))), None)
-    _say(progress, "report", f"cells for the map, {time.perf_counter() - t1:.2f} s")
+    quartiles, sampled = sample_quartiles(engine, source, model, labels=labelled)
+    _say(progress, "report", f"quartiles from a sample of {sampled:,} rows, {time.perf_counter() - t1:.2f} s")
     t2 = time.perf_counter()
-    breakdowns = [breakdown(engine, source, model, c) for c in by]
-    if by:
-        _say(progress, "report", f"breakdowns by {', '.join(by)}, {time.perf_counter() - t2:.2f} s")
-    return assemble(model, stats, cells_grid, breakdowns, [], None, keys)
+    figure = report_map(engine, source, model)
+    where = "kept in the model file" if model.report_map else "one cell pass (the model file has no map)"
+    _say(progress, "report", f"map {where}, {time.perf_counter() - t2:.2f} s")
+    return assemble(model, with_quartiles(stats, quartiles), _no_cells(model), breakdowns, [], None, None,
+                    figure=figure, sampled=sampled)
+
+
+def _labels_table(engine: Engine, labels: str, model: Model, by: Sequence[str]) -> Source:
+    """The --labels table as a Source, checked to hold a segment column, the model's and the --by columns."""
+    from .pipeline import check_columns
+
+    src = Source.of_table(labels)
+    present = check_columns(engine, src, ["segment"])
+    missing = [c for c in list(model.columns) + list(by) if c not in present]
+    if missing:
+        raise TilliteError(f"--labels {labels} lacks column {', '.join(missing)}; columns there: {', '.join(present)}")
+    return src
 
 
 def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress: Any = None) -> dict[str, Any]:
@@ -456,12 +619,14 @@ def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress
     from .pipeline import check_columns
 
     info = S.load(engine, store)
+    by = list(dict.fromkeys(by))  # a column named twice is one breakdown
     present = check_columns(engine, info.source, list(info.model.columns))
     missing = [c for c in by if c not in present]
     if missing:
         raise TilliteError(f"--by column {', '.join(missing)} not found in {info.source.label}; columns there: {', '.join(present)}")
-    stats = segment_statistics(engine, info.source, info.model)
+    stats, breakdowns = report_scan(engine, info.source, info.model, by)
+    quartiles, sampled = sample_quartiles(engine, info.source, info.model)
     cells_grid, keys, _ = S.merged_cells(engine, info.cells_table, info.grid, len(info.columns))
-    breakdowns = [breakdown(engine, info.source, info.model, c) for c in by]
     _say(progress, "report", f"store {store}: statistics, {cells_grid.m:,} kept cells, {len(breakdowns)} breakdown(s)")
-    return assemble(info.model, stats, cells_grid, breakdowns, store_history.history(engine, store), store, keys)
+    return assemble(info.model, with_quartiles(stats, quartiles), cells_grid, breakdowns,
+                    store_history.history(engine, store), store, keys, sampled=sampled)

@@ -235,8 +235,19 @@ def spread_chart(content: dict[str, Any], column: str, index: int) -> str:
         [[segment_label(s), fmt(s["rows"]), fmt(r["mean"]), fmt(r["sd"]), fmt(r["min"]), fmt(r["q25"]), fmt(r["q50"]),
           fmt(r["q75"]), fmt(r["max"])] for s, r in zip(segments, rows)],
     )
-    return _figure(f"spread-{index}", svg, f"{column}: line from min to max, box from the first to the third quartile "
-                   "(the engine's approximate quantiles), thick tick at the median.", table)
+    return _figure(f"spread-{index}", svg, f"{column}: line from min to max, box from the first to the third quartile, "
+                   f"thick tick at the median. {quartile_note(content)}", table)
+
+
+def quartile_note(content: dict[str, Any]) -> str:
+    """Where the quartiles come from: min, max, mean and sd are exact over all rows; quartiles are approximate."""
+    sampled = content["header"].get("quartile_sample")
+    if sampled is None:
+        return "Quartiles are the engine's approximate quantiles."
+    if content["header"].get("quartile_sample_percent", 0.0) >= 100.0:
+        return f"Min, max, mean, sd and the quartiles are computed from all {sampled:,} usable rows (the table is smaller than the quartile sample)."
+    return (f"Min, max, mean and sd are exact over all rows; the quartiles are approximate, computed from a seeded "
+            f"sample of {sampled:,} rows.")
 
 
 def map_chart(content: dict[str, Any]) -> str:
@@ -294,6 +305,7 @@ def map_chart(content: dict[str, Any]) -> str:
         f"to its rows, coloured by segment; white diamonds mark the centroids. The two axes hold {pct(a1 + a2)} of the "
         f"variance ({pct(a1)} and {pct(a2)}) in the model's scaled units. Cells on the same spot are drawn as one dot; "
         "the frame holds 99% of the rows on each axis (each axis on its own scale), cells beyond it sit on its edge."
+        + (" The map was drawn when the segments were made and is kept in the model file." if m.get("from") == "model" else "")
     )
     return f'<p class="legend">{" ".join(legend)}</p>' + _figure("map", svg, caption, table)
 
@@ -463,7 +475,7 @@ def render_markdown(content: dict[str, Any]) -> str:
         [[segment_label(s)] + [f"{fmt(m)}; {'–' if z is None else f'{z:+.2f}'}" for m, z in zip(p["mean"], p["z"])]
          for s, p in zip(segments, content["profile"])],
     )
-    lines += ["## Spread", ""]
+    lines += ["## Spread", "", quartile_note(content), ""]
     for c in h["columns"]:
         lines += [f"### {_md_escape(c)}", ""] + _md_table(
             ["segment", "rows", "mean", "sd", "min", "q25", "median", "q75", "max"],

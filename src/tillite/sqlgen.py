@@ -1348,3 +1348,110 @@ def segment_names_column(select: exp.Select, segment: str, names: dict[int, str]
         for sid, name in sorted(names.items()):
             cased = cased.when(num(int(sid)), exp.Literal.string(str(name)))
     return exp.select(exp.Star(), exp.alias_(cased, alias, quoted=True)).from_(subquery(select, internal("n")))
+
+
+# --------------------------------------------------------------------------- the report in one scan
+#
+# Assigning a row to its nearest centroid costs far more than reading it, so the
+# report assigns each row once: one statement groups the assigned rows by
+# (segment, breakdown column) and returns count, mean, population sd, min and
+# max per group, which Python pools exactly into per-segment figures.  The
+# quartiles come from a second statement over a seeded row sample.
+
+#: Rows the quartile sample aims at (the sample's size sets the rank error; see report.py).
+QUARTILE_SAMPLE_ROWS = 100_000
+QUARTILE_SAMPLE_SEED = 20261202
+
+
+def report_rows_select(
+    source: Source, columns: Sequence[str], by: Sequence[str], assign: Assignment, dialect: str,
+    cell_map: CellMap | None = None,
+) -> exp.Select:
+    """The model's columns, the breakdown columns and each row's segment (internal name); no distance.
+
+    The scores are fenced (computed once per row) where the planner would inline them.
+    """
+    inner, seg, _, _ = _assignment_layers(source, columns, assign, dialect, keep_source=True, cell_map=cell_map, fence=True)
+    keep = list(dict.fromkeys(list(columns) + list(by)))
+    return exp.select(
+        *[col(c) for c in keep], exp.alias_(exp.cast(col(seg), exp.DataType.build("INT")), seg, quoted=True)
+    ).from_(subquery(inner, internal("d")))
+
+
+def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence[str]) -> exp.Select:
+    """Per (segment, breakdown category): n and per column mean{j}, sd{j} (population), min{j}, max{j}.
+
+    One GROUP BY over the assigned rows: by (segment) alone without breakdowns,
+    by (segment, c0) with one, by GROUPING SETS ((segment, c0), (segment, c1), ...)
+    with more, where g{i} = GROUPING(c_i) is 0 in the set of c_i.  Categories come back as text c{i}.  Rows without a
+    segment (skipped for NULL/NaN/Inf) form groups whose s is NULL, for the
+    caller to leave out (a filter would be pushed down and assign rows twice).
+    """
+    seg = col(internal("segment"))
+    text = exp.DataType.build("VARCHAR")
+    projections: list[exp.Expression] = [exp.alias_(seg, "s")]
+    projections += [exp.alias_(exp.cast(col(c), text), f"c{i}") for i, c in enumerate(by)]
+    if len(by) > 1:  # one single-column GROUPING per set: the form DuckDB, PostgreSQL and Spark all take
+        projections += [exp.alias_(exp.Grouping(expressions=[col(c)]), f"g{i}") for i, c in enumerate(by)]
+    projections.append(exp.alias_(exp.Count(this=exp.Star()), "n"))
+    for j, name in enumerate(columns):
+        x = to_double(col(name))
+        projections += [
+            exp.alias_(exp.Avg(this=x.copy()), f"mean{j}"),
+            exp.alias_(exp.StddevPop(this=x.copy()), f"sd{j}"),
+            exp.alias_(exp.Min(this=x.copy()), f"min{j}"),
+            exp.alias_(exp.Max(this=x.copy()), f"max{j}"),
+        ]
+    select = exp.select(*projections).from_(subquery(rows, internal("r")))
+    if len(by) <= 1:
+        return select.group_by(seg.copy(), *[col(c) for c in by])
+    sets = exp.GroupingSets(expressions=[exp.Tuple(expressions=[seg.copy(), col(c)]) for c in by])
+    select.set("group", exp.Group(expressions=[sets]))
+    return select
+
+
+def sampled_rows(rows: exp.Select, percent: float, dialect: str, seed: int = QUARTILE_SAMPLE_SEED) -> exp.Select:
+    """The statement with its source table read through TABLESAMPLE BERNOULLI (percent), seeded where the
+    dialect renders a seed (not Spark).  Unchanged at 100% or for sources that are not tables."""
+    if percent >= 100.0:
+        return rows
+    out = rows.copy()
+    for source in out.find_all(exp.From):
+        if isinstance(source.this, exp.Table):
+            sample = table_sample(float(percent), "BERNOULLI", dialect)
+            if dialect not in SPARK_DIALECTS:
+                sample.set("seed", num(int(seed)))
+            source.this.set("sample", sample)
+    return out
+
+
+def quartile_statement(rows: exp.Select, columns: Sequence[str], dialect: str) -> exp.Select:
+    """Per segment s: n (sampled rows) and the quartiles q25_{j}, q50_{j}, q75_{j} of each column."""
+    seg = col(internal("segment"))
+    projections: list[exp.Expression] = [exp.alias_(seg, "s"), exp.alias_(exp.Count(this=exp.Star()), "n")]
+    for j, name in enumerate(columns):
+        x = to_double(col(name))
+        if dialect == "duckdb":  # one sort per column for all three quartiles: q_{j} is a list
+            quartiles = exp.Array(expressions=[exp.Literal.number(repr(q)) for q in QUARTILES])
+            projections.append(exp.alias_(exp.func("quantile_cont", x.copy(), quartiles), f"q_{j}"))
+            continue
+        projections += [
+            exp.alias_(sample_quantile(x.copy(), q, dialect), f"q{int(round(q * 100))}_{j}") for q in QUARTILES
+        ]
+    return exp.select(*projections).from_(subquery(rows, internal("r"))).group_by(seg.copy())
+
+
+def sample_quantile(e: exp.Expression, q: float, dialect: str) -> exp.Expression:
+    """A quantile of the sampled rows: exact on PostgreSQL (percentile_cont), Spark's percentile_approx
+    (rank error 1/10,000); DuckDB takes quantile_cont over a list of the three (exact on the sample).
+    The sample keeps the memory bounded."""
+    return approx_quantile(e, q, dialect)
+
+
+def labelled_rows_select(labels: Source, columns: Sequence[str], by: Sequence[str], segment: str = "segment") -> exp.Select:
+    """report_rows_select's output read from a materialized labels table: its segment column, no assignment."""
+    keep = list(dict.fromkeys(list(columns) + list(by)))
+    return exp.select(
+        *[col(c) for c in keep],
+        exp.alias_(exp.cast(col(segment), exp.DataType.build("INT")), internal("segment"), quoted=True),
+    ).from_(labels.relation())
