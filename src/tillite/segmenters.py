@@ -222,52 +222,6 @@ def _lloyd(
     centres = np.where(mass[:, None] > 0, sums / np.where(mass > 0, mass, 1.0)[:, None], centres)
     return centres, labels, _cost(x, w, centres, labels), it
 
-HARTIGAN_ROUNDS = 100  # at most this many rounds of single-cell moves
-
-
-def _hartigan(
-    x: np.ndarray, w: np.ndarray, labels: np.ndarray, k: int, rounds: int = HARTIGAN_ROUNDS
-) -> tuple[np.ndarray, np.ndarray, float]:
-    """Single-cell moves by their exact SSE change (Hartigan and Wong's criterion, from memory).
-
-    Taking cell i (weight w_i) out of segment a lowers the SSE by
-    w_i n_a / (n_a - w_i) |x_i - c_a|^2 and putting it into b raises it by
-    w_i n_b / (n_b + w_i) |x_i - c_b|^2; Lloyd's rule ignores the two factors, so a
-    converged Lloyd partition can still improve this way.  Each round applies the
-    best gaining move of as many cells as touch disjoint pairs of segments (their
-    gains then add up exactly) and recomputes the means.
-    """
-    labels = labels.copy()
-    xw = x * w[:, None]
-    rows = np.arange(len(x))
-    for _ in range(rounds):
-        mass, sums = _means(xw, w, labels, k)
-        centres = sums / np.where(mass > 0, mass, 1.0)[:, None]
-        d = _sq_dist(x, centres)
-        na = mass[labels]
-        out = np.where(na > w * (1.0 + 1e-9), w * na / np.maximum(na - w, 1e-300), 0.0) * d[rows, labels]
-        add = d * (mass[None, :] / (mass[None, :] + w[:, None])) * w[:, None]
-        add[rows, labels] = np.inf
-        target = add.argmin(axis=1)
-        gain = out - add[rows, target]
-        cand = np.flatnonzero(gain > 1e-12 * (out + 1e-300))
-        if cand.size == 0:
-            break
-        cand = cand[np.argsort(-gain[cand])]
-        touched = np.zeros(k, dtype=bool)
-        moved = []
-        for i in cand.tolist():  # loop over gaining cells only, at most k / 2 taken
-            a, b = labels[i], target[i]
-            if touched[a] or touched[b]:
-                continue
-            touched[a] = touched[b] = True
-            moved.append(i)
-        labels[moved] = target[moved]
-    mass, sums = _means(xw, w, labels, k)
-    centres = sums / np.where(mass > 0, mass, 1.0)[:, None]
-    return centres, labels, _cost(x, w, centres, labels)
-
-
 def _split_two(x: np.ndarray, w: np.ndarray, rounds: int = 4) -> tuple[float, np.ndarray, np.ndarray]:
     """Split one group of cells in two: cut across its principal axis at the mean, then a
     few 2-means rounds.  Returns (SSE drop, centre a, centre b) in the cells' coordinates."""
@@ -295,7 +249,6 @@ def _split_two(x: np.ndarray, w: np.ndarray, rounds: int = 4) -> tuple[float, np
 
 RELOCATE_PAIRS = 3  # cheapest merges tried per move
 RELOCATE_SPLITS = 3  # largest splits tried per move
-RELOCATE_MODE = "merge"
 RELOCATE_MOVES = 200  # at most this many accepted moves
 
 
@@ -325,13 +278,8 @@ def _relocate(
         bounds = np.searchsorted(labels[order], np.arange(k + 1))
         splits = [_split_two(x[order[bounds[j]:bounds[j + 1]]], w[order[bounds[j]:bounds[j + 1]]]) for j in range(k)]
         gain = np.array([s[0] for s in splits])
-        if RELOCATE_MODE == "remove":
-            _, d1, d2 = _two_nearest(x, centres)
-            removal = np.bincount(labels, weights=w * (d2 * d2 - d1 * d1), minlength=k)
-            frees = [(int(j), -1, removal[j]) for j in np.argsort(removal)[:RELOCATE_PAIRS]]
-        else:
-            flat = np.argsort(merge, axis=None)[:RELOCATE_PAIRS]
-            frees = [(*divmod(int(f), k), merge.flat[f]) for f in flat]
+        flat = np.argsort(merge, axis=None)[:RELOCATE_PAIRS]
+        frees = [(*divmod(int(f), k), merge.flat[f]) for f in flat]
         by_gain = np.argsort(-gain)
         better = False
         for a, b, price in frees:
@@ -343,11 +291,8 @@ def _relocate(
                     break
                 tried += 1
                 trial = centres.copy()
-                if b >= 0:
-                    trial[a] = (mass[a] * centres[a] + mass[b] * centres[b]) / (mass[a] + mass[b])
-                    trial[b], trial[c] = splits[c][1], splits[c][2]
-                else:
-                    trial[a], trial[c] = splits[c][1], splits[c][2]
+                trial[a] = (mass[a] * centres[a] + mass[b] * centres[b]) / (mass[a] + mass[b])
+                trial[b], trial[c] = splits[c][1], splits[c][2]
                 got = _lloyd(x, w, trial, max_iter, 0.0)
                 if got[2] < cost * (1.0 - 1e-12):
                     centres, labels, cost = got[0], got[1], got[2]
@@ -364,15 +309,16 @@ def _relocate(
 
 BRIEF_ITER = 10  # Lloyd iterations given to each restart before the best is finished
 BRIEF_TOL = 1e-3  # ... or until an iteration gains less than this share of the cost
-HARTIGAN = 0
-FINISH = 3  # restarts finished (exact Lloyd convergence, then relocation moves)
+PROGRESS_EVERY = 1.0  # seconds between progress lines of a long run
+FINISH = 3  # restarts finished (exact Lloyd convergence, then relocation moves) ...
+FINISH_ALL_BELOW = 100_000  # ... or all of them when cells x k is at most this (they are cheap)
 
 
 class _Ticker:
     """Calls ``progress`` at most once a second (and never before the first second)."""
 
-    def __init__(self, progress: Callable[[str], None] | None, every: float = 1.0) -> None:
-        self.progress, self.every = progress, every
+    def __init__(self, progress: Callable[[str], None] | None) -> None:
+        self.progress, self.every = progress, PROGRESS_EVERY
         self.last = time.perf_counter()
 
     def __call__(self, message: str) -> None:
@@ -428,14 +374,12 @@ def _kmeans(cells: CF, k: int, weights: np.ndarray | None, n_init: int, max_iter
             brief.append(got)
             tick(f"k={k}: restart {r + 1} of {n_init}, cell SSE {got[2] + within:.6g}")
         brief.sort(key=lambda got: got[2])
-        starts = [got[0] for got in brief[:FINISH]]
+        finish = len(brief) if len(x) * k <= FINISH_ALL_BELOW else FINISH
+        starts = [got[0] for got in brief[:finish]]
     best: tuple[np.ndarray, np.ndarray, float, int] | None = None
     moves = 0
     for centres in starts:
         got = _lloyd(x, mass, centres, max_iter, tol)
-        if HARTIGAN:
-            c, lab, cost = _hartigan(x, mass, got[1], k)
-            got = (c, lab, cost, got[3])
         if relocate:
             c, lab, cost, mv = _relocate(x, mass, got[0], got[1], got[2], max_iter, tick)
             got = (c, lab, cost, got[3])
