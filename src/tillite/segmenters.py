@@ -307,11 +307,11 @@ def _relocate(
     return centres, labels, cost, accepted
 
 
-BRIEF_ITER = 10  # Lloyd iterations given to each restart before the best is finished
+BRIEF_ITER = 5  # Lloyd iterations given to each restart before the best is finished
 BRIEF_TOL = 1e-3  # ... or until an iteration gains less than this share of the cost
 PROGRESS_EVERY = 1.0  # seconds between progress lines of a long run
 FINISH = 3  # restarts finished (exact Lloyd convergence, then relocation moves) ...
-FINISH_ALL_BELOW = 100_000  # ... or all of them when cells x k is at most this (they are cheap)
+FINISH_ALL_BELOW = 20_000  # ... or all of them when cells x k is at most this (they are cheap)
 
 
 class _Ticker:
