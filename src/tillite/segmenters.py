@@ -310,8 +310,9 @@ def _relocate(
 BRIEF_ITER = 5  # Lloyd iterations given to each restart before the best is finished
 BRIEF_TOL = 1e-3  # ... or until an iteration gains less than this share of the cost
 PROGRESS_EVERY = 1.0  # seconds between progress lines of a long run
-FINISH = 3  # restarts finished (exact Lloyd convergence, then relocation moves) ...
-FINISH_ALL_BELOW = 20_000  # ... or all of them when cells x k is at most this (they are cheap)
+FINISH = 5  # restarts finished (exact Lloyd convergence) ...
+RELOCATE_STARTS = 3  # ... of which the cheapest this many get relocation moves;
+FINISH_ALL_BELOW = 20_000  # every restart gets both when cells x k is at most this (they are cheap)
 
 
 class _Ticker:
@@ -346,8 +347,8 @@ def kmeans(
     ``init`` (k x d, unweighted coordinates) warm-starts a single run instead.
     Each restart is seeded by greedy k-means++ and given a few Lloyd iterations
     (BRIEF_ITER, BRIEF_TOL); the FINISH cheapest are run to convergence (no cell
-    changes centre, or a gain below ``tol``) and improved by relocation moves
-    (``_relocate``).  ``progress`` receives a line now and then on long runs.
+    changes centre, or a gain below ``tol``) and the RELOCATE_STARTS cheapest of
+    those improved by relocation moves (``_relocate``).  ``progress`` receives a line now and then on long runs.
     """
     with one_blas_thread():
         return _kmeans(cells, k, weights, n_init, max_iter, tol, seed, init, progress, relocate)
@@ -376,17 +377,14 @@ def _kmeans(cells: CF, k: int, weights: np.ndarray | None, n_init: int, max_iter
         brief.sort(key=lambda got: got[2])
         finish = len(brief) if len(x) * k <= FINISH_ALL_BELOW else FINISH
         starts = [got[0] for got in brief[:finish]]
-    best: tuple[np.ndarray, np.ndarray, float, int] | None = None
+    finished = sorted((_lloyd(x, mass, centres, max_iter, tol) for centres in starts), key=lambda got: got[2])
+    best: tuple[np.ndarray, np.ndarray, float, int] = finished[0]
     moves = 0
-    for centres in starts:
-        got = _lloyd(x, mass, centres, max_iter, tol)
-        if relocate:
-            c, lab, cost, mv = _relocate(x, mass, got[0], got[1], got[2], max_iter, tick)
-            got = (c, lab, cost, got[3])
-        else:
-            mv = 0
-        if best is None or got[2] < best[2]:
-            best, moves = got, mv
+    small = len(x) * k <= FINISH_ALL_BELOW
+    for got in finished[: (len(finished) if small else RELOCATE_STARTS) if relocate else 0]:
+        c, lab, cost, mv = _relocate(x, mass, got[0], got[1], got[2], max_iter, tick)
+        if cost < best[2]:
+            best, moves = (c, lab, cost, got[3]), mv
     _, labels, cost, iters = best
     per_segment = F.group_sum(cells, labels, k)
     cents = F.centroids(per_segment)
