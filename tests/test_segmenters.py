@@ -324,9 +324,11 @@ def test_kmeans_at_k100_finds_the_generating_solution_for_nine_of_ten_seeds(hund
         # scikit-learn KMeans(n_init=3) on the rows: the cell-phase SSE alone is within 0.2%
         assert max(r.sse for r in runs) <= 1.002 * inertia
     else:
-        # overlapping clusters of random radii: after the three default refine passes (numpy
-        # Lloyd steps on the rows) within 0.5% of scikit-learn KMeans(n_init=3) (target 0.2%, missed)
-        assert max(_refined(u, r.centroids) for r in runs[:3]) <= 1.005 * inertia
+        # overlapping clusters of random radii: a cell goes whole to one segment, so the cell-phase
+        # SSE stays up to about 0.4% above; after the three default refine passes (numpy Lloyd steps
+        # on the rows) within 0.2% of scikit-learn KMeans(n_init=3) on the rows
+        assert max(r.sse for r in runs) <= 1.006 * inertia
+        assert max(_refined(u, r.centroids) for r in runs[:3]) <= 1.002 * inertia
 
 
 def test_warm_start_with_two_clusters_merged_and_one_split_recovers_the_grid_pattern():
