@@ -142,3 +142,59 @@ def test_outlier_rows_are_the_rows_of_mapped_cells_whether_the_map_is_inline_or_
     counts = np.bincount(np.asarray(table["segment"])[np.asarray(table["segment"]) >= 0], minlength=model.k)
     assert counts.tolist() == model.sizes
     engine.close()
+
+
+def test_k_auto_on_one_gaussian_blob_keeps_one_segment_and_says_why(tmp_path):
+    x, _ = make_blobs(n_samples=20_000, centers=1, n_features=3, random_state=2)  # scikit-learn: one blob
+    db = write_table(tmp_path / "one.duckdb", "t", columns_of(x, ["a", "b", "c"]))
+    out = tmp_path / "m.json"
+    res = CliRunner().invoke(main, ["segment", str(db), "-t", "t", "-c", "a,b,c", "--k", "auto", "-o", str(out)])
+    assert res.exit_code == 0, res.output
+    assert json.loads(out.read_text())["k"] == 1
+    assert "chosen k = 1 (one segment: its BIC" in res.stderr
+    shown = CliRunner().invoke(main, ["show", str(out)])
+    assert "k chosen among [1, 2," in shown.output and "one segment" in shown.output
+
+
+@pytest.mark.parametrize("k", ["10000", "2..100000"])
+def test_k_far_above_the_cells_is_one_error_line_naming_k(tmp_path, blobs, k):
+    x, _ = blobs
+    db = write_table(tmp_path / "b.duckdb", "t", columns_of(x, ["a", "b", "c", "d"]))
+    res = CliRunner().invoke(main, ["segment", str(db), "-t", "t", "-c", "a,b,c,d", "--k", k, "-q"])
+    assert res.exit_code == 1 and "Traceback" not in res.output
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("Error:") and "--k" in lines[0] and "at most" in lines[0]
+
+
+def test_ward_on_many_cells_condenses_first_without_outliers_and_show_says_so(tmp_path, blobs, monkeypatch):
+    import tillite.pipeline as P
+
+    monkeypatch.setattr(P, "WARD_ENTRIES", 400)
+    x, y = blobs
+    data = columns_of(x, ["a", "b", "c", "d"])
+    data["truth"] = y
+    engine = DuckDBEngine(str(write_table(tmp_path / "w.duckdb", "t", data)))
+    model = segment(engine, Source.of_table("t"), ["a", "b", "c", "d"], Settings(k=5, method="ward"))
+    assert model.params["tree"]["entries"] <= 400 and "before Ward" in model.params["tree"]["reason"]
+    assert "outliers" not in model.extras or model.extras["outliers"]["rows"] == 0
+    assert "condensed before Ward" in model.describe()
+    got = labelled(engine, model)
+    # reference: scikit-learn adjusted_rand_score against make_blobs' labels
+    assert adjusted_rand_score(got["truth"], got["segment"]) >= 0.99
+    engine.close()
+
+
+@pytest.mark.parametrize("scale", [1e-100, 1.0])
+def test_ward_on_tiny_or_constant_weighted_data_ends_without_a_traceback(tmp_path, scale):
+    x, _ = make_blobs(n_samples=2000, centers=3, n_features=2, random_state=0)
+    x = x * scale if scale != 1.0 else np.column_stack([np.full(2000, 5.0), 2.0 + np.arange(2000) * 1e-14])
+    db = write_table(tmp_path / "tiny.duckdb", "t", columns_of(x, ["a", "b"]))
+    out = tmp_path / "m.json"
+    res = CliRunner().invoke(main, ["segment", str(db), "-t", "t", "-c", "a,b", "--k", "3", "--method", "ward", "-q",
+                                    "-o", str(out)])
+    assert "Traceback" not in res.output and not isinstance(res.exception, ZeroDivisionError)
+    if res.exit_code == 0:
+        shown = CliRunner().invoke(main, ["show", str(out)])
+        assert shown.exit_code == 0 and "Traceback" not in shown.output
+    else:
+        assert res.exit_code == 1 and res.stderr.strip().splitlines()[-1].startswith("Error:")

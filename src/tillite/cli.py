@@ -163,12 +163,12 @@ columns_option = click.option(
 
 
 def _parse_k(text: str | None) -> tuple[int, tuple[int, ...]]:
-    """--k: a number, 'auto' (2..12) or a range 'lo..hi' chosen on the CFs."""
+    """--k: a number, 'auto' (1..12) or a range 'lo..hi' chosen on the CFs."""
     if text is None:
         return 0, ()
     text = text.strip().lower()
     if text == "auto":
-        return 0, tuple(range(2, 13))
+        return 0, tuple(range(1, 13))
     lo, sep, hi = text.partition("..")
     try:
         if sep:
@@ -183,7 +183,7 @@ def _parse_k(text: str | None) -> tuple[int, tuple[int, ...]]:
 
 def _settings_options(f):
     opts = [
-        click.option("--k", "-k", "k", help="Number of segments, 'auto' (2..12) or a range like 2..8 chosen on the CFs "
+        click.option("--k", "-k", "k", help="Number of segments, 'auto' (1..12, one segment when no split beats it) or a range like 2..8 chosen on the CFs "
                      "(not needed for --method density)."),
         click.option("--method", type=click.Choice(["kmeans", "ward", "density"]), default="kmeans", show_default=True,
                      help="Second phase: k-means++, Ward agglomeration, or density-connected cells (non-convex shapes)."),

@@ -181,6 +181,7 @@ class Model:
             out.append(
                 f"CF tree: T={tree['threshold']:.4g} ({tree['criterion']}), B={tree['branching']}, L={tree['leaf_capacity']}, "
                 f"budget {tree['budget']:,}, {tree['entries']:,} entries after {tree['rebuilds']} rebuild(s)"
+                + (f"; {tree['reason']}" if tree.get("reason") else "")
             )
         outliers = self.extras.get("outliers")
         if outliers:
@@ -192,13 +193,16 @@ class Model:
             )
         choice = self.params.get("k_choice")
         if choice:
-            out.append(f"k chosen among {[r['k'] for r in choice['table']]} by {choice['rule'].replace('_', '-')}: {choice['k']}")
+            out.append(f"k chosen among {[r['k'] for r in choice['table']]} by {choice['rule'].replace('_', '-')}: {choice['k']}"
+                       + (f" ({choice['reason']})" if choice.get("reason") else ""))
         heights = self.extras.get("merge_heights")
         if heights:
             k = len(self.sizes)
             shown = ", ".join(f"{h:.4g}" for h in heights[-min(len(heights), 10):])
             out.append(f"Ward merge heights (last {min(len(heights), 10)} of the last 30): {shown}")
-            if 2 <= k <= len(heights):
+            if 2 <= k <= len(heights) and not heights[-k] > 0:
+                out.append(f"cut at k={k}: the last merge kept joined identical entries (height 0), so the cut is arbitrary")
+            elif 2 <= k <= len(heights):
                 made, undone = heights[-k], heights[-(k - 1)]
                 out.append(
                     f"cut at k={k}: the next merge would cost height {undone:.4g}, {undone / made:.2f}x the last one kept "

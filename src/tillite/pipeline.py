@@ -29,7 +29,7 @@ from .engines import Engine, SourceError, TilliteError, file_reader_for, is_nume
 from .errors import InputError, ParameterError
 from .features import CF
 from .model import Model, usual_file_mode
-from .segmenters import KMeansResult, kmeans
+from .segmenters import WARD_ENTRIES, KMeansResult, kmeans
 from .sqlgen import Assignment, Grid, Source
 
 __all__ = [
@@ -591,12 +591,37 @@ def check_k_fits(cells: CF, k: int, where: str) -> None:
         raise InputError(f"k={k} is larger than the {nonempty:,} distinct grid cells of {where}{distinct}")
 
 
+K_LIMIT_CELLS = 20  # k-means refuses more segments than one per this many non-empty cells ...
+K_LIMIT_FLOOR = 50  # ... unless k is at most this
+
+
+def k_limit(cells: CF) -> int:
+    """The largest k the k-means second phase accepts on these cells (see check_k_limit)."""
+    return max(K_LIMIT_FLOOR, int((cells.n > 0).sum()) // K_LIMIT_CELLS)
+
+
+def check_k_limit(cells: CF, ks: Sequence[int], where: str) -> None:
+    """A clear error for k above k_limit: fewer than 20 cells per segment leave the grid too coarse to
+    tell the segments apart, and the run would take minutes."""
+    limit = k_limit(cells)
+    over = [k for k in ks if k > limit]
+    if over:
+        raise ParameterError(
+            f"{{k}} {max(over):,} is too large for the {int((cells.n > 0).sum()):,} grid cells of {where}: at most {limit:,} "
+            f"segments (one per {K_LIMIT_CELLS} cells, or {K_LIMIT_FLOOR}); give a smaller {{k}} or a larger {{cell_budget}}",
+            "k", "cell_budget",
+        )
+
+
 def second_phase(
-    cells: CF, settings: Settings, weights: np.ndarray, where: str, init: np.ndarray | None = None
+    cells: CF, settings: Settings, weights: np.ndarray, where: str, init: np.ndarray | None = None,
+    progress: ProgressFn | None = None,
 ) -> KMeansResult:
     """Weighted k-means++ on the cells (warm-started from ``init`` when given)."""
     check_k_fits(cells, settings.k, where)
-    return kmeans(cells, settings.k, weights, n_init=settings.n_init, seed=settings.seed, init=init)
+    check_k_limit(cells, [settings.k], where)
+    tell = None if progress is None else (lambda message: progress("second phase", message))
+    return kmeans(cells, settings.k, weights, n_init=settings.n_init, seed=settings.seed, init=init, progress=tell)
 
 
 @dataclass
@@ -652,15 +677,22 @@ def run_second_phase(
         )
     entries, membership, params, extras = cells, np.arange(cells.m), {}, {}
     tree_budget = settings.cell_budget if settings.tree_budget is None else settings.tree_budget
+    for_ward = settings.method == "ward" and bool(tree_budget) and cells.m > WARD_ENTRIES and WARD_ENTRIES < tree_budget
+    if for_ward:
+        tree_budget = WARD_ENTRIES
     if tree_budget and cells.m > tree_budget:
+        # condensing only to speed Ward up keeps every cell (no outlier group the user did not ask for)
+        keep_outliers = settings.keep_outliers or (for_ward and cells.m <= (settings.tree_budget or settings.cell_budget))
         cond = cftree.condense(cells, threshold=settings.threshold, branching=settings.branching,
                                leaf_capacity=settings.leaf_capacity, budget=tree_budget,
-                               criterion=settings.criterion, weights=weights, keep_outliers=settings.keep_outliers,
+                               criterion=settings.criterion, weights=weights, keep_outliers=keep_outliers,
                                seed=settings.seed)
         entries, membership = cond.entries, cond.membership
         params.update({"tree": {"threshold": cond.threshold, "branching": cond.branching, "leaf_capacity": cond.leaf_capacity,
                                 "budget": cond.budget, "criterion": cond.criterion, "rebuilds": cond.rebuilds,
                                 "entries": int(entries.m)}})
+        if for_ward:
+            params["tree"]["reason"] = f"condensed before Ward, which runs on at most {WARD_ENTRIES:,} entries"
         out_rows = int(cells.n[membership < 0].sum())
         extras["outliers"] = {"rows": out_rows, "cells": int((membership < 0).sum()), "entries": int(cond.outliers.m)}
         progress("tree", f"{cells.m:,} cells -> {entries.m:,} entries (T {cond.threshold:.3g}, {cond.rebuilds} rebuild(s)), "
@@ -673,9 +705,11 @@ def run_second_phase(
         if not usable:
             raise ParameterError(f"every candidate {{k}} ({settings.k_candidates[0]}..{settings.k_candidates[-1]}) is not "
                                  f"smaller than the {filled:,} distinct grid cells of {where}; give a smaller {{k}}", "k")
-        choice = choose_k(entries, usable, weights, n_init=settings.n_init, seed=settings.seed, rule=settings.k_rule)
+        check_k_limit(entries, settings.k_candidates, where)
+        choice = choose_k(entries, usable, weights, n_init=settings.n_init, seed=settings.seed, rule=settings.k_rule,
+                          progress=lambda message: progress("choose k", message))
         k = choice.k
-        params["k_choice"] = {"rule": choice.rule, "table": choice.table, "k": k}
+        params["k_choice"] = {"rule": choice.rule, "table": choice.table, "k": k, "reason": choice.reason}
         progress("choose k", "\n" + format_k_table(choice))
     if settings.method == "ward":
         check_k_fits(entries, k, where)
@@ -684,7 +718,7 @@ def run_second_phase(
         extras["merge_heights"] = [float(h) for h in res.heights[-30:]]
         summary = f"Ward on {entries.m:,} entries, SSE {sse:.6g}"
     else:
-        res = second_phase(entries, replace(settings, k=k), weights, where)
+        res = second_phase(entries, replace(settings, k=k), weights, where, progress=progress)
         labels, centroids, sse = res.labels, res.centroids, res.sse
         summary = f"k-means++ x{res.restarts} on {entries.m:,} {'entries' if entries is not cells else 'cells'}, SSE {sse:.6g}"
     cell_labels = np.where(membership >= 0, labels[np.maximum(membership, 0)], -1)
