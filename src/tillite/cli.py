@@ -78,7 +78,7 @@ def user_errors(quiet: bool = False) -> Iterator[None]:
             yield
         except TilliteError as err:
             raise click.ClickException(cli_message(err)) from None
-        except duckdb.Error as err:
+        except duckdb.Error:
             # e.g. a schema that does not exist, a locked file, a malformed CSV:
             # the database's own first line says what is at fault
             first = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
@@ -334,7 +334,7 @@ def _label_explained(engine, src, model, into: str, materialize: bool, replace: 
     existed = engine.relation_kind(into) if not src.files else None
     try:
         return label(engine, src, model, into, materialize=materialize, replace=replace)
-    except duckdb.Error as err:
+    except duckdb.Error:
         if existed and engine.relation_kind(src.label) == "view":
             raise click.ClickException(
                 f"--into {into} cannot replace the {existed} {into}: the source {src.label} is a view that reads it; "
