@@ -78,7 +78,7 @@ def user_errors(quiet: bool = False) -> Iterator[None]:
             yield
         except TilliteError as err:
             raise click.ClickException(cli_message(err)) from None
-        except duckdb.Error:
+        except duckdb.Error as err:
             # e.g. a schema that does not exist, a locked file, a malformed CSV:
             # the database's own first line says what is at fault
             first = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
