@@ -17,7 +17,7 @@ database: a plain `sum` scan of the 5 columns, each step of the report with
 and steps 1-2 again with --labels: reading a labels table made by
 `tillite label --materialize` instead of assigning each row.
 
-Before (the statements the report used until this change, still in sqlgen):
+Before (the statements the report used until the one-scan change, kept in this file for the comparison):
 statistics with reservoir_quantile over all rows, a breakdown statement per
 --by column and a cell pass for the map.  Each step prints as a multiple of
 the plain scan; target: at most 3 plain scans of SQL in all plus at most 3 s
@@ -33,10 +33,109 @@ import tempfile
 import time
 from pathlib import Path
 
-from tillite import DuckDBEngine, Settings, Source, label, segment, sqlgen
+from tillite import DuckDBEngine, Settings, Source, label, segment
 from tillite import report as R
 from tillite.demo import DEMO_COLUMNS, build_demo_database
 from tillite.report_render import render_html
+from tillite.sqlgen import (  # builders the old statements below are made of
+    QUARTILES, SPARK_DIALECTS, Assignment, CellMap, Source as _Source, approx_quantile, case_when, col, internal, label_select, num,
+    subquery, to_double,
+)
+from sqlglot import exp
+from typing import Sequence
+
+# ------------------------------------------------------------ the report's statements before the one-scan change
+
+def report_labels_select(
+    source: _Source, columns: Sequence[str], extra_columns: Sequence[str], assign: Assignment, dialect: str,
+    cell_map: CellMap | None = None,
+) -> exp.Select:
+    """The model's columns, the breakdown columns and the segment of every row (as internal names)."""
+    keep = list(dict.fromkeys(list(columns) + list(extra_columns)))
+    return label_select(
+        source, columns, keep, assign, dialect, segment_name=internal("segment"), distance_name=internal("distance"),
+        cell_map=cell_map,
+    )
+
+
+def segment_stats_statement(labels: exp.Select, columns: Sequence[str], dialect: str) -> exp.Select:
+    """Per segment: n, and per column j mean{j}, sd{j} (population), min{j}, max{j}, q25_{j}, q50_{j}, q75_{j}.
+
+    On DuckDB the quartiles come back as one list q_{j} per column from
+    reservoir_quantile (a uniform sample of 8,192 values per group: exact for
+    smaller segments, bounded memory, and faster here than approx_quantile's
+    T-digest).  Rows without a segment (skipped for NULL/NaN/Inf) form the
+    group whose s is NULL, for the caller to leave out.
+    """
+    seg = col(internal("segment"))
+    projections: list[exp.Expression] = [exp.alias_(seg, "s"), exp.alias_(exp.Count(this=exp.Star()), "n")]
+    for j, name in enumerate(columns):
+        x = to_double(col(name))
+        projections += [
+            exp.alias_(exp.Avg(this=x.copy()), f"mean{j}"),
+            exp.alias_(exp.StddevPop(this=x.copy()), f"sd{j}"),
+            exp.alias_(exp.Min(this=x.copy()), f"min{j}"),
+            exp.alias_(exp.Max(this=x.copy()), f"max{j}"),
+        ]
+        if dialect == "duckdb":  # one reservoir per column for all three quartiles: q_{j} is a list
+            quartiles = exp.Array(expressions=[exp.Literal.number(repr(q)) for q in QUARTILES])
+            projections.append(exp.alias_(exp.func("reservoir_quantile", x.copy(), quartiles), f"q_{j}"))
+            continue
+        projections += [
+            exp.alias_(approx_quantile(x.copy(), q, dialect), f"q{int(round(q * 100))}_{j}") for q in QUARTILES
+        ]
+    # no WHERE on the segment: DuckDB pushes such a filter down to the rows and computes the assignment twice
+    return exp.select(*projections).from_(subquery(labels, internal("r"))).group_by(seg.copy())
+
+
+def breakdown_statement(labels: exp.Select, column: str, top: int = 20, dialect: str = "duckdb") -> exp.Select:
+    """Rows per (segment, category) of one column, the ``top`` categories by rows kept and the rest summed.
+
+    Returns s, b (the category's rank 1..top, or top+1 for "other"), c (the
+    category as text, NULL for a missing value) and n.  Ranks order categories
+    by their usable rows, ties by the text.  The per-(segment, category) counts
+    are a MATERIALIZED CTE where the dialect has one: DuckDB otherwise turns the
+    window over them into a self-join that scans the source twice.  Skipped
+    rows (NULL segment) come back as groups with a NULL s for the caller to
+    drop: a filter on the segment is pushed down to the rows and computes the
+    assignment twice per row.
+    """
+    seg = internal("segment")
+    text = exp.cast(col(column), exp.DataType.build("VARCHAR"))
+    # grouped on the raw column, turned into text once per group (not once per row)
+    per = (
+        exp.select(exp.alias_(col(seg), "s"), exp.alias_(text, "c"), exp.alias_(exp.Count(this=exp.Star()), "n"))
+        .from_(subquery(labels, internal("r")))
+        .group_by(col(seg), col(column))
+    )
+    usable = exp.Not(this=exp.Is(this=col("s"), expression=exp.Null()))
+    counts = internal("p")
+    totals = exp.select(
+        col("s"), col("c"), col("n"),
+        exp.alias_(exp.Window(this=exp.Sum(this=case_when(usable, col("n"))), partition_by=[col("c")]), "t"),
+    ).from_(exp.to_identifier(counts, quoted=True))
+    ranked = exp.select(
+        col("s"), col("c"), col("n"),
+        exp.alias_(
+            exp.Window(
+                this=exp.func("DENSE_RANK"),
+                order=exp.Order(expressions=[
+                    exp.Ordered(this=col("t"), desc=True, nulls_first=False),
+                    exp.Ordered(this=col("c"), nulls_first=False),
+                ]),
+            ),
+            "k",
+        ),
+    ).from_(subquery(totals, internal("t")))
+    bucket = case_when(exp.LTE(this=col("k"), expression=num(top)), col("k")).else_(num(top + 1))
+    category = exp.Min(this=case_when(exp.LTE(this=col("k"), expression=num(top)), col("c")))
+    return (
+        exp.select(col("s"), exp.alias_(bucket, "b"), exp.alias_(category, "c"), exp.alias_(exp.Sum(this=col("n")), "n"))
+        .from_(subquery(ranked, internal("k")))
+        .group_by(col("s"), bucket.copy())
+        .with_(exp.to_identifier(counts, quoted=True), as_=per, materialized=None if dialect in SPARK_DIALECTS else True)
+    )
+
 
 
 def median_time(fn, repeat: int) -> tuple[float, object]:
@@ -50,9 +149,9 @@ def median_time(fn, repeat: int) -> tuple[float, object]:
 
 def before_statements(engine, src, model, by: str) -> list:
     """The report's statements before the one-scan change: statistics with reservoir quartiles, a breakdown."""
-    labels = sqlgen.report_labels_select(src, model.columns, [], model.assignment(), "duckdb", cell_map=model.cell_map_spec())
-    labels_by = sqlgen.report_labels_select(src, model.columns, [by], model.assignment(), "duckdb", cell_map=model.cell_map_spec())
-    return [sqlgen.segment_stats_statement(labels, model.columns, "duckdb"), sqlgen.breakdown_statement(labels_by, by, 20, "duckdb")]
+    labels = report_labels_select(src, model.columns, [], model.assignment(), "duckdb", cell_map=model.cell_map_spec())
+    labels_by = report_labels_select(src, model.columns, [by], model.assignment(), "duckdb", cell_map=model.cell_map_spec())
+    return [segment_stats_statement(labels, model.columns, "duckdb"), breakdown_statement(labels_by, by, 20, "duckdb")]
 
 
 def main() -> None:
@@ -95,7 +194,7 @@ def main() -> None:
               f"map of {len(figure['dots']['n']):,} dots kept in the model file (medians of {args.repeat})")
         print(f"{'plain sum scan':<52}{scan:>8.3f} s")
         print("now:")
-        for name, t in ((f"1. statistics + breakdown by district (one scan)", t_scan),
+        for name, t in (("1. statistics + breakdown by district (one scan)", t_scan),
                         (f"2. quartiles from a sample of {sampled:,} rows", t_q),
                         ("3. map from the model file", t_map)):
             print(f"  {name:<50}{t:>8.3f} s   ({t / scan:5.1f} plain scans)")

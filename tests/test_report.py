@@ -480,18 +480,14 @@ def test_report_statements_render_and_parse_back_in_each_dialect(dialect):
     import sqlglot
 
     assign = sqlgen.Assignment(center=(0.0, 1.0), inv_scale=(1.0, 0.5), weights=(1.0, 1.0), centroids=((0.0, 0.0), (1.0, 1.0)))
-    labels = sqlgen.report_labels_select(Source.of_table("points"), ["unit price", "select"], ["district"], assign, dialect)
     rows = sqlgen.report_rows_select(Source.of_table("points"), ["unit price", "select"], ["district", "kind"], assign, dialect)
-    for statement in (sqlgen.segment_stats_statement(labels, ["unit price", "select"], dialect),
-                      sqlgen.breakdown_statement(labels, "district", 20, dialect),
-                      sqlgen.report_scan_statement(rows, ["unit price", "select"], ["district"]),
+    for statement in (sqlgen.report_scan_statement(rows, ["unit price", "select"], ["district"]),
                       sqlgen.report_scan_statement(rows, ["unit price", "select"], ["district", "kind"]),
                       sqlgen.quartile_statement(sqlgen.sampled_rows(rows, 1.0, dialect), ["unit price", "select"], dialect)):
         text = sqlgen.render(statement, dialect)
         # reference: sqlglot's own parser for the dialect reads the text back
         assert sqlglot.parse_one(text, read=dialect) is not None
         assert '"unit price"' in text or "`unit price`" in text
-    assert ("MATERIALIZED" in sqlgen.render(sqlgen.breakdown_statement(labels, "district", 20, dialect), dialect)) == (dialect != "spark")
 
 
 def test_demo_ends_by_writing_its_report_beside_the_database_and_says_where(tmp_path):
