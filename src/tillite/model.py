@@ -24,7 +24,7 @@ FORMAT_NAME = "tillite-model"
 FORMAT_VERSION = 1
 
 __all__ = ["Model", "FORMAT_NAME", "FORMAT_VERSION", "ModelError", "default_model_path", "replaced_model_note",
-           "usual_file_mode", "MODEL_SUFFIX"]
+           "usual_file_mode", "MODEL_SUFFIX", "write_text_atomically"]
 
 #: Ending of the model file name segment gives when --out is not given: <source>.model.json.
 MODEL_SUFFIX = ".model.json"
@@ -112,26 +112,8 @@ class Model:
         return json.dumps(self.to_dict(), indent=2, default=_plain)
 
     def write(self, path: str | os.PathLike) -> None:
-        """Write atomically (a temporary file in the same folder, then a rename): a failed write
-        leaves any existing file as it was.  The file gets the process's usual mode (0666 less the umask)."""
-        path = Path(path)
-        text = self.to_json()
-        try:
-            fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent if str(path.parent) else ".")
-        except OSError as err:
-            raise ModelError(f"cannot write model file {path}: {err.strerror}") from None
-        try:
-            os.fchmod(fd, usual_file_mode())  # mkstemp makes 0600; colleagues read model files
-            with os.fdopen(fd, "w") as fh:
-                fh.write(text)
-                fh.write("\n")
-            os.replace(tmp, path)
-        except BaseException as err:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-            if isinstance(err, OSError):
-                raise ModelError(f"cannot write model file {path}: {err.strerror}") from None
-            raise
+        """Write atomically with the process's usual mode (see write_text_atomically)."""
+        write_text_atomically(Path(path), self.to_json() + "\n", "model file", ModelError)
 
     @staticmethod
     def from_dict(data: dict[str, Any], where: str = "model") -> "Model":
@@ -390,6 +372,29 @@ def _plain(o: Any) -> Any:
     if isinstance(o, np.ndarray):
         return o.tolist()
     raise TypeError(f"cannot write {type(o).__name__} to a model file")
+
+
+def write_text_atomically(path: Path, text: str, what: str, error: type[TilliteError] = TilliteError) -> Path:
+    """Write ``text`` to ``path`` through a temporary file in the same folder and a rename, so a failed
+    write leaves any existing file as it was; the file gets the process's usual mode (0666 less the umask,
+    where mkstemp alone makes 0600), so colleagues can read it.  Errors become one ``error`` line naming ``what``."""
+    folder = path.parent if str(path.parent) else Path(".")
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=folder)
+    except OSError as err:
+        raise error(f"cannot write {what} {path}: {err.strerror}") from None
+    try:
+        os.fchmod(fd, usual_file_mode())
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        os.replace(tmp, path)
+    except BaseException as err:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        if isinstance(err, OSError):
+            raise error(f"cannot write {what} {path}: {err.strerror}") from None
+        raise
+    return path
 
 
 def usual_file_mode() -> int:

@@ -7,7 +7,6 @@ from __future__ import annotations
 import json
 import math
 import os
-import tempfile
 from pathlib import Path
 from typing import Any, Sequence
 
@@ -18,7 +17,7 @@ from . import features as F
 from . import sqlgen
 from .engines import Engine, TilliteError
 from .features import CF
-from .model import Model
+from .model import Model, write_text_atomically
 from .sqlgen import Grid, Source, col, table_name
 
 __all__ = [
@@ -530,32 +529,11 @@ def write_report(content: dict[str, Any], path: str | os.PathLike, fmt: str = "h
     if fmt not in FORMATS:
         raise TilliteError(f"--format must be one of {', '.join(FORMATS)}, got {fmt!r}")
     text = {"html": render_html, "md": render_markdown, "json": lambda c: json.dumps(c, indent=2)}[fmt](content)
-    return _atomic_write(Path(path), text)
-
-
-def _atomic_write(path: Path, text: str) -> Path:
+    path = Path(path)
     folder = path.parent if str(path.parent) else Path(".")
     if not folder.is_dir():
         raise TilliteError(f"folder {folder} for --out {path} does not exist")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=folder)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.chmod(tmp, 0o666 & ~_umask())
-        os.replace(tmp, path)
-    except BaseException as err:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        if isinstance(err, OSError):
-            raise TilliteError(f"cannot write report {path}: {err.strerror}") from None
-        raise
-    return path
-
-
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
+    return write_text_atomically(path, text, "report")
 
 
 # --------------------------------------------------------------------------- entry points
