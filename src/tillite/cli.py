@@ -329,12 +329,12 @@ def _check_into(into: str) -> None:
 def _label_explained(engine, src, model, into: str, materialize: bool, replace: bool) -> str:
     """label(), with a database error while replacing an object the source reads through a view
     said as such (the transaction has rolled back: nothing changed)."""
-    import duckdb
+    from .errors import EngineError
 
     existed = engine.relation_kind(into) if not src.files else None
     try:
         return label(engine, src, model, into, materialize=materialize, replace=replace)
-    except duckdb.Error as err:
+    except EngineError:
         if existed and engine.relation_kind(src.label) == "view":
             raise click.ClickException(
                 f"--into {into} cannot replace the {existed} {into}: the source {src.label} is a view that reads it; "

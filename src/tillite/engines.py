@@ -21,7 +21,7 @@ import numpy as np
 from sqlglot import exp
 
 from . import sqlgen
-from .errors import TilliteError
+from .errors import DatabaseLocked, EngineError, MissingExtraError, SourceError, TilliteError, TransactionConflict
 from .sqlgen import Source
 
 __all__ = [
@@ -32,6 +32,8 @@ __all__ = [
     "TilliteError",
     "SourceError",
     "EngineError",
+    "TransactionConflict",
+    "DatabaseLocked",
     "MissingExtraError",
     "ENGINES",
     "engine_kind",
@@ -41,14 +43,6 @@ __all__ = [
     "DUCKDB_STORAGE_VERSION",
     "connect_duckdb",
 ]
-
-
-class SourceError(TilliteError):
-    """The database, table or column asked for is missing or unusable."""
-
-
-class DatabaseLocked(SourceError):
-    """Another process holds the DuckDB file's write lock (DuckDB lets one process write a file at a time)."""
 
 
 FILE_SUFFIXES = {
@@ -175,24 +169,38 @@ class DuckDBEngine(StatementRunner):
                 raise DatabaseLocked(f"DuckDB database {self.path} is in use by another process, which holds its write lock") from None
             raise SourceError(f"cannot open DuckDB database {self.path}: {err}") from None
 
+    @contextmanager
+    def _errors(self) -> Iterator[None]:
+        """DuckDB's errors as ours: a write-write conflict (TransactionException) is a TransactionConflict."""
+        try:
+            yield
+        except self._duckdb.TransactionException as err:
+            raise TransactionConflict(f"database error: {first_line(err)}") from None
+        except self._duckdb.Error as err:
+            raise EngineError(f"database error: {first_line(err)}") from None
+
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
-        got = self.con.execute(self.sql_text(statement)).fetchnumpy()
+        with self._errors():
+            got = self.con.execute(self.sql_text(statement)).fetchnumpy()
         _count_fetched(self, got)
         return got
 
     def execute(self, statement: exp.Expression) -> None:
-        self.con.execute(self.sql_text(statement))
+        with self._errors():
+            self.con.execute(self.sql_text(statement))
 
     @contextmanager
     def transaction(self) -> Iterator[None]:
         """All statements inside commit together, or none do (rollback on any error)."""
-        self.con.begin()
+        with self._errors():
+            self.con.begin()
         try:
             yield
         except BaseException:
             self.con.rollback()
             raise
-        self.con.commit()
+        with self._errors():
+            self.con.commit()
 
     def snapshot_transaction(self) -> ContextManager[None]:
         """A transaction whose reads all see one snapshot: every DuckDB transaction does."""
@@ -234,11 +242,13 @@ class DuckDBEngine(StatementRunner):
         Needs no write access, so it works on read-only files too; gone with
         ``drop_temporary`` or the connection.
         """
-        self.con.register(name, dict(columns))
+        with self._errors():
+            self.con.register(name, dict(columns))
         return True
 
     def drop_temporary(self, name: str) -> None:
-        self.con.unregister(name)
+        with self._errors():
+            self.con.unregister(name)
 
     def close(self) -> None:
         self.con.close()
@@ -309,22 +319,6 @@ def open_source(
 
 
 # ----------------------------------------------------------------------------- shared by the engines
-
-
-class EngineError(TilliteError):
-    """The database refused or failed a statement; the message is the database's own first line.
-
-    ``sqlstate`` is the SQL standard's error code where the driver gives one
-    (PostgreSQL: 55P03 when a NOWAIT lock is held elsewhere).
-    """
-
-    def __init__(self, message: str, sqlstate: str | None = None) -> None:
-        super().__init__(message)
-        self.sqlstate = sqlstate
-
-
-class MissingExtraError(TilliteError):
-    """An engine's driver is not installed; the message names the extra to install."""
 
 
 #: The engines there are, and the optional extra that installs each one's driver.
@@ -415,6 +409,9 @@ def _relation_kind_from_listing(
 
 # ----------------------------------------------------------------------------- PostgreSQL
 
+#: SQLSTATEs of losing a race for rows: lock_not_available, serialization_failure, deadlock_detected.
+CONFLICT_STATES = ("55P03", "40001", "40P01")
+
 #: Result kinds by PostgreSQL type OID (bool, int2/4/8, float4/8, numeric); the rest are objects.
 PG_KINDS = {16: "bool", 20: "int", 21: "int", 23: "int", 700: "float", 701: "float", 1700: "float"}
 
@@ -477,10 +474,13 @@ class PostgresEngine(StatementRunner):
 
     @contextmanager
     def _errors(self) -> Iterator[None]:
+        """psycopg's errors as ours: losing a race for rows (by SQLSTATE) is a TransactionConflict."""
         try:
             yield
         except self._psycopg.Error as err:
-            raise EngineError(f"database error: {first_line(err)}", getattr(err, "sqlstate", None)) from None
+            state = getattr(err, "sqlstate", None)
+            kind = TransactionConflict if state in CONFLICT_STATES else EngineError
+            raise kind(f"database error: {first_line(err)}", state) from None
 
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
         with self._errors():

@@ -32,7 +32,8 @@ import duckdb
 from sqlglot import exp
 
 from . import __version__, sqlgen
-from .engines import TilliteError, connect_duckdb
+from .engines import connect_duckdb
+from .errors import MacroError, TilliteError  # noqa: F401  (MacroError is re-exported here)
 from .model import Model
 
 __all__ = [
@@ -90,10 +91,6 @@ CONSTANT_SD = 1e-12
 _PLACEHOLDER = re.compile(r"\{\{([a-z_]+)\}\}")
 _LAMBDA_LIST = sqlgen.internal("s")
 _LAMBDA_BEST = sqlgen.internal("best")
-
-
-class MacroError(TilliteError):
-    """A macro cannot be built, installed or removed as asked."""
 
 
 # --------------------------------------------------------------------------- rendering
