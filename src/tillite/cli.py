@@ -59,25 +59,25 @@ class _OptionNames(dict):
         return OPTION_NAMES.get(key, "--" + key.replace("_", "-"))
 
 
-def cli_message(err: Exception) -> str:
-    """One line for the terminal: parameters spelled as options, API spellings such as
-    ``replace=True (--replace)`` reduced to the option."""
-    import re
-
-    text = err.text(_OptionNames()) if isinstance(err, ParameterError) else str(err)
-    text = re.sub(r"\b\w+=(True|False) \((--[\w-]+)\)", r"\2", text)
+def cli_message(err: Exception, options: dict[str, str] | None = None) -> str:
+    """One line for the terminal: parameters spelled as options (``options`` for a command whose
+    option differs from the usual one, e.g. ``store build --regrid`` for ``replace``)."""
+    text = err.text(_OptionNames(options or {})) if isinstance(err, ParameterError) else str(err)
     return " ".join(text.split()) if "\n" in text.strip() else text
 
 
 @contextmanager
-def user_errors(quiet: bool = False) -> Iterator[None]:
-    """Turn our errors, and the database's, into clean messages and warnings into stderr lines."""
+def user_errors(quiet: bool = False, options: dict[str, str] | None = None) -> Iterator[None]:
+    """Turn our errors, and the database's, into clean messages and warnings into stderr lines.
+
+    ``options``: API parameter -> this command's option, where it differs from OPTION_NAMES.
+    """
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
             yield
         except TilliteError as err:
-            raise click.ClickException(cli_message(err)) from None
+            raise click.ClickException(cli_message(err, options)) from None
         except duckdb.Error as err:
             # e.g. a schema that does not exist, a locked file, a malformed CSV:
             # the database's own first line says what is at fault

@@ -64,7 +64,7 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
                   restarts, seed, regrid, many_partitions, out, quiet, as_json) -> None:
     """Build a summary store for SOURCE: frozen grid, per-partition cells, first segments."""
     cli = _cli()
-    with cli.user_errors():
+    with cli.user_errors(options={"replace": "--regrid"}):
         settings = store_api.Settings(
             k=k, scaling=scaling, weights=cli._parse_weights(weights), cell_budget=cell_budget,
             refine_passes=refine_passes, n_init=restarts, seed=seed,

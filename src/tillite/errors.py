@@ -23,6 +23,7 @@ __all__ = [
     "ModelError",
     "StoreError",
     "StoreBusy",
+    "StoreExists",
     "MacroError",
     "NamingError",
 ]
@@ -107,6 +108,10 @@ class StoreError(TilliteError):
 
 class StoreBusy(StoreError):
     """Another refresh changed the store first; nothing was changed by this one."""
+
+
+class StoreExists(ParameterError, StoreError):
+    """A store of that name exists and replacing it was not asked for (a ParameterError naming ``replace``)."""
 
 
 class MacroError(TilliteError):

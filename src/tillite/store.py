@@ -39,7 +39,9 @@ import numpy as np
 from . import features as F
 from . import sqlgen, store_history
 from .engines import Engine
-from .errors import DatabaseLocked, EngineError, StoreBusy, StoreError, TilliteError, TransactionConflict  # noqa: F401  (StoreError, StoreBusy re-exported)
+from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
+    DatabaseLocked, EngineError, StoreBusy, StoreError, StoreExists, TilliteError, TransactionConflict,
+)
 from .features import CF
 from .model import Model
 from .pipeline import (
@@ -678,7 +680,8 @@ def build(
     ensure_tables(engine)
     exists = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": name}), ["store"])))
     if exists and not replace:
-        raise StoreError(f"store {name} already exists; refresh it, or rebuild with replace=True (--regrid)")
+        raise StoreExists(f"store {name} already exists; refresh it, or rebuild with {{replace}}", "replace",
+                          spelled={"replace": "replace=True"})
     warnings_ = [] if partition.files else _check_partition_count(engine, source, partition, many_partitions)
     t0 = time.perf_counter()
     weights = settings.column_weights(columns)
