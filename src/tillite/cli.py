@@ -257,11 +257,8 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
     with user_errors():
         settings = _settings(**kw)
         out = out or default_model_path(source, table)
-        engine, src = _open(source, table)
-        try:
+        with _open(source, table) as (engine, src):
             model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet))
-        finally:
-            engine.close()
         note = replaced_model_note(out, model)
         model.write(out)
         if note:
@@ -295,21 +292,15 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
             from . import store as store_api
             from .cli_store import open_store_database
 
-            engine = open_store_database(source, writable=True)
-            try:
+            with open_store_database(source, writable=True) as engine:
                 made = store_api.label(engine, store_name, into, materialize=materialize, replace=replace)
-            finally:
-                engine.close()
             _progress(quiet)("label", f"{made} from store {store_name}")
             click.echo(made)
             return
         model = Model.read(model_path)
-        engine, src = _open(source, table, writable=True)
-        t0 = time.perf_counter()
-        try:
+        with _open(source, table, writable=True) as (engine, src):
+            t0 = time.perf_counter()
             made = _label_explained(engine, src, model, into, materialize, replace)
-        finally:
-            engine.close()
         _progress(quiet)("label", f"{made} from {src.label}, {time.perf_counter() - t0:.2f} s")
         click.echo(made)
 
@@ -386,14 +377,11 @@ def sql_command(source, table, columns, stage, model_path, dialect, cell_budget)
                 raise click.BadParameter(str(err), param_hint="--table") from None
             statements = _stage_statements(None, src, cols, cols, stage, model, dialect, cell_budget)
         else:
-            engine, src = _open(source, table)
-            try:
-                from .pipeline import check_columns
+            from .pipeline import check_columns
 
+            with _open(source, table) as (engine, src):
                 source_columns = check_columns(engine, src, cols)
                 statements = _stage_statements(engine, src, cols, source_columns, stage, model, dialect, cell_budget)
-            finally:
-                engine.close()
         for st in statements:
             click.echo(sqlgen.render(st, dialect, pretty=True) + ";")
 
@@ -442,8 +430,7 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
             progress("demo", f"built {db_path}: {info.rows:,} meter-days of {info.meters:,} meters, {time.perf_counter() - t0:.2f} s")
         else:
             progress("demo", f"reusing {db_path} (--rebuild to regenerate)")
-        engine, src = open_source(db_path, "meter_days", writable=True)
-        try:
+        with open_source(db_path, "meter_days", writable=True) as (engine, src):
             model = segment(engine, src, list(demo.DEMO_COLUMNS), Settings(k=k), progress=progress)
             model.write(out)
             made = label(engine, src, model, "meter_day_segments")
@@ -453,8 +440,6 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
             click.echo(report.crosstab(engine, "meter_day_segments", demo.METERS_TABLE, "meter_id", "kind"))
             page = report_path or Path(db_path).with_name("tillite-demo-report.html")
             written = report.write_report(report.report_of_model(engine, src, model, ["district"], progress), page)
-        finally:
-            engine.close()
         click.echo("")
         click.echo(f"model written to {out}; labels in view meter_day_segments of {db_path}.")
         click.echo(f"report written to {Path(written).resolve()} (open it in a browser; no network needed).")

@@ -15,7 +15,7 @@ import shutil
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, ContextManager, Iterator, Mapping, Protocol, Sequence
+from typing import Any, ContextManager, Iterator, Mapping, NamedTuple, Protocol, Sequence
 
 import numpy as np
 from sqlglot import exp
@@ -38,6 +38,7 @@ __all__ = [
     "ENGINES",
     "engine_kind",
     "open_source",
+    "OpenedSource",
     "FILE_SUFFIXES",
     "NUMERIC_TYPES",
     "DUCKDB_STORAGE_VERSION",
@@ -107,6 +108,11 @@ class Engine(Protocol):
 
     def close(self) -> None: ...
 
+    def __enter__(self) -> "Engine":
+        """``with engine:`` closes it on leaving, error or not."""
+
+    def __exit__(self, *exc: object) -> None: ...
+
     # optional (see pipeline.temporary_cell_map): a small relation held by this connection only
     def hold_temporary(self, name: str, columns: Mapping[str, np.ndarray]) -> bool:
         """Offer numpy columns as relation ``name`` for this session; False when the engine cannot."""
@@ -122,6 +128,12 @@ class StatementRunner:
 
     def sql_text(self, statement: exp.Expression) -> str:
         return sqlgen.render(statement, self.dialect)
+
+    def __enter__(self) -> Any:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()  # type: ignore[attr-defined]
 
     def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
         with self.transaction():
@@ -275,6 +287,20 @@ def open_database(path: str, writable: bool = False) -> Engine:
     return DuckDBEngine(path, read_only=not writable)
 
 
+class OpenedSource(NamedTuple):
+    """What open_source gives: unpack it (``engine, source = open_source(...)``), or use it in a
+    with-statement (``with open_source(...) as (engine, source):``), which closes the engine on leaving."""
+
+    engine: Engine
+    source: Source
+
+    def __enter__(self) -> "OpenedSource":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.engine.close()
+
+
 def open_source(
     location: str,
     table: str | None,
@@ -282,8 +308,8 @@ def open_source(
     database: str | None = None,
     engine: str | None = None,
     spark_conf: Mapping[str, str] | None = None,
-) -> tuple[Engine, Source]:
-    """Engine and Source for a command-line SOURCE and --table.
+) -> OpenedSource:
+    """Engine and Source for a command-line SOURCE and --table (closed on leaving a with-statement).
 
     ``engine`` (duckdb, postgres, spark; None or "auto" to tell from SOURCE):
     a ``postgresql://`` URL is PostgreSQL, a Spark master (``spark://host:7077``,
@@ -298,9 +324,9 @@ def open_source(
     """
     kind = engine_kind(location, engine)
     if kind == "postgres":
-        return _open_postgres(location, table, writable)
+        return OpenedSource(*_open_postgres(location, table, writable))
     if kind == "spark":
-        return _open_spark(location, table, dict(spark_conf or {}))
+        return OpenedSource(*_open_spark(location, table, dict(spark_conf or {})))
     reader = file_reader_for(location)
     if reader is None and os.path.isdir(location):
         reader = "parquet"
@@ -309,13 +335,13 @@ def open_source(
         if not any(ch in location for ch in "*?[") and not os.path.exists(location):
             raise SourceError(f"data file {location} does not exist")
         if database is not None:
-            return DuckDBEngine(database, read_only=not writable), Source.of_files(location, reader)
-        return DuckDBEngine(":memory:"), Source.of_files(location, reader)
+            return OpenedSource(DuckDBEngine(database, read_only=not writable), Source.of_files(location, reader))
+        return OpenedSource(DuckDBEngine(":memory:"), Source.of_files(location, reader))
     if not os.path.exists(location):
         raise SourceError(f"database {location} does not exist (give a .duckdb file, or a Parquet/CSV path)")
     if not table:
         raise SourceError(f"--table is needed to read the database {location}")
-    return DuckDBEngine(location, read_only=not writable), Source.of_table(table)
+    return OpenedSource(DuckDBEngine(location, read_only=not writable), Source.of_table(table))
 
 
 # ----------------------------------------------------------------------------- shared by the engines
