@@ -50,3 +50,38 @@ def test_an_engine_is_its_own_context_manager(small_db):
     with open_database(str(small_db)) as engine:
         assert engine.tables() == ["pts"]
     assert is_closed(engine)
+
+
+def test_the_named_catalog_look_up_finds_a_table_in_the_current_schema_in_any_case():
+    from tillite import sqlgen
+
+    con = duckdb.connect()
+    con.execute('CREATE TABLE "Meters" (a INTEGER)')
+    con.execute("CREATE SCHEMA other")
+    con.execute("CREATE TABLE other.pumps (a INTEGER)")
+
+    def found(name):
+        return con.execute(sqlgen.render(sqlgen.list_tables_statement(named=name))).fetchall()
+
+    # reference: DuckDB's own duckdb_tables() listing
+    assert con.execute("SELECT schema_name, table_name FROM duckdb_tables() ORDER BY 1").fetchall() == [("main", "Meters"), ("other", "pumps")]
+    assert found("meters") == [("main", "Meters", "BASE TABLE")]
+    assert found("pumps") == []  # another schema than the current one
+    con.close()
+
+
+def test_the_duckdb_transaction_helper_commits_all_or_nothing():
+    from tillite.engines import duckdb_transaction
+
+    con = duckdb.connect()
+    con.execute("CREATE TABLE t (a INTEGER)")
+    with pytest.raises(RuntimeError):
+        with duckdb_transaction(con):
+            con.execute("INSERT INTO t VALUES (1)")
+            raise RuntimeError("midway")
+    assert con.execute("SELECT count(*) FROM t").fetchone()[0] == 0
+    with duckdb_transaction(con):
+        con.execute("INSERT INTO t VALUES (1)")
+        con.execute("INSERT INTO t VALUES (2)")
+    assert con.execute("SELECT count(*) FROM t").fetchone()[0] == 2
+    con.close()

@@ -43,6 +43,7 @@ __all__ = [
     "NUMERIC_TYPES",
     "DUCKDB_STORAGE_VERSION",
     "connect_duckdb",
+    "duckdb_transaction",
 ]
 
 
@@ -160,6 +161,22 @@ def connect_duckdb(path: str, read_only: bool = False) -> Any:
     return duckdb.connect(path, read_only=read_only, config={"storage_compatibility_version": DUCKDB_STORAGE_VERSION})
 
 
+@contextmanager
+def duckdb_transaction(con: Any) -> Iterator[None]:
+    """BEGIN ... COMMIT on a DuckDB connection, ROLLBACK on any error inside.
+
+    The one transaction helper of every DuckDB path: DuckDBEngine.transaction,
+    macro install/remove and the demo database build.
+    """
+    con.begin()
+    try:
+        yield
+    except BaseException:
+        con.rollback()
+        raise
+    con.commit()
+
+
 @dataclass
 class DuckDBEngine(StatementRunner):
     """The embedded default: a .duckdb file, or an in-memory database over files."""
@@ -204,15 +221,8 @@ class DuckDBEngine(StatementRunner):
     @contextmanager
     def transaction(self) -> Iterator[None]:
         """All statements inside commit together, or none do (rollback on any error)."""
-        with self._errors():
-            self.con.begin()
-        try:
+        with self._errors(), duckdb_transaction(self.con):
             yield
-        except BaseException:
-            self.con.rollback()
-            raise
-        with self._errors():
-            self.con.commit()
 
     def snapshot_transaction(self) -> ContextManager[None]:
         """A transaction whose reads all see one snapshot: every DuckDB transaction does."""

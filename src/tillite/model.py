@@ -15,7 +15,7 @@ from dataclasses import MISSING, asdict, dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from .errors import ModelError, TilliteError  # noqa: F401  (ModelError is re-exported here)
+from .errors import ModelError
 
 if TYPE_CHECKING:  # imported where used: `tillite show` needs neither numpy nor sqlglot
     from .sqlgen import Assignment, CellMap

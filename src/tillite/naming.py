@@ -11,7 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from .engines import Engine
-from .errors import NamingError, TilliteError  # noqa: F401  (NamingError is re-exported here)
+from .errors import NamingError
 from .model import Model
 
 __all__ = ["apply_names", "read_names_file", "name_model_file", "name_store_segments"]

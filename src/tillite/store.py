@@ -40,7 +40,7 @@ from . import features as F
 from . import sqlgen, store_history
 from .engines import Engine
 from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
-    DatabaseLocked, EngineError, StoreBusy, StoreError, StoreExists, TilliteError, TransactionConflict,
+    EngineError, StoreBusy, StoreError, StoreExists, TransactionConflict,
 )
 from .features import CF
 from .model import Model
