@@ -2,7 +2,10 @@
 
 The protocol is small: run a query and get its columns back as numpy arrays, run
 statements in one transaction, tell the column names and types of a relation,
-and list the tables there are (for error messages).
+and list the tables there are (for error messages).  A driver's errors never leave
+an engine: they become ``errors.EngineError`` (``TransactionConflict`` when another
+transaction holds or changed the same rows).  Engines are context managers (closed
+on leaving), and so is what ``open_source`` returns.
 """
 
 from __future__ import annotations
