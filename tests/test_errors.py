@@ -192,3 +192,17 @@ def test_a_postgres_lock_held_elsewhere_arrives_as_transaction_conflict(server):
     finally:
         first.close()
         second.close()
+
+
+def test_the_demo_build_on_a_file_that_is_not_a_database_gives_one_database_error_line(tmp_path):
+    from tillite.demo import build_demo_database
+
+    bogus = tmp_path / "notes.duckdb"
+    bogus.write_text("not a database\n" * 100)
+    with pytest.raises(EngineError, match="^database error: ") as caught:
+        build_demo_database(bogus, rows=1_000, days=10)
+    assert not isinstance(caught.value, duckdb.Error)
+    res = CliRunner().invoke(main, ["demo", "--db", str(bogus), "--rebuild", "--rows", "1000", "-q"])
+    assert res.exit_code == 1 and "Traceback" not in res.output, res.output
+    lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
+    assert len(lines) == 1 and lines[0].startswith("Error: database error: "), lines

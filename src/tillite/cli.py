@@ -21,7 +21,6 @@ sqlgen = lazy_module("tillite.sqlgen")
 open_source = lazy_name("tillite.engines", "open_source")
 Model = lazy_name("tillite.model", "Model")
 Settings, label, run_profile, segment = (lazy_name("tillite.pipeline", n) for n in ("Settings", "label", "run_profile", "segment"))
-duckdb = lazy_module("duckdb")
 
 STAGES = ("profile", "cells", "refine", "label")
 
@@ -68,7 +67,7 @@ def cli_message(err: Exception, options: dict[str, str] | None = None) -> str:
 
 @contextmanager
 def user_errors(quiet: bool = False, options: dict[str, str] | None = None) -> Iterator[None]:
-    """Turn our errors, and the database's, into clean messages and warnings into stderr lines.
+    """Turn our errors (the engines wrap the database's) into clean messages and warnings into stderr lines.
 
     ``options``: API parameter -> this command's option, where it differs from OPTION_NAMES.
     """
@@ -76,13 +75,8 @@ def user_errors(quiet: bool = False, options: dict[str, str] | None = None) -> I
         warnings.simplefilter("always")
         try:
             yield
-        except TilliteError as err:
+        except TilliteError as err:  # the engines' EngineError included: "database error: " and the driver's first line
             raise click.ClickException(cli_message(err, options)) from None
-        except duckdb.Error as err:
-            # e.g. a schema that does not exist, a locked file, a malformed CSV:
-            # the database's own first line says what is at fault
-            first = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
-            raise click.ClickException(f"database error: {first}") from None
         finally:
             for w in caught:
                 if issubclass(w.category, UserWarning):

@@ -525,6 +525,14 @@ def build_demo_database(
     meters = math.ceil(rows / days)
     path = Path(path)
 
+    from .engines import duckdb_errors
+
+    with duckdb_errors():
+        return _build_demo_tables(path, table, rows, days, seed, meters, replace)
+
+
+def _build_demo_tables(path: Path, table: str, rows: int, days: int, seed: int, meters: int, replace: bool) -> DemoSummary:
+    """build_demo_database's work on the file, in one transaction."""
     con = _connect(str(path))
     try:
         existing = [name for name in (table, METERS_TABLE) if _table_exists(con, name)]

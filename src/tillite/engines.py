@@ -47,6 +47,7 @@ __all__ = [
     "DUCKDB_STORAGE_VERSION",
     "connect_duckdb",
     "duckdb_transaction",
+    "duckdb_errors",
 ]
 
 
@@ -165,6 +166,22 @@ def connect_duckdb(path: str, read_only: bool = False) -> Any:
 
 
 @contextmanager
+def duckdb_errors() -> Iterator[None]:
+    """DuckDB's errors as ours (EngineError), a write-write conflict (TransactionException) as TransactionConflict.
+
+    DuckDBEngine runs every statement inside it; so does the demo build, which uses a plain connection.
+    """
+    import duckdb
+
+    try:
+        yield
+    except duckdb.TransactionException as err:
+        raise TransactionConflict(f"database error: {first_line(err)}") from None
+    except duckdb.Error as err:
+        raise EngineError(f"database error: {first_line(err)}") from None
+
+
+@contextmanager
 def duckdb_transaction(con: Any) -> Iterator[None]:
     """BEGIN ... COMMIT on a DuckDB connection, ROLLBACK on any error inside.
 
@@ -201,15 +218,8 @@ class DuckDBEngine(StatementRunner):
                 raise DatabaseLocked(f"DuckDB database {self.path} is in use by another process, which holds its write lock") from None
             raise SourceError(f"cannot open DuckDB database {self.path}: {err}") from None
 
-    @contextmanager
-    def _errors(self) -> Iterator[None]:
-        """DuckDB's errors as ours: a write-write conflict (TransactionException) is a TransactionConflict."""
-        try:
-            yield
-        except self._duckdb.TransactionException as err:
-            raise TransactionConflict(f"database error: {first_line(err)}") from None
-        except self._duckdb.Error as err:
-            raise EngineError(f"database error: {first_line(err)}") from None
+    def _errors(self) -> ContextManager[None]:
+        return duckdb_errors()
 
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
         with self._errors():
