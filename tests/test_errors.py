@@ -206,3 +206,23 @@ def test_the_demo_build_on_a_file_that_is_not_a_database_gives_one_database_erro
     assert res.exit_code == 1 and "Traceback" not in res.output, res.output
     lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
     assert len(lines) == 1 and lines[0].startswith("Error: database error: "), lines
+
+
+def test_refresh_limits_name_parameters_in_the_api_and_options_in_the_cli(small_db):
+    """The API says partitions/where; the CLI says --partitions/--where (its one-line errors are pinned in test_store.py)."""
+    from tillite.cli import cli_message
+    from tillite.pipeline import Settings
+    from tillite.sqlgen import Source
+
+    engine = DuckDBEngine(str(small_db))
+    try:
+        S.build(engine, Source.of_table("pts"), ["a", "b"], S.PartitionSpec(("day",)), Settings(k=2))
+        with pytest.raises(ParameterError) as caught:
+            S.refresh(engine, "pts", partitions=["day=1"], where="day = 2")
+        assert str(caught.value) == "give partitions or where, not both"
+        assert cli_message(caught.value) == "give --partitions or --where, not both"
+        with pytest.raises(ParameterError) as caught:
+            S.build(engine, Source.of_table("pts"), ["a", "b"], S.PartitionSpec(()), Settings(k=2), store="other")
+        assert "(partition)" in str(caught.value) and "(--partition-by)" in cli_message(caught.value)
+    finally:
+        engine.close()

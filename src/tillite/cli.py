@@ -48,7 +48,7 @@ def _parse_weights(text: str | None) -> dict[str, float]:
 
 
 #: API parameter -> CLI option, where the option is not just the parameter with dashes.
-OPTION_NAMES = {"n_init": "--restarts", "drift_threshold": "--drift-warn", "replace": "--replace"}
+OPTION_NAMES = {"n_init": "--restarts", "drift_threshold": "--drift-warn", "replace": "--replace", "partition": "--partition-by"}
 
 
 class _OptionNames(dict):

@@ -665,7 +665,7 @@ def run_second_phase(
         res = density(cells, keys, min_count=settings.min_count, adjacency=settings.adjacency, radius=settings.radius,
                       noise="attach" if settings.noise == "attach" else "drop", weights=weights)
         if res.n_segments == 0:
-            raise InputError(f"no dense cells in {where}: lower the density threshold (--min-count, now {res.min_count:.3g})")
+            raise ParameterError(f"no dense cells in {where}: lower the density threshold ({{min_count}}, now {res.min_count:.3g})", "min_count")
         noise_rows = int(cells.n[res.labels < 0].sum())
         sse = F.sse(F.group_sum(cells, res.labels, res.n_segments), weights)
         return PhaseResult(

@@ -40,7 +40,7 @@ from . import features as F
 from . import sqlgen, store_history
 from .engines import Engine
 from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
-    EngineError, StoreBusy, StoreError, StoreExists, TransactionConflict,
+    EngineError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
 )
 from .features import CF
 from .model import Model
@@ -670,7 +670,7 @@ def build(
     settings.check(columns)
     name = store or default_store_name(source)
     if not partition.files and not partition.columns:
-        raise InputError("give the partition column(s) (--partition-by) for a table source")
+        raise ParameterError("give the partition column(s) ({partition}) for a table source", "partition")
     source_columns = check_columns(engine, source, columns)
     missing = [c for c in partition.columns if c not in source_columns]
     if missing:
@@ -905,25 +905,25 @@ def named_partitions_predicate(
     if not partitions and not where:
         return None
     if partitions and where:
-        raise InputError("give --partitions or --where, not both")
+        raise ParameterError("give {partitions} or {where}, not both", "partitions", "where")
     if info.partition.files:
-        raise InputError(
-            "--partitions/--where name partitions of a table; a store over files already reads only the files "
-            "whose size or modification time changed"
+        raise ParameterError(
+            "{partitions}/{where} name partitions of a table; a store over files already reads only the files "
+            "whose size or modification time changed", "partitions", "where"
         )
     names = list(info.partition.columns)
     if where:
         try:
             return sqlgen.partition_predicate(where, names, engine.dialect)
         except ValueError as err:
-            raise InputError(f"--where {where!r}: {err}") from None
+            raise ParameterError(f"{{where}} {where!r}: {err}", "where") from None
     types = types or dict(engine.describe(info.source))
     by_lower = {n.lower(): n for n in names}
     wanted: dict[str, list[str]] = {}
     for item in partitions or ():
         name, eq, value = item.partition("=")
         if not eq or name.strip().lower() not in by_lower:
-            raise InputError(f"--partitions {item!r}: give COLUMN=VALUE with a partition column ({', '.join(names)})")
+            raise ParameterError(f"{{partitions}} {item!r}: give COLUMN=VALUE with a partition column ({', '.join(names)})", "partitions")
         wanted.setdefault(by_lower[name.strip().lower()], []).append(value)
     terms = []
     for name, values in wanted.items():
@@ -932,7 +932,7 @@ def named_partitions_predicate(
         try:  # each value must read as the column's type: one tiny query, no table
             engine.query(sqlgen.exp.select(*[sqlgen.exp.alias_(c.copy(), f"v{i}", quoted=True) for i, c in enumerate(casts)]))
         except EngineError:
-            raise InputError(f"--partitions: a value of {name} ({', '.join(values)}) does not read as {types[name]}") from None
+            raise ParameterError(f"{{partitions}}: a value of {name} ({', '.join(values)}) does not read as {types[name]}", "partitions") from None
         terms.append(sqlgen.exp.In(this=sqlgen.col(name), expressions=casts))
     return sqlgen.all_of(terms)
 
