@@ -21,7 +21,6 @@ sqlgen = lazy_module("tillite.sqlgen")
 open_source = lazy_name("tillite.engines", "open_source")
 Model = lazy_name("tillite.model", "Model")
 Settings, label, run_profile, segment = (lazy_name("tillite.pipeline", n) for n in ("Settings", "label", "run_profile", "segment"))
-duckdb = lazy_module("duckdb")
 
 STAGES = ("profile", "cells", "refine", "label")
 
@@ -49,7 +48,7 @@ def _parse_weights(text: str | None) -> dict[str, float]:
 
 
 #: API parameter -> CLI option, where the option is not just the parameter with dashes.
-OPTION_NAMES = {"n_init": "--restarts", "drift_threshold": "--drift-warn", "replace": "--replace"}
+OPTION_NAMES = {"n_init": "--restarts", "drift_threshold": "--drift-warn", "replace": "--replace", "partition": "--partition-by"}
 
 
 class _OptionNames(dict):
@@ -59,30 +58,25 @@ class _OptionNames(dict):
         return OPTION_NAMES.get(key, "--" + key.replace("_", "-"))
 
 
-def cli_message(err: Exception) -> str:
-    """One line for the terminal: parameters spelled as options, API spellings such as
-    ``replace=True (--replace)`` reduced to the option."""
-    import re
-
-    text = err.text(_OptionNames()) if isinstance(err, ParameterError) else str(err)
-    text = re.sub(r"\b\w+=(True|False) \((--[\w-]+)\)", r"\2", text)
+def cli_message(err: Exception, options: dict[str, str] | None = None) -> str:
+    """One line for the terminal: parameters spelled as options (``options`` for a command whose
+    option differs from the usual one, e.g. ``store build --regrid`` for ``replace``)."""
+    text = err.text(_OptionNames(options or {})) if isinstance(err, ParameterError) else str(err)
     return " ".join(text.split()) if "\n" in text.strip() else text
 
 
 @contextmanager
-def user_errors(quiet: bool = False) -> Iterator[None]:
-    """Turn our errors, and the database's, into clean messages and warnings into stderr lines."""
+def user_errors(quiet: bool = False, options: dict[str, str] | None = None) -> Iterator[None]:
+    """Turn our errors (the engines wrap the database's) into clean messages and warnings into stderr lines.
+
+    ``options``: API parameter -> this command's option, where it differs from OPTION_NAMES.
+    """
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
             yield
-        except TilliteError as err:
-            raise click.ClickException(cli_message(err)) from None
-        except duckdb.Error as err:
-            # e.g. a schema that does not exist, a locked file, a malformed CSV:
-            # the database's own first line says what is at fault
-            first = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
-            raise click.ClickException(f"database error: {first}") from None
+        except TilliteError as err:  # the engines' EngineError included: "database error: " and the driver's first line
+            raise click.ClickException(cli_message(err, options)) from None
         finally:
             for w in caught:
                 if issubclass(w.category, UserWarning):
@@ -257,11 +251,8 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
     with user_errors():
         settings = _settings(**kw)
         out = out or default_model_path(source, table)
-        engine, src = _open(source, table)
-        try:
+        with _open(source, table) as (engine, src):
             model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet))
-        finally:
-            engine.close()
         note = replaced_model_note(out, model)
         model.write(out)
         if note:
@@ -295,21 +286,15 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
             from . import store as store_api
             from .cli_store import open_store_database
 
-            engine = open_store_database(source, writable=True)
-            try:
+            with open_store_database(source, writable=True) as engine:
                 made = store_api.label(engine, store_name, into, materialize=materialize, replace=replace)
-            finally:
-                engine.close()
             _progress(quiet)("label", f"{made} from store {store_name}")
             click.echo(made)
             return
         model = Model.read(model_path)
-        engine, src = _open(source, table, writable=True)
-        t0 = time.perf_counter()
-        try:
+        with _open(source, table, writable=True) as (engine, src):
+            t0 = time.perf_counter()
             made = _label_explained(engine, src, model, into, materialize, replace)
-        finally:
-            engine.close()
         _progress(quiet)("label", f"{made} from {src.label}, {time.perf_counter() - t0:.2f} s")
         click.echo(made)
 
@@ -329,12 +314,12 @@ def _check_into(into: str) -> None:
 def _label_explained(engine, src, model, into: str, materialize: bool, replace: bool) -> str:
     """label(), with a database error while replacing an object the source reads through a view
     said as such (the transaction has rolled back: nothing changed)."""
-    import duckdb
+    from .errors import EngineError
 
     existed = engine.relation_kind(into) if not src.files else None
     try:
         return label(engine, src, model, into, materialize=materialize, replace=replace)
-    except duckdb.Error:
+    except EngineError:
         if existed and engine.relation_kind(src.label) == "view":
             raise click.ClickException(
                 f"--into {into} cannot replace the {existed} {into}: the source {src.label} is a view that reads it; "
@@ -386,14 +371,11 @@ def sql_command(source, table, columns, stage, model_path, dialect, cell_budget)
                 raise click.BadParameter(str(err), param_hint="--table") from None
             statements = _stage_statements(None, src, cols, cols, stage, model, dialect, cell_budget)
         else:
-            engine, src = _open(source, table)
-            try:
-                from .pipeline import check_columns
+            from .pipeline import check_columns
 
+            with _open(source, table) as (engine, src):
                 source_columns = check_columns(engine, src, cols)
                 statements = _stage_statements(engine, src, cols, source_columns, stage, model, dialect, cell_budget)
-            finally:
-                engine.close()
         for st in statements:
             click.echo(sqlgen.render(st, dialect, pretty=True) + ";")
 
@@ -442,8 +424,7 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
             progress("demo", f"built {db_path}: {info.rows:,} meter-days of {info.meters:,} meters, {time.perf_counter() - t0:.2f} s")
         else:
             progress("demo", f"reusing {db_path} (--rebuild to regenerate)")
-        engine, src = open_source(db_path, "meter_days", writable=True)
-        try:
+        with open_source(db_path, "meter_days", writable=True) as (engine, src):
             model = segment(engine, src, list(demo.DEMO_COLUMNS), Settings(k=k), progress=progress)
             model.write(out)
             made = label(engine, src, model, "meter_day_segments")
@@ -453,8 +434,6 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
             click.echo(report.crosstab(engine, "meter_day_segments", demo.METERS_TABLE, "meter_id", "kind"))
             page = report_path or Path(db_path).with_name("tillite-demo-report.html")
             written = report.write_report(report.report_of_model(engine, src, model, ["district"], progress), page)
-        finally:
-            engine.close()
         click.echo("")
         click.echo(f"model written to {out}; labels in view meter_day_segments of {db_path}.")
         click.echo(f"report written to {Path(written).resolve()} (open it in a browser; no network needed).")

@@ -76,20 +76,14 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
         if store_name:
             from .cli_store import open_store_database
 
-            engine = open_store_database(source)
-            try:
+            with open_store_database(source) as engine:
                 content = R.report_of_store(engine, store_name, _split(by), progress)
-            finally:
-                engine.close()
         else:
             from .model import Model
 
             model = Model.read(model_path)
-            engine, src = cli._open(source, table)
-            try:
+            with cli._open(source, table) as (engine, src):
                 content = R.report_of_model(engine, src, model, _split(by), progress, labels=labels)
-            finally:
-                engine.close()
         path = R.write_report(content, out, fmt)
     click.echo(f"report written to {path}")
 
@@ -118,11 +112,8 @@ def name_command(target, pairs, names_file, store_name) -> None:
         if store_name:
             from .cli_store import open_store_database
 
-            engine = open_store_database(target, writable=True)
-            try:
+            with open_store_database(target, writable=True) as engine:
                 model = naming.name_store_segments(engine, store_name, given)
-            finally:
-                engine.close()
             where = f"store {store_name} (label views re-created)"
         else:
             model = naming.name_model_file(Path(target), given)

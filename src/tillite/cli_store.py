@@ -64,21 +64,18 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
                   restarts, seed, regrid, many_partitions, out, quiet, as_json) -> None:
     """Build a summary store for SOURCE: frozen grid, per-partition cells, first segments."""
     cli = _cli()
-    with cli.user_errors():
+    with cli.user_errors(options={"replace": "--regrid"}):
         settings = store_api.Settings(
             k=k, scaling=scaling, weights=cli._parse_weights(weights), cell_budget=cell_budget,
             refine_passes=refine_passes, n_init=restarts, seed=seed,
         )
         if is_file_source(source) and not database:
             raise click.UsageError("a store over files needs --db, the DuckDB file that keeps it")
-        engine, src = open_source(source, table, writable=True, database=database)
-        try:
+        with open_source(source, table, writable=True, database=database) as (engine, src):
             spec = store_api.PartitionSpec(files=True) if src.files else store_api.PartitionSpec(tuple(cli._split_columns(partition_by)))
             info, model = store_api.build(engine, src, cli._split_columns(columns), spec, settings, store=store_name,
                                           progress=cli._progress(quiet), replace=regrid, many_partitions=many_partitions)
             tables = store_api.store_tables(engine, info.name)
-        finally:
-            engine.close()
         if out:
             model.write(out)
         for w in info.warnings:
@@ -117,11 +114,8 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
     """Partitions, rows, when summarised, and the grid in use."""
     cli = _cli()
     with cli.user_errors():
-        engine = open_store_database(source)
-        try:
+        with open_store_database(source) as engine:
             st = store_api.status(engine, store_name, outside_warn=outside_warn)
-        finally:
-            engine.close()
         if as_json:
             click.echo(json.dumps(st, indent=2, default=str))
             return
@@ -167,8 +161,7 @@ def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force,
     """
     cli = _cli()
     with cli.user_errors():
-        engine = open_store_database(source, writable=True)
-        try:
+        with open_store_database(source, writable=True) as engine:
             if regrid and (partitions or where):
                 raise click.UsageError("--regrid rescans every partition; it takes no --partitions or --where")
             if regrid:
@@ -179,8 +172,6 @@ def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force,
                                        new_segment_shift=new_segment_shift, k=k, force=force,
                                        partitions=[p for item in partitions for p in item.split(",") if p] or None,
                                        where=where)
-        finally:
-            engine.close()
         click.echo(json.dumps(report.to_dict(), indent=2, default=str) if as_json else report.describe(with_warnings=False))
         for w in report.warnings:
             click.echo(f"warning: {w}", err=True)
@@ -190,11 +181,8 @@ def _echo_history(source: str, store_name: str, last: int = 5) -> None:
     """The last few builds and refreshes of the store (tillite_store_history)."""
     from . import store_history
 
-    engine = open_store_database(source)
-    try:
+    with open_store_database(source) as engine:
         rows = store_history.history(engine, store_name, last=last)
-    finally:
-        engine.close()
     if rows:
         click.echo(f"last {len(rows)} build(s)/refresh(es):")
         for line in store_history.describe(rows):
@@ -209,9 +197,6 @@ def drop_command(source, store_name) -> None:
     when no store is left). Tables and views you made, label views included, stay."""
     cli = _cli()
     with cli.user_errors():
-        engine = open_store_database(source, writable=True)
-        try:
+        with open_store_database(source, writable=True) as engine:
             dropped = store_api.drop(engine, store_name)
-        finally:
-            engine.close()
         click.echo(f"store {store_name} dropped: {', '.join(dropped)}")

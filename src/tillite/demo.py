@@ -64,10 +64,10 @@ from .sqlgen import (
     col,
     greatest_of,
     least_of,
+    list_tables_statement,
     num,
     paren,
     subquery,
-    table_name,
     to_double,
     total_sum,
 )
@@ -492,20 +492,7 @@ def _connect(database: str) -> duckdb.DuckDBPyConnection:
 
 
 def _table_exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
-    query = _select(
-        [_fn("count", exp.Star())],
-        table_name("information_schema.tables"),
-    ).where(
-        all_of(
-            [
-                _fn("lower", col("table_name")).eq(_fn("lower", exp.Literal.string(name))),
-                col("table_schema").eq(_fn("current_schema")),
-            ]
-        ),
-        copy=False,
-    )
-    row = con.execute(query.sql(dialect="duckdb")).fetchone()
-    return bool(row and row[0])
+    return bool(con.execute(list_tables_statement(named=name).sql(dialect="duckdb")).fetchall())
 
 
 def build_demo_database(
@@ -538,6 +525,14 @@ def build_demo_database(
     meters = math.ceil(rows / days)
     path = Path(path)
 
+    from .engines import duckdb_errors
+
+    with duckdb_errors():
+        return _build_demo_tables(path, table, rows, days, seed, meters, replace)
+
+
+def _build_demo_tables(path: Path, table: str, rows: int, days: int, seed: int, meters: int, replace: bool) -> DemoSummary:
+    """build_demo_database's work on the file, in one transaction."""
     con = _connect(str(path))
     try:
         existing = [name for name in (table, METERS_TABLE) if _table_exists(con, name)]
@@ -559,14 +554,11 @@ def build_demo_database(
                 replace=True,
             ),
         ]
-        con.execute("BEGIN TRANSACTION")
-        try:
+        from .engines import duckdb_transaction
+
+        with duckdb_transaction(con):
             for statement in statements:
                 con.execute(statement.sql(dialect="duckdb"))
-            con.execute("COMMIT")
-        except BaseException:
-            con.execute("ROLLBACK")
-            raise
         counts_query = _select(
             [col("kind"), _fn("count", exp.Star())],
             exp.Table(this=_ident(METERS_TABLE)),

@@ -2,7 +2,10 @@
 
 The protocol is small: run a query and get its columns back as numpy arrays, run
 statements in one transaction, tell the column names and types of a relation,
-and list the tables there are (for error messages).
+and list the tables there are (for error messages).  A driver's errors never leave
+an engine: they become ``errors.EngineError`` (``TransactionConflict`` when another
+transaction holds or changed the same rows).  Engines are context managers (closed
+on leaving), and so is what ``open_source`` returns.
 """
 
 from __future__ import annotations
@@ -15,13 +18,13 @@ import shutil
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, ContextManager, Iterator, Mapping, Protocol, Sequence
+from typing import Any, ContextManager, Iterator, Mapping, NamedTuple, Protocol, Sequence
 
 import numpy as np
 from sqlglot import exp
 
 from . import sqlgen
-from .errors import TilliteError
+from .errors import DatabaseLocked, EngineError, MissingExtraError, SourceError, TilliteError, TransactionConflict
 from .sqlgen import Source
 
 __all__ = [
@@ -32,23 +35,20 @@ __all__ = [
     "TilliteError",
     "SourceError",
     "EngineError",
+    "TransactionConflict",
+    "DatabaseLocked",
     "MissingExtraError",
     "ENGINES",
     "engine_kind",
     "open_source",
+    "OpenedSource",
     "FILE_SUFFIXES",
     "NUMERIC_TYPES",
     "DUCKDB_STORAGE_VERSION",
     "connect_duckdb",
+    "duckdb_transaction",
+    "duckdb_errors",
 ]
-
-
-class SourceError(TilliteError):
-    """The database, table or column asked for is missing or unusable."""
-
-
-class DatabaseLocked(SourceError):
-    """Another process holds the DuckDB file's write lock (DuckDB lets one process write a file at a time)."""
 
 
 FILE_SUFFIXES = {
@@ -113,6 +113,11 @@ class Engine(Protocol):
 
     def close(self) -> None: ...
 
+    def __enter__(self) -> "Engine":
+        """``with engine:`` closes it on leaving, error or not."""
+
+    def __exit__(self, *exc: object) -> None: ...
+
     # optional (see pipeline.temporary_cell_map): a small relation held by this connection only
     def hold_temporary(self, name: str, columns: Mapping[str, np.ndarray]) -> bool:
         """Offer numpy columns as relation ``name`` for this session; False when the engine cannot."""
@@ -128,6 +133,12 @@ class StatementRunner:
 
     def sql_text(self, statement: exp.Expression) -> str:
         return sqlgen.render(statement, self.dialect)
+
+    def __enter__(self) -> Any:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()  # type: ignore[attr-defined]
 
     def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
         with self.transaction():
@@ -154,6 +165,38 @@ def connect_duckdb(path: str, read_only: bool = False) -> Any:
     return duckdb.connect(path, read_only=read_only, config={"storage_compatibility_version": DUCKDB_STORAGE_VERSION})
 
 
+@contextmanager
+def duckdb_errors() -> Iterator[None]:
+    """DuckDB's errors as ours (EngineError), a write-write conflict (TransactionException) as TransactionConflict.
+
+    DuckDBEngine runs every statement inside it; so does the demo build, which uses a plain connection.
+    """
+    import duckdb
+
+    try:
+        yield
+    except duckdb.TransactionException as err:
+        raise TransactionConflict(f"database error: {first_line(err)}") from None
+    except duckdb.Error as err:
+        raise EngineError(f"database error: {first_line(err)}") from None
+
+
+@contextmanager
+def duckdb_transaction(con: Any) -> Iterator[None]:
+    """BEGIN ... COMMIT on a DuckDB connection, ROLLBACK on any error inside.
+
+    The one transaction helper of every DuckDB path: DuckDBEngine.transaction,
+    macro install/remove and the demo database build.
+    """
+    con.begin()
+    try:
+        yield
+    except BaseException:
+        con.rollback()
+        raise
+    con.commit()
+
+
 @dataclass
 class DuckDBEngine(StatementRunner):
     """The embedded default: a .duckdb file, or an in-memory database over files."""
@@ -175,24 +218,24 @@ class DuckDBEngine(StatementRunner):
                 raise DatabaseLocked(f"DuckDB database {self.path} is in use by another process, which holds its write lock") from None
             raise SourceError(f"cannot open DuckDB database {self.path}: {err}") from None
 
+    def _errors(self) -> ContextManager[None]:
+        return duckdb_errors()
+
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
-        got = self.con.execute(self.sql_text(statement)).fetchnumpy()
+        with self._errors():
+            got = self.con.execute(self.sql_text(statement)).fetchnumpy()
         _count_fetched(self, got)
         return got
 
     def execute(self, statement: exp.Expression) -> None:
-        self.con.execute(self.sql_text(statement))
+        with self._errors():
+            self.con.execute(self.sql_text(statement))
 
     @contextmanager
     def transaction(self) -> Iterator[None]:
         """All statements inside commit together, or none do (rollback on any error)."""
-        self.con.begin()
-        try:
+        with self._errors(), duckdb_transaction(self.con):
             yield
-        except BaseException:
-            self.con.rollback()
-            raise
-        self.con.commit()
 
     def snapshot_transaction(self) -> ContextManager[None]:
         """A transaction whose reads all see one snapshot: every DuckDB transaction does."""
@@ -234,11 +277,13 @@ class DuckDBEngine(StatementRunner):
         Needs no write access, so it works on read-only files too; gone with
         ``drop_temporary`` or the connection.
         """
-        self.con.register(name, dict(columns))
+        with self._errors():
+            self.con.register(name, dict(columns))
         return True
 
     def drop_temporary(self, name: str) -> None:
-        self.con.unregister(name)
+        with self._errors():
+            self.con.unregister(name)
 
     def close(self) -> None:
         self.con.close()
@@ -265,6 +310,20 @@ def open_database(path: str, writable: bool = False) -> Engine:
     return DuckDBEngine(path, read_only=not writable)
 
 
+class OpenedSource(NamedTuple):
+    """What open_source gives: unpack it (``engine, source = open_source(...)``), or use it in a
+    with-statement (``with open_source(...) as (engine, source):``), which closes the engine on leaving."""
+
+    engine: Engine
+    source: Source
+
+    def __enter__(self) -> "OpenedSource":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.engine.close()
+
+
 def open_source(
     location: str,
     table: str | None,
@@ -272,8 +331,8 @@ def open_source(
     database: str | None = None,
     engine: str | None = None,
     spark_conf: Mapping[str, str] | None = None,
-) -> tuple[Engine, Source]:
-    """Engine and Source for a command-line SOURCE and --table.
+) -> OpenedSource:
+    """Engine and Source for a command-line SOURCE and --table (closed on leaving a with-statement).
 
     ``engine`` (duckdb, postgres, spark; None or "auto" to tell from SOURCE):
     a ``postgresql://`` URL is PostgreSQL, a Spark master (``spark://host:7077``,
@@ -288,9 +347,9 @@ def open_source(
     """
     kind = engine_kind(location, engine)
     if kind == "postgres":
-        return _open_postgres(location, table, writable)
+        return OpenedSource(*_open_postgres(location, table, writable))
     if kind == "spark":
-        return _open_spark(location, table, dict(spark_conf or {}))
+        return OpenedSource(*_open_spark(location, table, dict(spark_conf or {})))
     reader = file_reader_for(location)
     if reader is None and os.path.isdir(location):
         reader = "parquet"
@@ -299,32 +358,16 @@ def open_source(
         if not any(ch in location for ch in "*?[") and not os.path.exists(location):
             raise SourceError(f"data file {location} does not exist")
         if database is not None:
-            return DuckDBEngine(database, read_only=not writable), Source.of_files(location, reader)
-        return DuckDBEngine(":memory:"), Source.of_files(location, reader)
+            return OpenedSource(DuckDBEngine(database, read_only=not writable), Source.of_files(location, reader))
+        return OpenedSource(DuckDBEngine(":memory:"), Source.of_files(location, reader))
     if not os.path.exists(location):
         raise SourceError(f"database {location} does not exist (give a .duckdb file, or a Parquet/CSV path)")
     if not table:
         raise SourceError(f"--table is needed to read the database {location}")
-    return DuckDBEngine(location, read_only=not writable), Source.of_table(table)
+    return OpenedSource(DuckDBEngine(location, read_only=not writable), Source.of_table(table))
 
 
 # ----------------------------------------------------------------------------- shared by the engines
-
-
-class EngineError(TilliteError):
-    """The database refused or failed a statement; the message is the database's own first line.
-
-    ``sqlstate`` is the SQL standard's error code where the driver gives one
-    (PostgreSQL: 55P03 when a NOWAIT lock is held elsewhere).
-    """
-
-    def __init__(self, message: str, sqlstate: str | None = None) -> None:
-        super().__init__(message)
-        self.sqlstate = sqlstate
-
-
-class MissingExtraError(TilliteError):
-    """An engine's driver is not installed; the message names the extra to install."""
 
 
 #: The engines there are, and the optional extra that installs each one's driver.
@@ -415,6 +458,9 @@ def _relation_kind_from_listing(
 
 # ----------------------------------------------------------------------------- PostgreSQL
 
+#: SQLSTATEs of losing a race for rows: lock_not_available, serialization_failure, deadlock_detected.
+CONFLICT_STATES = ("55P03", "40001", "40P01")
+
 #: Result kinds by PostgreSQL type OID (bool, int2/4/8, float4/8, numeric); the rest are objects.
 PG_KINDS = {16: "bool", 20: "int", 21: "int", 23: "int", 700: "float", 701: "float", 1700: "float"}
 
@@ -477,10 +523,13 @@ class PostgresEngine(StatementRunner):
 
     @contextmanager
     def _errors(self) -> Iterator[None]:
+        """psycopg's errors as ours: losing a race for rows (by SQLSTATE) is a TransactionConflict."""
         try:
             yield
         except self._psycopg.Error as err:
-            raise EngineError(f"database error: {first_line(err)}", getattr(err, "sqlstate", None)) from None
+            state = getattr(err, "sqlstate", None)
+            kind = TransactionConflict if state in CONFLICT_STATES else EngineError
+            raise kind(f"database error: {first_line(err)}", state) from None
 
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
         with self._errors():

@@ -32,7 +32,8 @@ import duckdb
 from sqlglot import exp
 
 from . import __version__, sqlgen
-from .engines import TilliteError, connect_duckdb
+from .engines import connect_duckdb, duckdb_transaction
+from .errors import MacroError  # noqa: F401  (re-exported here)
 from .model import Model
 
 __all__ = [
@@ -90,10 +91,6 @@ CONSTANT_SD = 1e-12
 _PLACEHOLDER = re.compile(r"\{\{([a-z_]+)\}\}")
 _LAMBDA_LIST = sqlgen.internal("s")
 _LAMBDA_BEST = sqlgen.internal("best")
-
-
-class MacroError(TilliteError):
-    """A macro cannot be built, installed or removed as asked."""
 
 
 # --------------------------------------------------------------------------- rendering
@@ -307,17 +304,7 @@ def _registry_table() -> exp.Table:
 
 
 def _registry_exists(con: duckdb.DuckDBPyConnection) -> bool:
-    query = (
-        exp.select(exp.Count(this=exp.Star()))
-        .from_(exp.Table(this=exp.to_identifier("tables", quoted=True), db=exp.to_identifier("information_schema")))
-        .where(
-            exp.and_(
-                exp.EQ(this=sqlgen.col("table_name"), expression=exp.Literal.string(REGISTRY)),
-                exp.EQ(this=sqlgen.col("table_schema"), expression=_current_schema()),
-            )
-        )
-    )
-    return bool(con.execute(sqlgen.render(query)).fetchone()[0])
+    return bool(con.execute(sqlgen.render(sqlgen.list_tables_statement(named=REGISTRY))).fetchall())
 
 
 def _current_schema() -> exp.Expression:
@@ -359,14 +346,9 @@ def _record(definition: MacroDefinition) -> exp.Insert:
 
 
 def _in_transaction(con: duckdb.DuckDBPyConnection, statements: Sequence[str]) -> None:
-    con.execute("BEGIN TRANSACTION")
-    try:
+    with duckdb_transaction(con):
         for text in statements:
             con.execute(text)
-    except BaseException:
-        con.execute("ROLLBACK")
-        raise
-    con.execute("COMMIT")
 
 
 #: The comment on every macro tillite installs.

@@ -15,7 +15,7 @@ from dataclasses import MISSING, asdict, dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from .errors import TilliteError
+from .errors import ModelError
 
 if TYPE_CHECKING:  # imported where used: `tillite show` needs neither numpy nor sqlglot
     from .sqlgen import Assignment, CellMap
@@ -28,10 +28,6 @@ __all__ = ["Model", "FORMAT_NAME", "FORMAT_VERSION", "ModelError", "default_mode
 
 #: Ending of the model file name segment gives when --out is not given: <source>.model.json.
 MODEL_SUFFIX = ".model.json"
-
-
-class ModelError(TilliteError):
-    """The model file is missing, unreadable or not one of ours."""
 
 
 @dataclass

@@ -10,14 +10,11 @@ import json
 from pathlib import Path
 from typing import Any
 
-from .engines import Engine, TilliteError
+from .engines import Engine
+from .errors import NamingError
 from .model import Model
 
 __all__ = ["apply_names", "read_names_file", "name_model_file", "name_store_segments"]
-
-
-class NamingError(TilliteError):
-    """A segment id or name given to `tillite name` is not usable."""
 
 
 def read_names_file(path: str | Path) -> dict[str, Any]:

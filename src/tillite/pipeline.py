@@ -665,7 +665,7 @@ def run_second_phase(
         res = density(cells, keys, min_count=settings.min_count, adjacency=settings.adjacency, radius=settings.radius,
                       noise="attach" if settings.noise == "attach" else "drop", weights=weights)
         if res.n_segments == 0:
-            raise InputError(f"no dense cells in {where}: lower the density threshold (--min-count, now {res.min_count:.3g})")
+            raise ParameterError(f"no dense cells in {where}: lower the density threshold ({{min_count}}, now {res.min_count:.3g})", "min_count")
         noise_rows = int(cells.n[res.labels < 0].sum())
         sse = F.sse(F.group_sum(cells, res.labels, res.n_segments), weights)
         return PhaseResult(
@@ -1110,15 +1110,21 @@ def store_of_comment(comment: str | None) -> str | None:
 def check_may_replace(into: str, kind: str, comment: str | None, store: str | None = None) -> None:
     """Refuse (one line) to replace an existing view/table (with this comment) unless it is ours to replace."""
     if not is_owned(comment):
-        raise InputError(f"a {kind} named {into} already exists and was not made by tillite; --replace overwrites it")
+        raise ParameterError(f"a {kind} named {into} already exists and was not made by tillite; {{replace}} overwrites it",
+                             "replace", spelled=REPLACE_SPELLED)
     holder = store_of_comment(comment)
     if holder is not None and holder != store:
-        raise InputError(
+        raise ParameterError(
             f"{kind} {into} holds the labels of store {holder}, re-created by every refresh; "
-            f"label with --store {holder}, or choose another --into (--replace takes it over)"
+            f"label with --store {holder}, or choose another --into ({{replace}} takes it over)",
+            "replace", spelled=REPLACE_SPELLED,
         )
     if kind == "table":
-        raise InputError(f"a table named {into} already exists; --replace overwrites it")
+        raise ParameterError(f"a table named {into} already exists; {{replace}} overwrites it", "replace", spelled=REPLACE_SPELLED)
+
+
+#: How an API message spells the flag that allows replacing (the CLI says --replace, or its own option).
+REPLACE_SPELLED = {"replace": "replace=True"}
 
 
 def store_owns_label(engine: Engine, name: str, store: str) -> bool:
@@ -1167,7 +1173,7 @@ def _label_to_file(engine: Engine, source: Source, select, into: str, replace: b
         if any(os.path.realpath(m) == target for m in matches) or fnmatch.fnmatch(target, os.path.realpath(pattern)):
             raise InputError(f"--into {into} is a source file; labels never overwrite the source")
     if os.path.exists(into) and not replace:
-        raise InputError(f"file {into} already exists; pass replace=True (--replace) to overwrite it")
+        raise ParameterError(f"file {into} already exists; pass {{replace}} to overwrite it", "replace", spelled=REPLACE_SPELLED)
     folder = os.path.dirname(target)
     if not os.path.isdir(folder):
         raise InputError(f"folder {folder} for --into {into} does not exist")

@@ -334,13 +334,20 @@ def count_statement(source: Source) -> exp.Select:
     return exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)).from_(source.relation())
 
 
-def list_tables_statement() -> exp.Select:
-    """Tables and views visible through information_schema."""
-    return (
+def list_tables_statement(named: str | None = None) -> exp.Select:
+    """Tables and views visible through information_schema; with ``named``, only the one of that name
+    (any case) in the current schema: the one catalog look-up every module uses."""
+    query = (
         exp.select(col("table_schema"), col("table_name"), col("table_type"))
         .from_(exp.Table(this=exp.to_identifier("tables", quoted=True), db=exp.to_identifier("information_schema")))
         .order_by(col("table_schema"), col("table_name"))
     )
+    if named is None:
+        return query
+    return query.where(exp.and_(
+        exp.func("lower", col("table_name")).eq(exp.func("lower", exp.Literal.string(named))),
+        col("table_schema").eq(exp.func("current_schema")),
+    ))
 
 
 def sample_statement(

@@ -38,7 +38,10 @@ import numpy as np
 
 from . import features as F
 from . import sqlgen, store_history
-from .engines import DatabaseLocked, Engine, TilliteError
+from .engines import Engine
+from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
+    EngineError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
+)
 from .features import CF
 from .model import Model
 from .pipeline import (
@@ -108,14 +111,6 @@ PARTS_COLUMNS = [
     ("file_size", "BIGINT"), ("file_mtime", "DOUBLE"), ("summarised_at", "VARCHAR"), ("part_values", "VARCHAR"),
 ]
 LABELS_COLUMNS = [("store", "VARCHAR"), ("name", "VARCHAR"), ("materialized", "BOOLEAN")]
-
-
-class StoreError(TilliteError):
-    """The store is missing, damaged, or cannot be changed as asked."""
-
-
-class StoreBusy(StoreError):
-    """Another refresh changed the store first; nothing was changed by this one."""
 
 
 @dataclass(frozen=True)
@@ -675,7 +670,7 @@ def build(
     settings.check(columns)
     name = store or default_store_name(source)
     if not partition.files and not partition.columns:
-        raise InputError("give the partition column(s) (--partition-by) for a table source")
+        raise ParameterError("give the partition column(s) ({partition}) for a table source", "partition")
     source_columns = check_columns(engine, source, columns)
     missing = [c for c in partition.columns if c not in source_columns]
     if missing:
@@ -685,7 +680,8 @@ def build(
     ensure_tables(engine)
     exists = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": name}), ["store"])))
     if exists and not replace:
-        raise StoreError(f"store {name} already exists; refresh it, or rebuild with replace=True (--regrid)")
+        raise StoreExists(f"store {name} already exists; refresh it, or rebuild with {{replace}}", "replace",
+                          spelled={"replace": "replace=True"})
     warnings_ = [] if partition.files else _check_partition_count(engine, source, partition, many_partitions)
     t0 = time.perf_counter()
     weights = settings.column_weights(columns)
@@ -874,10 +870,8 @@ def refresh(
             store_history.record(engine, store, "refresh", model, report)
             if before_commit is not None:
                 before_commit()
-    except Exception as err:  # the transaction rolled back: the store is as it was
-        if _is_conflict(err):
-            raise _busy(store) from None
-        raise
+    except TransactionConflict:  # the transaction rolled back: the store is as it was
+        raise _busy(store) from None
     report.model = model
     report.seconds["total"] = time.perf_counter() - t0
     return report
@@ -911,25 +905,25 @@ def named_partitions_predicate(
     if not partitions and not where:
         return None
     if partitions and where:
-        raise InputError("give --partitions or --where, not both")
+        raise ParameterError("give {partitions} or {where}, not both", "partitions", "where")
     if info.partition.files:
-        raise InputError(
-            "--partitions/--where name partitions of a table; a store over files already reads only the files "
-            "whose size or modification time changed"
+        raise ParameterError(
+            "{partitions}/{where} name partitions of a table; a store over files already reads only the files "
+            "whose size or modification time changed", "partitions", "where"
         )
     names = list(info.partition.columns)
     if where:
         try:
             return sqlgen.partition_predicate(where, names, engine.dialect)
         except ValueError as err:
-            raise InputError(f"--where {where!r}: {err}") from None
+            raise ParameterError(f"{{where}} {where!r}: {err}", "where") from None
     types = types or dict(engine.describe(info.source))
     by_lower = {n.lower(): n for n in names}
     wanted: dict[str, list[str]] = {}
     for item in partitions or ():
         name, eq, value = item.partition("=")
         if not eq or name.strip().lower() not in by_lower:
-            raise InputError(f"--partitions {item!r}: give COLUMN=VALUE with a partition column ({', '.join(names)})")
+            raise ParameterError(f"{{partitions}} {item!r}: give COLUMN=VALUE with a partition column ({', '.join(names)})", "partitions")
         wanted.setdefault(by_lower[name.strip().lower()], []).append(value)
     terms = []
     for name, values in wanted.items():
@@ -937,8 +931,8 @@ def named_partitions_predicate(
         casts = [sqlgen.exp.cast(sqlgen.exp.Literal.string(v), kind) for v in values]
         try:  # each value must read as the column's type: one tiny query, no table
             engine.query(sqlgen.exp.select(*[sqlgen.exp.alias_(c.copy(), f"v{i}", quoted=True) for i, c in enumerate(casts)]))
-        except Exception:
-            raise InputError(f"--partitions: a value of {name} ({', '.join(values)}) does not read as {types[name]}") from None
+        except EngineError:
+            raise ParameterError(f"{{partitions}}: a value of {name} ({', '.join(values)}) does not read as {types[name]}", "partitions") from None
         terms.append(sqlgen.exp.In(this=sqlgen.col(name), expressions=casts))
     return sqlgen.all_of(terms)
 
@@ -995,8 +989,9 @@ def _claim(engine: Engine, info: StoreInfo) -> None:
 
     The store's row is read with a lock where the dialect has one (PostgreSQL:
     FOR UPDATE NOWAIT errors at once while another transaction holds it) and
-    its version bumped (DuckDB: the update conflicts with another open one).  A
-    version other than the one loaded means another refresh committed since.
+    its version bumped (DuckDB: the update conflicts with another open one).  Each
+    engine reports losing that race as TransactionConflict.  A version other than
+    the one loaded means another refresh committed since.
     """
     where = sqlgen.equals_all({"store": info.name})
     try:
@@ -1006,29 +1001,12 @@ def _claim(engine: Engine, info: StoreInfo) -> None:
         engine.execute(sqlgen.update_statement(
             STORES, {"version": info.version + 1}, sqlgen.equals_all({"store": info.name, "version": info.version})
         ))
-    except Exception as err:
-        if _is_conflict(err):
-            raise _busy(info.name) from None
-        raise
+    except TransactionConflict:
+        raise _busy(info.name) from None
 
 
 def _busy(store: str) -> StoreBusy:
     return StoreBusy(f"store {store} was changed by another refresh at the same time; nothing was changed by this one, run it again")
-
-
-#: SQLSTATEs of losing a race for rows: lock_not_available, serialization_failure, deadlock_detected.
-CONFLICT_STATES = ("55P03", "40001", "40P01")
-
-
-def _is_conflict(err: Exception) -> bool:
-    """A database error from another transaction holding or changing the same rows."""
-    state = getattr(err, "sqlstate", None)
-    if state is not None:
-        return state in CONFLICT_STATES
-    if isinstance(err, TilliteError):
-        return False
-    text = str(err).lower()  # DuckDB: "Conflict on update" / "write-write conflict"
-    return "conflict" in text or "lock" in text
 
 
 def require_transactions(engine: Engine) -> None:
