@@ -15,7 +15,7 @@ from dataclasses import MISSING, asdict, dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from .errors import ModelError
+from .errors import ModelError, TilliteError
 
 if TYPE_CHECKING:  # imported where used: `tillite show` needs neither numpy nor sqlglot
     from .sqlgen import Assignment, CellMap
