@@ -149,3 +149,21 @@ def test_nearest_centroid_ties_go_to_the_first_centroid_in_every_statement_form(
     refine = con.execute(sqlgen.render(sqlgen.refine_statement(src, ["x", "y"], assign, "duckdb"), "duckdb")).fetchall()
     counts = {s: n for s, n, *_ in refine}
     assert counts == {int(s): int(c) for s, c in zip(*np.unique(want_ids, return_counts=True))}
+
+
+def test_pairwise_nearest_form_only_where_it_was_measured_to_pay():
+    names = ["x", "y"]
+    src = Source.of_table("t")
+    assign = Assignment(center=(0.0, 0.0), inv_scale=(1.0, 1.0), weights=(1.0, 1.0),
+                        centroids=tuple((float(i), 0.0) for i in range(5)))
+
+    def uses_least(st, dialect):
+        return "LEAST(" in sqlgen.render(st, dialect).upper()  # only the LEAST form calls it
+
+    assert not uses_least(sqlgen.refine_statement(src, names, assign, "duckdb"), "duckdb")
+    assert not uses_least(sqlgen.label_select(src, names, names, assign, "duckdb"), "duckdb")
+    assert not uses_least(sqlgen.refine_statement(src, names, assign, "postgres"), "postgres")
+    assert not uses_least(sqlgen.label_select(src, names, names, assign, "postgres", materialize=True), "postgres")
+    # an unfenced PostgreSQL view would inline the pairwise CASE twice: it keeps LEAST
+    assert uses_least(sqlgen.label_select(src, names, names, assign, "postgres"), "postgres")
+    assert uses_least(sqlgen.refine_statement(src, names, assign, "spark"), "spark")
