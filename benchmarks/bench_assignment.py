@@ -19,6 +19,12 @@ Each form's segment counts must equal the first form's (they pick the same rows)
 Printed: median wall and CPU seconds per pass (CPU of all DuckDB threads: steadier on a loaded
 machine), and each in plain scans (sum of the columns).
 Uses the blob table of bench_pipeline.py (built there if missing).  Not a pass/fail test.
+
+    python benchmarks/bench_assignment.py --postgres 1000000
+
+instead starts a throwaway PostgreSQL server (tests/throwaway_servers.py), loads that many
+blob rows and times, for "least" and "pairs", the refine pass (fenced) and a read of the
+label select as a view would run it (unfenced), median of 3.
 """
 
 from __future__ import annotations
@@ -125,6 +131,58 @@ def assignment(engine: DuckDBEngine, cols: list[str], k: int, seed: int) -> sqlg
                              centroids=tuple(map(tuple, cents)))
 
 
+def postgres_run(rows: int, cols: int, ks: list[int]) -> None:
+    """The least and pairs forms on a throwaway PostgreSQL server: refine pass and an unfenced label read."""
+    import psycopg
+
+    sys.path.insert(0, str(HERE.parent / "tests"))
+    from throwaway_servers import start_postgres
+
+    from tillite.engines import PostgresEngine
+
+    server = start_postgres()
+    try:
+        rng = np.random.default_rng(3)
+        centres = rng.uniform(-10, 10, (8, cols))
+        x = centres[rng.integers(0, 8, rows)] + rng.normal(0, 1.5, (rows, cols))
+        names = [f"c{j}" for j in range(cols)]
+        with psycopg.connect(server.conninfo, autocommit=True) as con:
+            con.execute("CREATE TABLE blobs (" + ", ".join(f"{c} DOUBLE PRECISION" for c in names) + ")")
+            with con.cursor().copy("COPY blobs FROM STDIN") as copy:
+                for row in x.tolist():
+                    copy.write_row(row)
+            con.execute("ANALYZE blobs")
+        engine = PostgresEngine(server.conninfo)
+        src = sqlgen.Source.of_table("blobs")
+        mean, sd = x.mean(axis=0), x.std(axis=0)
+        saved = sqlgen.nearest_layers
+        print(f"PostgreSQL, {rows:,} rows x {cols} doubles; median of 3, forms interleaved")
+        for k in ks:
+            assign = sqlgen.Assignment(center=tuple(mean), inv_scale=tuple(1 / sd), weights=(1.0,) * cols,
+                                       centroids=tuple(map(tuple, (x[rng.choice(rows, k, replace=False)] - mean) / sd)))
+            times: dict[tuple[str, str], list[float]] = {}
+            for _ in range(3):
+                for f in ("least", "pairs"):
+                    sqlgen.nearest_layers = FORMS[f]
+                    try:
+                        refine = sqlgen.refine_statement(src, names, assign, "postgres")
+                        view = sqlgen.label_select(src, names, names, assign, "postgres")
+                    finally:
+                        sqlgen.nearest_layers = saved
+                    read = exp.select("segment", exp.func("count", exp.Star()), exp.func("sum", col("distance"))).from_(
+                        subquery(view, "lv")).group_by("segment")
+                    for what, st in (("refine pass", refine), ("label view read", read)):
+                        t0 = time.perf_counter()
+                        engine.query(st)
+                        times.setdefault((what, f), []).append(time.perf_counter() - t0)
+            for what in ("refine pass", "label view read"):
+                least, pairs = statistics.median(times[(what, "least")]), statistics.median(times[(what, "pairs")])
+                print(f"  k = {k:<3}{what:<17} least {least:.3f} s, pairs {pairs:.3f} s: {pairs / least:.2f} of least")
+        engine.close()
+    finally:
+        server.stop()
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--rows", type=int, default=5_000_000)
@@ -132,7 +190,11 @@ def main() -> None:
     ap.add_argument("--k", default="5,8")
     ap.add_argument("--repeat", type=int, default=5)
     ap.add_argument("--forms", default=",".join(FORMS))
+    ap.add_argument("--postgres", type=int, default=0, metavar="ROWS", help="time least and pairs on a throwaway PostgreSQL server")
     args = ap.parse_args()
+    if args.postgres:
+        postgres_run(args.postgres, args.cols, [int(v) for v in args.k.split(",")])
+        return
     db = Path(f"/tmp/tillite-bench-{args.rows}x{args.cols}.duckdb")
     if not db.exists():  # bench_pipeline builds it; --k there is the number of blobs
         subprocess.run([sys.executable, str(HERE / "bench_pipeline.py"), "--rows", str(args.rows), "--cols", str(args.cols),
