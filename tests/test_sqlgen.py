@@ -111,3 +111,59 @@ def test_packed_cell_codes_match_exactly_the_mapped_cells_and_nothing_outside_th
     # reference: membership in a Python set of the mapped key tuples
     expected = np.array([tuple(k) in mapped for k in keys.tolist()])
     np.testing.assert_array_equal(np.array([c in codes for c in got.tolist()]), expected)
+
+
+def tied_rows_and_centroids(k: int) -> tuple[np.ndarray, np.ndarray]:
+    """Centroids on integer points and every integer row of a small box: many rows lie at exactly
+    equal distance from two or more centroids, and the scores are exact (small integers in doubles)."""
+    rng = np.random.default_rng(k)
+    cents = rng.integers(-2, 3, size=(k, 2)).astype(np.float64)
+    if k > 1:
+        cents[-1] = cents[0]  # first and last centroid at the same point: the rows nearest them tie
+        cents[k // 2] = cents[1 if k > 2 else 0]
+    grid = np.arange(-3.0, 4.0)
+    rows = np.array([(a, b) for a in grid for b in grid])
+    return rows, cents
+
+
+@pytest.mark.parametrize("k", [1, 2, 3, 5, sqlgen.PAIRWISE_MAX_K, sqlgen.PAIRWISE_MAX_K + 1, 12])
+@pytest.mark.parametrize("reversed_ids", [False, True])
+def test_nearest_centroid_ties_go_to_the_first_centroid_in_every_statement_form(k, reversed_ids):
+    rows, cents = tied_rows_and_centroids(k)
+    ids = tuple(range(k - 1, -1, -1)) if reversed_ids else ()
+    assign = Assignment(center=(0.0, 0.0), inv_scale=(1.0, 1.0), weights=(1.0, 1.0), centroids=tuple(map(tuple, cents)), ids=ids)
+    con = duckdb.connect()
+    frame = {"x": rows[:, 0], "y": rows[:, 1]}  # noqa: F841 (scanned by name)
+    con.execute("CREATE TABLE t AS SELECT * FROM frame")
+    src = Source.of_table("t")
+    got = con.execute(sqlgen.render(sqlgen.label_select(src, ["x", "y"], ["x", "y"], assign, "duckdb", materialize=True), "duckdb")).fetchall()
+    sq = ((rows[:, None, :] - cents[None, :, :]) ** 2).sum(axis=2)
+    # reference: numpy argmin returns the first occurrence of the least value (numpy docs)
+    position = sq.argmin(axis=1)
+    want_ids = np.asarray(assign.segment_ids())[position]
+    by_row = {(x, y): (s, dist) for x, y, s, dist in got}
+    assert [by_row[tuple(r)][0] for r in rows] == want_ids.tolist()
+    # reference: numpy's least squared distance, exact on these integer points
+    assert [by_row[tuple(r)][1] ** 2 for r in rows] == pytest.approx(sq.min(axis=1).tolist(), abs=1e-12)
+    assert k == 1 or (sq == sq.min(axis=1, keepdims=True)).sum(axis=1).max() >= 2  # ties are present
+    refine = con.execute(sqlgen.render(sqlgen.refine_statement(src, ["x", "y"], assign, "duckdb"), "duckdb")).fetchall()
+    counts = {s: n for s, n, *_ in refine}
+    assert counts == {int(s): int(c) for s, c in zip(*np.unique(want_ids, return_counts=True))}
+
+
+def test_pairwise_nearest_form_only_where_it_was_measured_to_pay():
+    names = ["x", "y"]
+    src = Source.of_table("t")
+    assign = Assignment(center=(0.0, 0.0), inv_scale=(1.0, 1.0), weights=(1.0, 1.0),
+                        centroids=tuple((float(i), 0.0) for i in range(5)))
+
+    def uses_least(st, dialect):
+        return "LEAST(" in sqlgen.render(st, dialect).upper()  # only the LEAST form calls it
+
+    assert not uses_least(sqlgen.refine_statement(src, names, assign, "duckdb"), "duckdb")
+    assert not uses_least(sqlgen.label_select(src, names, names, assign, "duckdb"), "duckdb")
+    assert not uses_least(sqlgen.refine_statement(src, names, assign, "postgres"), "postgres")
+    assert not uses_least(sqlgen.label_select(src, names, names, assign, "postgres", materialize=True), "postgres")
+    # an unfenced PostgreSQL view would inline the pairwise CASE twice: it keeps LEAST
+    assert uses_least(sqlgen.label_select(src, names, names, assign, "postgres"), "postgres")
+    assert uses_least(sqlgen.refine_statement(src, names, assign, "spark"), "spark")

@@ -856,6 +856,79 @@ def _whole(value: float | int) -> exp.Expression:
     return exp.Literal(this=str(whole), is_string=False)
 
 
+#: Up to this many centroids the nearest one is chosen by pairwise comparisons
+#: (``_first_least_pairwise``); above it by LEAST and equality tests, which
+#: grow linearly rather than quadratically (benchmarks/bench_assignment.py).
+PAIRWISE_MAX_K = 8
+
+
+def nearest_layers(
+    scored: exp.Select, score: Sequence[str], ids: Sequence[int], best: str, nearest: str, dialect: str, fence: bool
+) -> exp.Select:
+    """scored's rows plus ``best``, their least score, and ``nearest``, the id of the first segment with that score.
+
+    Ties go to the lowest position in ``score`` in both forms, so they pick the
+    same segment on every row.  ``fence``: each layer is computed once per row
+    on engines that would inline it (``scan_fence``).
+    """
+    if pairwise_pays(len(score), dialect, fence):
+        return _first_least_pairwise(scored, score, ids, best, nearest, dialect, fence)
+    return _first_least_by_least(scored, score, ids, best, nearest, dialect, fence)
+
+
+def pairwise_pays(k: int, dialect: str, fence: bool) -> bool:
+    """Whether the pairwise CASE (rather than LEAST) picks the nearest of k centroids.
+
+    Only where it was measured to pay: DuckDB, and PostgreSQL when the layers are
+    fenced.  An unfenced PostgreSQL label view inlines the id into the score's
+    CASE and the segment's, each with every score written out: reading it took
+    1.4x as long as with LEAST (1M rows, k = 5 and 8).  Spark was not measured.
+    """
+    return k <= PAIRWISE_MAX_K and (dialect == "duckdb" or (dialect == "postgres" and fence))
+
+
+def _first_least_pairwise(
+    scored: exp.Select, score: Sequence[str], ids: Sequence[int], best: str, nearest: str, dialect: str, fence: bool
+) -> exp.Select:
+    """nearest = the first i whose score is <= every later one (one CASE); best = that score (a CASE on nearest).
+
+    Branch i is reached only when every earlier score exceeds some later one, so
+    the first branch that holds is the first position of the least score.  In
+    DuckDB this costs less than LEAST, which is slow per argument, plus k
+    equality tests (0.85-0.92 of that refine pass at k = 3-8 on 5M rows).
+    """
+    k = len(score)
+    if k == 1:
+        return exp.select(
+            exp.Star(), exp.alias_(col(score[0]), best, quoted=True), exp.alias_(num(ids[0]), nearest, quoted=True)
+        ).from_(subquery(scored, internal("b")))
+    ifs = [
+        exp.If(this=all_of([exp.LTE(this=col(score[i]), expression=col(score[j])) for j in range(i + 1, k)]), true=num(ids[i]))
+        for i in range(k - 1)
+    ]
+    with_id = exp.select(exp.Star(), exp.alias_(exp.Case(ifs=ifs, default=num(ids[-1])), nearest, quoted=True)).from_(
+        subquery(scored, internal("b"))
+    )
+    if fence:
+        with_id = scan_fence(with_id, dialect)
+    its_score = exp.Case(
+        this=col(nearest), ifs=[exp.If(this=num(sid), true=col(s)) for s, sid in zip(score[:-1], ids)], default=col(score[-1])
+    )
+    return exp.select(exp.Star(), exp.alias_(its_score, best, quoted=True)).from_(subquery(with_id, internal("c")))
+
+
+def _first_least_by_least(
+    scored: exp.Select, score: Sequence[str], ids: Sequence[int], best: str, nearest: str, dialect: str, fence: bool
+) -> exp.Select:
+    """best = LEAST(scores); nearest = the first i with s_i = best (a CASE)."""
+    least = least_of([col(n) for n in score])
+    with_best = exp.select(exp.Star(), exp.alias_(least, best, quoted=True)).from_(subquery(scored, internal("b")))
+    if fence:
+        with_best = scan_fence(with_best, dialect)
+    first = exp.Case(ifs=[exp.If(this=exp.EQ(this=col(score[i]), expression=col(best)), true=num(sid)) for i, sid in enumerate(ids)])
+    return exp.select(exp.Star(), exp.alias_(first, nearest, quoted=True)).from_(subquery(with_best, internal("c")))
+
+
 def _assignment_layers(
     source: Source,
     columns: Sequence[str],
@@ -897,17 +970,12 @@ def _assignment_layers(
     ).from_(subquery(stage1, internal("a")))
     if fence:
         stage2 = scan_fence(stage2, dialect)
-    least = col(score[0]) if k == 1 else least_of([col(n) for n in score])
-    stage3 = exp.select(exp.Star(), exp.alias_(least, best, quoted=True)).from_(subquery(stage2, internal("b")))
-    if fence:
-        stage3 = scan_fence(stage3, dialect)
     ids = assign.segment_ids()
-    pick = exp.Case(
-        ifs=[exp.If(this=exp.Not(this=col(internal("ok"))), true=exp.Null())]
-        + [exp.If(this=exp.EQ(this=col(score[i]), expression=col(best)), true=num(sid)) for i, sid in enumerate(ids)]
-    )
+    nearest = internal("nearest")
+    stage3 = nearest_layers(stage2, score, ids, best, nearest, dialect, fence)
+    pick = case_when(col(internal("ok")), col(nearest))
     if cell_map is None:
-        stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("c")))
+        stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("n")))
         return stage4, seg, best, v
     # rows take their cell's segment when the cell is in the map: one hash join
     # on the packed cell code (or on the per-axis keys) against a small relation
@@ -915,9 +983,9 @@ def _assignment_layers(
     key_names = [internal(f"c{a_}") for a_ in range(len(row_keys))]
     map_names = cell_map.column_names()
     # the join carries what the pass needs, not the grid's own centred values
-    carried = [exp.Star()] if keep_source else [col(n) for n in [*v, internal("ok"), *score, best]]
+    carried = [exp.Star()] if keep_source else [col(n) for n in [*v, internal("ok"), *score, best, nearest]]
     keyed = exp.select(*carried, *[exp.alias_(e, n, quoted=True) for e, n in zip(row_keys, key_names)]).from_(
-        subquery(stage3, internal("c"))
+        subquery(stage3, internal("n"))
     )
     on = all_of([exp.EQ(this=col(kn, internal("k")), expression=col(mn, internal("m"))) for kn, mn in zip(key_names, map_names)])
     fallback = pick if cell_map.unmapped == "nearest" else case_when(col(internal("ok")), num(-1))
