@@ -69,6 +69,17 @@ def make_rows(n: int = ROWS) -> Rows:
     return Rows(ids=np.arange(n, dtype=np.int64), x=x, null=null, kind=kind)
 
 
+def write_postgres(con, rows: Rows) -> None:
+    """The rows as table ``points`` on a PostgreSQL connection (psycopg, autocommit), copied in with COPY."""
+    from psycopg import sql
+
+    con.execute(sql.SQL("CREATE TABLE {} (id BIGINT, {} DOUBLE PRECISION, {} DOUBLE PRECISION, {} DOUBLE PRECISION, kind TEXT)").format(
+        sql.Identifier(TABLE), *[sql.Identifier(c) for c in COLUMNS]))
+    with con.cursor().copy(sql.SQL("COPY {} FROM STDIN").format(sql.Identifier(TABLE))) as copy:
+        for row in rows.tuples():
+            copy.write_row(row)
+
+
 def write_duckdb(path: Path, rows: Rows) -> Path:
     """The rows as table ``points`` in a DuckDB file.
 

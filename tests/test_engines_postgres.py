@@ -34,6 +34,7 @@ from tillite.pipeline import (
 from tillite.sqlgen import Source
 
 from engine_checks import (
+    write_postgres,
     every_third_cell,
     COLUMNS,
     TABLE,
@@ -61,11 +62,7 @@ def loaded(server, rows, tmp_path_factory):
     from psycopg import sql
 
     with psycopg.connect(server.conninfo, autocommit=True) as con:
-        con.execute(sql.SQL("CREATE TABLE {} (id BIGINT, {} DOUBLE PRECISION, {} DOUBLE PRECISION, {} DOUBLE PRECISION, kind TEXT)").format(
-            sql.Identifier(TABLE), *[sql.Identifier(c) for c in COLUMNS]))
-        with con.cursor().copy(sql.SQL("COPY {} FROM STDIN").format(sql.Identifier(TABLE))) as copy:
-            for row in rows.tuples():
-                copy.write_row(row)
+        write_postgres(con, rows)
         con.execute(sql.SQL("CREATE SCHEMA {}").format(sql.Identifier("field data")))
         con.execute(sql.SQL("CREATE VIEW {}.{} AS SELECT * FROM {}").format(
             sql.Identifier("field data"), sql.Identifier("points view"), sql.Identifier(TABLE)))

@@ -71,19 +71,28 @@ def labelled(district_db, open_engine):
     return engine, src, model, x, seg, districts, np.asarray(got["many"])
 
 
-def test_segment_statistics_equal_numpy_on_the_same_rows_and_labels(labelled):
-    engine, src, model, x, seg, _, _ = labelled
-    stats = R.segment_statistics(engine, src, model)
-    assert sorted(stats) == sorted(set(seg[seg != -99].tolist()))
+def assert_moments_equal_numpy(stats: dict, x: np.ndarray, seg: np.ndarray, columns: list[str]) -> None:
+    """Each segment's count, mean, population sd, min and max equal numpy's on the same rows."""
     for sid, st in stats.items():
         rows = x[seg == sid]
         # reference: numpy count, mean, population sd (ddof=0), min, max on the same rows
         assert st["n"] == len(rows)
-        for j, c in enumerate(model.columns):
+        for j, c in enumerate(columns):
             got = st["columns"][c]
             np.testing.assert_allclose(got["mean"], rows[:, j].mean(), rtol=1e-9, atol=1e-12)
             np.testing.assert_allclose(got["sd"], rows[:, j].std(ddof=0), rtol=1e-7)
             assert got["min"] == rows[:, j].min() and got["max"] == rows[:, j].max()
+
+
+def test_segment_statistics_equal_numpy_on_the_same_rows_and_labels(labelled):
+    engine, src, model, x, seg, _, _ = labelled
+    stats = R.segment_statistics(engine, src, model)
+    assert sorted(stats) == sorted(set(seg[seg != -99].tolist()))
+    assert_moments_equal_numpy(stats, x, seg, model.columns)
+    for sid, st in stats.items():
+        rows = x[seg == sid]
+        for j, c in enumerate(model.columns):
+            got = st["columns"][c]
             for q in (25, 50, 75):
                 # reference: numpy.percentile (linear interpolation, the rule of quantile_cont): the table is
                 # smaller than the quartile sample, so every row is read and the quartile is exact
@@ -119,15 +128,7 @@ def test_quartiles_from_a_sample_sit_within_the_dkw_bound_of_numpy_percentile(la
 def test_one_scan_with_two_breakdowns_equals_numpy_and_the_single_breakdowns(labelled):
     engine, src, model, x, seg, districts, many = labelled
     stats, (by_district, by_many) = R.report_scan(engine, src, model, ["district", "many"])
-    for sid, st in stats.items():
-        rows = x[seg == sid]
-        # reference: numpy count, mean, population sd, min, max of the segment's rows (pooled from the groups)
-        assert st["n"] == len(rows)
-        for j, c in enumerate(model.columns):
-            got = st["columns"][c]
-            np.testing.assert_allclose(got["mean"], rows[:, j].mean(), rtol=1e-9, atol=1e-12)
-            np.testing.assert_allclose(got["sd"], rows[:, j].std(ddof=0), rtol=1e-7)
-            assert got["min"] == rows[:, j].min() and got["max"] == rows[:, j].max()
+    assert_moments_equal_numpy(stats, x, seg, model.columns)
     # reference: the one-column statement (itself checked against a numpy crosstab above)
     assert by_district == R.breakdown(engine, src, model, "district")
     assert by_many == R.breakdown(engine, src, model, "many")

@@ -15,7 +15,7 @@ from tillite.engines import DuckDBEngine, PostgresEngine, SparkEngine
 from tillite.pipeline import Settings, segment
 from tillite.sqlgen import Source
 
-from engine_checks import COLUMNS, TABLE, make_rows, write_duckdb, write_parquet
+from engine_checks import COLUMNS, TABLE, make_rows, write_duckdb, write_parquet, write_postgres
 from throwaway_servers import start_spark
 
 SETTINGS = dict(k=5, width=0.5, seed=0, cell_budget=2_000)
@@ -100,14 +100,9 @@ def assert_same_scan(engine, reference, duck_file) -> None:
 @pytest.fixture(scope="module")
 def postgres(server, rows):
     import psycopg
-    from psycopg import sql
 
     with psycopg.connect(server.conninfo, autocommit=True) as con:
-        con.execute(sql.SQL("CREATE TABLE {} (id BIGINT, {} DOUBLE PRECISION, {} DOUBLE PRECISION, {} DOUBLE PRECISION, kind TEXT)").format(
-            sql.Identifier(TABLE), *[sql.Identifier(c) for c in COLUMNS]))
-        with con.cursor().copy(sql.SQL("COPY {} FROM STDIN").format(sql.Identifier(TABLE))) as copy:
-            for row in rows.tuples():
-                copy.write_row(row)
+        write_postgres(con, rows)
     engine = PostgresEngine(server.conninfo)
     yield engine
     engine.close()
