@@ -124,3 +124,39 @@ def sixty_days_of_blobs(path):
     """make_blobs (scikit-learn) rows a, b, c spread over 60 daily partitions of 1,000 rows."""
     x, _ = make_blobs(n_samples=60_000, centers=4, n_features=3, cluster_std=1.0, center_box=(-10, 10), random_state=7)
     return write_table(path, "readings", {"a": x[:, 0], "b": x[:, 1], "c": x[:, 2], "day": np.repeat(np.arange(60), 1000)})
+
+
+def grouped_blobs(spec: dict, n_features: int = 3, seed: int = 0) -> dict[str, np.ndarray]:
+    """Columns a, b, c, ... and ``grp``: per group value (None: NULL) scikit-learn make_blobs with
+    (rows, centres, shift, scale) from ``spec``; ``truth`` holds the generating blob per row."""
+    cols, groups, truth = [], [], []
+    for i, (value, (rows, centres, shift, scale)) in enumerate(spec.items()):
+        x, y = make_blobs(n_samples=rows, centers=centres, n_features=n_features, cluster_std=0.5, center_box=(-10, 10),
+                          random_state=seed + i)
+        cols.append(x * scale + shift)
+        groups += [value] * rows
+        truth.append(y)
+    x = np.vstack(cols)
+    data = columns_of(x, [chr(ord("a") + j) for j in range(n_features)])
+    data["grp"] = np.array(groups, dtype=object)
+    data["truth"] = np.concatenate(truth)
+    return data
+
+
+#: Three groups (one of them NULL) of four well-separated blobs each, at other places and scales.
+WITHIN_GROUPS = {"harbour": (6_000, 4, 0.0, 1.0), "dune": (4_000, 4, 50.0, 3.0), None: (3_000, 4, -40.0, 0.5)}
+
+
+@pytest.fixture(scope="module")
+def within_db(tmp_path_factory):
+    """A DuckDB file with table ``meters`` (WITHIN_GROUPS) and one table per group holding that group alone."""
+    path = tmp_path_factory.mktemp("within") / "within.duckdb"
+    write_table(path, "meters", grouped_blobs(WITHIN_GROUPS))
+    con = duckdb.connect(str(path))
+    try:
+        con.execute("CREATE TABLE only_harbour AS SELECT * FROM meters WHERE grp = 'harbour'")
+        con.execute("CREATE TABLE only_dune AS SELECT * FROM meters WHERE grp = 'dune'")
+        con.execute("CREATE TABLE only_null AS SELECT * FROM meters WHERE grp IS NULL")
+    finally:
+        con.close()
+    return path

@@ -239,7 +239,10 @@ def _settings(k, method, k_rule, scaling, weights, cell_budget, width, refine_pa
               "e.g. meter_days.model.json, in the current folder].")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
-def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
+@click.option("--within", default=None, metavar="COLUMN",
+              help="Segment each group of this column separately (k per group; NULL is a group of its own), "
+                   "all groups from the same scans; at most 1,000 groups.")
+def segment_command(source, table, columns, out, quiet, as_json, within, **kw) -> None:
     """Segment SOURCE's rows on the chosen columns and write a model file.
 
     SOURCE is a DuckDB database file (with --table) or a Parquet/CSV path or glob.
@@ -252,7 +255,7 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
         settings = _settings(**kw)
         out = out or default_model_path(source, table)
         with _open(source, table) as (engine, src):
-            model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet))
+            model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet), within=within)
         note = replaced_model_note(out, model)
         model.write(out)
         if note:

@@ -61,6 +61,9 @@ class Model:
     # the report's map drawn at segment time from the cells (report.map_figure): dots on the first two
     # principal axes with row counts and segments, and the variance share; older files lack it
     report_map: dict[str, Any] = field(default_factory=dict)
+    # `segment --within COL`: {"column", "type", "groups": [one model per group]}; the top-level segment
+    # lists are then empty (k 0) and the top-level centre and scale are the whole table's
+    within: dict[str, Any] = field(default_factory=dict)
 
     # ------------------------------------------------------------ derived
 
@@ -133,6 +136,7 @@ class Model:
             raise ModelError(f"{where} lacks {', '.join(missing)}")
         _check_shapes(body, where)
         _check_values(body, where)
+        _check_groups(body, where)
         return Model(**{k: v for k, v in body.items() if k in known})
 
     @staticmethod
@@ -190,6 +194,8 @@ class Model:
 
     def summary(self) -> dict[str, Any]:
         """The machine-readable digest printed by --json."""
+        if self.within:
+            return within_summary(self)
         return {
             "source": self.source,
             "method": self.method,
@@ -218,6 +224,8 @@ class Model:
 
     def describe(self) -> str:
         """A plain-text table of segments for people."""
+        if self.within:
+            return within_describe(self)
         lines = [
             f"source: {self.source}",
             f"method: {self.method}, k={self.k}, scaling={self.scaling}",
@@ -449,3 +457,82 @@ def replaced_model_note(path: str | os.PathLike, model: "Model") -> str | None:
         cols = ", ".join(map(str, old.get("columns") or []))
         return f"replaced {path}, the model of another source or column list ({old.get('source')}: {cols})"
     return None
+
+
+# ------------------------------------------------------------ `segment --within` models
+
+#: What one group's entry in ``Model.within["groups"]`` holds besides its name and value.
+GROUP_FIELDS = ("rows", "skipped", "k", "sizes", "centroids", "centroids_scaled", "center", "scale", "weights",
+                "sse", "segment_sse", "radius")
+
+
+def _check_groups(body: dict[str, Any], where: str) -> None:
+    """Each group of a --within model checked as a model of its own would be."""
+    within = body.get("within") or {}
+    if not within:
+        return
+    groups = within.get("groups")
+    if not isinstance(within.get("column"), str) or not isinstance(within.get("type"), str) or not isinstance(groups, list):
+        raise ModelError(f"{where} is damaged: within needs a column, a type and a list of groups")
+    for g in groups:
+        if not isinstance(g, dict) or any(f not in g for f in GROUP_FIELDS):
+            raise ModelError(f"{where} is damaged: a group of within lacks some of {', '.join(GROUP_FIELDS)}")
+        label = f"{where} (group {g.get('name')})"
+        part = {**body, **{f: g[f] for f in GROUP_FIELDS}, "ids": g.get("ids") or []}
+        _check_shapes(part, label)
+        _check_values(part, label)
+
+
+def group_models(model: Model) -> list[tuple[dict[str, Any], Model]]:
+    """Each group's entry and a Model of that group alone (for describing it, or labelling one group)."""
+    out = []
+    for g in model.within.get("groups", []):
+        one = Model(
+            columns=model.columns, center=g["center"], scale=g["scale"], weights=g["weights"], scaling=model.scaling,
+            centroids=g["centroids"], centroids_scaled=g["centroids_scaled"], sizes=g["sizes"], sse=g["sse"],
+            segment_sse=g["segment_sse"], radius=g["radius"], rows=g["rows"], skipped=g["skipped"],
+            source=f"{model.source} where {model.within['column']} is {g['name']}", k=g["k"], method=model.method,
+            ids=g.get("ids") or [], constant_columns=g.get("constant_columns", []), grid={"sd": g.get("sd")},
+            params={k: v for k, v in (("k_choice", g.get("k_choice")),) if v},
+        )
+        out.append((g, one))
+    return out
+
+
+def within_summary(model: Model) -> dict[str, Any]:
+    """--json of a --within model: the overall figures, then each group with its sizes and segments."""
+    groups = []
+    for g, one in group_models(model):
+        digest = one.summary()
+        groups.append({"group": g["name"], "value": g["value"], "rows": g["rows"], "skipped": g["skipped"], "k": g["k"],
+                       "sse": g["sse"], "segments": digest["segments"], "notes": g.get("notes", []),
+                       **({"k_choice": g["k_choice"]} if g.get("k_choice") else {})})
+    return {
+        "source": model.source, "method": model.method, "within": model.within["column"], "columns": model.columns,
+        "rows": model.rows, "skipped": model.skipped, "sse": model.sse, "groups": groups,
+        "passes": model.passes, "timings": model.timings, "params": model.params,
+    }
+
+
+def within_describe(model: Model) -> str:
+    """`tillite show` of a --within model: one line per group, then each group's segment table."""
+    groups = group_models(model)
+    segments = sum(g["k"] for g, _ in groups)
+    lines = [
+        f"source: {model.source}",
+        f"method: {model.method}, segments within each {model.within['column']} "
+        f"({len(groups)} groups, {segments} segments in all), scaling={model.scaling}",
+        f"rows: {model.rows:,} ({model.skipped:,} skipped for NULL/NaN/Inf)",
+        f"SSE (row level, summed over the groups, each in its own {model.units()}): {model.sse:.6g}",
+        "",
+        "groups:",
+    ]
+    width = max([len(g["name"]) for g, _ in groups] + [5])
+    for g, _ in groups:
+        lines.append(f"  {g['name'].ljust(width)}  {g['rows']:>12,} rows  k={g['k']}  sizes {', '.join(f'{s:,}' for s in g['sizes'])}"
+                     + (f"  ({'; '.join(g['notes'])})" if g.get("notes") else ""))
+    for g, one in groups:
+        lines.append("")
+        lines.append(f"== {model.within['column']} = {g['name']}")
+        lines.append(one.describe())
+    return "\n".join(lines)

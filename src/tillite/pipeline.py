@@ -935,8 +935,16 @@ def segment(
     columns: Sequence[str],
     settings: Settings,
     progress: ProgressFn = _quiet,
+    within: str | None = None,
 ) -> Model:
-    """Segment the source's rows on the columns; returns the model (nothing is written)."""
+    """Segment the source's rows on the columns; returns the model (nothing is written).
+
+    ``within``: a column whose groups are segmented separately (``within.segment_within``).
+    """
+    if within is not None:
+        from .within import segment_within
+
+        return segment_within(engine, source, columns, within, settings, progress)
     columns = list(columns)
     settings.check(columns)
     t_start = time.perf_counter()
@@ -1053,11 +1061,16 @@ def label(
     transaction (a store refresh).
     """
     source_columns = check_columns(engine, source, model.columns)
-    select = sqlgen.label_select(
-        source, model.columns, source_columns, model.assignment(), engine.dialect, cell_map=model.cell_map_spec(),
-        materialize=materialize or bool(source.files),
-    )
-    if model.names:  # a segment_name column once segments are named (`tillite name`)
+    if model.within:  # segments within groups: the centroid set chosen by each row's group
+        from .within import label_within_select
+
+        select = label_within_select(engine, source, model, source_columns, materialize or bool(source.files))
+    else:
+        select = sqlgen.label_select(
+            source, model.columns, source_columns, model.assignment(), engine.dialect, cell_map=model.cell_map_spec(),
+            materialize=materialize or bool(source.files),
+        )
+    if model.names and not model.within:  # a segment_name column once segments are named (`tillite name`)
         select = sqlgen.segment_names_column(select, "segment", {int(k): v for k, v in model.names.items()})
     if source.files:
         return _label_to_file(engine, source, select, into, replace)

@@ -1,0 +1,473 @@
+"""`segment --within COL`: segments computed separately per group, every group from the same scans.
+
+profile (one sample, with each row's group) -> one grid for all groups ->
+cell pass keyed by (group, cell) in ONE statement -> per group: exact
+standardisation, second phase (k per group; ``--k auto`` per group) -> refine
+passes, all groups in one statement per pass (each row's centroid set chosen
+by its group) -> one model file holding every group's model (``Model.within``).
+"""
+
+from __future__ import annotations
+
+import math
+import time
+import warnings
+from dataclasses import dataclass, replace
+from datetime import datetime, timezone
+from typing import Any, Sequence
+
+import numpy as np
+
+from . import features as F
+from . import sqlgen, within_sql
+from .engines import Engine, SourceError
+from .errors import InputError, ParameterError
+from .features import CF
+from .model import Model
+from .pipeline import (
+    CellBoxes, Profile, ProgressFn, SegmentStats, Settings, Standardisation, _quiet, canonical_sample, cells_count,
+    check_columns, choose_width, grid_for_profile, robust_mean_sd, run_second_phase, size_order, standardise_cells,
+)
+from .sqlgen import Grid, Partitioning, Source
+from .within_sql import GroupAssignment
+
+__all__ = ["segment_within", "MAX_GROUPS", "group_assignment", "NULL_GROUP_NAME", "label_within_select"]
+
+#: Most groups `--within` takes; more are refused (each group is a model of its own: a column with
+#: 100,000 values is an identifier, not a grouping, and its cells would swamp the second phase).
+MAX_GROUPS = 1_000
+
+#: How the NULL group is named in output.
+NULL_GROUP_NAME = "NULL"
+
+
+def group_name(value: str | None) -> str:
+    return NULL_GROUP_NAME if value is None else value
+
+
+def _part_value(key: str) -> str | None:
+    """The group's text from a partition key (``Partitioning.key``: ``~`` for NULL, else ``len:text``)."""
+    if key == "~":
+        return None
+    return key.split(":", 1)[1]
+
+
+def check_within(engine: Engine, source: Source, columns: Sequence[str], within: str, settings: Settings) -> str:
+    """The group column's type, after refusing what --within cannot do (one line each)."""
+    if not isinstance(within, str) or not within:
+        raise ParameterError("{within} must name a column", "within")
+    if within in columns:
+        raise ParameterError(f"{{within}} {within} is also a segmenting column; group by a column not in --columns", "within")
+    if settings.method == "density":
+        raise ParameterError("{within} works with {method} kmeans or ward, not density", "within", "method")
+    described = engine.describe(source)
+    types = dict(described)
+    if within not in types:
+        listing = ", ".join(n for n, _ in described)
+        raise SourceError(f"--within column {within} not found in {source.label}; columns there: {listing}")
+    return types[within]
+
+
+def too_many_groups(count: int, within: str, where: str) -> ParameterError:
+    return ParameterError(
+        f"{{within}} {within} has {count:,}{'+' if where == 'sample' else ''} groups (seen in the {where}); "
+        f"at most {MAX_GROUPS:,} are segmented separately: choose a coarser column", "within",
+    )
+
+
+# ----------------------------------------------------------------------------- profile
+
+
+@dataclass
+class GroupedProfile:
+    profile: Profile
+    groups: np.ndarray  # group code of each sample row (position in ``values``)
+    values: list[str | None]
+
+
+def run_grouped_profile(engine: Engine, source: Source, columns: Sequence[str], within: str, settings: Settings) -> GroupedProfile:
+    """``pipeline.run_profile`` with each sampled row's group: one sample for the grid of every group."""
+    t0 = time.perf_counter()
+    rows = int(engine.query(sqlgen.count_statement(source))["n"][0])
+    if rows == 0:
+        raise InputError(f"{source.label} has no rows")
+    d, target = len(columns), settings.sample_rows
+    if rows <= 2 * target:
+        got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.dialect))
+    else:
+        percent = min(100.0, 150.0 * target / rows)
+        first = "BERNOULLI" if engine.dialect == "duckdb" else "SYSTEM"
+        got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.dialect, percent, first, settings.seed))
+        if len(got[within_sql.GROUP_TEXT]) < target // 10 and first != "BERNOULLI":
+            got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.dialect, percent, "BERNOULLI",
+                                                                   settings.seed))
+    texts = [None if t is None or (isinstance(t, float) and math.isnan(t)) else str(t)
+             for t in np.ma.filled(np.asarray(got[within_sql.GROUP_TEXT], dtype=object), None)]
+    values = sorted(set(texts), key=lambda t: (t is None, t or ""))
+    if len(values) > MAX_GROUPS:
+        raise too_many_groups(len(values), within, "sample")
+    code = {v: i for i, v in enumerate(values)}
+    x = np.column_stack([np.asarray(got[sqlgen.internal(f"x{j}")], dtype=np.float64) for j in range(d)]) if texts else np.zeros((0, d))
+    codes = np.array([code[t] for t in texts], dtype=np.float64)
+    both = canonical_sample(np.column_stack([codes, x]), target, settings.seed) if len(x) else np.zeros((0, d + 1))
+    sample, groups = both[:, 1:], both[:, 0].astype(np.int64)
+    center, sd = robust_mean_sd(sample)
+    flat = np.ptp(sample, axis=0) == 0 if len(sample) else np.ones(d, dtype=bool)
+    scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
+    repeats = "yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.dialect)
+    prof = Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
+    return GroupedProfile(prof, groups, values)
+
+
+def grouped_grid(gp: GroupedProfile, settings: Settings, weights: np.ndarray) -> Grid:
+    """One grid for every group, its width chosen so the (group, cell) pairs fit the cell budget.
+
+    Each group's sampled coordinates are moved by a distinct offset far beyond
+    the data's span, so ``choose_width`` counts (group, cell) pairs.
+    """
+    grid = grid_for_profile(gp.profile, replace(settings, width=settings.width or 1.0), weights)
+    if settings.width or len(gp.profile.sample) == 0:
+        return grid
+    u = (gp.profile.sample - gp.profile.center[None, :]) / gp.profile.scale[None, :]
+    axes = np.asarray(grid.axes) if grid.axes else np.eye(u.shape[1])
+    coords = u @ axes
+    span = float(np.ptp(coords[:, 0])) + 200.0  # > the data's span plus the widest width searched (50)
+    coords[:, 0] += gp.groups * span
+    width = choose_width(coords, gp.profile.rows, settings.cell_budget)
+    return replace(grid, width=float(width))
+
+
+# ----------------------------------------------------------------------------- per group
+
+
+@dataclass
+class GroupRun:
+    value: str | None
+    cells: CF  # in the group's exact standardisation
+    keys: np.ndarray
+    skipped: int
+    std: Standardisation
+    k: int
+    centroids: np.ndarray
+    cell_labels: np.ndarray
+    stats: SegmentStats
+    sse_cells: float
+    params: dict[str, Any]
+    notes: list[str]
+    done: bool = False
+    passes: list[dict] | None = None
+
+    @property
+    def name(self) -> str:
+        return group_name(self.value)
+
+
+def split_cells(got: dict[str, np.ndarray], grid: Grid, d: int) -> list[tuple[str | None, CF, np.ndarray, int]]:
+    """The cell pass's rows split per group: (value, cells, keys, skipped), groups in text order, NULL last."""
+    from .pipeline import cells_from_result
+
+    parts = np.asarray(got["part"], dtype=object)
+    out = []
+    for key in sorted(set(parts.tolist()), key=lambda t: (t == "~", _part_value(t) or "")):
+        rows = parts == key
+        sub = {name: np.asarray(np.ma.getdata(values))[rows] if not np.ma.isMaskedArray(values) else values[rows]
+               for name, values in got.items()}
+        cells, keys, skipped = cells_from_result(sub, grid, d)
+        out.append((_part_value(key), cells, keys, skipped))
+    return out
+
+
+def _warn_for_group(name: str, caught: list[warnings.WarningMessage], notes: list[str]) -> None:
+    for w in caught:
+        text = f"group {name}: {w.message}"
+        notes.append(str(w.message))
+        warnings.warn(text, UserWarning, stacklevel=4)
+
+
+def standardise_group(cells_grid: CF, grid: Grid, columns: Sequence[str], settings: Settings, weights: np.ndarray,
+                      name: str, notes: list[str]) -> tuple[CF, Standardisation, bool]:
+    """``standardise_cells`` for one group; a group with nothing to segment on (every column constant there)
+    gets one segment with a warning instead of an error.  Returns (cells, std, degenerate)."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            cells, std = standardise_cells(cells_grid, grid, columns, settings, weights)
+            degenerate = False
+        except InputError as err:
+            d = len(columns)
+            total = F.total(cells_grid)
+            grid_scale = 1.0 / np.asarray(grid.inv_scale)
+            center = np.asarray(grid.center) + total.ls[0] / total.n[0] * grid_scale
+            scale = np.ones(d)
+            cells = F.affine(cells_grid, grid_scale, np.asarray(grid.center) - center)
+            std = Standardisation(center=center, sd=np.zeros(d), scale=scale, weights=np.zeros(d), constant=np.ones(d, bool))
+            warnings.warn(f"{err}: one segment", UserWarning)
+            degenerate = True
+    _warn_for_group(name, caught, notes)
+    return cells, std, degenerate
+
+
+def group_settings(settings: Settings, filled: int, name: str, notes: list[str]) -> tuple[Settings, int]:
+    """The settings of one group's second phase: k (or the k candidates) cut to what its cells allow."""
+    base = replace(settings, tree_budget=0, keep_outliers=True)  # no outlier group: every row is labelled by its centroid
+    if settings.k_candidates:
+        usable = tuple(c for c in settings.k_candidates if c < filled or c == 1)
+        return replace(base, k_candidates=usable), max(usable)
+    k = min(settings.k, max(filled, 1))
+    if k < settings.k:
+        note = f"{filled:,} distinct grid cell(s), fewer than k={settings.k}: {k} segment(s)"
+        notes.append(note)
+        warnings.warn(f"group {name}: {note}", UserWarning, stacklevel=3)
+    return replace(base, k=k), k
+
+
+def run_group(value: str | None, cells_grid: CF, keys: np.ndarray, skipped: int, grid: Grid, columns: Sequence[str],
+              settings: Settings, weights: np.ndarray, where: str, progress: ProgressFn) -> GroupRun:
+    """Exact standardisation and the second phase of one group."""
+    name, notes = group_name(value), []
+    cells, std, degenerate = standardise_group(cells_grid, grid, columns, settings, weights, name, notes)
+    filled = int((cells.n > 0).sum())
+    local, k = group_settings(settings, 1 if degenerate else filled, name, notes)
+    if degenerate or (k == 1 and not local.k_candidates):
+        labels = np.zeros(cells.m, dtype=np.int64)
+        cf = F.group_sum(cells, labels, 1)
+        stats = SegmentStats.of_cfs(cf, std.weights)
+        return GroupRun(value, cells, keys, skipped, std, 1, stats.centroids, labels, stats, float(stats.sse.sum()), {}, notes)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        phase = run_second_phase(cells, keys, local, std.weights, f"{where} group {name}",
+                                 lambda stage, message: progress(stage, f"group {name}: {message}"))
+    _warn_for_group(name, caught, notes)
+    stats = SegmentStats.of_cfs(F.group_sum(cells, phase.cell_labels, phase.k), std.weights)
+    return GroupRun(value, cells, keys, skipped, std, phase.k, phase.centroids, phase.cell_labels, stats, phase.sse,
+                    phase.params, notes)
+
+
+# ----------------------------------------------------------------------------- refine
+
+
+def group_assignment(within: str, group_type: str, runs: Sequence[GroupRun], centroids: Sequence[np.ndarray]) -> GroupAssignment:
+    return GroupAssignment(
+        column=within, group_type=group_type, values=tuple(r.value for r in runs),
+        center=np.array([r.std.center for r in runs]), inv_scale=np.array([1.0 / r.std.scale for r in runs]),
+        weights=np.array([r.std.weights for r in runs]), centroids=tuple(np.asarray(c, dtype=np.float64) for c in centroids),
+    )
+
+
+def run_refine_pass(engine: Engine, source: Source, columns: Sequence[str], assign: GroupAssignment
+                    ) -> tuple[list[tuple[SegmentStats, SegmentStats]], float]:
+    """One statement for every group: per group (rows at the centroids used, the same rows at their new means)."""
+    t0 = time.perf_counter()
+    got = engine.query(within_sql.refine_statement(source, columns, assign, engine.dialect))
+    d = len(columns)
+    seg_null = np.ma.getmaskarray(got["segment"]) if np.ma.isMaskedArray(got["segment"]) else np.isnan(np.asarray(got["segment"], dtype=np.float64))
+    gid_raw = got["gid"]
+    gid_null = np.ma.getmaskarray(gid_raw) if np.ma.isMaskedArray(gid_raw) else np.isnan(np.asarray(gid_raw, dtype=np.float64))
+    keep = ~(seg_null | gid_null)
+    gid = np.asarray(np.ma.getdata(gid_raw), dtype=np.float64)[keep].astype(np.int64)
+    seg = np.asarray(np.ma.getdata(got["segment"]), dtype=np.float64)[keep].astype(np.int64)
+    n_all = np.asarray(got["n"], dtype=np.float64)[keep]
+    ls_all = np.column_stack([np.asarray(np.ma.getdata(got[f"ls{j}"]), dtype=np.float64)[keep] for j in range(d)])
+    dist_all = np.asarray(np.ma.getdata(got["dist"]), dtype=np.float64)[keep]
+    out = []
+    for g, old in enumerate(assign.centroids):
+        k = len(old)
+        mine = gid == g
+        s = seg[mine]
+        n = np.bincount(s, weights=n_all[mine], minlength=k)[:k]
+        ls_u = np.column_stack([np.bincount(s, weights=ls_all[mine, j], minlength=k)[:k] for j in range(d)]) * assign.inv_scale[g][None, :]
+        dist = np.maximum(np.bincount(s, weights=dist_all[mine], minlength=k)[:k], 0.0)
+        means = np.where(n[:, None] > 0, ls_u / np.where(n > 0, n, 1.0)[:, None], old)
+        shift = (((means - old) * assign.weights[g][None, :]) ** 2).sum(axis=1)
+        out.append((SegmentStats(n, old, dist), SegmentStats(n, means, np.maximum(dist - n * shift, 0.0))))
+    return out, time.perf_counter() - t0
+
+
+def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within: str, group_type: str,
+                  runs: list[GroupRun], grid: Grid, settings: Settings, progress: ProgressFn) -> tuple[list[dict], dict[str, float]]:
+    """Row-level passes, one statement per pass for all groups, each group stopping as a run on it alone would.
+
+    A group is done when its cells settle it (``CellBoxes``, no pass needed), when
+    a pass gains less than the tolerance, or after the last pass; done groups keep
+    their centroids, so their rows are assigned as before and their figures stand.
+    """
+    passes: list[dict] = []
+    timings: dict[str, float] = {}
+    centroids = [r.centroids for r in runs]
+    for r in runs:
+        r.passes = []
+        if settings.refine_passes == 0:
+            r.done = True
+        elif r.k == 1 and r.std.weights.sum() == 0:
+            r.done = True
+        elif (r.stats.n > 0).all():
+            boxes = CellBoxes.of_grid(grid, r.keys, r.std, r.cell_labels)
+            r.done = boxes is not None and boxes.all_settled(r.stats.centroids, r.std.weights)
+    if all(r.done for r in runs):
+        progress("refine", "no pass needed: every group's cells lie wholly nearest their own segments' centroids")
+    for p in range(1, settings.refine_passes + 1):
+        if all(r.done for r in runs):
+            break
+        assign = group_assignment(within, group_type, runs, [r.stats.centroids if r.done else c for r, c in zip(runs, centroids)])
+        results, seconds = run_refine_pass(engine, source, columns, assign)
+        timings[f"refine_{p}"] = seconds
+        before_all = after_all = 0.0
+        for g, (r, (assigned, updated)) in enumerate(zip(runs, results)):
+            if r.done:
+                continue
+            before, after = float(assigned.sse.sum()), float(updated.sse.sum())
+            before_all, after_all = before_all + before, after_all + after
+            gain = (before - after) / before if before > 0 else 0.0
+            r.passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain})
+            empty = updated.n == 0
+            if empty.any():
+                warnings.warn(f"group {r.name}: refine pass {p}: segment(s) {np.flatnonzero(empty).tolist()} got no rows",
+                              UserWarning, stacklevel=3)
+            if gain < settings.tolerance or p == settings.refine_passes:
+                r.stats, r.done = assigned, True
+            else:
+                r.stats, centroids[g] = updated, updated.centroids
+        passes.append({"pass": p, "sse_assigned": before_all, "sse": after_all, "seconds": seconds,
+                       "groups": sum(1 for r in runs if r.passes and r.passes[-1]["pass"] == p)})
+        progress("refine", f"pass {p}: SSE {before_all:.6g} -> {after_all:.6g} over the groups still moving, {seconds:.2f} s")
+    return passes, timings
+
+
+# ----------------------------------------------------------------------------- segment
+
+
+def segment_within(engine: Engine, source: Source, columns: Sequence[str], within: str, settings: Settings,
+                   progress: ProgressFn = _quiet) -> Model:
+    """Segment each group of ``within`` separately, every group from one cell pass and one statement per refine pass."""
+    columns = list(columns)
+    settings.check(columns)
+    t_start = time.perf_counter()
+    group_type = check_within(engine, source, columns, within, settings)
+    check_columns(engine, source, columns)
+    weights = settings.column_weights(columns)
+
+    t0 = time.perf_counter()
+    gp = run_grouped_profile(engine, source, columns, within, settings)
+    grid = grouped_grid(gp, settings, weights)
+    t_profile = time.perf_counter() - t0
+    progress("profile", f"{gp.profile.rows:,} rows, sample of {len(gp.profile.sample):,} in {len(gp.values):,} group(s), "
+                        f"grid width {grid.width:.3g} on {grid.dims} axes, {t_profile:.2f} s")
+
+    t0 = time.perf_counter()
+    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.dialect, partition=Partitioning.of_columns([within])))
+    parts = split_cells(got, grid, len(columns))
+    t_cells = time.perf_counter() - t0
+    if len(parts) > MAX_GROUPS:
+        raise too_many_groups(len(parts), within, "table")
+    usable = sum(int(round(c.n.sum())) for _, c, _, _ in parts)
+    skipped = sum(s for *_, s in parts)
+    if usable == 0:
+        raise InputError(f"no usable rows in {source.label}: all {skipped:,} rows have a NULL, NaN or infinite value in {', '.join(columns)}")
+    progress("cells", f"{usable + skipped:,} rows ({skipped:,} skipped) -> {sum(c.m for _, c, _, _ in parts):,} (group, cell) pairs "
+                      f"in {len(parts):,} group(s), one statement, {t_cells:.2f} s")
+
+    t0 = time.perf_counter()
+    runs = []
+    for value, cells, keys, group_skipped in parts:
+        if cells.m == 0:  # every row of the group skipped: no model for it, its rows get NULL
+            warnings.warn(f"group {group_name(value)}: all {group_skipped:,} rows have a NULL, NaN or infinite value; "
+                          "no segments (labelled NULL)", UserWarning, stacklevel=2)
+            continue
+        runs.append(run_group(value, cells, keys, group_skipped, grid, columns, settings, weights, source.label, progress))
+    t_second = time.perf_counter() - t0
+    progress("second phase", f"{len(runs):,} group(s), {sum(r.k for r in runs):,} segments in all, {t_second:.2f} s")
+
+    passes, refine_times = refine_groups(engine, source, columns, within, group_type, runs, grid, settings, progress)
+    all_cells = F.concat(*[c for _, c, _, _ in parts if c.m])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # constant columns are said per group
+        try:
+            _, overall = standardise_cells(all_cells, grid, columns, settings, weights)
+        except InputError:
+            _, overall, _ = standardise_group(all_cells, grid, columns, settings, weights, "(all)", [])
+    model = within_model(columns, overall, grid, runs, settings, source, within, group_type, usable + skipped, skipped,
+                         int((all_cells.n > 0).sum()), gp.profile.repeats)
+    model.passes = passes
+    model.timings = {"profile": t_profile, "cells": t_cells, "second_phase": t_second, **refine_times,
+                     "total": time.perf_counter() - t_start}
+    return model
+
+
+def group_entry(r: GroupRun, columns: Sequence[str]) -> dict[str, Any]:
+    """One group's model in the model file (segment ids 0..k-1 within the group, largest first)."""
+    order = size_order(r.stats)
+    stats = r.stats.take(order)
+    original = stats.centroids * r.std.scale[None, :] + r.std.center[None, :]
+    entry = {
+        "value": r.value,
+        "name": r.name,
+        "rows": int(round(stats.n.sum())) + r.skipped,
+        "skipped": r.skipped,
+        "k": len(stats.n),
+        "ids": list(range(len(stats.n))),
+        "sizes": [int(round(v)) for v in stats.n],
+        "centroids": original.tolist(),
+        "centroids_scaled": stats.centroids.tolist(),
+        "center": r.std.center.tolist(),
+        "scale": r.std.scale.tolist(),
+        "sd": r.std.sd.tolist(),
+        "weights": r.std.weights.tolist(),
+        "sse": float(stats.sse.sum()),
+        "segment_sse": stats.sse.tolist(),
+        "radius": np.sqrt(stats.sse / np.where(stats.n > 0, stats.n, 1.0)).tolist(),
+        "constant_columns": [c for c, flag in zip(columns, r.std.constant) if flag],
+        "cells": int((r.cells.n > 0).sum()),
+        "cell_sse": r.sse_cells,
+        "passes": r.passes or [],
+        "notes": r.notes,
+    }
+    if "k_choice" in r.params:
+        entry["k_choice"] = r.params["k_choice"]
+    return entry
+
+
+def within_model(columns: Sequence[str], overall: Standardisation, grid: Grid, runs: Sequence[GroupRun], settings: Settings,
+                 source: Source, within: str, group_type: str, rows: int, skipped: int, cells: int, repeats: str) -> Model:
+    """The model file of a --within run: the shared grid and overall figures at the top, one entry per group."""
+    groups = [group_entry(r, columns) for r in runs]
+    return Model(
+        columns=list(columns), center=overall.center.tolist(), scale=overall.scale.tolist(), weights=overall.weights.tolist(),
+        scaling=settings.scaling, centroids=[], centroids_scaled=[], sizes=[], sse=float(sum(g["sse"] for g in groups)),
+        segment_sse=[], radius=[], rows=rows, skipped=skipped, source=source.label, k=0, method=settings.method,
+        constant_columns=[c for c, flag in zip(columns, overall.constant) if flag],
+        grid={**grid.to_dict(), "cells": cells, "sd": overall.sd.tolist()},
+        params={"cell_budget": settings.cell_budget, "refine_passes": settings.refine_passes, "tolerance": settings.tolerance,
+                "restarts": settings.n_init, "seed": settings.seed, "sample_rows": settings.sample_rows,
+                "k": settings.k if not settings.k_candidates else f"{settings.k_candidates[0]}..{settings.k_candidates[-1]}",
+                "sample_repeats": repeats},
+        created=datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        within={"column": within, "type": group_type, "groups": groups},
+    )
+
+
+# ----------------------------------------------------------------------------- label
+
+
+def model_assignment(model: Model) -> GroupAssignment:
+    """What the label SQL needs from a --within model."""
+    groups = model.within["groups"]
+    return GroupAssignment(
+        column=model.within["column"], group_type=model.within["type"], values=tuple(g["value"] for g in groups),
+        center=np.array([g["center"] for g in groups], dtype=np.float64),
+        inv_scale=1.0 / np.array([g["scale"] for g in groups], dtype=np.float64),
+        weights=np.array([g["weights"] for g in groups], dtype=np.float64),
+        centroids=tuple(np.asarray(g["centroids_scaled"], dtype=np.float64).reshape(len(g["sizes"]), len(model.columns))
+                        for g in groups),
+    )
+
+
+def label_within_select(engine: Engine, source: Source, model: Model, source_columns: Sequence[str], materialize: bool):
+    """The label select of a --within model; warns with the count of rows in groups the model does not know."""
+    if model.within["column"] not in source_columns:
+        raise SourceError(f"--within column {model.within['column']} of the model not found in {source.label}")
+    assign = model_assignment(model)
+    unknown = int(engine.query(within_sql.unknown_groups_statement(source, assign, engine.dialect))["n"][0])
+    if unknown:
+        warnings.warn(f"{unknown:,} row(s) of {source.label} are in {model.within['column']} groups the model does not know "
+                      "(values that appeared after it was built): labelled NULL", UserWarning, stacklevel=3)
+    return within_sql.label_select(source, model.columns, source_columns, assign, engine.dialect, materialize=materialize)

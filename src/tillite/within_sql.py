@@ -1,0 +1,219 @@
+"""Statements of `segment --within`: segments computed separately per group, all groups in one scan.
+
+The cell pass needs nothing new (``sqlgen.cells_statement`` keyed by (group, cell)
+through a ``Partitioning`` on the group column).  What is new here: the profile
+sample carries the group, and the refine pass and labels choose each row's
+centroid set by its group, through a hash join against a small relation of
+(group, group position, centre, norm factors, score coefficients) -- one row per
+group -- rather than a CASE per coefficient.
+
+Like sqlgen, this module imports nothing of ours but sqlgen.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Sequence
+
+import numpy as np
+import sqlglot.expressions as exp
+
+from . import sqlgen
+from .sqlgen import Source, col, internal, num
+
+#: Score given to the missing segments of a group with fewer than the most segments: never the least.
+PADDING_SCORE = 1e300
+
+GROUP_TEXT = internal("grp")  # the sampled group's text (NULL for the NULL group)
+SOURCE_ALIAS = internal("src")
+PARAMS_ALIAS = internal("wp")
+
+
+@dataclass(frozen=True)
+class GroupAssignment:
+    """Per group: the standardisation and centroids its rows are assigned with.
+
+    ``values``: each group's value as text (None for the NULL group), cast back
+    to ``group_type`` in SQL; ``center``, ``inv_scale``, ``weights`` (groups x d)
+    and ``centroids`` (one (k_g x d) array per group, in scaled units).  Segment
+    ids are the positions 0..k_g-1 within each group.
+    """
+
+    column: str
+    group_type: str
+    values: tuple[str | None, ...]
+    center: np.ndarray
+    inv_scale: np.ndarray
+    weights: np.ndarray
+    centroids: tuple[np.ndarray, ...]
+
+    @property
+    def most_segments(self) -> int:
+        return max(len(c) for c in self.centroids)
+
+    def coefficients(self, g: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """a (K x d), b (K), f (d) of group g: score_i = b_i + sum_j a_ij v_j, ||u||_w^2 = sum_j (f_j v_j)^2,
+        v = x - center_g; segments past the group's own get score PADDING_SCORE."""
+        a_g, b_g = sqlgen.Assignment(
+            tuple(self.center[g]), tuple(self.inv_scale[g]), tuple(self.weights[g]), tuple(map(tuple, self.centroids[g]))
+        ).score_coefficients()
+        most, d = self.most_segments, self.center.shape[1]
+        a, b = np.zeros((most, d)), np.full(most, PADDING_SCORE)
+        a[: len(a_g)], b[: len(b_g)] = a_g, b_g
+        return a, b, np.abs(self.weights[g] * self.inv_scale[g])
+
+
+def _names(d: int, k: int) -> dict[str, list]:
+    return {
+        "c": [internal(f"wc{j}") for j in range(d)],
+        "f": [internal(f"wf{j}") for j in range(d)],
+        "a": [[internal(f"wa{i}_{j}") for j in range(d)] for i in range(k)],
+        "b": [internal(f"wb{i}") for i in range(k)],
+    }
+
+
+def group_literal(value: str | None, group_type: str, dialect: str) -> exp.Expression:
+    """A group's value typed as the column: CAST('text' AS type), or a typed NULL."""
+    kind = exp.DataType.build(group_type, dialect=dialect)
+    return exp.cast(exp.Null() if value is None else exp.Literal.string(value), kind)
+
+
+def params_relation(assign: GroupAssignment, dialect: str) -> exp.Expression:
+    """The inline VALUES relation, one row per group: value, position, centre, norm factors, a, b."""
+    d, k = assign.center.shape[1], assign.most_segments
+    names = _names(d, k)
+    columns = [internal("wg"), internal("wgid"), *names["c"], *names["f"], *[n for row in names["a"] for n in row], *names["b"]]
+    rows = []
+    for g, value in enumerate(assign.values):
+        a, b, f = assign.coefficients(g)
+        values = [group_literal(value, assign.group_type, dialect), num(g), *[num(float(c)) for c in assign.center[g]],
+                  *[num(float(x)) for x in f], *[num(float(x)) for x in a.ravel()], *[num(float(x)) for x in b]]
+        rows.append(exp.Tuple(expressions=values))
+    alias = exp.TableAlias(this=exp.to_identifier(PARAMS_ALIAS, quoted=True),
+                           columns=[exp.to_identifier(n, quoted=True) for n in columns])
+    return exp.Values(expressions=rows, alias=alias)
+
+
+def _aliased_source(source: Source) -> exp.Expression:
+    rel = source.relation()
+    rel.set("alias", exp.TableAlias(this=exp.to_identifier(SOURCE_ALIAS, quoted=True)))
+    return rel
+
+
+def _same_group(column: str) -> exp.Expression:
+    """The join condition: the row's group equals the relation's, NULL matching NULL."""
+    return exp.NullSafeEQ(this=col(column, SOURCE_ALIAS), expression=col(internal("wg"), PARAMS_ALIAS))
+
+
+def assignment_layers(
+    source: Source, columns: Sequence[str], assign: GroupAssignment, dialect: str, keep_source: bool, fence: bool | None = None,
+) -> tuple[exp.Select, str, str, str, list[str]]:
+    """Each row's group position and segment within its group (NULL for unusable rows and unknown groups).
+
+    Returns (select, group position column, segment column, the segment's score
+    column, centred value columns).  The squared distance is score + sum_j (f_j v_j)^2.
+    """
+    fence = (not keep_source) if fence is None else fence
+    d, k = len(columns), assign.most_segments
+    names = _names(d, k)
+    v = [internal(f"v{j}") for j in range(d)]
+    gid = internal("gid")
+    src_cols = [exp.Column(this=exp.Star(), table=exp.to_identifier(SOURCE_ALIAS, quoted=True))] if keep_source else []
+    centred = [exp.Sub(this=sqlgen.to_double(col(c, SOURCE_ALIAS)), expression=col(cn, PARAMS_ALIAS)) for c, cn in zip(columns, names["c"])]
+    carried = [*names["f"], *[n for row in names["a"] for n in row], *names["b"]]
+    stage1 = (
+        exp.select(*src_cols, exp.alias_(col(internal("wgid"), PARAMS_ALIAS), gid, quoted=True),
+                   *[exp.alias_(e, n, quoted=True) for e, n in zip(centred, v)],
+                   *[col(n, PARAMS_ALIAS) for n in carried])
+        .from_(_aliased_source(source))
+        .join(params_relation(assign, dialect), on=_same_group(assign.column), join_type="LEFT")
+    )
+    score = [internal(f"s{i}") for i in range(k)]
+
+    def score_of(i: int) -> exp.Expression:
+        return sqlgen.total_sum([col(names["b"][i])] + [exp.Mul(this=col(a), expression=col(vn)) for a, vn in zip(names["a"][i], v)])
+
+    ok = exp.And(this=sqlgen.usable_rows(v, dialect), expression=exp.Not(this=exp.Is(this=col(gid), expression=exp.Null())))
+    stage2 = exp.select(
+        exp.Star(), exp.alias_(ok, internal("ok"), quoted=True), *[exp.alias_(score_of(i), score[i], quoted=True) for i in range(k)]
+    ).from_(sqlgen.subquery(stage1, internal("a")))
+    if fence:
+        stage2 = sqlgen.scan_fence(stage2, dialect)
+    best, nearest, seg = internal("best"), internal("nearest"), internal("segment")
+    stage3 = sqlgen.nearest_layers(stage2, score, list(range(k)), best, nearest, dialect, fence)
+    pick = sqlgen.case_when(col(internal("ok")), col(nearest))
+    stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(sqlgen.subquery(stage3, internal("n")))
+    return stage4, gid, seg, best, v
+
+
+def _squared_norm(v: Sequence[str], d: int) -> exp.Expression:
+    """sum_j (f_j v_j)^2, the factor applied before squaring (see sqlgen._squared_norm)."""
+    f = _names(d, 0)["f"]
+    return sqlgen.total_sum([sqlgen.square(exp.Mul(this=col(fn), expression=col(vn))) for fn, vn in zip(f, v)])
+
+
+def refine_statement(source: Source, columns: Sequence[str], assign: GroupAssignment, dialect: str) -> exp.Select:
+    """One refine pass over every group: GROUP BY (group position, segment).
+
+    Returns gid, segment, n, ls0.. (sums of v = x - center_g) and dist (summed
+    squared distances to the centroid used), as ``sqlgen.refine_statement`` does
+    for one model.  Groups with segment NULL count skipped rows.
+    """
+    inner, gid, seg, best, v = assignment_layers(source, columns, assign, dialect, keep_source=False)
+    aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
+    aggs += [exp.alias_(sqlgen.float_sum(col(n), dialect), f"ls{j}", quoted=True) for j, n in enumerate(v)]
+    dist = exp.Add(this=col(best), expression=sqlgen.paren(_squared_norm(v, len(columns))))
+    aggs.append(exp.alias_(sqlgen.float_sum(dist, dialect), "dist", quoted=True))
+    return (
+        exp.select(exp.alias_(col(gid), "gid", quoted=True), exp.alias_(col(seg), "segment", quoted=True), *aggs)
+        .from_(sqlgen.subquery(inner, internal("d")))
+        .group_by(col(gid), col(seg))
+    )
+
+
+def label_select(
+    source: Source, columns: Sequence[str], source_columns: Sequence[str], assign: GroupAssignment, dialect: str,
+    materialize: bool = False, segment_name: str = "segment", distance_name: str = "distance",
+) -> exp.Select:
+    """Every source column (the group column among them) plus the segment within the group and the distance."""
+    inner, _gid, seg, best, v = assignment_layers(source, columns, assign, dialect, keep_source=True, fence=materialize)
+    distance = sqlgen.case_when(
+        exp.GTE(this=col(seg), expression=num(0)),
+        exp.Sqrt(this=sqlgen.greatest_of([exp.Add(this=col(best), expression=_squared_norm(v, len(columns))), num(0.0)])),
+    )
+    return exp.select(
+        *[col(c) for c in source_columns],
+        exp.alias_(exp.cast(col(seg), exp.DataType.build("INT")), segment_name, quoted=True),
+        exp.alias_(distance, distance_name, quoted=True),
+    ).from_(sqlgen.subquery(inner, internal("d")))
+
+
+def unknown_groups_statement(source: Source, assign: GroupAssignment, dialect: str) -> exp.Select:
+    """Rows whose group the model does not know (a value that appeared after the build): count n."""
+    return (
+        exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True))
+        .from_(_aliased_source(source))
+        .join(params_relation(assign, dialect), on=_same_group(assign.column), join_type="LEFT")
+        .where(exp.Is(this=col(internal("wgid"), PARAMS_ALIAS), expression=exp.Null()))
+    )
+
+
+def grouped_sample_statement(
+    source: Source, columns: Sequence[str], group: str, dialect: str, percent: float | None = None,
+    method: str = "SYSTEM", seed: int | None = None,
+) -> exp.Select:
+    """``sqlgen.sample_statement``'s usable rows plus each row's group as text (GROUP_TEXT, NULL stays NULL)."""
+    rel = source.relation()
+    sampled = percent is not None and percent < 100.0
+    spark_seeded = sampled and seed is not None and dialect in sqlgen.SPARK_DIALECTS
+    if sampled and not spark_seeded:
+        rel.set("sample", sqlgen.table_sample(float(percent), method, dialect, seed=seed))
+    names = [internal(f"x{j}") for j in range(len(columns))]
+    text = exp.cast(col(group), exp.DataType.build("VARCHAR"))
+    inner = exp.select(*[exp.alias_(sqlgen.to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)],
+                       exp.alias_(text, GROUP_TEXT, quoted=True)).from_(rel)
+    if spark_seeded:
+        inner = inner.where(exp.LT(this=exp.Rand(this=num(int(seed))), expression=num(float(percent) / 100.0)))
+    return exp.select(*[col(n) for n in [*names, GROUP_TEXT]]).from_(sqlgen.subquery(inner, internal("s"))).where(
+        sqlgen.usable_rows(names, dialect)
+    )

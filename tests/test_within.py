@@ -1,0 +1,164 @@
+"""`segment --within COL`: segments computed separately per group, every group from the same scans.
+
+Outside references: each group against tillite run on a table holding that group alone (made by a
+plain SQL WHERE in DuckDB), scikit-learn's KMeans(n_init=10) objective on the group's scaled rows
+(numpy mean and population sd), and make_blobs' generating labels.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+
+import duckdb
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from sklearn.cluster import KMeans
+
+from tillite.cli import main
+from tillite.engines import DuckDBEngine
+from tillite.model import Model
+from tillite.pipeline import Settings, label, segment
+from tillite import sqlgen
+from tillite.sqlgen import Source
+
+from conftest import WITHIN_GROUPS, grouped_blobs, write_table
+
+COLUMNS = ["a", "b", "c"]
+#: A small cell budget, so the cells do not settle the segments and refine passes run; passes until
+#: Lloyd's fixed point, so a run on a group alone and the --within run end at the same centroids
+#: (two of the harbour blobs touch: three passes leave both runs short of it, at different places).
+SETTINGS = dict(k=4, cell_budget=400, refine_passes=30, tolerance=1e-12)
+ALONE = {"harbour": "only_harbour", "dune": "only_dune", "NULL": "only_null"}
+
+
+def rows_of(path, table: str, where: str = "TRUE") -> tuple[np.ndarray, list]:
+    con = duckdb.connect(str(path), read_only=True)
+    try:
+        got = con.execute(f"SELECT a, b, c, grp FROM {table} WHERE {where}").fetchall()
+    finally:
+        con.close()
+    return np.array([r[:3] for r in got], dtype=float), [r[3] for r in got]
+
+
+def by_first_column(centroids) -> np.ndarray:
+    c = np.asarray(centroids, dtype=float)
+    return c[np.lexsort(c.T[::-1])]
+
+
+@pytest.fixture(scope="module")
+def within_model(within_db):
+    with DuckDBEngine(str(within_db), read_only=True) as engine:
+        return segment(engine, Source.of_table("meters"), COLUMNS, Settings(**SETTINGS), within="grp")
+
+
+def test_each_group_equals_a_run_on_that_group_alone(within_db, within_model):
+    groups = {g["name"]: g for g in within_model.within["groups"]}
+    assert set(groups) == set(ALONE)
+    assert any(g["passes"] for g in groups.values())  # the refine passes ran
+    for name, table in ALONE.items():
+        with DuckDBEngine(str(within_db), read_only=True) as engine:
+            alone = segment(engine, Source.of_table(table), COLUMNS, Settings(**SETTINGS))
+        g = groups[name]
+        # outside reference: tillite on a table holding only this group (SQL WHERE on the group in DuckDB)
+        assert sorted(g["sizes"]) == sorted(alone.sizes)
+        np.testing.assert_allclose(by_first_column(g["centroids"]), by_first_column(alone.centroids), rtol=1e-6, atol=1e-6)
+        assert g["sse"] == pytest.approx(alone.sse, rel=1e-6)
+
+
+def test_each_group_sse_within_0_2_percent_of_scikit_learn_kmeans(within_db, within_model):
+    for g in within_model.within["groups"]:
+        where = "grp IS NULL" if g["value"] is None else f"grp = '{g['value']}'"
+        x, _ = rows_of(within_db, "meters", where)
+        u = (x - x.mean(axis=0)) / x.std(axis=0)  # numpy: the group's exact mean and population sd
+        # outside reference: scikit-learn KMeans(n_init=10) inertia on the group's scaled rows
+        best = KMeans(n_clusters=g["k"], n_init=10, random_state=0).fit(u).inertia_
+        assert g["sse"] <= 1.002 * best, (g["name"], g["sse"], best)
+        np.testing.assert_allclose(g["center"], x.mean(axis=0), rtol=1e-9)
+
+
+def test_cell_pass_is_one_statement_and_each_refine_pass_one_statement(within_db):
+    seen: list[str] = []
+    with DuckDBEngine(str(within_db), read_only=True) as engine:
+        query = engine.query
+
+        def recording(statement):
+            seen.append(sqlgen.render(statement, "duckdb"))
+            return query(statement)
+
+        engine.query = recording
+        model = segment(engine, Source.of_table("meters"), COLUMNS, Settings(**SETTINGS), within="grp")
+    cell_passes = [s for s in seen if '"k0"' in s and "GROUP BY" in s]
+    refine = [s for s in seen if '"gid"' in s and "GROUP BY" in s]
+    assert len(cell_passes) == 1 and '"grp"' in cell_passes[0]
+    assert len(refine) == len(model.passes) >= 1
+
+
+def test_labels_number_segments_within_each_group_and_match_the_model(within_db, within_model, tmp_path):
+    db = tmp_path / "copy.duckdb"
+    write_table(db, "meters", grouped_blobs(WITHIN_GROUPS))
+    with DuckDBEngine(str(db)) as engine:
+        assert label(engine, Source.of_table("meters"), within_model, "meter_segments") == "view meter_segments"
+    con = duckdb.connect(str(db))
+    got = con.execute("SELECT grp, segment, count(*), sum(distance * distance) FROM meter_segments GROUP BY 1, 2").fetchall()
+    con.close()
+    for g in within_model.within["groups"]:
+        mine = sorted((r[1], r[2], r[3]) for r in got if r[0] == g["value"])
+        assert [m[0] for m in mine] == list(range(g["k"]))  # segment ids 0..k-1 within the group
+        assert [m[1] for m in mine] == g["sizes"]
+        assert sum(m[2] for m in mine) == pytest.approx(g["sse"], rel=1e-9)
+
+
+def test_group_value_unknown_to_the_model_is_labelled_null_with_a_count(within_db, within_model, tmp_path):
+    db = tmp_path / "later.duckdb"
+    data = grouped_blobs({**WITHIN_GROUPS, "marsh": (37, 2, 5.0, 1.0)})
+    write_table(db, "meters", data)
+    with DuckDBEngine(str(db)) as engine, pytest.warns(UserWarning, match=r"37 row\(s\) .* groups the model does not know"):
+        label(engine, Source.of_table("meters"), within_model, "meter_segments")
+    con = duckdb.connect(str(db))
+    nulls = con.execute("SELECT count(*) FROM meter_segments WHERE grp = 'marsh' AND segment IS NULL").fetchone()[0]
+    con.close()
+    assert nulls == 37
+
+
+def test_group_with_too_few_rows_gets_fewer_segments_with_a_warning(tmp_path):
+    data = grouped_blobs({"big": (3_000, 3, 0.0, 1.0), "two": (2, 1, 9.0, 1.0)})
+    write_table(tmp_path / "few.duckdb", "t", data)
+    with DuckDBEngine(str(tmp_path / "few.duckdb"), read_only=True) as engine, \
+            pytest.warns(UserWarning, match="group two: 2 distinct grid cell"):
+        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(k=3), within="grp")
+    groups = {g["name"]: g for g in model.within["groups"]}
+    assert groups["big"]["k"] == 3 and groups["two"]["k"] == 2 and groups["two"]["sizes"] == [1, 1]
+
+
+def test_k_auto_chooses_per_group(tmp_path):
+    # seed 20: scikit-learn's calinski_harabasz_score of KMeans on each group's scaled rows peaks at 3 and 5
+    data = grouped_blobs({"three": (3_000, 3, 0.0, 1.0), "five": (5_000, 5, 0.0, 1.0)}, seed=20)
+    write_table(tmp_path / "auto.duckdb", "t", data)
+    with DuckDBEngine(str(tmp_path / "auto.duckdb"), read_only=True) as engine:
+        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(k=0, k_candidates=tuple(range(1, 13))), within="grp")
+    # outside reference: the number of centres make_blobs generated in each group
+    assert {g["name"]: g["k"] for g in model.within["groups"]} == {"three": 3, "five": 5}
+    assert all(g["k_choice"]["k"] == g["k"] for g in model.within["groups"])
+
+
+def test_model_file_round_trips_and_show_lists_groups_with_null_named(within_db, tmp_path):
+    out = tmp_path / "m.json"
+    res = CliRunner().invoke(main, ["segment", str(within_db), "-t", "meters", "-c", "a,b,c", "--k", "4", "--within", "grp",
+                                    "-o", str(out), "-q"])
+    assert res.exit_code == 0, res.output
+    model = Model.read(out)
+    assert model.k == 0 and model.sizes == [] and len(model.within["groups"]) == 3
+    shown = CliRunner().invoke(main, ["show", str(out)])
+    assert "groups:" in shown.output and "== grp = NULL" in shown.output and "harbour" in shown.output
+    digest = json.loads(CliRunner().invoke(main, ["show", str(out), "--json"]).output)
+    assert [g["group"] for g in digest["groups"]] == ["dune", "harbour", "NULL"]
+    assert all(len(g["segments"]) == g["k"] == 4 for g in digest["groups"])
+    assert sum(s["size"] for g in digest["groups"] for s in g["segments"]) == 13_000
+
+
+def test_without_within_the_model_file_keeps_its_single_model_shape(within_db):
+    with DuckDBEngine(str(within_db), read_only=True) as engine:
+        model = segment(engine, Source.of_table("only_dune"), COLUMNS, Settings(k=4))
+    assert model.within == {} and model.k == 4 and len(model.sizes) == 4
