@@ -162,3 +162,25 @@ def test_without_within_the_model_file_keeps_its_single_model_shape(within_db):
     with DuckDBEngine(str(within_db), read_only=True) as engine:
         model = segment(engine, Source.of_table("only_dune"), COLUMNS, Settings(k=4))
     assert model.within == {} and model.k == 4 and len(model.sizes) == 4
+
+
+def test_scoring_macros_take_the_group_column_and_equal_the_labels_on_every_row(within_model, tmp_path):
+    from tillite import macros as M
+
+    db = tmp_path / "macros.duckdb"
+    write_table(db, "meters", grouped_blobs({**WITHIN_GROUPS, "marsh": (20, 2, 5.0, 1.0)}))
+    with DuckDBEngine(str(db)) as engine, warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the marsh group is unknown to the model: NULL both ways
+        label(engine, Source.of_table("meters"), within_model, "meter_segments")
+    M.install_into(db, M.scoring_macros(within_model, "water"))
+    con = duckdb.connect(str(db))
+    try:
+        # reference: the label view, computed by another statement form (the per-group join)
+        differ = con.execute(
+            "SELECT count(*) FROM meter_segments WHERE water_segment(grp, a, b, c) IS DISTINCT FROM segment "
+            "OR abs(water_distance(grp, a, b, c) - distance) > 1e-9 * (1 + distance)"
+        ).fetchone()[0]
+        nulls = con.execute("SELECT count(*) FROM meter_segments WHERE water_segment(grp, a, b, c) IS NULL").fetchone()[0]
+    finally:
+        con.close()
+    assert differ == 0 and nulls == 20

@@ -261,6 +261,25 @@ def scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
     return segment, distance
 
 
+def within_scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
+    """The scoring bodies of a `segment --within` model: a CASE on the group argument choosing that
+    group's own body (``scoring_bodies`` of the group's model); NULL for a group the model does not know."""
+    from .model import group_models
+    from .within_sql import group_literal
+
+    group = sqlgen.col(model.within["column"])
+    branches: list[tuple[exp.Expression, exp.Expression, exp.Expression]] = []
+    for entry, one in group_models(model):
+        value = entry["value"]
+        same = (exp.Is(this=group.copy(), expression=exp.Null()) if value is None
+                else exp.EQ(this=group.copy(), expression=group_literal(value, model.within["type"], "duckdb")))
+        segment, distance = scoring_bodies(one)
+        branches.append((same, segment, distance))
+    segment = exp.Case(ifs=[exp.If(this=c, true=s) for c, s, _ in branches])
+    distance = exp.Case(ifs=[exp.If(this=c.copy(), true=d) for c, _, d in branches])
+    return segment, distance
+
+
 def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
     """<name>_segment(x...) and <name>_distance(x...) for one model."""
     name = _check_model_name(name)
@@ -270,14 +289,18 @@ def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
             "which a scalar macro of the row's values does not reproduce; use `tillite label`, or segment with "
             "--keep-outliers for k-means/Ward"
         )
-    segment, distance = scoring_bodies(model)
-    params = identifiers(model.columns)
+    if model.within:  # segments within groups: the group column is the first argument
+        segment, distance = within_scoring_bodies(model)
+        params = identifiers([model.within["column"], *model.columns])
+    else:
+        segment, distance = scoring_bodies(model)
+        params = identifiers(model.columns)
     out = []
     for suffix, body in (("segment", segment), ("distance", distance)):
         macro = f"{name}_{suffix}"
         values = {"macro": identifier(macro), "params": params, "body": expression(body, pretty=True)}
         out.append(MacroDefinition(macro, "scalar", fill(template("scoring"), values), model=name))
-    if model.names:  # <name>_segment_name once segments are named (`tillite name`)
+    if model.names and not model.within:  # <name>_segment_name once segments are named (`tillite name`)
         out.append(segment_name_macro(model, name, segment))
     return out
 
