@@ -184,3 +184,41 @@ def test_scoring_macros_take_the_group_column_and_equal_the_labels_on_every_row(
     finally:
         con.close()
     assert differ == 0 and nulls == 20
+
+
+# ----------------------------------------------------------------------------- bad inputs
+
+
+@pytest.fixture(scope="module")
+def many_groups_db(tmp_path_factory):
+    """100,000 rows, each with its own value of ``id`` (100,000 groups) and a few of ``kind``."""
+    rng = np.random.default_rng(1)
+    path = tmp_path_factory.mktemp("many") / "many.duckdb"
+    n = 100_000
+    write_table(path, "t", {"id": np.arange(n), "a": rng.normal(size=n), "b": rng.normal(size=n), "c": rng.normal(size=n),
+                            "kind": np.arange(n) % 3})
+    return path
+
+
+@pytest.mark.parametrize("extra, needles", [
+    (["--within", "a"], ["--within", "a", "also a segmenting column"]),
+    (["--within", "nope"], ["--within", "nope", "not found", "columns there"]),
+    (["--within", "id"], ["--within", "id", "100,000", "at most 1,000"]),
+    (["--within", "kind", "--method", "density"], ["--within", "--method", "density"]),
+])
+def test_bad_within_gives_one_error_line(many_groups_db, extra, needles):
+    from test_bad_inputs import assert_one_error_line, run
+
+    k = [] if "density" in extra else ["--k", 3]
+    assert_one_error_line(run("segment", many_groups_db, "-t", "t", "-c", "a,b,c", *k, *extra, "-q"), *needles)
+
+
+def test_commands_without_within_support_refuse_such_a_model_in_one_line(within_db, tmp_path):
+    from test_bad_inputs import assert_one_error_line, run
+
+    out = tmp_path / "m.json"
+    assert run("segment", within_db, "-t", "meters", "-c", "a,b,c", "--k", 2, "--within", "grp", "-o", out, "-q").exit_code == 0
+    assert_one_error_line(run("report", within_db, "-t", "meters", "--model", out, "-o", tmp_path / "r.html", "-q"),
+                          "segment --within", "tillite report")
+    assert_one_error_line(run("name", out, 0, "steady"), "segment --within", "tillite name")
+    assert_one_error_line(run("sql", "-t", "meters", "--stage", "refine", "--model", out), "tillite sql")

@@ -398,6 +398,7 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
         return [sqlgen.cells_statement(src, cols, grid, dialect)]
     if model is None:
         raise click.UsageError(f"--stage {stage} needs --model")
+    model.refuse_within(f"tillite sql --stage {stage}")
     if stage == "refine":
         return [sqlgen.refine_statement(src, cols, model.assignment(), dialect, cell_map=model.cell_map_spec())]
     return [sqlgen.label_select(src, cols, source_columns, model.assignment(), dialect, cell_map=model.cell_map_spec())]

@@ -83,6 +83,12 @@ class Model:
             ids=tuple(self.segment_ids()),
         )
 
+    def refuse_within(self, what: str) -> None:
+        """One clear error where a command does not take `segment --within` models (yet)."""
+        if self.within:
+            raise ModelError(f"this model holds segments within each {self.within['column']} (segment --within); "
+                             f"{what} does not take such models yet")
+
     def cell_map_spec(self) -> CellMap | None:
         """Cells whose rows are labelled through their cell (outlier group, density segments)."""
         if not self.cell_map or not self.cell_map.get("keys"):

@@ -32,6 +32,7 @@ def read_names_file(path: str | Path) -> dict[str, Any]:
 
 def apply_names(model: Model, given: dict[Any, Any]) -> Model:
     """Set names on a model (in place): keys are segment ids, values text; an empty text removes a name."""
+    model.refuse_within("tillite name")
     ids = model.segment_ids()
     names = dict(model.names)
     for key, value in given.items():

@@ -557,6 +557,7 @@ def report_of_model(
 
     from .pipeline import check_columns
 
+    model.refuse_within("tillite report")
     by = list(dict.fromkeys(by))  # a column named twice is one breakdown
     present = check_columns(engine, source, list(model.columns))
     missing = [c for c in by if c not in present]
