@@ -308,13 +308,13 @@ def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within
     for p in range(1, settings.refine_passes + 1):
         if all(r.done for r in runs):
             break
-        assign = group_assignment(within, group_type, runs, [r.stats.centroids if r.done else c for r, c in zip(runs, centroids)])
+        moving = [g for g, r in enumerate(runs) if not r.done]  # the statement reads only their rows
+        assign = group_assignment(within, group_type, [runs[g] for g in moving], [centroids[g] for g in moving])
         results, seconds = run_refine_pass(engine, source, columns, assign)
         timings[f"refine_{p}"] = seconds
         before_all = after_all = 0.0
-        for g, (r, (assigned, updated)) in enumerate(zip(runs, results)):
-            if r.done:
-                continue
+        for g, (assigned, updated) in zip(moving, results):
+            r = runs[g]
             before, after = float(assigned.sse.sum()), float(updated.sse.sum())
             before_all, after_all = before_all + before, after_all + after
             gain = (before - after) / before if before > 0 else 0.0
@@ -327,9 +327,9 @@ def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within
                 r.stats, r.done = assigned, True
             else:
                 r.stats, centroids[g] = updated, updated.centroids
-        passes.append({"pass": p, "sse_assigned": before_all, "sse": after_all, "seconds": seconds,
-                       "groups": sum(1 for r in runs if r.passes and r.passes[-1]["pass"] == p)})
-        progress("refine", f"pass {p}: SSE {before_all:.6g} -> {after_all:.6g} over the groups still moving, {seconds:.2f} s")
+        passes.append({"pass": p, "sse_assigned": before_all, "sse": after_all, "seconds": seconds, "groups": len(moving)})
+        progress("refine", f"pass {p}: {len(moving):,} group(s) still moving, their SSE {before_all:.6g} -> {after_all:.6g}, "
+                           f"{seconds:.2f} s")
     return passes, timings
 
 

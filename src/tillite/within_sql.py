@@ -107,8 +107,11 @@ def _same_group(column: str) -> exp.Expression:
 
 def assignment_layers(
     source: Source, columns: Sequence[str], assign: GroupAssignment, dialect: str, keep_source: bool, fence: bool | None = None,
+    only_listed: bool = False,
 ) -> tuple[exp.Select, str, str, str, list[str]]:
     """Each row's group position and segment within its group (NULL for unusable rows and unknown groups).
+
+    ``only_listed``: rows of groups not in ``assign`` are left out (an inner join) rather than kept with NULL.
 
     Returns (select, group position column, segment column, the segment's score
     column, centred value columns).  The squared distance is score + sum_j (f_j v_j)^2.
@@ -126,7 +129,7 @@ def assignment_layers(
                    *[exp.alias_(e, n, quoted=True) for e, n in zip(centred, v)],
                    *[col(n, PARAMS_ALIAS) for n in carried])
         .from_(_aliased_source(source))
-        .join(params_relation(assign, dialect), on=_same_group(assign.column), join_type="LEFT")
+        .join(params_relation(assign, dialect), on=_same_group(assign.column), join_type="INNER" if only_listed else "LEFT")
     )
     score = [internal(f"s{i}") for i in range(k)]
 
@@ -153,13 +156,14 @@ def _squared_norm(v: Sequence[str], d: int) -> exp.Expression:
 
 
 def refine_statement(source: Source, columns: Sequence[str], assign: GroupAssignment, dialect: str) -> exp.Select:
-    """One refine pass over every group: GROUP BY (group position, segment).
+    """One refine pass over the groups in ``assign`` (rows of other groups are left out): GROUP BY (group
+    position, segment).
 
     Returns gid, segment, n, ls0.. (sums of v = x - center_g) and dist (summed
     squared distances to the centroid used), as ``sqlgen.refine_statement`` does
     for one model.  Groups with segment NULL count skipped rows.
     """
-    inner, gid, seg, best, v = assignment_layers(source, columns, assign, dialect, keep_source=False)
+    inner, gid, seg, best, v = assignment_layers(source, columns, assign, dialect, keep_source=False, only_listed=True)
     aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
     aggs += [exp.alias_(sqlgen.float_sum(col(n), dialect), f"ls{j}", quoted=True) for j, n in enumerate(v)]
     dist = exp.Add(this=col(best), expression=sqlgen.paren(_squared_norm(v, len(columns))))
