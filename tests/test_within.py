@@ -222,3 +222,21 @@ def test_commands_without_within_support_refuse_such_a_model_in_one_line(within_
                           "segment --within", "tillite report")
     assert_one_error_line(run("name", out, 0, "steady"), "segment --within", "tillite name")
     assert_one_error_line(run("sql", "-t", "meters", "--stage", "refine", "--model", out), "tillite sql")
+
+
+def test_demo_prints_segments_within_each_district(tmp_path):
+    from tillite.demo import DISTRICTS
+
+    db = tmp_path / "demo.duckdb"
+    res = CliRunner().invoke(main, ["demo", "--db", str(db), "--rows", "5000", "--days", "10", "--out", str(tmp_path / "m.json"),
+                                    "--report", str(tmp_path / "r.html"), "-q"])
+    assert res.exit_code == 0, res.output
+    block = [ln.strip() for ln in res.stdout.split("--within district --k 3):")[1].split("\n\n")[0].strip().splitlines()]
+    assert sorted(ln.split("  ")[0].strip() for ln in block) == sorted(DISTRICTS)
+    con = duckdb.connect(str(db), read_only=True)
+    per_district = dict(con.execute("SELECT district, count(*) FROM meter_days GROUP BY 1").fetchall())
+    con.close()
+    # reference: DuckDB's own count of each district's rows
+    for ln in block:
+        name = ln.split("  ")[0].strip()
+        assert f"{per_district[name]:,} rows" in ln

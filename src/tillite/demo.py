@@ -53,7 +53,7 @@ import operator
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Sequence
+from typing import Any, Sequence
 
 import duckdb
 from sqlglot import exp
@@ -615,3 +615,32 @@ def write_demo_parquet(
     finally:
         con.close()
     return sorted(directory.glob("day=*/*.parquet"))
+
+
+#: The demo's example of segments within groups: each district segmented on its own.
+WITHIN_EXAMPLE_K = 3
+
+
+def within_district_example(engine: Any, source: Any, k: int = WITHIN_EXAMPLE_K, progress: Any = None) -> str:
+    """The printed example of `segment --within district`: k segments per district, from one scan per pass.
+
+    Returns the command it stands for and one line per district (rows, segment shares, and the
+    largest segment in words).
+    """
+    from .pipeline import Settings, segment
+
+    model = segment(engine, source, list(DEMO_COLUMNS), Settings(k=k), progress=progress or (lambda stage, message: None),
+                    within="district")
+    from .model import group_models
+
+    lines = [
+        f"Segments within each district (tillite segment tillite-demo.duckdb --table meter_days "
+        f"--columns {','.join(DEMO_COLUMNS)} --within district --k {k}):",
+    ]
+    groups = group_models(model)
+    width = max(len(g["name"]) for g, _ in groups)
+    for g, one in groups:
+        usable = max(sum(g["sizes"]), 1)
+        shares = ", ".join(f"{100.0 * s / usable:.0f}%" for s in g["sizes"])
+        lines.append(f"  {g['name'].ljust(width)}  {g['rows']:>9,} rows  segments {shares}; largest: {one.segment_description(0)}")
+    return "\n".join(lines)
