@@ -175,3 +175,20 @@ def every_third_cell(duck: Engine, source: Source, model: Model) -> sqlgen.CellM
     grid = sqlgen.Grid.from_dict(model.grid)
     keys = run_cell_pass(duck, source, model.columns, grid).keys[::3]
     return sqlgen.CellMap(grid, tuple(map(tuple, keys.tolist())), tuple([-1] * len(keys)))
+
+
+def assert_same_within_model(got: Model, ref: Model) -> None:
+    """`segment --within kind`: the same groups (NULL included), sizes, centroids and SSE per group."""
+    assert (got.rows, got.skipped) == (ref.rows, ref.skipped)
+    assert [g["name"] for g in got.within["groups"]] == [g["name"] for g in ref.within["groups"]]
+    for g, r in zip(got.within["groups"], ref.within["groups"]):
+        assert (g["rows"], g["skipped"], g["sizes"]) == (r["rows"], r["skipped"], r["sizes"]), g["name"]
+        np.testing.assert_allclose(g["centroids"], r["centroids"], rtol=1e-9, atol=1e-12)
+        np.testing.assert_allclose(g["sse"], r["sse"], rtol=1e-9, atol=1e-12)
+
+
+def assert_same_within_labels(got: dict[str, np.ndarray], ref: dict[str, np.ndarray], rows: Rows) -> None:
+    """Labels of a --within model row for row; the group column comes back as the source's ``kind``."""
+    assert_same_labels(got, ref, rows)
+    assert [None if v is None else str(v) for v in np.asarray(got["kind"], dtype=object)] == \
+        [None if v is None else str(v) for v in np.asarray(ref["kind"], dtype=object)]

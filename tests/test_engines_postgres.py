@@ -303,3 +303,24 @@ def test_refine_pass_through_an_inline_cell_map_equals_duckdb(engines):
         # reference: DuckDB running the same refine tree with the map inline
         assert_same_refine(run_refine_pass(pg, SRC, COLUMNS, model.assignment(), held),
                            run_refine_pass(duck, SRC, COLUMNS, model.assignment(), cell_map))
+
+
+def test_segment_within_and_its_labels_equal_duckdb(server, loaded, rows):
+    from engine_checks import assert_same_within_labels, assert_same_within_model
+
+    pg = PostgresEngine(server.conninfo)
+    duck = DuckDBEngine(str(loaded))
+    try:
+        with pytest.warns(UserWarning, match="group NULL"):  # one row: every column constant there, one segment
+            got = segment(pg, SRC, COLUMNS, Settings(**{**SETTINGS, "k": 2}), within="kind")
+        with pytest.warns(UserWarning, match="group NULL"):
+            ref = segment(duck, SRC, COLUMNS, Settings(**{**SETTINGS, "k": 2}), within="kind")
+        # reference: DuckDB running the same trees (one cell pass keyed by (kind, cell), joined refine passes)
+        assert_same_within_model(got, ref)
+        assert [g["name"] for g in ref.within["groups"]][-1] == "NULL"
+        label(pg, SRC, ref, "point_groups")
+        label(duck, SRC, ref, "point_groups")
+        assert_same_within_labels(ordered_rows(pg, "point_groups"), ordered_rows(duck, "point_groups"), rows)
+    finally:
+        pg.close()
+        duck.close()

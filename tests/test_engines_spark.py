@@ -305,3 +305,22 @@ def test_refine_pass_through_a_cell_map_held_as_a_temporary_view_equals_duckdb(s
         for src in sources(data):
             assert_same_refine(run_refine_pass(sparks, src, COLUMNS, model.assignment(), held), ref)
     assert all(t.name != held.table for t in sparks.spark.catalog.listTables())
+
+
+def test_segment_within_and_its_labels_equal_duckdb(sparks, duck, data, rows):
+    from engine_checks import assert_same_within_labels, assert_same_within_model
+
+    from tillite.within import label_within_select
+
+    settings = dict(SETTINGS, k=2)
+    with pytest.warns(UserWarning, match="group NULL"):  # one row: every column constant there, one segment
+        ref = segment(duck, DUCK_SRC, COLUMNS, Settings(**settings), within="kind")
+    select = label_within_select(duck, DUCK_SRC, ref, ["id", *COLUMNS, "kind"], materialize=False)
+    want = duck.query(exp.select(exp.Star()).from_(sqlgen.subquery(select, "l")).order_by(sqlgen.col("id")))
+    for src in sources(data):
+        with pytest.warns(UserWarning, match="group NULL"):
+            got = segment(sparks, src, COLUMNS, Settings(**settings), within="kind")
+        # reference: DuckDB running the same trees
+        assert_same_within_model(got, ref)
+    label(sparks, Source.of_table(REGISTERED), ref, "point_groups")
+    assert_same_within_labels(ordered_rows(sparks, "point_groups"), want, rows)
