@@ -240,3 +240,10 @@ def test_demo_prints_segments_within_each_district(tmp_path):
     for ln in block:
         name = ln.split("  ")[0].strip()
         assert f"{per_district[name]:,} rows" in ln
+
+
+def test_store_build_refuses_within_in_one_line(within_db):
+    from test_bad_inputs import assert_one_error_line, run
+
+    assert_one_error_line(run("store", "build", within_db, "-t", "meters", "-c", "a,b,c", "--partition-by", "grp", "--k", 2,
+                              "--within", "grp", "-q"), "--within", "summary stores")

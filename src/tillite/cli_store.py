@@ -60,11 +60,18 @@ def store_group() -> None:
 @click.option("--out", "-o", help="Also write the model file here.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
+@click.option("--within", default=None, metavar="COLUMN",
+              help="Not yet for stores: refused in one line (use `tillite segment --within`).")
 def build_command(source, table, columns, partition_by, store_name, database, k, scaling, weights, cell_budget, refine_passes,
-                  restarts, seed, regrid, many_partitions, out, quiet, as_json) -> None:
+                  restarts, seed, regrid, many_partitions, out, quiet, as_json, within) -> None:
     """Build a summary store for SOURCE: frozen grid, per-partition cells, first segments."""
     cli = _cli()
     with cli.user_errors(options={"replace": "--regrid"}):
+        if within is not None:
+            from .errors import ParameterError
+
+            raise ParameterError(f"{{within}} {within}: summary stores do not keep segments within groups yet; "
+                                 "use `tillite segment --within` (a model file)", "within")
         settings = store_api.Settings(
             k=k, scaling=scaling, weights=cli._parse_weights(weights), cell_budget=cell_budget,
             refine_passes=refine_passes, n_init=restarts, seed=seed,
