@@ -29,7 +29,7 @@ COLUMNS = ["a", "b", "c"]
 #: A small cell budget, so the cells do not settle the segments and refine passes run; passes until
 #: Lloyd's fixed point, so a run on a group alone and the --within run end at the same centroids
 #: (two of the harbour blobs touch: three passes leave both runs short of it, at different places).
-SETTINGS = dict(k=4, cell_budget=400, refine_passes=30, tolerance=1e-12)
+SETTINGS = dict(k=4, cell_budget=1_000, refine_passes=30, tolerance=1e-12)
 ALONE = {"harbour": "only_harbour", "dune": "only_dune", "NULL": "only_null"}
 
 
@@ -247,3 +247,25 @@ def test_store_build_refuses_within_in_one_line(within_db):
 
     assert_one_error_line(run("store", "build", within_db, "-t", "meters", "-c", "a,b,c", "--partition-by", "grp", "--k", 2,
                               "--within", "grp", "-q"), "--within", "summary stores")
+
+
+def test_group_with_a_tiny_spread_gets_a_grid_of_its_own_and_equals_a_run_on_it_alone(tmp_path):
+    # the "dot" group spreads over 1e-4 of the others' range: on the shared grid it fills a cell or two
+    data = grouped_blobs({"wide": (6_000, 3, 0.0, 1.0), "dot": (3_000, 3, 2.0, 1e-4)}, seed=20)
+    db = write_table(tmp_path / "dot.duckdb", "t", data)
+    con = duckdb.connect(str(db))
+    con.execute("CREATE TABLE only_dot AS SELECT * FROM t WHERE grp = 'dot'")
+    con.close()
+    settings = dict(k=3, cell_budget=2_000, refine_passes=30, tolerance=1e-12)
+    seen = []
+    with DuckDBEngine(str(db), read_only=True) as engine:
+        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(**settings), within="grp",
+                        progress=lambda stage, message: seen.append(message))
+        alone = segment(engine, Source.of_table("only_dot"), COLUMNS, Settings(**settings))
+    assert any("group dot" in m and "a grid of its own" in m for m in seen)
+    dot = {g["name"]: g for g in model.within["groups"]}["dot"]
+    assert dot["k"] == 3 and not dot["notes"]
+    # outside reference: tillite on a table holding only the dot group (SQL WHERE in DuckDB)
+    assert sorted(dot["sizes"]) == sorted(alone.sizes)
+    np.testing.assert_allclose(by_first_column(dot["centroids"]), by_first_column(alone.centroids), rtol=1e-6, atol=1e-9)
+    assert dot["sse"] == pytest.approx(alone.sse, rel=1e-6)

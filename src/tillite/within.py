@@ -140,6 +140,44 @@ def grouped_grid(gp: GroupedProfile, settings: Settings, weights: np.ndarray) ->
 # ----------------------------------------------------------------------------- per group
 
 
+#: A group's cells are too coarse for its k when it fills fewer than this many cells per segment (and has more
+#: rows than cells): it gets a cell pass of its own on a grid from its own sampled rows ...
+COARSE_CELLS_PER_SEGMENT = 5
+#: ... aiming at its share of the cell budget, and at least this many cells per segment.
+OWN_GRID_CELLS_PER_SEGMENT = 20
+
+
+def needs_own_grid(cells: CF, k: int) -> bool:
+    filled = int((cells.n > 0).sum())
+    return filled < COARSE_CELLS_PER_SEGMENT * k and cells.n.sum() > filled
+
+
+def own_grid_cells(engine: Engine, source: Source, columns: Sequence[str], within: str, group_type: str, value: str | None,
+                   gp: GroupedProfile, rows: int, settings: Settings, weights: np.ndarray, groups: int
+                   ) -> tuple[Grid, CF, np.ndarray, int] | None:
+    """A group that a shared grid bins too coarsely (its spread far below the table's): one more cell pass, over
+    that group's rows only, on a grid from its own sampled rows (as a run on the group alone would make), aiming
+    at its share of the cell budget and at least OWN_GRID_CELLS_PER_SEGMENT cells per segment.  None when the
+    sample holds too few of its rows to set a grid."""
+    code = gp.values.index(value) if value in gp.values else -1
+    sample = gp.profile.sample[gp.groups == code]
+    if len(sample) < 2:
+        return None
+    center, sd = robust_mean_sd(sample)
+    flat = np.ptp(sample, axis=0) == 0
+    scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(len(columns))
+    prof = Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=0.0)
+    k = max(settings.k_candidates or (settings.k,))
+    budget = max(settings.cell_budget // max(groups, 1), OWN_GRID_CELLS_PER_SEGMENT * k)
+    grid = grid_for_profile(prof, replace(settings, cell_budget=budget), weights)
+    where = within_sql.group_predicate(within, value, group_type, engine.dialect)
+    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.dialect, where=where))
+    from .pipeline import cells_from_result
+
+    cells, keys, skipped = cells_from_result(got, grid, len(columns))
+    return grid, cells, keys, skipped
+
+
 @dataclass
 class GroupRun:
     value: str | None
@@ -156,6 +194,7 @@ class GroupRun:
     notes: list[str]
     done: bool = False
     passes: list[dict] | None = None
+    grid: Grid | None = None  # the grid its cells are on (the shared one, or its own)
 
     @property
     def name(self) -> str:
@@ -301,7 +340,7 @@ def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within
         elif r.k == 1 and r.std.weights.sum() == 0:
             r.done = True
         elif (r.stats.n > 0).all():
-            boxes = CellBoxes.of_grid(grid, r.keys, r.std, r.cell_labels)
+            boxes = CellBoxes.of_grid(r.grid or grid, r.keys, r.std, r.cell_labels)
             r.done = boxes is not None and boxes.all_settled(r.stats.centroids, r.std.weights)
     if all(r.done for r in runs):
         progress("refine", "no pass needed: every group's cells lie wholly nearest their own segments' centroids")
@@ -368,12 +407,23 @@ def segment_within(engine: Engine, source: Source, columns: Sequence[str], withi
 
     t0 = time.perf_counter()
     runs = []
+    k_most = max(settings.k_candidates or (settings.k,))
     for value, cells, keys, group_skipped in parts:
         if cells.m == 0:  # every row of the group skipped: no model for it, its rows get NULL
             warnings.warn(f"group {group_name(value)}: all {group_skipped:,} rows have a NULL, NaN or infinite value; "
                           "no segments (labelled NULL)", UserWarning, stacklevel=2)
             continue
-        runs.append(run_group(value, cells, keys, group_skipped, grid, columns, settings, weights, source.label, progress))
+        own = None
+        if needs_own_grid(cells, k_most):
+            own = own_grid_cells(engine, source, columns, within, group_type, value, gp, int(round(cells.n.sum())) + group_skipped,
+                                 settings, weights, len(parts))
+            if own is not None:
+                progress("cells", f"group {group_name(value)}: {int((cells.n > 0).sum()):,} cells on the shared grid; "
+                                  f"{int((own[1].n > 0).sum()):,} on a grid of its own (one more statement, its rows only)")
+        group_grid, cells, keys = (own[0], own[1], own[2]) if own is not None else (grid, cells, keys)
+        run = run_group(value, cells, keys, group_skipped, group_grid, columns, settings, weights, source.label, progress)
+        run.grid = group_grid
+        runs.append(run)
     t_second = time.perf_counter() - t0
     progress("second phase", f"{len(runs):,} group(s), {sum(r.k for r in runs):,} segments in all, {t_second:.2f} s")
 

@@ -94,6 +94,13 @@ def params_relation(assign: GroupAssignment, dialect: str) -> exp.Expression:
     return exp.Values(expressions=rows, alias=alias)
 
 
+def group_predicate(column: str, value: str | None, group_type: str, dialect: str) -> exp.Expression:
+    """Rows of one group: column = CAST('text' AS type), or column IS NULL (comparisons the engine can skip blocks on)."""
+    if value is None:
+        return exp.Is(this=col(column), expression=exp.Null())
+    return exp.EQ(this=col(column), expression=group_literal(value, group_type, dialect))
+
+
 def _aliased_source(source: Source) -> exp.Expression:
     rel = source.relation()
     rel.set("alias", exp.TableAlias(this=exp.to_identifier(SOURCE_ALIAS, quoted=True)))
