@@ -61,7 +61,7 @@ def main() -> None:
                 t0 = time.perf_counter()
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore")
-                    model = segment(engine, src, columns, Settings(k=args.k), within="route" if kind == "within" else None)
+                    model = segment(engine, src, columns, Settings(k=args.k, within="route" if kind == "within" else None))
                 times[kind].append(time.perf_counter() - t0)
                 stages[kind] = model.timings
     g, w = statistics.median(times["global"]), statistics.median(times["within"])

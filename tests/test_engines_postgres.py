@@ -312,9 +312,9 @@ def test_segment_within_and_its_labels_equal_duckdb(server, loaded, rows):
     duck = DuckDBEngine(str(loaded))
     try:
         with pytest.warns(UserWarning, match="group NULL"):  # one row: every column constant there, one segment
-            got = segment(pg, SRC, COLUMNS, Settings(**{**SETTINGS, "k": 2}), within="kind")
+            got = segment(pg, SRC, COLUMNS, Settings(**{**SETTINGS, "k": 2}, within="kind"))
         with pytest.warns(UserWarning, match="group NULL"):
-            ref = segment(duck, SRC, COLUMNS, Settings(**{**SETTINGS, "k": 2}), within="kind")
+            ref = segment(duck, SRC, COLUMNS, Settings(**{**SETTINGS, "k": 2}, within="kind"))
         # reference: DuckDB running the same trees (one cell pass keyed by (kind, cell), joined refine passes)
         assert_same_within_model(got, ref)
         assert [g["name"] for g in ref.within["groups"]][-1] == "NULL"

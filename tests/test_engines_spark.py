@@ -314,12 +314,12 @@ def test_segment_within_and_its_labels_equal_duckdb(sparks, duck, data, rows):
 
     settings = dict(SETTINGS, k=2)
     with pytest.warns(UserWarning, match="group NULL"):  # one row: every column constant there, one segment
-        ref = segment(duck, DUCK_SRC, COLUMNS, Settings(**settings), within="kind")
+        ref = segment(duck, DUCK_SRC, COLUMNS, Settings(**settings, within="kind"))
     select = label_within_select(duck, DUCK_SRC, ref, ["id", *COLUMNS, "kind"], materialize=False)
     want = duck.query(exp.select(exp.Star()).from_(sqlgen.subquery(select, "l")).order_by(sqlgen.col("id")))
     for src in sources(data):
         with pytest.warns(UserWarning, match="group NULL"):
-            got = segment(sparks, src, COLUMNS, Settings(**settings), within="kind")
+            got = segment(sparks, src, COLUMNS, Settings(**settings, within="kind"))
         # reference: DuckDB running the same trees
         assert_same_within_model(got, ref)
     label(sparks, Source.of_table(REGISTERED), ref, "point_groups")

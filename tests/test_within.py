@@ -50,7 +50,7 @@ def by_first_column(centroids) -> np.ndarray:
 @pytest.fixture(scope="module")
 def within_model(within_db):
     with DuckDBEngine(str(within_db), read_only=True) as engine:
-        return segment(engine, Source.of_table("meters"), COLUMNS, Settings(**SETTINGS), within="grp")
+        return segment(engine, Source.of_table("meters"), COLUMNS, Settings(**SETTINGS, within="grp"))
 
 
 def test_each_group_equals_a_run_on_that_group_alone(within_db, within_model):
@@ -88,7 +88,7 @@ def test_cell_pass_is_one_statement_and_each_refine_pass_one_statement(within_db
             return query(statement)
 
         engine.query = recording
-        model = segment(engine, Source.of_table("meters"), COLUMNS, Settings(**SETTINGS), within="grp")
+        model = segment(engine, Source.of_table("meters"), COLUMNS, Settings(**SETTINGS, within="grp"))
     cell_passes = [s for s in seen if '"k0"' in s and "GROUP BY" in s]
     refine = [s for s in seen if '"gid"' in s and "GROUP BY" in s]
     assert len(cell_passes) == 1 and '"grp"' in cell_passes[0]
@@ -127,7 +127,7 @@ def test_group_with_too_few_rows_gets_fewer_segments_with_a_warning(tmp_path):
     write_table(tmp_path / "few.duckdb", "t", data)
     with DuckDBEngine(str(tmp_path / "few.duckdb"), read_only=True) as engine, \
             pytest.warns(UserWarning, match="group two: 2 distinct grid cell"):
-        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(k=3), within="grp")
+        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(k=3, within="grp"))
     groups = {g["name"]: g for g in model.within["groups"]}
     assert groups["big"]["k"] == 3 and groups["two"]["k"] == 2 and groups["two"]["sizes"] == [1, 1]
 
@@ -137,7 +137,7 @@ def test_k_auto_chooses_per_group(tmp_path):
     data = grouped_blobs({"three": (3_000, 3, 0.0, 1.0), "five": (5_000, 5, 0.0, 1.0)}, seed=20)
     write_table(tmp_path / "auto.duckdb", "t", data)
     with DuckDBEngine(str(tmp_path / "auto.duckdb"), read_only=True) as engine:
-        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(k=0, k_candidates=tuple(range(1, 13))), within="grp")
+        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(k=0, k_candidates=tuple(range(1, 13)), within="grp"))
     # outside reference: the number of centres make_blobs generated in each group
     assert {g["name"]: g["k"] for g in model.within["groups"]} == {"three": 3, "five": 5}
     assert all(g["k_choice"]["k"] == g["k"] for g in model.within["groups"])
@@ -259,7 +259,7 @@ def test_group_with_a_tiny_spread_gets_a_grid_of_its_own_and_equals_a_run_on_it_
     settings = dict(k=3, cell_budget=2_000, refine_passes=30, tolerance=1e-12)
     seen = []
     with DuckDBEngine(str(db), read_only=True) as engine:
-        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(**settings), within="grp",
+        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(**settings, within="grp"),
                         progress=lambda stage, message: seen.append(message))
         alone = segment(engine, Source.of_table("only_dot"), COLUMNS, Settings(**settings))
     assert any("group dot" in m and "a grid of its own" in m for m in seen)

@@ -209,6 +209,9 @@ def _settings_options(f):
         click.option("--radius", type=float, default=None, help="density: joining distance for --adjacency distance."),
         click.option("--noise", type=click.Choice(["attach", "drop"]), default="attach", show_default=True,
                      help="density: sparse cells join the nearest segment, or stay noise (segment -1)."),
+        click.option("--within", default=None, metavar="COLUMN",
+                     help="Segment each group of this column separately (k per group; NULL is a group of its own), "
+                          "all groups from the same scans; at most 1,000 groups."),
     ]
     for o in reversed(opts):
         f = o(f)
@@ -217,7 +220,7 @@ def _settings_options(f):
 
 def _settings(k, method, k_rule, scaling, weights, cell_budget, width, refine_passes, tolerance, restarts, seed, sample_rows,
               tree_budget, threshold, branching, leaf_capacity, criterion, keep_outliers, min_count, adjacency, radius,
-              noise) -> Settings:
+              noise, within=None) -> Settings:
     k_value, candidates = _parse_k(k)
     if method != "density" and k is None:
         raise click.UsageError("give --k (a number, 'auto' or a range like 2..12)")
@@ -226,7 +229,7 @@ def _settings(k, method, k_rule, scaling, weights, cell_budget, width, refine_pa
         refine_passes=refine_passes, tolerance=tolerance, n_init=restarts, seed=seed, sample_rows=sample_rows,
         method=method, k_candidates=candidates, k_rule=k_rule, tree_budget=tree_budget, threshold=threshold,
         branching=branching, leaf_capacity=leaf_capacity, criterion=criterion, keep_outliers=keep_outliers,
-        min_count=min_count, adjacency=adjacency, radius=radius, noise=noise,
+        min_count=min_count, adjacency=adjacency, radius=radius, noise=noise, within=within,
     )
 
 
@@ -239,10 +242,7 @@ def _settings(k, method, k_rule, scaling, weights, cell_budget, width, refine_pa
               "e.g. meter_days.model.json, in the current folder].")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
-@click.option("--within", default=None, metavar="COLUMN",
-              help="Segment each group of this column separately (k per group; NULL is a group of its own), "
-                   "all groups from the same scans; at most 1,000 groups.")
-def segment_command(source, table, columns, out, quiet, as_json, within, **kw) -> None:
+def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
     """Segment SOURCE's rows on the chosen columns and write a model file.
 
     SOURCE is a DuckDB database file (with --table) or a Parquet/CSV path or glob.
@@ -255,7 +255,7 @@ def segment_command(source, table, columns, out, quiet, as_json, within, **kw) -
         settings = _settings(**kw)
         out = out or default_model_path(source, table)
         with _open(source, table) as (engine, src):
-            model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet), within=within)
+            model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet))
         note = replaced_model_note(out, model)
         model.write(out)
         if note:

@@ -67,14 +67,9 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
     """Build a summary store for SOURCE: frozen grid, per-partition cells, first segments."""
     cli = _cli()
     with cli.user_errors(options={"replace": "--regrid"}):
-        if within is not None:
-            from .errors import ParameterError
-
-            raise ParameterError(f"{{within}} {within}: summary stores do not keep segments within groups yet; "
-                                 "use `tillite segment --within` (a model file)", "within")
         settings = store_api.Settings(
             k=k, scaling=scaling, weights=cli._parse_weights(weights), cell_budget=cell_budget,
-            refine_passes=refine_passes, n_init=restarts, seed=seed,
+            refine_passes=refine_passes, n_init=restarts, seed=seed, within=within,
         )
         if is_file_source(source) and not database:
             raise click.UsageError("a store over files needs --db, the DuckDB file that keeps it")

@@ -629,8 +629,8 @@ def within_district_example(engine: Any, source: Any, k: int = WITHIN_EXAMPLE_K,
     """
     from .pipeline import Settings, segment
 
-    model = segment(engine, source, list(DEMO_COLUMNS), Settings(k=k), progress=progress or (lambda stage, message: None),
-                    within="district")
+    model = segment(engine, source, list(DEMO_COLUMNS), Settings(k=k, within="district"),
+                    progress=progress or (lambda stage, message: None))
     from .model import group_models
 
     lines = [

@@ -81,6 +81,7 @@ class Settings:
     adjacency: str = "face"  # density: "face" (grid neighbours) or "distance"
     radius: float | None = None  # density: joining distance with adjacency="distance"
     noise: str = "attach"  # density: sparse cells "attach" to the nearest segment, or stay noise ("drop")
+    within: str | None = None  # segment each group of this column separately (within.py); None: one segmentation
 
     def column_weights(self, columns: Sequence[str]) -> np.ndarray:
         """The multiplier of each column (1 unless --weights says otherwise)."""
@@ -935,16 +936,15 @@ def segment(
     columns: Sequence[str],
     settings: Settings,
     progress: ProgressFn = _quiet,
-    within: str | None = None,
 ) -> Model:
     """Segment the source's rows on the columns; returns the model (nothing is written).
 
-    ``within``: a column whose groups are segmented separately (``within.segment_within``).
+    ``settings.within``: a column whose groups are segmented separately (``within.segment_within``).
     """
-    if within is not None:
+    if settings.within is not None:
         from .within import segment_within
 
-        return segment_within(engine, source, columns, within, settings, progress)
+        return segment_within(engine, source, columns, settings, progress)
     columns = list(columns)
     settings.check(columns)
     t_start = time.perf_counter()

@@ -668,6 +668,9 @@ def build(
     require_transactions(engine)
     columns = list(columns)
     settings.check(columns)
+    if settings.within is not None:
+        raise ParameterError(f"{{within}} {settings.within}: summary stores do not keep segments within groups yet; "
+                             "use `tillite segment --within` (a model file)", "within")
     name = store or default_store_name(source)
     if not partition.files and not partition.columns:
         raise ParameterError("give the partition column(s) ({partition}) for a table source", "partition")

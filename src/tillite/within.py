@@ -248,7 +248,7 @@ def standardise_group(cells_grid: CF, grid: Grid, columns: Sequence[str], settin
 
 def group_settings(settings: Settings, filled: int, name: str, notes: list[str]) -> tuple[Settings, int]:
     """The settings of one group's second phase: k (or the k candidates) cut to what its cells allow."""
-    base = replace(settings, tree_budget=0, keep_outliers=True)  # no outlier group: every row is labelled by its centroid
+    base = replace(settings, tree_budget=0, keep_outliers=True, within=None)  # no outlier group: every row is labelled by its centroid
     if settings.k_candidates:
         usable = tuple(c for c in settings.k_candidates if c < filled or c == 1)
         return replace(base, k_candidates=usable), max(usable)
@@ -375,10 +375,11 @@ def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within
 # ----------------------------------------------------------------------------- segment
 
 
-def segment_within(engine: Engine, source: Source, columns: Sequence[str], within: str, settings: Settings,
+def segment_within(engine: Engine, source: Source, columns: Sequence[str], settings: Settings,
                    progress: ProgressFn = _quiet) -> Model:
-    """Segment each group of ``within`` separately, every group from one cell pass and one statement per refine pass."""
-    columns = list(columns)
+    """Segment each group of ``settings.within`` separately, every group from one cell pass and one statement per
+    refine pass."""
+    columns, within = list(columns), settings.within
     settings.check(columns)
     t_start = time.perf_counter()
     group_type = check_within(engine, source, columns, within, settings)
