@@ -269,3 +269,32 @@ def test_group_with_a_tiny_spread_gets_a_grid_of_its_own_and_equals_a_run_on_it_
     assert sorted(dot["sizes"]) == sorted(alone.sizes)
     np.testing.assert_allclose(by_first_column(dot["centroids"]), by_first_column(alone.centroids), rtol=1e-6, atol=1e-9)
     assert dot["sse"] == pytest.approx(alone.sse, rel=1e-6)
+
+
+def test_same_data_and_options_give_the_same_within_model(within_db):
+    def body(model):
+        d = model.to_dict()
+        d.pop("timings"), d.pop("created")
+        for g in d["within"]["groups"]:
+            for p in g["passes"]:
+                p.pop("seconds", None)
+        for p in d["passes"]:
+            p.pop("seconds", None)
+        return d
+
+    with DuckDBEngine(str(within_db), read_only=True) as engine:
+        runs = [segment(engine, Source.of_table("meters"), COLUMNS, Settings(k=3, cell_budget=1_000, within="grp")) for _ in range(2)]
+    assert body(runs[0]) == body(runs[1])
+
+
+def test_a_damaged_group_in_the_model_file_is_one_clear_error(within_model, tmp_path):
+    from tillite.model import ModelError
+
+    d = within_model.to_dict()
+    d["within"]["groups"][1]["centroids"] = d["within"]["groups"][1]["centroids"][:-1]
+    with pytest.raises(ModelError, match=r"group harbour\) is damaged: centroids has 3 entries for 4 segments"):
+        Model.from_dict(d)
+    d = within_model.to_dict()
+    del d["within"]["groups"][0]["sizes"]
+    with pytest.raises(ModelError, match="a group of within lacks"):
+        Model.from_dict(d)
