@@ -315,3 +315,20 @@ def test_group_columns_of_other_types_label_every_row_into_its_own_group(tmp_pat
     con.close()
     # reference: DuckDB's count of the table's rows; none left without a segment (every group value found again)
     assert sum(sum(g["sizes"]) for g in model.within["groups"]) == rows == 4_000 and unlabelled == 0
+
+
+@pytest.mark.parametrize("dialect", ["duckdb", "postgres", "spark"])
+def test_within_statements_render_and_parse_back_in_each_dialect(within_model, dialect):
+    import sqlglot
+
+    from tillite import within_sql
+    from tillite.within import model_assignment
+
+    src, assign = Source.of_table("meters"), model_assignment(within_model)
+    for statement in (within_sql.refine_statement(src, COLUMNS, assign, dialect),
+                      within_sql.label_select(src, COLUMNS, [*COLUMNS, "grp"], assign, dialect, materialize=True),
+                      within_sql.unknown_groups_statement(src, assign, dialect),
+                      within_sql.grouped_sample_statement(src, COLUMNS, "grp", dialect, percent=5.0, seed=1)):
+        text = sqlgen.render(statement, dialect)
+        # reference: sqlglot's own parser for the dialect reads every statement back
+        assert sqlglot.parse_one(text, read=dialect) is not None

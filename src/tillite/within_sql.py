@@ -213,18 +213,9 @@ def grouped_sample_statement(
     source: Source, columns: Sequence[str], group: str, dialect: str, percent: float | None = None,
     method: str = "SYSTEM", seed: int | None = None,
 ) -> exp.Select:
-    """``sqlgen.sample_statement``'s usable rows plus each row's group as text (GROUP_TEXT, NULL stays NULL)."""
-    rel = source.relation()
-    sampled = percent is not None and percent < 100.0
-    spark_seeded = sampled and seed is not None and dialect in sqlgen.SPARK_DIALECTS
-    if sampled and not spark_seeded:
-        rel.set("sample", sqlgen.table_sample(float(percent), method, dialect, seed=seed))
-    names = [internal(f"x{j}") for j in range(len(columns))]
-    text = exp.cast(col(group), exp.DataType.build("VARCHAR"))
-    inner = exp.select(*[exp.alias_(sqlgen.to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)],
-                       exp.alias_(text, GROUP_TEXT, quoted=True)).from_(rel)
-    if spark_seeded:
-        inner = inner.where(exp.LT(this=exp.Rand(this=num(int(seed))), expression=num(float(percent) / 100.0)))
-    return exp.select(*[col(n) for n in [*names, GROUP_TEXT]]).from_(sqlgen.subquery(inner, internal("s"))).where(
-        sqlgen.usable_rows(names, dialect)
-    )
+    """``sqlgen.sample_statement``'s usable rows (its sampling forms, per engine) plus each row's group as text
+    (GROUP_TEXT, NULL stays NULL)."""
+    outer = sqlgen.sample_statement(source, columns, dialect, percent=percent, method=method, seed=seed)
+    inner = outer.find(exp.Subquery).this  # the sampled rows, before the usable-row filter
+    inner.select(exp.alias_(exp.cast(col(group), exp.DataType.build("VARCHAR")), GROUP_TEXT, quoted=True), copy=False)
+    return outer.select(col(GROUP_TEXT), copy=False)
