@@ -321,6 +321,8 @@ def test_segment_within_and_its_labels_equal_duckdb(server, loaded, rows):
         label(pg, SRC, ref, "point_groups")
         label(duck, SRC, ref, "point_groups")
         assert_same_within_labels(ordered_rows(pg, "point_groups"), ordered_rows(duck, "point_groups"), rows)
+        label(pg, SRC, ref, "point_groups_table", materialize=True)  # the fenced form
+        assert_same_within_labels(ordered_rows(pg, "point_groups_table"), ordered_rows(duck, "point_groups"), rows)
     finally:
         pg.close()
         duck.close()
