@@ -24,7 +24,7 @@ from click.testing import CliRunner
 from sklearn.datasets import make_blobs
 
 from tillite import macros as M
-from tillite.cli_macros import macros as macros_group
+from tillite.cli.macros import macros as macros_group
 from tillite.demo import build_demo_database
 from tillite.engines import DUCKDB_STORAGE_VERSION, DuckDBEngine
 from tillite.pipeline import Settings, label, run_cell_pass, segment

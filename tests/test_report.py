@@ -345,7 +345,7 @@ def test_description_names_the_most_distinctive_columns():
 
 
 def test_report_command_offers_exactly_the_formats_the_report_writes():
-    from tillite.cli_report import REPORT_FORMATS
+    from tillite.cli.report import REPORT_FORMATS
 
     assert REPORT_FORMATS == R.FORMATS
 

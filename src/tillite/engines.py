@@ -304,7 +304,10 @@ def file_reader_for(path: str) -> str | None:
 
 
 def open_database(path: str, writable: bool = False) -> Engine:
-    """The DuckDB database file at ``path``, which must exist (DuckDB would create an empty one)."""
+    """The database at ``path``: PostgreSQL by its postgresql:// URL, else a DuckDB file, which must
+    exist (DuckDB would create an empty one). The one opener of a database without a table."""
+    if engine_kind(path) == "postgres":
+        return PostgresEngine(path, read_only=not writable)
     if not os.path.exists(path):
         raise SourceError(f"database {path} does not exist")
     return DuckDBEngine(path, read_only=not writable)

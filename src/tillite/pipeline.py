@@ -30,6 +30,7 @@ from .errors import InputError, ParameterError
 from .features import CF
 from .model import Model, usual_file_mode
 from .segmenters import WARD_ENTRIES, KMeansResult, kmeans
+from .settings import MAX_SEED, MAX_WEIGHT, SETTING_CHOICES, SETTING_RANGES, Settings, check_range, check_refresh_options
 from .sqlgen import Assignment, Grid, Source
 
 __all__ = [
@@ -50,125 +51,6 @@ __all__ = [
 ]
 
 ProgressFn = Callable[[str, str], None]
-
-
-@dataclass
-class Settings:
-    """Everything a `segment` run can be told."""
-
-    k: int
-    scaling: str = "zscore"  # or "none": keep original units (still centred)
-    weights: dict[str, float] = field(default_factory=dict)
-    cell_budget: int = 20_000
-    refine_passes: int = 3
-    tolerance: float = 1e-4
-    n_init: int = 10
-    seed: int = 0
-    sample_rows: int = 50_000
-    principal_above: int = 6  # bin principal-axis scores when there are more columns
-    principal_axes: int = 4  # how many: a 20,000-cell budget gives ~12 bins per axis
-    width: float | None = None  # force the grid width (scaled units)
-    method: str = "kmeans"  # or "ward", "density"
-    k_candidates: tuple[int, ...] = ()  # choose k among these on the CFs (then k is ignored)
-    k_rule: str = "calinski_harabasz"  # or "bic"
-    tree_budget: int | None = None  # condense with a CF tree above this many cells (None: the cell budget; 0: never)
-    threshold: float | None = None  # CF tree threshold T (None: chosen from the data)
-    branching: int = 50
-    leaf_capacity: int = 50
-    criterion: str = "diameter"  # or "radius"
-    keep_outliers: bool = False
-    min_count: float | None = None  # density: cells with at least this many rows are dense
-    adjacency: str = "face"  # density: "face" (grid neighbours) or "distance"
-    radius: float | None = None  # density: joining distance with adjacency="distance"
-    noise: str = "attach"  # density: sparse cells "attach" to the nearest segment, or stay noise ("drop")
-
-    def column_weights(self, columns: Sequence[str]) -> np.ndarray:
-        """The multiplier of each column (1 unless --weights says otherwise)."""
-        return np.array([float(self.weights.get(c, 1.0)) for c in columns])
-
-    def check(self, columns: Sequence[str]) -> None:
-        """Refuse values no run can use, naming the parameter (the CLI names the option)."""
-        for name, choices in SETTING_CHOICES.items():
-            if getattr(self, name) not in choices:
-                raise ParameterError(f"{{{name}}} must be one of {', '.join(choices)}, got {getattr(self, name)!r}", name)
-        if self.method == "density" and (self.k or self.k_candidates):
-            raise ParameterError("{k} is not used by {method} density, which finds the number of segments itself; "
-                                 "leave {k} out", "k", "method")
-        if any(c < 1 for c in self.k_candidates):
-            raise ParameterError(f"{{k}} candidates must be at least 1, got {list(self.k_candidates)}", "k")
-        if not self.k_candidates and self.method != "density" and self.k < 1:
-            raise ParameterError(f"{{k}} must be at least 1, got {self.k}", "k")
-        for name, low, bound in SETTING_RANGES:
-            check_range(name, getattr(self, name), low, bound)
-        unknown = [c for c in self.weights if c not in columns]
-        if unknown:
-            raise ParameterError(f"{{weights}} name columns not chosen for segmenting: {', '.join(unknown)}", "weights")
-        bad = {c: w for c, w in self.weights.items() if not (math.isfinite(w) and 0 <= w <= MAX_WEIGHT)}
-        if bad:
-            raise ParameterError(f"{{weights}} must be numbers from 0 to {MAX_WEIGHT:g}: {bad}", "weights")
-        if columns and not (self.column_weights(columns) > 0).any():
-            raise ParameterError("every {weights} value is 0: at least one column needs a weight above 0", "weights")
-
-
-#: Parameters with a fixed set of values.
-SETTING_CHOICES: dict[str, tuple[str, ...]] = {
-    "method": ("kmeans", "ward", "density"),
-    "scaling": ("zscore", "none"),
-    "k_rule": ("calinski_harabasz", "bic"),
-    "criterion": ("diameter", "radius"),
-    "adjacency": ("face", "distance"),
-    "noise": ("attach", "drop"),
-}
-
-#: (parameter, lowest value, "min" (inclusive) or "above" (exclusive)); None values are left alone.
-SETTING_RANGES: tuple[tuple[str, float, str], ...] = (
-    ("cell_budget", 1, "min"),
-    ("refine_passes", 0, "min"),
-    ("tolerance", 0, "min"),
-    ("n_init", 1, "min"),
-    ("seed", 0, "min"),
-    ("sample_rows", 2, "min"),
-    ("principal_above", 1, "min"),
-    ("principal_axes", 1, "min"),
-    ("width", 0, "above"),
-    ("tree_budget", 0, "min"),
-    ("threshold", 0, "min"),
-    ("branching", 2, "min"),
-    ("leaf_capacity", 2, "min"),
-    ("min_count", 0, "min"),
-    ("radius", 0, "above"),
-)
-
-#: Largest column weight: squared weights go into the SQL and must stay far from overflow.
-MAX_WEIGHT = 1e6
-
-#: Seeds are passed to every engine's sampler: keep them in a 32-bit signed range.
-MAX_SEED = 2**31 - 1
-
-
-def check_range(name: str, value: Any, low: float, bound: str = "min") -> None:
-    """A finite number at or above ``low`` ("min") or above it ("above"); None passes."""
-    if value is None:
-        return
-    ok = isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool) and math.isfinite(value)
-    ok = ok and (value >= low if bound == "min" else value > low)
-    if name == "seed" and ok:
-        ok = value <= MAX_SEED
-    if not ok:
-        if name == "seed":
-            want = f"a whole number from 0 to {MAX_SEED}"
-        else:
-            want = f"a number {'at least' if bound == 'min' else 'above'} {low:g}"
-        raise ParameterError(f"{{{name}}} must be {want}, got {value!r}", name)
-
-
-def check_refresh_options(k: int | None = None, drift_threshold: float | None = None,
-                          new_segment_shift: float | None = None, outside_warn: float | None = None) -> None:
-    """The options of a store refresh, regrid or status, checked before any work (None: not given)."""
-    check_range("k", k, 1)
-    check_range("drift_threshold", drift_threshold, 0)
-    check_range("new_segment_shift", new_segment_shift, 0, "above")
-    check_range("outside_warn", outside_warn, 0)
 
 
 def _quiet(stage: str, message: str) -> None:
@@ -896,14 +778,7 @@ def make_model(
     """The model file's content from a finished run."""
     centroids = stats.centroids
     original = centroids * std.scale[None, :] + std.center[None, :]
-    params = {
-        "cell_budget": settings.cell_budget,
-        "refine_passes": settings.refine_passes,
-        "tolerance": settings.tolerance,
-        "restarts": settings.n_init,
-        "seed": settings.seed,
-        "sample_rows": settings.sample_rows,
-    }
+    params = settings.model_params()
     params.update(extra_params or {})
     return Model(
         columns=list(columns),

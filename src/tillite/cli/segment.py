@@ -1,20 +1,19 @@
-"""The `tillite` command: a thin layer over the Python API (pipeline, model, sqlgen)."""
+"""`tillite segment|label|show|sql|demo`: segmenting and labelling from the command line."""
 
 from __future__ import annotations
 
 import json
-import sys
 import time
 import warnings
-from contextlib import contextmanager
 from pathlib import Path
-from typing import Iterator
 
 import click
 
-from . import __version__
-from .errors import ParameterError, TilliteError
-from .lazy import lazy_module, lazy_name
+from ..lazy import lazy_module, lazy_name
+from .shared import (
+    columns_option, open_with_options, progress_printer, settings_from_options, settings_options, source_argument,
+    split_columns, table_option, parameter_option, user_errors,
+)
 
 # imported when a command first uses them, so --version and show start fast
 sqlgen = lazy_module("tillite.sqlgen")
@@ -24,92 +23,7 @@ Settings, label, run_profile, segment = (lazy_name("tillite.pipeline", n) for n 
 
 STAGES = ("profile", "cells", "refine", "label")
 
-
-def _split_columns(values: tuple[str, ...]) -> list[str]:
-    out: list[str] = []
-    for v in values:
-        out.extend(p.strip() for p in v.split(",") if p.strip())
-    return out
-
-
-def _parse_weights(text: str | None) -> dict[str, float]:
-    if not text:
-        return {}
-    out: dict[str, float] = {}
-    for part in text.split(","):
-        name, sep, value = part.rpartition("=")
-        if not sep or not name.strip():
-            raise click.BadParameter(f"expected column=number, got {part!r}", param_hint="--weights")
-        try:
-            out[name.strip()] = float(value)
-        except ValueError:
-            raise click.BadParameter(f"weight of {name.strip()} is not a number: {value!r}", param_hint="--weights") from None
-    return out
-
-
-#: API parameter -> CLI option, where the option is not just the parameter with dashes.
-OPTION_NAMES = {"n_init": "--restarts", "drift_threshold": "--drift-warn", "replace": "--replace", "partition": "--partition-by"}
-
-
-class _OptionNames(dict):
-    """--option spelling of any API parameter."""
-
-    def __missing__(self, key: str) -> str:
-        return OPTION_NAMES.get(key, "--" + key.replace("_", "-"))
-
-
-def cli_message(err: Exception, options: dict[str, str] | None = None) -> str:
-    """One line for the terminal: parameters spelled as options (``options`` for a command whose
-    option differs from the usual one, e.g. ``store build --regrid`` for ``replace``)."""
-    text = err.text(_OptionNames(options or {})) if isinstance(err, ParameterError) else str(err)
-    return " ".join(text.split()) if "\n" in text.strip() else text
-
-
-@contextmanager
-def user_errors(quiet: bool = False, options: dict[str, str] | None = None) -> Iterator[None]:
-    """Turn our errors (the engines wrap the database's) into clean messages and warnings into stderr lines.
-
-    ``options``: API parameter -> this command's option, where it differs from OPTION_NAMES.
-    """
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        try:
-            yield
-        except TilliteError as err:  # the engines' EngineError included: "database error: " and the driver's first line
-            raise click.ClickException(cli_message(err, options)) from None
-        finally:
-            for w in caught:
-                if issubclass(w.category, UserWarning):
-                    click.echo(f"warning: {w.message}", err=True)
-
-
-def _open(source: str, table: str | None, writable: bool = False):
-    """open_source with --engine/--spark-conf, and a malformed --table reported as a usage error."""
-    ctx = click.get_current_context(silent=True)
-    meta = ctx.meta if ctx is not None else {}
-    try:
-        return open_source(
-            source, table, writable=writable,
-            engine=meta.get("tillite.engine"), spark_conf=_parse_spark_conf(meta.get("tillite.spark_conf", ())),
-        )
-    except ValueError as err:
-        raise click.BadParameter(str(err), param_hint="--table") from None
-
-
-def _parse_spark_conf(values: tuple[str, ...]) -> dict[str, str]:
-    out: dict[str, str] = {}
-    for item in values:
-        key, sep, value = item.partition("=")
-        if not sep or not key.strip():
-            raise click.BadParameter(f"expected key=value, got {item!r}", param_hint="--spark-conf")
-        out[key.strip()] = value.strip()
-    return out
-
-
-def _remember_engine_option(ctx, param, value):
-    """--engine and --spark-conf are read by _open, so commands keep their signatures."""
-    ctx.meta[f"tillite.{param.name}"] = value
-    return value
+__all__ = ["segment_command", "label_command", "show_command", "sql_command", "demo_command"]
 
 
 def _check_dialect(ctx, param, value: str) -> str:
@@ -122,119 +36,11 @@ def _check_dialect(ctx, param, value: str) -> str:
     return value
 
 
-def _progress(quiet: bool):
-    def report(stage: str, message: str) -> None:
-        if not quiet:
-            click.echo(f"[tillite] {stage}: {message}", err=True)
-
-    return report
-
-
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
-@click.version_option(__version__, prog_name="tillite")
-def main() -> None:
-    """Segment warehouse tables where they live.
-
-    Row-level work runs in the database as SQL aggregates; only clustering
-    features (count, linear sum, square sum per cell) come back to Python.
-    """
-
-
-source_argument = click.argument("source", metavar="SOURCE")
-def table_option(f):
-    """--table, plus the engine options: --engine and --spark-conf (repeatable)."""
-    f = click.option("--spark-conf", "spark_conf", multiple=True, metavar="KEY=VALUE", expose_value=False,
-                     callback=_remember_engine_option,
-                     help="Spark setting for the session tillite starts, e.g. spark.executor.memory=4g (repeatable).")(f)
-    f = click.option("--engine", type=click.Choice(["auto", "duckdb", "postgres", "spark"]), default="auto",
-                     show_default=True, expose_value=False, callback=_remember_engine_option,
-                     help="Where the SQL runs. auto: postgresql://... is PostgreSQL; spark://..., local[N], yarn "
-                          "are Spark masters; a file is DuckDB. With --engine spark a Parquet path is read by Spark.")(f)
-    return click.option("--table", "-t", help="Table to read (for a database SOURCE; may be schema.table).")(f)
-columns_option = click.option(
-    "--columns", "-c", multiple=True, required=True, help="Numeric columns to segment on, comma-separated (repeatable)."
-)
-
-
-def _parse_k(text: str | None) -> tuple[int, tuple[int, ...]]:
-    """--k: a number, 'auto' (1..12) or a range 'lo..hi' chosen on the CFs."""
-    if text is None:
-        return 0, ()
-    text = text.strip().lower()
-    if text == "auto":
-        return 0, tuple(range(1, 13))
-    lo, sep, hi = text.partition("..")
-    try:
-        if sep:
-            a, b = int(lo), int(hi)
-            if not 1 <= a <= b:
-                raise ValueError
-            return 0, tuple(range(a, b + 1))
-        return int(text), ()
-    except ValueError:
-        raise click.BadParameter(f"expected a number, 'auto' or a range like 2..12, got {text!r}", param_hint="--k") from None
-
-
-def _settings_options(f):
-    opts = [
-        click.option("--k", "-k", "k", help="Number of segments, 'auto' (1..12, one segment when no split beats it) or a range like 2..8 chosen on the CFs "
-                     "(not needed for --method density)."),
-        click.option("--method", type=click.Choice(["kmeans", "ward", "density"]), default="kmeans", show_default=True,
-                     help="Second phase: k-means++, Ward agglomeration, or density-connected cells (non-convex shapes)."),
-        click.option("--k-rule", type=click.Choice(["calinski_harabasz", "bic"]), default="calinski_harabasz", show_default=True,
-                     help="How --k auto/range picks k: largest Calinski-Harabasz, or smallest spherical-Gaussian BIC."),
-        click.option("--scaling", type=click.Choice(["zscore", "none"]), default="zscore", show_default=True,
-                     help="zscore: columns in standard deviations; none: original units (still centred)."),
-        click.option("--weights", help="Column multipliers after scaling, e.g. litres=2,zero_hours=0.5."),
-        click.option("--cell-budget", type=int, default=20_000, show_default=True, help="About how many grid cells to aim for."),
-        click.option("--width", type=float, default=None, help="Force the grid width (scaled units) instead of choosing it."),
-        click.option("--refine-passes", type=int, default=3, show_default=True, help="Most refine passes over the rows (0 for none)."),
-        click.option("--tolerance", type=float, default=1e-4, show_default=True, help="Stop refining when a pass improves SSE by less than this share."),
-        click.option("--restarts", type=int, default=10, show_default=True, help="k-means++ restarts on the cells."),
-        click.option("--seed", type=int, default=0, show_default=True,
-                     help="Seed of the profile sample, k-means++ and the CF tree (0 to 2147483647); the same data, "
-                          "options and seed give the same model."),
-        click.option("--sample-rows", type=int, default=50_000, show_default=True, help="Rows the profile sample aims for."),
-        click.option("--tree-budget", type=int, default=None,
-                     help="Condense the cells with a CF tree when there are more than this (default: the cell budget; 0: never)."),
-        click.option("--threshold", type=float, default=None, help="CF tree threshold T (default: chosen from the cells)."),
-        click.option("--branching", type=int, default=50, show_default=True, help="CF tree branching factor B."),
-        click.option("--leaf-capacity", type=int, default=50, show_default=True, help="CF tree leaf capacity L."),
-        click.option("--criterion", type=click.Choice(["diameter", "radius"]), default="diameter", show_default=True,
-                     help="What the threshold T bounds."),
-        click.option("--keep-outliers", is_flag=True, help="Keep every cell; no outlier group (segment -1)."),
-        click.option("--min-count", type=float, default=None, help="density: rows a cell needs to be dense (default from the data)."),
-        click.option("--adjacency", type=click.Choice(["face", "distance"]), default="face", show_default=True,
-                     help="density: join cells sharing a grid face, or with centroids within --radius."),
-        click.option("--radius", type=float, default=None, help="density: joining distance for --adjacency distance."),
-        click.option("--noise", type=click.Choice(["attach", "drop"]), default="attach", show_default=True,
-                     help="density: sparse cells join the nearest segment, or stay noise (segment -1)."),
-    ]
-    for o in reversed(opts):
-        f = o(f)
-    return f
-
-
-def _settings(k, method, k_rule, scaling, weights, cell_budget, width, refine_passes, tolerance, restarts, seed, sample_rows,
-              tree_budget, threshold, branching, leaf_capacity, criterion, keep_outliers, min_count, adjacency, radius,
-              noise) -> Settings:
-    k_value, candidates = _parse_k(k)
-    if method != "density" and k is None:
-        raise click.UsageError("give --k (a number, 'auto' or a range like 2..12)")
-    return Settings(
-        k=k_value, scaling=scaling, weights=_parse_weights(weights), cell_budget=cell_budget, width=width,
-        refine_passes=refine_passes, tolerance=tolerance, n_init=restarts, seed=seed, sample_rows=sample_rows,
-        method=method, k_candidates=candidates, k_rule=k_rule, tree_budget=tree_budget, threshold=threshold,
-        branching=branching, leaf_capacity=leaf_capacity, criterion=criterion, keep_outliers=keep_outliers,
-        min_count=min_count, adjacency=adjacency, radius=radius, noise=noise,
-    )
-
-
-@main.command("segment")
+@click.command("segment")
 @source_argument
 @table_option
 @columns_option
-@_settings_options
+@settings_options
 @click.option("--out", "-o", default=None, help="Model file to write [default: SOURCE's table or file name + .model.json, "
               "e.g. meter_days.model.json, in the current folder].")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
@@ -246,13 +52,13 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
     The model file's path is printed on stderr; replacing a file that held the
     model of another source or column list is said in a warning line.
     """
-    from .model import default_model_path, replaced_model_note
+    from ..model import default_model_path, replaced_model_note
 
     with user_errors():
-        settings = _settings(**kw)
+        settings = settings_from_options(**kw)
         out = out or default_model_path(source, table)
-        with _open(source, table) as (engine, src):
-            model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet))
+        with open_with_options(source, table) as (engine, src):
+            model = segment(engine, src, split_columns(columns), settings, progress=progress_printer(quiet))
         note = replaced_model_note(out, model)
         model.write(out)
         if note:
@@ -262,7 +68,7 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
         click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
 
 
-@main.command("label")
+@click.command("label")
 @source_argument
 @table_option
 @click.option("--model", "-m", "model_path", help="Model file written by `tillite segment`.")
@@ -283,19 +89,19 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
     _check_into(into)
     with user_errors():
         if store_name:
-            from . import store as store_api
-            from .cli_store import open_store_database
+            from .. import store as store_api
+            from .store import open_store_database
 
             with open_store_database(source, writable=True) as engine:
                 made = store_api.label(engine, store_name, into, materialize=materialize, replace=replace)
-            _progress(quiet)("label", f"{made} from store {store_name}")
+            progress_printer(quiet)("label", f"{made} from store {store_name}")
             click.echo(made)
             return
         model = Model.read(model_path)
-        with _open(source, table, writable=True) as (engine, src):
+        with open_with_options(source, table, writable=True) as (engine, src):
             t0 = time.perf_counter()
             made = _label_explained(engine, src, model, into, materialize, replace)
-        _progress(quiet)("label", f"{made} from {src.label}, {time.perf_counter() - t0:.2f} s")
+        progress_printer(quiet)("label", f"{made} from {src.label}, {time.perf_counter() - t0:.2f} s")
         click.echo(made)
 
 
@@ -314,7 +120,7 @@ def _check_into(into: str) -> None:
 def _label_explained(engine, src, model, into: str, materialize: bool, replace: bool) -> str:
     """label(), with a database error while replacing an object the source reads through a view
     said as such (the transaction has rolled back: nothing changed)."""
-    from .errors import EngineError
+    from ..errors import EngineError
 
     existed = engine.relation_kind(into) if not src.files else None
     try:
@@ -328,7 +134,7 @@ def _label_explained(engine, src, model, into: str, materialize: bool, replace: 
         raise
 
 
-@main.command("show")
+@click.command("show")
 @click.argument("model_path", metavar="MODEL")
 @click.option("--json", "as_json", is_flag=True, help="Machine-readable output.")
 def show_command(model_path, as_json) -> None:
@@ -338,7 +144,7 @@ def show_command(model_path, as_json) -> None:
         click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
 
 
-@main.command("sql")
+@click.command("sql")
 @click.argument("source", metavar="[SOURCE]", required=False)
 @table_option
 @click.option("--columns", "-c", multiple=True, help="Columns (not needed with --model).")
@@ -346,8 +152,7 @@ def show_command(model_path, as_json) -> None:
 @click.option("--model", "-m", "model_path", help="Model file (needed for refine and label; cells then use its grid).")
 @click.option("--dialect", default="duckdb", show_default=True, callback=_check_dialect,
               help="SQL dialect to render (any sqlglot dialect name).")
-@click.option("--cell-budget", type=int, default=20_000, show_default=True,
-              help="About how many grid cells the cells stage aims for (without --model).")
+@parameter_option("cell_budget", help="About how many grid cells the cells stage aims for (without --model).")
 def sql_command(source, table, columns, stage, model_path, dialect, cell_budget) -> None:
     """Print the SQL a stage would run, without running it.
 
@@ -357,7 +162,7 @@ def sql_command(source, table, columns, stage, model_path, dialect, cell_budget)
     """
     with user_errors():
         model = Model.read(model_path) if model_path else None
-        cols = list(model.columns) if model else _split_columns(columns)
+        cols = list(model.columns) if model else split_columns(columns)
         if not cols:
             raise click.UsageError("give --columns or --model")
         if source is None:
@@ -371,9 +176,9 @@ def sql_command(source, table, columns, stage, model_path, dialect, cell_budget)
                 raise click.BadParameter(str(err), param_hint="--table") from None
             statements = _stage_statements(None, src, cols, cols, stage, model, dialect, cell_budget)
         else:
-            from .pipeline import check_columns
+            from ..pipeline import check_columns
 
-            with _open(source, table) as (engine, src):
+            with open_with_options(source, table) as (engine, src):
                 source_columns = check_columns(engine, src, cols)
                 statements = _stage_statements(engine, src, cols, source_columns, stage, model, dialect, cell_budget)
         for st in statements:
@@ -381,7 +186,7 @@ def sql_command(source, table, columns, stage, model_path, dialect, cell_budget)
 
 
 def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, cell_budget):
-    from .pipeline import grid_for_profile
+    from ..pipeline import grid_for_profile
 
     if stage == "profile":
         return [sqlgen.count_statement(src), sqlgen.sample_statement(src, cols, dialect, percent=1.0, limit=100_000)]
@@ -400,7 +205,7 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
     return [sqlgen.label_select(src, cols, source_columns, model.assignment(), dialect, cell_map=model.cell_map_spec())]
 
 
-@main.command("demo")
+@click.command("demo")
 @click.option("--db", "db_path", default="tillite-demo.duckdb", show_default=True, help="Demo database file to build or reuse.")
 @click.option("--rows", type=int, default=1_000_000, show_default=True, help="Meter-day rows to generate.")
 @click.option("--days", type=int, default=60, show_default=True, help="Days of meter readings to generate.")
@@ -414,10 +219,10 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
 def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet) -> None:
     """Build the invented water co-operative database and segment it end to end."""
-    from . import demo, report
+    from .. import demo, report
 
     with user_errors():
-        progress = _progress(quiet)
+        progress = progress_printer(quiet)
         if rebuild or not Path(db_path).exists():
             t0 = time.perf_counter()
             info = demo.build_demo_database(db_path, rows=rows, days=days, seed=seed, replace=True)
@@ -439,23 +244,3 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
         click.echo(f"report written to {Path(written).resolve()} (open it in a browser; no network needed).")
         click.echo("Segments are statistical groupings, not diagnoses: a 'probable leak' segment lists meters")
         click.echo("for the co-operative's usual inspection procedure to confirm.")
-
-
-def _register_subcommands() -> None:
-    from .cli_macros import macros
-    from .cli_report import name_command, report_command
-    from .cli_store import refresh_command, store_group
-
-    main.add_command(report_command)
-    main.add_command(name_command)
-
-    main.add_command(store_group)
-    main.add_command(refresh_command)
-    main.add_command(macros)
-
-
-_register_subcommands()
-
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())
