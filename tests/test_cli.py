@@ -610,3 +610,49 @@ def test_the_package_still_offers_its_public_names_on_first_use():
 
     assert tillite.TilliteError is from_engines and tillite.segment.__module__ == "tillite.pipeline"
     assert imported_after("import tillite") & set(HEAVY_MODULES) == set()
+
+
+def _all_commands(command, path=("tillite",)):
+    yield path, command
+    for name, sub in getattr(command, "commands", {}).items():
+        yield from _all_commands(sub, (*path, name))
+
+
+def test_every_option_of_every_command_has_help_text():
+    import click
+
+    missing = [
+        (" ".join(path), opt.opts)
+        for path, command in _all_commands(main)
+        for opt in command.get_params(click.Context(command))
+        if isinstance(opt, click.Option) and not (opt.help or "").strip()
+    ]
+    assert missing == []
+
+
+def test_segment_options_are_the_settings_parameter_table():
+    from tillite.settings import PARAMETERS
+
+    segment_options = {p.name: p for p in main.commands["segment"].params}
+    for p in PARAMETERS.values():
+        if p.option_name is None:
+            assert p.name not in segment_options
+            continue
+        opt = segment_options[p.name]
+        assert p.option_name in opt.opts and opt.help == p.help
+        if p.kind in ("int", "float", "str") and p.default is not None:
+            assert opt.default == p.default
+
+
+def test_every_settings_parameter_is_checked_with_a_message_naming_only_itself():
+    from tillite.errors import ParameterError
+    from tillite.settings import PARAMETERS, Settings
+
+    for p in PARAMETERS.values():
+        if not (p.choices or p.low is not None) or p.name == "k":
+            continue
+        bad = "nonsense" if p.choices else p.low - 1
+        with pytest.raises(ParameterError) as caught:
+            Settings(k=2, **{p.name: bad}).check(["a"])
+        assert caught.value.parameters == (p.name,)
+        assert str(caught.value).startswith(p.name + " must be")
