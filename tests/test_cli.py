@@ -656,3 +656,12 @@ def test_every_settings_parameter_is_checked_with_a_message_naming_only_itself()
             Settings(k=2, **{p.name: bad}).check(["a"])
         assert caught.value.parameters == (p.name,)
         assert str(caught.value).startswith(p.name + " must be")
+
+
+def test_open_database_opens_a_postgresql_url_as_postgresql():
+    """One opener of a database without a table (store commands, report --store, name --store)."""
+    from tillite.engines import open_database
+    from tillite.errors import SourceError
+
+    with pytest.raises(SourceError, match="cannot connect to PostgreSQL"):
+        open_database("postgresql://nobody@127.0.0.1:1/nothing_here?connect_timeout=2")

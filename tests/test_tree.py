@@ -225,3 +225,12 @@ def test_intrinsic_dimension_of_a_plane_in_five_columns_is_about_two():
     # under, the edges of the cube) for the filled cube
     assert 1.7 < intrinsic_dimension(plane) < 2.3
     assert 3.8 < intrinsic_dimension(cube) <= 5.0
+
+
+def test_tree_shape_assumptions_name_one_parameter_each():
+    from tillite.tree import CFTree
+
+    with pytest.raises(ValueError, match="^leaf_capacity must be at least 2"):
+        CFTree(2, 0.5, branching=50, leaf_capacity=1)
+    with pytest.raises(ValueError, match="^branching must be at least 2"):
+        CFTree(2, 0.5, branching=1, leaf_capacity=50)

@@ -112,6 +112,16 @@ class _Prefix(NamedTuple):
     fits: np.ndarray
 
 
+def _assume_tree_shape(branching: int, leaf_capacity: int, criterion: str) -> None:
+    """The kernel's assumptions, one message each (user input is checked by tillite.settings first:
+    a ValueError here is a caller's bug)."""
+    for name, value in (("branching", branching), ("leaf_capacity", leaf_capacity)):
+        if value < 2:
+            raise ValueError(f"{name} must be at least 2, not {value}")
+    if criterion not in _CRITERIA:
+        raise ValueError(f"criterion must be one of {_CRITERIA}, not {criterion!r}")
+
+
 def _criterion_sq(sse: np.ndarray, n: np.ndarray, criterion: str) -> np.ndarray:
     """Squared diameter (2 SSE / (n - 1), 0 for n <= 1) or squared radius (SSE / n)."""
     if criterion == "radius":
@@ -132,10 +142,7 @@ class CFTree:
     def __init__(self, d: int, threshold: float, branching: int = 50, leaf_capacity: int = 50,
                  criterion: str = "diameter", scale: float = 1.0, n_scale: float = 1.0,
                  offset: np.ndarray | None = None) -> None:
-        if branching < 2 or leaf_capacity < 2:
-            raise ValueError("branching and leaf_capacity must be at least 2")
-        if criterion not in _CRITERIA:
-            raise ValueError(f"criterion must be one of {_CRITERIA}, not {criterion!r}")
+        _assume_tree_shape(branching, leaf_capacity, criterion)
         if not np.isfinite(threshold) or threshold < 0:
             raise ValueError(f"threshold must be a finite number >= 0, not {threshold}")
         self.d, self.threshold, self.criterion = d, float(threshold), criterion
@@ -680,10 +687,7 @@ def condense(cells: CF, *, threshold: float | None = None, branching: int = 50, 
     """
     if budget < 1:
         raise ValueError("budget must be at least 1")
-    if branching < 2 or leaf_capacity < 2:
-        raise ValueError("branching and leaf_capacity must be at least 2")
-    if criterion not in _CRITERIA:
-        raise ValueError(f"criterion must be one of {_CRITERIA}, not {criterion!r}")
+    _assume_tree_shape(branching, leaf_capacity, criterion)
     if not 0.0 <= outlier_share < 1.0:
         raise ValueError("outlier_share must be in [0, 1)")
     w = np.ones(cells.d) if weights is None else np.asarray(weights, dtype=np.float64).reshape(-1)
