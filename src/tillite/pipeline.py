@@ -30,7 +30,10 @@ from .errors import InputError, ParameterError
 from .features import CF
 from .model import Model, usual_file_mode
 from .segmenters import WARD_ENTRIES, KMeansResult, kmeans
-from .settings import MAX_SEED, MAX_WEIGHT, SETTING_CHOICES, SETTING_RANGES, Settings, check_range, check_refresh_options
+# re-exported: store.py and older callers import these from here
+from .settings import (  # noqa: F401
+    MAX_SEED, MAX_WEIGHT, SETTING_CHOICES, SETTING_RANGES, Settings, check_range, check_refresh_options,
+)
 from .sqlgen import Assignment, Grid, Source
 
 __all__ = [
