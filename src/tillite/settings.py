@@ -94,10 +94,16 @@ class Settings:
     k: int = field(metadata={"parameter": Parameter(
         help="Number of segments, 'auto' (1..12, one segment when no split beats it) or a range like 2..8 "
              "chosen on the CFs (not needed for --method density).", short="-k", low=1, kind="parsed")})
+    method: str = setting("kmeans", "Second phase: k-means++, Ward agglomeration, or density-connected cells "
+                                    "(non-convex shapes).", choices=("kmeans", "ward", "density"))
+    k_rule: str = setting("calinski_harabasz", "How --k auto/range picks k: largest Calinski-Harabasz, or smallest "
+                                               "spherical-Gaussian BIC.", choices=("calinski_harabasz", "bic"))
     scaling: str = setting("zscore", "zscore: columns in standard deviations; none: original units (still centred).",
                            choices=("zscore", "none"))
     weights: dict[str, float] = setting({}, "Column multipliers after scaling, e.g. litres=2,zero_hours=0.5.")
     cell_budget: int = setting(20_000, "About how many grid cells to aim for.", low=1, model_key="cell_budget")
+    width: float | None = setting(None, "Force the grid width (scaled units) instead of choosing it.", low=0,
+                                  bound="above")
     refine_passes: int = setting(3, "Most refine passes over the rows (0 for none).", low=0, model_key="refine_passes")
     tolerance: float = setting(1e-4, "Stop refining when a pass improves SSE by less than this share.", low=0,
                                model_key="tolerance")
@@ -109,14 +115,8 @@ class Settings:
                                    option=None)
     principal_axes: int = setting(4, "How many principal axes to bin (a 20,000-cell budget gives ~12 bins per axis).",
                                   low=1, option=None)
-    width: float | None = setting(None, "Force the grid width (scaled units) instead of choosing it.", low=0,
-                                  bound="above")
-    method: str = setting("kmeans", "Second phase: k-means++, Ward agglomeration, or density-connected cells "
-                                    "(non-convex shapes).", choices=("kmeans", "ward", "density"))
     k_candidates: tuple[int, ...] = setting((), "Choose k among these on the CFs (then k is ignored); "
                                                 "the command line's --k auto or lo..hi.", option=None)
-    k_rule: str = setting("calinski_harabasz", "How --k auto/range picks k: largest Calinski-Harabasz, or smallest "
-                                               "spherical-Gaussian BIC.", choices=("calinski_harabasz", "bic"))
     tree_budget: int | None = setting(None, "Condense the cells with a CF tree when there are more than this "
                                             "(default: the cell budget; 0: never).", low=0)
     threshold: float | None = setting(None, "CF tree threshold T (default: chosen from the cells).", low=0)
@@ -139,10 +139,14 @@ class Settings:
 
     def check(self, columns: Sequence[str]) -> None:
         """Refuse values no run can use, naming the parameter (the CLI names the option)."""
-        for p in PARAMETERS.values():
-            if p.name not in ("k", "weights"):
+        rows = [p for p in PARAMETERS.values() if p.name not in ("k", "weights")]
+        for p in rows:  # choices first, then k, then ranges: the order the checks have always had
+            if p.choices:
                 p.check(getattr(self, p.name))
         self._check_k()
+        for p in rows:
+            if not p.choices:
+                p.check(getattr(self, p.name))
         self._check_weights(columns)
 
     def _check_k(self) -> None:
