@@ -374,7 +374,8 @@ def target_for(dialect: str | Target) -> Target:
     try:
         Dialect.get_or_raise(dialect)
     except ValueError as err:
-        raise ValueError(f"unknown SQL dialect {dialect!r}: {str(err).splitlines()[0]}") from None
+        # sqlglot's own line, which suggests a near name ("Unknown dialect 'postgresql'. Did you mean postgres?")
+        raise ValueError(str(err).splitlines()[0].replace("Unknown dialect", "unknown SQL dialect", 1)) from None
     return Target(dialect)
 
 
