@@ -15,6 +15,7 @@ from sqlglot import exp
 from tillite import errors, sqlgen
 from tillite import store as S
 from tillite.cli import main
+from tillite.targets import DuckDB
 from tillite.engines import DuckDBEngine, PostgresEngine
 from tillite.errors import EngineError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict
 from tillite.pipeline import check_may_replace
@@ -92,6 +93,7 @@ class RaisingEngine:
     """An engine whose every query raises ``err`` (to drive store._claim)."""
 
     dialect = "duckdb"
+    target = DuckDB()
 
     def __init__(self, err: Exception) -> None:
         self.err = err

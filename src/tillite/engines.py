@@ -26,6 +26,7 @@ from sqlglot import exp
 from . import sqlgen
 from .errors import DatabaseLocked, EngineError, MissingExtraError, SourceError, TilliteError, TransactionConflict
 from .sqlgen import Source
+from .targets import Target, target_for
 
 __all__ = [
     "Engine",
@@ -80,6 +81,7 @@ class Engine(Protocol):
     """What the pipeline needs from a database."""
 
     dialect: str
+    target: Target  # the engine's SQL differences (targets.py), the target of ``dialect``
 
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
         """Run a query; its columns as numpy arrays.
@@ -131,8 +133,13 @@ class StatementRunner:
 
     dialect: str
 
+    @property
+    def target(self) -> Target:
+        """The engine's SQL target (targets.py): every way its SQL differs, for the statement builders."""
+        return target_for(self.dialect)
+
     def sql_text(self, statement: exp.Expression) -> str:
-        return sqlgen.render(statement, self.dialect)
+        return sqlgen.render(statement, self.target)
 
     def __enter__(self) -> Any:
         return self
@@ -147,7 +154,7 @@ class StatementRunner:
 
     def relation_comment(self, name: str) -> str | None:
         """The comment on a view or table through the catalog (DuckDB, PostgreSQL)."""
-        got = self.query(sqlgen.comment_of_statement(name, self.dialect))  # type: ignore[attr-defined]
+        got = self.query(sqlgen.comment_of_statement(name, self.target))  # type: ignore[attr-defined]
         values = [v for v in got.get("comment", []) if v is not None and not np.ma.is_masked(v)]
         return str(values[0]) if values else None
 
@@ -711,7 +718,7 @@ class SparkEngine(StatementRunner):
 
     def sql_text(self, statement: exp.Expression) -> str:
         try:
-            return sqlgen.render(statement, self.dialect)
+            return sqlgen.render(statement, self.target)
         except ValueError as err:
             raise SourceError(str(err)) from None
 
@@ -751,7 +758,7 @@ class SparkEngine(StatementRunner):
     def _save_as_table(self, create: exp.Create) -> None:
         """CREATE [OR REPLACE] TABLE name AS SELECT, written by Spark's own table writer."""
         mode = "overwrite" if create.args.get("replace") else "errorifexists"
-        self._frame(create.expression).write.mode(mode).saveAsTable(sqlgen.render(create.this, self.dialect))
+        self._frame(create.expression).write.mode(mode).saveAsTable(sqlgen.render(create.this, self.target))
 
     def _write_file(self, copy: exp.Copy) -> None:
         """COPY (select) TO 'path' (FORMAT f): Spark writes one part file, which becomes ``path``.
@@ -785,7 +792,7 @@ class SparkEngine(StatementRunner):
         if not table.name:
             return False
         try:
-            return bool(self.spark.catalog.getTable(sqlgen.render(table, self.dialect)).isTemporary)
+            return bool(self.spark.catalog.getTable(sqlgen.render(table, self.target)).isTemporary)
         except self._errors_caught:
             return False
 
@@ -814,7 +821,7 @@ class SparkEngine(StatementRunner):
     def relation_kind(self, name: str) -> str | None:
         """Through Spark's catalog (Spark SQL has no information_schema)."""
         try:
-            found = self.spark.catalog.getTable(sqlgen.render(sqlgen.table_name(name), self.dialect))
+            found = self.spark.catalog.getTable(sqlgen.render(sqlgen.table_name(name), self.target))
         except self._errors_caught:
             return None
         return "view" if found.isTemporary or str(found.tableType).upper() in ("VIEW", "TEMPORARY") else "table"
@@ -822,7 +829,7 @@ class SparkEngine(StatementRunner):
     def relation_comment(self, name: str) -> str | None:
         """Through Spark's catalog: a table's comment, a catalog view's 'comment' property (temporary views: None)."""
         try:
-            found = self.spark.catalog.getTable(sqlgen.render(sqlgen.table_name(name), self.dialect))
+            found = self.spark.catalog.getTable(sqlgen.render(sqlgen.table_name(name), self.target))
         except self._errors_caught:
             return None
         return None if found.isTemporary else found.description

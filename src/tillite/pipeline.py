@@ -123,15 +123,15 @@ def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings
     d = len(columns)
     target = settings.sample_rows
     if rows <= 2 * target:
-        sample = _fetch_matrix(engine, sqlgen.sample_statement(source, columns, engine.dialect), d)
+        sample = _fetch_matrix(engine, sqlgen.sample_statement(source, columns, engine.target), d)
     else:
         percent = min(100.0, 150.0 * target / rows)
-        first = "BERNOULLI" if engine.dialect == "duckdb" else "SYSTEM"
-        stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method=first,
+        first = engine.target.first_sample_method
+        stmt = sqlgen.sample_statement(source, columns, engine.target, percent=percent, method=first,
                                        limit=4 * target, seed=settings.seed)
         sample = _fetch_matrix(engine, stmt, d)
         if len(sample) < target // 10 and first != "BERNOULLI":
-            stmt = sqlgen.sample_statement(source, columns, engine.dialect, percent=percent, method="BERNOULLI",
+            stmt = sqlgen.sample_statement(source, columns, engine.target, percent=percent, method="BERNOULLI",
                                            limit=4 * target, seed=settings.seed)
             sample = _fetch_matrix(engine, stmt, d)
     sample = canonical_sample(sample, target, settings.seed)
@@ -139,7 +139,7 @@ def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings
     # a column equal in every sampled row has only the mean's round-off as sd (1/sd may overflow): scale 1
     flat = np.ptp(sample, axis=0) == 0 if len(sample) else np.ones(d, dtype=bool)
     scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
-    repeats = "yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.dialect)
+    repeats = "yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.target)
     return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
 
 
@@ -308,7 +308,7 @@ def _null_mask(values: np.ndarray) -> np.ndarray:
 def run_cell_pass(engine: Engine, source: Source, columns: Sequence[str], grid: Grid) -> CellPass:
     """One GROUP BY over the grid key: cell CFs plus the skipped-row count."""
     t0 = time.perf_counter()
-    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.dialect))
+    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.target))
     cells, keys, skipped = cells_from_result(got, grid, len(columns))
     return CellPass(cells=cells, keys=keys, usable=int(round(cells.n.sum())), skipped=skipped, seconds=time.perf_counter() - t0)
 
@@ -369,7 +369,7 @@ def run_refine_pass(
     n ||m - c||^2 (weighted), so both SSEs come from n, LS and the summed distances.
     """
     t0 = time.perf_counter()
-    got = engine.query(sqlgen.refine_statement(source, columns, assign, engine.dialect, cell_map=cell_map))
+    got = engine.query(sqlgen.refine_statement(source, columns, assign, engine.target, cell_map=cell_map))
     null = _null_mask(got["segment"])
     ids = np.asarray(np.ma.getdata(got["segment"]), dtype=np.float64)
     null = null | (ids < 0)  # the outlier group takes no part in the centroids
@@ -932,7 +932,7 @@ def label(
     """
     source_columns = check_columns(engine, source, model.columns)
     select = sqlgen.label_select(
-        source, model.columns, source_columns, model.assignment(), engine.dialect, cell_map=model.cell_map_spec(),
+        source, model.columns, source_columns, model.assignment(), engine.target, cell_map=model.cell_map_spec(),
         materialize=materialize or bool(source.files),
     )
     if model.names:  # a segment_name column once segments are named (`tillite name`)
@@ -952,7 +952,7 @@ def label(
     made = "table" if materialize else "view"
     statements = [
         sqlgen.create_relation_statement(into, select, materialize),
-        sqlgen.mark_statement(into, made, owner_comment(store), engine.dialect),
+        sqlgen.mark_statement(into, made, owner_comment(store), engine.target),
     ]
     # no engine but DuckDB has CREATE OR REPLACE TABLE, and PostgreSQL replaces a view only by one
     # with the same leading columns: anything but a view of ours is dropped first, in the same transaction

@@ -107,7 +107,7 @@ def assigned_rows(engine: Engine, source: Source, model: Model, by: Sequence[str
     materialized labels table (``labels``, made by `tillite label --materialize` with this model)."""
     if labels is not None:
         return sqlgen.labelled_rows_select(labels, model.columns, by)
-    return sqlgen.report_rows_select(source, model.columns, by, model.assignment(), engine.dialect, cell_map=model.cell_map_spec())
+    return sqlgen.report_rows_select(source, model.columns, by, model.assignment(), engine.target, cell_map=model.cell_map_spec())
 
 
 def report_scan(
@@ -191,7 +191,7 @@ def sample_quartiles(
     (all rows when the table is small); returns them and the sample's size."""
     percent = quartile_sample_percent(model) if percent is None else percent
     rows = assigned_rows(engine, source, model, [], labels)
-    got = engine.query(sqlgen.quartile_statement(sqlgen.sampled_rows(rows, percent, engine.dialect), model.columns, engine.dialect))
+    got = engine.query(sqlgen.quartile_statement(sqlgen.sampled_rows(rows, percent, engine.target), model.columns, engine.target))
     out: dict[int, dict[str, Any]] = {}
     segs = _masked_ints(got["s"])
     sampled = 0

@@ -373,7 +373,7 @@ def fingerprint_partitions(
     """Current fingerprints of every partition (one aggregate pass; files only where size/mtime moved)."""
     partitioning = _partitioning(spec)
     if not spec.files:
-        got = engine.query(sqlgen.fingerprint_statement(source, columns, partitioning, engine.dialect))
+        got = engine.query(sqlgen.fingerprint_statement(source, columns, partitioning, engine.target))
         return _fingerprints_of(got, len(spec.columns))
     out: dict[str, Fingerprint] = {}
     to_hash = []
@@ -387,7 +387,7 @@ def fingerprint_partitions(
             to_hash.append(path)
     if to_hash:
         scan = _scan_source(source, spec, to_hash)
-        got = engine.query(sqlgen.fingerprint_statement(scan, columns, partitioning, engine.dialect))
+        got = engine.query(sqlgen.fingerprint_statement(scan, columns, partitioning, engine.target))
         out.update(_fingerprints_of(got, 1, out))
     return out
 
@@ -698,7 +698,7 @@ def build(
             engine.execute(st)
         engine.execute(sqlgen.create_table_statement(cells_table, _cells_columns(grid.dims, d), if_not_exists=False))
         t1 = time.perf_counter()
-        engine.execute(sqlgen.insert_select_statement(cells_table, sqlgen.cells_statement(scan, columns, grid, engine.dialect, _partitioning(partition))))
+        engine.execute(sqlgen.insert_select_statement(cells_table, sqlgen.cells_statement(scan, columns, grid, engine.target, _partitioning(partition))))
         cells_grid, keys, skipped = merged_cells(engine, cells_table, grid, d)
         if cells_grid.m == 0:
             raise InputError(f"no usable rows in {source.label}")
@@ -914,7 +914,7 @@ def named_partitions_predicate(
     names = list(info.partition.columns)
     if where:
         try:
-            return sqlgen.partition_predicate(where, names, engine.dialect)
+            return sqlgen.partition_predicate(where, names, engine.target)
         except ValueError as err:
             raise ParameterError(f"{{where}} {where!r}: {err}", "where") from None
     types = types or dict(engine.describe(info.source))
@@ -927,7 +927,7 @@ def named_partitions_predicate(
         wanted.setdefault(by_lower[name.strip().lower()], []).append(value)
     terms = []
     for name, values in wanted.items():
-        kind = sqlgen.exp.DataType.build(types[name], dialect=engine.dialect)
+        kind = sqlgen.exp.DataType.build(types[name], dialect=engine.target.name)
         casts = [sqlgen.exp.cast(sqlgen.exp.Literal.string(v), kind) for v in values]
         try:  # each value must read as the column's type: one tiny query, no table
             engine.query(sqlgen.exp.select(*[sqlgen.exp.alias_(c.copy(), f"v{i}", quoted=True) for i, c in enumerate(casts)]))
@@ -939,7 +939,7 @@ def named_partitions_predicate(
 
 def _fingerprints_where(engine: Engine, scan: Source, info: StoreInfo, predicate: Any) -> dict[str, Fingerprint]:
     """Fingerprints of only the partitions whose rows satisfy ``predicate`` (the engine can skip the others' blocks)."""
-    statement = sqlgen.fingerprint_statement(scan, info.columns, _partitioning(info.partition), engine.dialect, where=predicate)
+    statement = sqlgen.fingerprint_statement(scan, info.columns, _partitioning(info.partition), engine.target, where=predicate)
     return _fingerprints_of(engine.query(statement), len(info.partition.columns))
 
 
@@ -952,7 +952,7 @@ def _stored_matching(
         return set()
     types = types or dict(engine.describe(info.source))
     names = list(info.partition.columns)
-    kinds = [sqlgen.exp.DataType.build(types[n], dialect=engine.dialect) for n in names]
+    kinds = [sqlgen.exp.DataType.build(types[n], dialect=engine.target.name) for n in names]
     key_alias = sqlgen.internal("part")
     rows = []
     for key, fp in stored.items():
@@ -978,10 +978,10 @@ def _restricted_cells(
     """
     partitioning = _partitioning(info.partition)
     if info.partition.files:
-        return sqlgen.cells_statement(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.dialect, partitioning)
+        return sqlgen.cells_statement(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.target, partitioning)
     types = types or dict(engine.describe(info.source))
-    where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps], engine.dialect)
-    return sqlgen.cells_statement(scan, info.columns, info.grid, engine.dialect, partitioning, where=where)
+    where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps], engine.target)
+    return sqlgen.cells_statement(scan, info.columns, info.grid, engine.target, partitioning, where=where)
 
 
 def _claim(engine: Engine, info: StoreInfo) -> None:
@@ -995,7 +995,7 @@ def _claim(engine: Engine, info: StoreInfo) -> None:
     """
     where = sqlgen.equals_all({"store": info.name})
     try:
-        got = engine.query(sqlgen.lock_rows_statement(STORES, where, ["version"], engine.dialect))
+        got = engine.query(sqlgen.lock_rows_statement(STORES, where, ["version"], engine.target))
         if len(got["version"]) != 1 or int(got["version"][0]) != info.version:
             raise _busy(info.name)
         engine.execute(sqlgen.update_statement(
@@ -1011,7 +1011,7 @@ def _busy(store: str) -> StoreBusy:
 
 def require_transactions(engine: Engine) -> None:
     """Refuse engines without multi-statement transactions: a store must change all at once or not at all."""
-    if engine.dialect in sqlgen.SPARK_DIALECTS:
+    if not engine.target.transactions:
         raise StoreError(
             "the summary store needs multi-statement transactions (a refresh swaps cells, partitions and model "
             "together, or changes nothing), which Spark SQL does not have; keep the store in DuckDB or PostgreSQL "

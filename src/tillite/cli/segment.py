@@ -26,14 +26,12 @@ STAGES = ("profile", "cells", "refine", "label")
 __all__ = ["segment_command", "label_command", "show_command", "sql_command", "demo_command"]
 
 
-def _check_dialect(ctx, param, value: str) -> str:
-    from sqlglot.dialects.dialect import Dialect
-
+def _check_dialect(ctx, param, value: str) -> "sqlgen.Target":
+    """The target of a sqlglot dialect name (targets.target_for); a usage error naming an unknown one."""
     try:
-        Dialect.get_or_raise(value)
+        return sqlgen.target_for(value)
     except ValueError as err:
         raise click.BadParameter(str(err)) from None
-    return value
 
 
 @click.command("segment")
@@ -150,10 +148,10 @@ def show_command(model_path, as_json) -> None:
 @click.option("--columns", "-c", multiple=True, help="Columns (not needed with --model).")
 @click.option("--stage", type=click.Choice(STAGES), required=True, help="Which statement to print.")
 @click.option("--model", "-m", "model_path", help="Model file (needed for refine and label; cells then use its grid).")
-@click.option("--dialect", default="duckdb", show_default=True, callback=_check_dialect,
+@click.option("--dialect", "target", default="duckdb", show_default=True, callback=_check_dialect,
               help="SQL dialect to render (any sqlglot dialect name).")
 @parameter_option("cell_budget", help="About how many grid cells the cells stage aims for (without --model).")
-def sql_command(source, table, columns, stage, model_path, dialect, cell_budget) -> None:
+def sql_command(source, table, columns, stage, model_path, target, cell_budget) -> None:
     """Print the SQL a stage would run, without running it.
 
     Without SOURCE nothing is connected to: give --table, and --model for the
@@ -174,22 +172,22 @@ def sql_command(source, table, columns, stage, model_path, dialect, cell_budget)
                 src = sqlgen.Source.of_table(table)
             except ValueError as err:
                 raise click.BadParameter(str(err), param_hint="--table") from None
-            statements = _stage_statements(None, src, cols, cols, stage, model, dialect, cell_budget)
+            statements = _stage_statements(None, src, cols, cols, stage, model, target, cell_budget)
         else:
             from ..pipeline import check_columns
 
             with open_with_options(source, table) as (engine, src):
                 source_columns = check_columns(engine, src, cols)
-                statements = _stage_statements(engine, src, cols, source_columns, stage, model, dialect, cell_budget)
+                statements = _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget)
         for st in statements:
-            click.echo(sqlgen.render(st, dialect, pretty=True) + ";")
+            click.echo(sqlgen.render(st, target, pretty=True) + ";")
 
 
-def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, cell_budget):
+def _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget):
     from ..pipeline import grid_for_profile
 
     if stage == "profile":
-        return [sqlgen.count_statement(src), sqlgen.sample_statement(src, cols, dialect, percent=1.0, limit=100_000)]
+        return [sqlgen.count_statement(src), sqlgen.sample_statement(src, cols, target, percent=1.0, limit=100_000)]
     if stage == "cells":
         if model is not None and model.grid:
             grid = sqlgen.Grid.from_dict(model.grid)
@@ -197,12 +195,12 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
             settings = Settings(k=1, cell_budget=cell_budget)
             settings.check(cols)
             grid = grid_for_profile(run_profile(engine, src, cols, settings), settings)
-        return [sqlgen.cells_statement(src, cols, grid, dialect)]
+        return [sqlgen.cells_statement(src, cols, grid, target)]
     if model is None:
         raise click.UsageError(f"--stage {stage} needs --model")
     if stage == "refine":
-        return [sqlgen.refine_statement(src, cols, model.assignment(), dialect, cell_map=model.cell_map_spec())]
-    return [sqlgen.label_select(src, cols, source_columns, model.assignment(), dialect, cell_map=model.cell_map_spec())]
+        return [sqlgen.refine_statement(src, cols, model.assignment(), target, cell_map=model.cell_map_spec())]
+    return [sqlgen.label_select(src, cols, source_columns, model.assignment(), target, cell_map=model.cell_map_spec())]
 
 
 @click.command("demo")
