@@ -40,28 +40,24 @@ from . import features as F
 from . import sqlgen, store_history
 from .engines import Engine
 from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
-    EngineError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
+    EngineError, InputError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
 )
 from .features import CF
 from .model import Model
-from .pipeline import (
-    InputError,
+from .pipeline import Settings, check_refresh_options, label as label_relation, store_owns_label
+from .stages import (
     ProgressFn,
-    check_refresh_options,
     SegmentStats,
-    Settings,
-    _quiet,
     cells_from_result,
     check_columns,
     grid_for_profile,
-    label as label_relation,
     make_model,
     order_by_size,
+    quiet_progress,
     refine_passes,
     run_profile,
     second_phase,
     standardise_cells,
-    store_owns_label,
 )
 from .segmenters import nearest
 from .sqlgen import Grid, Source
@@ -647,7 +643,7 @@ def build(
     partition: PartitionSpec,
     settings: Settings,
     store: str | None = None,
-    progress: ProgressFn = _quiet,
+    progress: ProgressFn = quiet_progress,
     grid: Grid | None = None,
     init_centroids: np.ndarray | None = None,
     replace: bool = False,
@@ -748,7 +744,7 @@ def _check_partition_count(engine: Engine, source: Source, partition: PartitionS
     return []
 
 
-def regrid(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segment_shift: float = 3.0) -> Model:
+def regrid(engine: Engine, store: str, progress: ProgressFn = quiet_progress, new_segment_shift: float = 3.0) -> Model:
     """Rebuild a store with a new grid from a new profile: every partition is rescanned.
 
     For when rows increasingly fall outside the built range (``status`` warns).
@@ -777,7 +773,7 @@ def _drop_store_statements(name: str, cells_table: str) -> list:
 def refresh(
     engine: Engine,
     store: str,
-    progress: ProgressFn = _quiet,
+    progress: ProgressFn = quiet_progress,
     drift_threshold: float = 0.5,
     new_segment_shift: float = 3.0,
     k: int | None = None,
@@ -1056,7 +1052,7 @@ def _relabel(engine: Engine, info: StoreInfo, model: Model) -> None:
                            in_transaction=True, store=info.name)
 
 
-def resegment(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segment_shift: float = 3.0) -> Model:
+def resegment(engine: Engine, store: str, progress: ProgressFn = quiet_progress, new_segment_shift: float = 3.0) -> Model:
     """Re-segment from the stored cells without scanning the source (e.g. after subtract_rows)."""
     require_transactions(engine)
     info = load(engine, store)
