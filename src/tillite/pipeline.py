@@ -22,7 +22,6 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from . import features as F
 from . import sqlgen
 from .engines import Engine, file_reader_for
 from .errors import InputError, ParameterError
@@ -30,10 +29,10 @@ from .model import Model, usual_file_mode
 from .sqlgen import Source
 from .stages import (  # noqa: F401  (re-exported: the stages' old import path)
     CONSTANT_ULPS, DENSITY_ROWS_PER_CELL, K_LIMIT_CELLS, K_LIMIT_FLOOR, WIDTH_SEARCH_ROWS,
-    CellBoxes, CellPass, PhaseResult, Profile, ProgressFn, RefineResult, SegmentStats, Standardisation,
-    canonical_sample, cell_target, cells_from_result, cf_from_result, check_columns, check_k_fits, check_k_limit,
+    CellBoxes, CellPass, PhaseResult, Profile, ProgressFn, RefinedPhase, RefineResult, SegmentStats, Standardisation,
+    attach_phase, canonical_sample, cell_target, cells_from_result, cf_from_result, check_columns, check_k_fits, check_k_limit,
     choose_width, constant_columns, engine_has_rows, fetch_matrix, grid_axes, grid_for_profile, k_limit, make_model,
-    nothing_to_segment_on, null_mask, order_by_size, quiet_progress, refine_loop, refine_passes, robust_mean_sd,
+    nothing_to_segment_on, null_mask, order_by_size, quiet_progress, refine_loop, refine_passes, refine_phase, robust_mean_sd,
     run_cell_pass, run_profile, run_refine_pass, run_second_phase, second_phase, size_order, standardise_cells,
     temporary_cell_map,
 )
@@ -211,30 +210,16 @@ def segment(
     progress("second phase", f"{phase.summary}, {t_second:.2f} s")
 
     # 4. refine passes in SQL (not for density segments: they would undo the shapes)
-    stats = SegmentStats.of_cfs(F.group_sum(cells, phase.cell_labels, phase.k), std.weights)
-    passes, refine_times = [], {}
-    if settings.method != "density":
-        stats, passes, refine_times = refine_passes(
-            engine, source, columns, std, phase.centroids, stats, settings, progress, cp.usable,
-            cell_map=phase.cell_map(grid, cp.keys), cell_boxes=CellBoxes.of_grid(grid, cp.keys, std, phase.cell_labels),
-        )
-    # density segments come numbered largest first already; the others are renumbered so
-    order = size_order(stats) if settings.method != "density" else np.arange(len(stats.n))
-    ordered = stats.take(order)
-    new_id = np.empty(len(order), dtype=np.int64)
-    new_id[order] = np.arange(len(order))
+    refined = refine_phase(engine, source, columns, cells, cp.keys, grid, std, phase, settings, progress, cp.usable)
     model = make_model(
-        columns, std, grid, ordered, settings, source, cp.usable + cp.skipped, cp.skipped,
+        columns, std, grid, refined.stats, settings, source, cp.usable + cp.skipped, cp.skipped,
         cells_count(cp), extra_params={"cell_sse": phase.sse, "sample_repeats": prof.repeats,
-                                      "sizes_from": "cells" if settings.method != "density" and not passes else "labels",
+                                      "sizes_from": "cells" if settings.method != "density" and not refined.passes else "labels",
                                       **phase.params},
     )
-    model.method = settings.method
-    model.extras = phase.extras
-    model.cell_map = phase.cell_map_dict(grid, cp.keys, new_id) if phase.needs_cell_map else {}
-    model.passes = passes
+    attach_phase(model, settings.method, phase, refined, grid, cp.keys)
     model.report_map = model_map(cp, model)
-    model.timings = {"profile": prof.seconds, "cells": cp.seconds, "second_phase": t_second, **refine_times}
+    model.timings = {"profile": prof.seconds, "cells": cp.seconds, "second_phase": t_second, **refined.timings}
     model.timings["total"] = time.perf_counter() - t_start
     return model
 

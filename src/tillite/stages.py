@@ -745,6 +745,45 @@ def order_by_size(stats: SegmentStats) -> SegmentStats:
     return stats.take(size_order(stats))
 
 
+@dataclass
+class RefinedPhase:
+    """The second phase's segments after the refine passes, renumbered largest first."""
+
+    stats: SegmentStats  # in id order 0..k-1
+    new_id: np.ndarray  # the id of each second-phase position
+    passes: list[dict]
+    timings: dict[str, float]
+
+
+def refine_phase(
+    engine: Engine, source: Source, columns: Sequence[str], cells: CF, keys: np.ndarray, grid: Grid,
+    std: Standardisation, phase: PhaseResult, settings: Settings, progress: ProgressFn, usable: int,
+) -> RefinedPhase:
+    """Refine passes on the second phase's segments (none when the cells settle it, and none for density:
+    they would undo its shapes), then ids largest first (density's come numbered so already)."""
+    stats = SegmentStats.of_cfs(F.group_sum(cells, phase.cell_labels, phase.k), std.weights)
+    passes: list[dict] = []
+    timings: dict[str, float] = {}
+    if settings.method != "density":
+        stats, passes, timings = refine_passes(
+            engine, source, columns, std, phase.centroids, stats, settings, progress, usable,
+            cell_map=phase.cell_map(grid, keys), cell_boxes=CellBoxes.of_grid(grid, keys, std, phase.cell_labels),
+        )
+    order = size_order(stats) if settings.method != "density" else np.arange(len(stats.n))
+    new_id = np.empty(len(order), dtype=np.int64)
+    new_id[order] = np.arange(len(order))
+    return RefinedPhase(stats.take(order), new_id, passes, timings)
+
+
+def attach_phase(model: Model, method: str, phase: PhaseResult, refined: RefinedPhase, grid: Grid, keys: np.ndarray) -> Model:
+    """The method, the second phase's extras, the label cell map (in the new ids) and the passes, on the model."""
+    model.method = method
+    model.extras = phase.extras
+    model.cell_map = phase.cell_map_dict(grid, keys, refined.new_id) if phase.needs_cell_map else {}
+    model.passes = refined.passes
+    return model
+
+
 def make_model(
     columns: Sequence[str],
     std: Standardisation,

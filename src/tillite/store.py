@@ -46,7 +46,6 @@ from .features import CF
 from .model import Model
 from .pipeline import Settings, check_refresh_options, label as label_relation, store_owns_label
 from .stages import (
-    CellBoxes,
     ProgressFn,
     SegmentStats,
     Standardisation,
@@ -55,12 +54,13 @@ from .stages import (
     grid_for_profile,
     make_model,
     order_by_size,
+    attach_phase,
     quiet_progress,
     refine_passes,
+    refine_phase,
     run_profile,
     run_second_phase,
     second_phase,
-    size_order,
     standardise_cells,
 )
 from .segmenters import nearest
@@ -521,22 +521,11 @@ def _ward_on_cells(
     t0 = time.perf_counter()
     phase = run_second_phase(cells, keys, settings, std.weights, where, progress)
     progress("second phase", f"{phase.summary}, {time.perf_counter() - t0:.2f} s")
-    stats = SegmentStats.of_cfs(F.group_sum(cells, phase.cell_labels, phase.k), std.weights)
     usable = int(round(cells.n.sum()))
-    stats, passes, _ = refine_passes(
-        engine, source, columns, std, phase.centroids, stats, settings, progress, usable,
-        cell_map=phase.cell_map(grid, keys), cell_boxes=CellBoxes.of_grid(grid, keys, std, phase.cell_labels),
-    )
-    order = size_order(stats)
-    new_id = np.empty(len(order), dtype=np.int64)
-    new_id[order] = np.arange(len(order))
-    model = make_model(columns, std, grid, stats.take(order), settings, source, usable + skipped, skipped,
+    refined = refine_phase(engine, source, columns, cells, keys, grid, std, phase, settings, progress, usable)
+    model = make_model(columns, std, grid, refined.stats, settings, source, usable + skipped, skipped,
                        int((cells.n > 0).sum()), extra_params={"cell_sse": phase.sse, **phase.params})
-    model.method = "ward"
-    model.extras = phase.extras
-    model.cell_map = phase.cell_map_dict(grid, keys, new_id) if phase.needs_cell_map else {}
-    model.passes = passes
-    return model
+    return attach_phase(model, "ward", phase, refined, grid, keys)
 
 
 def check_store_method(method: str) -> None:
