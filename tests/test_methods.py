@@ -167,7 +167,7 @@ def test_k_far_above_the_cells_is_one_error_line_naming_k(tmp_path, blobs, k):
 
 
 def test_ward_on_many_cells_condenses_first_without_outliers_and_show_says_so(tmp_path, blobs, monkeypatch):
-    import tillite.pipeline as P
+    import tillite.stages as P
 
     monkeypatch.setattr(P, "WARD_ENTRIES", 400)
     x, y = blobs

@@ -236,7 +236,7 @@ def breakdown(engine: Engine, source: Source, model: Model, column: str, top: in
 
 def map_cells(engine: Engine, source: Source, model: Model) -> tuple[CF, np.ndarray]:
     """The grid cells' CFs (in the grid's units) and keys: one cell pass with the model's grid."""
-    from .pipeline import run_cell_pass
+    from .stages import run_cell_pass
 
     cp = run_cell_pass(engine, source, model.columns, Grid.from_dict(model.grid))
     return cp.cells, cp.keys
@@ -555,7 +555,7 @@ def report_of_model(
     """
     import time
 
-    from .pipeline import check_columns
+    from .stages import check_columns
 
     by = list(dict.fromkeys(by))  # a column named twice is one breakdown
     present = check_columns(engine, source, list(model.columns))
@@ -580,7 +580,7 @@ def report_of_model(
 
 def _labels_table(engine: Engine, labels: str, model: Model, by: Sequence[str]) -> Source:
     """The --labels table as a Source, checked to hold a segment column, the model's and the --by columns."""
-    from .pipeline import check_columns
+    from .stages import check_columns
 
     src = Source.of_table(labels)
     present = check_columns(engine, src, ["segment"])
@@ -594,7 +594,7 @@ def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress
     """The report of a summary store's current model: the map from its kept cells (no scan), plus its history."""
     from . import store as S
     from . import store_history
-    from .pipeline import check_columns
+    from .stages import check_columns
 
     info = S.load(engine, store)
     by = list(dict.fromkeys(by))  # a column named twice is one breakdown

@@ -38,6 +38,8 @@ def store_group() -> None:
 @click.option("--store", "store_name", help="Store name (default: the table name, or the folder of the files).")
 @click.option("--db", "database", help="For a Parquet/CSV SOURCE: the DuckDB file that keeps the store (created if missing).")
 @parameter_option("k", type=int, required=True, help="Number of segments.")
+@parameter_option("method", help="Second phase on the merged cells: kmeans or ward, as in `tillite segment`; refreshes keep "
+                                 "it. density is refused (its cell map would miss rows arriving in new cells).")
 @parameter_option("scaling", help="Put columns on a common scale (z-scores) before measuring distances, or use them as they are.")
 @parameter_option("weights", help="Column multipliers after scaling, e.g. litres=2.")
 @parameter_option("cell_budget", help="About how many grid cells the frozen grid aims for.")
@@ -53,12 +55,12 @@ def store_group() -> None:
 @click.option("--out", "-o", help="Also write the model file here.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
-def build_command(source, table, columns, partition_by, store_name, database, k, scaling, weights, cell_budget, refine_passes,
+def build_command(source, table, columns, partition_by, store_name, database, k, method, scaling, weights, cell_budget, refine_passes,
                   n_init, seed, regrid, many_partitions, out, quiet, as_json) -> None:
     """Build a summary store for SOURCE: frozen grid, per-partition cells, first segments."""
     with user_errors(options={"replace": "--regrid"}):
         settings = store_api.Settings(
-            k=k, scaling=scaling, weights=parse_weights(weights), cell_budget=cell_budget,
+            k=k, method=method, scaling=scaling, weights=parse_weights(weights), cell_budget=cell_budget,
             refine_passes=refine_passes, n_init=n_init, seed=seed,
         )
         if is_file_source(source) and not database:
@@ -111,7 +113,7 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
                    f"{100 * st['outside_share']:.2f}% of rows outside the built range")
         click.echo(f"segments: k={st['k']}, ids {st['segment_ids']}")
         kept = st["settings"]
-        click.echo(f"settings kept by refreshes: k={kept.get('k')}, refine passes {kept.get('refine_passes')}, "
+        click.echo(f"settings kept by refreshes: k={kept.get('k')}, method {kept.get('method', 'kmeans')}, refine passes {kept.get('refine_passes')}, "
                    f"restarts {kept.get('n_init')}, seed {kept.get('seed')}, scaling {kept.get('scaling')}")
         click.echo(f"tables: {st['cells_table']} (cells), {store_api.STORES}, {store_api.PARTS}, {store_api.LABELS}, "
                    f"{store_api.store_history.HISTORY}")
