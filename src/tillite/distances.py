@@ -48,7 +48,9 @@ def sq_distance_blocks(x: np.ndarray, ref: np.ndarray | None = None, *, chunk: i
             g *= -2.0
             g += ref_norms[None, :]
         else:
-            g = np.maximum(x_norms[lo:hi, None] + ref_norms[None, :] - 2.0 * x[lo:hi] @ ref.T, 0.0)
+            g = x_norms[lo:hi, None] + ref_norms[None, :]
+            g -= 2.0 * x[lo:hi] @ ref.T
+            np.maximum(g, 0.0, out=g)
         if skip_self:
             g[np.arange(hi - lo), np.arange(lo, hi)] = np.inf
         yield lo, hi, g
