@@ -40,9 +40,9 @@ def dkw_rank_bound(m: int, alpha: float = 1e-6) -> float:
 
 
 @pytest.fixture
-def district_db(tmp_path, blobs):
+def district_db(tmp_path, blobs_30k_4d_5c):
     """The make_blobs rows, with NaN rows, a text column of districts (one hostile) and a NULL district."""
-    x, y = blobs
+    x, y = blobs_30k_4d_5c
     x = x.copy()
     x[:7, 1] = np.nan
     names = ["a", "b", "c", "d"]

@@ -15,7 +15,7 @@ from tillite.engines import DuckDBEngine
 from tillite.pipeline import Settings, run_cell_pass
 from tillite.sqlgen import Source
 
-from conftest import refresh_held_open
+from conftest import refresh_held_open, sorted_cells, store_snapshot
 
 COLS = list(DEMO_COLUMNS)
 
@@ -33,11 +33,6 @@ def built(demo_db):
     info, model = S.build(engine, Source.of_table("meter_days"), COLS, S.PartitionSpec(("day",)), Settings(k=5, refine_passes=0))
     yield engine, info, model
     engine.close()
-
-
-def sorted_cells(cells, keys):
-    order = np.lexsort(keys.T[::-1])
-    return keys[order], cells.n[order], cells.ls[order], cells.ss[order]
 
 
 def assert_store_equals_fresh_cell_pass(engine, info):
@@ -63,11 +58,6 @@ def change_partitions(con):
         "INSERT INTO meter_days SELECT meter_id, district, day + 40, litres, night_share, peak_litres, flow_run_hours, "
         "zero_hours FROM meter_days WHERE day = DATE '2026-01-06'"
     )
-
-
-def store_snapshot(con, info):
-    tables = [S.STORES, S.PARTS, S.LABELS, info.cells_table]
-    return {t: sorted(map(repr, con.execute(f'SELECT * FROM "{t}"').fetchall())) for t in tables}
 
 
 def test_build_then_refresh_with_no_change_scans_nothing_new(built):

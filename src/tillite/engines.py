@@ -147,6 +147,21 @@ class StatementRunner:
     def __exit__(self, *exc: object) -> None:
         self.close()  # type: ignore[attr-defined]
 
+    def execute(self, statement: exp.Expression) -> None:
+        """Run a statement that returns nothing, the driver's errors as ours (DuckDB, PostgreSQL)."""
+        with self._errors():  # type: ignore[attr-defined]
+            self.con.execute(self.sql_text(statement))  # type: ignore[attr-defined]
+
+    @contextmanager
+    def transaction(self) -> Iterator[None]:
+        """All statements inside commit together, or none do (ROLLBACK on any error inside).
+
+        The driver's own transaction (``_driver_transaction``: engines.duckdb_transaction,
+        psycopg's ``transaction()``), its errors as ours.
+        """
+        with self._errors(), self._driver_transaction():  # type: ignore[attr-defined]
+            yield
+
     def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
         with self.transaction():
             for st in statements:
@@ -234,15 +249,8 @@ class DuckDBEngine(StatementRunner):
         _count_fetched(self, got)
         return got
 
-    def execute(self, statement: exp.Expression) -> None:
-        with self._errors():
-            self.con.execute(self.sql_text(statement))
-
-    @contextmanager
-    def transaction(self) -> Iterator[None]:
-        """All statements inside commit together, or none do (rollback on any error)."""
-        with self._errors(), duckdb_transaction(self.con):
-            yield
+    def _driver_transaction(self) -> ContextManager[None]:
+        return duckdb_transaction(self.con)
 
     def snapshot_transaction(self) -> ContextManager[None]:
         """A transaction whose reads all see one snapshot: every DuckDB transaction does."""
@@ -556,15 +564,8 @@ class PostgresEngine(StatementRunner):
         _count_fetched(self, got)
         return got
 
-    def execute(self, statement: exp.Expression) -> None:
-        with self._errors():
-            self.con.execute(self.sql_text(statement))
-
-    @contextmanager
-    def transaction(self) -> Iterator[None]:
-        """BEGIN ... COMMIT, or ROLLBACK on any error inside."""
-        with self._errors(), self.con.transaction():
-            yield
+    def _driver_transaction(self) -> ContextManager[None]:
+        return self.con.transaction()
 
     @contextmanager
     def snapshot_transaction(self) -> Iterator[None]:
