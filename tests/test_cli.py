@@ -21,6 +21,7 @@ import sqlglot
 from sklearn.metrics import adjusted_rand_score
 
 from conftest import assert_one_error_line, columns_of, fetch_columns, fetch_rows, run_cli, write_table
+from tillite.cli import main
 
 NAMES = ["a", "b", "c"]
 STAGE_LINES = ("[tillite] profile:", "[tillite] cells:", "[tillite] second phase:", "[tillite] refine:")
