@@ -23,7 +23,7 @@ from tillite.pipeline import Settings, label, segment
 from tillite import sqlgen
 from tillite.sqlgen import Source
 
-from conftest import WITHIN_GROUPS, grouped_blobs, write_table
+from conftest import WITHIN_GROUPS, assert_one_error_line, grouped_blobs, run_cli as run, write_table
 
 COLUMNS = ["a", "b", "c"]
 #: A small cell budget, so the cells do not settle the segments and refine passes run; passes until
@@ -207,15 +207,11 @@ def many_groups_db(tmp_path_factory):
     (["--within", "kind", "--method", "density"], ["--within", "--method", "density"]),
 ])
 def test_bad_within_gives_one_error_line(many_groups_db, extra, needles):
-    from test_bad_inputs import assert_one_error_line, run
-
     k = [] if "density" in extra else ["--k", 3]
     assert_one_error_line(run("segment", many_groups_db, "-t", "t", "-c", "a,b,c", *k, *extra, "-q"), *needles)
 
 
 def test_commands_without_within_support_refuse_such_a_model_in_one_line(within_db, tmp_path):
-    from test_bad_inputs import assert_one_error_line, run
-
     out = tmp_path / "m.json"
     assert run("segment", within_db, "-t", "meters", "-c", "a,b,c", "--k", 2, "--within", "grp", "-o", out, "-q").exit_code == 0
     assert_one_error_line(run("report", within_db, "-t", "meters", "--model", out, "-o", tmp_path / "r.html", "-q"),
@@ -243,8 +239,6 @@ def test_demo_prints_segments_within_each_district(tmp_path):
 
 
 def test_store_build_refuses_within_in_one_line(within_db):
-    from test_bad_inputs import assert_one_error_line, run
-
     assert_one_error_line(run("store", "build", within_db, "-t", "meters", "-c", "a,b,c", "--partition-by", "grp", "--k", 2,
                               "--within", "grp", "-q"), "--within", "summary stores")
 

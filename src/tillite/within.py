@@ -24,10 +24,11 @@ from .engines import Engine, SourceError
 from .errors import InputError, ParameterError
 from .features import CF
 from .model import Model
-from .pipeline import (
-    CellBoxes, Profile, ProgressFn, SegmentStats, Settings, Standardisation, canonical_sample,
+from .stages import (
+    CellBoxes, Profile, ProgressFn, SegmentStats, Standardisation, canonical_sample,
     check_columns, choose_width, grid_for_profile, robust_mean_sd, run_second_phase, size_order, standardise_cells,
 )
+from .settings import Settings
 from .sqlgen import Grid, Partitioning, Source
 from .within_sql import GroupAssignment
 
@@ -97,13 +98,13 @@ def run_grouped_profile(engine: Engine, source: Source, columns: Sequence[str], 
         raise InputError(f"{source.label} has no rows")
     d, target = len(columns), settings.sample_rows
     if rows <= 2 * target:
-        got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.dialect))
+        got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.target))
     else:
         percent = min(100.0, 150.0 * target / rows)
-        first = "BERNOULLI" if engine.dialect == "duckdb" else "SYSTEM"
-        got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.dialect, percent, first, settings.seed))
+        first = engine.target.first_sample_method
+        got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.target, percent, first, settings.seed))
         if len(got[within_sql.GROUP_TEXT]) < target // 10 and first != "BERNOULLI":
-            got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.dialect, percent, "BERNOULLI",
+            got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.target, percent, "BERNOULLI",
                                                                    settings.seed))
     texts = [None if t is None or (isinstance(t, float) and math.isnan(t)) else str(t)
              for t in np.ma.filled(np.asarray(got[within_sql.GROUP_TEXT], dtype=object), None)]
@@ -118,7 +119,7 @@ def run_grouped_profile(engine: Engine, source: Source, columns: Sequence[str], 
     center, sd = robust_mean_sd(sample)
     flat = np.ptp(sample, axis=0) == 0 if len(sample) else np.ones(d, dtype=bool)
     scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
-    repeats = "yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.dialect)
+    repeats = "yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.target)
     prof = Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
     return GroupedProfile(prof, groups, values)
 
@@ -174,9 +175,9 @@ def own_grid_cells(engine: Engine, source: Source, columns: Sequence[str], withi
     k = max(settings.k_candidates or (settings.k,))
     budget = max(settings.cell_budget // max(groups, 1), OWN_GRID_CELLS_PER_SEGMENT * k)
     grid = grid_for_profile(prof, replace(settings, cell_budget=budget), weights)
-    where = within_sql.group_predicate(within, value, group_type, engine.dialect)
-    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.dialect, where=where))
-    from .pipeline import cells_from_result
+    where = within_sql.group_predicate(within, value, group_type, engine.target)
+    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.target, where=where))
+    from .stages import cells_from_result
 
     cells, keys, skipped = cells_from_result(got, grid, len(columns))
     return grid, cells, keys, skipped
@@ -207,7 +208,7 @@ class GroupRun:
 
 def split_cells(got: dict[str, np.ndarray], grid: Grid, d: int) -> list[tuple[str | None, CF, np.ndarray, int]]:
     """The cell pass's rows split per group: (value, cells, keys, skipped), groups in text order, NULL last."""
-    from .pipeline import cells_from_result
+    from .stages import cells_from_result
 
     parts = np.asarray(got["part"], dtype=object)
     out = []
@@ -301,7 +302,7 @@ def run_refine_pass(engine: Engine, source: Source, columns: Sequence[str], assi
                     ) -> tuple[list[tuple[SegmentStats, SegmentStats]], float]:
     """One statement for every group: per group (rows at the centroids used, the same rows at their new means)."""
     t0 = time.perf_counter()
-    got = engine.query(within_sql.refine_statement(source, columns, assign, engine.dialect))
+    got = engine.query(within_sql.refine_statement(source, columns, assign, engine.target))
     d = len(columns)
     seg_null = np.ma.getmaskarray(got["segment"]) if np.ma.isMaskedArray(got["segment"]) else np.isnan(np.asarray(got["segment"], dtype=np.float64))
     gid_raw = got["gid"]
@@ -398,7 +399,7 @@ def segment_within(engine: Engine, source: Source, columns: Sequence[str], setti
                         f"grid width {grid.width:.3g} on {grid.dims} axes, {t_profile:.2f} s")
 
     t0 = time.perf_counter()
-    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.dialect, partition=Partitioning.of_columns([within])))
+    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.target, partition=Partitioning.of_columns([within])))
     parts = split_cells(got, grid, len(columns))
     t_cells = time.perf_counter() - t0
     if len(parts) > MAX_GROUPS:
@@ -521,8 +522,8 @@ def label_within_select(engine: Engine, source: Source, model: Model, source_col
     if model.within["column"] not in source_columns:
         raise SourceError(f"--within column {model.within['column']} of the model not found in {source.label}")
     assign = model_assignment(model)
-    unknown = int(engine.query(within_sql.unknown_groups_statement(source, assign, engine.dialect))["n"][0])
+    unknown = int(engine.query(within_sql.unknown_groups_statement(source, assign, engine.target))["n"][0])
     if unknown:
         warnings.warn(f"{unknown:,} row(s) of {source.label} are in {model.within['column']} groups the model does not know "
                       "(values that appeared after it was built): labelled NULL", UserWarning, stacklevel=3)
-    return within_sql.label_select(source, model.columns, source_columns, assign, engine.dialect, materialize=materialize)
+    return within_sql.label_select(source, model.columns, source_columns, assign, engine.target, materialize=materialize)

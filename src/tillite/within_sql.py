@@ -7,7 +7,7 @@ centroid set by its group, through a hash join against a small relation of
 (group, group position, centre, norm factors, score coefficients) -- one row per
 group -- rather than a CASE per coefficient.
 
-Like sqlgen, this module imports nothing of ours but sqlgen.
+Like sqlgen, this module imports nothing of ours but sqlgen and targets.
 """
 
 from __future__ import annotations
@@ -19,7 +19,8 @@ import numpy as np
 import sqlglot.expressions as exp
 
 from . import sqlgen
-from .sqlgen import Source, col, internal, num
+from .sqlgen import Source, TargetLike, col, internal, num
+from .targets import target_for
 
 #: Score given to the missing segments of a group with fewer than the most segments: never the least.
 PADDING_SCORE = 1e300
@@ -72,13 +73,13 @@ def _names(d: int, k: int) -> dict[str, list]:
     }
 
 
-def group_literal(value: str | None, group_type: str, dialect: str) -> exp.Expression:
+def group_literal(value: str | None, group_type: str, target: TargetLike) -> exp.Expression:
     """A group's value typed as the column: CAST('text' AS type), or a typed NULL."""
-    kind = exp.DataType.build(group_type, dialect=dialect)
+    kind = exp.DataType.build(group_type, dialect=target_for(target).name)
     return exp.cast(exp.Null() if value is None else exp.Literal.string(value), kind)
 
 
-def params_relation(assign: GroupAssignment, dialect: str) -> exp.Expression:
+def params_relation(assign: GroupAssignment, target: TargetLike) -> exp.Expression:
     """The inline VALUES relation, one row per group: value, position, centre, norm factors, a, b."""
     d, k = assign.center.shape[1], assign.most_segments
     names = _names(d, k)
@@ -86,7 +87,7 @@ def params_relation(assign: GroupAssignment, dialect: str) -> exp.Expression:
     rows = []
     for g, value in enumerate(assign.values):
         a, b, f = assign.coefficients(g)
-        values = [group_literal(value, assign.group_type, dialect), num(g), *[num(float(c)) for c in assign.center[g]],
+        values = [group_literal(value, assign.group_type, target), num(g), *[num(float(c)) for c in assign.center[g]],
                   *[num(float(x)) for x in f], *[num(float(x)) for x in a.ravel()], *[num(float(x)) for x in b]]
         rows.append(exp.Tuple(expressions=values))
     alias = exp.TableAlias(this=exp.to_identifier(PARAMS_ALIAS, quoted=True),
@@ -94,11 +95,11 @@ def params_relation(assign: GroupAssignment, dialect: str) -> exp.Expression:
     return exp.Values(expressions=rows, alias=alias)
 
 
-def group_predicate(column: str, value: str | None, group_type: str, dialect: str) -> exp.Expression:
+def group_predicate(column: str, value: str | None, group_type: str, target: TargetLike) -> exp.Expression:
     """Rows of one group: column = CAST('text' AS type), or column IS NULL (comparisons the engine can skip blocks on)."""
     if value is None:
         return exp.Is(this=col(column), expression=exp.Null())
-    return exp.EQ(this=col(column), expression=group_literal(value, group_type, dialect))
+    return exp.EQ(this=col(column), expression=group_literal(value, group_type, target))
 
 
 def _aliased_source(source: Source) -> exp.Expression:
@@ -113,7 +114,7 @@ def _same_group(column: str) -> exp.Expression:
 
 
 def assignment_layers(
-    source: Source, columns: Sequence[str], assign: GroupAssignment, dialect: str, keep_source: bool, fence: bool | None = None,
+    source: Source, columns: Sequence[str], assign: GroupAssignment, target: TargetLike, keep_source: bool, fence: bool | None = None,
     only_listed: bool = False,
 ) -> tuple[exp.Select, str, str, str, list[str]]:
     """Each row's group position and segment within its group (NULL for unusable rows and unknown groups).
@@ -136,21 +137,21 @@ def assignment_layers(
                    *[exp.alias_(e, n, quoted=True) for e, n in zip(centred, v)],
                    *[col(n, PARAMS_ALIAS) for n in carried])
         .from_(_aliased_source(source))
-        .join(params_relation(assign, dialect), on=_same_group(assign.column), join_type="INNER" if only_listed else "LEFT")
+        .join(params_relation(assign, target), on=_same_group(assign.column), join_type="INNER" if only_listed else "LEFT")
     )
     score = [internal(f"s{i}") for i in range(k)]
 
     def score_of(i: int) -> exp.Expression:
         return sqlgen.total_sum([col(names["b"][i])] + [exp.Mul(this=col(a), expression=col(vn)) for a, vn in zip(names["a"][i], v)])
 
-    ok = exp.And(this=sqlgen.usable_rows(v, dialect), expression=exp.Not(this=exp.Is(this=col(gid), expression=exp.Null())))
+    ok = exp.And(this=sqlgen.usable_rows(v, target), expression=exp.Not(this=exp.Is(this=col(gid), expression=exp.Null())))
     stage2 = exp.select(
         exp.Star(), exp.alias_(ok, internal("ok"), quoted=True), *[exp.alias_(score_of(i), score[i], quoted=True) for i in range(k)]
     ).from_(sqlgen.subquery(stage1, internal("a")))
     if fence:
-        stage2 = sqlgen.scan_fence(stage2, dialect)
+        stage2 = sqlgen.scan_fence(stage2, target)
     best, nearest, seg = internal("best"), internal("nearest"), internal("segment")
-    stage3 = sqlgen.nearest_layers(stage2, score, list(range(k)), best, nearest, dialect, fence)
+    stage3 = sqlgen.nearest_layers(stage2, score, list(range(k)), best, nearest, target, fence)
     pick = sqlgen.case_when(col(internal("ok")), col(nearest))
     stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(sqlgen.subquery(stage3, internal("n")))
     return stage4, gid, seg, best, v
@@ -162,7 +163,7 @@ def _squared_norm(v: Sequence[str], d: int) -> exp.Expression:
     return sqlgen.total_sum([sqlgen.square(exp.Mul(this=col(fn), expression=col(vn))) for fn, vn in zip(f, v)])
 
 
-def refine_statement(source: Source, columns: Sequence[str], assign: GroupAssignment, dialect: str) -> exp.Select:
+def refine_statement(source: Source, columns: Sequence[str], assign: GroupAssignment, target: TargetLike) -> exp.Select:
     """One refine pass over the groups in ``assign`` (rows of other groups are left out): GROUP BY (group
     position, segment).
 
@@ -170,11 +171,11 @@ def refine_statement(source: Source, columns: Sequence[str], assign: GroupAssign
     squared distances to the centroid used), as ``sqlgen.refine_statement`` does
     for one model.  Groups with segment NULL count skipped rows.
     """
-    inner, gid, seg, best, v = assignment_layers(source, columns, assign, dialect, keep_source=False, only_listed=True)
+    inner, gid, seg, best, v = assignment_layers(source, columns, assign, target, keep_source=False, only_listed=True)
     aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
-    aggs += [exp.alias_(sqlgen.float_sum(col(n), dialect), f"ls{j}", quoted=True) for j, n in enumerate(v)]
+    aggs += [exp.alias_(sqlgen.float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(v)]
     dist = exp.Add(this=col(best), expression=sqlgen.paren(_squared_norm(v, len(columns))))
-    aggs.append(exp.alias_(sqlgen.float_sum(dist, dialect), "dist", quoted=True))
+    aggs.append(exp.alias_(sqlgen.float_sum(dist, target), "dist", quoted=True))
     return (
         exp.select(exp.alias_(col(gid), "gid", quoted=True), exp.alias_(col(seg), "segment", quoted=True), *aggs)
         .from_(sqlgen.subquery(inner, internal("d")))
@@ -183,11 +184,11 @@ def refine_statement(source: Source, columns: Sequence[str], assign: GroupAssign
 
 
 def label_select(
-    source: Source, columns: Sequence[str], source_columns: Sequence[str], assign: GroupAssignment, dialect: str,
+    source: Source, columns: Sequence[str], source_columns: Sequence[str], assign: GroupAssignment, target: TargetLike,
     materialize: bool = False, segment_name: str = "segment", distance_name: str = "distance",
 ) -> exp.Select:
     """Every source column (the group column among them) plus the segment within the group and the distance."""
-    inner, _gid, seg, best, v = assignment_layers(source, columns, assign, dialect, keep_source=True, fence=materialize)
+    inner, _gid, seg, best, v = assignment_layers(source, columns, assign, target, keep_source=True, fence=materialize)
     distance = sqlgen.case_when(
         exp.GTE(this=col(seg), expression=num(0)),
         exp.Sqrt(this=sqlgen.greatest_of([exp.Add(this=col(best), expression=_squared_norm(v, len(columns))), num(0.0)])),
@@ -199,23 +200,23 @@ def label_select(
     ).from_(sqlgen.subquery(inner, internal("d")))
 
 
-def unknown_groups_statement(source: Source, assign: GroupAssignment, dialect: str) -> exp.Select:
+def unknown_groups_statement(source: Source, assign: GroupAssignment, target: TargetLike) -> exp.Select:
     """Rows whose group the model does not know (a value that appeared after the build): count n."""
     return (
         exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True))
         .from_(_aliased_source(source))
-        .join(params_relation(assign, dialect), on=_same_group(assign.column), join_type="LEFT")
+        .join(params_relation(assign, target), on=_same_group(assign.column), join_type="LEFT")
         .where(exp.Is(this=col(internal("wgid"), PARAMS_ALIAS), expression=exp.Null()))
     )
 
 
 def grouped_sample_statement(
-    source: Source, columns: Sequence[str], group: str, dialect: str, percent: float | None = None,
+    source: Source, columns: Sequence[str], group: str, target: TargetLike, percent: float | None = None,
     method: str = "SYSTEM", seed: int | None = None,
 ) -> exp.Select:
     """``sqlgen.sample_statement``'s usable rows (its sampling forms, per engine) plus each row's group as text
     (GROUP_TEXT, NULL stays NULL)."""
-    outer = sqlgen.sample_statement(source, columns, dialect, percent=percent, method=method, seed=seed)
+    outer = sqlgen.sample_statement(source, columns, target, percent=percent, method=method, seed=seed)
     inner = outer.find(exp.Subquery).this  # the sampled rows, before the usable-row filter
     inner.select(exp.alias_(exp.cast(col(group), exp.DataType.build("VARCHAR")), GROUP_TEXT, quoted=True), copy=False)
     return outer.select(col(GROUP_TEXT), copy=False)
