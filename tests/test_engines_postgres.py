@@ -299,7 +299,7 @@ def test_refine_pass_through_an_inline_cell_map_equals_duckdb(pg_and_duck):
                            run_refine_pass(duck, SRC, COLUMNS, model.assignment(), cell_map))
 
 
-def test_segment_within_and_its_labels_equal_duckdb(server, loaded, rows):
+def test_segment_within_and_its_labels_equal_duckdb(server, loaded, engine_rows):
     from engine_checks import assert_same_within_labels, assert_same_within_model
 
     pg = PostgresEngine(server.conninfo)
@@ -314,9 +314,9 @@ def test_segment_within_and_its_labels_equal_duckdb(server, loaded, rows):
         assert [g["name"] for g in ref.within["groups"]][-1] == "NULL"
         label(pg, SRC, ref, "point_groups")
         label(duck, SRC, ref, "point_groups")
-        assert_same_within_labels(ordered_rows(pg, "point_groups"), ordered_rows(duck, "point_groups"), rows)
+        assert_same_within_labels(ordered_rows(pg, "point_groups"), ordered_rows(duck, "point_groups"), engine_rows)
         label(pg, SRC, ref, "point_groups_table", materialize=True)  # the fenced form
-        assert_same_within_labels(ordered_rows(pg, "point_groups_table"), ordered_rows(duck, "point_groups"), rows)
+        assert_same_within_labels(ordered_rows(pg, "point_groups_table"), ordered_rows(duck, "point_groups"), engine_rows)
     finally:
         pg.close()
         duck.close()

@@ -301,7 +301,7 @@ def test_refine_pass_through_a_cell_map_held_as_a_temporary_view_equals_duckdb(s
     assert all(t.name != held.table for t in sparks.spark.catalog.listTables())
 
 
-def test_segment_within_and_its_labels_equal_duckdb(sparks, duck, data, rows):
+def test_segment_within_and_its_labels_equal_duckdb(sparks, duck, data, engine_rows):
     from engine_checks import assert_same_within_labels, assert_same_within_model
 
     from tillite.within import label_within_select
@@ -317,4 +317,4 @@ def test_segment_within_and_its_labels_equal_duckdb(sparks, duck, data, rows):
         # reference: DuckDB running the same trees
         assert_same_within_model(got, ref)
     label(sparks, Source.of_table(REGISTERED), ref, "point_groups")
-    assert_same_within_labels(ordered_rows(sparks, "point_groups"), want, rows)
+    assert_same_within_labels(ordered_rows(sparks, "point_groups"), want, engine_rows)
