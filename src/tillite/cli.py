@@ -230,16 +230,33 @@ def _settings(k, method, k_rule, scaling, weights, cell_budget, width, refine_pa
     )
 
 
+#: segment's --columns: optional when --categorical names the columns to segment on.
+segment_columns_option = click.option(
+    "--columns", "-c", multiple=True,
+    help="Numeric columns to segment on, comma-separated (repeatable; may be left out with --categorical).",
+)
+
+
+def _categorical_options(f):
+    f = click.option("--max-categories", type=int, default=20, show_default=True,
+                     help="Categories kept per --categorical column (the most rows in the profile sample, 1 to 200); "
+                          "the rest count as '(other)', NULL as '(NULL)'.")(f)
+    return click.option("--categorical", multiple=True,
+                        help="Categorical columns, comma-separated (repeatable): each becomes indicators of its top "
+                             "categories, weighing as much as one scaled numeric column (--weights COLUMN=w applies).")(f)
+
+
 @main.command("segment")
 @source_argument
 @table_option
-@columns_option
+@segment_columns_option
+@_categorical_options
 @_settings_options
 @click.option("--out", "-o", default=None, help="Model file to write [default: SOURCE's table or file name + .model.json, "
               "e.g. meter_days.model.json, in the current folder].")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
-def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
+def segment_command(source, table, columns, categorical, max_categories, out, quiet, as_json, **kw) -> None:
     """Segment SOURCE's rows on the chosen columns and write a model file.
 
     SOURCE is a DuckDB database file (with --table) or a Parquet/CSV path or glob.
@@ -250,6 +267,10 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
 
     with user_errors():
         settings = _settings(**kw)
+        settings.categorical = tuple(_split_columns(categorical))
+        settings.max_categories = max_categories
+        if not columns and not settings.categorical:
+            raise click.UsageError("give --columns (numeric columns) or --categorical (or both)")
         out = out or default_model_path(source, table)
         with _open(source, table) as (engine, src):
             model = segment(engine, src, _split_columns(columns), settings, progress=_progress(quiet))

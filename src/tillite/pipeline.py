@@ -23,6 +23,7 @@ from typing import Any, Callable, Iterator, Sequence
 
 import numpy as np
 
+from . import categorical as cat
 from . import features as F
 from . import sqlgen
 from .engines import Engine, SourceError, TilliteError, file_reader_for, is_numeric_type
@@ -81,6 +82,8 @@ class Settings:
     adjacency: str = "face"  # density: "face" (grid neighbours) or "distance"
     radius: float | None = None  # density: joining distance with adjacency="distance"
     noise: str = "attach"  # density: sparse cells "attach" to the nearest segment, or stay noise ("drop")
+    categorical: tuple[str, ...] = ()  # categorical columns: indicators of their top categories (categorical.py)
+    max_categories: int = cat.DEFAULT_MAX_CATEGORIES  # categories listed per categorical column; the rest are "other"
 
     def column_weights(self, columns: Sequence[str]) -> np.ndarray:
         """The multiplier of each column (1 unless --weights says otherwise)."""
@@ -100,13 +103,14 @@ class Settings:
             raise ParameterError(f"{{k}} must be at least 1, got {self.k}", "k")
         for name, low, bound in SETTING_RANGES:
             check_range(name, getattr(self, name), low, bound)
-        unknown = [c for c in self.weights if c not in columns]
+        cat.check_max_categories(self.max_categories)
+        unknown = [c for c in self.weights if c not in columns and c not in self.categorical]
         if unknown:
             raise ParameterError(f"{{weights}} name columns not chosen for segmenting: {', '.join(unknown)}", "weights")
         bad = {c: w for c, w in self.weights.items() if not (math.isfinite(w) and 0 <= w <= MAX_WEIGHT)}
         if bad:
             raise ParameterError(f"{{weights}} must be numbers from 0 to {MAX_WEIGHT:g}: {bad}", "weights")
-        if columns and not (self.column_weights(columns) > 0).any():
+        if columns and not self.categorical and not (self.column_weights(columns) > 0).any():
             raise ParameterError("every {weights} value is 0: at least one column needs a weight above 0", "weights")
 
 
@@ -533,7 +537,8 @@ class Standardisation:
 
 
 def standardise_cells(
-    cells_grid: CF, grid: Grid, columns: Sequence[str], settings: Settings, weights: np.ndarray
+    cells_grid: CF, grid: Grid, columns: Sequence[str], settings: Settings, weights: np.ndarray,
+    indicator_groups: Sequence[np.ndarray] = (),
 ) -> tuple[CF, Standardisation]:
     """Exact mean and sd from the total of the cell CFs, and the cells moved into that standardisation.
 
@@ -548,6 +553,11 @@ def standardise_cells(
     center = grid_center + total.ls[0] / n * grid_scale
     sd = np.sqrt(F.column_scatter(total)[0] / n) * grid_scale
     constant = constant_columns(center, sd)
+    fixed = np.full(d, np.nan)  # the indicators of a categorical column share one scale (categorical.group_scale)
+    for pos in indicator_groups:
+        s = cat.group_scale(center[pos])
+        constant[pos] = s == 0.0
+        fixed[pos] = s if s > 0.0 else 1.0
     if constant.any():
         names = ", ".join(c for c, flag in zip(columns, constant) if flag)
         warnings.warn(f"constant column(s) {names}: they carry no weight", UserWarning, stacklevel=3)
@@ -555,6 +565,7 @@ def standardise_cells(
         raise InputError(nothing_to_segment_on(columns, constant, weights))
     weights = np.where(constant, 0.0, weights)
     scale = np.where(constant, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
+    scale = np.where(np.isnan(fixed), scale, fixed)
     cells = F.affine(cells_grid, grid_scale / scale, (grid_center - center) / scale)
     return cells, Standardisation(center=center, sd=sd, scale=scale, weights=weights, constant=constant)
 
@@ -940,13 +951,21 @@ def segment(
     columns = list(columns)
     settings.check(columns)
     t_start = time.perf_counter()
-    check_columns(engine, source, columns)
+    specs: list[cat.CategoricalColumn] = []
+    if settings.categorical:
+        source, specs = categorical_source(engine, source, columns, settings)
+        columns = columns + [n for s in specs for n in s.names]
+    else:
+        check_columns(engine, source, columns)
     weights = settings.column_weights(columns)
+    groups = cat.indicator_positions(columns, specs)
+    for spec, pos in zip(specs, groups):
+        weights[pos] = float(settings.weights.get(spec.column, 1.0))
 
     # 1. profile on a sample, and the grid from it
     t0 = time.perf_counter()
     prof = run_profile(engine, source, columns, settings)
-    grid = grid_for_profile(prof, settings, weights)
+    grid = grid_with_category_codes(prof, settings, weights, groups) if specs else grid_for_profile(prof, settings, weights)
     prof.seconds = time.perf_counter() - t0
     progress("profile", f"{prof.rows:,} rows, sample of {len(prof.sample):,}, grid width {grid.width:.3g} on {grid.dims} axes, {prof.seconds:.2f} s")
 
@@ -957,7 +976,7 @@ def segment(
             f"no usable rows in {source.label}: all {cp.skipped:,} rows have a NULL, NaN or infinite value in {', '.join(columns)}"
         )
     progress("cells", f"{cp.usable + cp.skipped:,} rows ({cp.skipped:,} skipped) -> {cells_count(cp):,} cells, {cp.seconds:.2f} s")
-    cells, std = standardise_cells(cp.cells, grid, columns, settings, weights)
+    cells, std = standardise_cells(cp.cells, grid, columns, settings, weights, groups)
 
     # 3. second phase on the cells (condensed by a CF tree when there are too many)
     t0 = time.perf_counter()
@@ -985,6 +1004,7 @@ def segment(
                                       **phase.params},
     )
     model.method = settings.method
+    model.categorical = [s.to_dict() for s in specs]
     model.extras = phase.extras
     model.cell_map = phase.cell_map_dict(grid, cp.keys, new_id) if phase.needs_cell_map else {}
     model.passes = passes
@@ -992,6 +1012,73 @@ def segment(
     model.timings = {"profile": prof.seconds, "cells": cp.seconds, "second_phase": t_second, **refine_times}
     model.timings["total"] = time.perf_counter() - t_start
     return model
+
+
+def categorical_source(
+    engine: Engine, source: Source, columns: Sequence[str], settings: Settings
+) -> tuple[Source, list[cat.CategoricalColumn]]:
+    """Check the numeric and categorical columns, find each categorical column's top categories in the
+    profile sample (seeded like the profile), and the source read with their indicators."""
+    if columns:
+        check_columns(engine, source, columns)
+    described = dict(engine.describe(source))
+    cat.check_categorical(columns, settings.categorical, described, source.label)
+    rows = int(engine.query(sqlgen.count_statement(source))["n"][0])
+    if rows == 0:
+        raise InputError(f"{source.label} has no rows")
+    target = settings.sample_rows
+    percent = None if rows <= 2 * target else min(100.0, 150.0 * target / rows)
+    method = "BERNOULLI" if engine.dialect == "duckdb" else "SYSTEM"
+    taken = set(described)
+    specs = []
+    for column in settings.categorical:
+        stmt = sqlgen.category_counts_statement(source, column, engine.dialect, percent=percent, method=method, seed=settings.seed)
+        got = engine.query(stmt)
+        values = [None if m else v for v, m in zip(np.ma.getdata(got["value"]).tolist(), _null_mask(got["value"]))]
+        counts = np.asarray(got["n"], dtype=np.int64)
+        cat.check_distinct(column, len(values), int(counts.sum()))
+        top = cat.top_categories(values, counts, settings.max_categories)
+        names = cat.indicator_names(column, (*top, cat.OTHER, cat.NULL), taken)
+        specs.append(cat.CategoricalColumn(column, described[column], top, names))
+    return cat.with_indicators(source, specs, engine.dialect), specs
+
+
+def model_source(engine: Engine, source: Source, model: Model) -> Source:
+    """The source as a model reads it: with the indicators of its categorical columns, if any."""
+    return cat.with_indicators(source, cat.specs_of(model.categorical), engine.dialect)
+
+
+#: Spacing of category codes in the width search's coordinates: above its widest width (50), so
+#: every code stays its own bin there as it does in SQL.
+CODE_SPACING = 100.0
+
+
+def grid_with_category_codes(prof: Profile, settings: Settings, weights: np.ndarray, groups: Sequence[np.ndarray]) -> Grid:
+    """The grid on the numeric columns (indicators carry no grid weight) plus one key axis per categorical
+    column holding its category code (1, 2, ... by indicator), so every cell holds one category of each
+    categorical column; the width is chosen with the codes in the count of occupied cells."""
+    d = len(prof.center)
+    numeric = np.ones(d, dtype=bool)
+    for pos in groups:
+        numeric[pos] = False
+    grid_weights = np.where(numeric, weights, 0.0)
+    sample_u = (prof.sample - prof.center[None, :]) / prof.scale[None, :]
+    varied = np.ptp(prof.sample, axis=0) > 0 if len(prof.sample) else np.ones(d, dtype=bool)
+    axes = grid_axes(sample_u, grid_weights, settings, varied) if (grid_weights > 0).any() else np.zeros((d, 0))
+    codes = np.column_stack([cat.code_of_rows(prof.sample, pos) for pos in groups]) if len(prof.sample) else np.zeros((0, len(groups)))
+    coords = np.hstack([sample_u @ axes, codes * CODE_SPACING])
+    width = settings.width or (choose_width(coords, prof.rows, cell_target(settings, prof.rows)) if axes.shape[1] else 1.0)
+    code_axes = np.zeros((d, len(groups)))
+    for a, pos in enumerate(groups):
+        code_axes[pos, a] = np.arange(1, len(pos) + 1) * width * prof.scale[pos]
+    all_axes = np.hstack([axes, code_axes])
+    return Grid(
+        center=tuple(map(float, prof.center)),
+        inv_scale=tuple(map(float, 1.0 / prof.scale)),
+        width=float(width),
+        axes=tuple(tuple(map(float, r)) for r in all_axes),
+        sums_scaled=True,
+    )
 
 
 def model_map(cp: CellPass, model: Model) -> dict:
@@ -1052,7 +1139,8 @@ def label(
     whose labels these are.  ``in_transaction``: the caller already holds a
     transaction (a store refresh).
     """
-    source_columns = check_columns(engine, source, model.columns)
+    source = model_source(engine, source, model)
+    source_columns = [c for c in check_columns(engine, source, model.columns) if c not in source.derived_names()]
     select = sqlgen.label_select(
         source, model.columns, source_columns, model.assignment(), engine.dialect, cell_map=model.cell_map_spec(),
         materialize=materialize or bool(source.files),

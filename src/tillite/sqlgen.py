@@ -53,6 +53,9 @@ class Source:
     files: tuple[str, ...] = ()
     reader: str = "parquet"
     filename: bool = False  # add the file name as a column `filename` (files only)
+    #: columns computed from the row (name, expression), e.g. category indicators (categorical.py):
+    #: every statement then reads the source through a projection that adds them
+    derived: tuple[tuple[str, exp.Expression], ...] = ()
 
     @staticmethod
     def of_table(name: str | Sequence[str]) -> "Source":
@@ -73,8 +76,21 @@ class Source:
         """Human-readable name for messages (a part holding a dot in double quotes, as it is written)."""
         return ".".join(quote_name_part(p) for p in self.table) if self.table else ", ".join(self.files)
 
-    def relation(self) -> exp.Expression:
-        """The FROM item for this source."""
+    def relation(self, sample: exp.TableSample | None = None) -> exp.Expression:
+        """The FROM item for this source (``sample`` on the stored rows, before any derived column)."""
+        base = self._stored_relation()
+        if sample is not None:
+            base.set("sample", sample)
+        if not self.derived:
+            return base
+        added = [exp.alias_(e.copy(), n, quoted=True) for n, e in self.derived]
+        return subquery(exp.select(exp.Star(), *added).from_(base), internal("src"))
+
+    def derived_names(self) -> list[str]:
+        """Names of the derived columns (not in the stored rows)."""
+        return [n for n, _ in self.derived]
+
+    def _stored_relation(self) -> exp.Expression:
         if self.table:
             return table_of(self.table)
         paths = [exp.Literal.string(f) for f in self.files]
@@ -366,11 +382,9 @@ def sample_statement(
     (``REPEATABLE (seed)``; on Spark a ``rand(seed)`` filter, repeatable for the
     same input partitioning); see ``sample_repeats``.
     """
-    rel = source.relation()
     sampled = percent is not None and percent < 100.0
     spark_seeded = sampled and seed is not None and dialect in SPARK_DIALECTS
-    if sampled and not spark_seeded:
-        rel.set("sample", table_sample(float(percent), method, dialect, seed=seed))
+    rel = source.relation(table_sample(float(percent), method, dialect, seed=seed) if sampled and not spark_seeded else None)
     names = [internal(f"x{j}") for j in range(len(columns))]
     inner = exp.select(*[exp.alias_(to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)]).from_(rel)
     if spark_seeded:
@@ -1439,3 +1453,52 @@ def labelled_rows_select(labels: Source, columns: Sequence[str], by: Sequence[st
         *[col(c) for c in keep],
         exp.alias_(exp.cast(col(segment), exp.DataType.build("INT")), internal("segment"), quoted=True),
     ).from_(labels.relation())
+
+
+# --------------------------------------------------------------------------- categorical columns
+
+
+def category_counts_statement(
+    source: Source, column: str, dialect: str, percent: float | None = None, method: str = "BERNOULLI",
+    seed: int | None = None,
+) -> exp.Select:
+    """value (the category as text, NULL for NULL), n: rows per category of ``column``, optionally in a
+    seeded sample (as ``sample_statement`` takes it)."""
+    sampled = percent is not None and percent < 100.0
+    spark_seeded = sampled and seed is not None and dialect in SPARK_DIALECTS
+    rel = source.relation(table_sample(float(percent), method, dialect, seed=seed) if sampled and not spark_seeded else None)
+    value = exp.alias_(exp.cast(col(column), exp.DataType.build("VARCHAR")), "value", quoted=True)
+    select = exp.select(value, exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)).from_(rel)
+    if spark_seeded:
+        select = select.where(exp.LT(this=exp.Rand(this=num(int(seed))), expression=num(float(percent) / 100.0)))
+    return select.group_by(exp.cast(col(column), exp.DataType.build("VARCHAR")))
+
+
+def category_literal(value: str, type_name: str, dialect: str | None = None) -> exp.Expression:
+    """A category's text as a literal of the column's type: 'north', or CAST('7' AS INTEGER)."""
+    kind = exp.DataType.build(type_name, dialect=dialect)
+    if kind.is_type(*exp.DataType.TEXT_TYPES):
+        return exp.Literal.string(value)
+    return exp.cast(exp.Literal.string(value), kind)
+
+
+def indicator_expressions(
+    column: str, type_name: str, values: Sequence[str], dialect: str | None = None
+) -> list[exp.Expression]:
+    """One DOUBLE 0/1 expression per listed category, then "other" (any other non-NULL value, also values
+    never seen when the list was made), then NULL:
+    CASE WHEN col = literal THEN 1 ELSE 0 END, ..., CASE WHEN col IS NULL THEN 1 ELSE 0 END."""
+    one, zero = num(1.0), num(0.0)
+
+    def flag(cond: exp.Expression) -> exp.Expression:
+        return exp.Case(ifs=[exp.If(this=cond, true=one.copy())], default=zero.copy())
+
+    literals = [category_literal(v, type_name, dialect) for v in values]
+    listed = [flag(exp.EQ(this=col(column), expression=lit)) for lit in literals]
+    is_null = exp.Is(this=col(column), expression=exp.Null())
+    if literals:
+        known = exp.In(this=col(column), expressions=[lit.copy() for lit in literals])
+        other = exp.Case(ifs=[exp.If(this=is_null.copy(), true=zero.copy()), exp.If(this=known, true=zero.copy())], default=one.copy())
+    else:
+        other = exp.Case(ifs=[exp.If(this=is_null.copy(), true=zero.copy())], default=one.copy())
+    return [*listed, other, flag(is_null)]
