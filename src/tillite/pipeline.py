@@ -1019,10 +1019,10 @@ def categorical_source(
 ) -> tuple[Source, list[cat.CategoricalColumn]]:
     """Check the numeric and categorical columns, find each categorical column's top categories in the
     profile sample (seeded like the profile), and the source read with their indicators."""
-    if columns:
-        check_columns(engine, source, columns)
     described = dict(engine.describe(source))
     cat.check_categorical(columns, settings.categorical, described, source.label)
+    if columns:
+        check_columns(engine, source, columns)
     rows = int(engine.query(sqlgen.count_statement(source))["n"][0])
     if rows == 0:
         raise InputError(f"{source.label} has no rows")
