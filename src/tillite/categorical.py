@@ -114,11 +114,29 @@ def check_distinct(column: str, distinct: int, sampled: int) -> None:
 
 
 def with_indicators(source: Source, specs: Sequence[CategoricalColumn], dialect: str | None = None) -> Source:
-    """The source read with every indicator of ``specs`` as a derived DOUBLE column."""
+    """The source read with every indicator of ``specs`` as a derived DOUBLE column, and each column's
+    category code (``code_names``; the cell pass groups on it).  Statements read only the derived
+    columns they name (the engines drop the others from the projection)."""
     if not specs:
         return source
     derived = tuple((n, e) for s in specs for n, e in zip(s.names, s.expressions(dialect)))
-    return replace(source, derived=source.derived + derived)
+    codes = tuple((name, sqlgen.category_code_expression(s.column, s.type, s.values, dialect))
+                  for name, s in zip(code_names(specs), specs))
+    return replace(source, derived=source.derived + derived + codes)
+
+
+def code_names(specs: Sequence[CategoricalColumn]) -> list[str]:
+    """The derived columns holding each categorical column's code (1-based indicator position)."""
+    return [sqlgen.internal(f"code{i}") for i in range(len(specs))]
+
+
+def indicator_cells(n: np.ndarray, codes: np.ndarray, center: np.ndarray, inv_scale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Linear and square sums of one categorical column's indicators, u = (ind - center) * inv_scale,
+    for cells of ``n`` rows that all hold the category of code ``codes`` (1-based): exact, since every
+    row of such a cell has the same indicator values."""
+    onehot = (np.asarray(codes, dtype=np.int64)[:, None] == np.arange(1, len(center) + 1)[None, :]).astype(np.float64)
+    u = (onehot - np.asarray(center)[None, :]) * np.asarray(inv_scale)[None, :]
+    return n[:, None] * u, n[:, None] * u * u
 
 
 def specs_of(data: Sequence[dict[str, Any]] | None) -> list[CategoricalColumn]:

@@ -970,7 +970,10 @@ def segment(
     progress("profile", f"{prof.rows:,} rows, sample of {len(prof.sample):,}, grid width {grid.width:.3g} on {grid.dims} axes, {prof.seconds:.2f} s")
 
     # 2. cell pass, and the exact standardisation from its CFs
-    cp = run_cell_pass(engine, source, columns, grid)
+    if specs:
+        cp = run_cell_pass_with_codes(engine, source, columns, grid, groups, cat.code_names(specs))
+    else:
+        cp = run_cell_pass(engine, source, columns, grid)
     if cp.usable == 0:
         raise InputError(
             f"no usable rows in {source.label}: all {cp.skipped:,} rows have a NULL, NaN or infinite value in {', '.join(columns)}"
@@ -1054,9 +1057,9 @@ CODE_SPACING = 100.0
 
 
 def grid_with_category_codes(prof: Profile, settings: Settings, weights: np.ndarray, groups: Sequence[np.ndarray]) -> Grid:
-    """The grid on the numeric columns (indicators carry no grid weight) plus one key axis per categorical
-    column holding its category code (1, 2, ... by indicator), so every cell holds one category of each
-    categorical column; the width is chosen with the codes in the count of occupied cells."""
+    """The grid on the numeric columns (indicators carry no grid weight; with no numeric column one
+    axis that is 0 for every row).  The cell pass also groups on each categorical column's code
+    (``run_cell_pass_with_codes``), so the width is chosen with the codes in the count of occupied cells."""
     d = len(prof.center)
     numeric = np.ones(d, dtype=bool)
     for pos in groups:
@@ -1064,21 +1067,57 @@ def grid_with_category_codes(prof: Profile, settings: Settings, weights: np.ndar
     grid_weights = np.where(numeric, weights, 0.0)
     sample_u = (prof.sample - prof.center[None, :]) / prof.scale[None, :]
     varied = np.ptp(prof.sample, axis=0) > 0 if len(prof.sample) else np.ones(d, dtype=bool)
-    axes = grid_axes(sample_u, grid_weights, settings, varied) if (grid_weights > 0).any() else np.zeros((d, 0))
-    codes = np.column_stack([cat.code_of_rows(prof.sample, pos) for pos in groups]) if len(prof.sample) else np.zeros((0, len(groups)))
-    coords = np.hstack([sample_u @ axes, codes * CODE_SPACING])
-    width = settings.width or (choose_width(coords, prof.rows, cell_target(settings, prof.rows)) if axes.shape[1] else 1.0)
-    code_axes = np.zeros((d, len(groups)))
-    for a, pos in enumerate(groups):
-        code_axes[pos, a] = np.arange(1, len(pos) + 1) * width * prof.scale[pos]
-    all_axes = np.hstack([axes, code_axes])
+    if (grid_weights > 0).any():
+        axes = grid_axes(sample_u, grid_weights, settings, varied)
+        codes = np.column_stack([cat.code_of_rows(prof.sample, pos) for pos in groups]) if len(prof.sample) else np.zeros((0, len(groups)))
+        coords = np.hstack([sample_u @ axes, codes * CODE_SPACING])
+        width = settings.width or choose_width(coords, prof.rows, cell_target(settings, prof.rows))
+    else:
+        axes, width = np.zeros((d, 1)), 1.0
     return Grid(
         center=tuple(map(float, prof.center)),
         inv_scale=tuple(map(float, 1.0 / prof.scale)),
         width=float(width),
-        axes=tuple(tuple(map(float, r)) for r in all_axes),
+        axes=tuple(tuple(map(float, r)) for r in axes),
         sums_scaled=True,
     )
+
+
+def run_cell_pass_with_codes(
+    engine: Engine, source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str]
+) -> CellPass:
+    """The cell pass of a run with categorical columns: GROUP BY the numeric grid key and each categorical
+    column's code.  Only the numeric columns are summed in SQL; every row of a cell has the same
+    indicators, so their sums follow exactly from the cell's count (``categorical.indicator_cells``)."""
+    t0 = time.perf_counter()
+    d = len(columns)
+    numeric = np.ones(d, dtype=bool)
+    for pos in groups:
+        numeric[pos] = False
+    num_idx = np.flatnonzero(numeric)
+    center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
+    # the grid on the numeric columns alone (none: no key but the codes)
+    sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
+               axes=tuple(tuple(r) for r in np.asarray(grid.axes)[num_idx]) if len(num_idx) else None, sums_scaled=True)
+    statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, engine.dialect, extra_keys=code_names)
+    got = engine.query(statement)
+    names = sub.key_names()
+    n_all = np.asarray(got["n"], dtype=np.float64)
+    null = _null_mask(got[names[0]]) if names else np.zeros(len(n_all), dtype=bool)
+    skipped = int(n_all[null].sum())
+    keep = ~null
+    n = n_all[keep]
+    ls, ss = np.zeros((len(n), d)), np.zeros((len(n), d))
+    if len(num_idx):
+        numeric_cf = cf_from_result(got, len(num_idx), keep)
+        ls[:, num_idx], ss[:, num_idx] = numeric_cf.ls, numeric_cf.ss
+    codes = np.column_stack([np.asarray(np.ma.getdata(got[f"q{i}"]), dtype=np.float64)[keep] for i in range(len(code_names))])
+    for i, pos in enumerate(groups):
+        ls[:, pos], ss[:, pos] = cat.indicator_cells(n, codes[:, i], center[pos], inv_scale[pos])
+    keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names] + [codes]) if names else codes
+    order = np.lexsort(keys.T[::-1])
+    cells = CF(n, ls, ss)[order]
+    return CellPass(cells=cells, keys=keys[order], usable=int(round(n.sum())), skipped=skipped, seconds=time.perf_counter() - t0)
 
 
 def model_map(cp: CellPass, model: Model) -> dict:

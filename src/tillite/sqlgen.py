@@ -516,6 +516,7 @@ def cells_statement(
     dialect: str,
     partition: Partitioning | None = None,
     where: exp.Expression | None = None,
+    extra_keys: Sequence[str] = (),
 ) -> exp.Select:
     """The cell pass: one GROUP BY over the per-axis grid keys.
 
@@ -528,11 +529,13 @@ def cells_statement(
 
     With ``partition`` the cells are keyed by (partition, cell) and the first
     result column is the partition's text ``part``; ``where`` filters the rows
-    scanned (e.g. ``Partitioning.filter``).
+    scanned (e.g. ``Partitioning.filter``).  ``extra_keys``: source columns also
+    grouped on, returned as q0, q1, ... (category codes, categorical.py).
     """
     d = len(columns)
     v = [internal(f"v{j}") for j in range(d)]
     parts = partition.projected() if partition is not None else []
+    parts += [exp.alias_(col(name), f"q{i}", quoted=True) for i, name in enumerate(extra_keys)]
     stage1 = exp.select(*parts, *[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, grid.center), v)]).from_(
         source.relation()
     )
@@ -540,9 +543,11 @@ def cells_statement(
         stage1 = stage1.where(where)
     factors = grid.key_factors()
     keys = [floor_of(linear_form(v, factors[:, a]), dialect) for a in range(factors.shape[1])]
-    keys[0] = case_when(usable_rows(v, dialect), keys[0])
+    if keys:
+        keys[0] = case_when(usable_rows(v, dialect), keys[0])
     names = grid.key_names()
     part_cols = [col(a) for a in partition.aliases()] if partition is not None else []
+    part_cols += [col(f"q{i}") for i in range(len(extra_keys))]
     summed = [col(n) for n in v]
     if grid.sums_scaled:
         u = [internal(f"u{j}") for j in range(d)]
@@ -552,6 +557,7 @@ def cells_statement(
         *[c.copy() for c in part_cols], *[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *summed
     ).from_(subquery(stage1, internal("a")))
     part_text = [exp.alias_(partition.key(), "part", quoted=True)] if partition is not None else []
+    part_text += [col(f"q{i}") for i in range(len(extra_keys))]
     group = [*part_cols, *[col(n) for n in names]]
     return exp.select(*part_text, *[col(n) for n in names], *_sums(v, dialect)).from_(subquery(stage2, internal("b"))).group_by(
         *[c.copy() for c in group]
@@ -1502,3 +1508,12 @@ def indicator_expressions(
     else:
         other = exp.Case(ifs=[exp.If(this=is_null.copy(), true=zero.copy())], default=one.copy())
     return [*listed, other, flag(is_null)]
+
+
+def category_code_expression(column: str, type_name: str, values: Sequence[str], dialect: str | None = None) -> exp.Expression:
+    """The category's code as an integer: 1, 2, ... for the listed values, len+1 for any other value,
+    len+2 for NULL (the position of its indicator, counting from 1)."""
+    ifs = [exp.If(this=exp.Is(this=col(column), expression=exp.Null()), true=num(len(values) + 2))]
+    ifs += [exp.If(this=exp.EQ(this=col(column), expression=category_literal(v, type_name, dialect)), true=num(i + 1))
+            for i, v in enumerate(values)]
+    return exp.Case(ifs=ifs, default=num(len(values) + 1))
