@@ -805,6 +805,7 @@ def refine_passes(
     usable: int,
     cell_map: sqlgen.CellMap | None = None,
     cell_boxes: CellBoxes | None = None,
+    codes: tuple[Sequence[np.ndarray], Sequence[str]] | None = None,
 ) -> tuple[SegmentStats, list[dict], dict[str, float]]:
     """Row-level Lloyd passes in SQL until the SSE gain falls below the tolerance.
 
@@ -824,14 +825,15 @@ def refine_passes(
             progress("refine", "no pass needed: every cell lies wholly nearest its own segment's centroid")
             return stats, passes, timings
     with temporary_cell_map(engine, cell_map) as held_map:
-        stats, centroids = _refine_loop(engine, source, columns, std, centroids, stats, settings, progress, usable, held_map, passes, timings)
+        stats, centroids = _refine_loop(engine, source, columns, std, centroids, stats, settings, progress, usable, held_map, passes,
+                                        timings, codes)
     return stats, passes, timings
 
 
 def _refine_loop(
     engine: Engine, source: Source, columns: Sequence[str], std: Standardisation, centroids: np.ndarray,
     stats: SegmentStats, settings: Settings, progress: ProgressFn, usable: int, cell_map: sqlgen.CellMap | None,
-    passes: list[dict], timings: dict[str, float],
+    passes: list[dict], timings: dict[str, float], codes: tuple[Sequence[np.ndarray], Sequence[str]] | None = None,
 ) -> tuple[SegmentStats, np.ndarray]:
     """The passes of ``refine_passes``; appends to passes and timings, returns the last stats and centroids.
 
@@ -842,7 +844,10 @@ def _refine_loop(
     move rows across a boundary and break that.
     """
     for p in range(1, settings.refine_passes + 1):
-        rr = run_refine_pass(engine, source, columns, std.assignment(centroids), cell_map)
+        if codes is not None:  # categorical columns (no cell map: their runs keep every cell)
+            rr = run_refine_pass_with_codes(engine, source, columns, std.assignment(centroids), *codes)
+        else:
+            rr = run_refine_pass(engine, source, columns, std.assignment(centroids), cell_map)
         before, after = float(rr.assigned.sse.sum()), float(rr.updated.sse.sum())
         gain = (before - after) / before if before > 0 else 0.0
         passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain, "seconds": rr.seconds})
@@ -953,6 +958,9 @@ def segment(
     t_start = time.perf_counter()
     specs: list[cat.CategoricalColumn] = []
     if settings.categorical:
+        if settings.method == "density":
+            raise ParameterError("{categorical} columns work with {method} kmeans or ward, not density", "categorical", "method")
+        settings = replace(settings, keep_outliers=True)  # no outlier group: cells are keyed by category codes too
         source, specs = categorical_source(engine, source, columns, settings)
         columns = columns + [n for s in specs for n in s.names]
     else:
@@ -994,6 +1002,7 @@ def segment(
         stats, passes, refine_times = refine_passes(
             engine, source, columns, std, phase.centroids, stats, settings, progress, cp.usable,
             cell_map=phase.cell_map(grid, cp.keys), cell_boxes=CellBoxes.of_grid(grid, cp.keys, std, phase.cell_labels),
+            codes=(groups, cat.code_names(specs)) if specs else None,
         )
     # density segments come numbered largest first already; the others are renumbered so
     order = size_order(stats) if settings.method != "density" else np.arange(len(stats.n))
@@ -1120,6 +1129,76 @@ def run_cell_pass_with_codes(
     return CellPass(cells=cells, keys=keys[order], usable=int(round(n.sum())), skipped=skipped, seconds=time.perf_counter() - t0)
 
 
+def code_assignment(
+    columns: Sequence[str], assign: Assignment, groups: Sequence[np.ndarray], code_names: Sequence[str]
+) -> tuple[list[str], Assignment, list[sqlgen.CodeLookup]]:
+    """The nearest-centroid SQL of a run with categorical columns: the numeric columns' assignment, and per
+    categorical column a lookup of the squared distance its indicators add, by category code:
+    D_i[q] = sum_c w_c^2 ((delta_cq - m_c) s_c - C_ic)^2 over the column's indicators c."""
+    d = len(columns)
+    numeric = np.ones(d, dtype=bool)
+    for pos in groups:
+        numeric[pos] = False
+    idx = np.flatnonzero(numeric)
+    center, inv_scale = np.asarray(assign.center), np.asarray(assign.inv_scale)
+    w2 = np.asarray(assign.weights) ** 2
+    cent = np.asarray(assign.centroids, dtype=np.float64).reshape(len(assign.centroids), d)
+    lookups = []
+    for pos, name in zip(groups, code_names):
+        rows_u = (np.eye(len(pos)) - center[pos][None, :]) * inv_scale[pos][None, :]  # (codes, indicators)
+        diff = rows_u[None, :, :] - cent[:, pos][:, None, :]  # (k, codes, indicators)
+        tables = (diff * diff * w2[pos][None, None, :]).sum(axis=2)
+        lookups.append(sqlgen.CodeLookup(name, tuple(tuple(map(float, t)) for t in tables)))
+    numeric_assign = Assignment(
+        tuple(center[idx].tolist()), tuple(inv_scale[idx].tolist()), tuple(np.asarray(assign.weights)[idx].tolist()),
+        tuple(tuple(map(float, c[idx])) for c in cent), ids=assign.ids,
+    )
+    return [columns[j] for j in idx], numeric_assign, lookups
+
+
+def run_refine_pass_with_codes(
+    engine: Engine, source: Source, columns: Sequence[str], assign: Assignment, groups: Sequence[np.ndarray],
+    code_names: Sequence[str],
+) -> RefineResult:
+    """``run_refine_pass`` for a run with categorical columns: one GROUP BY (segment, codes); the
+    indicators' linear sums follow from the counts per code."""
+    t0 = time.perf_counter()
+    d = len(columns)
+    numeric_cols, numeric_assign, lookups = code_assignment(columns, assign, groups, code_names)
+    num_idx = [columns.index(c) for c in numeric_cols]
+    got = engine.query(sqlgen.refine_statement(source, numeric_cols, numeric_assign, engine.dialect, lookups=lookups))
+    null = _null_mask(got["segment"])
+    ids = np.asarray(np.ma.getdata(got["segment"]), dtype=np.float64)
+    null = null | (ids < 0)
+    n_all = np.asarray(got["n"], dtype=np.float64)
+    k = len(assign.centroids)
+    position = {sid: i for i, sid in enumerate(assign.segment_ids())}
+    seg = np.array([position[int(i)] for i in ids[~null]], dtype=np.int64)
+    n_rows = n_all[~null]
+    n = np.bincount(seg, weights=n_rows, minlength=k)
+    center, inv_scale = np.asarray(assign.center), np.asarray(assign.inv_scale)
+    ls_u = np.zeros((k, d))
+    for j, col_j in zip(num_idx, range(len(num_idx))):
+        ls_u[:, j] = np.bincount(seg, weights=np.asarray(got[f"ls{col_j}"], dtype=np.float64)[~null], minlength=k) * inv_scale[j]
+    for g, pos in enumerate(groups):
+        codes = np.asarray(np.ma.getdata(got[f"q{g}"]), dtype=np.float64)[~null]
+        ls_c, _ = cat.indicator_cells(n_rows, codes, center[pos], inv_scale[pos])
+        for c_i, j in enumerate(pos):
+            ls_u[:, j] = np.bincount(seg, weights=ls_c[:, c_i], minlength=k)
+    dist = np.bincount(seg, weights=np.asarray(np.ma.getdata(got["dist"]), dtype=np.float64)[~null], minlength=k)
+    old = np.asarray(assign.centroids, dtype=np.float64)
+    means = np.where(n[:, None] > 0, ls_u / np.where(n > 0, n, 1.0)[:, None], old)
+    w = np.asarray(assign.weights, dtype=np.float64)
+    shift = (((means - old) * w[None, :]) ** 2).sum(axis=1)
+    dist = np.maximum(dist, 0.0)
+    return RefineResult(
+        assigned=SegmentStats(n, old, dist),
+        updated=SegmentStats(n, means, np.maximum(dist - n * shift, 0.0)),
+        skipped=int(n_all[null].sum()),
+        seconds=time.perf_counter() - t0,
+    )
+
+
 def model_map(cp: CellPass, model: Model) -> dict:
     """The report's map from the cells in hand (so `tillite report` needs no cell pass): a few thousand dots.
 
@@ -1180,9 +1259,13 @@ def label(
     """
     source = model_source(engine, source, model)
     source_columns = [c for c in check_columns(engine, source, model.columns) if c not in source.derived_names()]
+    columns, assign, lookups = list(model.columns), model.assignment(), []
+    specs = cat.specs_of(model.categorical)
+    if specs:
+        columns, assign, lookups = code_assignment(columns, assign, cat.indicator_positions(columns, specs), cat.code_names(specs))
     select = sqlgen.label_select(
-        source, model.columns, source_columns, model.assignment(), engine.dialect, cell_map=model.cell_map_spec(),
-        materialize=materialize or bool(source.files),
+        source, columns, source_columns, assign, engine.dialect, cell_map=model.cell_map_spec(),
+        materialize=materialize or bool(source.files), lookups=lookups,
     )
     if model.names:  # a segment_name column once segments are named (`tillite name`)
         select = sqlgen.segment_names_column(select, "segment", {int(k): v for k, v in model.names.items()})

@@ -957,6 +957,7 @@ def _assignment_layers(
     keep_source: bool,
     cell_map: CellMap | None = None,
     fence: bool | None = None,
+    lookups: Sequence["CodeLookup"] = (),
 ) -> tuple[exp.Select, str, str, list[str]]:
     """A query with the segment of each row (NULL for unusable rows).
 
@@ -968,6 +969,8 @@ def _assignment_layers(
     centred value columns); when keep_source the select also carries every
     source column.  ``fence`` (default: when not keeping the source) computes
     the scores once per row on engines that would inline them (``scan_fence``).
+    ``lookups``: each adds to score i its table's entry for the row's code
+    (categorical columns; the codes are carried on as q0, q1, ...).
     """
     fence = (not keep_source) if fence is None else fence
     d, k = len(columns), len(assign.centroids)
@@ -976,17 +979,26 @@ def _assignment_layers(
     best, seg = internal("best"), internal("segment")
     src_cols = [exp.Star()] if keep_source else []
     grid_v = [internal(f"g{j}") for j in range(d)] if cell_map is not None else []
+    codes = [internal(f"q{g}") for g in range(len(lookups))]
     stage1 = exp.select(
         *src_cols,
+        *[exp.alias_(col(lk.code), q, quoted=True) for lk, q in zip(lookups, codes)],
         *[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, assign.center), v)],
         *([exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, cell_map.grid.center), grid_v)] if cell_map else []),
     ).from_(source.relation())
     a, b = assign.score_coefficients()
-    passthrough = [exp.Star()] if keep_source else [col(n) for n in v + grid_v]
+    passthrough = [exp.Star()] if keep_source else [col(n) for n in codes + v + grid_v]
+
+    def scored(i: int) -> exp.Expression:
+        form = linear_form(v, a[i], b[i])
+        for lk, q in zip(lookups, codes):
+            form = exp.Add(this=form, expression=lk.entry(i, col(q), dialect))
+        return form
+
     stage2 = exp.select(
         *passthrough,
         exp.alias_(usable_rows(v, dialect), internal("ok"), quoted=True),
-        *[exp.alias_(linear_form(v, a[i], b[i]), score[i], quoted=True) for i in range(k)],
+        *[exp.alias_(scored(i), score[i], quoted=True) for i in range(k)],
     ).from_(subquery(stage1, internal("a")))
     if fence:
         stage2 = scan_fence(stage2, dialect)
@@ -1033,7 +1045,8 @@ def _squared_norm(v_names: Sequence[str], assign: Assignment) -> exp.Expression:
 
 
 def refine_statement(
-    source: Source, columns: Sequence[str], assign: Assignment, dialect: str, cell_map: CellMap | None = None
+    source: Source, columns: Sequence[str], assign: Assignment, dialect: str, cell_map: CellMap | None = None,
+    lookups: Sequence["CodeLookup"] = (),
 ) -> exp.Select:
     """A refine pass: nearest centroid per row, GROUP BY segment.
 
@@ -1042,17 +1055,21 @@ def refine_statement(
     centroid they were assigned to: with n and LS that is the segment's exact CF
     in the published scalar form, shifted to the old centroid, so the exact SSE
     before and after moving the centroid both follow.  The segment NULL group
-    counts skipped rows.
+    counts skipped rows.  With ``lookups`` the groups are (segment, q0, q1, ...):
+    per segment and category code (see ``CodeLookup``).
     """
-    inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=False, cell_map=cell_map)
-    aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
+    inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=False, cell_map=cell_map,
+                                             lookups=lookups)
+    codes = [internal(f"q{g}") for g in range(len(lookups))]
+    aggs = [*[exp.alias_(col(q), f"q{g}", quoted=True) for g, q in enumerate(codes)],
+            exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
     aggs += [exp.alias_(float_sum(col(n), dialect), f"ls{j}", quoted=True) for j, n in enumerate(v)]
     dist = exp.Add(this=col(best), expression=paren(_squared_norm(v, assign)))
     aggs.append(exp.alias_(float_sum(dist, dialect), "dist", quoted=True))
     return (
         exp.select(exp.alias_(col(seg), "segment", quoted=True), *aggs)
         .from_(subquery(inner, internal("d")))
-        .group_by(col(seg), copy=False)  # no deep copy of an inline cell map
+        .group_by(col(seg), *[col(q) for q in codes], copy=False)  # no deep copy of an inline cell map
     )
 
 
@@ -1066,6 +1083,7 @@ def label_select(
     distance_name: str = "distance",
     cell_map: CellMap | None = None,
     materialize: bool = False,
+    lookups: Sequence["CodeLookup"] = (),
 ) -> exp.Select:
     """Every source column plus the segment id and the distance to its centroid.
 
@@ -1077,7 +1095,7 @@ def label_select(
     for skipped rows and for the outlier group / noise (segment -1).
     """
     inner, seg, best, v = _assignment_layers(
-        source, columns, assign, dialect, keep_source=True, cell_map=cell_map, fence=materialize
+        source, columns, assign, dialect, keep_source=True, cell_map=cell_map, fence=materialize, lookups=lookups
     )
     sq_norm = _squared_norm(v, assign)
     distance = case_when(
@@ -1517,3 +1535,24 @@ def category_code_expression(column: str, type_name: str, values: Sequence[str],
     ifs += [exp.If(this=exp.EQ(this=col(column), expression=category_literal(v, type_name, dialect)), true=num(i + 1))
             for i, v in enumerate(values)]
     return exp.Case(ifs=ifs, default=num(len(values) + 1))
+
+
+@dataclass(frozen=True)
+class CodeLookup:
+    """A categorical column in the nearest-centroid SQL: per centroid i, ``tables[i][q - 1]`` is the whole
+    squared (weighted, scaled) distance its indicators add for a row of category code q; a row's score is
+    the numeric columns' score plus that entry (one array lookup instead of a term per indicator)."""
+
+    code: str  # the source's derived code column (1-based)
+    tables: tuple[tuple[float, ...], ...]
+
+    def entry(self, i: int, q: exp.Expression, dialect: str) -> exp.Expression:
+        return array_entry([float(x) for x in self.tables[i]], q, dialect)
+
+
+def array_entry(values: Sequence[float], index: exp.Expression, dialect: str) -> exp.Expression:
+    """values[index], counting from 1: DuckDB [..][i], PostgreSQL (ARRAY[..])[i], Spark element_at(array(..), i)."""
+    array = exp.Array(expressions=[num(float(x)) for x in values])
+    if dialect in SPARK_DIALECTS:
+        return exp.Anonymous(this="element_at", expressions=[array, index])
+    return exp.Bracket(this=array, expressions=[index])
