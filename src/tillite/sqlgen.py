@@ -374,8 +374,10 @@ def sample_statement(
     method: str = "SYSTEM",
     limit: int | None = None,
     seed: int | None = None,
+    text_columns: Sequence[str] = (),
 ) -> exp.Select:
     """Rows of the chosen columns as DOUBLE, optionally from a TABLESAMPLE.
+    ``text_columns`` come along as text t0, t1, ... (categorical columns; NULL stays NULL).
 
     NULL/NaN/Inf rows are filtered out in SQL so the sample holds usable rows only.
     With ``seed`` the sample repeats where the engine can repeat one
@@ -386,10 +388,14 @@ def sample_statement(
     spark_seeded = sampled and seed is not None and dialect in SPARK_DIALECTS
     rel = source.relation(table_sample(float(percent), method, dialect, seed=seed) if sampled and not spark_seeded else None)
     names = [internal(f"x{j}") for j in range(len(columns))]
-    inner = exp.select(*[exp.alias_(to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)]).from_(rel)
+    texts = [internal(f"t{j}") for j in range(len(text_columns))]
+    inner = exp.select(
+        *[exp.alias_(to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)],
+        *[exp.alias_(exp.cast(col(c), exp.DataType.build("VARCHAR")), n, quoted=True) for c, n in zip(text_columns, texts)],
+    ).from_(rel)
     if spark_seeded:
         inner = inner.where(exp.LT(this=exp.Rand(this=num(int(seed))), expression=num(float(percent) / 100.0)))
-    outer = exp.select(*[col(n) for n in names]).from_(subquery(inner, internal("s"))).where(usable_rows(names, dialect))
+    outer = exp.select(*[col(n) for n in names + texts]).from_(subquery(inner, internal("s"))).where(usable_rows(names, dialect))
     if limit is not None:
         outer = outer.limit(num(int(limit)))
     return outer
@@ -1531,9 +1537,16 @@ def indicator_expressions(
 def category_code_expression(column: str, type_name: str, values: Sequence[str], dialect: str | None = None) -> exp.Expression:
     """The category's code as an integer: 1, 2, ... for the listed values, len+1 for any other value,
     len+2 for NULL (the position of its indicator, counting from 1)."""
-    ifs = [exp.If(this=exp.Is(this=col(column), expression=exp.Null()), true=num(len(values) + 2))]
-    ifs += [exp.If(this=exp.EQ(this=col(column), expression=category_literal(v, type_name, dialect)), true=num(i + 1))
-            for i, v in enumerate(values)]
+    is_null = exp.If(this=exp.Is(this=col(column), expression=exp.Null()), true=num(len(values) + 2))
+    literals = [category_literal(v, type_name, dialect) for v in values]
+    if literals and dialect in ("duckdb", "postgres") or literals and dialect in SPARK_DIALECTS:
+        # one array search instead of a comparison per category (DuckDB: 0.06 s against 0.14 s on 2M rows here)
+        search = {"duckdb": "list_position", "postgres": "array_position"}.get(dialect, "array_position")
+        found = exp.Anonymous(this=search, expressions=[exp.Array(expressions=literals), col(column)])
+        if dialect in SPARK_DIALECTS:  # Spark's array_position gives 0 for a value not in the array
+            found = exp.Nullif(this=found, expression=num(0))
+        return exp.Case(ifs=[is_null], default=exp.Coalesce(this=found, expressions=[num(len(values) + 1)]))
+    ifs = [is_null] + [exp.If(this=exp.EQ(this=col(column), expression=lit), true=num(i + 1)) for i, lit in enumerate(literals)]
     return exp.Case(ifs=ifs, default=num(len(values) + 1))
 
 
