@@ -208,3 +208,48 @@ def test_group_scale_is_the_root_of_one_minus_the_sum_of_squared_shares():
     # outside reference: the definition (Gini impurity 1 - sum p^2), worked by hand: 1 - (0.25 + 0.25) = 0.5
     assert cat.group_scale(np.array([0.5, 0.5])) == pytest.approx(np.sqrt(0.5))
     assert cat.group_scale(np.array([1.0, 0.0])) == 0.0
+
+
+def test_scoring_macros_take_the_category_and_agree_with_the_labels(mixed_db, tmp_path):
+    from tillite import macros as M
+
+    path = tmp_path / "copy.duckdb"
+    path.write_bytes(mixed_db.read_bytes())
+    model = run_model(path, 6)
+    labels_of(path, model)
+    M.install_into(path, M.scoring_macros(model, "mixed"))
+    con = duckdb.connect(str(path), read_only=True)
+    # outside reference: the label view's own segment and distance, row by row (the two share no code path)
+    differ = con.execute('SELECT count(*) FROM labels WHERE mixed_segment(a, b, district) <> segment '
+                         'OR abs(mixed_distance(a, b, district) - distance) > 1e-9 * (1 + distance)').fetchone()[0]
+    unseen = con.execute("SELECT mixed_segment(a, b, 'never seen') = mixed_segment(a, b, 'also new') FROM t LIMIT 5").fetchall()
+    con.close()
+    assert differ == 0
+    assert all(r[0] for r in unseen)  # two unseen values are the same "other" category
+
+
+def test_report_shows_each_category_share_per_segment(mixed_db):
+    from tillite import report as R
+
+    x, c, _ = mixed_data()
+    model = run_model(mixed_db, 6)
+    seg = labels_of(mixed_db, model)
+    with open_source(str(mixed_db), table="t") as (engine, src):
+        content = R.report_of_model(engine, src, model, ["district"])
+    assert content is not None
+    # outside reference: numpy share of "north" rows in each labelled segment
+    name = model.categorical[0]["indicators"][model.categorical[0]["values"].index("north")]
+    for i, sid in enumerate(model.segment_ids()):
+        rows = seg == sid
+        expected = float(np.mean([v == "north" for v in c[rows]]))
+        assert model.category_shares(i)["district"]["north"] == pytest.approx(expected, abs=1e-9)
+    assert name in json.dumps(content, default=str)
+
+
+def test_a_store_refuses_categorical_columns_in_one_line(mixed_db):
+    from tillite import store as S
+    from tillite.errors import ParameterError
+
+    with open_source(str(mixed_db), table="t", writable=True) as (engine, src):
+        with pytest.raises(ParameterError, match="categorical"):
+            S.build(engine, src, ["a", "b"], S.PartitionSpec(("district",)), Settings(k=3, categorical=("district",)))

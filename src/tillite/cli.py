@@ -390,15 +390,26 @@ def sql_command(source, table, columns, stage, model_path, dialect, cell_budget)
                 src = sqlgen.Source.of_table(table)
             except ValueError as err:
                 raise click.BadParameter(str(err), param_hint="--table") from None
+            src = _model_source(src, model, dialect)
             statements = _stage_statements(None, src, cols, cols, stage, model, dialect, cell_budget)
         else:
             from .pipeline import check_columns
 
             with _open(source, table) as (engine, src):
-                source_columns = check_columns(engine, src, cols)
+                src = _model_source(src, model, dialect)
+                source_columns = [c for c in check_columns(engine, src, cols) if c not in src.derived_names()]
                 statements = _stage_statements(engine, src, cols, source_columns, stage, model, dialect, cell_budget)
         for st in statements:
             click.echo(sqlgen.render(st, dialect, pretty=True) + ";")
+
+
+def _model_source(src, model, dialect):
+    """The source with the model's category indicators, if it has categorical columns."""
+    if model is None or not model.categorical:
+        return src
+    from .categorical import specs_of, with_indicators
+
+    return with_indicators(src, specs_of(model.categorical), dialect)
 
 
 def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, cell_budget):

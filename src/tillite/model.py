@@ -303,6 +303,10 @@ class Model:
 
     # ------------------------------------------------------------ categorical columns (plain Python: `show`)
 
+    def input_columns(self) -> list[str]:
+        """The source columns a row needs: the numeric ones, then the categorical ones (not their indicators)."""
+        return [self.columns[j] for j in self.numeric_positions()] + [c["column"] for c in self.categorical]
+
     def numeric_positions(self) -> list[int]:
         """Positions in `columns` that are not category indicators."""
         indicators = {n for c in self.categorical for n in c.get("indicators", [])}
