@@ -1567,5 +1567,5 @@ def array_entry(values: Sequence[float], index: exp.Expression, dialect: str) ->
     """values[index], counting from 1: DuckDB [..][i], PostgreSQL (ARRAY[..])[i], Spark element_at(array(..), i)."""
     array = exp.Array(expressions=[num(float(x)) for x in values])
     if dialect in SPARK_DIALECTS:
-        return exp.Anonymous(this="element_at", expressions=[array, index])
+        return exp.Anonymous(this="element_at", expressions=[array, exp.cast(index, exp.DataType.build("INT"))])  # INT only
     return exp.Bracket(this=array, expressions=[index])
