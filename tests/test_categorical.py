@@ -253,3 +253,25 @@ def test_a_store_refuses_categorical_columns_in_one_line(mixed_db):
     with open_source(str(mixed_db), table="t", writable=True) as (engine, src):
         with pytest.raises(ParameterError, match="categorical"):
             S.build(engine, src, ["a", "b"], S.PartitionSpec(("district",)), Settings(k=3, categorical=("district",)))
+
+
+@pytest.mark.parametrize("sql_type, make", [
+    ("INTEGER", "i % 4"),
+    ("DATE", "DATE '2026-01-01' + (i % 4)::INT"),
+    ("BOOLEAN", "CASE WHEN i % 4 = 3 THEN NULL ELSE i % 4 = 0 END"),
+    ("VARCHAR", "CASE i % 4 WHEN 0 THEN 'O''Brien \"q\"' WHEN 1 THEN '(other)' WHEN 2 THEN 'select' ELSE NULL END"),
+])
+def test_categories_of_any_type_match_their_literals(tmp_path, sql_type, make):
+    path = tmp_path / "types.duckdb"
+    con = duckdb.connect(str(path))
+    con.execute(f"CREATE TABLE t AS SELECT i AS id, CAST({make} AS {sql_type}) AS c FROM range(4000) r(i)")
+    expected = sorted(n for (n,) in con.execute("SELECT count(*) FROM t GROUP BY c").fetchall())
+    con.close()
+    with open_source(str(path), table="t", writable=True) as (engine, src):
+        model = segment(engine, src, [], Settings(k=len(expected), categorical=("c",)))
+        label(engine, src, model, "labels")
+        got = sorted(n for n in engine.query(__import__("sqlglot").parse_one(
+            'SELECT count(*) AS n FROM labels GROUP BY segment'))["n"].tolist())
+    # outside reference: DuckDB's own GROUP BY of the column; each category (NULL too) is one segment
+    assert sorted(model.sizes) == expected == got
+    assert model.sse == pytest.approx(0.0, abs=1e-9)

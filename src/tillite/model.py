@@ -318,7 +318,9 @@ class Model:
         where = {c: j for j, c in enumerate(self.columns)}
         out = {}
         for spec in self.categorical:
-            labels = [*spec["values"], "(other)", "(NULL)"]
+            values = list(spec["values"])  # a category spelled like a bucket keeps its name; the bucket is renamed
+            labels = [*values, "(other)" if "(other)" not in values else "(any other value)",
+                      "(NULL)" if "(NULL)" not in values else "(NULL value)"]
             shares = [min(max(float(self.centroids[i][where[n]]), 0.0), 1.0) for n in spec["indicators"]]
             order = sorted(range(len(labels)), key=lambda j: (-shares[j], j))
             out[spec["column"]] = {labels[j]: shares[j] for j in order}
