@@ -427,9 +427,17 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, dialect, 
         return [sqlgen.cells_statement(src, cols, grid, dialect)]
     if model is None:
         raise click.UsageError(f"--stage {stage} needs --model")
+    assign, lookups = model.assignment(), []
+    if model.categorical:  # the numeric columns' scores plus one lookup per categorical column, as segment and label run them
+        from .categorical import code_names, indicator_positions, specs_of
+        from .pipeline import code_assignment
+
+        specs = specs_of(model.categorical)
+        source_columns = [c for c in source_columns if c not in model.columns or c in model.input_columns()]
+        cols, assign, lookups = code_assignment(cols, assign, indicator_positions(cols, specs), code_names(specs))
     if stage == "refine":
-        return [sqlgen.refine_statement(src, cols, model.assignment(), dialect, cell_map=model.cell_map_spec())]
-    return [sqlgen.label_select(src, cols, source_columns, model.assignment(), dialect, cell_map=model.cell_map_spec())]
+        return [sqlgen.refine_statement(src, cols, assign, dialect, cell_map=model.cell_map_spec(), lookups=lookups)]
+    return [sqlgen.label_select(src, cols, source_columns, assign, dialect, cell_map=model.cell_map_spec(), lookups=lookups)]
 
 
 @main.command("demo")
