@@ -1488,22 +1488,6 @@ def labelled_rows_select(labels: Source, columns: Sequence[str], by: Sequence[st
 # --------------------------------------------------------------------------- categorical columns
 
 
-def category_counts_statement(
-    source: Source, column: str, dialect: str, percent: float | None = None, method: str = "BERNOULLI",
-    seed: int | None = None,
-) -> exp.Select:
-    """value (the category as text, NULL for NULL), n: rows per category of ``column``, optionally in a
-    seeded sample (as ``sample_statement`` takes it)."""
-    sampled = percent is not None and percent < 100.0
-    spark_seeded = sampled and seed is not None and dialect in SPARK_DIALECTS
-    rel = source.relation(table_sample(float(percent), method, dialect, seed=seed) if sampled and not spark_seeded else None)
-    value = exp.alias_(exp.cast(col(column), exp.DataType.build("VARCHAR")), "value", quoted=True)
-    select = exp.select(value, exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)).from_(rel)
-    if spark_seeded:
-        select = select.where(exp.LT(this=exp.Rand(this=num(int(seed))), expression=num(float(percent) / 100.0)))
-    return select.group_by(exp.cast(col(column), exp.DataType.build("VARCHAR")))
-
-
 def category_literal(value: str, type_name: str, dialect: str | None = None) -> exp.Expression:
     """A category's text as a literal of the column's type: 'north', or CAST('7' AS INTEGER)."""
     kind = exp.DataType.build(type_name, dialect=dialect)
