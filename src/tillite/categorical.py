@@ -157,22 +157,3 @@ def group_scale(shares: np.ndarray) -> float:
     p = np.clip(np.asarray(shares, dtype=np.float64), 0.0, 1.0)
     gini = 1.0 - float((p * p).sum())
     return math.sqrt(gini) if gini > 1e-12 else 0.0
-
-
-def code_of_rows(x: np.ndarray, positions: np.ndarray) -> np.ndarray:
-    """The category code (1-based position of the indicator that is 1) of each row of x (0/1 indicators)."""
-    return (x[:, positions] * np.arange(1, len(positions) + 1)[None, :]).sum(axis=1)
-
-
-def segment_shares(centroids: np.ndarray, positions: np.ndarray) -> np.ndarray:
-    """Share of each category per segment: a centroid's indicator coordinates in original units."""
-    return np.clip(np.asarray(centroids, dtype=np.float64)[:, positions], 0.0, 1.0)
-
-
-def shares_text(labels: Sequence[str], shares: Sequence[float], most: int = 4, floor: float = 0.005) -> str:
-    """"61% north, 30% harbour, 9% other" (largest first, up to ``most``, shares under ``floor`` left out)."""
-    order = sorted(range(len(shares)), key=lambda i: (-shares[i], i))
-    shown = [i for i in order if shares[i] >= floor][:most]
-    rest = sum(shares[i] for i in order if i not in shown)
-    text = ", ".join(f"{100 * shares[i]:.0f}% {labels[i]}" for i in shown)
-    return text + (f", {100 * rest:.0f}% in {len(order) - len(shown)} more" if rest >= floor else "")
