@@ -19,8 +19,7 @@ from tillite.engines import open_source
 from tillite.model import Model
 from tillite.pipeline import Settings, label, segment
 
-from conftest import write_table
-from test_bad_inputs import assert_one_error_line
+from conftest import assert_one_error_line, write_table
 
 CATEGORIES = np.array(["harbour", "north", None], dtype=object)
 
@@ -71,7 +70,7 @@ def run_model(path, k: int, **kw) -> Model:
         return segment(engine, src, ["a", "b"], Settings(k=k, categorical=("district",), **kw))
 
 
-def numpy_sse(u: np.ndarray, seg: np.ndarray, centroids_u: np.ndarray, ids) -> float:
+def sse_at_centroids(u: np.ndarray, seg: np.ndarray, centroids_u: np.ndarray, ids) -> float:
     pos = {sid: i for i, sid in enumerate(ids)}
     own = centroids_u[[pos[s] for s in seg]]
     return float(((u - own) ** 2).sum())
@@ -96,7 +95,7 @@ def test_sse_equals_numpy_on_one_hot_scaled_rows(mixed_db):
     seg = labels_of(mixed_db, model)
     u = one_hot_scaled(x, c, listed)
     # outside reference: numpy's SSE of the same assignment on explicitly one-hot-encoded, scaled rows
-    expected = numpy_sse(u, seg, centroids_in_numpy_units(model, x, c, listed), model.segment_ids())
+    expected = sse_at_centroids(u, seg, centroids_in_numpy_units(model, x, c, listed), model.segment_ids())
     assert model.sse == pytest.approx(expected, rel=1e-9)
     assert np.bincount(seg, minlength=model.k).tolist() == [model.sizes[model.segment_ids().index(i)] for i in range(model.k)]
 
@@ -126,7 +125,7 @@ def test_weight_of_a_categorical_column_scales_all_its_indicators(mixed_db):
     u = one_hot_scaled(x, c, listed, weights=(2.0, 1.0), cat_weight=0.5)
     cu = centroids_in_numpy_units(model, x, c, listed, weights=(2.0, 1.0), cat_weight=0.5)
     # outside reference: numpy SSE on the one-hot rows weighted by hand
-    assert model.sse == pytest.approx(numpy_sse(u, seg, cu, model.segment_ids()), rel=1e-9)
+    assert model.sse == pytest.approx(sse_at_centroids(u, seg, cu, model.segment_ids()), rel=1e-9)
 
 
 def test_default_weight_gives_the_column_the_variance_of_one_scaled_numeric_column(mixed_db):
@@ -153,7 +152,7 @@ def test_categories_beyond_max_count_as_other_and_unseen_values_too(tmp_path):
     seg = labels_of(path, model)
     u = one_hot_scaled(x, c, listed)
     # outside reference: numpy SSE with d2..d5 as one "other" column
-    assert model.sse == pytest.approx(numpy_sse(u, seg, centroids_in_numpy_units(model, x, c, listed), model.segment_ids()), rel=1e-9)
+    assert model.sse == pytest.approx(sse_at_centroids(u, seg, centroids_in_numpy_units(model, x, c, listed), model.segment_ids()), rel=1e-9)
     # a value first seen after the build counts as "other": same segment and distance as a d5 row
     con = duckdb.connect(str(path))
     con.execute("INSERT INTO t SELECT id + 100000, a, b, 'never seen' FROM t WHERE district = 'd5' LIMIT 3")

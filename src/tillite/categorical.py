@@ -60,8 +60,8 @@ class CategoricalColumn:
         return CategoricalColumn(str(data["column"]), str(data["type"]), tuple(map(str, data["values"])),
                                  tuple(map(str, data["indicators"])))
 
-    def expressions(self, dialect: str | None = None) -> list:
-        return sqlgen.indicator_expressions(self.column, self.type, self.values, dialect)
+    def expressions(self, target: Any = "duckdb") -> list:
+        return sqlgen.indicator_expressions(self.column, self.type, self.values, target)
 
 
 def indicator_names(column: str, labels: Sequence[str], taken: set[str]) -> tuple[str, ...]:
@@ -98,13 +98,6 @@ def check_categorical(columns: Sequence[str], categorical: Sequence[str], descri
         raise InputError(f"categorical column {', '.join(missing)} not found in {label}; columns there: {listing}")
 
 
-def check_max_categories(value: Any) -> None:
-    ok = isinstance(value, (int, np.integer)) and not isinstance(value, bool) and 1 <= value <= MAX_CATEGORIES
-    if not ok:
-        raise ParameterError(f"{{max_categories}} must be a whole number from 1 to {MAX_CATEGORIES}, got {value!r}",
-                             "max_categories")
-
-
 def check_distinct(column: str, distinct: int, sampled: int) -> None:
     if distinct > DISTINCT_LIMIT:
         raise InputError(
@@ -113,14 +106,14 @@ def check_distinct(column: str, distinct: int, sampled: int) -> None:
         )
 
 
-def with_indicators(source: Source, specs: Sequence[CategoricalColumn], dialect: str | None = None) -> Source:
+def with_indicators(source: Source, specs: Sequence[CategoricalColumn], target: Any = "duckdb") -> Source:
     """The source read with every indicator of ``specs`` as a derived DOUBLE column, and each column's
     category code (``code_names``; the cell pass groups on it).  Statements read only the derived
     columns they name (the engines drop the others from the projection)."""
     if not specs:
         return source
-    derived = tuple((n, e) for s in specs for n, e in zip(s.names, s.expressions(dialect)))
-    codes = tuple((name, sqlgen.category_code_expression(s.column, s.type, s.values, dialect))
+    derived = tuple((n, e) for s in specs for n, e in zip(s.names, s.expressions(target)))
+    codes = tuple((name, sqlgen.category_code_expression(s.column, s.type, s.values, target))
                   for name, s in zip(code_names(specs), specs))
     return replace(source, derived=source.derived + derived + codes)
 
