@@ -301,9 +301,9 @@ def test_refine_pass_through_a_cell_map_held_as_a_temporary_view_equals_duckdb(s
     assert all(t.name != held.table for t in sparks.spark.catalog.listTables())
 
 
-def test_categorical_segment_and_labels_equal_duckdb(sparks, duck, data, rows):
+def test_categorical_segment_and_labels_equal_duckdb(sparks, duck, data, engine_rows):
     from tillite import categorical as cat
-    from tillite.pipeline import code_assignment, model_source
+    from tillite.stages import code_assignment, model_source
 
     settings = dict(SETTINGS, categorical=("kind",))
     ref = segment(duck, DUCK_SRC, COLUMNS, Settings(**settings))
@@ -317,4 +317,4 @@ def test_categorical_segment_and_labels_equal_duckdb(sparks, duck, data, rows):
     expected = duck.query(exp.select(exp.Star()).from_(sqlgen.subquery(select, "l")).order_by(sqlgen.col("id")))
     label(sparks, Source.of_table(REGISTERED), ref, "kind_segments", materialize=True)
     # reference: DuckDB's labels over the same rows
-    assert_same_labels(ordered_rows(sparks, "kind_segments"), expected, rows)
+    assert_same_labels(ordered_rows(sparks, "kind_segments"), expected, engine_rows)
