@@ -266,13 +266,14 @@ def test_show_prints_round_off_in_a_centroid_as_zero(tmp_path, model_file):
     [
         (None, "No such file"),
         ('{"a": 1}', "not a tillite model"),
+        ('{"format": "other-tool", "a": 1}', "not a tillite model"),
         ("[1, 2]", "not a tillite model"),
         ("not json {", "not valid JSON"),
         (b"\x88\x00\xff binary", "not text"),
         ('{"format": "tillite-model", "version": "one"}', "version"),
         ('{"format": "tillite-model", "version": 1, "columns": ["a"], "center": [0], "scale": [1], "centroids_scaled": [[0]]}', "lacks"),
     ],
-    ids=["missing", "other-json", "json-list", "not-json", "binary", "bad-version", "incomplete"],
+    ids=["missing", "other-json", "other-format", "json-list", "not-json", "binary", "bad-version", "incomplete"],
 )
 def test_show_on_a_file_that_is_not_a_model_is_a_one_line_error_naming_it(tmp_path, content, needle):
     path = tmp_path / "thing.json"
@@ -280,8 +281,7 @@ def test_show_on_a_file_that_is_not_a_model_is_a_one_line_error_naming_it(tmp_pa
         path.write_bytes(content)
     elif content is not None:
         path.write_text(content)
-    # not cli_words: model.py names a missing format "None" (issue 13 point 2, left to the error-family work)
-    assert_one_error_line(run_cli("show", path), str(path), needle, cli_words=False)
+    assert_one_error_line(run_cli("show", path), str(path), needle)
 
 
 def test_show_on_a_damaged_model_names_what_is_wrong(tmp_path, model_file):

@@ -19,7 +19,9 @@ from .shared import (
 sqlgen = lazy_module("tillite.sqlgen")
 open_source = lazy_name("tillite.engines", "open_source")
 Model = lazy_name("tillite.model", "Model")
-Settings, label, run_profile, segment = (lazy_name("tillite.pipeline", n) for n in ("Settings", "label", "run_profile", "segment"))
+Settings = lazy_name("tillite.settings", "Settings")
+label, segment = (lazy_name("tillite.pipeline", n) for n in ("label", "segment"))
+run_profile = lazy_name("tillite.stages", "run_profile")
 
 STAGES = ("profile", "cells", "refine", "label")
 
@@ -184,7 +186,7 @@ def sql_command(source, table, columns, stage, model_path, target, cell_budget) 
             src = _model_source(src, model, target)
             statements = _stage_statements(None, src, cols, cols, stage, model, target, cell_budget)
         else:
-            from ..pipeline import check_columns
+            from ..stages import check_columns
 
             with open_with_options(source, table) as (engine, src):
                 src = _model_source(src, model, target)
@@ -204,7 +206,7 @@ def _model_source(src, model, target):
 
 
 def _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget):
-    from ..pipeline import grid_for_profile
+    from ..stages import grid_for_profile
 
     if stage == "profile":
         return [sqlgen.count_statement(src), sqlgen.sample_statement(src, cols, target, percent=1.0, limit=100_000)]
