@@ -320,3 +320,19 @@ def test_segment_within_and_its_labels_equal_duckdb(server, loaded, engine_rows)
     finally:
         pg.close()
         duck.close()
+
+
+def test_categorical_segment_and_labels_equal_duckdb(server, loaded, engine_rows):
+    pg = PostgresEngine(server.conninfo)
+    duck = DuckDBEngine(str(loaded))
+    try:
+        settings = dict(SETTINGS, categorical=("kind",))
+        model = segment(duck, SRC, COLUMNS, Settings(**settings))
+        # reference: DuckDB running the same trees (category codes by array_position, lookups by ARRAY[...][code])
+        assert_same_model(segment(pg, SRC, COLUMNS, Settings(**settings)), model)
+        label(pg, SRC, model, "kind_segments")
+        label(duck, SRC, model, "kind_segments")
+        assert_same_labels(ordered_rows(pg, "kind_segments"), ordered_rows(duck, "kind_segments"), engine_rows)
+    finally:
+        pg.close()
+        duck.close()

@@ -318,3 +318,22 @@ def test_segment_within_and_its_labels_equal_duckdb(sparks, duck, data, engine_r
         assert_same_within_model(got, ref)
     label(sparks, Source.of_table(REGISTERED), ref, "point_groups")
     assert_same_within_labels(ordered_rows(sparks, "point_groups"), want, engine_rows)
+
+
+def test_categorical_segment_and_labels_equal_duckdb(sparks, duck, data, engine_rows):
+    from tillite import categorical as cat
+    from tillite.stages import code_assignment, model_source
+
+    settings = dict(SETTINGS, categorical=("kind",))
+    ref = segment(duck, DUCK_SRC, COLUMNS, Settings(**settings))
+    for src in sources(data):
+        # reference: DuckDB running the same trees (codes by array_position, lookups by element_at here)
+        assert_same_model(segment(sparks, src, COLUMNS, Settings(**settings)), ref)
+    specs = cat.specs_of(ref.categorical)
+    cols, assign, lookups = code_assignment(ref.columns, ref.assignment(), cat.indicator_positions(ref.columns, specs),
+                                            cat.code_names(specs))
+    select = sqlgen.label_select(model_source(duck, DUCK_SRC, ref), cols, ["id", *COLUMNS, "kind"], assign, "duckdb", lookups=lookups)
+    expected = duck.query(exp.select(exp.Star()).from_(sqlgen.subquery(select, "l")).order_by(sqlgen.col("id")))
+    label(sparks, Source.of_table(REGISTERED), ref, "kind_segments", materialize=True)
+    # reference: DuckDB's labels over the same rows
+    assert_same_labels(ordered_rows(sparks, "kind_segments"), expected, engine_rows)

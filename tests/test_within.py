@@ -205,6 +205,7 @@ def many_groups_db(tmp_path_factory):
     (["--within", "nope"], ["--within", "nope", "not found", "columns there"]),
     (["--within", "id"], ["--within", "id", "100,000", "at most 1,000"]),
     (["--within", "kind", "--method", "density"], ["--within", "--method", "density"]),
+    (["--within", "kind", "--categorical", "kind"], ["--within", "--categorical"]),
 ])
 def test_bad_within_gives_one_error_line(many_groups_db, extra, needles):
     k = [] if "density" in extra else ["--k", 3]

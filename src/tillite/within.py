@@ -65,6 +65,9 @@ def check_within(engine: Engine, source: Source, columns: Sequence[str], within:
         raise ParameterError(f"{{within}} {within} is also a segmenting column; group by a column not in --columns", "within")
     if settings.method == "density":
         raise ParameterError("{within} works with {method} kmeans or ward, not density", "within", "method")
+    if getattr(settings, "categorical", ()):
+        raise ParameterError("{within} does not take {categorical} columns yet: segment each group on numeric columns",
+                             "within", "categorical")
     described = engine.describe(source)
     types = dict(described)
     if within not in types:
