@@ -107,11 +107,15 @@ def measure_command(db: Path, table: str, cols: int, k: int, repeat: int) -> lis
     import tempfile
 
     env = dict(os.environ)
+    env.pop("PYTHONDONTWRITEBYTECODE", None)  # bytecode cached, as for an installed package (the first run writes it)
     src = str(HERE.parent / "src")
     env["PYTHONPATH"] = src + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
     out = Path(tempfile.gettempdir()) / "tillite-bench-command-model.json"
     cmd = [sys.executable, "-m", "tillite.cli", "segment", str(db), "-t", table,
            "-c", ",".join(f"c{j}" for j in range(cols)), "--k", str(k), "-q", "-o", str(out)]
+    subprocess.run([sys.executable, "-m", "tillite.cli", "--version"], check=True, capture_output=True, env=env)
+    subprocess.run([sys.executable, "-c", "import tillite.cli, tillite.pipeline, tillite.engines, tillite.model"],
+                   check=True, capture_output=True, env=env)
     walls = []
     for _ in range(repeat):
         t0 = time.perf_counter()
