@@ -7,7 +7,10 @@ Forms compared, each drawing about 1.5 x 50,000 rows like `run_profile`:
 
 - ``TABLESAMPLE BERNOULLI (p PERCENT) REPEATABLE (seed)``: what the profile uses;
 - a filter on a hash of (rowid, seed): ``hash(rowid, seed) % 2^32 < p * 2^32``, for base tables;
-- ``TABLESAMPLE SYSTEM (p PERCENT) REPEATABLE (seed)``: whole vectors of 2,048 rows.
+- ``TABLESAMPLE SYSTEM (p PERCENT) REPEATABLE (seed)``: whole vectors of 2,048 rows;
+- the block sample the profile now draws from large base tables: SYSTEM (8 p PERCENT) on one
+  thread, then BERNOULLI (12.5 PERCENT), both REPEATABLE (seed).  Its "1/2/4 threads" column
+  is the connection's count before the statement, which runs on one thread.
 
 Prints, per form: the warm median (interleaved with a plain `sum` scan of the same columns),
 whether 1, 2 and 4 threads draw the same rows, and the first statement of a fresh process
@@ -36,7 +39,13 @@ def statements(table: str, cols: list[str], rows: int, seed: int) -> dict[str, s
         "bernoulli": f"SELECT {sel} FROM {table} TABLESAMPLE BERNOULLI ({percent!r} PERCENT) REPEATABLE ({seed})",
         "rowid_hash": f"SELECT {sel} FROM {table} WHERE hash(rowid, {seed}) % 4294967296 < {cut}",
         "system": f"SELECT {sel} FROM {table} TABLESAMPLE SYSTEM ({percent!r} PERCENT) REPEATABLE ({seed})",
+        # what the profile draws from a large base table (sqlgen.block_sample_statement), run on one thread
+        "block": f"SELECT * FROM (SELECT {sel} FROM {table} TABLESAMPLE SYSTEM ({8 * percent!r} PERCENT) REPEATABLE ({seed})) AS s"
+                 f" TABLESAMPLE BERNOULLI (12.5 PERCENT) REPEATABLE ({seed})",
     }
+
+
+ONE_THREAD = ("block",)
 
 
 def child(db: str, table: str, cols: list[str], rows: int, first: str, seed: int) -> None:
@@ -47,6 +56,7 @@ def child(db: str, table: str, cols: list[str], rows: int, first: str, seed: int
     qs = statements(table, cols, rows, seed)
     out = {}
     for name in (first, "scan", "scan2"):
+        con.execute(f"SET threads = {1 if name in ONE_THREAD else 2}")
         t = time.perf_counter()
         con.execute(qs["scan" if name == "scan2" else name]).fetchall()
         out[name] = time.perf_counter() - t
@@ -76,7 +86,7 @@ def main() -> None:
         drawn = []
         for threads in (1, 2, 4):
             con = duckdb.connect(args.db, read_only=True)
-            con.execute(f"SET threads = {threads}")
+            con.execute(f"SET threads = {1 if name in ONE_THREAD else threads}")
             drawn.append(sorted(con.execute(qs[name]).fetchall()))
             con.close()
         same[name] = (drawn[0] == drawn[1] == drawn[2], [len(d) for d in drawn])
@@ -91,6 +101,7 @@ def main() -> None:
     times: dict[str, list[float]] = {k: [] for k in qs}
     for _ in range(args.repeat):
         for name, q in qs.items():
+            con.execute(f"SET threads = {1 if name in ONE_THREAD else 2}")
             t = time.perf_counter()
             con.execute(q).fetchall()
             times[name].append(time.perf_counter() - t)
