@@ -60,10 +60,10 @@ def child(kind: str, db: str, table: str, cols: int, k: int) -> None:
     t0 = time.perf_counter()
     out: dict = {}
     if kind in ("tillite", "tillite-bernoulli"):
-        from tillite import DuckDBEngine, Settings, Source, pipeline, segment
+        from tillite import DuckDBEngine, Settings, Source, segment, stages
 
         if kind == "tillite-bernoulli":  # the profile as before the block sample: BERNOULLI REPEATABLE over every row
-            pipeline.block_sample_pays = lambda *a, **k: False
+            stages.block_sample_pays = lambda *a, **k: False
 
         engine = DuckDBEngine(db, read_only=True)
         model = segment(engine, Source.of_table(table), [f"c{j}" for j in range(cols)], Settings(k=k))

@@ -1,5 +1,7 @@
-"""Shared fixtures: tables loaded from numpy arrays into throwaway DuckDB files, a throwaway
-PostgreSQL server, and a refresh held open inside its transaction."""
+"""Shared fixtures and helpers, each defined once: the make_blobs data sets (named by rows,
+columns and centres), tables loaded from numpy arrays into throwaway DuckDB files and SQL run
+straight on them, the CLI run in-process and its one-error-line check, a throwaway PostgreSQL
+server, and a refresh held open inside its transaction."""
 
 from __future__ import annotations
 
@@ -11,38 +13,131 @@ from typing import Iterator
 import duckdb
 import numpy as np
 import pytest
+from click.testing import CliRunner
 from sklearn.datasets import make_blobs
 
+from tillite.cli import main
 from tillite.engines import DuckDBEngine
 
+from engine_checks import make_rows
 from throwaway_servers import start_postgres
 
 
 def write_table(path: Path, table: str, data: dict[str, np.ndarray]) -> Path:
     """Create `table` in the DuckDB file at `path` from named numpy columns."""
-    con = duckdb.connect(str(path))
-    try:
+    with duckdb_file(path) as con:
         frame = {name: np.asarray(values) for name, values in data.items()}  # noqa: F841 (scanned by name)
         con.execute(f'CREATE OR REPLACE TABLE "{table}" AS SELECT * FROM frame')
+    return path
+
+
+def numpy_sse(x: np.ndarray, labels: np.ndarray | None = None) -> float:
+    """numpy direct: the sum of squared deviations of the rows from their group's mean (one group without labels)."""
+    if labels is None:
+        return float(((x - x.mean(axis=0)) ** 2).sum())
+    return sum(float(((x[labels == g] - x[labels == g].mean(axis=0)) ** 2).sum()) for g in np.unique(labels))
+
+
+@contextmanager
+def duckdb_file(path: Path, read_only: bool = False) -> Iterator[duckdb.DuckDBPyConnection]:
+    """A plain DuckDB connection to the file, closed on leaving (so a command can open the file next)."""
+    con = duckdb.connect(str(path), read_only=read_only)
+    try:
+        yield con
     finally:
         con.close()
-    return path
+
+
+def fetch_rows(path: Path, sql: str, read_only: bool = False) -> list[tuple]:
+    """Run SQL straight on the DuckDB file: its rows."""
+    with duckdb_file(path, read_only) as con:
+        return con.execute(sql).fetchall()
+
+
+def fetch_columns(path: Path, sql: str, read_only: bool = False) -> dict[str, np.ndarray]:
+    """Run SQL straight on the DuckDB file: its columns as numpy arrays."""
+    with duckdb_file(path, read_only) as con:
+        return con.execute(sql).fetchnumpy()
+
+
+def altered_copy(path: Path, copy: Path, *statements: str) -> Path:
+    """A copy of the DuckDB file at ``path``, with the SQL statements run on it."""
+    copy.write_bytes(path.read_bytes())
+    with duckdb_file(copy) as con:
+        for statement in statements:
+            con.execute(statement)
+    return copy
 
 
 def columns_of(x: np.ndarray, names: list[str]) -> dict[str, np.ndarray]:
     return {n: x[:, j] for j, n in enumerate(names)}
 
 
+def run_cli(*args: object):
+    """Invoke the `tillite` command in-process; stdout and stderr come back separately (click >= 8.2)."""
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+def assert_one_error_line(result, *needles: str, code: int = 1, cli_words: bool = True) -> str:
+    """The exit code, exactly one line starting 'Error:' on stderr naming every needle, no traceback.
+
+    With code 1 that line is all of stderr; a usage error (code 2) also prints click's usage lines.
+    ``cli_words``: the line speaks the CLI's words, not the API's (no ``=True``, no ``None``).
+    """
+    assert result.exit_code == code, (result.exit_code, result.output)
+    assert isinstance(result.exception, SystemExit), repr(result.exception)
+    assert "Traceback" not in result.output
+    lines = result.stderr.strip().splitlines()
+    errors = [ln for ln in lines if ln.startswith("Error:")]
+    assert len(errors) == 1, lines
+    if code == 1:
+        assert len(lines) == 1, lines
+    line = errors[0]
+    for needle in needles:
+        assert needle in line, (needle, line)
+    if cli_words:
+        assert "=True" not in line and "None" not in line, line
+    return line
+
+
 @pytest.fixture
-def blobs():
-    """Well-separated blobs (scikit-learn make_blobs), 4 columns, 5 centres."""
+def blobs_30k_4d_5c():
+    """Five well-separated blobs (scikit-learn make_blobs), 4 columns, 30,000 rows."""
     x, y = make_blobs(n_samples=30_000, centers=5, n_features=4, cluster_std=0.6, center_box=(-12, 12), random_state=3)
     return x, y
 
 
+@pytest.fixture(scope="module")
+def blobs_3k_3d_3c():
+    """Three well-separated blobs (scikit-learn make_blobs), 3 columns, 3,000 rows."""
+    x, y = make_blobs(n_samples=3_000, centers=3, n_features=3, cluster_std=0.5, center_box=(-10, 10), random_state=1)
+    return x, y
+
+
+@pytest.fixture(scope="module")
+def blobs_600_4d_5c():
+    """Five overlapping blobs (scikit-learn make_blobs, cluster_std 1.5), 4 columns, 600 rows."""
+    x, y = make_blobs(n_samples=600, n_features=4, centers=5, cluster_std=1.5, random_state=7)
+    return x, y
+
+
+@pytest.fixture(scope="module")
+def blobs_6k_3d_5c():
+    """Five blobs (scikit-learn make_blobs), 3 columns, 6,000 rows."""
+    x, y = make_blobs(n_samples=6000, n_features=3, centers=5, cluster_std=1.0, random_state=4)
+    return x, y
+
+
+@pytest.fixture(scope="module")
+def blobs_6k_3d_4c():
+    """Four blobs (scikit-learn make_blobs, centres in [-8, 8]), 3 columns, 6,000 rows."""
+    x, y = make_blobs(n_samples=6_000, centers=4, n_features=3, cluster_std=1.0, center_box=(-8, 8), random_state=5)
+    return x, y
+
+
 @pytest.fixture
-def blob_db(tmp_path, blobs):
-    x, y = blobs
+def blob_db(tmp_path, blobs_30k_4d_5c):
+    x, y = blobs_30k_4d_5c
     names = ["a", "b", "c", "d"]
     data = columns_of(x, names)
     data["truth"] = y
@@ -70,6 +165,12 @@ def server():
     pg = start_postgres()
     yield pg
     pg.stop()
+
+
+@pytest.fixture(scope="module")
+def engine_rows():
+    """The cross-engine rows (engine_checks.make_rows): make_blobs, 5 centres, shifted far from 0, plus NULL/NaN/Inf rows."""
+    return make_rows()
 
 
 @contextmanager
@@ -102,6 +203,20 @@ def refresh_held_open(engine, store: str) -> Iterator[None]:
         release.set()
         t.join(30)
     assert not errors
+
+
+def sorted_cells(cells, keys: np.ndarray) -> tuple[np.ndarray, ...]:
+    """(keys, n, ls, ss) of cells in key order, so two cell sets compare row by row."""
+    order = np.lexsort(keys.T[::-1])
+    return keys[order], cells.n[order], cells.ls[order], cells.ss[order]
+
+
+def store_snapshot(con, info) -> dict[str, list[str]]:
+    """Every row of a store's registry and cells tables, as sorted text (a DB-API connection)."""
+    from tillite import store as S
+
+    tables = [S.STORES, S.PARTS, S.LABELS, info.cells_table]
+    return {t: sorted(map(repr, con.execute(f'SELECT * FROM "{t}"').fetchall())) for t in tables}
 
 
 def typed_partition_table(path):

@@ -20,7 +20,7 @@ from sqlglot import exp
 from tillite import sqlgen
 from tillite.engines import Engine
 from tillite.model import Model
-from tillite.pipeline import CellPass, RefineResult, _null_mask
+from tillite.stages import CellPass, RefineResult, null_mask
 from tillite.sqlgen import Source
 
 COLUMNS = ["litres", "unit price", "select"]
@@ -145,14 +145,14 @@ def assert_same_model(got: Model, ref: Model) -> None:
 def assert_same_labels(got: dict[str, np.ndarray], ref: dict[str, np.ndarray], rows: Rows) -> None:
     """Row for row: segment (NULL where the row is unusable), distance, and the data's NULL/NaN kept apart."""
     np.testing.assert_array_equal(np.asarray(got["id"]), np.asarray(ref["id"]))
-    seg_null = _null_mask(got["segment"])
-    np.testing.assert_array_equal(seg_null, _null_mask(ref["segment"]))
+    seg_null = null_mask(got["segment"])
+    np.testing.assert_array_equal(seg_null, null_mask(ref["segment"]))
     # reference: numpy's isfinite on the raw rows says which rows are unusable
     np.testing.assert_array_equal(seg_null, ~rows.usable)
     np.testing.assert_array_equal(np.ma.getdata(got["segment"])[~seg_null], np.ma.getdata(ref["segment"])[~seg_null])
     np.testing.assert_allclose(np.ma.getdata(got["distance"])[~seg_null].astype(float),
                                np.ma.getdata(ref["distance"])[~seg_null].astype(float), rtol=1e-9, atol=1e-12)
-    assert np.all(_null_mask(got["distance"]) == seg_null)
+    assert np.all(null_mask(got["distance"]) == seg_null)
     assert_null_and_nan_apart(got, rows)
     assert_null_and_nan_apart(ref, rows)
 

@@ -15,37 +15,14 @@ from pathlib import Path
 import duckdb
 import numpy as np
 import pytest
-from click.testing import CliRunner
 from sklearn.datasets import make_blobs
 
-from tillite.cli import main
 
-from conftest import write_table
-
-
-def run(*args: object):
-    return CliRunner().invoke(main, [str(a) for a in args])
-
-
-def assert_one_error_line(result, *needles: str, code: int = 1) -> str:
-    """The exit code, exactly one line starting 'Error:' on stderr naming every needle, no traceback."""
-    assert result.exit_code == code, (result.exit_code, result.output)
-    assert isinstance(result.exception, SystemExit), repr(result.exception)
-    assert "Traceback" not in result.output
-    lines = result.stderr.strip().splitlines()
-    errors = [ln for ln in lines if ln.startswith("Error:")]
-    assert len(errors) == 1, lines
-    if code == 1:
-        assert len(lines) == 1, lines
-    line = errors[0]
-    for needle in needles:
-        assert needle in line, (needle, line)
-    assert "=True" not in line and "None" not in line, line
-    return line
+from conftest import altered_copy, assert_one_error_line, run_cli, write_table
 
 
 @pytest.fixture(scope="module")
-def db(tmp_path_factory) -> Path:
+def bad_inputs_db(tmp_path_factory) -> Path:
     x, _ = make_blobs(n_samples=900, centers=3, n_features=3, cluster_std=0.5, random_state=4)
     path = tmp_path_factory.mktemp("bad") / "bad.duckdb"
     write_table(path, "points", {"id": np.arange(len(x)), "a": x[:, 0], "b": x[:, 1], "c": x[:, 2], "part": np.arange(len(x)) % 3})
@@ -55,19 +32,19 @@ def db(tmp_path_factory) -> Path:
 
 
 @pytest.fixture(scope="module")
-def model(db, tmp_path_factory) -> Path:
+def model(bad_inputs_db, tmp_path_factory) -> Path:
     out = tmp_path_factory.mktemp("model") / "m.json"
-    res = run("segment", db, "-t", "points", "-c", "a,b,c", "--k", 3, "-o", out, "-q")
+    res = run_cli("segment", bad_inputs_db, "-t", "points", "-c", "a,b,c", "--k", 3, "-o", out, "-q")
     assert res.exit_code == 0, res.output
     return out
 
 
 @pytest.fixture(scope="module")
-def store_db(tmp_path_factory) -> Path:
+def three_part_store_db(tmp_path_factory) -> Path:
     x, _ = make_blobs(n_samples=900, centers=3, n_features=2, cluster_std=0.5, random_state=4)
     path = tmp_path_factory.mktemp("store") / "store.duckdb"
     write_table(path, "points", {"a": x[:, 0], "b": x[:, 1], "part": np.arange(len(x)) % 3})
-    res = run("store", "build", path, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "-q")
+    res = run_cli("store", "build", path, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "-q")
     assert res.exit_code == 0, res.output
     return path
 
@@ -104,14 +81,14 @@ SEGMENT_CASES = [
 
 
 @pytest.mark.parametrize("options,needles", SEGMENT_CASES, ids=[" ".join(map(str, o)) for o, _ in SEGMENT_CASES])
-def test_segment_option_out_of_range_is_one_error_line_naming_the_option(tmp_path, db, options, needles):
-    res = run("segment", db, "-t", "points", "-c", "a,b,c", "-o", tmp_path / "m.json", "-q", *options)
+def test_segment_option_out_of_range_is_one_error_line_naming_the_option(tmp_path, bad_inputs_db, options, needles):
+    res = run_cli("segment", bad_inputs_db, "-t", "points", "-c", "a,b,c", "-o", tmp_path / "m.json", "-q", *options)
     assert_one_error_line(res, *needles)
     assert not (tmp_path / "m.json").exists()
 
 
-def test_store_build_with_a_negative_seed_is_one_error_line(tmp_path, db):
-    res = run("store", "build", db, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "--seed", -1,
+def test_store_build_with_a_negative_seed_is_one_error_line(tmp_path, bad_inputs_db):
+    res = run_cli("store", "build", bad_inputs_db, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "--seed", -1,
               "--store", "s_bad", "-q")
     assert_one_error_line(res, "--seed")
 
@@ -128,8 +105,8 @@ REFRESH_CASES = [
 
 
 @pytest.mark.parametrize("args,needles", REFRESH_CASES, ids=[" ".join(map(str, a[3:])) or a[1] for a, _ in REFRESH_CASES])
-def test_store_option_out_of_range_is_one_error_line_naming_the_option(store_db, args, needles):
-    res = run(*[str(store_db) if a == "{db}" else a for a in args])
+def test_store_option_out_of_range_is_one_error_line_naming_the_option(three_part_store_db, args, needles):
+    res = run_cli(*[str(three_part_store_db) if a == "{db}" else a for a in args])
     assert_one_error_line(res, *needles)
 
 
@@ -173,91 +150,73 @@ MODEL_CASES = [
 
 
 @pytest.mark.parametrize("name,change,needles", MODEL_CASES, ids=[c[0] for c in MODEL_CASES])
-def test_damaged_model_file_is_one_error_line_for_show_and_label(tmp_path, db, model, name, change, needles):
+def test_damaged_model_file_is_one_error_line_for_show_and_label(tmp_path, bad_inputs_db, model, name, change, needles):
     bad = _damaged(model, tmp_path, change)
-    assert_one_error_line(run("show", bad), "damaged", str(bad), *needles)
-    assert_one_error_line(run("label", db, "-t", "points", "-m", bad, "--into", "never_made"), "damaged", *needles)
+    assert_one_error_line(run_cli("show", bad), "damaged", str(bad), *needles)
+    assert_one_error_line(run_cli("label", bad_inputs_db, "-t", "points", "-m", bad, "--into", "never_made"), "damaged", *needles)
 
 
 def test_csv_with_only_a_header_says_it_has_no_rows(tmp_path):
     path = tmp_path / "empty.csv"
     path.write_text("a,b\n")
-    res = run("segment", path, "-c", "a,b", "--k", 2, "-o", tmp_path / "m.json", "-q")
+    res = run_cli("segment", path, "-c", "a,b", "--k", 2, "-o", tmp_path / "m.json", "-q")
     assert_one_error_line(res, "no rows", "empty.csv")
 
 
-def test_dotted_table_name_is_explained_and_works_quoted(tmp_path, db):
-    res = run("segment", db, "-t", "my.table", "-c", "a,b", "--k", 2, "-o", tmp_path / "m.json", "-q")
+def test_dotted_table_name_is_explained_and_works_quoted(tmp_path, bad_inputs_db):
+    res = run_cli("segment", bad_inputs_db, "-t", "my.table", "-c", "a,b", "--k", 2, "-o", tmp_path / "m.json", "-q")
     assert_one_error_line(res, '"my.table"', "double quotes")
-    ok = run("segment", db, "-t", '"my.table"', "-c", "a,b", "--k", 2, "-o", tmp_path / "m.json", "-q")
+    ok = run_cli("segment", bad_inputs_db, "-t", '"my.table"', "-c", "a,b", "--k", 2, "-o", tmp_path / "m.json", "-q")
     assert ok.exit_code == 0, ok.output
 
 
 def test_malformed_table_without_source_is_a_usage_error_not_a_traceback():
     # issue 13: `tillite sql --table a..b -c x --stage profile` ended in a ValueError traceback
-    res = run("sql", "--table", "a..b", "-c", "x", "--stage", "profile")
+    res = run_cli("sql", "--table", "a..b", "-c", "x", "--stage", "profile")
     assert_one_error_line(res, "--table", "a..b", code=2)
 
 
-def test_k_auto_on_a_three_row_table_segments_instead_of_failing(tmp_path, db):
+def test_k_auto_on_a_three_row_table_segments_instead_of_failing(tmp_path, bad_inputs_db):
     # issue 13: Calinski-Harabasz raised ValueError for k equal to the number of cells
-    res = run("segment", db, "-t", "three", "-c", "a,b", "--k", "auto", "-o", tmp_path / "m.json", "-q")
+    res = run_cli("segment", bad_inputs_db, "-t", "three", "-c", "a,b", "--k", "auto", "-o", tmp_path / "m.json", "-q")
     assert res.exit_code == 0, res.output
     assert json.loads((tmp_path / "m.json").read_text())["k"] < 3
 
 
-def test_existing_table_without_replace_names_the_option_not_the_python_parameter(tmp_path, db, model):
-    copy = tmp_path / "copy.duckdb"
-    copy.write_bytes(db.read_bytes())
-    con = duckdb.connect(str(copy))
-    con.execute("CREATE TABLE taken AS SELECT 1 AS x")
-    con.close()
-    res = run("label", copy, "-t", "points", "-m", model, "--into", "taken")
+def test_existing_table_without_replace_names_the_option_not_the_python_parameter(tmp_path, bad_inputs_db, model):
+    copy = altered_copy(bad_inputs_db, tmp_path / "copy.duckdb", "CREATE TABLE taken AS SELECT 1 AS x")
+    res = run_cli("label", copy, "-t", "points", "-m", model, "--into", "taken")
     assert_one_error_line(res, "taken", "--replace")
 
 
-def test_dropped_source_column_at_label_time_names_the_column(tmp_path, db, model):
-    copy = tmp_path / "copy.duckdb"
-    copy.write_bytes(db.read_bytes())
-    con = duckdb.connect(str(copy))
-    con.execute("ALTER TABLE points DROP COLUMN b")
-    con.execute("CREATE TABLE base AS SELECT * FROM three")
-    con.close()
-    assert_one_error_line(run("label", copy, "-t", "points", "-m", model, "--into", "labels"), "column b", "points")
+def test_dropped_source_column_at_label_time_names_the_column(tmp_path, bad_inputs_db, model):
+    copy = altered_copy(bad_inputs_db, tmp_path / "copy.duckdb", "ALTER TABLE points DROP COLUMN b", "CREATE TABLE base AS SELECT * FROM three")
+    assert_one_error_line(run_cli("label", copy, "-t", "points", "-m", model, "--into", "labels"), "column b", "points")
 
 
-def test_dropped_column_under_a_view_source_names_the_view(tmp_path, db, model):
-    copy = tmp_path / "copy.duckdb"
-    copy.write_bytes(db.read_bytes())
-    con = duckdb.connect(str(copy))
-    con.execute("CREATE VIEW pv AS SELECT a, b, c FROM points")
-    con.execute("ALTER TABLE points DROP COLUMN c")
-    con.close()
-    assert_one_error_line(run("label", copy, "-t", "pv", "-m", model, "--into", "labels"), "pv")
+def test_dropped_column_under_a_view_source_names_the_view(tmp_path, bad_inputs_db, model):
+    copy = altered_copy(bad_inputs_db, tmp_path / "copy.duckdb", "CREATE VIEW pv AS SELECT a, b, c FROM points", "ALTER TABLE points DROP COLUMN c")
+    assert_one_error_line(run_cli("label", copy, "-t", "pv", "-m", model, "--into", "labels"), "pv")
 
 
-def test_into_the_table_under_a_view_source_is_refused_and_the_table_kept(tmp_path, db, model):
-    copy = tmp_path / "copy.duckdb"
-    copy.write_bytes(db.read_bytes())
-    con = duckdb.connect(str(copy))
-    con.execute("CREATE VIEW pv AS SELECT * FROM points")
-    con.close()
-    res = run("label", copy, "-t", "pv", "-m", model, "--into", "points", "--replace", "--materialize")
+def test_into_the_table_under_a_view_source_is_refused_and_the_table_kept(tmp_path, bad_inputs_db, model):
+    copy = altered_copy(bad_inputs_db, tmp_path / "copy.duckdb", "CREATE VIEW pv AS SELECT * FROM points")
+    res = run_cli("label", copy, "-t", "pv", "-m", model, "--into", "points", "--replace", "--materialize")
     assert_one_error_line(res, "points", "pv")
     con = duckdb.connect(str(copy), read_only=True)
     assert con.execute("SELECT count(*) FROM points").fetchone()[0] == 900
     con.close()
 
 
-def test_second_store_build_names_the_regrid_option_not_the_python_parameter(store_db):
-    res = run("store", "build", store_db, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "-q")
+def test_second_store_build_names_the_regrid_option_not_the_python_parameter(three_part_store_db):
+    res = run_cli("store", "build", three_part_store_db, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "-q")
     assert_one_error_line(res, "--regrid")
 
 
 @pytest.mark.parametrize("into", ["", "a..b", "s."])
-def test_empty_into_name_is_a_usage_error(db, model, into):
-    assert_one_error_line(run("label", db, "-t", "points", "-m", model, "--into", into), "--into", code=2)
+def test_empty_into_name_is_a_usage_error(bad_inputs_db, model, into):
+    assert_one_error_line(run_cli("label", bad_inputs_db, "-t", "points", "-m", model, "--into", into), "--into", code=2)
 
 
-def test_sql_cells_stage_refuses_a_cell_budget_below_one(db):
-    assert_one_error_line(run("sql", db, "-t", "points", "-c", "a,b", "--stage", "cells", "--cell-budget", 0), "--cell-budget")
+def test_sql_cells_stage_refuses_a_cell_budget_below_one(bad_inputs_db):
+    assert_one_error_line(run_cli("sql", bad_inputs_db, "-t", "points", "-c", "a,b", "--stage", "cells", "--cell-budget", 0), "--cell-budget")

@@ -11,19 +11,17 @@ from __future__ import annotations
 import json
 import re
 import shutil
+from functools import partial
 from pathlib import Path
 
 import duckdb
 import numpy as np
 import pytest
 import sqlglot
-from click.testing import CliRunner
-from sklearn.datasets import make_blobs
 from sklearn.metrics import adjusted_rand_score
 
+from conftest import assert_one_error_line, columns_of, fetch_columns, fetch_rows, run_cli, write_table
 from tillite.cli import main
-
-from conftest import columns_of, write_table
 
 NAMES = ["a", "b", "c"]
 STAGE_LINES = ("[tillite] profile:", "[tillite] cells:", "[tillite] second phase:", "[tillite] refine:")
@@ -32,26 +30,11 @@ STAGE_LINES = ("[tillite] profile:", "[tillite] cells:", "[tillite] second phase
 # ----------------------------------------------------------------------------- helpers
 
 
-def run(*args: object):
-    """Invoke the command in-process; stdout and stderr come back separately (click >= 8.2)."""
-    return CliRunner().invoke(main, [str(a) for a in args])
-
-
-def fetch(path: Path, sql: str) -> dict[str, np.ndarray]:
-    """Run SQL straight in DuckDB (closed again, so the command can open the file next)."""
-    con = duckdb.connect(str(path), read_only=True)
-    try:
-        return con.execute(sql).fetchnumpy()
-    finally:
-        con.close()
+fetch = partial(fetch_columns, read_only=True)
 
 
 def fingerprint(path: Path, table: str) -> list[tuple]:
-    con = duckdb.connect(str(path), read_only=True)
-    try:
-        return con.execute(f'SELECT count(*), sum(hash(COLUMNS(*))) FROM "{table}"').fetchall()
-    finally:
-        con.close()
+    return fetch_rows(path, f'SELECT count(*), sum(hash(COLUMNS(*))) FROM "{table}"', read_only=True)
 
 
 def relation_kind(path: Path, name: str) -> str | None:
@@ -64,34 +47,12 @@ def statements(sql_text: str) -> list[str]:
     return [s.strip() for s in re.split(r";\s*$", sql_text, flags=re.M) if s.strip()]
 
 
-def assert_clean_error(result, *needles: str, code: int = 1) -> str:
-    """Exit code, a single 'Error:' line on stderr naming every needle, and no traceback."""
-    assert result.exit_code == code, (result.exit_code, result.output)
-    assert isinstance(result.exception, SystemExit), repr(result.exception)
-    assert "Traceback" not in result.output
-    err = result.stderr.strip()
-    last = err.splitlines()[-1]
-    assert last.startswith("Error:"), err
-    if code == 1:
-        assert len(err.splitlines()) == 1, err
-    for needle in needles:
-        assert needle in last, (needle, last)
-    return last
-
-
 # ----------------------------------------------------------------------------- data
 
 
 @pytest.fixture(scope="module")
-def blobs():
-    """Three well-separated blobs (scikit-learn make_blobs), 3 columns, 3,000 rows."""
-    x, y = make_blobs(n_samples=3_000, centers=3, n_features=3, cluster_std=0.5, center_box=(-10, 10), random_state=1)
-    return x, y
-
-
-@pytest.fixture(scope="module")
-def base_db(tmp_path_factory, blobs):
-    x, y = blobs
+def base_db(tmp_path_factory, blobs_3k_3d_3c):
+    x, y = blobs_3k_3d_3c
     data = columns_of(x, NAMES)
     data["truth"] = y
     data["id"] = np.arange(len(x))
@@ -103,7 +64,7 @@ def base_db(tmp_path_factory, blobs):
 
 
 @pytest.fixture
-def db(tmp_path, base_db):
+def blobs_db_copy(tmp_path, base_db):
     """A private copy of the blobs database (labels write into it)."""
     path = tmp_path / "blobs.duckdb"
     shutil.copy(base_db, path)
@@ -113,14 +74,14 @@ def db(tmp_path, base_db):
 @pytest.fixture(scope="module")
 def model_file(tmp_path_factory, base_db):
     out = tmp_path_factory.mktemp("model") / "m.json"
-    result = run("segment", base_db, "--table", "points", "--columns", "a,b,c", "--k", 3, "--out", out, "--quiet")
+    result = run_cli("segment", base_db, "--table", "points", "--columns", "a,b,c", "--k", 3, "--out", out, "--quiet")
     assert result.exit_code == 0, result.output
     return out
 
 
 @pytest.fixture(scope="module")
-def data_files(tmp_path_factory, blobs):
-    x, y = blobs
+def data_files(tmp_path_factory, blobs_3k_3d_3c):
+    x, y = blobs_3k_3d_3c
     frame = columns_of(x, NAMES)
     frame["truth"] = y
     where = tmp_path_factory.mktemp("files")
@@ -136,10 +97,10 @@ def data_files(tmp_path_factory, blobs):
 # ----------------------------------------------------------------------------- segment
 
 
-def test_segment_writes_a_model_file_in_the_tillite_format(tmp_path, db, blobs):
-    x, _ = blobs
+def test_segment_writes_a_model_file_in_the_tillite_format(tmp_path, blobs_db_copy, blobs_3k_3d_3c):
+    x, _ = blobs_3k_3d_3c
     out = tmp_path / "m.json"
-    result = run("segment", db, "--table", "points", "--columns", "a,b,c", "--k", 3, "--out", out)
+    result = run_cli("segment", blobs_db_copy, "--table", "points", "--columns", "a,b,c", "--k", 3, "--out", out)
     assert result.exit_code == 0, result.output
     doc = json.loads(out.read_text())
     assert doc["format"] == "tillite-model" and doc["version"] == 1
@@ -150,8 +111,8 @@ def test_segment_writes_a_model_file_in_the_tillite_format(tmp_path, db, blobs):
     np.testing.assert_allclose(doc["scale"], x.std(axis=0), rtol=1e-9)
 
 
-def test_segment_prints_the_segment_table_on_stdout_and_one_progress_line_per_stage_on_stderr(tmp_path, db):
-    result = run("segment", db, "--table", "points", "--columns", "a,b,c", "--k", 3, "--out", tmp_path / "m.json")
+def test_segment_prints_the_segment_table_on_stdout_and_one_progress_line_per_stage_on_stderr(tmp_path, blobs_db_copy):
+    result = run_cli("segment", blobs_db_copy, "--table", "points", "--columns", "a,b,c", "--k", 3, "--out", tmp_path / "m.json")
     assert result.exit_code == 0, result.output
     assert "segment" in result.stdout and "size" in result.stdout and "radius" in result.stdout
     assert len([ln for ln in result.stdout.splitlines() if re.match(r"\s+[0-2]\s+1,000\s", ln)]) == 3
@@ -163,17 +124,17 @@ def test_segment_prints_the_segment_table_on_stdout_and_one_progress_line_per_st
     assert any(ln.startswith("[tillite] model:") and "m.json" in ln for ln in err)
 
 
-def test_segment_quiet_silences_the_progress_lines(tmp_path, db):
-    result = run("segment", db, "--table", "points", "--columns", "a,b,c", "--k", 3, "--out", tmp_path / "m.json", "--quiet")
+def test_segment_quiet_silences_the_progress_lines(tmp_path, blobs_db_copy):
+    result = run_cli("segment", blobs_db_copy, "--table", "points", "--columns", "a,b,c", "--k", 3, "--out", tmp_path / "m.json", "--quiet")
     assert result.exit_code == 0, result.output
     assert result.stderr == ""
     assert "segment" in result.stdout
     assert (tmp_path / "m.json").exists()
 
 
-def test_segment_json_prints_a_parseable_summary_on_stdout_only(tmp_path, db, blobs):
-    _, y = blobs
-    result = run("segment", db, "--table", "points", "--columns", "a,b,c", "--k", 3, "--out", tmp_path / "m.json", "--json")
+def test_segment_json_prints_a_parseable_summary_on_stdout_only(tmp_path, blobs_db_copy, blobs_3k_3d_3c):
+    _, y = blobs_3k_3d_3c
+    result = run_cli("segment", blobs_db_copy, "--table", "points", "--columns", "a,b,c", "--k", 3, "--out", tmp_path / "m.json", "--json")
     assert result.exit_code == 0, result.output
     summary = json.loads(result.stdout)  # nothing but JSON on stdout
     assert summary["k"] == 3 and summary["columns"] == NAMES and summary["rows"] == len(y)
@@ -184,20 +145,20 @@ def test_segment_json_prints_a_parseable_summary_on_stdout_only(tmp_path, db, bl
     assert "[tillite] profile:" in result.stderr
 
 
-def test_columns_may_be_repeated_or_comma_separated(tmp_path, db):
+def test_columns_may_be_repeated_or_comma_separated(tmp_path, blobs_db_copy):
     one, two = tmp_path / "one.json", tmp_path / "two.json"
-    r1 = run("segment", db, "-t", "points", "--columns", "a, b,c", "--k", 3, "-o", one, "-q")
-    r2 = run("segment", db, "-t", "points", "-c", "a", "--columns", "b", "-c", "c", "--k", 3, "-o", two, "-q")
+    r1 = run_cli("segment", blobs_db_copy, "-t", "points", "--columns", "a, b,c", "--k", 3, "-o", one, "-q")
+    r2 = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a", "--columns", "b", "-c", "c", "--k", 3, "-o", two, "-q")
     assert r1.exit_code == 0 and r2.exit_code == 0, (r1.output, r2.output)
     m1, m2 = json.loads(one.read_text()), json.loads(two.read_text())
     assert m1["columns"] == m2["columns"] == NAMES
     assert m1["sse"] == pytest.approx(m2["sse"], rel=1e-12)
 
 
-def test_weights_and_scaling_none_reach_the_model(tmp_path, db, blobs):
-    x, _ = blobs
+def test_weights_and_scaling_none_reach_the_model(tmp_path, blobs_db_copy, blobs_3k_3d_3c):
+    x, _ = blobs_3k_3d_3c
     out = tmp_path / "m.json"
-    result = run("segment", db, "-t", "points", "-c", "a,b,c", "--k", 3, "--weights", "a=2", "--scaling", "none", "-o", out, "-q")
+    result = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b,c", "--k", 3, "--weights", "a=2", "--scaling", "none", "-o", out, "-q")
     assert result.exit_code == 0, result.output
     doc = json.loads(out.read_text())
     assert doc["weights"] == [2.0, 1.0, 1.0] and doc["scaling"] == "none" and doc["scale"] == [1.0, 1.0, 1.0]
@@ -207,81 +168,81 @@ def test_weights_and_scaling_none_reach_the_model(tmp_path, db, blobs):
 
 
 @pytest.mark.parametrize("weights,named", [("a=x", "'x'"), ("a", "'a'"), ("=2", "'=2'")], ids=["not-a-number", "no-equals", "no-name"])
-def test_bad_weights_value_is_a_usage_error_naming_it(tmp_path, db, weights, named):
-    result = run("segment", db, "-t", "points", "-c", "a,b,c", "--k", 3, "--weights", weights, "-o", tmp_path / "m.json")
-    assert_clean_error(result, "--weights", named, code=2)
+def test_bad_weights_value_is_a_usage_error_naming_it(tmp_path, blobs_db_copy, weights, named):
+    result = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b,c", "--k", 3, "--weights", weights, "-o", tmp_path / "m.json")
+    assert_one_error_line(result, "--weights", named, code=2)
     assert not (tmp_path / "m.json").exists()
 
 
-def test_weights_on_a_column_not_segmented_is_an_error_naming_it(tmp_path, db):
-    result = run("segment", db, "-t", "points", "-c", "a,b", "--k", 3, "--weights", "c=2", "-o", tmp_path / "m.json")
-    assert_clean_error(result, "weights", "c")
+def test_weights_on_a_column_not_segmented_is_an_error_naming_it(tmp_path, blobs_db_copy):
+    result = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 3, "--weights", "c=2", "-o", tmp_path / "m.json")
+    assert_one_error_line(result, "weights", "c")
 
 
 # ----------------------------------------------------------------------------- label
 
 
-def test_label_view_segments_agree_with_the_blob_truth(db, model_file):
-    result = run("label", db, "--table", "points", "--model", model_file, "--into", "v")
+def test_label_view_segments_agree_with_the_blob_truth(blobs_db_copy, model_file):
+    result = run_cli("label", blobs_db_copy, "--table", "points", "--model", model_file, "--into", "v")
     assert result.exit_code == 0, result.output
     assert result.stdout.strip() == "view v"
     assert "[tillite] label:" in result.stderr
-    assert relation_kind(db, "v") == "VIEW"
-    got = fetch(db, 'SELECT "truth", "segment", "distance" FROM "v"')
+    assert relation_kind(blobs_db_copy, "v") == "VIEW"
+    got = fetch(blobs_db_copy, 'SELECT "truth", "segment", "distance" FROM "v"')
     assert len(got["segment"]) == 3_000
     # reference: scikit-learn adjusted_rand_score against make_blobs' generating labels
     assert adjusted_rand_score(got["truth"], got["segment"]) >= 0.99
     assert (got["distance"] >= 0).all()
 
 
-def test_label_materialize_makes_a_table(db, model_file):
-    result = run("label", db, "-t", "points", "-m", model_file, "--into", "labelled", "--materialize", "-q")
+def test_label_materialize_makes_a_table(blobs_db_copy, model_file):
+    result = run_cli("label", blobs_db_copy, "-t", "points", "-m", model_file, "--into", "labelled", "--materialize", "-q")
     assert result.exit_code == 0, result.output
     assert result.stdout.strip() == "table labelled" and result.stderr == ""
-    assert relation_kind(db, "labelled") == "BASE TABLE"
+    assert relation_kind(blobs_db_copy, "labelled") == "BASE TABLE"
     # reference: DuckDB count(*) of the source run directly
-    assert fetch(db, 'SELECT count(*) AS n FROM "labelled"')["n"][0] == fetch(db, 'SELECT count(*) AS n FROM "points"')["n"][0]
+    assert fetch(blobs_db_copy, 'SELECT count(*) AS n FROM "labelled"')["n"][0] == fetch(blobs_db_copy, 'SELECT count(*) AS n FROM "points"')["n"][0]
 
 
-def test_second_materialize_without_replace_fails_and_keeps_the_first_table(db, model_file):
-    assert run("label", db, "-t", "points", "-m", model_file, "--into", "labelled", "--materialize").exit_code == 0
-    before = fingerprint(db, "labelled")
-    result = run("label", db, "-t", "points", "-m", model_file, "--into", "labelled", "--materialize")
-    assert_clean_error(result, "labelled", "already exists", "--replace")
-    assert fingerprint(db, "labelled") == before
-    again = run("label", db, "-t", "points", "-m", model_file, "--into", "labelled", "--materialize", "--replace")
+def test_second_materialize_without_replace_fails_and_keeps_the_first_table(blobs_db_copy, model_file):
+    assert run_cli("label", blobs_db_copy, "-t", "points", "-m", model_file, "--into", "labelled", "--materialize").exit_code == 0
+    before = fingerprint(blobs_db_copy, "labelled")
+    result = run_cli("label", blobs_db_copy, "-t", "points", "-m", model_file, "--into", "labelled", "--materialize")
+    assert_one_error_line(result, "labelled", "already exists", "--replace")
+    assert fingerprint(blobs_db_copy, "labelled") == before
+    again = run_cli("label", blobs_db_copy, "-t", "points", "-m", model_file, "--into", "labelled", "--materialize", "--replace")
     assert again.exit_code == 0, again.output
-    assert fingerprint(db, "labelled") == before  # same model, same rows
+    assert fingerprint(blobs_db_copy, "labelled") == before  # same model, same rows
 
 
 @pytest.mark.parametrize("into", ["points", "main.points"])
-def test_label_into_the_source_name_is_refused_and_the_source_is_unchanged(db, model_file, into):
-    before = fingerprint(db, "points")
+def test_label_into_the_source_name_is_refused_and_the_source_is_unchanged(blobs_db_copy, model_file, into):
+    before = fingerprint(blobs_db_copy, "points")
     for extra in ([], ["--materialize"], ["--materialize", "--replace"]):
-        result = run("label", db, "-t", "points", "-m", model_file, "--into", into, *extra)
-        assert_clean_error(result, into, "source")
-    assert fingerprint(db, "points") == before
+        result = run_cli("label", blobs_db_copy, "-t", "points", "-m", model_file, "--into", into, *extra)
+        assert_one_error_line(result, into, "source")
+    assert fingerprint(blobs_db_copy, "points") == before
 
 
-def test_label_into_the_source_name_in_other_letter_case_is_refused(db, model_file):
-    before = fingerprint(db, "points")
-    result = run("label", db, "-t", "points", "-m", model_file, "--into", "POINTS", "--materialize")
+def test_label_into_the_source_name_in_other_letter_case_is_refused(blobs_db_copy, model_file):
+    before = fingerprint(blobs_db_copy, "points")
+    result = run_cli("label", blobs_db_copy, "-t", "points", "-m", model_file, "--into", "POINTS", "--materialize")
     assert result.exit_code == 1
-    assert fingerprint(db, "points") == before
+    assert fingerprint(blobs_db_copy, "points") == before
 
 
 # ----------------------------------------------------------------------------- show
 
 
 def test_show_prints_the_segment_table_of_a_model_file(model_file):
-    result = run("show", model_file)
+    result = run_cli("show", model_file)
     assert result.exit_code == 0, result.output
     assert "source: points" in result.stdout and "k=3" in result.stdout
     assert "centroids in original units" in result.stdout
 
 
 def test_show_json_matches_the_model_file(model_file):
-    result = run("show", "--json", model_file)
+    result = run_cli("show", "--json", model_file)
     assert result.exit_code == 0, result.output
     summary = json.loads(result.stdout)
     doc = json.loads(Path(model_file).read_text())
@@ -295,7 +256,7 @@ def test_show_prints_round_off_in_a_centroid_as_zero(tmp_path, model_file):
     doc["centroids"][0][0] = 3.5e-14  # centre + c * scale can land here for a column that is exactly 0
     path = tmp_path / "m.json"
     path.write_text(json.dumps(doc))
-    result = run("show", path)
+    result = run_cli("show", path)
     assert result.exit_code == 0, result.output
     assert "e-14" not in result.stdout
 
@@ -305,13 +266,14 @@ def test_show_prints_round_off_in_a_centroid_as_zero(tmp_path, model_file):
     [
         (None, "No such file"),
         ('{"a": 1}', "not a tillite model"),
+        ('{"format": "other-tool", "a": 1}', "not a tillite model"),
         ("[1, 2]", "not a tillite model"),
         ("not json {", "not valid JSON"),
         (b"\x88\x00\xff binary", "not text"),
         ('{"format": "tillite-model", "version": "one"}', "version"),
         ('{"format": "tillite-model", "version": 1, "columns": ["a"], "center": [0], "scale": [1], "centroids_scaled": [[0]]}', "lacks"),
     ],
-    ids=["missing", "other-json", "json-list", "not-json", "binary", "bad-version", "incomplete"],
+    ids=["missing", "other-json", "other-format", "json-list", "not-json", "binary", "bad-version", "incomplete"],
 )
 def test_show_on_a_file_that_is_not_a_model_is_a_one_line_error_naming_it(tmp_path, content, needle):
     path = tmp_path / "thing.json"
@@ -319,7 +281,7 @@ def test_show_on_a_file_that_is_not_a_model_is_a_one_line_error_naming_it(tmp_pa
         path.write_bytes(content)
     elif content is not None:
         path.write_text(content)
-    assert_clean_error(run("show", path), str(path), needle)
+    assert_one_error_line(run_cli("show", path), str(path), needle)
 
 
 def test_show_on_a_damaged_model_names_what_is_wrong(tmp_path, model_file):
@@ -327,22 +289,22 @@ def test_show_on_a_damaged_model_names_what_is_wrong(tmp_path, model_file):
     doc["centroids_scaled"][1] = doc["centroids_scaled"][1][:2]
     path = tmp_path / "m.json"
     path.write_text(json.dumps(doc))
-    assert_clean_error(run("show", path), str(path), "centroids_scaled")
-    assert_clean_error(run("label", "whatever.duckdb", "-m", path, "--into", "v"), str(path), "damaged")
+    assert_one_error_line(run_cli("show", path), str(path), "centroids_scaled")
+    assert_one_error_line(run_cli("label", "whatever.duckdb", "-m", path, "--into", "v"), str(path), "damaged")
 
 
 # ----------------------------------------------------------------------------- sql
 
 
-def test_sql_cells_stage_with_a_model_counts_the_cells_numpy_finds(tmp_path, db, blobs):
-    x, _ = blobs
+def test_sql_cells_stage_with_a_model_counts_the_cells_numpy_finds(tmp_path, blobs_db_copy, blobs_3k_3d_3c):
+    x, _ = blobs_3k_3d_3c
     out = tmp_path / "m.json"
-    assert run("segment", db, "-t", "points", "-c", "a,b,c", "--k", 3, "--cell-budget", 200, "-o", out, "-q").exit_code == 0
+    assert run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b,c", "--k", 3, "--cell-budget", 200, "-o", out, "-q").exit_code == 0
     grid = json.loads(out.read_text())["grid"]
-    result = run("sql", db, "--table", "points", "--model", out, "--stage", "cells")
+    result = run_cli("sql", blobs_db_copy, "--table", "points", "--model", out, "--stage", "cells")
     assert result.exit_code == 0, result.output
     (text,) = statements(result.stdout)
-    got = fetch(db, text)
+    got = fetch(blobs_db_copy, text)
     # reference: numpy binning of the rows on the model's grid
     axes = np.asarray(grid["axes"]) if grid["axes"] else np.eye(3)
     coords = ((x - np.asarray(grid["center"])) * np.asarray(grid["inv_scale"])) @ axes / grid["width"]
@@ -353,49 +315,49 @@ def test_sql_cells_stage_with_a_model_counts_the_cells_numpy_finds(tmp_path, db,
     np.testing.assert_allclose([got[f"ls{j}"].sum() for j in range(3)], (x - np.asarray(grid["center"])).sum(axis=0), atol=1e-6)
 
 
-def test_sql_cells_stage_without_a_model_runs_in_duckdb(db, blobs):
-    x, _ = blobs
-    result = run("sql", db, "--table", "points", "--columns", "a,b,c", "--stage", "cells", "--cell-budget", 100)
+def test_sql_cells_stage_without_a_model_runs_in_duckdb(blobs_db_copy, blobs_3k_3d_3c):
+    x, _ = blobs_3k_3d_3c
+    result = run_cli("sql", blobs_db_copy, "--table", "points", "--columns", "a,b,c", "--stage", "cells", "--cell-budget", 100)
     assert result.exit_code == 0, result.output
     (text,) = statements(result.stdout)
-    got = fetch(db, text)
+    got = fetch(blobs_db_copy, text)
     # reference: numpy row count; every row is counted in exactly one cell
     assert int(got["n"].sum()) == len(x)
     assert 1 < len(got["n"]) < len(x)
 
 
-def test_sql_profile_stage_counts_the_rows_numpy_has(db, blobs):
-    x, _ = blobs
-    result = run("sql", db, "--table", "points", "--columns", "a,b,c", "--stage", "profile")
+def test_sql_profile_stage_counts_the_rows_numpy_has(blobs_db_copy, blobs_3k_3d_3c):
+    x, _ = blobs_3k_3d_3c
+    result = run_cli("sql", blobs_db_copy, "--table", "points", "--columns", "a,b,c", "--stage", "profile")
     assert result.exit_code == 0, result.output
     count, sample = statements(result.stdout)
     # reference: numpy row count of the generated data
-    assert fetch(db, count)["n"][0] == len(x)
-    got = fetch(db, sample)
+    assert fetch(blobs_db_copy, count)["n"][0] == len(x)
+    got = fetch(blobs_db_copy, sample)
     assert len(got) == 3 and all(len(v) <= len(x) for v in got.values())
 
 
 @pytest.mark.parametrize("stage", ["refine", "label"])
-def test_sql_refine_and_label_stages_need_a_model(db, stage):
-    result = run("sql", db, "--table", "points", "--columns", "a,b,c", "--stage", stage)
-    assert_clean_error(result, f"--stage {stage} needs --model", code=2)
+def test_sql_refine_and_label_stages_need_a_model(blobs_db_copy, stage):
+    result = run_cli("sql", blobs_db_copy, "--table", "points", "--columns", "a,b,c", "--stage", stage)
+    assert_one_error_line(result, f"--stage {stage} needs --model", code=2)
 
 
-def test_sql_refine_stage_with_a_model_reproduces_the_model_sizes(db, model_file):
-    result = run("sql", db, "--table", "points", "--model", model_file, "--stage", "refine")
+def test_sql_refine_stage_with_a_model_reproduces_the_model_sizes(blobs_db_copy, model_file):
+    result = run_cli("sql", blobs_db_copy, "--table", "points", "--model", model_file, "--stage", "refine")
     assert result.exit_code == 0, result.output
     (text,) = statements(result.stdout)
-    got = fetch(db, text)
+    got = fetch(blobs_db_copy, text)
     sizes = dict(zip(got["segment"].tolist(), got["n"].tolist()))
     assert [sizes[i] for i in range(3)] == json.loads(Path(model_file).read_text())["sizes"]
 
 
-def test_sql_label_stage_with_a_model_assigns_the_nearest_centroid(db, model_file, blobs):
-    x, _ = blobs
-    result = run("sql", db, "--table", "points", "--model", model_file, "--stage", "label")
+def test_sql_label_stage_with_a_model_assigns_the_nearest_centroid(blobs_db_copy, model_file, blobs_3k_3d_3c):
+    x, _ = blobs_3k_3d_3c
+    result = run_cli("sql", blobs_db_copy, "--table", "points", "--model", model_file, "--stage", "label")
     assert result.exit_code == 0, result.output
     (text,) = statements(result.stdout)
-    got = fetch(db, f"SELECT * FROM ({text}) ORDER BY id")
+    got = fetch(blobs_db_copy, f"SELECT * FROM ({text}) ORDER BY id")
     doc = json.loads(Path(model_file).read_text())
     z = (x - np.asarray(doc["center"])) / np.asarray(doc["scale"])
     d2 = ((z[:, None, :] - np.asarray(doc["centroids_scaled"])[None]) ** 2).sum(axis=2)
@@ -403,18 +365,18 @@ def test_sql_label_stage_with_a_model_assigns_the_nearest_centroid(db, model_fil
     np.testing.assert_array_equal(got["segment"], d2.argmin(axis=1))
 
 
-def test_sql_renders_the_postgres_dialect(db, model_file):
+def test_sql_renders_the_postgres_dialect(blobs_db_copy, model_file):
     for stage in ("cells", "refine", "label"):
-        result = run("sql", db, "--table", "points", "--model", model_file, "--stage", stage, "--dialect", "postgres")
+        result = run_cli("sql", blobs_db_copy, "--table", "points", "--model", model_file, "--stage", stage, "--dialect", "postgres")
         assert result.exit_code == 0, result.output
         # reference: sqlglot's own PostgreSQL parser accepts every statement printed
         for text in statements(result.stdout):
             assert sqlglot.parse_one(text, read="postgres") is not None
 
 
-def test_sql_unknown_dialect_is_a_usage_error_naming_it(db):
-    result = run("sql", db, "--table", "points", "--columns", "a", "--stage", "profile", "--dialect", "nosuchsql")
-    assert_clean_error(result, "--dialect", "nosuchsql", code=2)
+def test_sql_unknown_dialect_is_a_usage_error_naming_it(blobs_db_copy):
+    result = run_cli("sql", blobs_db_copy, "--table", "points", "--columns", "a", "--stage", "profile", "--dialect", "nosuchsql")
+    assert_one_error_line(result, "--dialect", "nosuchsql", code=2)
 
 
 # ----------------------------------------------------------------------------- errors
@@ -432,55 +394,55 @@ def test_sql_unknown_dialect_is_a_usage_error_naming_it(db):
 def test_missing_database_file_is_an_error_and_is_not_created(tmp_path, model_file, command):
     missing = tmp_path / "nothing.duckdb"
     args = [a.format(db=missing, tmp=tmp_path, model=model_file) for a in command]
-    assert_clean_error(run(*args), str(missing), "does not exist")
+    assert_one_error_line(run_cli(*args), str(missing), "does not exist")
     assert not missing.exists()
 
 
-def test_missing_table_error_lists_the_tables_there(db):
-    result = run("segment", db, "-t", "nope", "-c", "a", "--k", 2, "-q")
-    last = assert_clean_error(result, "nope", "not found")
+def test_missing_table_error_lists_the_tables_there(blobs_db_copy):
+    result = run_cli("segment", blobs_db_copy, "-t", "nope", "-c", "a", "--k", 2, "-q")
+    last = assert_one_error_line(result, "nope", "not found")
     assert "notes" in last and "points" in last
 
 
-def test_missing_column_error_lists_the_columns_there(db):
-    result = run("segment", db, "-t", "points", "-c", "a,zz", "--k", 2, "-q")
-    last = assert_clean_error(result, "zz", "not found")
+def test_missing_column_error_lists_the_columns_there(blobs_db_copy):
+    result = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,zz", "--k", 2, "-q")
+    last = assert_one_error_line(result, "zz", "not found")
     assert all(f"{n} (DOUBLE)" in last for n in NAMES) and "truth (BIGINT)" in last
 
 
-def test_non_numeric_column_error_names_its_type(db):
-    result = run("segment", db, "-t", "notes", "-c", "id,note", "--k", 2, "-q")
-    assert_clean_error(result, "note", "VARCHAR")
+def test_non_numeric_column_error_names_its_type(blobs_db_copy):
+    result = run_cli("segment", blobs_db_copy, "-t", "notes", "-c", "id,note", "--k", 2, "-q")
+    assert_one_error_line(result, "note", "VARCHAR")
 
 
 def test_k_larger_than_the_distinct_values_is_an_error(tmp_path):
     path = write_table(tmp_path / "t.duckdb", "t", {"x": np.array([1.0, 1.0, 2.0, 2.0] * 50)})
-    result = run("segment", path, "-t", "t", "-c", "x", "--k", 3, "-o", tmp_path / "m.json", "-q")
-    assert_clean_error(result, "k=3", "2 distinct")
+    result = run_cli("segment", path, "-t", "t", "-c", "x", "--k", 3, "-o", tmp_path / "m.json", "-q")
+    assert_one_error_line(result, "k=3", "2 distinct")
     assert not (tmp_path / "m.json").exists()
 
 
-def test_database_without_table_malformed_table_and_unwritable_model_path_are_clean_errors(tmp_path, db):
-    assert_clean_error(run("segment", db, "-c", "a", "--k", 2), "--table", str(db))
-    assert_clean_error(run("segment", db, "-t", "a..b", "-c", "a", "--k", 2), "--table", "a..b", code=2)
+def test_database_without_table_malformed_table_and_unwritable_model_path_are_clean_errors(tmp_path, blobs_db_copy):
+    assert_one_error_line(run_cli("segment", blobs_db_copy, "-c", "a", "--k", 2), "--table", str(blobs_db_copy))
+    assert_one_error_line(run_cli("segment", blobs_db_copy, "-t", "a..b", "-c", "a", "--k", 2), "--table", "a..b", code=2)
     out = tmp_path / "no" / "such" / "dir" / "m.json"
-    assert_clean_error(run("segment", db, "-t", "points", "-c", "a", "--k", 2, "-o", out, "-q"), str(out))
+    assert_one_error_line(run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a", "--k", 2, "-o", out, "-q"), str(out))
 
 
-def test_label_of_a_table_into_a_file_name_is_a_clean_error(tmp_path, db, model_file):
-    result = run("label", db, "-t", "points", "-m", model_file, "--into", "out.parquet")
-    assert_clean_error(result, "out")  # DuckDB's own line: schema "out" does not exist
+def test_label_of_a_table_into_a_file_name_is_a_clean_error(tmp_path, blobs_db_copy, model_file):
+    result = run_cli("label", blobs_db_copy, "-t", "points", "-m", model_file, "--into", "out.parquet")
+    assert_one_error_line(result, "out")  # DuckDB's own line: schema "out" does not exist
 
 
 # ----------------------------------------------------------------------------- files
 
 
-def test_segment_reads_parquet_and_csv_files_without_table(tmp_path, data_files, blobs):
-    x, _ = blobs
+def test_segment_reads_parquet_and_csv_files_without_table(tmp_path, data_files, blobs_3k_3d_3c):
+    x, _ = blobs_3k_3d_3c
     centers = []
     for path in data_files:
         out = tmp_path / f"{path.suffix[1:]}.json"
-        result = run("segment", path, "--columns", "a,b,c", "--k", 3, "--out", out, "-q")
+        result = run_cli("segment", path, "--columns", "a,b,c", "--k", 3, "--out", out, "-q")
         assert result.exit_code == 0, result.output
         doc = json.loads(out.read_text())
         assert doc["rows"] == len(x) and doc["source"] == str(path)
@@ -491,11 +453,11 @@ def test_segment_reads_parquet_and_csv_files_without_table(tmp_path, data_files,
 
 
 @pytest.mark.parametrize("suffix", ["parquet", "csv"])
-def test_label_of_a_file_writes_a_file_with_every_row(tmp_path, data_files, model_file, blobs, suffix):
-    x, _ = blobs
+def test_label_of_a_file_writes_a_file_with_every_row(tmp_path, data_files, model_file, blobs_3k_3d_3c, suffix):
+    x, _ = blobs_3k_3d_3c
     source = data_files[0] if suffix == "parquet" else data_files[1]
     out = tmp_path / f"out.{suffix}"
-    result = run("label", source, "--model", model_file, "--into", out)
+    result = run_cli("label", source, "--model", model_file, "--into", out)
     assert result.exit_code == 0, result.output
     assert result.stdout.strip() == f"file {out}"
     reader = "read_parquet" if suffix == "parquet" else "read_csv_auto"
@@ -507,7 +469,7 @@ def test_label_of_a_file_writes_a_file_with_every_row(tmp_path, data_files, mode
 
 def test_label_of_a_file_into_an_unknown_file_type_is_refused(tmp_path, data_files, model_file):
     out = tmp_path / "out.txt"
-    assert_clean_error(run("label", data_files[0], "-m", model_file, "--into", out), "out.txt")
+    assert_one_error_line(run_cli("label", data_files[0], "-m", model_file, "--into", out), "out.txt")
     assert not out.exists()
 
 
@@ -515,36 +477,36 @@ def test_label_of_a_file_into_the_same_file_is_refused_and_the_file_is_unchanged
     source = tmp_path / "copy.parquet"
     shutil.copy(data_files[0], source)
     before = source.read_bytes()
-    result = run("label", source, "-m", model_file, "--into", source)
+    result = run_cli("label", source, "-m", model_file, "--into", source)
     assert source.read_bytes() == before
     assert result.exit_code == 1
 
 
 def test_missing_data_file_is_an_error_naming_it(tmp_path):
     missing = tmp_path / "none.parquet"
-    assert_clean_error(run("segment", missing, "-c", "a", "--k", 2), str(missing), "does not exist")
+    assert_one_error_line(run_cli("segment", missing, "-c", "a", "--k", 2), str(missing), "does not exist")
 
 
 # ----------------------------------------------------------------------------- demo
 
 
 def test_demo_runs_end_to_end_and_reuses_its_database(tmp_path):
-    db, out = tmp_path / "demo.duckdb", tmp_path / "demo.json"
-    first = run("demo", "--db", db, "--rows", 5_000, "--days", 10, "--out", out)
+    blobs_db_copy, out = tmp_path / "demo.duckdb", tmp_path / "demo.json"
+    first = run_cli("demo", "--db", blobs_db_copy, "--rows", 5_000, "--days", 10, "--out", out)
     assert first.exit_code == 0, first.output
-    assert "built" in first.stderr and str(db) in first.stderr
+    assert "built" in first.stderr and str(blobs_db_copy) in first.stderr
     assert "rows by kind (rows) and segment (columns):" in first.stdout
     assert "statistical groupings, not diagnoses" in first.stdout
     doc = json.loads(out.read_text())
     assert doc["format"] == "tillite-model" and doc["k"] == 5
     # reference: DuckDB count(*) of the generated table, run directly
-    assert doc["rows"] == fetch(db, "SELECT count(*) AS n FROM meter_days")["n"][0] == 5_000
+    assert doc["rows"] == fetch(blobs_db_copy, "SELECT count(*) AS n FROM meter_days")["n"][0] == 5_000
     crosstab = first.stdout.split("rows by kind (rows) and segment (columns):")[1].split("\n\n")[0]
     counts = [int(v.replace(",", "")) for ln in crosstab.strip().splitlines()[1:] for v in re.findall(r"\b[\d,]+\b", ln)]
     assert sum(counts) == 5_000
     assert "e-1" not in first.stdout  # round-off in a centroid is printed as 0
 
-    second = run("demo", "--db", db, "--rows", 5_000, "--days", 10, "--out", out)
+    second = run_cli("demo", "--db", blobs_db_copy, "--rows", 5_000, "--days", 10, "--out", out)
     assert second.exit_code == 0, second.output
     assert "reusing" in second.stderr and "built" not in second.stderr
     assert "statistical groupings, not diagnoses" in second.stdout
@@ -570,12 +532,12 @@ def test_sql_without_a_source_prints_every_stage_in_any_dialect(model_file, dial
     import sqlglot
 
     for stage in ("profile", "cells", "refine", "label"):
-        result = run("sql", "--table", "warehouse.points", "--model", model_file, "--stage", stage, "--dialect", dialect)
+        result = run_cli("sql", "--table", "warehouse.points", "--model", model_file, "--stage", stage, "--dialect", dialect)
         assert result.exit_code == 0, result.output
         # reference: sqlglot's own parser reads every printed statement back in that dialect
         for text in statements(result.stdout):
             assert sqlglot.parse_one(text, read=dialect) is not None
-    result = run("sql", "--columns", "a", "--stage", "cells")
+    result = run_cli("sql", "--columns", "a", "--stage", "cells")
     assert result.exit_code == 2 and "--table" in result.output
 
 
@@ -610,3 +572,58 @@ def test_the_package_still_offers_its_public_names_on_first_use():
 
     assert tillite.TilliteError is from_engines and tillite.segment.__module__ == "tillite.pipeline"
     assert imported_after("import tillite") & set(HEAVY_MODULES) == set()
+
+
+def _all_commands(command, path=("tillite",)):
+    yield path, command
+    for name, sub in getattr(command, "commands", {}).items():
+        yield from _all_commands(sub, (*path, name))
+
+
+def test_every_option_of_every_command_has_help_text():
+    import click
+
+    missing = [
+        (" ".join(path), opt.opts)
+        for path, command in _all_commands(main)
+        for opt in command.get_params(click.Context(command))
+        if isinstance(opt, click.Option) and not (opt.help or "").strip()
+    ]
+    assert missing == []
+
+
+def test_segment_options_are_the_settings_parameter_table():
+    from tillite.settings import PARAMETERS
+
+    segment_options = {p.name: p for p in main.commands["segment"].params}
+    for p in PARAMETERS.values():
+        if p.option_name is None:
+            assert p.name not in segment_options
+            continue
+        opt = segment_options[p.name]
+        assert p.option_name in opt.opts and opt.help == p.help
+        if p.kind in ("int", "float", "str") and p.default is not None:
+            assert opt.default == p.default
+
+
+def test_every_settings_parameter_is_checked_with_a_message_naming_only_itself():
+    from tillite.errors import ParameterError
+    from tillite.settings import PARAMETERS, Settings
+
+    for p in PARAMETERS.values():
+        if not (p.choices or p.low is not None) or p.name == "k":
+            continue
+        bad = "nonsense" if p.choices else p.low - 1
+        with pytest.raises(ParameterError) as caught:
+            Settings(k=2, **{p.name: bad}).check(["a"])
+        assert caught.value.parameters == (p.name,)
+        assert str(caught.value).startswith(p.name + " must be")
+
+
+def test_open_database_opens_a_postgresql_url_as_postgresql():
+    """One opener of a database without a table (store commands, report --store, name --store)."""
+    from tillite.engines import open_database
+    from tillite.errors import SourceError
+
+    with pytest.raises(SourceError, match="cannot connect to PostgreSQL"):
+        open_database("postgresql://nobody@127.0.0.1:1/nothing_here?connect_timeout=2")

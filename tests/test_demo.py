@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 import re
+from functools import partial
 from pathlib import Path
 
 import duckdb
@@ -27,6 +28,8 @@ from tillite.demo import (
     write_demo_parquet,
 )
 
+from conftest import fetch_rows
+
 ROWS = 5_000
 
 EXPECTED_TYPES = [
@@ -41,16 +44,11 @@ EXPECTED_TYPES = [
 ]
 
 
-def _fetch(path: Path, sql: str) -> list[tuple]:
-    con = duckdb.connect(str(path), read_only=True)
-    try:
-        return con.execute(sql).fetchall()
-    finally:
-        con.close()
+_fetch = partial(fetch_rows, read_only=True)
 
 
 @pytest.fixture(scope="module")
-def small_db(tmp_path_factory: pytest.TempPathFactory) -> DemoSummary:
+def demo_5k(tmp_path_factory: pytest.TempPathFactory) -> DemoSummary:
     path = tmp_path_factory.mktemp("demo") / "saltmere.duckdb"
     return build_demo_database(path, rows=ROWS, days=10, seed=7)
 
@@ -58,26 +56,26 @@ def small_db(tmp_path_factory: pytest.TempPathFactory) -> DemoSummary:
 # --------------------------------------------------------------------------- shape and types
 
 
-def test_summary_and_row_count(small_db: DemoSummary) -> None:
-    assert small_db.rows == ROWS
-    assert small_db.days == 10
-    assert small_db.meters == math.ceil(ROWS / 10)
-    assert small_db.table == "meter_days"
-    assert small_db.seed == 7
-    assert set(small_db.kinds) == {kind.name for kind in KINDS}
-    assert sum(small_db.kinds.values()) == small_db.meters
+def test_summary_and_row_count(demo_5k: DemoSummary) -> None:
+    assert demo_5k.rows == ROWS
+    assert demo_5k.days == 10
+    assert demo_5k.meters == math.ceil(ROWS / 10)
+    assert demo_5k.table == "meter_days"
+    assert demo_5k.seed == 7
+    assert set(demo_5k.kinds) == {kind.name for kind in KINDS}
+    assert sum(demo_5k.kinds.values()) == demo_5k.meters
     ((n, meters, days),) = _fetch(
-        small_db.path, "SELECT count(*), count(DISTINCT meter_id), count(DISTINCT day) FROM meter_days"
+        demo_5k.path, "SELECT count(*), count(DISTINCT meter_id), count(DISTINCT day) FROM meter_days"
     )
-    assert (n, meters, days) == (ROWS, small_db.meters, 10)
-    ((n_meters,),) = _fetch(small_db.path, "SELECT count(*) FROM meters")
-    assert n_meters == small_db.meters
+    assert (n, meters, days) == (ROWS, demo_5k.meters, 10)
+    ((n_meters,),) = _fetch(demo_5k.path, "SELECT count(*) FROM meters")
+    assert n_meters == demo_5k.meters
 
 
-def test_column_order_and_types(small_db: DemoSummary) -> None:
-    described = _fetch(small_db.path, "DESCRIBE meter_days")
+def test_column_order_and_types(demo_5k: DemoSummary) -> None:
+    described = _fetch(demo_5k.path, "DESCRIBE meter_days")
     assert [(row[0], row[1]) for row in described] == EXPECTED_TYPES
-    described = _fetch(small_db.path, "DESCRIBE meters")
+    described = _fetch(demo_5k.path, "DESCRIBE meters")
     assert [(row[0], row[1]) for row in described] == [
         ("meter_id", "INTEGER"),
         ("district", "VARCHAR"),
@@ -86,9 +84,9 @@ def test_column_order_and_types(small_db: DemoSummary) -> None:
     assert set(DEMO_COLUMNS) <= {name for name, _ in EXPECTED_TYPES}
 
 
-def test_days_are_consecutive_from_2026_01_01(small_db: DemoSummary) -> None:
+def test_days_are_consecutive_from_2026_01_01(demo_5k: DemoSummary) -> None:
     ((first, last, bad),) = _fetch(
-        small_db.path,
+        demo_5k.path,
         """
         SELECT min(day), max(day),
                count(*) FILTER (WHERE day <> DATE '2026-01-01' + CAST(rn AS INTEGER))
@@ -214,9 +212,9 @@ def test_failed_reads_share(tmp_path: Path) -> None:
     assert both == 0
 
 
-def test_value_ranges(small_db: DemoSummary) -> None:
+def test_value_ranges(demo_5k: DemoSummary) -> None:
     ((bad_share, bad_hours, bad_sum, bad_peak, bad_litres, bad_district),) = _fetch(
-        small_db.path,
+        demo_5k.path,
         f"""
         SELECT
           count(*) FILTER (WHERE NOT isnan(night_share) AND (night_share < 0 OR night_share > 1)),
@@ -231,10 +229,10 @@ def test_value_ranges(small_db: DemoSummary) -> None:
     assert (bad_share, bad_hours, bad_sum, bad_peak, bad_litres, bad_district) == (0, 0, 0, 0, 0, 0)
 
 
-def test_every_kind_appears_with_roughly_its_share(small_db: DemoSummary) -> None:
-    rows = dict(_fetch(small_db.path, "SELECT kind, count(*) FROM meters GROUP BY kind"))
+def test_every_kind_appears_with_roughly_its_share(demo_5k: DemoSummary) -> None:
+    rows = dict(_fetch(demo_5k.path, "SELECT kind, count(*) FROM meters GROUP BY kind"))
     assert set(rows) == {kind.name for kind in KINDS}
-    assert rows == small_db.kinds
+    assert rows == demo_5k.kinds
     total = sum(rows.values())
     for kind in KINDS:
         share = rows[kind.name] / total
@@ -242,9 +240,9 @@ def test_every_kind_appears_with_roughly_its_share(small_db: DemoSummary) -> Non
         assert abs(share - kind.share) < 5 * sd, kind.name
 
 
-def test_meter_district_is_consistent(small_db: DemoSummary) -> None:
+def test_meter_district_is_consistent(demo_5k: DemoSummary) -> None:
     ((mismatch, districts),) = _fetch(
-        small_db.path,
+        demo_5k.path,
         """
         SELECT count(*) FILTER (WHERE d.district <> m.district), count(DISTINCT d.district)
         FROM meter_days d JOIN meters m USING (meter_id)
@@ -253,14 +251,14 @@ def test_meter_district_is_consistent(small_db: DemoSummary) -> None:
     assert mismatch == 0
     assert districts == len(DISTRICTS)
     ((per_meter,),) = _fetch(
-        small_db.path, "SELECT max(n) FROM (SELECT count(DISTINCT district) n FROM meter_days GROUP BY meter_id)"
+        demo_5k.path, "SELECT max(n) FROM (SELECT count(DISTINCT district) n FROM meter_days GROUP BY meter_id)"
     )
     assert per_meter == 1
 
 
-def test_kind_profiles_match_the_scenario(small_db: DemoSummary) -> None:
+def test_kind_profiles_match_the_scenario(demo_5k: DemoSummary) -> None:
     rows = _fetch(
-        small_db.path,
+        demo_5k.path,
         """
         SELECT kind, median(litres), median(night_share) FILTER (WHERE NOT isnan(night_share)),
                median(peak_litres), avg(flow_run_hours), avg(zero_hours),
@@ -281,11 +279,11 @@ def test_kind_profiles_match_the_scenario(small_db: DemoSummary) -> None:
             assert p24 == 0, kind.name
 
 
-def test_five_kmeans_segments_recover_the_kinds(small_db: DemoSummary) -> None:
+def test_five_kmeans_segments_recover_the_kinds(demo_5k: DemoSummary) -> None:
     # outside yardstick: scikit-learn KMeans on standardised columns and adjusted_rand_score
     cluster = pytest.importorskip("sklearn.cluster")
     metrics = pytest.importorskip("sklearn.metrics")
-    con = duckdb.connect(str(small_db.path), read_only=True)
+    con = duckdb.connect(str(demo_5k.path), read_only=True)
     try:
         data = con.execute(
             f"""
@@ -304,7 +302,7 @@ def test_five_kmeans_segments_recover_the_kinds(small_db: DemoSummary) -> None:
 # --------------------------------------------------------------------------- parquet
 
 
-def test_parquet_layout_and_rows(tmp_path: Path, small_db: DemoSummary) -> None:
+def test_parquet_layout_and_rows(tmp_path: Path, demo_5k: DemoSummary) -> None:
     out = tmp_path / "pq"
     files = write_demo_parquet(out, rows=ROWS, days=10, seed=7)
     assert len(files) == 10
@@ -316,7 +314,7 @@ def test_parquet_layout_and_rows(tmp_path: Path, small_db: DemoSummary) -> None:
         assert f.parent.name == f"day=2026-01-{i + 1:02d}"
     con = duckdb.connect()
     try:
-        con.execute(f"ATTACH '{small_db.path}' AS db (READ_ONLY)")
+        con.execute(f"ATTACH '{demo_5k.path}' AS db (READ_ONLY)")
         glob = str(out / "*" / "*.parquet")
         types = con.execute(
             f"DESCRIBE SELECT * FROM read_parquet('{glob}', hive_partitioning = true)"

@@ -13,7 +13,7 @@ from conftest import write_table
 
 
 @pytest.fixture
-def small_db(tmp_path):
+def five_rows_db(tmp_path):
     return write_table(tmp_path / "small.duckdb", "pts", {"a": np.arange(5.0)})
 
 
@@ -25,29 +25,29 @@ def is_closed(engine: DuckDBEngine) -> bool:
     return False
 
 
-def test_open_source_in_a_with_statement_closes_the_engine_even_on_error(small_db):
+def test_open_source_in_a_with_statement_closes_the_engine_even_on_error(five_rows_db):
     with pytest.raises(RuntimeError, match="inside"):
-        with open_source(str(small_db), "pts") as (engine, source):
+        with open_source(str(five_rows_db), "pts") as (engine, source):
             assert source.label == "pts"
             assert engine.query(exp.select("a").from_("pts"))["a"].tolist() == [0.0, 1.0, 2.0, 3.0, 4.0]
             raise RuntimeError("inside")
     assert is_closed(engine)
     # the file's lock went with it: it opens for writing again
-    with open_source(str(small_db), "pts", writable=True) as opened:
+    with open_source(str(five_rows_db), "pts", writable=True) as opened:
         assert isinstance(opened, OpenedSource) and opened.engine.read_only is False
     assert is_closed(opened.engine)
 
 
-def test_open_source_still_unpacks_into_engine_and_source(small_db):
-    engine, source = open_source(str(small_db), "pts")
+def test_open_source_still_unpacks_into_engine_and_source(five_rows_db):
+    engine, source = open_source(str(five_rows_db), "pts")
     try:
         assert isinstance(engine, DuckDBEngine) and source.table == ("pts",)
     finally:
         engine.close()
 
 
-def test_an_engine_is_its_own_context_manager(small_db):
-    with open_database(str(small_db)) as engine:
+def test_an_engine_is_its_own_context_manager(five_rows_db):
+    with open_database(str(five_rows_db)) as engine:
         assert engine.tables() == ["pts"]
     assert is_closed(engine)
 

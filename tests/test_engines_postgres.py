@@ -42,7 +42,6 @@ from engine_checks import (
     assert_same_labels,
     assert_same_model,
     assert_same_refine,
-    make_rows,
     ordered_rows,
     write_duckdb,
 )
@@ -51,26 +50,21 @@ SETTINGS = dict(k=5, width=0.5, seed=0, cell_budget=2_000)
 
 
 @pytest.fixture(scope="module")
-def rows():
-    return make_rows()
-
-
-@pytest.fixture(scope="module")
-def loaded(server, rows, tmp_path_factory):
+def loaded(server, engine_rows, tmp_path_factory):
     """The rows in PostgreSQL table points and in a DuckDB file; returns the DuckDB path."""
     import psycopg
     from psycopg import sql
 
     with psycopg.connect(server.conninfo, autocommit=True) as con:
-        write_postgres(con, rows)
+        write_postgres(con, engine_rows)
         con.execute(sql.SQL("CREATE SCHEMA {}").format(sql.Identifier("field data")))
         con.execute(sql.SQL("CREATE VIEW {}.{} AS SELECT * FROM {}").format(
             sql.Identifier("field data"), sql.Identifier("points view"), sql.Identifier(TABLE)))
-    return write_duckdb(tmp_path_factory.mktemp("pg") / "points.duckdb", rows)
+    return write_duckdb(tmp_path_factory.mktemp("pg") / "points.duckdb", engine_rows)
 
 
 @pytest.fixture
-def engines(server, loaded):
+def pg_and_duck(server, loaded):
     pg = PostgresEngine(server.conninfo)
     duck = DuckDBEngine(str(loaded), read_only=True)
     yield pg, duck
@@ -81,48 +75,48 @@ def engines(server, loaded):
 SRC = Source.of_table(TABLE)
 
 
-def test_profile_sees_the_same_rows_as_duckdb(engines, rows):
-    pg, duck = engines
+def test_profile_sees_the_same_rows_as_duckdb(pg_and_duck, engine_rows):
+    pg, duck = pg_and_duck
     settings = Settings(**SETTINGS)
     got, ref = run_profile(pg, SRC, COLUMNS, settings), run_profile(duck, SRC, COLUMNS, settings)
     # reference: DuckDB on the same rows, and numpy's count of finite rows
-    assert got.rows == ref.rows == len(rows.ids)
-    assert len(got.sample) == len(ref.sample) == int(rows.usable.sum())
+    assert got.rows == ref.rows == len(engine_rows.ids)
+    assert len(got.sample) == len(ref.sample) == int(engine_rows.usable.sum())
     np.testing.assert_allclose(got.center, ref.center, rtol=1e-12)
-    np.testing.assert_allclose(got.center, rows.x[rows.usable].mean(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(got.center, engine_rows.x[engine_rows.usable].mean(axis=0), rtol=1e-12)
     np.testing.assert_allclose(got.scale, ref.scale, rtol=1e-12)
 
 
-def test_sampled_profile_uses_tablesample_and_stays_bounded(engines):
-    pg, _ = engines
+def test_sampled_profile_uses_tablesample_and_stays_bounded(pg_and_duck):
+    pg, _ = pg_and_duck
     prof = run_profile(pg, SRC, COLUMNS, Settings(k=5, sample_rows=2_000))
     # reference: the table has 20,000 rows, so a 2,000-row target samples 15% with TABLESAMPLE SYSTEM
     assert prof.rows == 20_000 and 0 < len(prof.sample) <= 2_000
 
 
-def test_cell_pass_cfs_equal_duckdb_on_the_same_grid(engines):
-    pg, duck = engines
+def test_cell_pass_cfs_equal_duckdb_on_the_same_grid(pg_and_duck):
+    pg, duck = pg_and_duck
     settings = Settings(**SETTINGS)
     grid = grid_for_profile(run_profile(duck, SRC, COLUMNS, settings), settings)
     # reference: DuckDB running the same cells tree over the same rows
     assert_same_cell_pass(run_cell_pass(pg, SRC, COLUMNS, grid), run_cell_pass(duck, SRC, COLUMNS, grid))
 
 
-def test_refine_pass_equals_duckdb_from_the_same_centroids(engines):
-    pg, duck = engines
+def test_refine_pass_equals_duckdb_from_the_same_centroids(pg_and_duck):
+    pg, duck = pg_and_duck
     model = segment(duck, SRC, COLUMNS, Settings(**SETTINGS))
     assign = model.assignment()
     # reference: DuckDB running the same refine tree from the same centroids
     assert_same_refine(run_refine_pass(pg, SRC, COLUMNS, assign), run_refine_pass(duck, SRC, COLUMNS, assign))
 
 
-def test_segment_gives_the_duckdb_model(engines):
-    pg, duck = engines
+def test_segment_gives_the_duckdb_model(pg_and_duck):
+    pg, duck = pg_and_duck
     # reference: DuckDB; both read the whole table as the sample (20,000 rows <= 2 x 50,000)
     assert_same_model(segment(pg, SRC, COLUMNS, Settings(**SETTINGS)), segment(duck, SRC, COLUMNS, Settings(**SETTINGS)))
 
 
-def test_labels_view_equals_duckdb_row_for_row(server, loaded, rows):
+def test_labels_view_equals_duckdb_row_for_row(server, loaded, engine_rows):
     pg = PostgresEngine(server.conninfo)
     duck = DuckDBEngine(str(loaded))
     try:
@@ -130,7 +124,7 @@ def test_labels_view_equals_duckdb_row_for_row(server, loaded, rows):
         assert label(pg, SRC, model, "point_segments") == "view point_segments"
         label(duck, SRC, model, "point_segments")
         # reference: DuckDB's labels view over the same rows
-        assert_same_labels(ordered_rows(pg, "point_segments"), ordered_rows(duck, "point_segments"), rows)
+        assert_same_labels(ordered_rows(pg, "point_segments"), ordered_rows(duck, "point_segments"), engine_rows)
         assert existing_relation_kind(pg, "point_segments") == "view"
         assert existing_relation_kind(pg, "public.point_segments") == "view"
         assert existing_relation_kind(pg, "Point_Segments") is None  # quoted names keep their case in PostgreSQL
@@ -187,8 +181,8 @@ def test_sampled_profile_of_a_view_falls_back_to_a_row_filter(server, loaded):
     assert prof.rows == 20_000 and 1_000 < len(prof.sample) <= 2_000
 
 
-def test_finiteness_test_is_right_for_nan_and_infinity_float8(engines):
-    pg, _ = engines
+def test_finiteness_test_is_right_for_nan_and_infinity_float8(pg_and_duck):
+    pg, _ = pg_and_duck
     values = ["1.5", "NaN", "Infinity", "-Infinity", None]
     cols = [sqlgen.is_finite(exp.cast(exp.Literal.string(v) if v else exp.Null(), "DOUBLE"), "postgres") for v in values]
     got = pg.query(exp.select(*[exp.alias_(c, f"f{i}") for i, c in enumerate(cols)]))
@@ -198,16 +192,16 @@ def test_finiteness_test_is_right_for_nan_and_infinity_float8(engines):
 
 
 @pytest.mark.parametrize("value", [1e9 + 0.123456789, -3.5e-300, 0.1, 123456789012345678.0, 2.0**-1074])
-def test_exponent_literals_are_read_exactly_as_double_precision(engines, value):
-    pg, _ = engines
+def test_exponent_literals_are_read_exactly_as_double_precision(pg_and_duck, value):
+    pg, _ = pg_and_duck
     stmt = exp.select(exp.alias_(exp.Mul(this=sqlgen.to_double(sqlgen.num(1)), expression=sqlgen.num(value)), "v"))
     got = pg.query(stmt)["v"]
     # reference: Python float equality; PostgreSQL reads 5.0e-01 as an exact numeric constant and converts it to float8
     assert got.dtype == np.float64 and got[0] == value
 
 
-def test_missing_table_names_the_tables_there(engines):
-    pg, _ = engines
+def test_missing_table_names_the_tables_there(pg_and_duck):
+    pg, _ = pg_and_duck
     with pytest.raises(SourceError, match=r"not found .*points"):
         pg.describe(Source.of_table("nope"))
     with pytest.raises(EngineError, match="database error"):
@@ -284,18 +278,18 @@ def test_labels_carry_tillites_mark_and_a_users_view_or_table_is_refused(server,
         pg.close()
         duck.close()
 @pytest.mark.parametrize("method", ["kmeans", "ward", "density"])
-def test_three_runs_on_postgres_with_one_seed_write_the_same_model_file(engines, method):
+def test_three_runs_on_postgres_with_one_seed_write_the_same_model_file(pg_and_duck, method):
     """Trust rule: same data, options and seed give the same model file apart from timings,
     with the profile sampled (TABLESAMPLE ... REPEATABLE (seed)), not read whole."""
     from test_trust import comparable
 
-    pg, _ = engines
+    pg, _ = pg_and_duck
     settings = dict(kmeans=dict(k=5), ward=dict(k=5, method="ward"), density=dict(k=0, method="density"))[method]
     runs = [comparable(segment(pg, SRC, COLUMNS, Settings(**settings, seed=3, sample_rows=2_000))) for _ in range(3)]
     assert runs[0] == runs[1] == runs[2]
     assert json.loads(runs[0])["params"]["sample_repeats"] == "yes"
-def test_refine_pass_through_an_inline_cell_map_equals_duckdb(engines):
-    pg, duck = engines
+def test_refine_pass_through_an_inline_cell_map_equals_duckdb(pg_and_duck):
+    pg, duck = pg_and_duck
     model = segment(duck, SRC, COLUMNS, Settings(**SETTINGS))
     cell_map = every_third_cell(duck, SRC, model)
     with temporary_cell_map(pg, cell_map) as held:

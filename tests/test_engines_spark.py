@@ -42,7 +42,6 @@ from engine_checks import (
     assert_same_labels,
     assert_same_model,
     assert_same_refine,
-    make_rows,
     ordered_rows,
     write_duckdb,
     write_parquet,
@@ -66,14 +65,9 @@ def spark(folder):
 
 
 @pytest.fixture(scope="module")
-def rows():
-    return make_rows()
-
-
-@pytest.fixture(scope="module")
-def data(folder, rows, spark):
+def data(folder, engine_rows, spark):
     """(DuckDB file, Parquet copy); the Parquet rows are also a catalog table and a temporary view."""
-    db = write_duckdb(folder / "points.duckdb", rows)
+    db = write_duckdb(folder / "points.duckdb", engine_rows)
     parquet = write_parquet(db, folder / "points.parquet")
     frame = spark.read.parquet(str(parquet))
     frame.write.saveAsTable(REGISTERED)
@@ -107,16 +101,16 @@ def duckdb_labels(duck: DuckDBEngine, model) -> dict[str, np.ndarray]:
     return duck.query(exp.select(exp.Star()).from_(sqlgen.subquery(select, "l")).order_by(sqlgen.col("id")))
 
 
-def test_profile_sees_the_same_rows_as_duckdb(sparks, duck, data, rows):
+def test_profile_sees_the_same_rows_as_duckdb(sparks, duck, data, engine_rows):
     settings = Settings(**SETTINGS)
     ref = run_profile(duck, DUCK_SRC, COLUMNS, settings)
     for src in sources(data):
         got = run_profile(sparks, src, COLUMNS, settings)
         # reference: DuckDB on the same rows, and numpy's count and mean of the finite rows
-        assert got.rows == ref.rows == len(rows.ids)
-        assert len(got.sample) == int(rows.usable.sum())
+        assert got.rows == ref.rows == len(engine_rows.ids)
+        assert len(got.sample) == int(engine_rows.usable.sum())
         np.testing.assert_allclose(got.center, ref.center, rtol=1e-12)
-        np.testing.assert_allclose(got.center, rows.x[rows.usable].mean(axis=0), rtol=1e-12)
+        np.testing.assert_allclose(got.center, engine_rows.x[engine_rows.usable].mean(axis=0), rtol=1e-12)
 
 
 def test_sampled_profile_uses_tablesample_percent_and_stays_bounded(sparks, data):
@@ -150,7 +144,7 @@ def test_segment_gives_the_duckdb_model(sparks, duck, data):
         assert_same_model(segment(sparks, src, COLUMNS, Settings(**SETTINGS)), ref)
 
 
-def test_labels_equal_duckdb_row_for_row_as_view_and_table(sparks, duck, data, rows):
+def test_labels_equal_duckdb_row_for_row_as_view_and_table(sparks, duck, data, engine_rows):
     model = segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS))
     ref = duckdb_labels(duck, model)
     src = Source.of_table(REGISTERED)
@@ -158,23 +152,23 @@ def test_labels_equal_duckdb_row_for_row_as_view_and_table(sparks, duck, data, r
     assert existing_relation_kind(sparks, "point_segments") == "view"
     assert not sparks.spark.catalog.getTable("point_segments").isTemporary  # a catalog view over a catalog table
     # reference: DuckDB's labels over the same rows
-    assert_same_labels(ordered_rows(sparks, "point_segments"), ref, rows)
+    assert_same_labels(ordered_rows(sparks, "point_segments"), ref, engine_rows)
     assert label(sparks, src, model, "segments_table", materialize=True) == "table segments_table"
     assert existing_relation_kind(sparks, "segments_table") == "table"
     label(sparks, src, model, "segments_table", materialize=True, replace=True)
-    assert_same_labels(ordered_rows(sparks, "segments_table"), ref, rows)
+    assert_same_labels(ordered_rows(sparks, "segments_table"), ref, engine_rows)
 
 
-def test_labels_over_a_temporary_view_are_a_temporary_view(sparks, duck, data, rows):
+def test_labels_over_a_temporary_view_are_a_temporary_view(sparks, duck, data, engine_rows):
     model = segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS))
     label(sparks, Source.of_table("points_temp"), model, "temp_segments")
     assert sparks.spark.catalog.getTable("temp_segments").isTemporary
     assert existing_relation_kind(sparks, "temp_segments") == "view"
     # reference: DuckDB's labels over the same rows
-    assert_same_labels(ordered_rows(sparks, "temp_segments"), duckdb_labels(duck, model), rows)
+    assert_same_labels(ordered_rows(sparks, "temp_segments"), duckdb_labels(duck, model), engine_rows)
 
 
-def test_labels_of_a_parquet_source_go_to_one_parquet_file(sparks, duck, data, rows, folder):
+def test_labels_of_a_parquet_source_go_to_one_parquet_file(sparks, duck, data, engine_rows, folder):
     model = segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS))
     out = folder / "labelled.parquet"
     assert label(sparks, Source.of_files(str(data[1]), "parquet"), model, str(out)) == f"file {out}"
@@ -183,7 +177,7 @@ def test_labels_of_a_parquet_source_go_to_one_parquet_file(sparks, duck, data, r
     got = con.execute(f"SELECT * FROM read_parquet('{out}') ORDER BY id").fetchnumpy()
     con.close()
     # reference: DuckDB reading Spark's file, against DuckDB's own labels
-    assert_same_labels(got, duckdb_labels(duck, model), rows)
+    assert_same_labels(got, duckdb_labels(duck, model), engine_rows)
 
 
 def test_nan_is_nan_and_null_is_masked_in_results(sparks, data):

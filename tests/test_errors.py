@@ -15,6 +15,7 @@ from sqlglot import exp
 from tillite import errors, sqlgen
 from tillite import store as S
 from tillite.cli import main
+from tillite.targets import DuckDB
 from tillite.engines import DuckDBEngine, PostgresEngine
 from tillite.errors import EngineError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict
 from tillite.pipeline import check_may_replace
@@ -92,6 +93,7 @@ class RaisingEngine:
     """An engine whose every query raises ``err`` (to drive store._claim)."""
 
     dialect = "duckdb"
+    target = DuckDB()
 
     def __init__(self, err: Exception) -> None:
         self.err = err
@@ -139,20 +141,20 @@ def test_replace_messages_name_the_parameter_in_the_api_and_the_option_in_the_cl
 
 
 @pytest.fixture
-def small_db(tmp_path):
+def four_days_db(tmp_path):
     rng = np.random.default_rng(5)
     data = {"a": rng.normal(size=400), "b": rng.normal(size=400), "day": np.repeat(np.arange(4), 100)}
     return write_table(tmp_path / "small.duckdb", "pts", data)
 
 
-def test_building_a_store_twice_names_replace_in_the_api_and_regrid_in_the_cli(small_db):
-    args = ["store", "build", str(small_db), "-t", "pts", "-c", "a,b", "--partition-by", "day", "--k", "2", "-q"]
+def test_building_a_store_twice_names_replace_in_the_api_and_regrid_in_the_cli(four_days_db):
+    args = ["store", "build", str(four_days_db), "-t", "pts", "-c", "a,b", "--partition-by", "day", "--k", "2", "-q"]
     assert CliRunner().invoke(main, args).exit_code == 0
     res = CliRunner().invoke(main, args)
     assert res.exit_code == 1 and "Traceback" not in res.output
     lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
     assert len(lines) == 1 and lines[0] == "Error: store pts already exists; refresh it, or rebuild with --regrid", lines
-    engine = DuckDBEngine(str(small_db))
+    engine = DuckDBEngine(str(four_days_db))
     try:
         from tillite.pipeline import Settings
         from tillite.sqlgen import Source
@@ -208,13 +210,13 @@ def test_the_demo_build_on_a_file_that_is_not_a_database_gives_one_database_erro
     assert len(lines) == 1 and lines[0].startswith("Error: database error: "), lines
 
 
-def test_refresh_limits_name_parameters_in_the_api_and_options_in_the_cli(small_db):
+def test_refresh_limits_name_parameters_in_the_api_and_options_in_the_cli(four_days_db):
     """The API says partitions/where; the CLI says --partitions/--where (its one-line errors are pinned in test_store.py)."""
     from tillite.cli import cli_message
     from tillite.pipeline import Settings
     from tillite.sqlgen import Source
 
-    engine = DuckDBEngine(str(small_db))
+    engine = DuckDBEngine(str(four_days_db))
     try:
         S.build(engine, Source.of_table("pts"), ["a", "b"], S.PartitionSpec(("day",)), Settings(k=2))
         with pytest.raises(ParameterError) as caught:

@@ -10,25 +10,21 @@ import numpy as np
 import pytest
 from scipy.cluster.hierarchy import linkage
 from scipy.spatial.distance import cdist, pdist
-from sklearn.datasets import load_wine, make_blobs
+from sklearn.datasets import load_wine
 from sklearn.metrics import calinski_harabasz_score
 
 from tillite import features as F
+
+from conftest import numpy_sse
 
 RTOL = 1e-9
 W = np.array([0.5, 2.0, 1.0, 3.0])  # column multipliers for the weighted variants
 
 
 @pytest.fixture(scope="module")
-def blobs():
-    x, y = make_blobs(n_samples=600, n_features=4, centers=5, cluster_std=1.5, random_state=7)
-    return x, y
-
-
-@pytest.fixture(scope="module")
-def two_sides(blobs):
+def two_sides(blobs_600_4d_5c):
     """Disjoint row sets A (5 blob groups) and B (3 random groups) for the pairwise distances."""
-    x, y = blobs
+    x, y = blobs_600_4d_5c
     yb = np.random.default_rng(11).integers(0, 3, size=300)
     xa, xb = x[:300], x[300:]
     ga = [xa[y[:300] == g] for g in range(5)]
@@ -45,11 +41,6 @@ def _scaled(x, weights):
     return x if weights is None else x * weights
 
 
-def _sse(x):
-    # numpy direct: sum of squared deviations from the column means
-    return float(((x - x.mean(axis=0)) ** 2).sum())
-
-
 def _assert_cf(cf, n, ls, ss, rtol=RTOL, atol=1e-9):
     np.testing.assert_allclose(cf.n, n, rtol=rtol, atol=atol)
     np.testing.assert_allclose(cf.ls, ls, rtol=rtol, atol=atol)
@@ -63,74 +54,74 @@ def _numpy_groups(x, y, k):
             np.array([(x[y == g] ** 2).sum(axis=0) for g in range(k)]).reshape(k, x.shape[1]))
 
 
-def test_from_points_gives_singleton_counts_sums_and_square_sums(blobs):
-    x, _ = blobs
+def test_from_points_gives_singleton_counts_sums_and_square_sums(blobs_600_4d_5c):
+    x, _ = blobs_600_4d_5c
     _assert_cf(F.from_points(x), np.ones(len(x)), x, x * x)  # numpy direct on the rows
 
 
-def test_from_groups_matches_numpy_per_group_counts_sums_square_sums(blobs):
-    x, y = blobs
+def test_from_groups_matches_numpy_per_group_counts_sums_square_sums(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     _assert_cf(F.from_groups(x, y), *_numpy_groups(x, y, 5))  # numpy per group
 
 
-def test_group_sum_drops_negative_labels_and_keeps_empty_groups(blobs):
-    x, y = blobs
+def test_group_sum_drops_negative_labels_and_keeps_empty_groups(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     lab = np.where(np.arange(len(y)) % 7 == 0, -1, y)  # every 7th row dropped
     got = F.group_sum(F.from_points(x), lab, k=7)  # groups 5 and 6 are empty
     _assert_cf(got, *_numpy_groups(x, lab, 7))  # numpy per group
     assert np.all(got.n[5:] == 0)
 
 
-def test_group_sum_of_fine_cfs_equals_cf_of_coarse_groups_of_rows(blobs):
-    x, y = blobs
+def test_group_sum_of_fine_cfs_equals_cf_of_coarse_groups_of_rows(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     fine = np.random.default_rng(3).integers(0, 40, size=len(x))
     coarse_of_fine = np.arange(40) % 4
     got = F.group_sum(F.from_groups(x, fine, 40), coarse_of_fine, 4)
     _assert_cf(got, *_numpy_groups(x, coarse_of_fine[fine], 4))  # numpy on the rows, BIRCH additivity
 
 
-def test_total_is_numpy_count_column_sums_and_square_sums(blobs):
-    x, y = blobs
+def test_total_is_numpy_count_column_sums_and_square_sums(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     _assert_cf(F.total(F.from_groups(x, y)), [len(x)], x.sum(0)[None], (x * x).sum(0)[None])  # numpy
 
 
-def test_merge_is_cf_of_union_birch_additivity(blobs):
-    x, y = blobs
+def test_merge_is_cf_of_union_birch_additivity(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     a, b = F.from_groups(x[:250], y[:250], 5), F.from_groups(x[250:], y[250:], 5)
     # BIRCH CF additivity theorem: CF(A u B) = CF(A) + CF(B); reference is numpy on all rows
     _assert_cf(F.merge(a, b), *_numpy_groups(x, y, 5))
 
 
-def test_subtract_removing_subset_gives_cf_of_rest(blobs):
-    x, y = blobs
+def test_subtract_removing_subset_gives_cf_of_rest(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     gone = np.random.default_rng(5).random(len(x)) < 0.3
     rest = F.subtract(F.from_groups(x, y, 5), F.from_groups(x[gone], y[gone], 5))
     _assert_cf(rest, *_numpy_groups(x[~gone], y[~gone], 5), atol=1e-8)  # numpy on the kept rows
 
 
-def test_subtract_more_points_than_present_raises_value_error(blobs):
-    x, y = blobs
+def test_subtract_more_points_than_present_raises_value_error(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     small = F.from_groups(x[:10], y[:10], 5)
     with pytest.raises(ValueError):
         F.subtract(small, F.from_groups(x, y, 5))
 
 
-def test_affine_matches_cf_of_transformed_rows(blobs):
-    x, y = blobs
+def test_affine_matches_cf_of_transformed_rows(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     scale, offset = np.array([0.3, -2.0, 1.5, 0.01]), np.array([0.7, -1.2, 0.0, 3.0])
     got = F.affine(F.from_groups(x, y), scale, offset)
     _assert_cf(got, *_numpy_groups(x * scale + offset, y, 5))  # numpy: CF of the transformed rows
 
 
-def test_centroids_match_numpy_group_means_and_empty_entries_are_zero(blobs):
-    x, y = blobs
+def test_centroids_match_numpy_group_means_and_empty_entries_are_zero(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     got = F.centroids(F.from_groups(x, y, 6))  # group 5 empty
     want = np.array([x[y == g].mean(axis=0) for g in range(5)] + [np.zeros(4)])  # numpy mean
     np.testing.assert_allclose(got, want, rtol=RTOL, atol=1e-12)
 
 
-def test_scatter_sse_radius_match_numpy_deviations(blobs, weights):
-    x, y = blobs
+def test_scatter_sse_radius_match_numpy_deviations(blobs_600_4d_5c, weights):
+    x, y = blobs_600_4d_5c
     cf, xs = F.from_groups(x, y), _scaled(x, weights)  # weights: numpy on the scaled rows
     dev = [(xs[y == g] - xs[y == g].mean(0)) ** 2 for g in range(5)]  # numpy direct
     want_col = np.array([d.sum(0) for d in dev])
@@ -143,8 +134,8 @@ def test_scatter_sse_radius_match_numpy_deviations(blobs, weights):
     np.testing.assert_allclose(F.radius(cf, weights), want_r, rtol=RTOL)
 
 
-def test_diameter_matches_scipy_pdist_rms_over_ordered_pairs(blobs, weights):
-    x, y = blobs
+def test_diameter_matches_scipy_pdist_rms_over_ordered_pairs(blobs_600_4d_5c, weights):
+    x, y = blobs_600_4d_5c
     xs = _scaled(x, weights)
     # BIRCH diameter D = sqrt(sum_{i != j} ||x_i - x_j||^2 / (n (n - 1))); pdist lists each
     # unordered pair once, so the mean over pdist equals the mean over ordered pairs i != j
@@ -181,21 +172,21 @@ def test_d3_average_intra_cluster_is_diameter_of_union_by_pdist(two_sides, weigh
 def test_d4_variance_increase_and_ward_cost_equal_sse_growth_of_union(two_sides, weights):
     a, b, ga, gb = two_sides
     # BIRCH D4 = SSE(A u B) - SSE(A) - SSE(B), numpy direct on the scaled rows
-    s = lambda z: _sse(_scaled(z, weights))  # noqa: E731
+    s = lambda z: numpy_sse(_scaled(z, weights))  # noqa: E731
     want = np.array([[s(np.vstack([p, q])) - s(p) - s(q) for q in gb] for p in ga])
     np.testing.assert_allclose(F.variance_increase(a, b, weights), want, rtol=1e-8)
     np.testing.assert_allclose(F.ward_cost(a, b, weights), want, rtol=1e-8)
 
 
-def test_ward_cost_of_singletons_is_half_squared_distance(blobs, weights):
-    x, _ = blobs
+def test_ward_cost_of_singletons_is_half_squared_distance(blobs_600_4d_5c, weights):
+    x, _ = blobs_600_4d_5c
     p, q = x[:40], x[40:70]
     want = cdist(_scaled(p, weights), _scaled(q, weights), "sqeuclidean") / 2  # scipy cdist
     np.testing.assert_allclose(F.ward_cost(F.from_points(p), F.from_points(q), weights), want, rtol=RTOL)
 
 
-def test_ward_cost_matches_scipy_ward_linkage_merge_heights(blobs):
-    x, _ = blobs
+def test_ward_cost_matches_scipy_ward_linkage_merge_heights(blobs_600_4d_5c):
+    x, _ = blobs_600_4d_5c
     pts = x[:60]
     z = linkage(pts, method="ward")
     # scipy's Ward height for merging u and v is sqrt(2 n_u n_v / (n_u + n_v)) ||c_u - c_v||
@@ -208,8 +199,8 @@ def test_ward_cost_matches_scipy_ward_linkage_merge_heights(blobs):
         cfs = F.concat(cfs, F.merge(cfs[i], cfs[j]))
 
 
-def test_assignment_cost_matches_brute_force_squared_distances_to_centres(blobs, weights):
-    x, y = blobs
+def test_assignment_cost_matches_brute_force_squared_distances_to_centres(blobs_600_4d_5c, weights):
+    x, y = blobs_600_4d_5c
     centres = np.random.default_rng(9).normal(scale=5.0, size=(6, 4))
     xs, cs = _scaled(x, weights), _scaled(centres, weights)
     # brute force: sum over the entry's points of ||x - c||^2, via scipy cdist
@@ -218,8 +209,8 @@ def test_assignment_cost_matches_brute_force_squared_distances_to_centres(blobs,
     np.testing.assert_allclose(got, want, rtol=RTOL)
 
 
-def test_calinski_harabasz_matches_sklearn_on_blobs(blobs, weights):
-    x, y = blobs
+def test_calinski_harabasz_matches_sklearn_on_blobs(blobs_600_4d_5c, weights):
+    x, y = blobs_600_4d_5c
     want = calinski_harabasz_score(_scaled(x, weights), y)  # sklearn on the same (scaled) rows
     assert F.calinski_harabasz(F.from_groups(x, y, 7), weights) == pytest.approx(want, rel=RTOL)
     # an arbitrary (poor) assignment too, with two empty groups that must be ignored
@@ -235,14 +226,14 @@ def test_calinski_harabasz_matches_sklearn_on_standardised_wine():
     assert F.calinski_harabasz(F.from_groups(x, data.target)) == pytest.approx(want, rel=RTOL)
 
 
-def test_calinski_harabasz_rejects_a_single_cluster(blobs):
-    x, _ = blobs
+def test_calinski_harabasz_rejects_a_single_cluster(blobs_600_4d_5c):
+    x, _ = blobs_600_4d_5c
     with pytest.raises(ValueError):
         F.calinski_harabasz(F.from_groups(x, np.zeros(len(x), dtype=int)))
 
 
-def test_merged_scatter_follows_chan_golub_leveque_pairwise_update(blobs):
-    x, y = blobs
+def test_merged_scatter_follows_chan_golub_leveque_pairwise_update(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     rng = np.random.default_rng(4)
     half = rng.random(len(x)) < 0.4
     a, b = F.from_groups(x[half], y[half], 5), F.from_groups(x[~half], y[~half], 5)
@@ -303,8 +294,8 @@ def test_cf_shape_validation_raises_value_error(n, ls, ss):
         F.CF(n, ls, ss)
 
 
-def test_cf_indexing_concat_and_empty_identity(blobs):
-    x, y = blobs
+def test_cf_indexing_concat_and_empty_identity(blobs_600_4d_5c):
+    x, y = blobs_600_4d_5c
     cf = F.from_groups(x, y)
     again = F.concat(cf[[0, 1]], cf[2], cf[3:])
     _assert_cf(again, cf.n, cf.ls, cf.ss, rtol=0, atol=0)

@@ -24,14 +24,14 @@ from click.testing import CliRunner
 from sklearn.datasets import make_blobs
 
 from tillite import macros as M
-from tillite.cli_macros import macros as macros_group
+from tillite.cli.macros import macros as macros_group
 from tillite.demo import build_demo_database
 from tillite.engines import DUCKDB_STORAGE_VERSION, DuckDBEngine
 from tillite.pipeline import Settings, label, run_cell_pass, segment
 from tillite.segmenters import kmeans
 from tillite.sqlgen import Grid, Source
 
-from conftest import columns_of, write_table
+from conftest import columns_of, fetch_columns, fetch_rows, write_table
 from throwaway_servers import unavailable
 
 COLS = ["a", "unit price", "c"]
@@ -46,26 +46,9 @@ def sql_list(names: list[str]) -> str:
     return "[" + ", ".join("'" + n.replace("'", "''") + "'" for n in names) + "]"
 
 
-def query(path: Path, sql: str) -> list[tuple]:
-    """Run SQL text in a fresh connection (closed again so the next user can open the file)."""
-    con = duckdb.connect(str(path))
-    try:
-        return con.execute(sql).fetchall()
-    finally:
-        con.close()
-
-
-def query_numpy(path: Path, sql: str) -> dict[str, np.ndarray]:
-    con = duckdb.connect(str(path))
-    try:
-        return con.execute(sql).fetchnumpy()
-    finally:
-        con.close()
-
-
 def user_macros(path: Path) -> set[str]:
     """Non-internal macros and table macros in the database."""
-    rows = query(path, "SELECT function_name FROM duckdb_functions() WHERE function_type IN ('macro', 'table_macro') AND NOT internal")
+    rows = fetch_rows(path, "SELECT function_name FROM duckdb_functions() WHERE function_type IN ('macro', 'table_macro') AND NOT internal")
     return {r[0] for r in rows}
 
 
@@ -79,11 +62,11 @@ def blob_table(tmp_path: Path, rows: int = 12_000, seed: int = 5) -> tuple[Path,
 
 
 def profile_of(path: Path, table: str, cols: list[str]) -> dict[str, np.ndarray]:
-    return query_numpy(path, f"SELECT * FROM tillite_profile('{table}', {sql_list(cols)})")
+    return fetch_columns(path, f"SELECT * FROM tillite_profile('{table}', {sql_list(cols)})")
 
 
 def cells_of(path: Path, table: str, cols: list[str], width: float) -> list[tuple]:
-    return query(path, f"SELECT cell, n, ls, ss FROM tillite_cells('{table}', {sql_list(cols)}, {width!r})")
+    return fetch_rows(path, f"SELECT cell, n, ls, ss FROM tillite_cells('{table}', {sql_list(cols)}, {width!r})")
 
 
 def python_cells(path: Path, table: str, cols: list[str], mean: np.ndarray, sd: np.ndarray, width: float):
@@ -121,7 +104,7 @@ def demo_labelled(tmp_path: Path):
     return path, model
 
 
-def run_cli(*args: object):
+def run_macros_cli(*args: object):
     return CliRunner().invoke(macros_group, [str(a) for a in args])
 
 
@@ -135,7 +118,7 @@ def test_profile_equals_numpy_on_usable_rows_and_counts_null_nan_inf(tmp_path):
     x[4:7, 1] = np.inf
     x[7, 2] = -np.inf
     path = write_table(tmp_path / "p.duckdb", "p", columns_of(x, COLS))
-    query(path, 'INSERT INTO p VALUES (NULL, 1.0, 2.0), (NULL, NULL, 3.0)')
+    fetch_rows(path, 'INSERT INTO p VALUES (NULL, 1.0, 2.0), (NULL, NULL, 3.0)')
     M.install_into(path, M.generic_macros())
     got = profile_of(path, "p", COLS)
     usable = x[8:]
@@ -153,7 +136,7 @@ def test_profile_equals_numpy_on_usable_rows_and_counts_null_nan_inf(tmp_path):
 def test_profile_of_an_empty_table_lists_every_column_with_zero_rows(tmp_path):
     path = write_table(tmp_path / "e.duckdb", "e", {"a": np.zeros(0), "b": np.zeros(0)})
     M.install_into(path, M.generic_macros())
-    got = query(path, "SELECT column_name, rows, usable, mean FROM tillite_profile('e', ['b', 'a'])")
+    got = fetch_rows(path, "SELECT column_name, rows, usable, mean FROM tillite_profile('e', ['b', 'a'])")
     assert got == [("b", 0, 0, None), ("a", 0, 0, None)]
 
 
@@ -163,7 +146,7 @@ def test_profile_of_an_empty_table_lists_every_column_with_zero_rows(tmp_path):
 @pytest.mark.parametrize("width", [0.5, 0.3])
 def test_cells_equal_the_python_cell_pass_and_numpy_on_the_same_grid(tmp_path, width):
     path, x = blob_table(tmp_path)
-    query(path, 'INSERT INTO pts VALUES (NULL, 1.0, 2.0), (1.0, \'nan\'::DOUBLE, 2.0), (1.0, 2.0, \'inf\'::DOUBLE)')
+    fetch_rows(path, 'INSERT INTO pts VALUES (NULL, 1.0, 2.0), (1.0, \'nan\'::DOUBLE, 2.0), (1.0, 2.0, \'inf\'::DOUBLE)')
     prof = profile_of(path, "pts", COLS)
     mean, sd = np.asarray(prof["mean"]), np.asarray(prof["sd"])
     got = cells_of(path, "pts", COLS, width)
@@ -203,7 +186,7 @@ def test_cell_centroids_in_original_units_equal_numpy_means_of_the_cell_rows(tmp
     prof = profile_of(path, "pts", COLS)
     mean, sd = np.asarray(prof["mean"]), np.asarray(prof["sd"])
     keys = np.floor((x - mean) * ((1.0 / sd) / 0.5)).astype(np.int64)
-    got = query(path, f"SELECT cell, centroid FROM tillite_cells('pts', {sql_list(COLS)}, 0.5) WHERE cell IS NOT NULL")
+    got = fetch_rows(path, f"SELECT cell, centroid FROM tillite_cells('pts', {sql_list(COLS)}, 0.5) WHERE cell IS NOT NULL")
     for cell, centroid in got[:200]:
         rows = x[(keys == np.array(cell)).all(axis=1)]
         # reference: numpy mean of the rows in the cell
@@ -218,7 +201,7 @@ def test_segments_sse_is_within_one_percent_of_python_kmeans_on_the_same_cells(t
     path, x = blob_table(tmp_path, rows=15_000, seed=11)
     prof = profile_of(path, "pts", COLS)
     mean, sd = np.asarray(prof["mean"]), np.asarray(prof["sd"])
-    got = query_numpy(path, f"SELECT * FROM tillite_segments('pts', {sql_list(COLS)}, 5)")
+    got = fetch_columns(path, f"SELECT * FROM tillite_segments('pts', {sql_list(COLS)}, 5)")
     assert list(got["segment"]) == [0, 1, 2, 3, 4]
     assert int(got["size"].sum()) == len(x) and all(got["converged"])
     # reference: the Python path's second phase (segmenters.kmeans, 10 k-means++ restarts) on the same cells
@@ -236,7 +219,7 @@ def test_segments_of_data_shifted_by_1e9_equal_those_of_the_unshifted_data(tmp_p
     for name, shift in (("near", 0.0), ("far", 1e9)):
         path = write_table(tmp_path / f"{name}.duckdb", "t", columns_of(x + shift, ["p", "q"]))
         M.install_into(path, M.generic_macros())
-        results.append(query_numpy(path, "SELECT size, sse, centroid FROM tillite_segments('t', ['p', 'q'], 4)"))
+        results.append(fetch_columns(path, "SELECT size, sse, centroid FROM tillite_segments('t', ['p', 'q'], 4)"))
     near, far = results
     # reference: the same macro on the unshifted rows (nothing may cancel when values sit near 1e9)
     np.testing.assert_array_equal(near["size"], far["size"])
@@ -246,8 +229,8 @@ def test_segments_of_data_shifted_by_1e9_equal_those_of_the_unshifted_data(tmp_p
 
 def test_segments_iteration_cap_is_reported_and_zero_iterations_keep_the_seeds(tmp_path):
     path, _ = blob_table(tmp_path, rows=4_000)
-    full = query(path, f"SELECT sum(sse), any_value(iterations), bool_and(converged) FROM tillite_segments('pts', {sql_list(COLS)}, 4)")[0]
-    none = query(path, f"SELECT sum(sse), any_value(iterations), bool_and(converged) FROM tillite_segments('pts', {sql_list(COLS)}, 4, iterations := 0)")[0]
+    full = fetch_rows(path, f"SELECT sum(sse), any_value(iterations), bool_and(converged) FROM tillite_segments('pts', {sql_list(COLS)}, 4)")[0]
+    none = fetch_rows(path, f"SELECT sum(sse), any_value(iterations), bool_and(converged) FROM tillite_segments('pts', {sql_list(COLS)}, 4, iterations := 0)")[0]
     assert none[1] == 0 and none[2] is False
     assert full[2] is True and 1 <= full[1] <= M.DEFAULT_ITERATIONS
     # reference: Lloyd iterations never raise the SSE of the seeding (k-means' defining property)
@@ -258,11 +241,11 @@ def test_segments_with_k_above_the_cell_count_or_below_one_say_so(tmp_path):
     path = write_table(tmp_path / "few.duckdb", "few", {"a": np.array([0.0, 0.0, 5.0, 9.0]), "b": np.array([1.0, 1.0, 2.0, 3.0])})
     M.install_into(path, M.generic_macros())
     with pytest.raises(duckdb.Error, match="k=5 is larger than the 3 occupied cells of few"):
-        query(path, "SELECT * FROM tillite_segments('few', ['a', 'b'], 5)")
+        fetch_rows(path, "SELECT * FROM tillite_segments('few', ['a', 'b'], 5)")
     with pytest.raises(duckdb.Error, match="k must be at least 1"):
-        query(path, "SELECT * FROM tillite_segments('few', ['a', 'b'], 0)")
+        fetch_rows(path, "SELECT * FROM tillite_segments('few', ['a', 'b'], 0)")
     with pytest.raises(duckdb.Error, match="width must be a positive number"):
-        query(path, "SELECT * FROM tillite_cells('few', ['a', 'b'], -1)")
+        fetch_rows(path, "SELECT * FROM tillite_cells('few', ['a', 'b'], -1)")
 
 
 def test_bad_column_lists_give_messages_naming_the_columns(tmp_path):
@@ -270,11 +253,11 @@ def test_bad_column_lists_give_messages_naming_the_columns(tmp_path):
     path = write_table(tmp_path / "bad.duckdb", "t", data)
     M.install_into(path, M.generic_macros())
     with pytest.raises(duckdb.Error, match="column\\(s\\) name of t are not numbers"):
-        query(path, "SELECT * FROM tillite_profile('t', ['a', 'name'])")
+        fetch_rows(path, "SELECT * FROM tillite_profile('t', ['a', 'name'])")
     with pytest.raises(duckdb.Error, match="given more than once"):
-        query(path, "SELECT * FROM tillite_profile('t', ['a', 'unit price', 'A'])")
+        fetch_rows(path, "SELECT * FROM tillite_profile('t', ['a', 'unit price', 'A'])")
     with pytest.raises(duckdb.Error, match='"nope"'):
-        query(path, "SELECT * FROM tillite_profile('t', ['a', 'nope'])")
+        fetch_rows(path, "SELECT * FROM tillite_profile('t', ['a', 'nope'])")
 
 
 # ----------------------------------------------------------------------------- scoring macros
@@ -284,7 +267,7 @@ def test_scoring_macros_equal_tillite_label_on_every_demo_row(tmp_path):
     path, model = demo_labelled(tmp_path)
     M.install_into(path, M.scoring_macros(model, "water"))
     args = ", ".join(DEMO_COLS)
-    got = query_numpy(path, f"SELECT segment, distance, water_segment({args}) AS s, water_distance({args}) AS d FROM labelled")
+    got = fetch_columns(path, f"SELECT segment, distance, water_segment({args}) AS s, water_distance({args}) AS d FROM labelled")
     assert len(got["segment"]) == 20_000
     label_null, macro_null = np.ma.getmaskarray(got["segment"]), np.ma.getmaskarray(got["s"])
     # reference: the Python path's label view (pipeline.label), NULLs included
@@ -301,7 +284,7 @@ def test_scoring_macros_take_quoted_column_names_and_give_null_for_null_nan_inf(
     x, _ = make_blobs(n_samples=3_000, centers=3, n_features=2, random_state=2)
     data = {"unit price": x[:, 0], "select": x[:, 1] * 10.0, "id": np.arange(len(x))}
     path = write_table(tmp_path / "q.duckdb", "shop", data)
-    query(path, "INSERT INTO shop VALUES (NULL, 1.0, -1), ('nan'::DOUBLE, 1.0, -2), (1.0, '-inf'::DOUBLE, -3)")
+    fetch_rows(path, "INSERT INTO shop VALUES (NULL, 1.0, -1), ('nan'::DOUBLE, 1.0, -2), (1.0, '-inf'::DOUBLE, -3)")
     engine = DuckDBEngine(str(path))
     try:
         model = segment(engine, Source.of_table("shop"), ["unit price", "select"], Settings(k=3))
@@ -309,7 +292,7 @@ def test_scoring_macros_take_quoted_column_names_and_give_null_for_null_nan_inf(
     finally:
         engine.close()
     M.install_into(path, M.scoring_macros(model, "shop"))
-    got = query_numpy(
+    got = fetch_columns(
         path,
         'SELECT id, "unit price" AS p, "select" AS q, segment, shop_segment("unit price", "select") AS s,'
         ' shop_distance("unit price", "select") AS d FROM shop_labels ORDER BY id',
@@ -329,7 +312,7 @@ def test_model_names_become_quoted_identifiers_and_unprintable_names_are_refused
     path, model = demo_labelled(tmp_path)
     M.install_into(path, M.scoring_macros(model, 'odd "name'))
     args = ", ".join(DEMO_COLS)
-    got = query(path, f'SELECT count(*) FROM labelled WHERE "odd ""name_segment"({args}) IS NOT DISTINCT FROM segment')
+    got = fetch_rows(path, f'SELECT count(*) FROM labelled WHERE "odd ""name_segment"({args}) IS NOT DISTINCT FROM segment')
     # reference: the Python path's label view
     assert got == [(20_000,)]
     for bad in ["", " water", "a\nb"]:
@@ -343,15 +326,15 @@ def test_model_names_become_quoted_identifiers_and_unprintable_names_are_refused
 def test_install_twice_replaces_cleanly_and_records_each_macro_once(tmp_path):
     path, _ = blob_table(tmp_path, rows=500)
     M.install_into(path, M.generic_macros())
-    rows = query(path, "SELECT macro_name, macro_type, model_name FROM tillite_macro_registry ORDER BY macro_name")
+    rows = fetch_rows(path, "SELECT macro_name, macro_type, model_name FROM tillite_macro_registry ORDER BY macro_name")
     assert rows == sorted((name, "table", None) for name in M.GENERIC_NAMES.values())
-    assert query(path, "SELECT count(*) FROM tillite_profile('pts', ['a'])") == [(1,)]
+    assert fetch_rows(path, "SELECT count(*) FROM tillite_profile('pts', ['a'])") == [(1,)]
 
 
 def test_remove_drops_what_tillite_installed_and_keeps_a_user_macro_named_tillite_x(tmp_path):
     path, model = demo_labelled(tmp_path)
-    query(path, "CREATE MACRO tillite_x(a) AS a + 1")
-    query(path, "CREATE MACRO water_helper(a) AS a * 2")
+    fetch_rows(path, "CREATE MACRO tillite_x(a) AS a + 1")
+    fetch_rows(path, "CREATE MACRO water_helper(a) AS a * 2")
     M.install_into(path, M.generic_macros())
     M.install_into(path, M.scoring_macros(model, "water"))
     assert {"water_segment", "water_distance", "tillite_cells"} <= user_macros(path)
@@ -360,8 +343,8 @@ def test_remove_drops_what_tillite_installed_and_keeps_a_user_macro_named_tillit
     assert user_macros(path) == set(M.GENERIC_NAMES.values()) | {"tillite_x", "water_helper"}
     assert sorted(M.remove_from(path)) == sorted(M.GENERIC_NAMES.values())
     assert user_macros(path) == {"tillite_x", "water_helper"}
-    assert query(path, "SELECT count(*) FROM information_schema.tables WHERE table_name = 'tillite_macro_registry'") == [(0,)]
-    assert query(path, "SELECT tillite_x(1), water_helper(2)") == [(2, 4)]
+    assert fetch_rows(path, "SELECT count(*) FROM information_schema.tables WHERE table_name = 'tillite_macro_registry'") == [(0,)]
+    assert fetch_rows(path, "SELECT tillite_x(1), water_helper(2)") == [(2, 4)]
     assert M.remove_from(path) == []
 
 
@@ -374,7 +357,7 @@ def test_install_into_a_missing_database_names_it_and_creates_nothing(tmp_path):
 
 def test_install_into_a_read_only_database_names_it_and_leaves_it_unchanged(tmp_path):
     path, _ = blob_table(tmp_path, rows=200)
-    query(path, "SELECT 1")
+    fetch_rows(path, "SELECT 1")
     before = path.read_bytes()
     path.chmod(stat.S_IRUSR | stat.S_IRGRP | stat.S_IROTH)
     try:
@@ -399,7 +382,7 @@ def test_templates_take_only_sqlglot_rendered_values():
 
 
 def test_cli_show_prints_sql_that_a_fresh_connection_runs(tmp_path):
-    result = run_cli("show")
+    result = run_macros_cli("show")
     assert result.exit_code == 0, result.output
     con = duckdb.connect()
     try:
@@ -415,33 +398,33 @@ def test_cli_install_show_and_remove_a_model_and_say_what_they_did(tmp_path):
     path, model = demo_labelled(tmp_path)
     model_file = tmp_path / "model.json"
     model.write(model_file)
-    shown = run_cli("show", "--model", model_file, "--name", "water")
+    shown = run_macros_cli("show", "--model", model_file, "--name", "water")
     assert shown.exit_code == 0 and 'CREATE OR REPLACE MACRO "water_segment"("litres"' in shown.output
     assert "water_distance" in shown.output
 
-    done = run_cli("install", path, "--model", model_file, "--name", "water")
+    done = run_macros_cli("install", path, "--model", model_file, "--name", "water")
     assert done.exit_code == 0, done.output
     assert f"installed into {path}: water_segment, water_distance" in done.output
     assert '"water_segment"("litres", "night_share"' in done.output
-    assert run_cli("install", path).exit_code == 0
+    assert run_macros_cli("install", path).exit_code == 0
     args = ", ".join(DEMO_COLS)
     # reference: the Python path's label view
-    assert query(path, f"SELECT count(*) FROM labelled WHERE water_segment({args}) IS NOT DISTINCT FROM segment") == [(20_000,)]
+    assert fetch_rows(path, f"SELECT count(*) FROM labelled WHERE water_segment({args}) IS NOT DISTINCT FROM segment") == [(20_000,)]
 
-    gone = run_cli("remove", path, "--name", "water")
+    gone = run_macros_cli("remove", path, "--name", "water")
     assert gone.exit_code == 0 and "removed from" in gone.output and "water_segment" in gone.output
     assert "tillite_profile" in user_macros(path) and "water_segment" not in user_macros(path)
-    again = run_cli("remove", path, "--name", "water")
+    again = run_macros_cli("remove", path, "--name", "water")
     assert again.exit_code == 0 and "nothing removed" in again.output
 
 
 def test_cli_errors_are_one_line_messages_naming_the_path(tmp_path):
     missing = tmp_path / "missing.duckdb"
-    result = run_cli("install", missing)
+    result = run_macros_cli("install", missing)
     assert result.exit_code == 1 and f"database {missing} does not exist" in result.output
     assert "Traceback" not in result.output and not missing.exists()
-    assert run_cli("show", "--name", "water").exit_code == 2
-    assert run_cli("show", "--model", tmp_path / "none.json", "--name", "w").exit_code == 1
+    assert run_macros_cli("show", "--name", "water").exit_code == 2
+    assert run_macros_cli("show", "--model", tmp_path / "none.json", "--name", "w").exit_code == 1
 
 
 # ----------------------------------------------------------------------------- a real console

@@ -42,8 +42,8 @@ def test_density_segments_recover_non_convex_shapes_where_kmeans_cannot(tmp_path
     engine.close()
 
 
-def test_ward_method_ends_with_refinement_and_recovers_blobs(tmp_path, blobs):
-    x, y = blobs
+def test_ward_method_ends_with_refinement_and_recovers_blobs(tmp_path, blobs_30k_4d_5c):
+    x, y = blobs_30k_4d_5c
     data = columns_of(x, ["a", "b", "c", "d"])
     data["truth"] = y
     engine = DuckDBEngine(str(write_table(tmp_path / "b.duckdb", "t", data)))
@@ -86,8 +86,8 @@ def test_k_range_is_chosen_on_cfs_and_recorded(tmp_path):
     engine.close()
 
 
-def test_cli_method_options_reach_the_model_and_show_prints_the_cut(tmp_path, blobs):
-    x, _ = blobs
+def test_cli_method_options_reach_the_model_and_show_prints_the_cut(tmp_path, blobs_30k_4d_5c):
+    x, _ = blobs_30k_4d_5c
     db = write_table(tmp_path / "c.duckdb", "t", columns_of(x, ["a", "b", "c", "d"]))
     out = tmp_path / "m.json"
     runner = CliRunner()
@@ -157,8 +157,8 @@ def test_k_auto_on_one_gaussian_blob_keeps_one_segment_and_says_why(tmp_path):
 
 
 @pytest.mark.parametrize("k", ["10000", "2..100000"])
-def test_k_far_above_the_cells_is_one_error_line_naming_k(tmp_path, blobs, k):
-    x, _ = blobs
+def test_k_far_above_the_cells_is_one_error_line_naming_k(tmp_path, blobs_30k_4d_5c, k):
+    x, _ = blobs_30k_4d_5c
     db = write_table(tmp_path / "b.duckdb", "t", columns_of(x, ["a", "b", "c", "d"]))
     res = CliRunner().invoke(main, ["segment", str(db), "-t", "t", "-c", "a,b,c,d", "--k", k, "-q"])
     assert res.exit_code == 1 and "Traceback" not in res.output
@@ -166,11 +166,11 @@ def test_k_far_above_the_cells_is_one_error_line_naming_k(tmp_path, blobs, k):
     assert len(lines) == 1 and lines[0].startswith("Error:") and "--k" in lines[0] and "at most" in lines[0]
 
 
-def test_ward_on_many_cells_condenses_first_without_outliers_and_show_says_so(tmp_path, blobs, monkeypatch):
-    import tillite.pipeline as P
+def test_ward_on_many_cells_condenses_first_without_outliers_and_show_says_so(tmp_path, blobs_30k_4d_5c, monkeypatch):
+    import tillite.stages as P
 
     monkeypatch.setattr(P, "WARD_ENTRIES", 400)
-    x, y = blobs
+    x, y = blobs_30k_4d_5c
     data = columns_of(x, ["a", "b", "c", "d"])
     data["truth"] = y
     engine = DuckDBEngine(str(write_table(tmp_path / "w.duckdb", "t", data)))

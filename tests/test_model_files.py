@@ -13,21 +13,15 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from click.testing import CliRunner
 from sklearn.datasets import make_blobs
 
-from tillite.cli import main
 from tillite.model import Model, default_model_path
 
-from conftest import columns_of, write_table
-
-
-def run(*args: object):
-    return CliRunner().invoke(main, [str(a) for a in args])
+from conftest import columns_of, run_cli, write_table
 
 
 @pytest.fixture
-def db(tmp_path):
+def two_tables_db(tmp_path):
     x, _ = make_blobs(n_samples=2_000, centers=3, n_features=3, random_state=5)
     path = write_table(tmp_path / "pts.duckdb", "meter_days", columns_of(x, ["a", "b", "c"]))
     write_table(path, "other_table", columns_of(x, ["a", "b", "c"]))
@@ -56,39 +50,39 @@ def test_default_model_file_is_named_after_the_source(source, table, expected):
     assert default_model_path(source, table) == expected
 
 
-def test_segment_without_out_writes_source_model_json_and_says_where(db, tmp_path, monkeypatch):
+def test_segment_without_out_writes_source_model_json_and_says_where(two_tables_db, tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
-    result = run("segment", db, "-t", "meter_days", "-c", "a,b,c", "--k", "3")
+    result = run_cli("segment", two_tables_db, "-t", "meter_days", "-c", "a,b,c", "--k", "3")
     assert result.exit_code == 0, result.output
     assert (tmp_path / "meter_days.model.json").exists() and not (tmp_path / "model.json").exists()
     assert sum("written to meter_days.model.json" in ln for ln in result.stderr.splitlines()) == 1, result.stderr
     assert json.loads((tmp_path / "meter_days.model.json").read_text())["source"] == "meter_days"
 
 
-def test_replacing_the_model_of_another_source_or_columns_is_said_in_one_warning(db, tmp_path):
+def test_replacing_the_model_of_another_source_or_columns_is_said_in_one_warning(two_tables_db, tmp_path):
     out = tmp_path / "shared.json"
-    assert run("segment", db, "-t", "meter_days", "-c", "a,b,c", "--k", "3", "-o", out, "-q").exit_code == 0
-    same = run("segment", db, "-t", "meter_days", "-c", "a,b,c", "--k", "3", "-o", out, "-q")
+    assert run_cli("segment", two_tables_db, "-t", "meter_days", "-c", "a,b,c", "--k", "3", "-o", out, "-q").exit_code == 0
+    same = run_cli("segment", two_tables_db, "-t", "meter_days", "-c", "a,b,c", "--k", "3", "-o", out, "-q")
     assert same.exit_code == 0 and same.stderr == ""  # the same source and columns again: no warning
     for args in (["-t", "other_table", "-c", "a,b,c"], ["-t", "other_table", "-c", "a,b"]):
-        result = run("segment", db, *args, "--k", "3", "-o", out, "-q")
+        result = run_cli("segment", two_tables_db, *args, "--k", "3", "-o", out, "-q")
         assert result.exit_code == 0, result.output
         warned = [ln for ln in result.stderr.splitlines() if ln.startswith("warning:")]
         assert len(warned) == 1 and str(out) in warned[0] and "another source or column list" in warned[0], result.stderr
     assert json.loads(out.read_text())["columns"] == ["a", "b"]
 
 
-def test_replacing_a_file_that_is_not_a_model_is_said(db, tmp_path):
+def test_replacing_a_file_that_is_not_a_model_is_said(two_tables_db, tmp_path):
     out = tmp_path / "notes.json"
     out.write_text("my notes\n")
-    result = run("segment", db, "-t", "meter_days", "-c", "a,b,c", "--k", "3", "-o", out, "-q")
+    result = run_cli("segment", two_tables_db, "-t", "meter_days", "-c", "a,b,c", "--k", "3", "-o", out, "-q")
     assert result.exit_code == 0
     assert "not a tillite model file" in result.stderr
 
 
-def test_model_files_get_the_usual_mode_not_0600(db, tmp_path, umask_027):
+def test_model_files_get_the_usual_mode_not_0600(two_tables_db, tmp_path, umask_027):
     out = tmp_path / "m.json"
-    assert run("segment", db, "-t", "meter_days", "-c", "a,b,c", "--k", "3", "-o", out, "-q").exit_code == 0
+    assert run_cli("segment", two_tables_db, "-t", "meter_days", "-c", "a,b,c", "--k", "3", "-o", out, "-q").exit_code == 0
     # reference: open(2) gives a new file 0666 & ~umask
     assert mode(out) == 0o666 & ~umask_027 == 0o640
     os.umask(0o002)
@@ -102,8 +96,8 @@ def test_label_files_get_the_usual_mode(tmp_path, umask_027):
     data = tmp_path / "pts.csv"
     np.savetxt(data, x, delimiter=",", header="a,b", comments="", fmt="%.17g")
     model = tmp_path / "pts.model.json"
-    assert run("segment", data, "-c", "a,b", "--k", "2", "-o", model, "-q").exit_code == 0
+    assert run_cli("segment", data, "-c", "a,b", "--k", "2", "-o", model, "-q").exit_code == 0
     out = tmp_path / "labelled.parquet"
-    assert run("label", data, "-m", model, "--into", out, "-q").exit_code == 0
+    assert run_cli("label", data, "-m", model, "--into", out, "-q").exit_code == 0
     # reference: open(2) gives a new file 0666 & ~umask
     assert mode(out) == 0o640

@@ -13,57 +13,33 @@ from pathlib import Path
 import duckdb
 import numpy as np
 import pytest
-from click.testing import CliRunner
 from sklearn.datasets import make_blobs
 
-from tillite.cli import main
 from tillite.demo import DEMO_COLUMNS, build_demo_database
 from tillite.pipeline import OWNED_MARK
 
-from conftest import columns_of, write_table
+from conftest import assert_one_error_line, columns_of, fetch_rows, run_cli, write_table
 
 NAMES = ["a", "b"]
 
 
-def run(*args: object):
-    return CliRunner().invoke(main, [str(a) for a in args])
-
-
-def sql(path: Path, text: str, read_only: bool = False) -> list[tuple]:
-    con = duckdb.connect(str(path), read_only=read_only)
-    try:
-        return con.execute(text).fetchall()
-    finally:
-        con.close()
-
-
 def catalog_entry(path: Path, name: str) -> list[tuple]:
     """DuckDB's own record of a relation: kind, definition (views) and comment."""
-    return sql(path, f"""
+    return fetch_rows(path, f"""
         SELECT 'view', sql, comment FROM duckdb_views() WHERE view_name = '{name}'
         UNION ALL SELECT 'table', sql, comment FROM duckdb_tables() WHERE table_name = '{name}'""", read_only=True)
 
 
 def contents(path: Path, name: str) -> list[tuple]:
-    return sql(path, f'SELECT count(*), sum(hash(COLUMNS(*))) FROM "{name}"', read_only=True)
-
-
-def assert_one_error_line(result, *needles: str) -> str:
-    assert result.exit_code == 1, result.output
-    assert "Traceback" not in result.output
-    lines = result.stderr.strip().splitlines()
-    assert len(lines) == 1 and lines[0].startswith("Error:"), result.stderr
-    for needle in needles:
-        assert needle in lines[0], (needle, lines[0])
-    return lines[0]
+    return fetch_rows(path, f'SELECT count(*), sum(hash(COLUMNS(*))) FROM "{name}"', read_only=True)
 
 
 @pytest.fixture
-def db(tmp_path):
+def points_and_model(tmp_path):
     x, _ = make_blobs(n_samples=3_000, centers=3, n_features=2, random_state=4)
     path = write_table(tmp_path / "pts.duckdb", "points", columns_of(x, NAMES))
     model = tmp_path / "pts.model.json"
-    assert run("segment", path, "-t", "points", "-c", "a,b", "--k", "3", "-o", model, "-q").exit_code == 0
+    assert run_cli("segment", path, "-t", "points", "-c", "a,b", "--k", "3", "-o", model, "-q").exit_code == 0
     return path, model
 
 
@@ -71,43 +47,43 @@ def db(tmp_path):
 
 
 @pytest.mark.parametrize("materialize", [[], ["--materialize"]])
-def test_label_refuses_a_users_table_of_that_name_without_replace(db, materialize):
-    path, model = db
-    sql(path, 'CREATE TABLE "mine" AS SELECT 42 AS answer')
+def test_label_refuses_a_users_table_of_that_name_without_replace(points_and_model, materialize):
+    path, model = points_and_model
+    fetch_rows(path, 'CREATE TABLE "mine" AS SELECT 42 AS answer')
     before = catalog_entry(path, "mine"), contents(path, "mine")
-    result = run("label", path, "-t", "points", "-m", model, "--into", "mine", *materialize)
+    result = run_cli("label", path, "-t", "points", "-m", model, "--into", "mine", *materialize)
     assert_one_error_line(result, "table named mine", "not made by tillite", "--replace")
     assert (catalog_entry(path, "mine"), contents(path, "mine")) == before
 
 
 @pytest.mark.parametrize("materialize", [[], ["--materialize"]])
-def test_label_refuses_a_users_view_of_that_name_without_replace(db, materialize):
-    path, model = db
-    sql(path, 'CREATE VIEW "mine" AS SELECT 42 AS answer')
+def test_label_refuses_a_users_view_of_that_name_without_replace(points_and_model, materialize):
+    path, model = points_and_model
+    fetch_rows(path, 'CREATE VIEW "mine" AS SELECT 42 AS answer')
     before = catalog_entry(path, "mine")
-    result = run("label", path, "-t", "points", "-m", model, "--into", "mine", *materialize)
+    result = run_cli("label", path, "-t", "points", "-m", model, "--into", "mine", *materialize)
     assert_one_error_line(result, "view named mine", "not made by tillite", "--replace")
     assert catalog_entry(path, "mine") == before  # still the user's view, same definition, no table
 
 
-def test_replace_takes_over_a_users_view_and_marks_it_as_tillites(db):
-    path, model = db
-    sql(path, 'CREATE VIEW "mine" AS SELECT 42 AS answer')
-    result = run("label", path, "-t", "points", "-m", model, "--into", "mine", "--materialize", "--replace", "-q")
+def test_replace_takes_over_a_users_view_and_marks_it_as_tillites(points_and_model):
+    path, model = points_and_model
+    fetch_rows(path, 'CREATE VIEW "mine" AS SELECT 42 AS answer')
+    result = run_cli("label", path, "-t", "points", "-m", model, "--into", "mine", "--materialize", "--replace", "-q")
     assert result.exit_code == 0, result.output
     (kind, _, comment), = catalog_entry(path, "mine")
     assert kind == "table" and comment.startswith(OWNED_MARK)
 
 
-def test_a_view_tillite_made_is_re_created_without_replace(db):
-    path, model = db
+def test_a_view_tillite_made_is_re_created_without_replace(points_and_model):
+    path, model = points_and_model
     for _ in range(2):
-        result = run("label", path, "-t", "points", "-m", model, "--into", "labelled", "-q")
+        result = run_cli("label", path, "-t", "points", "-m", model, "--into", "labelled", "-q")
         assert result.exit_code == 0, result.output
     (kind, _, comment), = catalog_entry(path, "labelled")
     assert kind == "view" and comment.startswith(OWNED_MARK)
     # a view tillite made may also become a table without --replace
-    result = run("label", path, "-t", "points", "-m", model, "--into", "labelled", "--materialize", "-q")
+    result = run_cli("label", path, "-t", "points", "-m", model, "--into", "labelled", "--materialize", "-q")
     assert result.exit_code == 0, result.output
     assert catalog_entry(path, "labelled")[0][0] == "table"
 
@@ -116,36 +92,36 @@ def test_a_view_tillite_made_is_re_created_without_replace(db):
 
 
 @pytest.fixture
-def store_db(tmp_path):
+def demo_store_and_model(tmp_path):
     path = tmp_path / "water.duckdb"
     build_demo_database(path, rows=12_000, days=6, seed=3)
     cols = ",".join(DEMO_COLUMNS)
-    assert run("store", "build", path, "-t", "meter_days", "-c", cols, "--partition-by", "day", "--k", "4", "-q").exit_code == 0
-    assert run("label", path, "--store", "meter_days", "--into", "water_labels", "-q").exit_code == 0
+    assert run_cli("store", "build", path, "-t", "meter_days", "-c", cols, "--partition-by", "day", "--k", "4", "-q").exit_code == 0
+    assert run_cli("label", path, "--store", "meter_days", "--into", "water_labels", "-q").exit_code == 0
     model = tmp_path / "water.model.json"
-    assert run("segment", path, "-t", "meter_days", "-c", cols, "--k", "4", "-o", model, "-q").exit_code == 0
+    assert run_cli("segment", path, "-t", "meter_days", "-c", cols, "--k", "4", "-o", model, "-q").exit_code == 0
     return path, model
 
 
-def test_materializing_over_a_stores_label_view_is_refused_naming_the_store(store_db):
-    path, model = store_db
+def test_materializing_over_a_stores_label_view_is_refused_naming_the_store(demo_store_and_model):
+    path, model = demo_store_and_model
     before = catalog_entry(path, "water_labels")
-    result = run("label", path, "-t", "meter_days", "-m", model, "--into", "water_labels", "--materialize")
+    result = run_cli("label", path, "-t", "meter_days", "-m", model, "--into", "water_labels", "--materialize")
     assert_one_error_line(result, "water_labels", "store meter_days", "--store meter_days", "--replace")
     assert catalog_entry(path, "water_labels") == before
     # the store itself may turn its own labels into a table, and its refresh keeps them a table
-    assert run("label", path, "--store", "meter_days", "--into", "water_labels", "--materialize", "-q").exit_code == 0
-    result = run("refresh", path, "--store", "meter_days", "--force", "-q")
+    assert run_cli("label", path, "--store", "meter_days", "--into", "water_labels", "--materialize", "-q").exit_code == 0
+    result = run_cli("refresh", path, "--store", "meter_days", "--force", "-q")
     assert result.exit_code == 0, result.output
     assert catalog_entry(path, "water_labels")[0][0] == "table"
 
 
-def test_refresh_warns_once_and_skips_a_label_taken_over_with_replace(store_db):
-    path, model = store_db
-    result = run("label", path, "-t", "meter_days", "-m", model, "--into", "water_labels", "--materialize", "--replace", "-q")
+def test_refresh_warns_once_and_skips_a_label_taken_over_with_replace(demo_store_and_model):
+    path, model = demo_store_and_model
+    result = run_cli("label", path, "-t", "meter_days", "-m", model, "--into", "water_labels", "--materialize", "--replace", "-q")
     assert result.exit_code == 0, result.output
     before = catalog_entry(path, "water_labels"), contents(path, "water_labels")
-    result = run("refresh", path, "--store", "meter_days", "--force", "-q")
+    result = run_cli("refresh", path, "--store", "meter_days", "--force", "-q")
     assert result.exit_code == 0, result.output
     warned = [ln for ln in result.stderr.splitlines() if ln.startswith("warning:")]
     assert len(warned) == 1 and "water_labels" in warned[0] and "not re-created" in warned[0], result.stderr
@@ -154,21 +130,21 @@ def test_refresh_warns_once_and_skips_a_label_taken_over_with_replace(store_db):
 
 @pytest.mark.parametrize("user_object", ['CREATE VIEW "water_labels" AS SELECT 1 AS one',
                                          'CREATE TABLE "water_labels" AS SELECT 1 AS one'])
-def test_refresh_never_drops_a_users_object_in_place_of_a_registered_label(store_db, user_object):
-    path, _ = store_db
-    sql(path, 'DROP VIEW "water_labels"')
-    sql(path, user_object)
+def test_refresh_never_drops_a_users_object_in_place_of_a_registered_label(demo_store_and_model, user_object):
+    path, _ = demo_store_and_model
+    fetch_rows(path, 'DROP VIEW "water_labels"')
+    fetch_rows(path, user_object)
     before = catalog_entry(path, "water_labels"), contents(path, "water_labels")
-    result = run("refresh", path, "--store", "meter_days", "--force", "-q")
+    result = run_cli("refresh", path, "--store", "meter_days", "--force", "-q")
     assert result.exit_code == 0, result.output
     assert sum(ln.startswith("warning:") and "water_labels" in ln for ln in result.stderr.splitlines()) == 1, result.stderr
     assert (catalog_entry(path, "water_labels"), contents(path, "water_labels")) == before
 
 
-def test_refresh_re_creates_a_registered_label_that_was_dropped(store_db):
-    path, _ = store_db
-    sql(path, 'DROP VIEW "water_labels"')
-    result = run("refresh", path, "--store", "meter_days", "--force", "-q")
+def test_refresh_re_creates_a_registered_label_that_was_dropped(demo_store_and_model):
+    path, _ = demo_store_and_model
+    fetch_rows(path, 'DROP VIEW "water_labels"')
+    result = run_cli("refresh", path, "--store", "meter_days", "--force", "-q")
     assert result.exit_code == 0 and "warning" not in result.stderr, result.output
     assert catalog_entry(path, "water_labels")[0][0] == "view"
 
@@ -178,42 +154,42 @@ def test_refresh_re_creates_a_registered_label_that_was_dropped(store_db):
 
 def macro_text(path: Path, name: str) -> list[tuple]:
     """DuckDB's own record of a macro: its definition and comment."""
-    return sql(path, f"SELECT macro_definition, comment FROM duckdb_functions() WHERE function_name = '{name}'", read_only=True)
+    return fetch_rows(path, f"SELECT macro_definition, comment FROM duckdb_functions() WHERE function_name = '{name}'", read_only=True)
 
 
-def test_macros_install_refuses_a_users_macro_of_that_name_and_remove_leaves_it(db):
-    path, model = db
-    sql(path, 'CREATE MACRO "water_segment"(a, b) AS a + b')
+def test_macros_install_refuses_a_users_macro_of_that_name_and_remove_leaves_it(points_and_model):
+    path, model = points_and_model
+    fetch_rows(path, 'CREATE MACRO "water_segment"(a, b) AS a + b')
     before = macro_text(path, "water_segment")
-    result = run("macros", "install", path, "--model", model, "--name", "water")
+    result = run_cli("macros", "install", path, "--model", model, "--name", "water")
     assert_one_error_line(result, "water_segment", "not installed by tillite", "--replace")
     assert macro_text(path, "water_segment") == before
     assert macro_text(path, "water_distance") == []  # all or nothing: the other macro is not installed either
-    result = run("macros", "remove", path)
+    result = run_cli("macros", "remove", path)
     assert result.exit_code == 0, result.output
     assert macro_text(path, "water_segment") == before
 
 
-def test_macros_remove_skips_a_macro_a_user_put_in_place_of_ours(db):
-    path, model = db
-    assert run("macros", "install", path, "--model", model, "--name", "water").exit_code == 0
-    sql(path, 'CREATE OR REPLACE MACRO "water_segment"(a, b) AS a * b')
+def test_macros_remove_skips_a_macro_a_user_put_in_place_of_ours(points_and_model):
+    path, model = points_and_model
+    assert run_cli("macros", "install", path, "--model", model, "--name", "water").exit_code == 0
+    fetch_rows(path, 'CREATE OR REPLACE MACRO "water_segment"(a, b) AS a * b')
     before = macro_text(path, "water_segment")
-    result = run("macros", "remove", path, "--name", "water")
+    result = run_cli("macros", "remove", path, "--name", "water")
     assert result.exit_code == 0, result.output
     assert macro_text(path, "water_segment") == before
     assert macro_text(path, "water_distance") == []
     assert sum(ln.startswith("warning:") and "water_segment" in ln for ln in result.stderr.splitlines()) == 1, result.stderr
 
 
-def test_macros_install_replace_takes_over_a_users_macro_and_remove_then_drops_it(db):
-    path, model = db
-    sql(path, 'CREATE MACRO "water_segment"(a, b) AS a + b')
-    result = run("macros", "install", path, "--model", model, "--name", "water", "--replace")
+def test_macros_install_replace_takes_over_a_users_macro_and_remove_then_drops_it(points_and_model):
+    path, model = points_and_model
+    fetch_rows(path, 'CREATE MACRO "water_segment"(a, b) AS a + b')
+    result = run_cli("macros", "install", path, "--model", model, "--name", "water", "--replace")
     assert result.exit_code == 0, result.output
     x = np.array([[0.0, 0.0]])
-    assert sql(path, f"SELECT water_segment({x[0, 0]}, {x[0, 1]})")[0][0] in (0, 1, 2)
-    assert run("macros", "remove", path, "--name", "water").exit_code == 0
+    assert fetch_rows(path, f"SELECT water_segment({x[0, 0]}, {x[0, 1]})")[0][0] in (0, 1, 2)
+    assert run_cli("macros", "remove", path, "--name", "water").exit_code == 0
     assert macro_text(path, "water_segment") == []
 
 

@@ -21,16 +21,16 @@ def standardise(x: np.ndarray) -> np.ndarray:
     return (x - x.mean(axis=0)) / x.std(axis=0)
 
 
-def labels_of(engine: DuckDBEngine, view: str, order_by: str) -> dict[str, np.ndarray]:
+def view_rows(engine: DuckDBEngine, view: str, order_by: str) -> dict[str, np.ndarray]:
     return engine.con.execute(f'SELECT * FROM "{view}" ORDER BY "{order_by}"').fetchnumpy()
 
 
 # ----------------------------------------------------------------------------- profile and cells
 
 
-def test_model_center_and_scale_equal_numpy_mean_and_population_sd(blob_db, blobs, open_engine):
+def test_model_center_and_scale_equal_numpy_mean_and_population_sd(blob_db, blobs_30k_4d_5c, open_engine):
     path, names = blob_db
-    x, _ = blobs
+    x, _ = blobs_30k_4d_5c
     model = segment(open_engine(path), Source.of_table("points"), names, Settings(k=5))
     # reference: numpy mean and population standard deviation (ddof=0) of the same rows
     np.testing.assert_allclose(model.center, x.mean(axis=0), rtol=1e-9, atol=1e-12)
@@ -38,9 +38,9 @@ def test_model_center_and_scale_equal_numpy_mean_and_population_sd(blob_db, blob
     assert model.rows == len(x) and model.skipped == 0
 
 
-def test_cell_pass_cfs_equal_numpy_group_sums_on_the_same_cells(blob_db, blobs, open_engine):
+def test_cell_pass_cfs_equal_numpy_group_sums_on_the_same_cells(blob_db, blobs_30k_4d_5c, open_engine):
     path, names = blob_db
-    x, _ = blobs
+    x, _ = blobs_30k_4d_5c
     engine = open_engine(path)
     src = Source.of_table("points")
     settings = Settings(k=5, cell_budget=2_000)
@@ -78,16 +78,16 @@ def test_principal_axis_grid_is_used_above_six_columns_and_cfs_stay_full_width(t
 # ----------------------------------------------------------------------------- segments vs scikit-learn
 
 
-def test_refined_sse_is_within_point_two_percent_of_sklearn_kmeans_on_blobs(blob_db, blobs, open_engine):
+def test_refined_sse_is_within_point_two_percent_of_sklearn_kmeans_on_blobs(blob_db, blobs_30k_4d_5c, open_engine):
     path, names = blob_db
-    x, _ = blobs
+    x, _ = blobs_30k_4d_5c
     model = segment(open_engine(path), Source.of_table("points"), names, Settings(k=5))
     # reference: scikit-learn KMeans(n_init=10) inertia on the same standardised rows
     inertia = KMeans(n_clusters=5, n_init=10, random_state=0).fit(standardise(x)).inertia_
     assert model.sse <= inertia * 1.002
 
 
-def test_segments_recover_well_separated_blobs_with_ari_at_least_0_99(blob_db, blobs, open_engine):
+def test_segments_recover_well_separated_blobs_with_ari_at_least_0_99(blob_db, blobs_30k_4d_5c, open_engine):
     path, names = blob_db
     engine = open_engine(path)
     model = segment(engine, Source.of_table("points"), names, Settings(k=5))
@@ -113,9 +113,9 @@ def test_refined_sse_is_within_point_two_percent_of_sklearn_on_bundled_real_data
     assert model.sse <= inertia * 1.002
 
 
-def test_model_sse_equals_numpy_sse_of_the_final_partition(blob_db, blobs, open_engine):
+def test_model_sse_equals_numpy_sse_of_the_final_partition(blob_db, blobs_30k_4d_5c, open_engine):
     path, names = blob_db
-    x, _ = blobs
+    x, _ = blobs_30k_4d_5c
     engine = open_engine(path)
     model = segment(engine, Source.of_table("points"), names, Settings(k=5))
     label(engine, Source.of_table("points"), model, "lab")
@@ -128,9 +128,9 @@ def test_model_sse_equals_numpy_sse_of_the_final_partition(blob_db, blobs, open_
     assert row_sse == pytest.approx(model.sse, rel=1e-3)
 
 
-def test_labels_equal_numpy_nearest_centroid_and_distance(blob_db, blobs, open_engine):
+def test_labels_equal_numpy_nearest_centroid_and_distance(blob_db, blobs_30k_4d_5c, open_engine):
     path, names = blob_db
-    x, _ = blobs
+    x, _ = blobs_30k_4d_5c
     engine = open_engine(path)
     model = segment(engine, Source.of_table("points"), names, Settings(k=5))
     label(engine, Source.of_table("points"), model, "lab")
@@ -143,8 +143,8 @@ def test_labels_equal_numpy_nearest_centroid_and_distance(blob_db, blobs, open_e
     np.testing.assert_allclose(got["distance"], np.sqrt(d2.min(axis=1)), rtol=1e-9, atol=1e-12)
 
 
-def test_shift_by_1e9_gives_the_same_segments_and_sse(tmp_path, blobs, open_engine):
-    x, _ = blobs
+def test_shift_by_1e9_gives_the_same_segments_and_sse(tmp_path, blobs_30k_4d_5c, open_engine):
+    x, _ = blobs_30k_4d_5c
     names = ["a", "b", "c", "d"]
     near = write_table(tmp_path / "near.duckdb", "t", columns_of(x, names))
     far = write_table(tmp_path / "far.duckdb", "t", columns_of(x + 1e9, names))
@@ -160,9 +160,9 @@ def test_shift_by_1e9_gives_the_same_segments_and_sse(tmp_path, blobs, open_engi
     assert m1.sse == pytest.approx(m0.sse, rel=1e-6)
 
 
-def test_weights_and_no_scaling_change_the_metric_as_documented(blob_db, blobs, open_engine):
+def test_weights_and_no_scaling_change_the_metric_as_documented(blob_db, blobs_30k_4d_5c, open_engine):
     path, names = blob_db
-    x, _ = blobs
+    x, _ = blobs_30k_4d_5c
     engine = open_engine(path)
     model = segment(engine, Source.of_table("points"), names, Settings(k=5, scaling="none", weights={"a": 2.0}))
     assert model.scale == [1.0] * 4 and model.weights == [2.0, 1.0, 1.0, 1.0]
@@ -200,7 +200,7 @@ def test_null_nan_and_inf_rows_are_skipped_counted_and_labelled_null(tmp_path, o
     np.testing.assert_allclose(model.center, good.mean(axis=0), rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(model.scale, good.std(axis=0), rtol=1e-9)
     label(engine, Source.of_table("s"), model, "lab")
-    got = labels_of(engine, "lab", "id")
+    got = view_rows(engine, "lab", "id")
     assert np.ma.getmaskarray(got["segment"])[list(range(10)) + [2000, 2001]].all()
     assert not np.ma.getmaskarray(got["segment"])[10:2000].any()
 
@@ -233,10 +233,10 @@ def test_label_never_writes_the_source_and_refuses_its_name(blob_db, open_engine
     assert before == after
 
 
-def test_segment_reads_parquet_and_csv_files_in_place(tmp_path, blobs):
+def test_segment_reads_parquet_and_csv_files_in_place(tmp_path, blobs_30k_4d_5c):
     from tillite.engines import open_source
 
-    x, y = blobs
+    x, y = blobs_30k_4d_5c
     names = ["a", "b", "c", "d"]
     con = duckdb.connect()
     frame = columns_of(x, names)  # noqa: F841

@@ -40,9 +40,9 @@ def dkw_rank_bound(m: int, alpha: float = 1e-6) -> float:
 
 
 @pytest.fixture
-def district_db(tmp_path, blobs):
+def district_db(tmp_path, blobs_30k_4d_5c):
     """The make_blobs rows, with NaN rows, a text column of districts (one hostile) and a NULL district."""
-    x, y = blobs
+    x, y = blobs_30k_4d_5c
     x = x.copy()
     x[:7, 1] = np.nan
     names = ["a", "b", "c", "d"]
@@ -345,7 +345,7 @@ def test_description_names_the_most_distinctive_columns():
 
 
 def test_report_command_offers_exactly_the_formats_the_report_writes():
-    from tillite.cli_report import REPORT_FORMATS
+    from tillite.cli.report import REPORT_FORMATS
 
     assert REPORT_FORMATS == R.FORMATS
 

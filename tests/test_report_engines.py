@@ -15,7 +15,7 @@ from tillite.engines import DuckDBEngine, PostgresEngine, SparkEngine
 from tillite.pipeline import Settings, segment
 from tillite.sqlgen import Source
 
-from engine_checks import COLUMNS, TABLE, make_rows, write_duckdb, write_parquet, write_postgres
+from engine_checks import COLUMNS, TABLE, write_duckdb, write_parquet, write_postgres
 from throwaway_servers import start_spark
 
 SETTINGS = dict(k=5, width=0.5, seed=0, cell_budget=2_000)
@@ -23,13 +23,8 @@ SRC = Source.of_table(TABLE)
 
 
 @pytest.fixture(scope="module")
-def rows():
-    return make_rows()
-
-
-@pytest.fixture(scope="module")
-def duck_file(rows, tmp_path_factory):
-    return write_duckdb(tmp_path_factory.mktemp("report") / "points.duckdb", rows)
+def duck_file(engine_rows, tmp_path_factory):
+    return write_duckdb(tmp_path_factory.mktemp("report") / "points.duckdb", engine_rows)
 
 
 @pytest.fixture(scope="module")
@@ -43,20 +38,20 @@ def reference(duck_file):
         duck.close()
 
 
-def numpy_labels(rows, model) -> np.ndarray:
+def numpy_labels(engine_rows, model) -> np.ndarray:
     """Each usable row's segment by numpy: nearest centroid in the model's weighted, scaled space."""
-    u = (rows.x - np.asarray(model.center)) / np.asarray(model.scale) * np.asarray(model.weights)
+    u = (engine_rows.x - np.asarray(model.center)) / np.asarray(model.scale) * np.asarray(model.weights)
     c = np.asarray(model.centroids_scaled) * np.asarray(model.weights)
     d = ((u[:, None, :] - c[None, :, :]) ** 2).sum(axis=2)
     out = np.asarray(model.segment_ids())[np.argmin(np.where(np.isfinite(d), d, np.inf), axis=1)]
-    return np.where(rows.usable, out, -99)
+    return np.where(engine_rows.usable, out, -99)
 
 
-def assert_same_statistics(got, ref, rows, model, rank_tolerance: float) -> None:
-    labels = numpy_labels(rows, model)
+def assert_same_statistics(got, ref, engine_rows, model, rank_tolerance: float) -> None:
+    labels = numpy_labels(engine_rows, model)
     assert sorted(got) == sorted(ref)
     for sid in ref:
-        x = rows.x[labels == sid]
+        x = engine_rows.x[labels == sid]
         # reference: DuckDB (counts exactly, moments to 1e-9) and numpy on the same rows
         assert got[sid]["n"] == ref[sid]["n"] == len(x)
         for j, c in enumerate(COLUMNS):
@@ -98,27 +93,27 @@ def assert_same_scan(engine, reference, duck_file) -> None:
 
 
 @pytest.fixture(scope="module")
-def postgres(server, rows):
+def postgres(server, engine_rows):
     import psycopg
 
     with psycopg.connect(server.conninfo, autocommit=True) as con:
-        write_postgres(con, rows)
+        write_postgres(con, engine_rows)
     engine = PostgresEngine(server.conninfo)
     yield engine
     engine.close()
 
 
-def test_postgres_report_statistics_equal_duckdb_and_numpy(postgres, reference, rows):
+def test_postgres_report_statistics_equal_duckdb_and_numpy(postgres, reference, engine_rows):
     model, stats, _ = reference
     got = R.segment_statistics(postgres, SRC, model)
     # PostgreSQL's percentile_cont is exact: numpy.percentile's default (linear) interpolation is the same rule
-    labels = numpy_labels(rows, model)
+    labels = numpy_labels(engine_rows, model)
     for sid in got:
-        x = rows.x[labels == sid]
+        x = engine_rows.x[labels == sid]
         for j, c in enumerate(COLUMNS):
             np.testing.assert_allclose(got[sid]["columns"][c]["q50"], np.percentile(x[:, j], 50), rtol=1e-12)
     # DuckDB's reservoir_quantile: within the 2% rank tolerance explained in test_report.py
-    assert_same_statistics(got, stats, rows, model, rank_tolerance=0.02)
+    assert_same_statistics(got, stats, engine_rows, model, rank_tolerance=0.02)
 
 
 def test_postgres_breakdown_equals_duckdb(postgres, reference):
@@ -143,11 +138,11 @@ def spark_engine(tmp_path_factory, duck_file):
     session.stop()
 
 
-def test_spark_report_statistics_equal_duckdb_and_numpy(spark_engine, reference, rows):
+def test_spark_report_statistics_equal_duckdb_and_numpy(spark_engine, reference, engine_rows):
     model, stats, _ = reference
     got = R.segment_statistics(spark_engine, SRC, model)
     # Spark documents percentile_approx's rank error as 1/accuracy (accuracy 10,000 here)
-    assert_same_statistics(got, stats, rows, model, rank_tolerance=1e-4)
+    assert_same_statistics(got, stats, engine_rows, model, rank_tolerance=1e-4)
 
 
 def test_spark_breakdown_equals_duckdb(spark_engine, reference):

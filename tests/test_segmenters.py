@@ -19,6 +19,8 @@ from sklearn.metrics import adjusted_rand_score, calinski_harabasz_score
 from tillite import features as F
 from tillite.segmenters import choose_k, components, density, format_k_table, kmeans, spherical_bic, ward
 
+from conftest import numpy_sse
+
 W = np.array([0.5, 2.0, 1.0])
 
 
@@ -26,11 +28,6 @@ W = np.array([0.5, 2.0, 1.0])
 def sixty():
     x, y = make_blobs(n_samples=60, n_features=3, centers=4, cluster_std=1.2, random_state=0)
     return x, y
-
-
-def _sse(x, labels):
-    # numpy direct: sum of squared deviations from each group's mean
-    return sum(float(((x[labels == g] - x[labels == g].mean(axis=0)) ** 2).sum()) for g in np.unique(labels))
 
 
 # ----------------------------------------------------------------------- Ward
@@ -80,7 +77,7 @@ def test_ward_on_cells_reports_exact_row_sse_and_centroids():
     got = ward(cells, 4, weights=W)
     rows = got.labels[group]
     # numpy direct on the rows: SSE (weighted columns, within-cell scatter included) and means
-    assert got.sse == pytest.approx(_sse(x * W, rows), rel=1e-9)
+    assert got.sse == pytest.approx(numpy_sse(x * W, rows), rel=1e-9)
     for g in range(4):
         np.testing.assert_allclose(got.centroids[g], x[rows == g].mean(axis=0), rtol=1e-9, atol=1e-9)
     assert adjusted_rand_score(y, rows) > 0.95  # scikit-learn ARI against make_blobs' truth
@@ -205,7 +202,7 @@ def test_choose_k_scores_equal_sklearn_calinski_harabasz_and_kmeans_sse():
         labels = kmeans(F.from_points(x), row["k"], n_init=3, seed=2).labels
         # scikit-learn calinski_harabasz_score and numpy SSE on the same assignment
         assert row["calinski_harabasz"] == pytest.approx(calinski_harabasz_score(x, labels), rel=1e-9)
-        assert row["sse"] == pytest.approx(_sse(x, labels), rel=1e-9)
+        assert row["sse"] == pytest.approx(numpy_sse(x, labels), rel=1e-9)
     chosen = got.result.labels
     best = max(got.table, key=lambda r: r["calinski_harabasz"])
     assert best["k"] == got.k == 5
@@ -216,7 +213,7 @@ def test_spherical_bic_equals_direct_gaussian_log_likelihood():
     x, _ = make_blobs(n_samples=500, n_features=3, centers=3, random_state=5)
     labels = kmeans(F.from_points(x), 3, seed=0).labels
     counts = np.bincount(labels).astype(float)
-    sse = _sse(x, labels)
+    sse = numpy_sse(x, labels)
     log_l, p, bic = spherical_bic(counts, sse, 3)
     # scipy.stats.norm: hard-assigned mixture, shared variance sse / (N d), mixing weights N_j / N
     means = np.array([x[labels == g].mean(axis=0) for g in range(3)])
@@ -242,7 +239,7 @@ def test_format_k_table_lists_every_candidate_and_marks_the_choice():
 def test_kmeans_keeps_its_signature_and_exact_sse():
     x, _ = make_blobs(n_samples=1500, n_features=3, centers=4, random_state=3)
     got = kmeans(F.from_points(x), 4, None, 5, seed=1, init=None)
-    assert got.sse == pytest.approx(_sse(x, got.labels), rel=1e-9)  # numpy direct
+    assert got.sse == pytest.approx(numpy_sse(x, got.labels), rel=1e-9)  # numpy direct
 
 
 def test_ward_of_data_shifted_to_1e9_gives_the_same_cut(sixty):
@@ -368,7 +365,7 @@ def test_faster_second_phase_reaches_weighted_sklearn_kmeans_on_bundled_real_dat
         # comparison with the previous code itself (within 1e-6) is printed by bench_second_phase.py
         ref = KMeans(n_clusters=k, n_init=10, random_state=0).fit(F.centroids(cells), sample_weight=cells.n).inertia_
         assert got.sse <= (ref + F.sse(cells)) * 1.002
-        assert got.sse == pytest.approx(_sse(u, got.labels[cell]), rel=1e-9)  # numpy direct on the rows
+        assert got.sse == pytest.approx(numpy_sse(u, got.labels[cell]), rel=1e-9)  # numpy direct on the rows
 
 
 def test_kmeans_reports_progress_on_long_runs(monkeypatch):

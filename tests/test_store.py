@@ -15,7 +15,7 @@ from tillite.engines import DuckDBEngine
 from tillite.pipeline import Settings, run_cell_pass
 from tillite.sqlgen import Source
 
-from conftest import refresh_held_open
+from conftest import refresh_held_open, sorted_cells, store_snapshot
 
 COLS = list(DEMO_COLUMNS)
 
@@ -33,11 +33,6 @@ def built(demo_db):
     info, model = S.build(engine, Source.of_table("meter_days"), COLS, S.PartitionSpec(("day",)), Settings(k=5, refine_passes=0))
     yield engine, info, model
     engine.close()
-
-
-def sorted_cells(cells, keys):
-    order = np.lexsort(keys.T[::-1])
-    return keys[order], cells.n[order], cells.ls[order], cells.ss[order]
 
 
 def assert_store_equals_fresh_cell_pass(engine, info):
@@ -63,11 +58,6 @@ def change_partitions(con):
         "INSERT INTO meter_days SELECT meter_id, district, day + 40, litres, night_share, peak_litres, flow_run_hours, "
         "zero_hours FROM meter_days WHERE day = DATE '2026-01-06'"
     )
-
-
-def store_snapshot(con, info):
-    tables = [S.STORES, S.PARTS, S.LABELS, info.cells_table]
-    return {t: sorted(map(repr, con.execute(f'SELECT * FROM "{t}"').fetchall())) for t in tables}
 
 
 def test_build_then_refresh_with_no_change_scans_nothing_new(built):
@@ -650,3 +640,48 @@ def test_a_database_without_stores_is_told_so_in_one_line(tmp_path):
     assert [ln for ln in res.output.splitlines() if ln.strip()] == [
         "Error: no summary store here (table tillite_stores not found); build one with `tillite store build`"
     ]
+
+
+def test_store_built_with_ward_keeps_ward(demo_db, tmp_path):
+    """`store build --method ward` gives Ward's segments, the same as `tillite segment --method ward` on the
+    same data (same frozen grid: same seed and budget), and refreshes keep the method."""
+    runner = CliRunner()
+    common = ["-t", "meter_days", "-c", ",".join(COLS), "--k", "4", "--method", "ward", "--refine-passes", "2", "-q"]
+    res = runner.invoke(main, ["segment", str(demo_db), *common, "--out", str(tmp_path / "ward.json")])
+    assert res.exit_code == 0, res.output
+    res = runner.invoke(main, ["store", "build", str(demo_db), *common, "--partition-by", "day",
+                               "--out", str(tmp_path / "store.json")])
+    assert res.exit_code == 0, res.output
+    from tillite.model import Model
+
+    plain, stored = Model.read(str(tmp_path / "ward.json")), Model.read(str(tmp_path / "store.json"))
+    assert stored.method == "ward" and stored.summary()["method"] == "ward"
+    assert stored.sizes == plain.sizes
+    np.testing.assert_allclose(stored.centroids, plain.centroids, rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(stored.sse, plain.sse, rtol=1e-9)
+    engine = DuckDBEngine(str(demo_db))
+    try:
+        S.label(engine, "meter_days", "ward_labels")
+        # reference: DuckDB's own count of the labelled rows per segment, outside our SQL
+        counts = dict(engine.con.execute('SELECT segment, count(*) FROM "ward_labels" GROUP BY segment').fetchall())
+        assert [counts[i] for i in stored.segment_ids()] == stored.sizes
+        engine.con.execute("UPDATE meter_days SET litres = litres * 1.1 WHERE day = DATE '2026-01-09'")
+        report = S.refresh(engine, "meter_days")
+        assert report.model.method == "ward" and S.status(engine, "meter_days")["settings"]["method"] == "ward"
+    finally:
+        engine.close()
+
+
+def test_store_refuses_density_with_one_clear_line(demo_db):
+    res = CliRunner().invoke(main, ["store", "build", str(demo_db), "-t", "meter_days", "-c", ",".join(COLS),
+                                    "--partition-by", "day", "--k", "4", "--method", "density"])
+    lines = res.output.strip().splitlines()
+    assert res.exit_code == 1 and len(lines) == 1 and "Traceback" not in res.output
+    assert lines[0].startswith("Error:") and "--method density" in lines[0] and "refresh" in lines[0]
+    engine = DuckDBEngine(str(demo_db))
+    try:
+        with pytest.raises(S.ParameterError, match="method='density'|method density"):
+            S.build(engine, Source.of_table("meter_days"), COLS, S.PartitionSpec(("day",)), Settings(k=0, method="density"))
+        assert S.STORES not in engine.tables()  # nothing was written
+    finally:
+        engine.close()

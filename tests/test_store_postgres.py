@@ -27,7 +27,7 @@ from tillite.engines import DuckDBEngine, PostgresEngine
 from tillite.pipeline import Settings, run_cell_pass
 from tillite.sqlgen import Source
 
-from conftest import refresh_held_open
+from conftest import refresh_held_open, sorted_cells, store_snapshot
 
 
 COLS = list(DEMO_COLUMNS)
@@ -42,7 +42,7 @@ PG_COLUMNS = (
     ("zero_hours", "INTEGER"), ("day_number", "INTEGER"),
 )
 
-#: Partition changes, as text both engines read the same way: an update, a whole partition deleted,
+#: Partition changes, as text both pg_and_duck_demo read the same way: an update, a whole partition deleted,
 #: rows deleted inside one, and a new partition appended (a copy of 2026-01-06 forty days later).
 CHANGES = (
     "UPDATE meter_days SET litres = litres * 2.5 WHERE day = DATE '2026-01-03'",
@@ -76,7 +76,7 @@ def demo(tmp_path_factory):
 
 
 @pytest.fixture
-def engines(server, demo, tmp_path):
+def pg_and_duck_demo(server, demo, tmp_path):
     """(PostgreSQL engine on a fresh database holding the demo rows, DuckDB engine on a fresh copy of the file)."""
     import psycopg
     from psycopg import sql
@@ -113,11 +113,6 @@ def pg_count(pg: PostgresEngine) -> int:
     return int(pg.con.execute('SELECT count(*) FROM "meter_days"').fetchone()[0])
 
 
-def sorted_cells(cells, keys):
-    order = np.lexsort(keys.T[::-1])
-    return keys[order], cells.n[order], cells.ls[order], cells.ss[order]
-
-
 def assert_same_cells(got, ref) -> None:
     """(cells, keys, skipped) equal: keys and n exactly, sums to 1e-9 relative."""
     a, b = sorted_cells(got[0], got[1]), sorted_cells(ref[0], ref[1])
@@ -149,18 +144,13 @@ def build_pair(pg: PostgresEngine, duck: DuckDBEngine, partition_by: str, store:
     return (pg_info, pg_model), (duck_info, duck_model)
 
 
-def store_snapshot(pg: PostgresEngine, info) -> dict[str, list[str]]:
-    tables = [S.STORES, S.PARTS, S.LABELS, info.cells_table]
-    return {t: sorted(map(repr, pg.con.execute(f'SELECT * FROM "{t}"').fetchall())) for t in tables}
-
-
 def view_definition(pg: PostgresEngine, name: str) -> str:
     return pg.con.execute("SELECT pg_get_viewdef(%s::regclass)", (name,)).fetchone()[0]
 
 
 @pytest.mark.parametrize("partition_by", ["day", "day_number"])
-def test_postgres_store_equals_a_fresh_cell_pass_and_the_duckdb_store_through_changes(engines, partition_by):
-    pg, duck = engines
+def test_postgres_store_equals_a_fresh_cell_pass_and_the_duckdb_store_through_changes(pg_and_duck_demo, partition_by):
+    pg, duck = pg_and_duck_demo
     (pg_info, _), (duck_info, _) = build_pair(pg, duck, partition_by)
     assert S.status(pg, TABLE)["partitions"] == 12
     assert_pg_store_equals_fresh_cell_pass(pg, pg_info)
@@ -184,8 +174,8 @@ def test_postgres_store_equals_a_fresh_cell_pass_and_the_duckdb_store_through_ch
     assert S.load(pg, TABLE).version == 2
 
 
-def test_postgres_store_segments_equal_the_duckdb_store_after_a_refresh(engines):
-    pg, duck = engines
+def test_postgres_store_segments_equal_the_duckdb_store_after_a_refresh(pg_and_duck_demo):
+    pg, duck = pg_and_duck_demo
     (_, pg_model), (_, duck_model) = build_pair(pg, duck, "day")
     # reference: the DuckDB store's model from the same cells
     np.testing.assert_allclose(pg_model.centroids, duck_model.centroids, rtol=1e-9, atol=1e-9)
@@ -195,11 +185,11 @@ def test_postgres_store_segments_equal_the_duckdb_store_after_a_refresh(engines)
     np.testing.assert_allclose(got.centroids, ref.centroids, rtol=1e-9, atol=1e-9)
 
 
-def test_failure_inside_a_postgres_refresh_leaves_the_store_row_for_row_as_before(engines):
-    pg, _ = engines
+def test_failure_inside_a_postgres_refresh_leaves_the_store_row_for_row_as_before(pg_and_duck_demo):
+    pg, _ = pg_and_duck_demo
     info, _ = S.build(pg, SRC, COLS, S.PartitionSpec(("day",)), Settings(**SETTINGS))
     S.label(pg, TABLE, "water_labels")
-    before, view_before = store_snapshot(pg, info), view_definition(pg, "water_labels")
+    before, view_before = store_snapshot(pg.con, info), view_definition(pg, "water_labels")
     run_pg(pg, CHANGES)
 
     def fail():
@@ -208,15 +198,15 @@ def test_failure_inside_a_postgres_refresh_leaves_the_store_row_for_row_as_befor
     with pytest.raises(RuntimeError, match="injected"):
         S.refresh(pg, TABLE, before_commit=fail)
     # reference: PostgreSQL's own rows of the store tables and its stored view definition, read back
-    assert store_snapshot(pg, info) == before
+    assert store_snapshot(pg.con, info) == before
     assert view_definition(pg, "water_labels") == view_before
     report = S.refresh(pg, TABLE)
     assert (report.changed, report.vanished, report.new) == EXPECTED["day"]
     assert_pg_store_equals_fresh_cell_pass(pg, info)
 
 
-def test_second_concurrent_postgres_refresh_fails_at_once_with_store_busy(engines):
-    pg, _ = engines
+def test_second_concurrent_postgres_refresh_fails_at_once_with_store_busy(pg_and_duck_demo):
+    pg, _ = pg_and_duck_demo
     info, _ = S.build(pg, SRC, COLS, S.PartitionSpec(("day",)), Settings(**SETTINGS))
     run_pg(pg, CHANGES)
     second = PostgresEngine(pg.conninfo)
@@ -232,8 +222,8 @@ def test_second_concurrent_postgres_refresh_fails_at_once_with_store_busy(engine
     second.close()
 
 
-def test_postgres_refresh_that_loaded_the_store_before_another_committed_fails_cleanly(engines):
-    pg, _ = engines
+def test_postgres_refresh_that_loaded_the_store_before_another_committed_fails_cleanly(pg_and_duck_demo):
+    pg, _ = pg_and_duck_demo
     info, _ = S.build(pg, SRC, COLS, S.PartitionSpec(("day",)), Settings(**SETTINGS))
     run_pg(pg, CHANGES)
     other = PostgresEngine(pg.conninfo)
@@ -251,8 +241,8 @@ def test_postgres_refresh_that_loaded_the_store_before_another_committed_fails_c
     other.close()
 
 
-def test_postgres_labels_view_follows_the_refreshed_model_and_status_counts_rows(engines):
-    pg, _ = engines
+def test_postgres_labels_view_follows_the_refreshed_model_and_status_counts_rows(pg_and_duck_demo):
+    pg, _ = pg_and_duck_demo
     S.build(pg, SRC, COLS, S.PartitionSpec(("day",)), Settings(**SETTINGS))
     assert S.label(pg, TABLE, "water_labels") == "view water_labels"
     run_pg(pg, CHANGES)
@@ -272,8 +262,8 @@ def test_postgres_labels_view_follows_the_refreshed_model_and_status_counts_rows
     assert st["usable_rows"] + st["skipped_rows"] == pg_count(pg) and not st["warnings"]
 
 
-def test_postgres_fingerprints_ignore_row_order_and_tell_null_from_values(engines):
-    pg, _ = engines
+def test_postgres_fingerprints_ignore_row_order_and_tell_null_from_values(pg_and_duck_demo):
+    pg, _ = pg_and_duck_demo
     run_pg(pg, [
         'CREATE TABLE "probe" ("part" INTEGER, "a" DOUBLE PRECISION, "b" DOUBLE PRECISION)',
         # partitions 1 and 2: the same rows in another order; 3: the NULL in the other column; 4: the NULL
@@ -290,8 +280,8 @@ def test_postgres_fingerprints_ignore_row_order_and_tell_null_from_values(engine
     assert all(int(r) == 2 for r in got["rows"])
 
 
-def test_partition_filter_finds_each_partition_again_for_every_type_postgres_describes(engines):
-    pg, _ = engines
+def test_partition_filter_finds_each_partition_again_for_every_type_postgres_describes(pg_and_duck_demo):
+    pg, _ = pg_and_duck_demo
     run_pg(pg, [
         'CREATE TABLE "typed" ("d" DATE, "i" INTEGER, "b" BIGINT, "s" SMALLINT, "t" TEXT, "v" VARCHAR(20), '
         '"ts" TIMESTAMP, "tz" TIMESTAMPTZ, "n" NUMERIC, "f" DOUBLE PRECISION, "r" REAL, "o" BOOLEAN, "x" DOUBLE PRECISION)',
@@ -313,12 +303,12 @@ def test_partition_filter_finds_each_partition_again_for_every_type_postgres_des
     assert len(got["part"]) == 2
 
 
-def test_store_commands_run_on_a_postgresql_url(server, engines):
+def test_store_commands_run_on_a_postgresql_url(server, pg_and_duck_demo):
     from click.testing import CliRunner
 
     from tillite.cli import main
 
-    pg, _ = engines
+    pg, _ = pg_and_duck_demo
     url = server.url.replace("@/postgres?", f"@/{pg.conninfo.split('dbname=')[1]}?")  # this test's database
     runner = CliRunner()
     done = runner.invoke(main, ["store", "build", url, "-t", TABLE, "-c", ",".join(COLS), "--partition-by", "day_number", "--k", "4", "-q"])
@@ -363,8 +353,8 @@ TYPED_COLUMNS = (("a", "DOUBLE PRECISION"), ("b", "DOUBLE PRECISION"), ("p", "TE
 
 
 @pytest.mark.parametrize("partition_by", [("p",), ("r", "s"), ("i", "d", "p")])
-def test_postgres_partitions_are_told_apart_by_their_typed_values(engines, tmp_path, partition_by):
-    pg, _ = engines
+def test_postgres_partitions_are_told_apart_by_their_typed_values(pg_and_duck_demo, tmp_path, partition_by):
+    pg, _ = pg_and_duck_demo
     copy_table_to_postgres(pg, typed_partition_table(tmp_path / "typed.duckdb"), "t", TYPED_COLUMNS)
     info, _ = S.build(pg, Source.of_table("t"), ["a", "b"], S.PartitionSpec(partition_by), Settings(k=2, refine_passes=0))
     st = S.status(pg, "t")
@@ -376,10 +366,10 @@ def test_postgres_partitions_are_told_apart_by_their_typed_values(engines, tmp_p
         assert_pg_store_equals_fresh_pass_of(pg, info, "t")
 
 
-def test_postgres_fingerprints_and_cells_come_from_one_snapshot_while_a_writer_commits_in_between(engines):
+def test_postgres_fingerprints_and_cells_come_from_one_snapshot_while_a_writer_commits_in_between(pg_and_duck_demo):
     import psycopg
 
-    pg, _ = engines
+    pg, _ = pg_and_duck_demo
     info, _ = S.build(pg, SRC, COLS, S.PartitionSpec(("day",)), Settings(**SETTINGS))
     day = "DATE '2026-01-03'"
     with psycopg.connect(pg.conninfo, autocommit=True) as writer:
@@ -394,8 +384,8 @@ def test_postgres_fingerprints_and_cells_come_from_one_snapshot_while_a_writer_c
     assert_pg_store_equals_fresh_cell_pass(pg, info)
 
 
-def test_postgres_refresh_finds_a_newly_arrived_group_that_the_warm_start_misses(engines, tmp_path):
-    pg, duck = engines
+def test_postgres_refresh_finds_a_newly_arrived_group_that_the_warm_start_misses(pg_and_duck_demo, tmp_path):
+    pg, duck = pg_and_duck_demo
     copy_table_to_postgres(pg, sixty_days_of_blobs(tmp_path / "blobs.duckdb"), "readings",
                            (("a", "DOUBLE PRECISION"), ("b", "DOUBLE PRECISION"), ("c", "DOUBLE PRECISION"), ("day", "BIGINT")))
     S.build(pg, Source.of_table("readings"), ["a", "b", "c"], S.PartitionSpec(("day",)), Settings(k=4, refine_passes=0))
@@ -405,8 +395,8 @@ def test_postgres_refresh_finds_a_newly_arrived_group_that_the_warm_start_misses
     assert report.warnings[0].startswith("the segments changed") and 1000 in report.model.sizes
 
 
-def test_postgres_refresh_of_named_partitions_gives_the_same_cells_as_a_fingerprint_refresh(engines):
-    pg, _ = engines
+def test_postgres_refresh_of_named_partitions_gives_the_same_cells_as_a_fingerprint_refresh(pg_and_duck_demo):
+    pg, _ = pg_and_duck_demo
     info, _ = S.build(pg, SRC, COLS, S.PartitionSpec(("day",)), Settings(**SETTINGS))
     run_pg(pg, CHANGES)
     got = S.refresh(pg, TABLE, where="day BETWEEN DATE '2026-01-03' AND DATE '2026-01-05' OR day > DATE '2026-02-01'")

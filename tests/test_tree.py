@@ -22,15 +22,9 @@ W = np.array([0.5, 2.0, 1.0])  # column multipliers
 
 
 @pytest.fixture(scope="module")
-def blobs():
-    x, y = make_blobs(n_samples=6000, n_features=3, centers=5, cluster_std=1.0, random_state=4)
-    return x, y
-
-
-@pytest.fixture(scope="module")
-def grouped(blobs):
+def grouped(blobs_6k_3d_5c):
     """Cells: CFs of small groups of nearby rows (rows sorted along the first column, cut in fours)."""
-    x, _ = blobs
+    x, _ = blobs_6k_3d_5c
     order = np.lexsort((x[:, 1], np.floor(x[:, 0] * 4)))
     group = np.empty(len(x), dtype=np.int64)
     group[order] = np.arange(len(x)) // 4
@@ -42,8 +36,8 @@ def _rows_of(x, group, membership, entry):
     return x[membership[group] == entry]
 
 
-def test_entry_statistics_after_many_inserts_equal_numpy_on_member_rows(blobs, grouped):
-    x, _ = blobs
+def test_entry_statistics_after_many_inserts_equal_numpy_on_member_rows(blobs_6k_3d_5c, grouped):
+    x, _ = blobs_6k_3d_5c
     cells, group = grouped
     got = condense(cells, threshold=0.05, budget=300, branching=6, leaf_capacity=8, weights=W, seed=3)
     assert got.rebuilds >= 1  # the bookkeeping also went through rebuilds
@@ -69,8 +63,8 @@ def test_entry_statistics_after_many_inserts_equal_numpy_on_member_rows(blobs, g
         np.testing.assert_allclose(got.entries.ss[e], (rows**2).sum(axis=0), rtol=1e-9, atol=1e-9)
 
 
-def test_every_cell_lands_in_exactly_one_entry_or_outlier_entry(blobs, grouped):
-    x, _ = blobs
+def test_every_cell_lands_in_exactly_one_entry_or_outlier_entry(blobs_6k_3d_5c, grouped):
+    x, _ = blobs_6k_3d_5c
     cells, _ = grouped
     got = condense(cells, budget=300, seed=1)
     inside, outside = got.membership >= 0, got.outlier_membership >= 0
@@ -81,8 +75,8 @@ def test_every_cell_lands_in_exactly_one_entry_or_outlier_entry(blobs, grouped):
     np.testing.assert_allclose(both.ls[0], x.sum(axis=0), rtol=1e-9)
 
 
-def test_tree_of_points_keeps_every_leaf_entry_diameter_within_threshold(blobs):
-    x, _ = blobs
+def test_tree_of_points_keeps_every_leaf_entry_diameter_within_threshold(blobs_6k_3d_5c):
+    x, _ = blobs_6k_3d_5c
     got = condense(F.from_points(x), threshold=1.5, budget=10**6, weights=W, keep_outliers=True, seed=0)
     assert got.rebuilds == 0 and got.threshold == 1.5
     worst = 0.0
@@ -95,8 +89,8 @@ def test_tree_of_points_keeps_every_leaf_entry_diameter_within_threshold(blobs):
     assert 0.5 < worst <= 1.5 * (1 + 1e-9)
 
 
-def test_radius_criterion_keeps_every_leaf_entry_radius_within_threshold(blobs):
-    x, _ = blobs
+def test_radius_criterion_keeps_every_leaf_entry_radius_within_threshold(blobs_6k_3d_5c):
+    x, _ = blobs_6k_3d_5c
     got = condense(F.from_points(x), threshold=0.6, criterion="radius", budget=10**6, weights=W, seed=0)
     worst = 0.0
     for e in range(got.entries.m):
@@ -107,8 +101,8 @@ def test_radius_criterion_keeps_every_leaf_entry_radius_within_threshold(blobs):
 
 
 @pytest.mark.parametrize("branching,leaf_capacity", [(3, 4), (7, 5), (50, 50)])
-def test_node_sizes_never_exceed_branching_and_leaf_capacity(blobs, branching, leaf_capacity):
-    x, _ = blobs
+def test_node_sizes_never_exceed_branching_and_leaf_capacity(blobs_6k_3d_5c, branching, leaf_capacity):
+    x, _ = blobs_6k_3d_5c
     got = condense(F.from_points(x), threshold=0.8, budget=10**6, branching=branching,
                    leaf_capacity=leaf_capacity, seed=2)
     nodes = {v.node: v for v in got.walk()}
@@ -130,8 +124,8 @@ def test_node_sizes_never_exceed_branching_and_leaf_capacity(blobs, branching, l
                 np.testing.assert_allclose(v.centroids[j], mean, rtol=1e-9, atol=1e-9)
 
 
-def test_budget_rebuilds_raise_threshold_until_leaf_entries_fit(blobs):
-    x, _ = blobs
+def test_budget_rebuilds_raise_threshold_until_leaf_entries_fit(blobs_6k_3d_5c):
+    x, _ = blobs_6k_3d_5c
     cells = F.from_points(x)
     first = condense(cells, threshold=0.05, budget=10**6, keep_outliers=True)
     got = condense(cells, threshold=0.05, budget=250, keep_outliers=True)
@@ -143,8 +137,8 @@ def test_budget_rebuilds_raise_threshold_until_leaf_entries_fit(blobs):
     assert got.entries.n.sum() == len(x)
 
 
-def test_default_threshold_fits_the_budget_and_is_zero_when_cells_already_fit(blobs):
-    x, _ = blobs
+def test_default_threshold_fits_the_budget_and_is_zero_when_cells_already_fit(blobs_6k_3d_5c):
+    x, _ = blobs_6k_3d_5c
     cells = F.from_points(x)
     got = condense(cells, budget=500)
     assert got.entries.m <= 500 and got.threshold > 0
@@ -152,8 +146,8 @@ def test_default_threshold_fits_the_budget_and_is_zero_when_cells_already_fit(bl
     assert small.threshold == 0.0 and small.entries.m == 300  # distinct points stay apart at T = 0
 
 
-def test_planted_far_points_end_in_the_outlier_group(blobs):
-    x, _ = blobs
+def test_planted_far_points_end_in_the_outlier_group(blobs_6k_3d_5c):
+    x, _ = blobs_6k_3d_5c
     far = np.array([[90.0, 0, 0], [0, -90.0, 0], [0, 0, 90.0], [-90.0, 90.0, 0], [60.0, 60.0, 60.0]])
     data = np.vstack([x, far])
     planted = np.arange(len(x), len(data))
@@ -191,8 +185,8 @@ def test_two_insertion_orders_give_the_same_kmeans_segments():
     assert adjusted_rand_score(y, labels[0]) >= 0.95
 
 
-def test_column_weights_act_like_scaled_columns(blobs):
-    x, _ = blobs
+def test_column_weights_act_like_scaled_columns(blobs_6k_3d_5c):
+    x, _ = blobs_6k_3d_5c
     a = condense(F.from_points(x), threshold=1.2, budget=10**6, weights=W, seed=6)
     b = condense(F.from_points(x * W), threshold=1.2, budget=10**6, seed=6)
     # numpy direct: scaling the columns gives the same tree, hence the same membership
@@ -203,13 +197,13 @@ def test_column_weights_act_like_scaled_columns(blobs):
 @pytest.mark.parametrize("kwargs", [dict(branching=1), dict(leaf_capacity=1), dict(criterion="width"),
                                     dict(threshold=-1.0), dict(budget=0), dict(outlier_share=1.5),
                                     dict(weights=np.ones(2))])
-def test_bad_parameters_raise_value_error(blobs, kwargs):
+def test_bad_parameters_raise_value_error(blobs_6k_3d_5c, kwargs):
     with pytest.raises(ValueError):
-        condense(F.from_points(blobs[0][:50]), **kwargs)
+        condense(F.from_points(blobs_6k_3d_5c[0][:50]), **kwargs)
 
 
-def test_data_shifted_to_1e9_gives_the_same_entries(blobs):
-    x, _ = blobs
+def test_data_shifted_to_1e9_gives_the_same_entries(blobs_6k_3d_5c):
+    x, _ = blobs_6k_3d_5c
     near0 = condense(F.from_points(x), budget=300, seed=4)
     far = condense(F.from_points(x + 1e9), budget=300, seed=4)
     # DESIGN.md numerics rule: values near 1e9 with spread near 1 segment like the same data near 0
@@ -225,3 +219,12 @@ def test_intrinsic_dimension_of_a_plane_in_five_columns_is_about_two():
     # under, the edges of the cube) for the filled cube
     assert 1.7 < intrinsic_dimension(plane) < 2.3
     assert 3.8 < intrinsic_dimension(cube) <= 5.0
+
+
+def test_tree_shape_assumptions_name_one_parameter_each():
+    from tillite.tree import CFTree
+
+    with pytest.raises(ValueError, match="^leaf_capacity must be at least 2"):
+        CFTree(2, 0.5, branching=50, leaf_capacity=1)
+    with pytest.raises(ValueError, match="^branching must be at least 2"):
+        CFTree(2, 0.5, branching=1, leaf_capacity=50)

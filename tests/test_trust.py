@@ -84,16 +84,16 @@ def test_one_two_and_four_duckdb_threads_write_the_same_model_file(large_db, rel
 
 
 def test_a_large_base_table_is_profiled_from_a_block_sample(large_db):
-    from tillite import pipeline
+    from tillite import stages
 
     with duckdb.connect(str(large_db)) as con:
         con.execute("CREATE OR REPLACE VIEW t_view AS SELECT * FROM t")
     engine = DuckDBEngine(str(large_db), read_only=True)
     try:
         # 260,000 rows, a sample of 5,000: 2.9% of the rows, 23% of the vectors in the block stage
-        assert pipeline.block_sample_pays(engine, Source.of_table("t"), 150.0 * 5_000 / 260_000)
-        assert not pipeline.block_sample_pays(engine, Source.of_table("t"), 150.0 * 50_000 / 260_000)  # would read most vectors
-        assert not pipeline.block_sample_pays(engine, Source.of_table("t_view"), 150.0 * 5_000 / 260_000)
+        assert stages.block_sample_pays(engine, Source.of_table("t"), 150.0 * 5_000 / 260_000)
+        assert not stages.block_sample_pays(engine, Source.of_table("t"), 150.0 * 50_000 / 260_000)  # would read most vectors
+        assert not stages.block_sample_pays(engine, Source.of_table("t_view"), 150.0 * 5_000 / 260_000)
     finally:
         engine.close()
 
@@ -113,13 +113,7 @@ def test_the_profile_sample_follows_the_seed(large_db):
 # ----------------------------------------------------------------------------- numerics
 
 
-@pytest.fixture(scope="module")
-def blobs():
-    x, y = make_blobs(n_samples=6_000, centers=4, n_features=3, cluster_std=1.0, center_box=(-8, 8), random_state=5)
-    return x, y
-
-
-def labels_of(tmp_path: Path, x: np.ndarray, settings: Settings, name: str = "t") -> tuple[np.ndarray, object]:
+def segments_and_model(tmp_path: Path, x: np.ndarray, settings: Settings, name: str = "t") -> tuple[np.ndarray, object]:
     path = write_table(tmp_path / f"{name}.duckdb", "t", {"id": np.arange(len(x)), "a": x[:, 0], "b": x[:, 1], "c": x[:, 2]})
     engine = DuckDBEngine(str(path))
     try:
@@ -145,18 +139,18 @@ UNITS = {
 
 @pytest.mark.parametrize("method", ["kmeans", "ward", "density"])
 @pytest.mark.parametrize("unit", list(UNITS))
-def test_segments_do_not_depend_on_the_unit_of_the_columns(tmp_path, blobs, unit, method):
-    x, _ = blobs
+def test_segments_do_not_depend_on_the_unit_of_the_columns(tmp_path, blobs_6k_3d_4c, unit, method):
+    x, _ = blobs_6k_3d_4c
     settings = Settings(**METHODS[method])
-    ref, _ = labels_of(tmp_path, x, settings, "ref")
-    got, model = labels_of(tmp_path, UNITS[unit](x), settings, "scaled")
+    ref, _ = segments_and_model(tmp_path, x, settings, "ref")
+    got, model = segments_and_model(tmp_path, UNITS[unit](x), settings, "scaled")
     # reference: scikit-learn adjusted_rand_score against the run on the unscaled data
     assert adjusted_rand_score(ref, got) == 1.0
     assert model.constant_columns == []
 
 
-def test_a_truly_constant_column_is_still_found_constant_at_any_magnitude(tmp_path, blobs):
-    x, _ = blobs
+def test_a_truly_constant_column_is_still_found_constant_at_any_magnitude(tmp_path, blobs_6k_3d_4c):
+    x, _ = blobs_6k_3d_4c
     ref = None
     for level in (0.0, 1e-300, 3.7, 1e13, 1e150):
         data = x.copy()
@@ -219,14 +213,14 @@ def test_model_sizes_are_the_label_view_counts(tmp_path, large_db, method, extra
 def test_density_on_small_tables_finds_four_clear_blobs(tmp_path, rows, min_count):
     x, y = make_blobs(n_samples=rows, centers=[[-9, -9, 0], [9, -9, 0], [-9, 9, 0], [9, 9, 9]], n_features=3,
                       cluster_std=1.0, random_state=2)
-    got, model = labels_of(tmp_path, x, Settings(k=0, method="density", min_count=min_count))
+    got, model = segments_and_model(tmp_path, x, Settings(k=0, method="density", min_count=min_count))
     # reference: make_blobs' truth
     assert model.k == 4
     assert adjusted_rand_score(y, got) == 1.0
 
 
-def test_scaling_none_does_not_speak_of_scaled_units(tmp_path, blobs):
-    _, model = labels_of(tmp_path, blobs[0], Settings(k=4, scaling="none"))
+def test_scaling_none_does_not_speak_of_scaled_units(tmp_path, blobs_6k_3d_4c):
+    _, model = segments_and_model(tmp_path, blobs_6k_3d_4c[0], Settings(k=4, scaling="none"))
     text = model.describe()
     assert "scaled units" not in text and "original units" in text
 
@@ -234,7 +228,7 @@ def test_scaling_none_does_not_speak_of_scaled_units(tmp_path, blobs):
 def test_noise_drop_says_shares_exclude_noise(tmp_path):
     x, _ = make_blobs(n_samples=4_000, centers=[[-9, -9, 0], [9, 9, 0]], n_features=3, cluster_std=1.0, random_state=2)
     x = np.vstack([x, np.random.default_rng(0).uniform(-30, 30, size=(200, 3))])
-    _, model = labels_of(tmp_path, x, Settings(k=0, method="density", noise="drop"))
+    _, model = segments_and_model(tmp_path, x, Settings(k=0, method="density", noise="drop"))
     assert model.extras["noise_rows"] > 0
     assert f"{model.extras['noise_rows']:,} noise rows" in model.describe()
     assert "not counted" in model.describe()

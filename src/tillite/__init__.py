@@ -14,7 +14,7 @@ _PUBLIC = {
     "TilliteError": "errors",
     "open_source": "engines",
     "Model": "model",
-    "Settings": "pipeline",
+    "Settings": "settings",
     "label": "pipeline",
     "segment": "pipeline",
     "Source": "sqlgen",

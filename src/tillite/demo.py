@@ -133,34 +133,17 @@ class MeterKind:
         return self.peak / self.litres
 
 
-#: Meter kinds in code order (code = index).  Shares sum to 1.
+#: Meter kinds in code order (code = index).  Shares sum to 1.  One row per kind, the figures
+#: in MeterKind's field order: name, share, litres, litres_meter_sd, litres_day_sd, weekend,
+#: dry_day | night, night_meter_sd, night_day_sd | peak, peak_sd | run, run_sd | zero, zero_sd,
+#: habit_sd | districts.
 KINDS: tuple[MeterKind, ...] = (
-    MeterKind(
-        "steady household", 0.55, 320.0, 0.25, 0.18, 1.12, 0.0,
-        0.04, 0.010, 0.012, 70.0, 0.15, 3.0, 0.9, 9.0, 1.5, 0.4,
-        (0.15, 0.15, 0.12, 0.22, 0.22, 0.14),
-    ),
-    MeterKind(
-        "large household", 0.20, 850.0, 0.20, 0.18, 1.10, 0.0,
-        0.05, 0.012, 0.015, 190.0, 0.15, 5.0, 1.0, 5.0, 1.3, 0.4,
-        (0.10, 0.25, 0.08, 0.17, 0.15, 0.25),
-    ),
-    MeterKind(
-        "holiday home", 0.12, 25.0, 0.40, 0.45, 1.60, 0.0,
-        0.02, 0.008, 0.012, 10.0, 0.20, 1.0, 0.5, 21.0, 1.2, 0.2,
-        (0.35, 0.10, 0.35, 0.05, 0.05, 0.10),
-    ),
-    MeterKind(
-        "garden irrigation", 0.09, 1400.0, 0.20, 0.22, 1.0, 0.25,
-        0.35, 0.040, 0.050, 450.0, 0.15, 6.0, 1.0, 8.0, 1.5, 0.4,
-        (0.05, 0.30, 0.05, 0.15, 0.20, 0.25),
-    ),
-    MeterKind(
-        "probable leak", 0.04, 700.0, 0.25, 0.12, 1.0, 0.0,
-        0.22, 0.030, 0.030, 80.0, 0.15, 19.0, 2.5, 0.0, 0.0, 0.0,
-        (0.25, 0.10, 0.30, 0.15, 0.10, 0.10),
-        always_on=True, always_on_share=0.85,
-    ),
+    MeterKind("steady household", 0.55, 320.0, 0.25, 0.18, 1.12, 0.0, 0.04, 0.010, 0.012, 70.0, 0.15, 3.0, 0.9, 9.0, 1.5, 0.4, (0.15, 0.15, 0.12, 0.22, 0.22, 0.14)),
+    MeterKind("large household", 0.20, 850.0, 0.20, 0.18, 1.10, 0.0, 0.05, 0.012, 0.015, 190.0, 0.15, 5.0, 1.0, 5.0, 1.3, 0.4, (0.10, 0.25, 0.08, 0.17, 0.15, 0.25)),
+    MeterKind("holiday home", 0.12, 25.0, 0.40, 0.45, 1.60, 0.0, 0.02, 0.008, 0.012, 10.0, 0.20, 1.0, 0.5, 21.0, 1.2, 0.2, (0.35, 0.10, 0.35, 0.05, 0.05, 0.10)),
+    MeterKind("garden irrigation", 0.09, 1400.0, 0.20, 0.22, 1.0, 0.25, 0.35, 0.040, 0.050, 450.0, 0.15, 6.0, 1.0, 8.0, 1.5, 0.4, (0.05, 0.30, 0.05, 0.15, 0.20, 0.25)),
+    MeterKind("probable leak", 0.04, 700.0, 0.25, 0.12, 1.0, 0.0, 0.22, 0.030, 0.030, 80.0, 0.15, 19.0, 2.5, 0.0, 0.0, 0.0, (0.25, 0.10, 0.30, 0.15, 0.10, 0.10),
+              always_on=True, always_on_share=0.85),
 )
 
 # Salts of the independent draws.  Meter, day and row numbers overlap, so every
@@ -239,6 +222,14 @@ def _bm_angle(key: str, salt: int, seed: int) -> exp.Expression:
     return num(2.0 * math.pi) * _uniform(key, salt, seed)
 
 
+def _bm_columns(key: str, seed: int, *draws: tuple[int, int, str, str]) -> list[exp.Expression]:
+    """A Box–Muller radius and angle column per (radius salt, angle salt, radius name, angle name)."""
+    columns: list[exp.Expression] = []
+    for radius_salt, angle_salt, radius, angle in draws:
+        columns += [_as(_bm_radius(key, radius_salt, seed), radius), _as(_bm_angle(key, angle_salt, seed), angle)]
+    return columns
+
+
 def _bm_pair(radius: str, angle: str) -> tuple[exp.Expression, exp.Expression]:
     """Two independent standard normals from a Box–Muller radius and angle column."""
     return (
@@ -301,10 +292,7 @@ def _meter_select(meters: int, seed: int) -> exp.Select:
             _as(col(mid), "mid"),
             _as(_uniform(mid, _S_KIND, seed), "uk"),
             _as(_uniform(mid, _S_DISTRICT, seed), "ud"),
-            _as(_bm_radius(mid, _S_M1A, seed), "r1"),
-            _as(_bm_angle(mid, _S_M1B, seed), "t1"),
-            _as(_bm_radius(mid, _S_M2A, seed), "r2"),
-            _as(_bm_angle(mid, _S_M2B, seed), "t2"),
+            *_bm_columns(mid, seed, (_S_M1A, _S_M1B, "r1", "t1"), (_S_M2A, _S_M2B, "r2", "t2")),
         ],
         _range(meters, "m", "mid"),
     )
@@ -392,12 +380,7 @@ def demo_select(rows: int = 1_000_000, days: int = 60, seed: int = 7) -> exp.Sel
     draws = _select(
         [
             exp.Star(),
-            _as(_bm_radius(key, _S_R1A, seed), "q1"),
-            _as(_bm_angle(key, _S_R1B, seed), "a1"),
-            _as(_bm_radius(key, _S_R2A, seed), "q2"),
-            _as(_bm_angle(key, _S_R2B, seed), "a2"),
-            _as(_bm_radius(key, _S_R3A, seed), "q3"),
-            _as(_bm_angle(key, _S_R3B, seed), "a3"),
+            *_bm_columns(key, seed, (_S_R1A, _S_R1B, "q1", "a1"), (_S_R2A, _S_R2B, "q2", "a2"), (_S_R3A, _S_R3B, "q3", "a3")),
             _as(_uniform(key, _S_FAIL, seed), "uf"),
         ],
         subquery(crossed, "x"),

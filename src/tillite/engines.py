@@ -26,6 +26,7 @@ from sqlglot import exp
 from . import sqlgen
 from .errors import DatabaseLocked, EngineError, MissingExtraError, SourceError, TilliteError, TransactionConflict
 from .sqlgen import Source
+from .targets import Target, target_for
 
 __all__ = [
     "Engine",
@@ -80,6 +81,7 @@ class Engine(Protocol):
     """What the pipeline needs from a database."""
 
     dialect: str
+    target: Target  # the engine's SQL differences (targets.py), the target of ``dialect``
 
     def query(self, statement: exp.Expression) -> dict[str, np.ndarray]:
         """Run a query; its columns as numpy arrays.
@@ -131,14 +133,34 @@ class StatementRunner:
 
     dialect: str
 
+    @property
+    def target(self) -> Target:
+        """The engine's SQL target (targets.py): every way its SQL differs, for the statement builders."""
+        return target_for(self.dialect)
+
     def sql_text(self, statement: exp.Expression) -> str:
-        return sqlgen.render(statement, self.dialect)
+        return sqlgen.render(statement, self.target)
 
     def __enter__(self) -> Any:
         return self
 
     def __exit__(self, *exc: object) -> None:
         self.close()  # type: ignore[attr-defined]
+
+    def execute(self, statement: exp.Expression) -> None:
+        """Run a statement that returns nothing, the driver's errors as ours (DuckDB, PostgreSQL)."""
+        with self._errors():  # type: ignore[attr-defined]
+            self.con.execute(self.sql_text(statement))  # type: ignore[attr-defined]
+
+    @contextmanager
+    def transaction(self) -> Iterator[None]:
+        """All statements inside commit together, or none do (ROLLBACK on any error inside).
+
+        The driver's own transaction (``_driver_transaction``: engines.duckdb_transaction,
+        psycopg's ``transaction()``), its errors as ours.
+        """
+        with self._errors(), self._driver_transaction():  # type: ignore[attr-defined]
+            yield
 
     def run_in_transaction(self, statements: Sequence[exp.Expression]) -> None:
         with self.transaction():
@@ -147,7 +169,7 @@ class StatementRunner:
 
     def relation_comment(self, name: str) -> str | None:
         """The comment on a view or table through the catalog (DuckDB, PostgreSQL)."""
-        got = self.query(sqlgen.comment_of_statement(name, self.dialect))  # type: ignore[attr-defined]
+        got = self.query(sqlgen.comment_of_statement(name, self.target))  # type: ignore[attr-defined]
         values = [v for v in got.get("comment", []) if v is not None and not np.ma.is_masked(v)]
         return str(values[0]) if values else None
 
@@ -227,15 +249,8 @@ class DuckDBEngine(StatementRunner):
         _count_fetched(self, got)
         return got
 
-    def execute(self, statement: exp.Expression) -> None:
-        with self._errors():
-            self.con.execute(self.sql_text(statement))
-
-    @contextmanager
-    def transaction(self) -> Iterator[None]:
-        """All statements inside commit together, or none do (rollback on any error)."""
-        with self._errors(), duckdb_transaction(self.con):
-            yield
+    def _driver_transaction(self) -> ContextManager[None]:
+        return duckdb_transaction(self.con)
 
     def snapshot_transaction(self) -> ContextManager[None]:
         """A transaction whose reads all see one snapshot: every DuckDB transaction does."""
@@ -317,7 +332,10 @@ def file_reader_for(path: str) -> str | None:
 
 
 def open_database(path: str, writable: bool = False) -> Engine:
-    """The DuckDB database file at ``path``, which must exist (DuckDB would create an empty one)."""
+    """The database at ``path``: PostgreSQL by its postgresql:// URL, else a DuckDB file, which must
+    exist (DuckDB would create an empty one). The one opener of a database without a table."""
+    if engine_kind(path) == "postgres":
+        return PostgresEngine(path, read_only=not writable)
     if not os.path.exists(path):
         raise SourceError(f"database {path} does not exist")
     return DuckDBEngine(path, read_only=not writable)
@@ -559,15 +577,8 @@ class PostgresEngine(StatementRunner):
         _count_fetched(self, got)
         return got
 
-    def execute(self, statement: exp.Expression) -> None:
-        with self._errors():
-            self.con.execute(self.sql_text(statement))
-
-    @contextmanager
-    def transaction(self) -> Iterator[None]:
-        """BEGIN ... COMMIT, or ROLLBACK on any error inside."""
-        with self._errors(), self.con.transaction():
-            yield
+    def _driver_transaction(self) -> ContextManager[None]:
+        return self.con.transaction()
 
     @contextmanager
     def snapshot_transaction(self) -> Iterator[None]:
@@ -721,7 +732,7 @@ class SparkEngine(StatementRunner):
 
     def sql_text(self, statement: exp.Expression) -> str:
         try:
-            return sqlgen.render(statement, self.dialect)
+            return sqlgen.render(statement, self.target)
         except ValueError as err:
             raise SourceError(str(err)) from None
 
@@ -761,7 +772,7 @@ class SparkEngine(StatementRunner):
     def _save_as_table(self, create: exp.Create) -> None:
         """CREATE [OR REPLACE] TABLE name AS SELECT, written by Spark's own table writer."""
         mode = "overwrite" if create.args.get("replace") else "errorifexists"
-        self._frame(create.expression).write.mode(mode).saveAsTable(sqlgen.render(create.this, self.dialect))
+        self._frame(create.expression).write.mode(mode).saveAsTable(sqlgen.render(create.this, self.target))
 
     def _write_file(self, copy: exp.Copy) -> None:
         """COPY (select) TO 'path' (FORMAT f): Spark writes one part file, which becomes ``path``.
@@ -795,7 +806,7 @@ class SparkEngine(StatementRunner):
         if not table.name:
             return False
         try:
-            return bool(self.spark.catalog.getTable(sqlgen.render(table, self.dialect)).isTemporary)
+            return bool(self.spark.catalog.getTable(sqlgen.render(table, self.target)).isTemporary)
         except self._errors_caught:
             return False
 
@@ -824,7 +835,7 @@ class SparkEngine(StatementRunner):
     def relation_kind(self, name: str) -> str | None:
         """Through Spark's catalog (Spark SQL has no information_schema)."""
         try:
-            found = self.spark.catalog.getTable(sqlgen.render(sqlgen.table_name(name), self.dialect))
+            found = self.spark.catalog.getTable(sqlgen.render(sqlgen.table_name(name), self.target))
         except self._errors_caught:
             return None
         return "view" if found.isTemporary or str(found.tableType).upper() in ("VIEW", "TEMPORARY") else "table"
@@ -832,7 +843,7 @@ class SparkEngine(StatementRunner):
     def relation_comment(self, name: str) -> str | None:
         """Through Spark's catalog: a table's comment, a catalog view's 'comment' property (temporary views: None)."""
         try:
-            found = self.spark.catalog.getTable(sqlgen.render(sqlgen.table_name(name), self.dialect))
+            found = self.spark.catalog.getTable(sqlgen.render(sqlgen.table_name(name), self.target))
         except self._errors_caught:
             return None
         return None if found.isTemporary else found.description

@@ -35,6 +35,10 @@ from . import __version__, sqlgen
 from .engines import connect_duckdb, duckdb_transaction
 from .errors import MacroError  # noqa: F401  (re-exported here)
 from .model import Model
+from .targets import DuckDB
+
+#: The macros are DuckDB macros: every tree here is built and rendered for this target.
+TARGET = DuckDB()
 
 __all__ = [
     "MacroError",
@@ -105,7 +109,7 @@ class SqlText:
 
 def identifier(name: str) -> SqlText:
     """A quoted DuckDB identifier."""
-    return SqlText(exp.to_identifier(name, quoted=True).sql(dialect="duckdb"))
+    return SqlText(exp.to_identifier(name, quoted=True).sql(dialect=TARGET.name))
 
 
 def identifiers(names: Sequence[str]) -> SqlText:
@@ -116,13 +120,13 @@ def identifiers(names: Sequence[str]) -> SqlText:
 def literal(value: float | int | str) -> SqlText:
     """A number (exact, read as DOUBLE when a float) or a string literal."""
     if isinstance(value, str):
-        return SqlText(exp.Literal.string(value).sql(dialect="duckdb"))
-    return SqlText(sqlgen.num(value).sql(dialect="duckdb"))
+        return SqlText(exp.Literal.string(value).sql(dialect=TARGET.name))
+    return SqlText(sqlgen.num(value).sql(dialect=TARGET.name))
 
 
 def expression(tree: exp.Expression, pretty: bool = False) -> SqlText:
     """Any sqlglot tree, rendered for DuckDB (over several lines when pretty)."""
-    return SqlText(tree.sql(dialect="duckdb", pretty=pretty))
+    return SqlText(tree.sql(dialect=TARGET.name, pretty=pretty))
 
 
 def template(stem: str) -> str:
@@ -180,8 +184,8 @@ def _column_sums(width: int) -> SqlText:
     items: list[str] = []
     for j in range(1, width + 1):
         u_j = _call("list_extract", sqlgen.col("u"), exp.Literal.number(j))
-        items.append(exp.alias_(exp.Sum(this=u_j), f"ls{j}", quoted=True).sql(dialect="duckdb"))
-        items.append(exp.alias_(exp.Sum(this=exp.Mul(this=u_j.copy(), expression=u_j.copy())), f"ss{j}", quoted=True).sql(dialect="duckdb"))
+        items.append(exp.alias_(exp.Sum(this=u_j), f"ls{j}", quoted=True).sql(dialect=TARGET.name))
+        items.append(exp.alias_(exp.Sum(this=exp.Mul(this=u_j.copy(), expression=u_j.copy())), f"ss{j}", quoted=True).sql(dialect=TARGET.name))
     return SqlText(",\n        ".join(items))
 
 
@@ -239,7 +243,7 @@ def scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
     v_names = [sqlgen.internal(f"v{j}") for j in range(d)]
     v_exprs = {n: sqlgen.paren(e) for n, e in zip(v_names, sqlgen.centred(model.columns, model.center))}
     scores = [_substitute(sqlgen.linear_form(v_names, a[i], b[i]), v_exprs) for i in range(k)]
-    usable = _substitute(sqlgen.usable_rows(v_names, "duckdb"), v_exprs)
+    usable = _substitute(sqlgen.usable_rows(v_names, TARGET), v_exprs)
     sq_norm = _substitute(
         sqlgen.total_sum(
             [exp.Mul(this=sqlgen.num(float(c)), expression=sqlgen.square(sqlgen.col(n))) for n, c in zip(v_names, norm) if c != 0.0]
@@ -304,7 +308,7 @@ def _registry_table() -> exp.Table:
 
 
 def _registry_exists(con: duckdb.DuckDBPyConnection) -> bool:
-    return bool(con.execute(sqlgen.render(sqlgen.list_tables_statement(named=REGISTRY))).fetchall())
+    return bool(con.execute(sqlgen.render(sqlgen.list_tables_statement(named=REGISTRY), TARGET)).fetchall())
 
 
 def _current_schema() -> exp.Expression:
@@ -321,7 +325,7 @@ def installed(con: duckdb.DuckDBPyConnection) -> list[InstalledMacro]:
         .from_(_registry_table())
         .order_by(sqlgen.col("macro_name"))
     )
-    return [InstalledMacro(*row) for row in con.execute(sqlgen.render(query)).fetchall()]
+    return [InstalledMacro(*row) for row in con.execute(sqlgen.render(query, TARGET)).fetchall()]
 
 
 def _drop(definition_kind: str, name: str) -> exp.Drop:
@@ -384,7 +388,7 @@ def existing_macros(con: duckdb.DuckDBPyConnection, names: Sequence[str]) -> dic
             )
         )
     )
-    return {name: comment for name, comment in con.execute(sqlgen.render(query)).fetchall()}
+    return {name: comment for name, comment in con.execute(sqlgen.render(query, TARGET)).fetchall()}
 
 
 def install(con: duckdb.DuckDBPyConnection, definitions: Sequence[MacroDefinition], replace: bool = False) -> list[str]:
@@ -399,7 +403,7 @@ def install(con: duckdb.DuckDBPyConnection, definitions: Sequence[MacroDefinitio
         )
     statements = [fill(template("registry"), {"registry": identifier(REGISTRY)})]
     for d in definitions:
-        statements += [d.sql, sqlgen.render(_mark(d)), sqlgen.render(_forget(d.name)), sqlgen.render(_record(d))]
+        statements += [d.sql, sqlgen.render(_mark(d), TARGET), sqlgen.render(_forget(d.name), TARGET), sqlgen.render(_record(d), TARGET)]
     _in_transaction(con, statements)
     return [d.name for d in definitions]
 
@@ -422,11 +426,11 @@ def remove(con: duckdb.DuckDBPyConnection, model: str | None = None) -> list[str
         if m.name in present and not _is_ours(present[m.name]):
             warnings.warn(f"macro {m.name} was replaced by one tillite did not install; left in place", UserWarning, stacklevel=2)
         else:
-            statements.append(sqlgen.render(_drop(m.kind, m.name)))
+            statements.append(sqlgen.render(_drop(m.kind, m.name), TARGET))
             dropped.append(m.name)
-        statements.append(sqlgen.render(_forget(m.name)))
+        statements.append(sqlgen.render(_forget(m.name), TARGET))
     if len(chosen) == len(recorded):
-        statements.append(sqlgen.render(exp.Drop(tables=[_registry_table()], kind="TABLE", exists=True)))
+        statements.append(sqlgen.render(exp.Drop(tables=[_registry_table()], kind="TABLE", exists=True), TARGET))
     _in_transaction(con, statements)
     return dropped
 

@@ -116,7 +116,7 @@ class Model:
         if not isinstance(data, dict):
             raise ModelError(f"{where} is not a tillite model (a JSON {type(data).__name__}, not an object)")
         if data.get("format") != FORMAT_NAME:
-            raise ModelError(f"{where} is not a tillite model (format {data.get('format')!r})")
+            raise ModelError(f"{where} is not a tillite model ({_format_said(data)})")
         version = data.get("version", 0)
         if not isinstance(version, int) or isinstance(version, bool):
             raise ModelError(f"{where} has an unreadable model version {version!r}")
@@ -449,3 +449,10 @@ def replaced_model_note(path: str | os.PathLike, model: "Model") -> str | None:
         cols = ", ".join(map(str, old.get("columns") or []))
         return f"replaced {path}, the model of another source or column list ({old.get('source')}: {cols})"
     return None
+
+
+def _format_said(data: dict[str, Any]) -> str:
+    """What a JSON object says its format is, in words (no Python None in a user's message)."""
+    if "format" not in data:
+        return f'no "format" field; a model file says "format": "{FORMAT_NAME}"'
+    return f'its format is {json.dumps(data["format"])}, not "{FORMAT_NAME}"'

@@ -107,7 +107,7 @@ def assigned_rows(engine: Engine, source: Source, model: Model, by: Sequence[str
     materialized labels table (``labels``, made by `tillite label --materialize` with this model)."""
     if labels is not None:
         return sqlgen.labelled_rows_select(labels, model.columns, by)
-    return sqlgen.report_rows_select(source, model.columns, by, model.assignment(), engine.dialect, cell_map=model.cell_map_spec())
+    return sqlgen.report_rows_select(source, model.columns, by, model.assignment(), engine.target, cell_map=model.cell_map_spec())
 
 
 def report_scan(
@@ -191,7 +191,7 @@ def sample_quartiles(
     (all rows when the table is small); returns them and the sample's size."""
     percent = quartile_sample_percent(model) if percent is None else percent
     rows = assigned_rows(engine, source, model, [], labels)
-    got = engine.query(sqlgen.quartile_statement(sqlgen.sampled_rows(rows, percent, engine.dialect), model.columns, engine.dialect))
+    got = engine.query(sqlgen.quartile_statement(sqlgen.sampled_rows(rows, percent, engine.target), model.columns, engine.target))
     out: dict[int, dict[str, Any]] = {}
     segs = _masked_ints(got["s"])
     sampled = 0
@@ -236,7 +236,7 @@ def breakdown(engine: Engine, source: Source, model: Model, column: str, top: in
 
 def map_cells(engine: Engine, source: Source, model: Model) -> tuple[CF, np.ndarray]:
     """The grid cells' CFs (in the grid's units) and keys: one cell pass with the model's grid."""
-    from .pipeline import run_cell_pass
+    from .stages import run_cell_pass
 
     cp = run_cell_pass(engine, source, model.columns, Grid.from_dict(model.grid))
     return cp.cells, cp.keys
@@ -555,7 +555,7 @@ def report_of_model(
     """
     import time
 
-    from .pipeline import check_columns
+    from .stages import check_columns
 
     by = list(dict.fromkeys(by))  # a column named twice is one breakdown
     present = check_columns(engine, source, list(model.columns))
@@ -580,7 +580,7 @@ def report_of_model(
 
 def _labels_table(engine: Engine, labels: str, model: Model, by: Sequence[str]) -> Source:
     """The --labels table as a Source, checked to hold a segment column, the model's and the --by columns."""
-    from .pipeline import check_columns
+    from .stages import check_columns
 
     src = Source.of_table(labels)
     present = check_columns(engine, src, ["segment"])
@@ -594,7 +594,7 @@ def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress
     """The report of a summary store's current model: the map from its kept cells (no scan), plus its history."""
     from . import store as S
     from . import store_history
-    from .pipeline import check_columns
+    from .stages import check_columns
 
     info = S.load(engine, store)
     by = list(dict.fromkeys(by))  # a column named twice is one breakdown

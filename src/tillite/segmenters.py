@@ -21,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import features as F
+from .distances import nearest_rows, sq_distance_blocks, sq_distances, sq_norms
 from .features import CF
 
 def one_blas_thread() -> AbstractContextManager:
@@ -66,18 +67,9 @@ class KMeansResult:
     moves: int = 0  # relocation moves kept (see _relocate)
 
 
-def _sq_dist(x: np.ndarray, c: np.ndarray) -> np.ndarray:
-    """Squared Euclidean distances, matrix (len(x), len(c)), clamped at 0 (one BLAS product)."""
-    d = x @ c.T
-    d *= -2.0
-    d += _sq_norms(x)[:, None]
-    d += _sq_norms(c)[None, :]
-    return np.maximum(d, 0.0, out=d)
-
-
 def nearest(x: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Index of and squared distance to the nearest row of c, for each row of x."""
-    d = _sq_dist(x, c)
+    d = sq_distances(x, c)
     idx = d.argmin(axis=1)
     return idx, d[np.arange(len(x)), idx]
 
@@ -91,7 +83,7 @@ def kmeans_plus_plus(x: np.ndarray, w: np.ndarray, k: int, rng: np.random.Genera
     """
     m = len(x)
     trials = 2 + int(np.log(k))
-    xn = _sq_norms(x)
+    xn = sq_norms(x)
     first = rng.choice(m, p=w / w.sum())
     centres = [x[first]]
     closest = np.maximum(xn - 2.0 * x @ x[first] + xn[first], 0.0)
@@ -123,7 +115,7 @@ def kmeans_plus_plus(x: np.ndarray, w: np.ndarray, k: int, rng: np.random.Genera
 # nearest other centre) cannot change centre, so only the others get distances computed.
 def _two_nearest(x: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Nearest centre, distance to it and distance to the second nearest (inf when k = 1)."""
-    d = _sq_dist(x, c)
+    d = sq_distances(x, c)
     rows = np.arange(len(x))
     first = d.argmin(axis=1)
     best = d[rows, first]
@@ -161,7 +153,7 @@ def _lloyd(
     """
     k = centres.shape[0]
     xw = x * w[:, None]
-    sq = w * _sq_norms(x)
+    sq = w * sq_norms(x)
     labels, upper, lower = _two_nearest(x, centres)
     mass, sums = _means(xw, w, labels, k)
     s2 = np.bincount(labels, weights=sq, minlength=k)
@@ -181,8 +173,8 @@ def _lloyd(
             continue
         new = sums / mass[:, None]
         # cost of the current labels around their means, from the per-segment sums (a stopping test only)
-        new_cost = float((s2 - _sq_norms(sums) / mass).sum())
-        drift = np.sqrt(_sq_norms(new - centres))
+        new_cost = float((s2 - sq_norms(sums) / mass).sum())
+        drift = np.sqrt(sq_norms(new - centres))
         centres = new
         if cost - new_cost <= tol * abs(new_cost):
             break
@@ -194,7 +186,7 @@ def _lloyd(
             if d1 < d2:
                 top, d1, d2 = top[::-1], d2, d1
             lower -= np.where(labels == top[0], d2, d1)
-            gaps = _sq_dist(centres, centres)
+            gaps = sq_distances(centres, centres)
             np.fill_diagonal(gaps, np.inf)
             bound = np.maximum(lower, 0.5 * np.sqrt(gaps.min(axis=1))[labels])
         else:
@@ -241,7 +233,7 @@ def _split_two(x: np.ndarray, w: np.ndarray, rounds: int = 4) -> tuple[float, np
         if wa <= 0.0 or wa >= mass:
             break
         c = np.stack([w[side] @ x[side] / wa, w[~side] @ x[~side] / (mass - wa)])
-        d = _sq_dist(x, c)
+        d = sq_distances(x, c)
         side = d[:, 0] < d[:, 1]
         after = float(w @ d.min(axis=1))
     return max(before - after, 0.0), c[0], c[1]
@@ -271,7 +263,7 @@ def _relocate(
     accepted = 0
     while accepted < RELOCATE_MOVES:
         mass = np.bincount(labels, weights=w, minlength=k)
-        gaps = _sq_dist(centres, centres)
+        gaps = sq_distances(centres, centres)
         merge = mass[:, None] * mass[None, :] / np.maximum(mass[:, None] + mass[None, :], 1e-300) * gaps
         merge[np.tril_indices(k)] = np.inf
         order = np.argsort(labels, kind="stable")
@@ -405,11 +397,6 @@ def _column_weights(cells: CF, weights: np.ndarray | None) -> np.ndarray:
     return w
 
 
-def _sq_norms(x: np.ndarray) -> np.ndarray:
-    """Squared Euclidean norm of each row."""
-    return np.einsum("ij,ij->i", x, x)
-
-
 def components(m: int, a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Connected components of the graph on 0..m-1 with edges (a[i], b[i]).
 
@@ -504,7 +491,7 @@ def _nn_chain(x: np.ndarray, n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
             chain.append(int(np.flatnonzero(dead == 0)[0]))
         i = chain[-1]
         gap = pos_x - pos_x[i]
-        cost = pos_n * pos_n[i] / (pos_n + pos_n[i]) * _sq_norms(gap) + dead
+        cost = pos_n * pos_n[i] / (pos_n + pos_n[i]) * sq_norms(gap) + dead
         cost[i] = np.inf
         j = int(cost.argmin())
         prev = chain[-2] if len(chain) > 1 else -1
@@ -645,12 +632,8 @@ def _face_pairs(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 def _near_pairs(x: np.ndarray, radius: float, chunk: int = 1024) -> tuple[np.ndarray, np.ndarray]:
     """Pairs (i < j) of rows within ``radius`` of each other (chunked, O(m^2) time)."""
-    m = x.shape[0]
-    nrm = _sq_norms(x)
     out_a, out_b = [], []
-    for lo in range(0, m, chunk):
-        hi = min(m, lo + chunk)
-        g = nrm[lo:hi, None] + nrm[None, :] - 2.0 * x[lo:hi] @ x.T
+    for lo, _, g in sq_distance_blocks(x, chunk=chunk):
         i, j = np.nonzero(g <= radius * radius)
         i = i + lo
         up = i < j
@@ -659,27 +642,13 @@ def _near_pairs(x: np.ndarray, radius: float, chunk: int = 1024) -> tuple[np.nda
     return np.concatenate(out_a), np.concatenate(out_b)
 
 
-def _nearest_rows(x: np.ndarray, ref: np.ndarray, chunk: int = 1024) -> np.ndarray:
-    """Index of the nearest row of ``ref`` for each row of x (chunked)."""
-    out = np.empty(x.shape[0], dtype=np.int64)
-    rn = _sq_norms(ref)
-    for lo in range(0, x.shape[0], chunk):
-        hi = min(x.shape[0], lo + chunk)
-        out[lo:hi] = (rn[None, :] - 2.0 * x[lo:hi] @ ref.T).argmin(axis=1)
-    return out
-
-
 def default_radius(x: np.ndarray) -> float:
     """Joining distance for adjacency="distance": 1.5 x the median distance from a
     dense cell's centroid to its nearest other dense cell's centroid."""
     if x.shape[0] < 2:
         return 0.0
     near = np.empty(x.shape[0])
-    nrm = _sq_norms(x)
-    for lo in range(0, x.shape[0], 1024):
-        hi = min(x.shape[0], lo + 1024)
-        g = np.maximum(nrm[lo:hi, None] + nrm[None, :] - 2.0 * x[lo:hi] @ x.T, 0.0)
-        g[np.arange(hi - lo), np.arange(lo, hi)] = np.inf
+    for lo, hi, g in sq_distance_blocks(x, skip_self=True):
         near[lo:hi] = g.min(axis=1)
     return 1.5 * float(np.sqrt(np.median(near)))
 
@@ -744,7 +713,7 @@ def density(cfs: CF, keys: np.ndarray, *, min_count: float | None = None, adjace
         core = np.flatnonzero(labels >= 0)
         loose = np.flatnonzero((labels < 0) & (cfs.n > 0))
         if core.size and loose.size:
-            labels[loose] = labels[core[_nearest_rows(x[loose], x[core])]]
+            labels[loose] = labels[core[nearest_rows(x[loose], x[core])]]
     labels = _relabel_by_size(labels, cfs.n)
     k = int(labels.max()) + 1 if (labels >= 0).any() else 0
     segments = F.group_sum(cfs, labels, k)

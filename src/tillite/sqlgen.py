@@ -10,11 +10,16 @@ text for one dialect; the engines execute the text.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from functools import cached_property
+from functools import cached_property, reduce
 from typing import Sequence
 
 import numpy as np
 from sqlglot import exp
+
+from .targets import FILE_READER_CALLS, SPARK_FILE_FORMATS, SPARK_QUANTILE_ACCURACY, TARGETS, SparkFamily, Target, target_for
+
+#: A target, or a sqlglot dialect name standing for its target (``targets.target_for``).
+TargetLike = Target | str
 
 __all__ = [
     "Source",
@@ -36,13 +41,15 @@ __all__ = [
     "table_sample",
     "sample_repeats",
     "for_dialect",
+    "Target",
+    "target_for",
     "temporary_view",
 ]
 
 #: Reserved prefix of the helper columns inside generated queries.
 INTERNAL = "__tillite_"
 
-FILE_READERS = {"parquet": "read_parquet", "csv": "read_csv_auto", "json": "read_json_auto"}
+FILE_READERS = dict(zip(("parquet", "csv", "json"), FILE_READER_CALLS))
 
 
 @dataclass(frozen=True)
@@ -212,9 +219,10 @@ class Assignment:
 # --------------------------------------------------------------------------- helpers
 
 
-def render(statement: exp.Expression, dialect: str = "duckdb", pretty: bool = False) -> str:
-    """SQL text of a tree for one dialect."""
-    return for_dialect(statement, dialect).sql(dialect=dialect, pretty=pretty)
+def render(statement: exp.Expression, target: TargetLike = "duckdb", pretty: bool = False) -> str:
+    """SQL text of a tree for one target (or sqlglot dialect name)."""
+    target = target_for(target)
+    return target.prepare(statement).sql(dialect=target.name, pretty=pretty)
 
 
 def num(value: float | int) -> exp.Expression:
@@ -245,19 +253,14 @@ def to_double(e: exp.Expression) -> exp.Expression:
     return exp.cast(e, exp.DataType.build("DOUBLE"))
 
 
-def is_finite(e: exp.Expression, dialect: str) -> exp.Expression:
+def is_finite(e: exp.Expression, target: TargetLike) -> exp.Expression:
     """True for a finite number, False for NaN/Inf, NULL for NULL."""
-    if dialect == "duckdb":
-        return exp.Anonymous(this="isfinite", expressions=[e])
-    # x - x is NaN for NaN and +-Inf, and NaN = 0 is false in every engine we target.
-    return exp.EQ(this=exp.Paren(this=exp.Sub(this=e, expression=e.copy())), expression=num(0))
+    return target_for(target).is_finite(e)
 
 
 def all_of(conditions: list[exp.Expression]) -> exp.Expression:
-    out = conditions[0]
-    for c in conditions[1:]:
-        out = exp.And(this=out, expression=c)
-    return out
+    """c0 AND c1 AND ... (sqlglot's own builder; the conditions are taken as they are, not copied)."""
+    return exp.and_(*conditions, copy=False, wrap=False)
 
 
 def total_sum(terms: list[exp.Expression]) -> exp.Expression:
@@ -267,6 +270,11 @@ def total_sum(terms: list[exp.Expression]) -> exp.Expression:
     for t in terms[1:]:
         out = exp.Add(this=out, expression=t)
     return out
+
+
+def joined_text(pieces: Sequence[exp.Expression]) -> exp.Expression:
+    """p0 || p1 || ... (left to right, as written by hand)."""
+    return reduce(lambda out, piece: exp.DPipe(this=out, expression=piece), pieces[1:], pieces[0])
 
 
 def least_of(args: list[exp.Expression]) -> exp.Expression:
@@ -303,13 +311,13 @@ def centred(columns: Sequence[str], center: Sequence[float]) -> list[exp.Express
     return [exp.Sub(this=to_double(col(name)), expression=num(c)) for name, c in zip(columns, center)]
 
 
-def usable_rows(v_names: Sequence[str], dialect: str) -> exp.Expression:
+def usable_rows(v_names: Sequence[str], target: TargetLike) -> exp.Expression:
     """True when every centred value is finite; NULL when any is NULL.
 
     One finiteness test of their sum: NaN or an infinity in any term makes the
     sum non-finite (centred finite values do not overflow a double).
     """
-    return is_finite(paren(total_sum([col(n) for n in v_names])), dialect)
+    return is_finite(paren(total_sum([col(n) for n in v_names])), target)
 
 
 def linear_form(names: Sequence[str], coefs: Sequence[float], constant: float | None = None) -> exp.Expression:
@@ -353,7 +361,7 @@ def list_tables_statement(named: str | None = None) -> exp.Select:
 def sample_statement(
     source: Source,
     columns: Sequence[str],
-    dialect: str,
+    target: TargetLike,
     percent: float | None = None,
     method: str = "SYSTEM",
     limit: int | None = None,
@@ -366,36 +374,33 @@ def sample_statement(
     (``REPEATABLE (seed)``; on Spark a ``rand(seed)`` filter, repeatable for the
     same input partitioning); see ``sample_repeats``.
     """
+    target = target_for(target)
     rel = source.relation()
     sampled = percent is not None and percent < 100.0
-    spark_seeded = sampled and seed is not None and dialect in SPARK_DIALECTS
-    if sampled and not spark_seeded:
-        rel.set("sample", table_sample(float(percent), method, dialect, seed=seed))
+    by_filter = target.seeded_sample_filter(num(int(seed)), num(float(percent) / 100.0)) if sampled and seed is not None else None
+    if sampled and by_filter is None:
+        rel.set("sample", table_sample(float(percent), method, target, seed=seed))
     names = [internal(f"x{j}") for j in range(len(columns))]
     inner = exp.select(*[exp.alias_(to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)]).from_(rel)
-    if spark_seeded:
-        inner = inner.where(exp.LT(this=exp.Rand(this=num(int(seed))), expression=num(float(percent) / 100.0)))
-    outer = exp.select(*[col(n) for n in names]).from_(subquery(inner, internal("s"))).where(usable_rows(names, dialect))
+    if by_filter is not None:
+        inner = inner.where(by_filter)
+    outer = exp.select(*[col(n) for n in names]).from_(subquery(inner, internal("s"))).where(usable_rows(names, target))
     if limit is not None:
         outer = outer.limit(num(int(limit)))
     return outer
 
 
-def _sums(v_names: Sequence[str], dialect: str = "duckdb") -> list[exp.Expression]:
+def _sums(v_names: Sequence[str], target: TargetLike = "duckdb") -> list[exp.Expression]:
     """n, ls_j = sum(v_j), ss_j = sum(v_j * v_j)."""
     aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
-    aggs += [exp.alias_(float_sum(col(n), dialect), f"ls{j}", quoted=True) for j, n in enumerate(v_names)]
-    aggs += [exp.alias_(float_sum(square(col(n)), dialect), f"ss{j}", quoted=True) for j, n in enumerate(v_names)]
+    aggs += [exp.alias_(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(v_names)]
+    aggs += [exp.alias_(float_sum(square(col(n)), target), f"ss{j}", quoted=True) for j, n in enumerate(v_names)]
     return aggs
 
 
-def float_sum(e: exp.Expression, dialect: str) -> exp.Expression:
-    """Sum of doubles; in DuckDB its compensated ``fsum``, whose result does not change with
-    the order the threads combine their parts in (plain ``sum`` moves in the last bits from
-    run to run, and so would the model file).  Measured no slower than ``sum`` here."""
-    if dialect == "duckdb":
-        return exp.Anonymous(this="fsum", expressions=[e])
-    return exp.Sum(this=e)
+def float_sum(e: exp.Expression, target: TargetLike) -> exp.Expression:
+    """Sum of doubles; in DuckDB its compensated ``fsum`` (``targets.DuckDB.float_sum``)."""
+    return target_for(target).float_sum(e)
 
 
 @dataclass(frozen=True)
@@ -428,10 +433,7 @@ class Partitioning:
         pieces: list[exp.Expression] = []
         for i, (name, alias) in enumerate(zip(self.names, aliases)):
             pieces += ([exp.Literal.string("/")] if i else []) + [exp.Literal.string(f"{name}="), as_text(alias)]
-        out = pieces[0]
-        for piece in pieces[1:]:
-            out = exp.DPipe(this=out, expression=piece)
-        return out
+        return joined_text(pieces)
 
     def key(self) -> exp.Expression:
         """The partition's key: an injective text of its typed values (the store keys partitions by it).
@@ -450,11 +452,7 @@ class Partitioning:
             value = exp.DPipe(this=exp.DPipe(this=length, expression=exp.Literal.string(":")), expression=text)
             return exp.Coalesce(this=value, expressions=[exp.Literal.string("~")])  # NULL || text is NULL
 
-        pieces = [piece(a) for a in self.aliases()]
-        out = pieces[0]
-        for p in pieces[1:]:
-            out = exp.DPipe(this=out, expression=p)
-        return out
+        return joined_text([piece(a) for a in self.aliases()])
 
     def value_columns(self) -> list[exp.Expression]:
         """Each grouped value as text (NULL stays NULL), returned as pv0, pv1, ..."""
@@ -464,13 +462,14 @@ class Partitioning:
         ]
 
     def filter(
-        self, types: Sequence[str], values: Sequence[Sequence[str | None]], dialect: str | None = None
+        self, types: Sequence[str], values: Sequence[Sequence[str | None]], target: TargetLike | None = None
     ) -> exp.Expression:
         """Rows of the listed partitions: OR over partitions of AND over columns of col = CAST('v' AS type).
 
         ``types`` are the column types as the engine's describe() names them,
-        read in ``dialect`` (PostgreSQL's DOUBLE PRECISION, TIMESTAMPTZ, ...).
+        read in the target's dialect (PostgreSQL's DOUBLE PRECISION, TIMESTAMPTZ, ...).
         """
+        dialect = target_for(target).name if target is not None else None
         alternatives = []
         for row in values:
             terms = []
@@ -481,10 +480,7 @@ class Partitioning:
                     kind = exp.DataType.build(t, dialect=dialect)
                     terms.append(exp.EQ(this=e.copy(), expression=exp.cast(exp.Literal.string(v), kind)))
             alternatives.append(paren(all_of(terms)))
-        out = alternatives[0]
-        for alt in alternatives[1:]:
-            out = exp.Or(this=out, expression=alt)
-        return out
+        return exp.or_(*alternatives, copy=False, wrap=False)
 
     @staticmethod
     def of_columns(names: Sequence[str]) -> "Partitioning":
@@ -499,7 +495,7 @@ def cells_statement(
     source: Source,
     columns: Sequence[str],
     grid: Grid,
-    dialect: str,
+    target: TargetLike,
     partition: Partitioning | None = None,
     where: exp.Expression | None = None,
 ) -> exp.Select:
@@ -525,8 +521,8 @@ def cells_statement(
     if where is not None:
         stage1 = stage1.where(where)
     factors = grid.key_factors()
-    keys = [floor_of(linear_form(v, factors[:, a]), dialect) for a in range(factors.shape[1])]
-    keys[0] = case_when(usable_rows(v, dialect), keys[0])
+    keys = [floor_of(linear_form(v, factors[:, a]), target) for a in range(factors.shape[1])]
+    keys[0] = case_when(usable_rows(v, target), keys[0])
     names = grid.key_names()
     part_cols = [col(a) for a in partition.aliases()] if partition is not None else []
     summed = [col(n) for n in v]
@@ -539,13 +535,13 @@ def cells_statement(
     ).from_(subquery(stage1, internal("a")))
     part_text = [exp.alias_(partition.key(), "part", quoted=True)] if partition is not None else []
     group = [*part_cols, *[col(n) for n in names]]
-    return exp.select(*part_text, *[col(n) for n in names], *_sums(v, dialect)).from_(subquery(stage2, internal("b"))).group_by(
+    return exp.select(*part_text, *[col(n) for n in names], *_sums(v, target)).from_(subquery(stage2, internal("b"))).group_by(
         *[c.copy() for c in group]
     )
 
 
 def fingerprint_statement(
-    source: Source, columns: Sequence[str], partition: Partitioning, dialect: str, where: exp.Expression | None = None
+    source: Source, columns: Sequence[str], partition: Partitioning, target: TargetLike, where: exp.Expression | None = None
 ) -> exp.Select:
     """Per partition: its text, its values, row count and an order-independent hash aggregate.
 
@@ -555,7 +551,7 @@ def fingerprint_statement(
     Python.  Fingerprints are compared only with earlier ones from the same
     engine, never across engines.
     """
-    text = exp.cast(exp.Sum(this=row_hash(columns, dialect)), exp.DataType.build("VARCHAR"))
+    text = exp.cast(exp.Sum(this=row_hash(columns, target)), exp.DataType.build("VARCHAR"))
     inner = (
         exp.select(
             *partition.projected(),
@@ -573,7 +569,7 @@ def fingerprint_statement(
 
 
 #: Dialects whose 64-bit row hash ``row_hash`` builds.
-FINGERPRINT_DIALECTS = ("duckdb", "postgres", "spark", "databricks", "trino", "bigquery", "snowflake")
+FINGERPRINT_DIALECTS = tuple(t.name for t in TARGETS if t.hashes_rows)
 
 #: Row text (``row_text``): the NULL marker and the column separator.  Neither
 #: can be the text of a number, which is all the store hashes (it checks its columns).
@@ -581,39 +577,15 @@ ROW_TEXT_NULL = "~"
 ROW_TEXT_SEPARATOR = "|"
 
 
-def row_hash(columns: Sequence[str], dialect: str) -> exp.Expression:
+def row_hash(columns: Sequence[str], target: TargetLike) -> exp.Expression:
     """A 64-bit hash of a row's columns that tells NULL from values and keeps column boundaries.
 
-    Built so that SUM over it is exact in the dialect (no 64-bit overflow):
-
-    - DuckDB: hash(c0, c1, ...) (UBIGINT; SUM gives HUGEINT);
-    - PostgreSQL: hashtextextended(row text, 0) (BIGINT; SUM gives NUMERIC);
-    - Spark: xxhash64(c0 IS NULL, c0, c1 IS NULL, c1, ...) as DECIMAL(38,0) -- xxhash64
-      skips NULL arguments, so each column's NULL flag goes in before it;
-    - Trino: from_big_endian_64(xxhash64(to_utf8(row text))) as DECIMAL(38,0);
-    - BigQuery: farm_fingerprint(to_json_string(STRUCT(c0, c1, ...))) as BIGNUMERIC;
-    - Snowflake: hash(c0, c1, ...) as NUMBER(38,0) (Snowflake's HASH hashes NULL as a value).
+    Built so that SUM over it is exact in the dialect (no 64-bit overflow); each
+    target's ``row_hash`` says how (DuckDB hash, PostgreSQL hashtextextended of
+    the row text, Spark xxhash64 with NULL flags, ...).  NotImplementedError,
+    naming the dialects that have one, where the target has none.
     """
-    cols = [col(c) for c in columns]
-    if dialect == "duckdb":
-        return exp.Anonymous(this="hash", expressions=cols)
-    if dialect == "postgres":
-        return exp.Anonymous(this="hashtextextended", expressions=[row_text(columns), num(0)])
-    wide = exp.DataType.build("DECIMAL(38, 0)")
-    if dialect in ("spark", "databricks"):
-        flagged = [e for c in cols for e in (exp.Is(this=c.copy(), expression=exp.Null()), c)]
-        return exp.cast(exp.Anonymous(this="xxhash64", expressions=flagged), wide)
-    if dialect == "trino":
-        digest = exp.Anonymous(this="xxhash64", expressions=[exp.Anonymous(this="to_utf8", expressions=[row_text(columns)])])
-        return exp.cast(exp.Anonymous(this="from_big_endian_64", expressions=[digest]), wide)
-    if dialect == "bigquery":
-        as_json = exp.Anonymous(this="TO_JSON_STRING", expressions=[exp.Struct(expressions=cols)])
-        return exp.cast(exp.Anonymous(this="FARM_FINGERPRINT", expressions=[as_json]), exp.DataType.build("BIGNUMERIC", dialect="bigquery"))
-    if dialect == "snowflake":
-        return exp.cast(exp.Anonymous(this="hash", expressions=cols), wide)
-    raise NotImplementedError(
-        f"partition fingerprints are not built for the {dialect} dialect; built for {', '.join(FINGERPRINT_DIALECTS)}"
-    )
+    return target_for(target).row_hash([col(c) for c in columns], row_text(columns))
 
 
 def row_text(columns: Sequence[str]) -> exp.Expression:
@@ -628,10 +600,8 @@ def row_text(columns: Sequence[str]) -> exp.Expression:
         exp.Coalesce(this=exp.cast(col(c), exp.DataType.build("VARCHAR")), expressions=[exp.Literal.string(ROW_TEXT_NULL)])
         for c in columns
     ]
-    out = pieces[0]
-    for piece in pieces[1:]:
-        out = exp.DPipe(this=exp.DPipe(this=out, expression=exp.Literal.string(ROW_TEXT_SEPARATOR)), expression=piece)
-    return out
+    separated = [e for i, piece in enumerate(pieces) for e in ([exp.Literal.string(ROW_TEXT_SEPARATOR)] if i else []) + [piece]]
+    return joined_text(separated)
 
 
 def distinct_count_statement(source: Source, columns: Sequence[str], limit: int) -> exp.Select:
@@ -649,7 +619,7 @@ PREDICATE_KINDS = (
 )
 
 
-def partition_predicate(text: str, partition_columns: Sequence[str], dialect: str) -> exp.Expression:
+def partition_predicate(text: str, partition_columns: Sequence[str], target: TargetLike) -> exp.Expression:
     """Parse a user's predicate on the partition columns into a tree of ours, or raise ValueError.
 
     Only comparisons, AND/OR/NOT, IN, BETWEEN, IS [NOT] NULL, LIKE, casts and
@@ -660,6 +630,7 @@ def partition_predicate(text: str, partition_columns: Sequence[str], dialect: st
     import sqlglot
     from sqlglot.errors import ParseError
 
+    dialect = target_for(target).name
     try:
         tree = sqlglot.parse_one(text, read=dialect)
     except ParseError as err:
@@ -731,17 +702,14 @@ def select_where(table: str, where: exp.Expression | None = None, columns: Seque
     return sel.where(where) if where is not None else sel
 
 
-def lock_rows_statement(table: str, where: exp.Expression, columns: Sequence[str], dialect: str) -> exp.Select:
+def lock_rows_statement(table: str, where: exp.Expression, columns: Sequence[str], target: TargetLike) -> exp.Select:
     """SELECT columns FROM table WHERE ..., locking the rows until the transaction ends where the dialect can.
 
     PostgreSQL: FOR UPDATE NOWAIT, which fails at once (SQLSTATE 55P03) while
     another transaction holds one of the rows, instead of waiting for it.
     DuckDB has no row locks: there the update that follows conflicts instead.
     """
-    sel = select_where(table, where, columns)
-    if dialect == "postgres":
-        sel.set("locks", [exp.Lock(update=True, wait=True)])  # sqlglot: wait=True renders NOWAIT
-    return sel
+    return target_for(target).lock_rows(select_where(table, where, columns))
 
 
 def update_statement(table: str, values: dict[str, object], where: exp.Expression) -> exp.Update:
@@ -831,10 +799,10 @@ class CellMap:
         table_alias = exp.TableAlias(this=exp.to_identifier(alias, quoted=True), columns=[exp.to_identifier(n, quoted=True) for n in names])
         return exp.Values(expressions=rows, alias=table_alias)
 
-    def row_keys(self, grid_v: Sequence[str], dialect: str) -> list[exp.Expression]:
+    def row_keys(self, grid_v: Sequence[str], target: TargetLike) -> list[exp.Expression]:
         """Each row's packed cell code (or its per-axis keys), computed exactly as the cell pass does."""
         factors = self.grid.key_factors()
-        keys = [floor_of(linear_form(grid_v, factors[:, a]), dialect) for a in range(factors.shape[1])]
+        keys = [floor_of(linear_form(grid_v, factors[:, a]), target) for a in range(factors.shape[1])]
         packing = self.packing()
         if packing is None:
             return keys
@@ -863,7 +831,7 @@ PAIRWISE_MAX_K = 8
 
 
 def nearest_layers(
-    scored: exp.Select, score: Sequence[str], ids: Sequence[int], best: str, nearest: str, dialect: str, fence: bool
+    scored: exp.Select, score: Sequence[str], ids: Sequence[int], best: str, nearest: str, target: TargetLike, fence: bool
 ) -> exp.Select:
     """scored's rows plus ``best``, their least score, and ``nearest``, the id of the first segment with that score.
 
@@ -871,12 +839,12 @@ def nearest_layers(
     same segment on every row.  ``fence``: each layer is computed once per row
     on engines that would inline it (``scan_fence``).
     """
-    if pairwise_pays(len(score), dialect, fence):
-        return _first_least_pairwise(scored, score, ids, best, nearest, dialect, fence)
-    return _first_least_by_least(scored, score, ids, best, nearest, dialect, fence)
+    if pairwise_pays(len(score), target, fence):
+        return _first_least_pairwise(scored, score, ids, best, nearest, target, fence)
+    return _first_least_by_least(scored, score, ids, best, nearest, target, fence)
 
 
-def pairwise_pays(k: int, dialect: str, fence: bool) -> bool:
+def pairwise_pays(k: int, target: TargetLike, fence: bool) -> bool:
     """Whether the pairwise CASE (rather than LEAST) picks the nearest of k centroids.
 
     Only where it was measured to pay: DuckDB, and PostgreSQL when the layers are
@@ -884,11 +852,11 @@ def pairwise_pays(k: int, dialect: str, fence: bool) -> bool:
     CASE and the segment's, each with every score written out: reading it took
     1.4x as long as with LEAST (1M rows, k = 5 and 8).  Spark was not measured.
     """
-    return k <= PAIRWISE_MAX_K and (dialect == "duckdb" or (dialect == "postgres" and fence))
+    return k <= PAIRWISE_MAX_K and target_for(target).pairwise_nearest(fence)
 
 
 def _first_least_pairwise(
-    scored: exp.Select, score: Sequence[str], ids: Sequence[int], best: str, nearest: str, dialect: str, fence: bool
+    scored: exp.Select, score: Sequence[str], ids: Sequence[int], best: str, nearest: str, target: TargetLike, fence: bool
 ) -> exp.Select:
     """nearest = the first i whose score is <= every later one (one CASE); best = that score (a CASE on nearest).
 
@@ -910,7 +878,7 @@ def _first_least_pairwise(
         subquery(scored, internal("b"))
     )
     if fence:
-        with_id = scan_fence(with_id, dialect)
+        with_id = scan_fence(with_id, target)
     its_score = exp.Case(
         this=col(nearest), ifs=[exp.If(this=num(sid), true=col(s)) for s, sid in zip(score[:-1], ids)], default=col(score[-1])
     )
@@ -918,13 +886,13 @@ def _first_least_pairwise(
 
 
 def _first_least_by_least(
-    scored: exp.Select, score: Sequence[str], ids: Sequence[int], best: str, nearest: str, dialect: str, fence: bool
+    scored: exp.Select, score: Sequence[str], ids: Sequence[int], best: str, nearest: str, target: TargetLike, fence: bool
 ) -> exp.Select:
     """best = LEAST(scores); nearest = the first i with s_i = best (a CASE)."""
     least = least_of([col(n) for n in score])
     with_best = exp.select(exp.Star(), exp.alias_(least, best, quoted=True)).from_(subquery(scored, internal("b")))
     if fence:
-        with_best = scan_fence(with_best, dialect)
+        with_best = scan_fence(with_best, target)
     first = exp.Case(ifs=[exp.If(this=exp.EQ(this=col(score[i]), expression=col(best)), true=num(sid)) for i, sid in enumerate(ids)])
     return exp.select(exp.Star(), exp.alias_(first, nearest, quoted=True)).from_(subquery(with_best, internal("c")))
 
@@ -933,7 +901,7 @@ def _assignment_layers(
     source: Source,
     columns: Sequence[str],
     assign: Assignment,
-    dialect: str,
+    target: TargetLike,
     keep_source: bool,
     cell_map: CellMap | None = None,
     fence: bool | None = None,
@@ -949,6 +917,7 @@ def _assignment_layers(
     source column.  ``fence`` (default: when not keeping the source) computes
     the scores once per row on engines that would inline them (``scan_fence``).
     """
+    target = target_for(target)
     fence = (not keep_source) if fence is None else fence
     d, k = len(columns), len(assign.centroids)
     v = [internal(f"v{j}") for j in range(d)]
@@ -965,21 +934,21 @@ def _assignment_layers(
     passthrough = [exp.Star()] if keep_source else [col(n) for n in v + grid_v]
     stage2 = exp.select(
         *passthrough,
-        exp.alias_(usable_rows(v, dialect), internal("ok"), quoted=True),
+        exp.alias_(usable_rows(v, target), internal("ok"), quoted=True),
         *[exp.alias_(linear_form(v, a[i], b[i]), score[i], quoted=True) for i in range(k)],
     ).from_(subquery(stage1, internal("a")))
     if fence:
-        stage2 = scan_fence(stage2, dialect)
+        stage2 = scan_fence(stage2, target)
     ids = assign.segment_ids()
     nearest = internal("nearest")
-    stage3 = nearest_layers(stage2, score, ids, best, nearest, dialect, fence)
+    stage3 = nearest_layers(stage2, score, ids, best, nearest, target, fence)
     pick = case_when(col(internal("ok")), col(nearest))
     if cell_map is None:
         stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("n")))
         return stage4, seg, best, v
     # rows take their cell's segment when the cell is in the map: one hash join
     # on the packed cell code (or on the per-axis keys) against a small relation
-    row_keys = cell_map.row_keys(grid_v, dialect)
+    row_keys = cell_map.row_keys(grid_v, target)
     key_names = [internal(f"c{a_}") for a_ in range(len(row_keys))]
     map_names = cell_map.column_names()
     # the join carries what the pass needs, not the grid's own centred values
@@ -1013,7 +982,7 @@ def _squared_norm(v_names: Sequence[str], assign: Assignment) -> exp.Expression:
 
 
 def refine_statement(
-    source: Source, columns: Sequence[str], assign: Assignment, dialect: str, cell_map: CellMap | None = None
+    source: Source, columns: Sequence[str], assign: Assignment, target: TargetLike, cell_map: CellMap | None = None
 ) -> exp.Select:
     """A refine pass: nearest centroid per row, GROUP BY segment.
 
@@ -1024,11 +993,12 @@ def refine_statement(
     before and after moving the centroid both follow.  The segment NULL group
     counts skipped rows.
     """
-    inner, seg, best, v = _assignment_layers(source, columns, assign, dialect, keep_source=False, cell_map=cell_map)
+    target = target_for(target)
+    inner, seg, best, v = _assignment_layers(source, columns, assign, target, keep_source=False, cell_map=cell_map)
     aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
-    aggs += [exp.alias_(float_sum(col(n), dialect), f"ls{j}", quoted=True) for j, n in enumerate(v)]
+    aggs += [exp.alias_(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(v)]
     dist = exp.Add(this=col(best), expression=paren(_squared_norm(v, assign)))
-    aggs.append(exp.alias_(float_sum(dist, dialect), "dist", quoted=True))
+    aggs.append(exp.alias_(float_sum(dist, target), "dist", quoted=True))
     return (
         exp.select(exp.alias_(col(seg), "segment", quoted=True), *aggs)
         .from_(subquery(inner, internal("d")))
@@ -1041,7 +1011,7 @@ def label_select(
     columns: Sequence[str],
     source_columns: Sequence[str],
     assign: Assignment,
-    dialect: str,
+    target: TargetLike,
     segment_name: str = "segment",
     distance_name: str = "distance",
     cell_map: CellMap | None = None,
@@ -1057,7 +1027,7 @@ def label_select(
     for skipped rows and for the outlier group / noise (segment -1).
     """
     inner, seg, best, v = _assignment_layers(
-        source, columns, assign, dialect, keep_source=True, cell_map=cell_map, fence=materialize
+        source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=materialize
     )
     sq_norm = _squared_norm(v, assign)
     distance = case_when(
@@ -1113,89 +1083,45 @@ def copy_statement(select: exp.Select, path: str, file_format: str) -> exp.Copy:
 
 # --------------------------------------------------------------------------- dialects
 #
-# The same statement for other engines.  Where a dialect lacks a form DuckDB
-# has, the builders above call these helpers, which build an equivalent tree for
-# that dialect; ``render`` applies ``for_dialect`` to what only shows at the end
+# The same statement for other engines.  Where engines differ, the builders
+# above ask the statement's target (targets.py: one class per engine or
+# dialect); ``render`` applies ``Target.prepare`` to what only shows at the end
 # (file relations).  Engines never write SQL of their own.
 
 #: sqlglot dialect names that speak Spark SQL.
-SPARK_DIALECTS = ("spark", "spark2", "databricks", "hive")
-
-#: Spark SQL reads files in place as ``format.`path```; CSV has no header there.
-SPARK_FILE_FORMATS = {"read_parquet": "parquet", "read_json_auto": "json"}
+SPARK_DIALECTS = tuple(t.name for t in TARGETS if isinstance(t, SparkFamily))
 
 
-def floor_of(e: exp.Expression, dialect: str) -> exp.Expression:
-    """floor(e) as a DOUBLE, exact for every double.
-
-    Spark's FLOOR returns BIGINT, which overflows (an error under ANSI mode)
-    for far outliers and turns NaN into 0; there floor(e) is built from the
-    exact remainder r = e % 1 (sign of e): (e - r) - 1 when r < 0, else e - r.
-    e - r is exact (an integer-valued double) and r is 0 beyond 2^52.
-    """
-    if dialect not in SPARK_DIALECTS:
-        return exp.Floor(this=e)
-    rem = exp.Mod(this=paren(e), expression=num(1.0))
-    whole = exp.Sub(this=paren(e.copy()), expression=paren(rem))
-    below = exp.LT(this=paren(rem.copy()), expression=num(0.0))
-    return exp.Case(ifs=[exp.If(this=below, true=exp.Sub(this=paren(whole), expression=num(1.0)))], default=whole.copy())
+def floor_of(e: exp.Expression, target: TargetLike) -> exp.Expression:
+    """floor(e) as a DOUBLE, exact for every double (Spark: ``targets.SparkFamily.floor``)."""
+    return target_for(target).floor(e)
 
 
 #: Dialects whose TABLESAMPLE takes REPEATABLE (seed) and repeats the sample with it.
-REPEATABLE_SAMPLE_DIALECTS = ("duckdb", "postgres")
+REPEATABLE_SAMPLE_DIALECTS = tuple(t.name for t in TARGETS if t.repeatable_sample)
 
 
-def sample_repeats(dialect: str) -> str:
-    """What a seeded profile sample guarantees on this dialect (stated in the model's params)."""
-    if dialect in REPEATABLE_SAMPLE_DIALECTS:
-        return "yes"
-    if dialect in SPARK_DIALECTS:
-        return "for the same input partitioning"
-    return "no"
+def sample_repeats(target: TargetLike) -> str:
+    """What a seeded profile sample guarantees on this target (stated in the model's params)."""
+    return target_for(target).sample_repeats
 
 
-def table_sample(percent: float, method: str, dialect: str, seed: int | None = None) -> exp.TableSample:
-    """TABLESAMPLE METHOD (percent) in the dialect's own form.
+def table_sample(percent: float, method: str, target: TargetLike, seed: int | None = None) -> exp.TableSample:
+    """TABLESAMPLE METHOD (percent) in the target's own form.
 
     Spark SQL has a single row-sampling form, ``TABLESAMPLE (p PERCENT)``, whose
     percentage must be a plain decimal (it refuses exponent literals); BigQuery
     has SYSTEM only.  PostgreSQL, Trino and Snowflake take SYSTEM and BERNOULLI.
     ``seed`` adds ``REPEATABLE (seed)`` where the dialect has it (DuckDB, PostgreSQL).
     """
-    if dialect in SPARK_DIALECTS:
-        text = np.format_float_positional(percent, trim="-", precision=12, fractional=True)
-        return exp.TableSample(percent=exp.Literal.number(text))
-    if dialect == "bigquery":
-        method = "SYSTEM"
-    repeat = {"seed": num(int(seed))} if seed is not None and dialect in REPEATABLE_SAMPLE_DIALECTS else {}
-    return exp.TableSample(method=exp.var(method), percent=num(float(percent)), **repeat)
+    plain = exp.Literal.number(np.format_float_positional(percent, trim="-", precision=12, fractional=True))
+    seed_literal = num(int(seed)) if seed is not None else None
+    return target_for(target).table_sample(num(float(percent)), plain, method, seed_literal)
 
 
-def for_dialect(statement: exp.Expression, dialect: str) -> exp.Expression:
-    """The tree as the dialect needs it; the same tree when nothing differs."""
-    if dialect in SPARK_DIALECTS and any(_file_reader_call(t) for t in statement.find_all(exp.Table)):
-        return statement.transform(_spark_file_relation)
-    return statement
-
-
-def _file_reader_call(node: exp.Expression) -> bool:
-    return isinstance(node, exp.Table) and isinstance(node.this, exp.Anonymous) and node.this.name.lower() in FILE_READERS.values()
-
-
-def _spark_file_relation(node: exp.Expression) -> exp.Expression:
-    """read_parquet('p') -> parquet.`p` (one path or glob; Spark reads folders as well)."""
-    if not _file_reader_call(node):
-        return node
-    reader = node.this.name.lower()
-    args = node.this.expressions
-    if reader not in SPARK_FILE_FORMATS:
-        raise ValueError(f"Spark SQL cannot read {reader} sources in place with their header; convert them to Parquet or register a table")
-    if len(args) != 1 or not isinstance(args[0], exp.Literal):
-        raise ValueError("Spark SQL reads one path or glob per source, without extra reader options")
-    table = exp.Table(this=exp.to_identifier(args[0].name, quoted=True), db=exp.to_identifier(SPARK_FILE_FORMATS[reader]))
-    if node.args.get("alias"):
-        table.set("alias", node.args["alias"].copy())
-    return table
+def for_dialect(statement: exp.Expression, target: TargetLike) -> exp.Expression:
+    """The tree as the target needs it; the same tree when nothing differs."""
+    return target_for(target).prepare(statement)
 
 
 def temporary_view(create: exp.Create) -> exp.Create:
@@ -1233,7 +1159,7 @@ def sample_by_filter(statement: exp.Expression) -> exp.Expression:
     return out
 
 
-def scan_fence(select: exp.Select, dialect: str) -> exp.Select:
+def scan_fence(select: exp.Select, target: TargetLike) -> exp.Select:
     """The subquery computed once per row where the planner would inline it.
 
     PostgreSQL pulls simple subqueries up into their parent and has no common
@@ -1242,9 +1168,7 @@ def scan_fence(select: exp.Select, dialect: str) -> exp.Select:
     ``OFFSET 0`` keeps the subquery a separate step.  Used for the refine pass
     only: on a labels view it would also stop filters reaching the source.
     """
-    if dialect != "postgres":
-        return select
-    return select.offset(num(0), copy=False)
+    return target_for(target).scan_fence(select)
 
 
 # --------------------------------------------------------------------------- ownership marks
@@ -1253,20 +1177,16 @@ def scan_fence(select: exp.Select, dialect: str) -> exp.Select:
 OWNED_MARK = "made by tillite"
 
 
-def mark_statement(name: str, kind: str, text: str, dialect: str) -> exp.Expression:
+def mark_statement(name: str, kind: str, text: str, target: TargetLike) -> exp.Expression:
     """Write ``text`` as the comment of a view or table: tillite's mark on what it created.
 
     DuckDB and PostgreSQL: COMMENT ON VIEW|TABLE.  Spark has COMMENT ON TABLE for
     tables only; a catalog view takes its comment as the table property 'comment'.
     """
-    target = table_name(name)
-    if dialect == "spark" and kind == "view":
-        prop = exp.Property(this=exp.Literal.string("comment"), value=exp.Literal.string(text))
-        return exp.Alter(this=target, kind="VIEW", actions=[exp.AlterSet(expressions=[exp.Properties(expressions=[prop])])])
-    return exp.Comment(this=target, kind="VIEW" if kind == "view" else "TABLE", expression=exp.Literal.string(text))
+    return target_for(target).mark(table_name(name), kind, text)
 
 
-def comment_of_statement(name: str, dialect: str) -> exp.Select:
+def comment_of_statement(name: str, target: TargetLike) -> exp.Select:
     """SELECT the comment (column ``comment``) of a view or table; no row or NULL when it has none.
 
     DuckDB: its catalog functions, names compared case-insensitively as DuckDB
@@ -1274,25 +1194,7 @@ def comment_of_statement(name: str, dialect: str) -> exp.Select:
     obj_description of to_regclass, which resolves the (quoted) name as the
     server would and gives NULL for a missing relation.
     """
-    parts = name.split(".")
-    if dialect == "postgres":
-        regclass = exp.Anonymous(this="to_regclass", expressions=[exp.Literal.string(render(table_name(name), "postgres"))])
-        described = exp.Anonymous(this="obj_description", expressions=[regclass, exp.Literal.string("pg_class")])
-        return exp.select(exp.alias_(described, "comment", quoted=True))
-    listed = [
-        exp.select(col("database_name"), col("schema_name"), exp.alias_(col(name_column), "name", quoted=True), col("comment"))
-        .from_(exp.Table(this=exp.Anonymous(this=function, expressions=[])))
-        for function, name_column in (("duckdb_views", "view_name"), ("duckdb_tables", "table_name"))
-    ]
-    relations = exp.union(listed[0], listed[1], distinct=False).subquery("r")
-
-    def same(column: str, value: exp.Expression) -> exp.Expression:
-        return exp.EQ(this=exp.Lower(this=col(column)), expression=exp.Lower(this=value))
-
-    schema = exp.Literal.string(parts[-2]) if len(parts) >= 2 else exp.Anonymous(this="current_schema", expressions=[])
-    catalog = exp.Literal.string(parts[-3]) if len(parts) >= 3 else exp.Anonymous(this="current_database", expressions=[])
-    where = exp.and_(same("name", exp.Literal.string(parts[-1])), same("schema_name", schema), same("database_name", catalog))
-    return exp.select(col("comment")).from_(relations).where(where)
+    return target_for(target).comment_query(table_name(name), name.split("."))
 # --------------------------------------------------------------------------- report statistics
 #
 # The report's figures come back as aggregates over the labels: one GROUP BY
@@ -1302,22 +1204,11 @@ def comment_of_statement(name: str, dialect: str) -> exp.Select:
 
 QUARTILES = (0.25, 0.5, 0.75)
 
-#: Rank accuracy asked of Spark's percentile_approx: its documented relative
-#: rank error is 1 / accuracy.
-SPARK_QUANTILE_ACCURACY = 10_000
-
-
-def approx_quantile(e: exp.Expression, q: float, dialect: str) -> exp.Expression:
+def approx_quantile(e: exp.Expression, q: float, target: TargetLike) -> exp.Expression:
     """The engine's own approximate quantile: DuckDB approx_quantile (T-digest),
     PostgreSQL percentile_cont WITHIN GROUP (exact), Spark percentile_approx."""
     fraction = exp.Literal.number(repr(float(q)))  # a plain decimal: DuckDB wants a FLOAT/DECIMAL here, not DOUBLE
-    if dialect in ("postgres", "postgresql"):
-        return exp.WithinGroup(
-            this=exp.PercentileCont(this=fraction), expression=exp.Order(expressions=[exp.Ordered(this=e)])
-        )
-    if dialect in SPARK_DIALECTS:
-        return exp.ApproxQuantile(this=e, quantile=fraction, accuracy=exp.Literal.number(SPARK_QUANTILE_ACCURACY))
-    return exp.ApproxQuantile(this=e, quantile=fraction)
+    return target_for(target).quantile(e, fraction)
 
 
 def segment_names_column(select: exp.Select, segment: str, names: dict[int, str], alias: str = "segment_name") -> exp.Select:
@@ -1348,14 +1239,14 @@ QUARTILE_SAMPLE_SEED = 20261202
 
 
 def report_rows_select(
-    source: Source, columns: Sequence[str], by: Sequence[str], assign: Assignment, dialect: str,
+    source: Source, columns: Sequence[str], by: Sequence[str], assign: Assignment, target: TargetLike,
     cell_map: CellMap | None = None,
 ) -> exp.Select:
     """The model's columns, the breakdown columns and each row's segment (internal name); no distance.
 
     The scores are fenced (computed once per row) where the planner would inline them.
     """
-    inner, seg, _, _ = _assignment_layers(source, columns, assign, dialect, keep_source=True, cell_map=cell_map, fence=True)
+    inner, seg, _, _ = _assignment_layers(source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=True)
     keep = list(dict.fromkeys(list(columns) + list(by)))
     return exp.select(
         *[col(c) for c in keep], exp.alias_(exp.cast(col(seg), exp.DataType.build("INT")), seg, quoted=True)
@@ -1394,42 +1285,45 @@ def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence
     return select
 
 
-def sampled_rows(rows: exp.Select, percent: float, dialect: str, seed: int = QUARTILE_SAMPLE_SEED) -> exp.Select:
+def sampled_rows(rows: exp.Select, percent: float, target: TargetLike, seed: int = QUARTILE_SAMPLE_SEED) -> exp.Select:
     """The statement with its source table read through TABLESAMPLE BERNOULLI (percent), seeded where the
     dialect renders a seed (not Spark).  Unchanged at 100% or for sources that are not tables."""
     if percent >= 100.0:
         return rows
+    target = target_for(target)
     out = rows.copy()
     for source in out.find_all(exp.From):
         if isinstance(source.this, exp.Table):
-            sample = table_sample(float(percent), "BERNOULLI", dialect)
-            if dialect not in SPARK_DIALECTS:
+            sample = table_sample(float(percent), "BERNOULLI", target)
+            if target.seeds_quartile_sample():
                 sample.set("seed", num(int(seed)))
             source.this.set("sample", sample)
     return out
 
 
-def quartile_statement(rows: exp.Select, columns: Sequence[str], dialect: str) -> exp.Select:
+def quartile_statement(rows: exp.Select, columns: Sequence[str], target: TargetLike) -> exp.Select:
     """Per segment s: n (sampled rows) and the quartiles q25_{j}, q50_{j}, q75_{j} of each column."""
+    target = target_for(target)
     seg = col(internal("segment"))
     projections: list[exp.Expression] = [exp.alias_(seg, "s"), exp.alias_(exp.Count(this=exp.Star()), "n")]
     for j, name in enumerate(columns):
         x = to_double(col(name))
-        if dialect == "duckdb":  # one sort per column for all three quartiles: q_{j} is a list
-            quartiles = exp.Array(expressions=[exp.Literal.number(repr(q)) for q in QUARTILES])
-            projections.append(exp.alias_(exp.func("quantile_cont", x.copy(), quartiles), f"q_{j}"))
+        # one sort per column for all three quartiles where the target has it (DuckDB): q_{j} is a list
+        as_list = target.quartiles_as_list(x.copy(), [exp.Literal.number(repr(q)) for q in QUARTILES])
+        if as_list is not None:
+            projections.append(exp.alias_(as_list, f"q_{j}"))
             continue
         projections += [
-            exp.alias_(sample_quantile(x.copy(), q, dialect), f"q{int(round(q * 100))}_{j}") for q in QUARTILES
+            exp.alias_(sample_quantile(x.copy(), q, target), f"q{int(round(q * 100))}_{j}") for q in QUARTILES
         ]
     return exp.select(*projections).from_(subquery(rows, internal("r"))).group_by(seg.copy())
 
 
-def sample_quantile(e: exp.Expression, q: float, dialect: str) -> exp.Expression:
+def sample_quantile(e: exp.Expression, q: float, target: TargetLike) -> exp.Expression:
     """A quantile of the sampled rows: exact on PostgreSQL (percentile_cont), Spark's percentile_approx
     (rank error 1/10,000); DuckDB takes quantile_cont over a list of the three (exact on the sample).
     The sample keeps the memory bounded."""
-    return approx_quantile(e, q, dialect)
+    return approx_quantile(e, q, target)
 
 
 def labelled_rows_select(labels: Source, columns: Sequence[str], by: Sequence[str], segment: str = "segment") -> exp.Select:

@@ -40,28 +40,28 @@ from . import features as F
 from . import sqlgen, store_history
 from .engines import Engine
 from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
-    EngineError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
+    EngineError, InputError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
 )
 from .features import CF
 from .model import Model
-from .pipeline import (
-    InputError,
+from .pipeline import Settings, check_refresh_options, label as label_relation, store_owns_label
+from .stages import (
     ProgressFn,
-    check_refresh_options,
     SegmentStats,
-    Settings,
-    _quiet,
+    Standardisation,
     cells_from_result,
     check_columns,
     grid_for_profile,
-    label as label_relation,
     make_model,
     order_by_size,
+    attach_phase,
+    quiet_progress,
     refine_passes,
+    refine_phase,
     run_profile,
+    run_second_phase,
     second_phase,
     standardise_cells,
-    store_owns_label,
 )
 from .segmenters import nearest
 from .sqlgen import Grid, Source
@@ -373,7 +373,7 @@ def fingerprint_partitions(
     """Current fingerprints of every partition (one aggregate pass; files only where size/mtime moved)."""
     partitioning = _partitioning(spec)
     if not spec.files:
-        got = engine.query(sqlgen.fingerprint_statement(source, columns, partitioning, engine.dialect))
+        got = engine.query(sqlgen.fingerprint_statement(source, columns, partitioning, engine.target))
         return _fingerprints_of(got, len(spec.columns))
     out: dict[str, Fingerprint] = {}
     to_hash = []
@@ -387,7 +387,7 @@ def fingerprint_partitions(
             to_hash.append(path)
     if to_hash:
         scan = _scan_source(source, spec, to_hash)
-        got = engine.query(sqlgen.fingerprint_statement(scan, columns, partitioning, engine.dialect))
+        got = engine.query(sqlgen.fingerprint_statement(scan, columns, partitioning, engine.target))
         out.update(_fingerprints_of(got, 1, out))
     return out
 
@@ -456,6 +456,7 @@ def _settings_dict(settings: Settings) -> dict[str, Any]:
         "k": settings.k, "scaling": settings.scaling, "weights": settings.weights, "cell_budget": settings.cell_budget,
         "refine_passes": settings.refine_passes, "tolerance": settings.tolerance, "n_init": settings.n_init,
         "seed": settings.seed, "sample_rows": settings.sample_rows,
+        **({"method": settings.method} if settings.method != "kmeans" else {}),  # k-means stores keep their old settings
     }
 
 
@@ -473,6 +474,7 @@ def _segment_cells(
     source: Source,
     columns: Sequence[str],
     cells_grid: CF,
+    keys: np.ndarray,
     skipped: int,
     grid: Grid,
     settings: Settings,
@@ -481,14 +483,17 @@ def _segment_cells(
     progress: ProgressFn,
     seeding: dict[str, Any] | None = None,
 ) -> tuple[Model, CF, Any]:
-    """Second phase on merged cells (warm-started from centroids in original units), optional refine.
+    """Second phase on merged cells (k-means warm-started from centroids in original units), optional refine.
 
     With ``seeding`` (a dict to fill) a warm start is also tried against fresh
     k-means++ seeding on the same cells, and the lower SSE is kept: a warm start
-    cannot find a group of rows that arrived since the last model.
+    cannot find a group of rows that arrived since the last model.  Ward has
+    no start to warm: it runs as in ``pipeline.segment`` (``_ward_on_cells``).
     """
     weights = settings.column_weights(columns)
     cells, std = standardise_cells(cells_grid, grid, columns, settings, weights)
+    if settings.method == "ward":
+        return _ward_on_cells(engine, source, columns, cells, keys, std, skipped, grid, settings, where, progress), cells, std
     init = None if init_original is None else (np.asarray(init_original) - std.center[None, :]) / std.scale[None, :]
     t0 = time.perf_counter()
     result = second_phase(cells, settings, std.weights, where, init=init)
@@ -505,6 +510,32 @@ def _segment_cells(
     model = make_model(columns, std, grid, stats, settings, source, usable + skipped, skipped, int((cells.n > 0).sum()))
     model.passes = passes
     return model, cells, std
+
+
+def _ward_on_cells(
+    engine: Engine, source: Source, columns: Sequence[str], cells: CF, keys: np.ndarray, std: Standardisation,
+    skipped: int, grid: Grid, settings: Settings, where: str, progress: ProgressFn,
+) -> Model:
+    """Ward on the merged cells, the same stages as ``pipeline.segment --method ward``: the second phase (a CF tree
+    first above the budget), refine passes (none when the cells settle it), segments numbered largest first."""
+    t0 = time.perf_counter()
+    phase = run_second_phase(cells, keys, settings, std.weights, where, progress)
+    progress("second phase", f"{phase.summary}, {time.perf_counter() - t0:.2f} s")
+    usable = int(round(cells.n.sum()))
+    refined = refine_phase(engine, source, columns, cells, keys, grid, std, phase, settings, progress, usable)
+    model = make_model(columns, std, grid, refined.stats, settings, source, usable + skipped, skipped,
+                       int((cells.n > 0).sum()), extra_params={"cell_sse": phase.sse, **phase.params})
+    return attach_phase(model, "ward", phase, refined, grid, keys)
+
+
+def check_store_method(method: str) -> None:
+    """A store segments with k-means or Ward; density is refused, naming the parameter and why."""
+    if method == "density":
+        raise ParameterError(
+            "{method} density cannot keep a store: its segments are labelled through a map of the cells dense at "
+            "build, which rows arriving in new cells at a refresh would miss; use {method} kmeans or ward",
+            "method",
+        )
 
 
 def _better_of_warm_and_fresh(cells: CF, settings: Settings, weights: np.ndarray, where: str, warm: Any, seeding: dict[str, Any]) -> Any:
@@ -647,7 +678,7 @@ def build(
     partition: PartitionSpec,
     settings: Settings,
     store: str | None = None,
-    progress: ProgressFn = _quiet,
+    progress: ProgressFn = quiet_progress,
     grid: Grid | None = None,
     init_centroids: np.ndarray | None = None,
     replace: bool = False,
@@ -667,6 +698,7 @@ def build(
     """
     require_transactions(engine)
     columns = list(columns)
+    check_store_method(settings.method)  # before the checks of k, which density does not take
     settings.check(columns)
     name = store or default_store_name(source)
     if not partition.files and not partition.columns:
@@ -698,14 +730,14 @@ def build(
             engine.execute(st)
         engine.execute(sqlgen.create_table_statement(cells_table, _cells_columns(grid.dims, d), if_not_exists=False))
         t1 = time.perf_counter()
-        engine.execute(sqlgen.insert_select_statement(cells_table, sqlgen.cells_statement(scan, columns, grid, engine.dialect, _partitioning(partition))))
+        engine.execute(sqlgen.insert_select_statement(cells_table, sqlgen.cells_statement(scan, columns, grid, engine.target, _partitioning(partition))))
         cells_grid, keys, skipped = merged_cells(engine, cells_table, grid, d)
         if cells_grid.m == 0:
             raise InputError(f"no usable rows in {source.label}")
         progress("cells", f"{len(fps):,} partitions -> {cells_grid.m:,} cells ({skipped:,} rows skipped), {time.perf_counter() - t1:.2f} s")
-        model, _, _ = _segment_cells(engine, source, columns, cells_grid, skipped, grid, settings, source.label, init_centroids, progress)
+        model, _, _ = _segment_cells(engine, source, columns, cells_grid, keys, skipped, grid, settings, source.label, init_centroids, progress)
         key_range = np.stack([keys.min(axis=0), keys.max(axis=0)])
-        next_id = settings.k
+        next_id = model.k
         if previous is not None:
             sd = np.asarray(model.grid["sd"])
             model.ids, next_id = match_segments(
@@ -748,7 +780,7 @@ def _check_partition_count(engine: Engine, source: Source, partition: PartitionS
     return []
 
 
-def regrid(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segment_shift: float = 3.0) -> Model:
+def regrid(engine: Engine, store: str, progress: ProgressFn = quiet_progress, new_segment_shift: float = 3.0) -> Model:
     """Rebuild a store with a new grid from a new profile: every partition is rescanned.
 
     For when rows increasingly fall outside the built range (``status`` warns).
@@ -777,7 +809,7 @@ def _drop_store_statements(name: str, cells_table: str) -> list:
 def refresh(
     engine: Engine,
     store: str,
-    progress: ProgressFn = _quiet,
+    progress: ProgressFn = quiet_progress,
     drift_threshold: float = 0.5,
     new_segment_shift: float = 3.0,
     k: int | None = None,
@@ -914,7 +946,7 @@ def named_partitions_predicate(
     names = list(info.partition.columns)
     if where:
         try:
-            return sqlgen.partition_predicate(where, names, engine.dialect)
+            return sqlgen.partition_predicate(where, names, engine.target)
         except ValueError as err:
             raise ParameterError(f"{{where}} {where!r}: {err}", "where") from None
     types = types or dict(engine.describe(info.source))
@@ -927,7 +959,7 @@ def named_partitions_predicate(
         wanted.setdefault(by_lower[name.strip().lower()], []).append(value)
     terms = []
     for name, values in wanted.items():
-        kind = sqlgen.exp.DataType.build(types[name], dialect=engine.dialect)
+        kind = sqlgen.exp.DataType.build(types[name], dialect=engine.target.name)
         casts = [sqlgen.exp.cast(sqlgen.exp.Literal.string(v), kind) for v in values]
         try:  # each value must read as the column's type: one tiny query, no table
             engine.query(sqlgen.exp.select(*[sqlgen.exp.alias_(c.copy(), f"v{i}", quoted=True) for i, c in enumerate(casts)]))
@@ -939,7 +971,7 @@ def named_partitions_predicate(
 
 def _fingerprints_where(engine: Engine, scan: Source, info: StoreInfo, predicate: Any) -> dict[str, Fingerprint]:
     """Fingerprints of only the partitions whose rows satisfy ``predicate`` (the engine can skip the others' blocks)."""
-    statement = sqlgen.fingerprint_statement(scan, info.columns, _partitioning(info.partition), engine.dialect, where=predicate)
+    statement = sqlgen.fingerprint_statement(scan, info.columns, _partitioning(info.partition), engine.target, where=predicate)
     return _fingerprints_of(engine.query(statement), len(info.partition.columns))
 
 
@@ -952,7 +984,7 @@ def _stored_matching(
         return set()
     types = types or dict(engine.describe(info.source))
     names = list(info.partition.columns)
-    kinds = [sqlgen.exp.DataType.build(types[n], dialect=engine.dialect) for n in names]
+    kinds = [sqlgen.exp.DataType.build(types[n], dialect=engine.target.name) for n in names]
     key_alias = sqlgen.internal("part")
     rows = []
     for key, fp in stored.items():
@@ -978,10 +1010,10 @@ def _restricted_cells(
     """
     partitioning = _partitioning(info.partition)
     if info.partition.files:
-        return sqlgen.cells_statement(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.dialect, partitioning)
+        return sqlgen.cells_statement(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.target, partitioning)
     types = types or dict(engine.describe(info.source))
-    where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps], engine.dialect)
-    return sqlgen.cells_statement(scan, info.columns, info.grid, engine.dialect, partitioning, where=where)
+    where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps], engine.target)
+    return sqlgen.cells_statement(scan, info.columns, info.grid, engine.target, partitioning, where=where)
 
 
 def _claim(engine: Engine, info: StoreInfo) -> None:
@@ -995,7 +1027,7 @@ def _claim(engine: Engine, info: StoreInfo) -> None:
     """
     where = sqlgen.equals_all({"store": info.name})
     try:
-        got = engine.query(sqlgen.lock_rows_statement(STORES, where, ["version"], engine.dialect))
+        got = engine.query(sqlgen.lock_rows_statement(STORES, where, ["version"], engine.target))
         if len(got["version"]) != 1 or int(got["version"][0]) != info.version:
             raise _busy(info.name)
         engine.execute(sqlgen.update_statement(
@@ -1011,7 +1043,7 @@ def _busy(store: str) -> StoreBusy:
 
 def require_transactions(engine: Engine) -> None:
     """Refuse engines without multi-statement transactions: a store must change all at once or not at all."""
-    if engine.dialect in sqlgen.SPARK_DIALECTS:
+    if not engine.target.transactions:
         raise StoreError(
             "the summary store needs multi-statement transactions (a refresh swaps cells, partitions and model "
             "together, or changes nothing), which Spark SQL does not have; keep the store in DuckDB or PostgreSQL "
@@ -1023,13 +1055,13 @@ def _resegment(
     engine: Engine, info: StoreInfo, settings: Settings, progress: ProgressFn, new_segment_shift: float,
     seeding: dict[str, Any] | None = None,
 ):
-    cells_grid, _, skipped = merged_cells(engine, info.cells_table, info.grid, len(info.columns))
+    cells_grid, keys, skipped = merged_cells(engine, info.cells_table, info.grid, len(info.columns))
     if cells_grid.m == 0:
         raise InputError(f"store {info.name} has no usable rows left")
     old = info.model
     init = np.asarray(old.centroids) if settings.k == old.k else None
     model, cells, std = _segment_cells(
-        engine, info.source, info.columns, cells_grid, skipped, info.grid, settings, f"store {info.name}", init, progress, seeding,
+        engine, info.source, info.columns, cells_grid, keys, skipped, info.grid, settings, f"store {info.name}", init, progress, seeding,
     )
     ids, next_id = match_segments(np.asarray(old.centroids), old.segment_ids(), np.asarray(model.centroids), info.next_id, np.where(std.sd > 0, std.sd, 1.0), new_segment_shift)
     model.ids = ids
@@ -1056,7 +1088,7 @@ def _relabel(engine: Engine, info: StoreInfo, model: Model) -> None:
                            in_transaction=True, store=info.name)
 
 
-def resegment(engine: Engine, store: str, progress: ProgressFn = _quiet, new_segment_shift: float = 3.0) -> Model:
+def resegment(engine: Engine, store: str, progress: ProgressFn = quiet_progress, new_segment_shift: float = 3.0) -> Model:
     """Re-segment from the stored cells without scanning the source (e.g. after subtract_rows)."""
     require_transactions(engine)
     info = load(engine, store)

@@ -50,6 +50,7 @@ from typing import NamedTuple
 import numpy as np
 
 from . import features as F
+from .distances import nearest_rows, sq_distance_blocks, sq_norms
 from .features import CF
 
 __all__ = ["Condensed", "CFTree", "NodeView", "condense", "intrinsic_dimension", "starting_threshold"]
@@ -96,11 +97,6 @@ def _group_rows(keys: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndar
     return k[start], np.add.reduceat(rows[order], start, axis=0)
 
 
-def _sq_norms(x: np.ndarray) -> np.ndarray:
-    """Squared Euclidean norm of each row."""
-    return np.einsum("ij,ij->i", x, x)
-
-
 class _Prefix(NamedTuple):
     """Per-target prefix sums of a round, in target-sorted order (``fits`` in item order)."""
 
@@ -110,6 +106,16 @@ class _Prefix(NamedTuple):
     ly: np.ndarray
     sse: np.ndarray
     fits: np.ndarray
+
+
+def _assume_tree_shape(branching: int, leaf_capacity: int, criterion: str) -> None:
+    """The kernel's assumptions, one message each (user input is checked by tillite.settings first:
+    a ValueError here is a caller's bug)."""
+    for name, value in (("branching", branching), ("leaf_capacity", leaf_capacity)):
+        if value < 2:
+            raise ValueError(f"{name} must be at least 2, not {value}")
+    if criterion not in _CRITERIA:
+        raise ValueError(f"criterion must be one of {_CRITERIA}, not {criterion!r}")
 
 
 def _criterion_sq(sse: np.ndarray, n: np.ndarray, criterion: str) -> np.ndarray:
@@ -132,10 +138,7 @@ class CFTree:
     def __init__(self, d: int, threshold: float, branching: int = 50, leaf_capacity: int = 50,
                  criterion: str = "diameter", scale: float = 1.0, n_scale: float = 1.0,
                  offset: np.ndarray | None = None) -> None:
-        if branching < 2 or leaf_capacity < 2:
-            raise ValueError("branching and leaf_capacity must be at least 2")
-        if criterion not in _CRITERIA:
-            raise ValueError(f"criterion must be one of {_CRITERIA}, not {criterion!r}")
+        _assume_tree_shape(branching, leaf_capacity, criterion)
         if not np.isfinite(threshold) or threshold < 0:
             raise ValueError(f"threshold must be a finite number >= 0, not {threshold}")
         self.d, self.threshold, self.criterion = d, float(threshold), criterion
@@ -211,7 +214,7 @@ class CFTree:
         ok = n > self._n_eps
         c = self.sls.reshape(-1, self.d)[flat] / np.where(ok, n, 1.0)[:, None]
         self.cen.reshape(-1, self.d)[flat] = c
-        self.nrm.reshape(-1)[flat] = np.where(ok, _sq_norms(c), np.inf)
+        self.nrm.reshape(-1)[flat] = np.where(ok, sq_norms(c), np.inf)
 
     @property
     def entry_count(self) -> int:
@@ -279,7 +282,7 @@ class CFTree:
         ok = live & pre.fits
         rank: np.ndarray | None = None
         if grow:
-            cut, rank = self._cut_grow(ok, leaf, target, x, np.where(live, _sq_norms(y), np.inf))
+            cut, rank = self._cut_grow(ok, leaf, target, x, np.where(live, sq_norms(y), np.inf))
             if cut == 0:
                 return 1, np.array([self._insert_alone(n[0], x[0], s[0], nodes[:, 0], slots[:, 0])])
         else:
@@ -312,11 +315,11 @@ class CFTree:
         start[1:] = t_sorted[1:] != t_sorted[:-1]
         first = np.maximum.accumulate(np.where(start, np.arange(r), 0))
         no, yo = n[order], n[order][:, None] * y[order]
-        qo = s[order] + no * _sq_norms(y[order])
+        qo = s[order] + no * sq_norms(y[order])
         cn, cq, cy = np.cumsum(no), np.cumsum(qo), np.cumsum(yo, axis=0)
         big_n = n_t[order] + cn - cn[first] + no[first]
         ly = cy - cy[first] + yo[first]
-        sse = np.maximum(s_t[order] + cq - cq[first] + qo[first] - _sq_norms(ly) / big_n, 0.0)
+        sse = np.maximum(s_t[order] + cq - cq[first] + qo[first] - sq_norms(ly) / big_n, 0.0)
         fits = np.empty(r, dtype=bool)
         fits[order] = _criterion_sq(sse, big_n, self.criterion) <= self._t2
         return _Prefix(order, t_sorted, big_n, ly, sse, fits)
@@ -355,7 +358,7 @@ class CFTree:
             offs = np.arange(pairs) - np.repeat(np.cumsum(before) - before, before)
             pj, pf = order[item], order[np.flatnonzero(bad)[np.repeat(base, before) + offs]]
             gap = x[pj] - x[pf]
-            clash = (_sq_norms(gap) < d2[pj]) | (target[pj] == target[pf])
+            clash = (sq_norms(gap) < d2[pj]) | (target[pj] == target[pf])
             if clash.any():
                 cut = min(cut, int(pj[clash].min()))
         return cut, rank
@@ -588,17 +591,8 @@ class Condensed:
 def _merged_sq_to_nearest(n: np.ndarray, x: np.ndarray, s: np.ndarray, criterion: str,
                           chunk: int = 512) -> np.ndarray:
     """Squared merged diameter/radius of each item with its nearest other item (by centroid)."""
-    m = n.shape[0]
-    near = np.empty(m, dtype=np.int64)
-    nrm = _sq_norms(x)
-    for lo in range(0, m, chunk):
-        hi = min(m, lo + chunk)
-        g = x[lo:hi] @ x.T
-        g *= -2.0
-        g += nrm[None, :]
-        g[np.arange(hi - lo), np.arange(lo, hi)] = np.inf
-        near[lo:hi] = g.argmin(axis=1)
-    gap = _sq_norms(x - x[near])
+    near = nearest_rows(x, chunk=chunk, skip_self=True)
+    gap = sq_norms(x - x[near])
     both = n + n[near]
     return _criterion_sq(s + s[near] + n * n[near] / both * gap, both, criterion)
 
@@ -615,12 +609,8 @@ def intrinsic_dimension(x: np.ndarray, k: int = 10, sample: int = 1000,
     if m > sample:
         x = x[rng.choice(m, size=sample, replace=False)]
         m = sample
-    nrm = _sq_norms(x)
     inv = np.empty(m)
-    for lo in range(0, m, 512):
-        hi = min(m, lo + 512)
-        g = np.maximum(nrm[lo:hi, None] + nrm[None, :] - 2.0 * x[lo:hi] @ x.T, 0.0)
-        g[np.arange(hi - lo), np.arange(lo, hi)] = np.inf
+    for lo, hi, g in sq_distance_blocks(x, chunk=512, skip_self=True):
         near = np.sqrt(np.partition(g, k - 1, axis=1)[:, :k])
         near.sort(axis=1)
         near = np.maximum(near, 1e-12 * max(float(near[:, -1].max()), 1e-300))
@@ -680,10 +670,7 @@ def condense(cells: CF, *, threshold: float | None = None, branching: int = 50, 
     """
     if budget < 1:
         raise ValueError("budget must be at least 1")
-    if branching < 2 or leaf_capacity < 2:
-        raise ValueError("branching and leaf_capacity must be at least 2")
-    if criterion not in _CRITERIA:
-        raise ValueError(f"criterion must be one of {_CRITERIA}, not {criterion!r}")
+    _assume_tree_shape(branching, leaf_capacity, criterion)
     if not 0.0 <= outlier_share < 1.0:
         raise ValueError("outlier_share must be in [0, 1)")
     w = np.ones(cells.d) if weights is None else np.asarray(weights, dtype=np.float64).reshape(-1)
@@ -697,7 +684,7 @@ def condense(cells: CF, *, threshold: float | None = None, branching: int = 50, 
     s_all = F.scatter(cells, w)
     order = rng.permutation(np.flatnonzero(cells.n > 0))
     n, x, s = cells.n[order], x_all[order], s_all[order]
-    scale = float(np.mean(_sq_norms(x)) + np.mean(s / n)) if n.size else 1.0
+    scale = float(np.mean(sq_norms(x)) + np.mean(s / n)) if n.size else 1.0
     n_scale = float(n.sum()) if n.size else 1.0
     if threshold is None:
         threshold = starting_threshold(n, x, s, budget, criterion, rng)

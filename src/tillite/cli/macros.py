@@ -1,26 +1,20 @@
 """`tillite macros`: put tillite's SQL macros into a DuckDB file, print them, or take them out.
 
 A thin layer over tillite.macros.  Registered on the main command with
-``main.add_command(macros)``.
+``main.add_command(macros)`` in tillite.cli.
 """
 
 from __future__ import annotations
 
 import click
 
-from .lazy import lazy_module, lazy_name
+from ..lazy import lazy_module, lazy_name
+from .shared import user_errors
 
 M = lazy_module("tillite.macros")  # imports duckdb: only when a macros command runs
 Model = lazy_name("tillite.model", "Model")
 
 __all__ = ["macros"]
-
-
-def _user_errors():
-    """Our errors and the database's as one-line messages with exit code 1 (the main command's handler)."""
-    from .cli import user_errors
-
-    return user_errors()
 
 
 def _model(model_path: str | None, name: str | None) -> Model | None:
@@ -72,7 +66,7 @@ def install_command(database: str, model_path: str | None, name: str | None, rep
 
     A macro of the same name that tillite did not install is replaced only with --replace.
     """
-    with _user_errors():
+    with user_errors():
         model = _model(model_path, name)
         definitions = _definitions(model, name)
         names = M.install_into(database, definitions, replace=replace)
@@ -86,7 +80,7 @@ def install_command(database: str, model_path: str | None, name: str | None, rep
 @click.option("--name", help="Prefix of the scoring macros: NAME_segment and NAME_distance.")
 def show_command(model_path: str | None, name: str | None) -> None:
     """Print the macros' SQL, to paste into any DuckDB console."""
-    with _user_errors():
+    with user_errors():
         text = M.script(_definitions(_model(model_path, name), name))
     click.echo(text, nl=False)
 
@@ -99,7 +93,7 @@ def remove_command(database: str, name: str | None) -> None:
 
     A recorded macro that someone replaced with their own is left in place, with a warning line.
     """
-    with _user_errors():
+    with user_errors():
         dropped = M.remove_from(database, name)
     if dropped:
         click.echo(f"removed from {database}: {', '.join(dropped)}")

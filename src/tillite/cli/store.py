@@ -8,23 +8,20 @@ import click
 
 from typing import TYPE_CHECKING
 
-from .lazy import lazy_module, lazy_name
+from ..errors import DatabaseLocked
+from ..lazy import lazy_module, lazy_name
+from .shared import parameter_option, parse_weights, progress_printer, split_columns, user_errors
 
 if TYPE_CHECKING:
-    from .engines import Engine
+    from ..engines import Engine
 
 # imported when a store command runs
 store_api = lazy_module("tillite.store")
-PostgresEngine, engine_kind, open_database, open_source, is_file_source = (
-    lazy_name("tillite.engines", n) for n in ("PostgresEngine", "engine_kind", "open_database", "open_source", "is_file_source")
+open_database, open_source, is_file_source = (
+    lazy_name("tillite.engines", n) for n in ("open_database", "open_source", "is_file_source")
 )
 
-
-def _cli():
-    """The shared helpers of the main command module (imported late: it registers us)."""
-    from . import cli
-
-    return cli
+__all__ = ["store_group", "refresh_command", "open_store_database"]
 
 
 @click.group("store")
@@ -40,19 +37,17 @@ def store_group() -> None:
               help="Partition column(s), comma-separated; for a Parquet/CSV SOURCE each file is a partition.")
 @click.option("--store", "store_name", help="Store name (default: the table name, or the folder of the files).")
 @click.option("--db", "database", help="For a Parquet/CSV SOURCE: the DuckDB file that keeps the store (created if missing).")
-@click.option("--k", "-k", "k", type=int, required=True, help="Number of segments.")
-@click.option("--scaling", type=click.Choice(["zscore", "none"]), default="zscore", show_default=True,
-              help="Put columns on a common scale (z-scores) before measuring distances, or use them as they are.")
-@click.option("--weights", help="Column multipliers after scaling, e.g. litres=2.")
-@click.option("--cell-budget", type=int, default=20_000, show_default=True,
-              help="About how many grid cells the frozen grid aims for.")
-@click.option("--refine-passes", type=int, default=0, show_default=True,
-              help="Row-level refine passes at build and refresh (each scans every partition; 0 keeps refresh cost "
-                   "proportional to changed partitions).")
-@click.option("--restarts", type=int, default=10, show_default=True,
-              help="k-means++ restarts on the cells (at build, and for each refresh's fresh seeding).")
-@click.option("--seed", type=int, default=0, show_default=True,
-              help="Seed of the profile sample and k-means++ (0 to 2147483647).")
+@parameter_option("k", type=int, required=True, help="Number of segments.")
+@parameter_option("method", help="Second phase on the merged cells: kmeans or ward, as in `tillite segment`; refreshes keep "
+                                 "it. density is refused (its cell map would miss rows arriving in new cells).")
+@parameter_option("scaling", help="Put columns on a common scale (z-scores) before measuring distances, or use them as they are.")
+@parameter_option("weights", help="Column multipliers after scaling, e.g. litres=2.")
+@parameter_option("cell_budget", help="About how many grid cells the frozen grid aims for.")
+@parameter_option("refine_passes", default=0,
+                  help="Row-level refine passes at build and refresh (each scans every partition; 0 keeps refresh cost "
+                       "proportional to changed partitions).")
+@parameter_option("n_init", help="k-means++ restarts on the cells (at build, and for each refresh's fresh seeding).")
+@parameter_option("seed", help="Seed of the profile sample and k-means++ (0 to 2147483647).")
 @click.option("--regrid", is_flag=True, help="Replace an existing store of that name, with a new grid.")
 @click.option("--many-partitions", is_flag=True,
               help="Build even when the partition column gives more partitions than the hard limit "
@@ -60,21 +55,20 @@ def store_group() -> None:
 @click.option("--out", "-o", help="Also write the model file here.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
-def build_command(source, table, columns, partition_by, store_name, database, k, scaling, weights, cell_budget, refine_passes,
-                  restarts, seed, regrid, many_partitions, out, quiet, as_json) -> None:
+def build_command(source, table, columns, partition_by, store_name, database, k, method, scaling, weights, cell_budget, refine_passes,
+                  n_init, seed, regrid, many_partitions, out, quiet, as_json) -> None:
     """Build a summary store for SOURCE: frozen grid, per-partition cells, first segments."""
-    cli = _cli()
-    with cli.user_errors(options={"replace": "--regrid"}):
+    with user_errors(options={"replace": "--regrid"}):
         settings = store_api.Settings(
-            k=k, scaling=scaling, weights=cli._parse_weights(weights), cell_budget=cell_budget,
-            refine_passes=refine_passes, n_init=restarts, seed=seed,
+            k=k, method=method, scaling=scaling, weights=parse_weights(weights), cell_budget=cell_budget,
+            refine_passes=refine_passes, n_init=n_init, seed=seed,
         )
         if is_file_source(source) and not database:
             raise click.UsageError("a store over files needs --db, the DuckDB file that keeps it")
         with open_source(source, table, writable=True, database=database) as (engine, src):
-            spec = store_api.PartitionSpec(files=True) if src.files else store_api.PartitionSpec(tuple(cli._split_columns(partition_by)))
-            info, model = store_api.build(engine, src, cli._split_columns(columns), spec, settings, store=store_name,
-                                          progress=cli._progress(quiet), replace=regrid, many_partitions=many_partitions)
+            spec = store_api.PartitionSpec(files=True) if src.files else store_api.PartitionSpec(tuple(split_columns(partition_by)))
+            info, model = store_api.build(engine, src, split_columns(columns), spec, settings, store=store_name,
+                                          progress=progress_printer(quiet), replace=regrid, many_partitions=many_partitions)
             tables = store_api.store_tables(engine, info.name)
         if out:
             model.write(out)
@@ -88,14 +82,9 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
 
 
 def open_store_database(location: str, writable: bool = False) -> Engine:
-    """The database keeping a store: a DuckDB file, or PostgreSQL by its postgresql:// URL.
-
-    A DuckDB file another process is writing (a refresh running) gives StoreBusy.
+    """The database keeping a store (engines.open_database: a DuckDB file, or PostgreSQL by its
+    postgresql:// URL). A DuckDB file another process is writing (a refresh running) gives StoreBusy.
     """
-    from .engines import DatabaseLocked
-
-    if engine_kind(location) == "postgres":
-        return PostgresEngine(location, read_only=not writable)
     try:
         return open_database(location, writable=writable)
     except DatabaseLocked as err:
@@ -107,13 +96,11 @@ def open_store_database(location: str, writable: bool = False) -> Engine:
 @store_group.command("status")
 @click.argument("source", metavar="DATABASE")
 @click.option("--store", "store_name", required=True, help="Store name.")
-@click.option("--outside-warn", type=float, default=0.01, show_default=True,
-              help="Warn when more than this share of rows falls outside the grid's built range.")
+@parameter_option("outside_warn")
 @click.option("--json", "as_json", is_flag=True, help="Print the status as JSON.")
 def status_command(source, store_name, outside_warn, as_json) -> None:
     """Partitions, rows, when summarised, and the grid in use."""
-    cli = _cli()
-    with cli.user_errors():
+    with user_errors():
         with open_store_database(source) as engine:
             st = store_api.status(engine, store_name, outside_warn=outside_warn)
         if as_json:
@@ -126,7 +113,7 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
                    f"{100 * st['outside_share']:.2f}% of rows outside the built range")
         click.echo(f"segments: k={st['k']}, ids {st['segment_ids']}")
         kept = st["settings"]
-        click.echo(f"settings kept by refreshes: k={kept.get('k')}, refine passes {kept.get('refine_passes')}, "
+        click.echo(f"settings kept by refreshes: k={kept.get('k')}, method {kept.get('method', 'kmeans')}, refine passes {kept.get('refine_passes')}, "
                    f"restarts {kept.get('n_init')}, seed {kept.get('seed')}, scaling {kept.get('scaling')}")
         click.echo(f"tables: {st['cells_table']} (cells), {store_api.STORES}, {store_api.PARTS}, {store_api.LABELS}, "
                    f"{store_api.store_history.HISTORY}")
@@ -138,11 +125,9 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
 @click.command("refresh")
 @click.argument("source", metavar="DATABASE")
 @click.option("--store", "store_name", required=True, help="Store name.")
-@click.option("--k", "-k", "k", type=int, default=None, help="Change the number of segments.")
-@click.option("--drift-warn", type=float, default=0.5, show_default=True,
-              help="Warn when a segment's centroid moves more than this many standard deviations.")
-@click.option("--new-segment-shift", type=float, default=3.0, show_default=True,
-              help="A segment farther than this (sd) from every old one gets a new id.")
+@parameter_option("k", type=int, help="Change the number of segments.")
+@parameter_option("drift_threshold")
+@parameter_option("new_segment_shift")
 @click.option("--force", is_flag=True, help="Re-segment even when no partition changed.")
 @click.option("--regrid", is_flag=True, help="Rebuild every partition on a new grid (when `store status` warns "
               "that rows fall outside the built range); segment ids are kept where segments match.")
@@ -154,21 +139,20 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
               "partition columns alone (e.g. \"day >= DATE '2026-01-15'\"); no other column, function or subquery.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
 @click.option("--json", "as_json", is_flag=True, help="Print the refresh report as JSON.")
-def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force, regrid, partitions, where, quiet, as_json) -> None:
+def refresh_command(source, store_name, k, drift_threshold, new_segment_shift, force, regrid, partitions, where, quiet, as_json) -> None:
     """Scan only new and changed partitions, re-segment, and report drift.
 
     Options given to a refresh (--k) are kept by later refreshes; `store status` shows them.
     """
-    cli = _cli()
-    with cli.user_errors():
+    with user_errors():
         with open_store_database(source, writable=True) as engine:
             if regrid and (partitions or where):
                 raise click.UsageError("--regrid rescans every partition; it takes no --partitions or --where")
             if regrid:
-                model = store_api.regrid(engine, store_name, progress=cli._progress(quiet), new_segment_shift=new_segment_shift)
+                model = store_api.regrid(engine, store_name, progress=progress_printer(quiet), new_segment_shift=new_segment_shift)
                 click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
                 return
-            report = store_api.refresh(engine, store_name, progress=cli._progress(quiet), drift_threshold=drift_warn,
+            report = store_api.refresh(engine, store_name, progress=progress_printer(quiet), drift_threshold=drift_threshold,
                                        new_segment_shift=new_segment_shift, k=k, force=force,
                                        partitions=[p for item in partitions for p in item.split(",") if p] or None,
                                        where=where)
@@ -179,7 +163,7 @@ def refresh_command(source, store_name, k, drift_warn, new_segment_shift, force,
 
 def _echo_history(source: str, store_name: str, last: int = 5) -> None:
     """The last few builds and refreshes of the store (tillite_store_history)."""
-    from . import store_history
+    from .. import store_history
 
     with open_store_database(source) as engine:
         rows = store_history.history(engine, store_name, last=last)
@@ -195,8 +179,7 @@ def _echo_history(source: str, store_name: str, last: int = 5) -> None:
 def drop_command(source, store_name) -> None:
     """Remove a store: its cells table and its rows in tillite's registry tables (the registry tables too
     when no store is left). Tables and views you made, label views included, stay."""
-    cli = _cli()
-    with cli.user_errors():
+    with user_errors():
         with open_store_database(source, writable=True) as engine:
             dropped = store_api.drop(engine, store_name)
         click.echo(f"store {store_name} dropped: {', '.join(dropped)}")

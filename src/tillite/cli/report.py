@@ -1,7 +1,7 @@
 """`tillite report` and `tillite name`: see and name segments from the command line.
 
 A thin layer over tillite.report and tillite.naming; registered on the main
-command in cli._register_subcommands.
+command in tillite.cli.
 """
 
 from __future__ import annotations
@@ -11,7 +11,9 @@ from pathlib import Path
 
 import click
 
-from .lazy import lazy_module
+from ..lazy import lazy_module
+from .shared import engine_options, open_with_options, progress_printer, user_errors
+from .store import open_store_database
 
 # imported when a command runs, so the command line starts without numpy or sqlglot
 naming = lazy_module("tillite.naming")
@@ -23,13 +25,6 @@ REPORT_FORMATS = ("html", "md", "json")
 __all__ = ["report_command", "name_command"]
 
 
-def _cli():
-    """The shared helpers of the main command module (imported late: it registers us)."""
-    from . import cli
-
-    return cli
-
-
 def _split(values: tuple[str, ...]) -> list[str]:
     return [p.strip() for v in values for p in v.split(",") if p.strip()]
 
@@ -38,15 +33,15 @@ def _default_out(fmt: str) -> str:
     return {"html": "segments.html", "md": "segments.md", "json": "segments.json"}[fmt]
 
 
+def _engine_options(f):
+    return engine_options(f, engine_help="Where the SQL runs (as for `tillite segment`).",
+                          spark_help="Spark setting for the session tillite starts (repeatable).")
+
+
 @click.command("report")
 @click.argument("source", metavar="SOURCE")
 @click.option("--table", "-t", help="Table to read (for a database SOURCE; may be schema.table).")
-@click.option("--engine", type=click.Choice(["auto", "duckdb", "postgres", "spark"]), default="auto", show_default=True,
-              expose_value=False, callback=lambda ctx, p, v: _cli()._remember_engine_option(ctx, p, v),
-              help="Where the SQL runs (as for `tillite segment`).")
-@click.option("--spark-conf", "spark_conf", multiple=True, metavar="KEY=VALUE", expose_value=False,
-              callback=lambda ctx, p, v: _cli()._remember_engine_option(ctx, p, v),
-              help="Spark setting for the session tillite starts (repeatable).")
+@_engine_options
 @click.option("--model", "-m", "model_path", help="Model file written by `tillite segment`.")
 @click.option("--store", "store_name", help="Instead of --model and --table: a summary store in the database SOURCE "
               "(adds its refresh history; the map uses the store's kept cells).")
@@ -63,7 +58,6 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
 
     Every figure is computed in the database as an aggregate; no row is exported.
     """
-    cli = _cli()
     if bool(model_path) == bool(store_name):
         raise click.UsageError("give exactly one of --model and --store")
     if store_name and table:
@@ -71,18 +65,16 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
     if store_name and labels:
         raise click.UsageError("--labels goes with --model, not --store")
     out = out or _default_out(fmt)
-    progress = cli._progress(quiet)
-    with cli.user_errors():
+    progress = progress_printer(quiet)
+    with user_errors():
         if store_name:
-            from .cli_store import open_store_database
-
             with open_store_database(source) as engine:
                 content = R.report_of_store(engine, store_name, _split(by), progress)
         else:
-            from .model import Model
+            from ..model import Model
 
             model = Model.read(model_path)
-            with cli._open(source, table) as (engine, src):
+            with open_with_options(source, table) as (engine, src):
                 content = R.report_of_model(engine, src, model, _split(by), progress, labels=labels)
         path = R.write_report(content, out, fmt)
     click.echo(f"report written to {path}")
@@ -101,17 +93,14 @@ def name_command(target, pairs, names_file, store_name) -> None:
     segment_name column of label views made afterwards (a store's views are
     re-created at once) and the <name>_segment_name macro.
     """
-    cli = _cli()
     if len(pairs) % 2:
         raise click.UsageError("give segment ids and names in pairs: ID NAME [ID NAME ...]")
     if not pairs and not names_file:
         raise click.UsageError("give ID NAME, or --names FILE")
-    with cli.user_errors():
+    with user_errors():
         given = naming.read_names_file(names_file) if names_file else {}
         given.update({pairs[i]: pairs[i + 1] for i in range(0, len(pairs), 2)})
         if store_name:
-            from .cli_store import open_store_database
-
             with open_store_database(target, writable=True) as engine:
                 model = naming.name_store_segments(engine, store_name, given)
             where = f"store {store_name} (label views re-created)"

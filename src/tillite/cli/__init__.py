@@ -1,0 +1,43 @@
+"""The `tillite` command: a thin layer over the Python API.
+
+The group lives here; each command family is a module of its own
+(segment.py: segment, label, show, sql, demo; store.py: store, refresh;
+report.py: report, name; macros.py: macros) built on shared.py (error
+handling, engine options, the settings options generated from
+tillite.settings). The command modules import shared.py, never this
+package, so there is no import cycle.
+"""
+
+from __future__ import annotations
+
+import sys
+
+import click
+
+from .. import __version__
+from .macros import macros as macros_group
+from .report import name_command, report_command
+from .segment import demo_command, label_command, segment_command, show_command, sql_command
+from .shared import OPTION_NAMES, cli_message, user_errors
+from .store import refresh_command, store_group
+
+__all__ = ["main", "cli_message", "user_errors", "OPTION_NAMES"]
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="tillite")
+def main() -> None:
+    """Segment warehouse tables where they live.
+
+    Row-level work runs in the database as SQL aggregates; only clustering
+    features (count, linear sum, square sum per cell) come back to Python.
+    """
+
+
+for _command in (segment_command, label_command, show_command, sql_command, demo_command,
+                 report_command, name_command, store_group, refresh_command, macros_group):
+    main.add_command(_command)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

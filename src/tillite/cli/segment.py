@@ -1,0 +1,246 @@
+"""`tillite segment|label|show|sql|demo`: segmenting and labelling from the command line."""
+
+from __future__ import annotations
+
+import json
+import time
+import warnings
+from pathlib import Path
+
+import click
+
+from ..lazy import lazy_module, lazy_name
+from .shared import (
+    columns_option, open_with_options, progress_printer, settings_from_options, settings_options, source_argument,
+    split_columns, table_option, parameter_option, user_errors,
+)
+
+# imported when a command first uses them, so --version and show start fast
+sqlgen = lazy_module("tillite.sqlgen")
+open_source = lazy_name("tillite.engines", "open_source")
+Model = lazy_name("tillite.model", "Model")
+Settings = lazy_name("tillite.settings", "Settings")
+label, segment = (lazy_name("tillite.pipeline", n) for n in ("label", "segment"))
+run_profile = lazy_name("tillite.stages", "run_profile")
+
+STAGES = ("profile", "cells", "refine", "label")
+
+__all__ = ["segment_command", "label_command", "show_command", "sql_command", "demo_command"]
+
+
+def _check_dialect(ctx, param, value: str) -> "sqlgen.Target":
+    """The target of a sqlglot dialect name (targets.target_for); a usage error naming an unknown one."""
+    try:
+        return sqlgen.target_for(value)
+    except ValueError as err:
+        raise click.BadParameter(str(err)) from None
+
+
+@click.command("segment")
+@source_argument
+@table_option
+@columns_option
+@settings_options
+@click.option("--out", "-o", default=None, help="Model file to write [default: SOURCE's table or file name + .model.json, "
+              "e.g. meter_days.model.json, in the current folder].")
+@click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
+@click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
+def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
+    """Segment SOURCE's rows on the chosen columns and write a model file.
+
+    SOURCE is a DuckDB database file (with --table) or a Parquet/CSV path or glob.
+    The model file's path is printed on stderr; replacing a file that held the
+    model of another source or column list is said in a warning line.
+    """
+    from ..model import default_model_path, replaced_model_note
+
+    with user_errors():
+        settings = settings_from_options(**kw)
+        out = out or default_model_path(source, table)
+        with open_with_options(source, table) as (engine, src):
+            model = segment(engine, src, split_columns(columns), settings, progress=progress_printer(quiet))
+        note = replaced_model_note(out, model)
+        model.write(out)
+        if note:
+            warnings.warn(note, UserWarning)
+        if not quiet:
+            click.echo(f"[tillite] model: written to {out} ({model.timings['total']:.2f} s in all)", err=True)
+        click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
+
+
+@click.command("label")
+@source_argument
+@table_option
+@click.option("--model", "-m", "model_path", help="Model file written by `tillite segment`.")
+@click.option("--store", "store_name", help="Instead of --model: a summary store's current model; "
+              "the labels are then re-created by every `tillite refresh`.")
+@click.option("--into", required=True, help="View (or table) to create; for file sources, a .parquet/.csv file.")
+@click.option("--materialize", is_flag=True, help="Create a table instead of a view.")
+@click.option("--replace", is_flag=True, help="Allow replacing an existing table of that name, or a view or table "
+              "tillite did not make (a view tillite made is replaced without it).")
+@click.option("--quiet", "-q", is_flag=True, help="No progress line on stderr.")
+def label_command(source, table, model_path, store_name, into, materialize, replace, quiet) -> None:
+    """Add segment and distance to every row of SOURCE as a view, table or file.
+
+    The source itself is never written; rows skipped for NULL/NaN/Inf get NULL.
+    """
+    if bool(model_path) == bool(store_name):
+        raise click.UsageError("give exactly one of --model and --store")
+    _check_into(into)
+    with user_errors():
+        if store_name:
+            from .. import store as store_api
+            from .store import open_store_database
+
+            with open_store_database(source, writable=True) as engine:
+                made = store_api.label(engine, store_name, into, materialize=materialize, replace=replace)
+            progress_printer(quiet)("label", f"{made} from store {store_name}")
+            click.echo(made)
+            return
+        model = Model.read(model_path)
+        with open_with_options(source, table, writable=True) as (engine, src):
+            t0 = time.perf_counter()
+            made = _label_explained(engine, src, model, into, materialize, replace)
+        progress_printer(quiet)("label", f"{made} from {src.label}, {time.perf_counter() - t0:.2f} s")
+        click.echo(made)
+
+
+def _check_into(into: str) -> None:
+    """--into must be a name (schema.name) or a file path; an empty part is a usage error."""
+    if "/" in into or "\\" in into or into.lower().endswith((".parquet", ".csv")):
+        return
+    try:
+        parts = sqlgen.split_table_name(into)
+    except ValueError as err:
+        raise click.BadParameter(str(err), param_hint="--into") from None
+    if not all(p.strip() for p in parts):
+        raise click.BadParameter(f"not a view or table name: {into!r}", param_hint="--into")
+
+
+def _label_explained(engine, src, model, into: str, materialize: bool, replace: bool) -> str:
+    """label(), with a database error while replacing an object the source reads through a view
+    said as such (the transaction has rolled back: nothing changed)."""
+    from ..errors import EngineError
+
+    existed = engine.relation_kind(into) if not src.files else None
+    try:
+        return label(engine, src, model, into, materialize=materialize, replace=replace)
+    except EngineError:
+        if existed and engine.relation_kind(src.label) == "view":
+            raise click.ClickException(
+                f"--into {into} cannot replace the {existed} {into}: the source {src.label} is a view that reads it; "
+                f"nothing was changed (choose another --into)"
+            ) from None
+        raise
+
+
+@click.command("show")
+@click.argument("model_path", metavar="MODEL")
+@click.option("--json", "as_json", is_flag=True, help="Machine-readable output.")
+def show_command(model_path, as_json) -> None:
+    """Segment sizes, centroids in original units, radius and SSE of a model file."""
+    with user_errors():
+        model = Model.read(model_path)
+        click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
+
+
+@click.command("sql")
+@click.argument("source", metavar="[SOURCE]", required=False)
+@table_option
+@click.option("--columns", "-c", multiple=True, help="Columns (not needed with --model).")
+@click.option("--stage", type=click.Choice(STAGES), required=True, help="Which statement to print.")
+@click.option("--model", "-m", "model_path", help="Model file (needed for refine and label; cells then use its grid).")
+@click.option("--dialect", "target", default="duckdb", show_default=True, callback=_check_dialect,
+              help="SQL dialect to render (any sqlglot dialect name).")
+@parameter_option("cell_budget", help="About how many grid cells the cells stage aims for (without --model).")
+def sql_command(source, table, columns, stage, model_path, target, cell_budget) -> None:
+    """Print the SQL a stage would run, without running it.
+
+    Without SOURCE nothing is connected to: give --table, and --model for the
+    cells, refine and label stages (the label select then lists the model's
+    columns only, as the source's other columns are unknown).
+    """
+    with user_errors():
+        model = Model.read(model_path) if model_path else None
+        cols = list(model.columns) if model else split_columns(columns)
+        if not cols:
+            raise click.UsageError("give --columns or --model")
+        if source is None:
+            if not table:
+                raise click.UsageError("without SOURCE, give --table (the statements are only printed)")
+            if stage != "profile" and model is None:
+                raise click.UsageError(f"without SOURCE, --stage {stage} needs --model (its grid and centroids)")
+            try:
+                src = sqlgen.Source.of_table(table)
+            except ValueError as err:
+                raise click.BadParameter(str(err), param_hint="--table") from None
+            statements = _stage_statements(None, src, cols, cols, stage, model, target, cell_budget)
+        else:
+            from ..stages import check_columns
+
+            with open_with_options(source, table) as (engine, src):
+                source_columns = check_columns(engine, src, cols)
+                statements = _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget)
+        for st in statements:
+            click.echo(sqlgen.render(st, target, pretty=True) + ";")
+
+
+def _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget):
+    from ..stages import grid_for_profile
+
+    if stage == "profile":
+        return [sqlgen.count_statement(src), sqlgen.sample_statement(src, cols, target, percent=1.0, limit=100_000)]
+    if stage == "cells":
+        if model is not None and model.grid:
+            grid = sqlgen.Grid.from_dict(model.grid)
+        else:
+            settings = Settings(k=1, cell_budget=cell_budget)
+            settings.check(cols)
+            grid = grid_for_profile(run_profile(engine, src, cols, settings), settings)
+        return [sqlgen.cells_statement(src, cols, grid, target)]
+    if model is None:
+        raise click.UsageError(f"--stage {stage} needs --model")
+    if stage == "refine":
+        return [sqlgen.refine_statement(src, cols, model.assignment(), target, cell_map=model.cell_map_spec())]
+    return [sqlgen.label_select(src, cols, source_columns, model.assignment(), target, cell_map=model.cell_map_spec())]
+
+
+@click.command("demo")
+@click.option("--db", "db_path", default="tillite-demo.duckdb", show_default=True, help="Demo database file to build or reuse.")
+@click.option("--rows", type=int, default=1_000_000, show_default=True, help="Meter-day rows to generate.")
+@click.option("--days", type=int, default=60, show_default=True, help="Days of meter readings to generate.")
+@click.option("--seed", type=int, default=7, show_default=True, help="Seed of the invented data.")
+@click.option("--k", "-k", "k", type=int, default=5, show_default=True, help="Number of segments.")
+@click.option("--out", "-o", default="tillite-demo-model.json", show_default=True, help="Model file to write.")
+@click.option("--rebuild", is_flag=True, help="Regenerate the demo data even if the file exists.")
+@click.option("--report", "report_path", default=None,
+              help="Report page to write (segments by district; see `tillite report`) "
+                   "[default: tillite-demo-report.html beside the database].")
+@click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
+def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet) -> None:
+    """Build the invented water co-operative database and segment it end to end."""
+    from .. import demo, report
+
+    with user_errors():
+        progress = progress_printer(quiet)
+        if rebuild or not Path(db_path).exists():
+            t0 = time.perf_counter()
+            info = demo.build_demo_database(db_path, rows=rows, days=days, seed=seed, replace=True)
+            progress("demo", f"built {db_path}: {info.rows:,} meter-days of {info.meters:,} meters, {time.perf_counter() - t0:.2f} s")
+        else:
+            progress("demo", f"reusing {db_path} (--rebuild to regenerate)")
+        with open_source(db_path, "meter_days", writable=True) as (engine, src):
+            model = segment(engine, src, list(demo.DEMO_COLUMNS), Settings(k=k), progress=progress)
+            model.write(out)
+            made = label(engine, src, model, "meter_day_segments")
+            progress("label", made)
+            click.echo(model.describe())
+            click.echo("")
+            click.echo(report.crosstab(engine, "meter_day_segments", demo.METERS_TABLE, "meter_id", "kind"))
+            page = report_path or Path(db_path).with_name("tillite-demo-report.html")
+            written = report.write_report(report.report_of_model(engine, src, model, ["district"], progress), page)
+        click.echo("")
+        click.echo(f"model written to {out}; labels in view meter_day_segments of {db_path}.")
+        click.echo(f"report written to {Path(written).resolve()} (open it in a browser; no network needed).")
+        click.echo("Segments are statistical groupings, not diagnoses: a 'probable leak' segment lists meters")
+        click.echo("for the co-operative's usual inspection procedure to confirm.")
