@@ -297,3 +297,19 @@ def test_refine_pass_through_an_inline_cell_map_equals_duckdb(pg_and_duck):
         # reference: DuckDB running the same refine tree with the map inline
         assert_same_refine(run_refine_pass(pg, SRC, COLUMNS, model.assignment(), held),
                            run_refine_pass(duck, SRC, COLUMNS, model.assignment(), cell_map))
+
+
+def test_categorical_segment_and_labels_equal_duckdb(server, loaded, engine_rows):
+    pg = PostgresEngine(server.conninfo)
+    duck = DuckDBEngine(str(loaded))
+    try:
+        settings = dict(SETTINGS, categorical=("kind",))
+        model = segment(duck, SRC, COLUMNS, Settings(**settings))
+        # reference: DuckDB running the same trees (category codes by array_position, lookups by ARRAY[...][code])
+        assert_same_model(segment(pg, SRC, COLUMNS, Settings(**settings)), model)
+        label(pg, SRC, model, "kind_segments")
+        label(duck, SRC, model, "kind_segments")
+        assert_same_labels(ordered_rows(pg, "kind_segments"), ordered_rows(duck, "kind_segments"), engine_rows)
+    finally:
+        pg.close()
+        duck.close()

@@ -299,3 +299,22 @@ def test_refine_pass_through_a_cell_map_held_as_a_temporary_view_equals_duckdb(s
         for src in sources(data):
             assert_same_refine(run_refine_pass(sparks, src, COLUMNS, model.assignment(), held), ref)
     assert all(t.name != held.table for t in sparks.spark.catalog.listTables())
+
+
+def test_categorical_segment_and_labels_equal_duckdb(sparks, duck, data, engine_rows):
+    from tillite import categorical as cat
+    from tillite.stages import code_assignment, model_source
+
+    settings = dict(SETTINGS, categorical=("kind",))
+    ref = segment(duck, DUCK_SRC, COLUMNS, Settings(**settings))
+    for src in sources(data):
+        # reference: DuckDB running the same trees (codes by array_position, lookups by element_at here)
+        assert_same_model(segment(sparks, src, COLUMNS, Settings(**settings)), ref)
+    specs = cat.specs_of(ref.categorical)
+    cols, assign, lookups = code_assignment(ref.columns, ref.assignment(), cat.indicator_positions(ref.columns, specs),
+                                            cat.code_names(specs))
+    select = sqlgen.label_select(model_source(duck, DUCK_SRC, ref), cols, ["id", *COLUMNS, "kind"], assign, "duckdb", lookups=lookups)
+    expected = duck.query(exp.select(exp.Star()).from_(sqlgen.subquery(select, "l")).order_by(sqlgen.col("id")))
+    label(sparks, Source.of_table(REGISTERED), ref, "kind_segments", materialize=True)
+    # reference: DuckDB's labels over the same rows
+    assert_same_labels(ordered_rows(sparks, "kind_segments"), expected, engine_rows)

@@ -242,6 +242,7 @@ def scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
     d, k = len(model.columns), len(model.centroids)
     v_names = [sqlgen.internal(f"v{j}") for j in range(d)]
     v_exprs = {n: sqlgen.paren(e) for n, e in zip(v_names, sqlgen.centred(model.columns, model.center))}
+    v_exprs.update(_indicator_values(model, v_names))
     scores = [_substitute(sqlgen.linear_form(v_names, a[i], b[i]), v_exprs) for i in range(k)]
     usable = _substitute(sqlgen.usable_rows(v_names, TARGET), v_exprs)
     sq_norm = _substitute(
@@ -265,6 +266,19 @@ def scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
     return segment, distance
 
 
+def _indicator_values(model: Model, v_names: Sequence[str]) -> dict[str, exp.Expression]:
+    """Categorical columns: each indicator's centred value from the macro's parameter holding the category
+    (the label view's indicator expressions; a value never seen at build time counts as "other")."""
+    where = {c: j for j, c in enumerate(model.columns)}
+    out = {}
+    for spec in model.categorical:
+        exprs = sqlgen.indicator_expressions(spec["column"], spec["type"], spec["values"], "duckdb")
+        for name, e in zip(spec["indicators"], exprs):
+            j = where[name]
+            out[v_names[j]] = sqlgen.paren(exp.Sub(this=e, expression=sqlgen.num(float(model.center[j]))))
+    return out
+
+
 def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
     """<name>_segment(x...) and <name>_distance(x...) for one model."""
     name = _check_model_name(name)
@@ -275,7 +289,7 @@ def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
             "--keep-outliers for k-means/Ward"
         )
     segment, distance = scoring_bodies(model)
-    params = identifiers(model.columns)
+    params = identifiers(model.input_columns())
     out = []
     for suffix, body in (("segment", segment), ("distance", distance)):
         macro = f"{name}_{suffix}"
@@ -490,5 +504,5 @@ def segment_name_macro(model: Model, name: str, segment: exp.Expression) -> Macr
         for i, sid in enumerate(model.segment_ids()) if model.segment_name(sid) is not None
     ])
     macro = f"{name}_segment_name"
-    values = {"macro": identifier(macro), "params": identifiers(model.columns), "body": expression(case, pretty=True)}
+    values = {"macro": identifier(macro), "params": identifiers(model.input_columns()), "body": expression(case, pretty=True)}
     return MacroDefinition(macro, "scalar", fill(template("scoring"), values), model=name)

@@ -61,6 +61,9 @@ class Model:
     # the report's map drawn at segment time from the cells (report.map_figure): dots on the first two
     # principal axes with row counts and segments, and the variance share; older files lack it
     report_map: dict[str, Any] = field(default_factory=dict)
+    # categorical columns (categorical.CategoricalColumn.to_dict): column, type, listed values, indicator
+    # column names; their indicators are among `columns` and their centroid values are category shares
+    categorical: list[dict[str, Any]] = field(default_factory=list)
 
     # ------------------------------------------------------------ derived
 
@@ -203,6 +206,7 @@ class Model:
                     "segment": self.segment_ids()[i],
                     "size": self.sizes[i],
                     "centroid": dict(zip(self.columns, self.centroids[i])),
+                    **({"categories": self.category_shares(i)} if self.categorical else {}),
                     "radius": self.radius[i],
                     "sse": self.segment_sse[i],
                     "name": self.segment_name(self.segment_ids()[i]),
@@ -227,7 +231,8 @@ class Model:
         if self.constant_columns:
             lines.append(f"constant columns (no weight): {', '.join(self.constant_columns)}")
         lines.extend(self._method_lines())
-        head = ["segment", "size", "share", "radius", "SSE"] + list(self.columns)
+        shown = self.numeric_positions()
+        head = ["segment", "size", "share", "radius", "SSE"] + [self.columns[j] for j in shown]
         rows = []
         total = max(self.usable, 1)
         # centroids come back as centre + c * scale: round-off of that size is shown as 0
@@ -235,13 +240,14 @@ class Model:
         for i, size in enumerate(self.sizes):
             rows.append(
                 [str(self.segment_ids()[i]), f"{size:,}", f"{100.0 * size / total:.1f}%", f"{self.radius[i]:.3g}", f"{self.segment_sse[i]:.4g}"]
-                + [_fmt(0.0 if abs(v) <= t else v) for v, t in zip(self.centroids[i], tiny)]
+                + [_fmt(0.0 if abs(self.centroids[i][j]) <= tiny[j] else self.centroids[i][j]) for j in shown]
             )
         widths = [max([len(h)] + [len(r[c]) for r in rows]) for c, h in enumerate(head)]
         lines.append("")
         lines.append("  ".join(h.rjust(w) for h, w in zip(head, widths)))
         lines.extend("  ".join(v.rjust(w) for v, w in zip(r, widths)) for r in rows)
         lines.append("")
+        lines.extend(self._category_lines())
         lines.append(f"centroids in original units; radius and SSE in {self.units()}")
         left_out = self._rows_outside_segments()
         if left_out:
@@ -281,13 +287,58 @@ class Model:
         return [float(v) if float(v) > 0 else 1.0 for v in values]
 
     def segment_description(self, i: int, most: int = 3, floor: float = 0.5) -> str:
-        """Segment i in words by its most distinctive columns, e.g. "zero_hours 1.9 sd below average"."""
-        z = [(float(c) - float(m)) / s for c, m, s in zip(self.centroids[i], self.center, self.column_sd())]
+        """Segment i in words by its most distinctive columns, e.g. "zero_hours 1.9 sd below average"
+        (categorical columns: the largest category share, e.g. "district: 61% north")."""
+        numeric = set(self.numeric_positions())
+        z = [(float(c) - float(m)) / s if j in numeric else 0.0
+             for j, (c, m, s) in enumerate(zip(self.centroids[i], self.center, self.column_sd()))]
         by_size = sorted(range(len(z)), key=lambda j: -abs(z[j]))  # stable: ties keep the model's column order
         order = [j for j in by_size if abs(z[j]) >= floor][:most]
-        if not order:
-            return "close to the average on every column"
-        return ", ".join(f"{self.columns[j]} {abs(z[j]):.1f} sd {'above' if z[j] > 0 else 'below'} average" for j in order)
+        words = [f"{self.columns[j]} {abs(z[j]):.1f} sd {'above' if z[j] > 0 else 'below'} average" for j in order]
+        for column, shares in self.category_shares(i).items():
+            label, share = max(shares.items(), key=lambda p: p[1]) if shares else ("", 0.0)
+            if share >= 0.5:
+                words.append(f"{column}: {100 * share:.0f}% {label}")
+        return ", ".join(words) if words else "close to the average on every column"
+
+    # ------------------------------------------------------------ categorical columns (plain Python: `show`)
+
+    def input_columns(self) -> list[str]:
+        """The source columns a row needs: the numeric ones, then the categorical ones (not their indicators)."""
+        return [self.columns[j] for j in self.numeric_positions()] + [c["column"] for c in self.categorical]
+
+    def numeric_positions(self) -> list[int]:
+        """Positions in `columns` that are not category indicators."""
+        indicators = {n for c in self.categorical for n in c.get("indicators", [])}
+        return [j for j, c in enumerate(self.columns) if c not in indicators]
+
+    def category_shares(self, i: int) -> dict[str, dict[str, float]]:
+        """Per categorical column, the share of segment i's rows in each category ("(other)", "(NULL)"
+        included), largest first: an indicator's centroid coordinate in original units."""
+        where = {c: j for j, c in enumerate(self.columns)}
+        out = {}
+        for spec in self.categorical:
+            values = list(spec["values"])  # a category spelled like a bucket keeps its name; the bucket is renamed
+            labels = [*values, "(other)" if "(other)" not in values else "(any other value)",
+                      "(NULL)" if "(NULL)" not in values else "(NULL value)"]
+            shares = [min(max(float(self.centroids[i][where[n]]), 0.0), 1.0) for n in spec["indicators"]]
+            order = sorted(range(len(labels)), key=lambda j: (-shares[j], j))
+            out[spec["column"]] = {labels[j]: shares[j] for j in order}
+        return out
+
+    def _category_lines(self) -> list[str]:
+        """Per segment and categorical column: "district: 61% north, 30% harbour, 9% west"."""
+        if not self.categorical:
+            return []
+        lines = ["category shares per segment (largest first; under 0.5% left out):"]
+        for i, sid in enumerate(self.segment_ids()):
+            for column, shares in self.category_shares(i).items():
+                kept = [(k, v) for k, v in shares.items() if v >= 0.005]
+                shown = ", ".join(f"{100 * v:.0f}% {k}" for k, v in kept[:6])
+                more = f", and {len(kept) - 6} more" if len(kept) > 6 else ""
+                lines.append(f"  {sid} {column}: {shown}{more}")
+        lines.append("")
+        return lines
 
     def _name_lines(self) -> list[str]:
         """One line per segment: id, name (if any) and description."""
@@ -350,6 +401,10 @@ def _check_values(body: dict[str, Any], where: str) -> None:
         if not (_finite_numbers(width) and width > 0) or not _finite_numbers(grid.get("inv_scale", [])) \
                 or not _finite_numbers(grid.get("center", [])):
             raise ModelError(f"{where} is damaged: its grid needs a width above 0 and finite centre and scale")
+    for spec in body.get("categorical") or []:
+        ok = isinstance(spec, dict) and isinstance(spec.get("values"), list) and isinstance(spec.get("indicators"), list)
+        if not ok or len(spec["indicators"]) != len(spec["values"]) + 2 or not set(spec["indicators"]) <= set(body["columns"]):
+            raise ModelError(f"{where} is damaged: a categorical column's indicators do not match its columns")
     if body.get("method", "kmeans") not in ("kmeans", "ward", "density") or body.get("scaling") not in ("zscore", "none"):
         raise ModelError(f"{where} is damaged: method {body.get('method')!r} or scaling {body.get('scaling')!r} is not one of ours")
 

@@ -555,9 +555,10 @@ def report_of_model(
     """
     import time
 
-    from .stages import check_columns
+    from .stages import check_columns, model_source
 
     by = list(dict.fromkeys(by))  # a column named twice is one breakdown
+    source = model_source(engine, source, model)  # categorical columns: their indicators' means are the shares
     present = check_columns(engine, source, list(model.columns))
     missing = [c for c in by if c not in present]
     if missing:

@@ -130,6 +130,11 @@ class Settings:
     radius: float | None = setting(None, "density: joining distance for --adjacency distance.", low=0, bound="above")
     noise: str = setting("attach", "density: sparse cells join the nearest segment, or stay noise (segment -1).",
                          choices=("attach", "drop"))
+    categorical: tuple[str, ...] = setting((), "Categorical columns, comma-separated: each becomes indicators of its "
+                                               "top categories, weighing as much as one scaled numeric column "
+                                               "(--weights COLUMN=w applies to the whole column).", kind="parsed")
+    max_categories: int = setting(20, "Categories kept per --categorical column (the most rows in the profile "
+                                      "sample); the rest count as '(other)', NULL as '(NULL)'.", low=1, high=200)
 
     def column_weights(self, columns: Sequence[str]) -> Any:
         """The multiplier of each column (1 unless --weights says otherwise), as a numpy array."""
@@ -159,14 +164,14 @@ class Settings:
             raise ParameterError(f"{{k}} must be at least 1, got {self.k}", "k")
 
     def _check_weights(self, columns: Sequence[str]) -> None:
-        unknown = [c for c in self.weights if c not in columns]
+        unknown = [c for c in self.weights if c not in columns and c not in self.categorical]
         if unknown:
             raise ParameterError(f"{{weights}} name columns not chosen for segmenting: {', '.join(unknown)}", "weights")
         bad = {c: w for c, w in self.weights.items()
                if not (isinstance(w, Real) and math.isfinite(w) and 0 <= w <= MAX_WEIGHT)}
         if bad:
             raise ParameterError(f"{{weights}} must be numbers from 0 to {MAX_WEIGHT:g}: {bad}", "weights")
-        if columns and not any(float(self.weights.get(c, 1.0)) > 0 for c in columns):
+        if columns and not self.categorical and not any(float(self.weights.get(c, 1.0)) > 0 for c in columns):
             raise ParameterError("every {weights} value is 0: at least one column needs a weight above 0", "weights")
 
     def model_params(self) -> dict[str, Any]:

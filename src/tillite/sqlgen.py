@@ -60,6 +60,9 @@ class Source:
     files: tuple[str, ...] = ()
     reader: str = "parquet"
     filename: bool = False  # add the file name as a column `filename` (files only)
+    #: columns computed from the row (name, expression), e.g. category indicators (categorical.py):
+    #: every statement then reads the source through a projection that adds them
+    derived: tuple[tuple[str, exp.Expression], ...] = ()
 
     @staticmethod
     def of_table(name: str | Sequence[str]) -> "Source":
@@ -80,8 +83,21 @@ class Source:
         """Human-readable name for messages (a part holding a dot in double quotes, as it is written)."""
         return ".".join(quote_name_part(p) for p in self.table) if self.table else ", ".join(self.files)
 
-    def relation(self) -> exp.Expression:
-        """The FROM item for this source."""
+    def relation(self, sample: exp.TableSample | None = None) -> exp.Expression:
+        """The FROM item for this source (``sample`` on the stored rows, before any derived column)."""
+        base = self._stored_relation()
+        if sample is not None:
+            base.set("sample", sample)
+        if not self.derived:
+            return base
+        added = [exp.alias_(e.copy(), n, quoted=True) for n, e in self.derived]
+        return subquery(exp.select(exp.Star(), *added).from_(base), internal("src"))
+
+    def derived_names(self) -> list[str]:
+        """Names of the derived columns (not in the stored rows)."""
+        return [n for n, _ in self.derived]
+
+    def _stored_relation(self) -> exp.Expression:
         if self.table:
             return table_of(self.table)
         paths = [exp.Literal.string(f) for f in self.files]
@@ -366,8 +382,10 @@ def sample_statement(
     method: str = "SYSTEM",
     limit: int | None = None,
     seed: int | None = None,
+    text_columns: Sequence[str] = (),
 ) -> exp.Select:
     """Rows of the chosen columns as DOUBLE, optionally from a TABLESAMPLE.
+    ``text_columns`` come along as text t0, t1, ... (categorical columns; NULL stays NULL).
 
     NULL/NaN/Inf rows are filtered out in SQL so the sample holds usable rows only.
     With ``seed`` the sample repeats where the engine can repeat one
@@ -375,16 +393,18 @@ def sample_statement(
     same input partitioning); see ``sample_repeats``.
     """
     target = target_for(target)
-    rel = source.relation()
     sampled = percent is not None and percent < 100.0
     by_filter = target.seeded_sample_filter(num(int(seed)), num(float(percent) / 100.0)) if sampled and seed is not None else None
-    if sampled and by_filter is None:
-        rel.set("sample", table_sample(float(percent), method, target, seed=seed))
+    rel = source.relation(table_sample(float(percent), method, target, seed=seed) if sampled and by_filter is None else None)
     names = [internal(f"x{j}") for j in range(len(columns))]
-    inner = exp.select(*[exp.alias_(to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)]).from_(rel)
+    texts = [internal(f"t{j}") for j in range(len(text_columns))]
+    inner = exp.select(
+        *[exp.alias_(to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)],
+        *[exp.alias_(exp.cast(col(c), exp.DataType.build("VARCHAR")), n, quoted=True) for c, n in zip(text_columns, texts)],
+    ).from_(rel)
     if by_filter is not None:
         inner = inner.where(by_filter)
-    outer = exp.select(*[col(n) for n in names]).from_(subquery(inner, internal("s"))).where(usable_rows(names, target))
+    outer = exp.select(*[col(n) for n in names + texts]).from_(subquery(inner, internal("s"))).where(usable_rows(names, target))
     if limit is not None:
         outer = outer.limit(num(int(limit)))
     return outer
@@ -498,6 +518,7 @@ def cells_statement(
     target: TargetLike,
     partition: Partitioning | None = None,
     where: exp.Expression | None = None,
+    extra_keys: Sequence[str] = (),
 ) -> exp.Select:
     """The cell pass: one GROUP BY over the per-axis grid keys.
 
@@ -510,11 +531,13 @@ def cells_statement(
 
     With ``partition`` the cells are keyed by (partition, cell) and the first
     result column is the partition's text ``part``; ``where`` filters the rows
-    scanned (e.g. ``Partitioning.filter``).
+    scanned (e.g. ``Partitioning.filter``).  ``extra_keys``: source columns also
+    grouped on, returned as q0, q1, ... (category codes, categorical.py).
     """
     d = len(columns)
     v = [internal(f"v{j}") for j in range(d)]
     parts = partition.projected() if partition is not None else []
+    parts += [exp.alias_(col(name), f"q{i}", quoted=True) for i, name in enumerate(extra_keys)]
     stage1 = exp.select(*parts, *[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, grid.center), v)]).from_(
         source.relation()
     )
@@ -522,9 +545,11 @@ def cells_statement(
         stage1 = stage1.where(where)
     factors = grid.key_factors()
     keys = [floor_of(linear_form(v, factors[:, a]), target) for a in range(factors.shape[1])]
-    keys[0] = case_when(usable_rows(v, target), keys[0])
+    if keys:
+        keys[0] = case_when(usable_rows(v, target), keys[0])
     names = grid.key_names()
     part_cols = [col(a) for a in partition.aliases()] if partition is not None else []
+    part_cols += [col(f"q{i}") for i in range(len(extra_keys))]
     summed = [col(n) for n in v]
     if grid.sums_scaled:
         u = [internal(f"u{j}") for j in range(d)]
@@ -534,6 +559,7 @@ def cells_statement(
         *[c.copy() for c in part_cols], *[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *summed
     ).from_(subquery(stage1, internal("a")))
     part_text = [exp.alias_(partition.key(), "part", quoted=True)] if partition is not None else []
+    part_text += [col(f"q{i}") for i in range(len(extra_keys))]
     group = [*part_cols, *[col(n) for n in names]]
     return exp.select(*part_text, *[col(n) for n in names], *_sums(v, target)).from_(subquery(stage2, internal("b"))).group_by(
         *[c.copy() for c in group]
@@ -905,6 +931,7 @@ def _assignment_layers(
     keep_source: bool,
     cell_map: CellMap | None = None,
     fence: bool | None = None,
+    lookups: Sequence["CodeLookup"] = (),
 ) -> tuple[exp.Select, str, str, list[str]]:
     """A query with the segment of each row (NULL for unusable rows).
 
@@ -916,6 +943,8 @@ def _assignment_layers(
     centred value columns); when keep_source the select also carries every
     source column.  ``fence`` (default: when not keeping the source) computes
     the scores once per row on engines that would inline them (``scan_fence``).
+    ``lookups``: each adds to score i its table's entry for the row's code
+    (categorical columns; the codes are carried on as q0, q1, ...).
     """
     target = target_for(target)
     fence = (not keep_source) if fence is None else fence
@@ -925,17 +954,26 @@ def _assignment_layers(
     best, seg = internal("best"), internal("segment")
     src_cols = [exp.Star()] if keep_source else []
     grid_v = [internal(f"g{j}") for j in range(d)] if cell_map is not None else []
+    codes = [internal(f"q{g}") for g in range(len(lookups))]
     stage1 = exp.select(
         *src_cols,
+        *[exp.alias_(col(lk.code), q, quoted=True) for lk, q in zip(lookups, codes)],
         *[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, assign.center), v)],
         *([exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, cell_map.grid.center), grid_v)] if cell_map else []),
     ).from_(source.relation())
     a, b = assign.score_coefficients()
-    passthrough = [exp.Star()] if keep_source else [col(n) for n in v + grid_v]
+    passthrough = [exp.Star()] if keep_source else [col(n) for n in codes + v + grid_v]
+
+    def scored(i: int) -> exp.Expression:
+        form = linear_form(v, a[i], b[i])
+        for lk, q in zip(lookups, codes):
+            form = exp.Add(this=form, expression=lk.entry(i, col(q), target))
+        return form
+
     stage2 = exp.select(
         *passthrough,
         exp.alias_(usable_rows(v, target), internal("ok"), quoted=True),
-        *[exp.alias_(linear_form(v, a[i], b[i]), score[i], quoted=True) for i in range(k)],
+        *[exp.alias_(scored(i), score[i], quoted=True) for i in range(k)],
     ).from_(subquery(stage1, internal("a")))
     if fence:
         stage2 = scan_fence(stage2, target)
@@ -982,7 +1020,8 @@ def _squared_norm(v_names: Sequence[str], assign: Assignment) -> exp.Expression:
 
 
 def refine_statement(
-    source: Source, columns: Sequence[str], assign: Assignment, target: TargetLike, cell_map: CellMap | None = None
+    source: Source, columns: Sequence[str], assign: Assignment, target: TargetLike, cell_map: CellMap | None = None,
+    lookups: Sequence["CodeLookup"] = (),
 ) -> exp.Select:
     """A refine pass: nearest centroid per row, GROUP BY segment.
 
@@ -991,18 +1030,22 @@ def refine_statement(
     centroid they were assigned to: with n and LS that is the segment's exact CF
     in the published scalar form, shifted to the old centroid, so the exact SSE
     before and after moving the centroid both follow.  The segment NULL group
-    counts skipped rows.
+    counts skipped rows.  With ``lookups`` the groups are (segment, q0, q1, ...):
+    per segment and category code (see ``CodeLookup``).
     """
     target = target_for(target)
-    inner, seg, best, v = _assignment_layers(source, columns, assign, target, keep_source=False, cell_map=cell_map)
-    aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
+    inner, seg, best, v = _assignment_layers(source, columns, assign, target, keep_source=False, cell_map=cell_map,
+                                             lookups=lookups)
+    codes = [internal(f"q{g}") for g in range(len(lookups))]
+    aggs = [*[exp.alias_(col(q), f"q{g}", quoted=True) for g, q in enumerate(codes)],
+            exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
     aggs += [exp.alias_(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(v)]
     dist = exp.Add(this=col(best), expression=paren(_squared_norm(v, assign)))
     aggs.append(exp.alias_(float_sum(dist, target), "dist", quoted=True))
     return (
         exp.select(exp.alias_(col(seg), "segment", quoted=True), *aggs)
         .from_(subquery(inner, internal("d")))
-        .group_by(col(seg), copy=False)  # no deep copy of an inline cell map
+        .group_by(col(seg), *[col(q) for q in codes], copy=False)  # no deep copy of an inline cell map
     )
 
 
@@ -1016,6 +1059,7 @@ def label_select(
     distance_name: str = "distance",
     cell_map: CellMap | None = None,
     materialize: bool = False,
+    lookups: Sequence["CodeLookup"] = (),
 ) -> exp.Select:
     """Every source column plus the segment id and the distance to its centroid.
 
@@ -1027,7 +1071,7 @@ def label_select(
     for skipped rows and for the outlier group / noise (segment -1).
     """
     inner, seg, best, v = _assignment_layers(
-        source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=materialize
+        source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=materialize, lookups=lookups
     )
     sq_norm = _squared_norm(v, assign)
     distance = case_when(
@@ -1378,3 +1422,63 @@ def set_threads_statement(threads: int) -> exp.Set:
     """DuckDB: ``SET threads = n``."""
     item = exp.SetItem(this=exp.EQ(this=exp.column("threads"), expression=exp.Literal.number(int(threads))))
     return exp.Set(expressions=[item])
+
+
+# --------------------------------------------------------------------------- categorical columns
+
+
+def category_literal(value: str, type_name: str, target: TargetLike | None = None) -> exp.Expression:
+    """A category's text as a literal of the column's type: 'north', or CAST('7' AS INTEGER)."""
+    kind = exp.DataType.build(type_name, dialect=target_for(target).name if target is not None else None)
+    if kind.is_type(*exp.DataType.TEXT_TYPES):
+        return exp.Literal.string(value)
+    return exp.cast(exp.Literal.string(value), kind)
+
+
+def indicator_expressions(
+    column: str, type_name: str, values: Sequence[str], target: TargetLike | None = None
+) -> list[exp.Expression]:
+    """One DOUBLE 0/1 expression per listed category, then "other" (any other non-NULL value, also values
+    never seen when the list was made), then NULL:
+    CASE WHEN col = literal THEN 1 ELSE 0 END, ..., CASE WHEN col IS NULL THEN 1 ELSE 0 END."""
+    one, zero = num(1.0), num(0.0)
+
+    def flag(cond: exp.Expression) -> exp.Expression:
+        return exp.Case(ifs=[exp.If(this=cond, true=one.copy())], default=zero.copy())
+
+    literals = [category_literal(v, type_name, target) for v in values]
+    listed = [flag(exp.EQ(this=col(column), expression=lit)) for lit in literals]
+    is_null = exp.Is(this=col(column), expression=exp.Null())
+    if literals:
+        known = exp.In(this=col(column), expressions=[lit.copy() for lit in literals])
+        other = exp.Case(ifs=[exp.If(this=is_null.copy(), true=zero.copy()), exp.If(this=known, true=zero.copy())], default=one.copy())
+    else:
+        other = exp.Case(ifs=[exp.If(this=is_null.copy(), true=zero.copy())], default=one.copy())
+    return [*listed, other, flag(is_null)]
+
+
+def category_code_expression(column: str, type_name: str, values: Sequence[str], target: TargetLike) -> exp.Expression:
+    """The category's code as an integer: 1, 2, ... for the listed values, len+1 for any other value,
+    len+2 for NULL (the position of its indicator, counting from 1).  One array search where the
+    target has one (``Target.array_position``), else a comparison per category."""
+    target = target_for(target)
+    is_null = exp.If(this=exp.Is(this=col(column), expression=exp.Null()), true=num(len(values) + 2))
+    literals = [category_literal(v, type_name, target) for v in values]
+    found = target.array_position(exp.Array(expressions=literals), col(column)) if literals else None
+    if found is not None:
+        return exp.Case(ifs=[is_null], default=exp.Coalesce(this=found, expressions=[num(len(values) + 1)]))
+    ifs = [is_null] + [exp.If(this=exp.EQ(this=col(column), expression=lit), true=num(i + 1)) for i, lit in enumerate(literals)]
+    return exp.Case(ifs=ifs, default=num(len(values) + 1))
+
+
+@dataclass(frozen=True)
+class CodeLookup:
+    """A categorical column in the nearest-centroid SQL: per centroid i, ``tables[i][q - 1]`` is the whole
+    squared (weighted, scaled) distance its indicators add for a row of category code q; a row's score is
+    the numeric columns' score plus that entry (one array lookup instead of a term per indicator)."""
+
+    code: str  # the source's derived code column (1-based)
+    tables: tuple[tuple[float, ...], ...]
+
+    def entry(self, i: int, q: exp.Expression, target: TargetLike) -> exp.Expression:
+        return target_for(target).array_entry(exp.Array(expressions=[num(float(x)) for x in self.tables[i]]), q)

@@ -19,6 +19,7 @@ from typing import TYPE_CHECKING, Any, Callable, Iterator, Sequence
 
 import numpy as np
 
+from . import categorical as cat
 from . import features as F
 from . import sqlgen
 from .engines import Engine, SourceError, is_numeric_type
@@ -427,7 +428,8 @@ class Standardisation:
 
 
 def standardise_cells(
-    cells_grid: CF, grid: Grid, columns: Sequence[str], settings: Settings, weights: np.ndarray
+    cells_grid: CF, grid: Grid, columns: Sequence[str], settings: Settings, weights: np.ndarray,
+    indicator_groups: Sequence[np.ndarray] = (),
 ) -> tuple[CF, Standardisation]:
     """Exact mean and sd from the total of the cell CFs, and the cells moved into that standardisation.
 
@@ -442,6 +444,11 @@ def standardise_cells(
     center = grid_center + total.ls[0] / n * grid_scale
     sd = np.sqrt(F.column_scatter(total)[0] / n) * grid_scale
     constant = constant_columns(center, sd)
+    fixed = np.full(d, np.nan)  # the indicators of a categorical column share one scale (categorical.group_scale)
+    for pos in indicator_groups:
+        s_ = cat.group_scale(center[pos])
+        constant[pos] = s_ == 0.0
+        fixed[pos] = s_ if s_ > 0.0 else 1.0
     if constant.any():
         names = ", ".join(c for c, flag in zip(columns, constant) if flag)
         warnings.warn(f"constant column(s) {names}: they carry no weight", UserWarning, stacklevel=3)
@@ -449,6 +456,7 @@ def standardise_cells(
         raise InputError(nothing_to_segment_on(columns, constant, weights))
     weights = np.where(constant, 0.0, weights)
     scale = np.where(constant, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
+    scale = np.where(np.isnan(fixed), scale, fixed)
     cells = F.affine(cells_grid, grid_scale / scale, (grid_center - center) / scale)
     return cells, Standardisation(center=center, sd=sd, scale=scale, weights=weights, constant=constant)
 
@@ -688,6 +696,7 @@ def refine_passes(
     usable: int,
     cell_map: sqlgen.CellMap | None = None,
     cell_boxes: CellBoxes | None = None,
+    codes: tuple[Sequence[np.ndarray], Sequence[str]] | None = None,
 ) -> tuple[SegmentStats, list[dict], dict[str, float]]:
     """Row-level Lloyd passes in SQL until the SSE gain falls below the tolerance.
 
@@ -707,14 +716,15 @@ def refine_passes(
             progress("refine", "no pass needed: every cell lies wholly nearest its own segment's centroid")
             return stats, passes, timings
     with temporary_cell_map(engine, cell_map) as held_map:
-        stats, centroids = refine_loop(engine, source, columns, std, centroids, stats, settings, progress, usable, held_map, passes, timings)
+        stats, centroids = refine_loop(engine, source, columns, std, centroids, stats, settings, progress, usable, held_map, passes,
+                                       timings, codes)
     return stats, passes, timings
 
 
 def refine_loop(
     engine: Engine, source: Source, columns: Sequence[str], std: Standardisation, centroids: np.ndarray,
     stats: SegmentStats, settings: Settings, progress: ProgressFn, usable: int, cell_map: sqlgen.CellMap | None,
-    passes: list[dict], timings: dict[str, float],
+    passes: list[dict], timings: dict[str, float], codes: tuple[Sequence[np.ndarray], Sequence[str]] | None = None,
 ) -> tuple[SegmentStats, np.ndarray]:
     """The passes of ``refine_passes``; appends to passes and timings, returns the last stats and centroids.
 
@@ -725,7 +735,10 @@ def refine_loop(
     move rows across a boundary and break that.
     """
     for p in range(1, settings.refine_passes + 1):
-        rr = run_refine_pass(engine, source, columns, std.assignment(centroids), cell_map)
+        if codes is not None:  # categorical columns (no cell map: their runs keep every cell)
+            rr = run_refine_pass_with_codes(engine, source, columns, std.assignment(centroids), *codes)
+        else:
+            rr = run_refine_pass(engine, source, columns, std.assignment(centroids), cell_map)
         before, after = float(rr.assigned.sse.sum()), float(rr.updated.sse.sum())
         gain = (before - after) / before if before > 0 else 0.0
         passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain, "seconds": rr.seconds})
@@ -787,6 +800,7 @@ class RefinedPhase:
 def refine_phase(
     engine: Engine, source: Source, columns: Sequence[str], cells: CF, keys: np.ndarray, grid: Grid,
     std: Standardisation, phase: PhaseResult, settings: Settings, progress: ProgressFn, usable: int,
+    codes: tuple[Sequence[np.ndarray], Sequence[str]] | None = None,
 ) -> RefinedPhase:
     """Refine passes on the second phase's segments (none when the cells settle it, and none for density:
     they would undo its shapes), then ids largest first (density's come numbered so already)."""
@@ -797,6 +811,7 @@ def refine_phase(
         stats, passes, timings = refine_passes(
             engine, source, columns, std, phase.centroids, stats, settings, progress, usable,
             cell_map=phase.cell_map(grid, keys), cell_boxes=CellBoxes.of_grid(grid, keys, std, phase.cell_labels),
+            codes=codes,
         )
     order = size_order(stats) if settings.method != "density" else np.arange(len(stats.n))
     new_id = np.empty(len(order), dtype=np.int64)
@@ -852,4 +867,209 @@ def make_model(
         grid={**grid.to_dict(), "cells": cells, "sd": std.sd.tolist()},
         params=params,
         created=datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    )
+
+
+# ----------------------------------------------------------------------------- categorical columns
+
+
+def categorical_source(
+    engine: Engine, source: Source, columns: Sequence[str], settings: Settings
+) -> tuple[Source, list[cat.CategoricalColumn], Profile]:
+    """Check the numeric and categorical columns; take the profile sample (seeded, as ``run_profile``) with
+    the categorical columns as text; each categorical column's top categories by sampled rows; the source
+    read with their indicators; and the profile of the numeric columns followed by one category code
+    column per categorical column."""
+    t0 = time.perf_counter()
+    described = dict(engine.describe(source))
+    cat.check_categorical(columns, settings.categorical, described, source.label)
+    if columns:
+        check_columns(engine, source, columns)
+    rows = int(engine.query(sqlgen.count_statement(source))["n"][0])
+    if rows == 0:
+        raise InputError(f"{source.label} has no rows")
+    p, target, texts = len(columns), settings.sample_rows, list(settings.categorical)
+
+    def fetch(**kw: Any) -> tuple[np.ndarray, list[list[Any]]]:
+        got = engine.query(sqlgen.sample_statement(source, columns, engine.target, text_columns=texts, **kw))
+        x = [np.asarray(got[sqlgen.internal(f"x{j}")], dtype=np.float64) for j in range(p)]
+        m = len(got[sqlgen.internal("t0")])
+        values = [[None if null else v for v, null in zip(np.ma.getdata(got[sqlgen.internal(f"t{i}")]).tolist(),
+                                                           null_mask(got[sqlgen.internal(f"t{i}")]))] for i in range(len(texts))]
+        return (np.column_stack(x) if p else np.zeros((m, 0))), values
+
+    if rows <= 2 * target:
+        x, values = fetch()
+    else:
+        percent = min(100.0, 150.0 * target / rows)
+        first = engine.target.first_sample_method
+        x, values = fetch(percent=percent, method=first, limit=4 * target, seed=settings.seed)
+        if len(x) < target // 10 and first != "BERNOULLI":
+            x, values = fetch(percent=percent, method="BERNOULLI", limit=4 * target, seed=settings.seed)
+    taken = set(described)
+    specs, codes = [], []
+    for column, vals in zip(texts, values):
+        distinct, counts = np.unique(np.array(["\0NULL" if v is None else v for v in vals], dtype=object).astype(str), return_counts=True)
+        cat.check_distinct(column, len(distinct), len(vals))
+        labels = [None if v == "\0NULL" else v for v in distinct.tolist()]
+        top = cat.top_categories(labels, counts, settings.max_categories)
+        names = cat.indicator_names(column, (*top, cat.OTHER, cat.NULL), taken)
+        specs.append(cat.CategoricalColumn(column, described[column], top, names))
+        position = {v: i + 1 for i, v in enumerate(top)}
+        codes.append([len(top) + 2 if v is None else position.get(v, len(top) + 1) for v in vals])
+    sample = np.hstack([x, np.asarray(codes, dtype=np.float64).T.reshape(len(x), len(texts))])
+    sample = canonical_sample(sample, target, settings.seed)
+    center, sd = robust_mean_sd(sample[:, :p])
+    flat = np.ptp(sample[:, :p], axis=0) == 0 if len(sample) else np.ones(p, dtype=bool)
+    scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(p)
+    prof = Profile(rows=rows, sample=sample, center=np.concatenate([center, np.zeros(len(texts))]),
+                   scale=np.concatenate([scale, np.ones(len(texts))]), seconds=time.perf_counter() - t0,
+                   repeats="yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.target))
+    return cat.with_indicators(source, specs, engine.target), specs, prof
+
+
+def model_source(engine: Engine, source: Source, model: Model) -> Source:
+    """The source as a model reads it: with the indicators of its categorical columns, if any."""
+    return cat.with_indicators(source, cat.specs_of(model.categorical), engine.target)
+
+
+#: Spacing of category codes in the width search's coordinates: above its widest width (50), so
+#: every code stays its own bin there as it does in SQL.
+CODE_SPACING = 100.0
+
+
+def grid_with_category_codes(prof: Profile, settings: Settings, weights: np.ndarray, groups: Sequence[np.ndarray]) -> Grid:
+    """The grid of a run with categorical columns, on every column (numeric ones first, then the
+    indicators).  ``prof`` holds the numeric columns and one category code per categorical column.
+
+    The grid bins the numeric columns (with none, one axis that is 0 for every row); indicators have
+    centre 0 and scale 1 in it and no axis.  The cell pass also groups on each categorical column's code
+    (``run_cell_pass_with_codes``), so the width is chosen with the codes in the count of occupied cells."""
+    g = len(groups)
+    p = len(prof.center) - g
+    d = p + sum(len(pos) for pos in groups)
+    numeric_w = weights[:p]
+    sample_u = (prof.sample[:, :p] - prof.center[None, :p]) / prof.scale[None, :p]
+    varied = np.ptp(prof.sample[:, :p], axis=0) > 0 if len(prof.sample) else np.ones(p, dtype=bool)
+    axes = np.zeros((d, 1))
+    width = 1.0
+    if (numeric_w > 0).any():
+        num_axes = grid_axes(sample_u, numeric_w, settings, varied)
+        coords = np.hstack([sample_u @ num_axes, prof.sample[:, p:] * CODE_SPACING])
+        width = settings.width or choose_width(coords, prof.rows, cell_target(settings, prof.rows))
+        axes = np.zeros((d, num_axes.shape[1]))
+        axes[:p] = num_axes
+    return Grid(
+        center=tuple(map(float, np.concatenate([prof.center[:p], np.zeros(d - p)]))),
+        inv_scale=tuple(map(float, np.concatenate([1.0 / prof.scale[:p], np.ones(d - p)]))),
+        width=float(width),
+        axes=tuple(tuple(map(float, r)) for r in axes),
+        sums_scaled=True,
+    )
+
+
+def run_cell_pass_with_codes(
+    engine: Engine, source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str]
+) -> CellPass:
+    """The cell pass of a run with categorical columns: GROUP BY the numeric grid key and each categorical
+    column's code.  Only the numeric columns are summed in SQL; every row of a cell has the same
+    indicators, so their sums follow exactly from the cell's count (``categorical.indicator_cells``)."""
+    t0 = time.perf_counter()
+    d = len(columns)
+    numeric = np.ones(d, dtype=bool)
+    for pos in groups:
+        numeric[pos] = False
+    num_idx = np.flatnonzero(numeric)
+    center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
+    # the grid on the numeric columns alone (none: no key but the codes)
+    sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
+               axes=tuple(tuple(r) for r in np.asarray(grid.axes)[num_idx]) if len(num_idx) else None, sums_scaled=True)
+    statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, engine.target, extra_keys=code_names)
+    got = engine.query(statement)
+    names = sub.key_names()
+    n_all = np.asarray(got["n"], dtype=np.float64)
+    null = null_mask(got[names[0]]) if names else np.zeros(len(n_all), dtype=bool)
+    skipped = int(n_all[null].sum())
+    keep = ~null
+    n = n_all[keep]
+    ls, ss = np.zeros((len(n), d)), np.zeros((len(n), d))
+    if len(num_idx):
+        numeric_cf = cf_from_result(got, len(num_idx), keep)
+        ls[:, num_idx], ss[:, num_idx] = numeric_cf.ls, numeric_cf.ss
+    codes = np.column_stack([np.asarray(np.ma.getdata(got[f"q{i}"]), dtype=np.float64)[keep] for i in range(len(code_names))])
+    for i, pos in enumerate(groups):
+        ls[:, pos], ss[:, pos] = cat.indicator_cells(n, codes[:, i], center[pos], inv_scale[pos])
+    keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names] + [codes]) if names else codes
+    order = np.lexsort(keys.T[::-1])
+    cells = CF(n, ls, ss)[order]
+    return CellPass(cells=cells, keys=keys[order], usable=int(round(n.sum())), skipped=skipped, seconds=time.perf_counter() - t0)
+
+
+def code_assignment(
+    columns: Sequence[str], assign: Assignment, groups: Sequence[np.ndarray], code_names: Sequence[str]
+) -> tuple[list[str], Assignment, list[sqlgen.CodeLookup]]:
+    """The nearest-centroid SQL of a run with categorical columns: the numeric columns' assignment, and per
+    categorical column a lookup of the squared distance its indicators add, by category code:
+    D_i[q] = sum_c w_c^2 ((delta_cq - m_c) s_c - C_ic)^2 over the column's indicators c."""
+    d = len(columns)
+    numeric = np.ones(d, dtype=bool)
+    for pos in groups:
+        numeric[pos] = False
+    idx = np.flatnonzero(numeric)
+    center, inv_scale = np.asarray(assign.center), np.asarray(assign.inv_scale)
+    w2 = np.asarray(assign.weights) ** 2
+    cent = np.asarray(assign.centroids, dtype=np.float64).reshape(len(assign.centroids), d)
+    lookups = []
+    for pos, name in zip(groups, code_names):
+        rows_u = (np.eye(len(pos)) - center[pos][None, :]) * inv_scale[pos][None, :]  # (codes, indicators)
+        diff = rows_u[None, :, :] - cent[:, pos][:, None, :]  # (k, codes, indicators)
+        tables = (diff * diff * w2[pos][None, None, :]).sum(axis=2)
+        lookups.append(sqlgen.CodeLookup(name, tuple(tuple(map(float, t)) for t in tables)))
+    numeric_assign = Assignment(
+        tuple(center[idx].tolist()), tuple(inv_scale[idx].tolist()), tuple(np.asarray(assign.weights)[idx].tolist()),
+        tuple(tuple(map(float, c[idx])) for c in cent), ids=assign.ids,
+    )
+    return [columns[j] for j in idx], numeric_assign, lookups
+
+
+def run_refine_pass_with_codes(
+    engine: Engine, source: Source, columns: Sequence[str], assign: Assignment, groups: Sequence[np.ndarray],
+    code_names: Sequence[str],
+) -> RefineResult:
+    """``run_refine_pass`` for a run with categorical columns: one GROUP BY (segment, codes); the
+    indicators' linear sums follow from the counts per code."""
+    t0 = time.perf_counter()
+    d = len(columns)
+    numeric_cols, numeric_assign, lookups = code_assignment(columns, assign, groups, code_names)
+    num_idx = [columns.index(c) for c in numeric_cols]
+    got = engine.query(sqlgen.refine_statement(source, numeric_cols, numeric_assign, engine.target, lookups=lookups))
+    null = null_mask(got["segment"])
+    ids = np.asarray(np.ma.getdata(got["segment"]), dtype=np.float64)
+    null = null | (ids < 0)
+    n_all = np.asarray(got["n"], dtype=np.float64)
+    k = len(assign.centroids)
+    position = {sid: i for i, sid in enumerate(assign.segment_ids())}
+    seg = np.array([position[int(i)] for i in ids[~null]], dtype=np.int64)
+    n_rows = n_all[~null]
+    n = np.bincount(seg, weights=n_rows, minlength=k)
+    center, inv_scale = np.asarray(assign.center), np.asarray(assign.inv_scale)
+    ls_u = np.zeros((k, d))
+    for j, col_j in zip(num_idx, range(len(num_idx))):
+        ls_u[:, j] = np.bincount(seg, weights=np.asarray(got[f"ls{col_j}"], dtype=np.float64)[~null], minlength=k) * inv_scale[j]
+    for g, pos in enumerate(groups):
+        codes = np.asarray(np.ma.getdata(got[f"q{g}"]), dtype=np.float64)[~null]
+        ls_c, _ = cat.indicator_cells(n_rows, codes, center[pos], inv_scale[pos])
+        for c_i, j in enumerate(pos):
+            ls_u[:, j] = np.bincount(seg, weights=ls_c[:, c_i], minlength=k)
+    dist = np.bincount(seg, weights=np.asarray(np.ma.getdata(got["dist"]), dtype=np.float64)[~null], minlength=k)
+    old = np.asarray(assign.centroids, dtype=np.float64)
+    means = np.where(n[:, None] > 0, ls_u / np.where(n > 0, n, 1.0)[:, None], old)
+    w = np.asarray(assign.weights, dtype=np.float64)
+    shift = (((means - old) * w[None, :]) ** 2).sum(axis=1)
+    dist = np.maximum(dist, 0.0)
+    return RefineResult(
+        assigned=SegmentStats(n, old, dist),
+        updated=SegmentStats(n, means, np.maximum(dist - n * shift, 0.0)),
+        skipped=int(n_all[null].sum()),
+        seconds=time.perf_counter() - t0,
     )

@@ -699,6 +699,9 @@ def build(
     require_transactions(engine)
     columns = list(columns)
     check_store_method(settings.method)  # before the checks of k, which density does not take
+    if settings.categorical:
+        raise ParameterError("a summary store does not keep categorical columns yet; segment with {categorical} "
+                             "without a store", "categorical")
     settings.check(columns)
     name = store or default_store_name(source)
     if not partition.files and not partition.columns:

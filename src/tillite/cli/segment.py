@@ -36,10 +36,17 @@ def _check_dialect(ctx, param, value: str) -> "sqlgen.Target":
         raise click.BadParameter(str(err)) from None
 
 
+#: segment's --columns: optional when --categorical names the columns to segment on.
+segment_columns_option = click.option(
+    "--columns", "-c", multiple=True,
+    help="Numeric columns to segment on, comma-separated (repeatable; may be left out with --categorical).",
+)
+
+
 @click.command("segment")
 @source_argument
 @table_option
-@columns_option
+@segment_columns_option
 @settings_options
 @click.option("--out", "-o", default=None, help="Model file to write [default: SOURCE's table or file name + .model.json, "
               "e.g. meter_days.model.json, in the current folder].")
@@ -56,6 +63,8 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
 
     with user_errors():
         settings = settings_from_options(**kw)
+        if not columns and not settings.categorical:
+            raise click.UsageError("give --columns (numeric columns) or --categorical (or both)")
         out = out or default_model_path(source, table)
         with open_with_options(source, table) as (engine, src):
             model = segment(engine, src, split_columns(columns), settings, progress=progress_printer(quiet))
@@ -174,15 +183,26 @@ def sql_command(source, table, columns, stage, model_path, target, cell_budget) 
                 src = sqlgen.Source.of_table(table)
             except ValueError as err:
                 raise click.BadParameter(str(err), param_hint="--table") from None
+            src = _model_source(src, model, target)
             statements = _stage_statements(None, src, cols, cols, stage, model, target, cell_budget)
         else:
             from ..stages import check_columns
 
             with open_with_options(source, table) as (engine, src):
-                source_columns = check_columns(engine, src, cols)
+                src = _model_source(src, model, target)
+                source_columns = [c for c in check_columns(engine, src, cols) if c not in src.derived_names()]
                 statements = _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget)
         for st in statements:
             click.echo(sqlgen.render(st, target, pretty=True) + ";")
+
+
+def _model_source(src, model, target):
+    """The source with the model's category indicators, if it has categorical columns."""
+    if model is None or not model.categorical:
+        return src
+    from ..categorical import specs_of, with_indicators
+
+    return with_indicators(src, specs_of(model.categorical), target)
 
 
 def _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget):
@@ -200,9 +220,17 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, target, c
         return [sqlgen.cells_statement(src, cols, grid, target)]
     if model is None:
         raise click.UsageError(f"--stage {stage} needs --model")
+    assign, lookups = model.assignment(), []
+    if model.categorical:  # the numeric columns' scores plus one lookup per categorical column, as segment and label run them
+        from ..categorical import code_names, indicator_positions, specs_of
+        from ..stages import code_assignment
+
+        specs = specs_of(model.categorical)
+        source_columns = [c for c in source_columns if c not in model.columns or c in model.input_columns()]
+        cols, assign, lookups = code_assignment(cols, assign, indicator_positions(cols, specs), code_names(specs))
     if stage == "refine":
-        return [sqlgen.refine_statement(src, cols, model.assignment(), target, cell_map=model.cell_map_spec())]
-    return [sqlgen.label_select(src, cols, source_columns, model.assignment(), target, cell_map=model.cell_map_spec())]
+        return [sqlgen.refine_statement(src, cols, assign, target, cell_map=model.cell_map_spec(), lookups=lookups)]
+    return [sqlgen.label_select(src, cols, source_columns, assign, target, cell_map=model.cell_map_spec(), lookups=lookups)]
 
 
 @click.command("demo")

@@ -218,4 +218,5 @@ def settings_from_options(**kw: Any) -> Settings:
     k_value, candidates = parse_k(k_text)
     if kw.get("method", "kmeans") != "density" and k_text is None:
         raise click.UsageError("give --k (a number, 'auto' or a range like 2..12)")
-    return Settings(k=k_value, k_candidates=candidates, weights=parse_weights(kw.pop("weights")), **kw)
+    categorical = tuple(split_columns((kw.pop("categorical", None) or "",)))
+    return Settings(k=k_value, k_candidates=candidates, weights=parse_weights(kw.pop("weights")), categorical=categorical, **kw)

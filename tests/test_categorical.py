@@ -1,0 +1,276 @@
+"""Categorical columns (``--categorical``): indicators of the top categories, checked against numpy on
+explicitly one-hot-encoded, scaled rows and against scikit-learn."""
+
+from __future__ import annotations
+
+import json
+
+import duckdb
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from sklearn.cluster import KMeans
+from sklearn.datasets import make_blobs
+from sklearn.metrics import adjusted_rand_score
+
+from tillite import categorical as cat
+from tillite.cli import main
+from tillite.engines import open_source
+from tillite.model import Model
+from tillite.pipeline import Settings, label, segment
+
+from conftest import assert_one_error_line, write_table
+
+CATEGORIES = np.array(["harbour", "north", None], dtype=object)
+
+
+def mixed_data(n: int = 12_000, seed: int = 5):
+    """2 numeric blobs (scikit-learn make_blobs) x 3 category groups (one of them NULL): 6 clusters that only
+    numbers and categories together tell apart."""
+    x, blob = make_blobs(n_samples=n, centers=[(-4.0, -4.0), (4.0, 4.0)], cluster_std=1.0, random_state=seed)
+    group = np.random.default_rng(seed).integers(0, 3, n)
+    truth = blob * 3 + group
+    return x, CATEGORIES[group], truth
+
+
+@pytest.fixture(scope="module")
+def mixed_db(tmp_path_factory):
+    x, c, truth = mixed_data()
+    path = tmp_path_factory.mktemp("cat") / "mixed.duckdb"
+    write_table(path, "t", {"id": np.arange(len(x)), "a": x[:, 0], "b": x[:, 1], "district": c, "truth": truth})
+    return path
+
+
+def one_hot_scaled(x: np.ndarray, c: np.ndarray, listed, weights=(1.0, 1.0), cat_weight: float = 1.0) -> np.ndarray:
+    """Rows as numpy sees them: numeric columns z-scored (population sd), then one 0/1 column per listed
+    category, "other" and NULL, centred and divided by sqrt(1 - sum p^2), times the weights."""
+    z = (x - x.mean(axis=0)) / x.std(axis=0)
+    is_null = np.array([v is None for v in c])
+    onehot = [np.array([v == name for v in c], dtype=float) for name in listed]
+    onehot.append((~is_null & ~np.isin(c.astype(str), list(listed))).astype(float))
+    onehot.append(is_null.astype(float))
+    ind = np.column_stack(onehot)
+    p = ind.mean(axis=0)
+    ind = (ind - p) / np.sqrt(1.0 - (p * p).sum())
+    return np.hstack([z * np.asarray(weights)[None, :], ind * cat_weight])
+
+
+def labels_of(path, model: Model, source_table: str = "t") -> np.ndarray:
+    with open_source(str(path), table=source_table, writable=True) as (engine, src):
+        label(engine, src, model, "labels", replace=True)
+    con = duckdb.connect(str(path), read_only=True)
+    try:
+        return con.execute('SELECT segment FROM labels ORDER BY id').fetchnumpy()["segment"]
+    finally:
+        con.close()
+
+
+def run_model(path, k: int, **kw) -> Model:
+    with open_source(str(path), table="t") as (engine, src):
+        return segment(engine, src, ["a", "b"], Settings(k=k, categorical=("district",), **kw))
+
+
+def sse_at_centroids(u: np.ndarray, seg: np.ndarray, centroids_u: np.ndarray, ids) -> float:
+    pos = {sid: i for i, sid in enumerate(ids)}
+    own = centroids_u[[pos[s] for s in seg]]
+    return float(((u - own) ** 2).sum())
+
+
+def centroids_in_numpy_units(model: Model, x: np.ndarray, c: np.ndarray, listed, weights=(1.0, 1.0), cat_weight=1.0):
+    """The model's centroids (original units: numeric means, category shares) in numpy's scaled units."""
+    cent = np.asarray(model.centroids)
+    num = (cent[:, :2] - x.mean(axis=0)) / x.std(axis=0) * np.asarray(weights)
+    is_null = np.array([v is None for v in c])
+    ind = np.column_stack([np.array([v == name for v in c], float) for name in listed]
+                          + [(~is_null & ~np.isin(c.astype(str), list(listed))).astype(float), is_null.astype(float)])
+    p = ind.mean(axis=0)
+    return np.hstack([num, (cent[:, 2:] - p) / np.sqrt(1.0 - (p * p).sum()) * cat_weight])
+
+
+def test_sse_equals_numpy_on_one_hot_scaled_rows(mixed_db):
+    x, c, _ = mixed_data()
+    model = run_model(mixed_db, 6)
+    listed = model.categorical[0]["values"]
+    assert set(listed) == {"harbour", "north"}
+    seg = labels_of(mixed_db, model)
+    u = one_hot_scaled(x, c, listed)
+    # outside reference: numpy's SSE of the same assignment on explicitly one-hot-encoded, scaled rows
+    expected = sse_at_centroids(u, seg, centroids_in_numpy_units(model, x, c, listed), model.segment_ids())
+    assert model.sse == pytest.approx(expected, rel=1e-9)
+    assert np.bincount(seg, minlength=model.k).tolist() == [model.sizes[model.segment_ids().index(i)] for i in range(model.k)]
+
+
+def test_categories_and_numbers_together_recover_the_clusters(mixed_db):
+    _, _, truth = mixed_data()
+    model = run_model(mixed_db, 6)
+    seg = labels_of(mixed_db, model)
+    # outside reference: scikit-learn adjusted_rand_score against the generating labels
+    assert adjusted_rand_score(truth, seg) >= 0.95
+
+
+def test_refined_sse_is_within_0_2_percent_of_scikit_learn_kmeans_on_the_one_hot_matrix(mixed_db):
+    x, c, _ = mixed_data()
+    model = run_model(mixed_db, 4)
+    u = one_hot_scaled(x, c, model.categorical[0]["values"])
+    # outside reference: scikit-learn KMeans(n_init=10) inertia on the same one-hot, scaled matrix
+    inertia = KMeans(n_clusters=4, n_init=10, random_state=0).fit(u).inertia_
+    assert model.sse <= 1.002 * inertia
+
+
+def test_weight_of_a_categorical_column_scales_all_its_indicators(mixed_db):
+    x, c, _ = mixed_data()
+    model = run_model(mixed_db, 5, weights={"district": 0.5, "a": 2.0})
+    listed = model.categorical[0]["values"]
+    seg = labels_of(mixed_db, model)
+    u = one_hot_scaled(x, c, listed, weights=(2.0, 1.0), cat_weight=0.5)
+    cu = centroids_in_numpy_units(model, x, c, listed, weights=(2.0, 1.0), cat_weight=0.5)
+    # outside reference: numpy SSE on the one-hot rows weighted by hand
+    assert model.sse == pytest.approx(sse_at_centroids(u, seg, cu, model.segment_ids()), rel=1e-9)
+
+
+def test_default_weight_gives_the_column_the_variance_of_one_scaled_numeric_column(mixed_db):
+    x, c, _ = mixed_data()
+    model = run_model(mixed_db, 2)
+    u = one_hot_scaled(x, c, model.categorical[0]["values"])
+    # outside reference: numpy variances; a z-scored column has variance 1, so must the column's indicators together
+    assert u[:, 2:].var(axis=0).sum() == pytest.approx(1.0, rel=1e-12)
+    scale = np.asarray(model.scale)
+    p = np.asarray(model.center)[2:]
+    assert scale[2:] == pytest.approx(np.sqrt(1 - (p * p).sum()), rel=1e-12)
+
+
+def test_categories_beyond_max_count_as_other_and_unseen_values_too(tmp_path):
+    rng = np.random.default_rng(3)
+    n = 6_000
+    x = rng.normal(size=(n, 2))
+    names = np.array([f"d{i}" for i in range(6)], dtype=object)
+    c = names[np.minimum(rng.geometric(0.35, n) - 1, 5)]
+    path = write_table(tmp_path / "m.duckdb", "t", {"id": np.arange(n), "a": x[:, 0], "b": x[:, 1], "district": c})
+    model = run_model(path, 3, max_categories=2)
+    listed = model.categorical[0]["values"]
+    assert listed == ["d0", "d1"]  # most rows first (counted in the sample: the whole table here)
+    seg = labels_of(path, model)
+    u = one_hot_scaled(x, c, listed)
+    # outside reference: numpy SSE with d2..d5 as one "other" column
+    assert model.sse == pytest.approx(sse_at_centroids(u, seg, centroids_in_numpy_units(model, x, c, listed), model.segment_ids()), rel=1e-9)
+    # a value first seen after the build counts as "other": same segment and distance as a d5 row
+    con = duckdb.connect(str(path))
+    con.execute("INSERT INTO t SELECT id + 100000, a, b, 'never seen' FROM t WHERE district = 'd5' LIMIT 3")
+    con.close()
+    labels_of(path, model)
+    con = duckdb.connect(str(path), read_only=True)
+    got = con.execute("SELECT l.segment, l.distance, o.segment, o.distance FROM labels l JOIN labels o ON o.id + 100000 = l.id "
+                      "WHERE l.district = 'never seen'").fetchall()
+    con.close()
+    assert len(got) == 3 and all(r[0] == r[2] and r[1] == pytest.approx(r[3], rel=1e-12) for r in got)
+
+
+def test_only_categorical_columns_key_the_cells_by_category(tmp_path):
+    c = np.array(["a"] * 500 + ["b"] * 300 + [None] * 200, dtype=object)
+    path = write_table(tmp_path / "c.duckdb", "t", {"id": np.arange(len(c)), "district": c})
+    with open_source(str(path), table="t") as (engine, src):
+        model = segment(engine, src, [], Settings(k=3, categorical=("district",)))
+    # outside reference: counting the categories by hand; each is its own segment with SSE 0
+    assert sorted(model.sizes) == [200, 300, 500]
+    assert model.sse == pytest.approx(0.0, abs=1e-9)
+    shares = [model.category_shares(i)["district"] for i in range(3)]
+    assert sorted(max(s.values()) for s in shares) == [1.0, 1.0, 1.0]
+
+
+def test_show_and_json_report_category_shares(mixed_db, tmp_path):
+    out = tmp_path / "m.json"
+    res = CliRunner().invoke(main, ["segment", str(mixed_db), "-t", "t", "-c", "a,b", "--categorical", "district", "--k", "6",
+                                    "-o", str(out), "-q", "--json"])
+    assert res.exit_code == 0, res.output
+    summary = json.loads(res.stdout)
+    shares = summary["segments"][0]["categories"]["district"]
+    assert sum(shares.values()) == pytest.approx(1.0, rel=1e-9)
+    assert set(shares) == {"harbour", "north", "(other)", "(NULL)"}
+    text = Model.read(out).describe()
+    assert "district: 100% " in text and "category shares per segment" in text
+    assert Model.read(out).categorical == json.loads(out.read_text())["categorical"]
+
+
+@pytest.mark.parametrize("args, needles", [
+    (["-c", "a,b", "--categorical", "district", "--max-categories", 0], ["--max-categories", "0"]),
+    (["-c", "a,b", "--categorical", "district", "--max-categories", 500], ["--max-categories", "200"]),
+    (["-c", "a,district", "--categorical", "district"], ["district", "--columns", "--categorical"]),
+    (["-c", "a", "--categorical", "nope"], ["nope", "not found"]),
+    (["-c", "a", "--categorical", "id"], ["id", "10,000", "distinct"]),
+])
+def test_bad_categorical_input_is_one_error_line(mixed_db, args, needles):
+    res = CliRunner().invoke(main, ["segment", str(mixed_db), "-t", "t", "--k", 3, "-q", *[str(a) for a in args]])
+    assert_one_error_line(res, *needles)
+
+
+def test_group_scale_is_the_root_of_one_minus_the_sum_of_squared_shares():
+    # outside reference: the definition (Gini impurity 1 - sum p^2), worked by hand: 1 - (0.25 + 0.25) = 0.5
+    assert cat.group_scale(np.array([0.5, 0.5])) == pytest.approx(np.sqrt(0.5))
+    assert cat.group_scale(np.array([1.0, 0.0])) == 0.0
+
+
+def test_scoring_macros_take_the_category_and_agree_with_the_labels(mixed_db, tmp_path):
+    from tillite import macros as M
+
+    path = tmp_path / "copy.duckdb"
+    path.write_bytes(mixed_db.read_bytes())
+    model = run_model(path, 6)
+    labels_of(path, model)
+    M.install_into(path, M.scoring_macros(model, "mixed"))
+    con = duckdb.connect(str(path), read_only=True)
+    # outside reference: the label view's own segment and distance, row by row (the two share no code path)
+    differ = con.execute('SELECT count(*) FROM labels WHERE mixed_segment(a, b, district) <> segment '
+                         'OR abs(mixed_distance(a, b, district) - distance) > 1e-9 * (1 + distance)').fetchone()[0]
+    unseen = con.execute("SELECT mixed_segment(a, b, 'never seen') = mixed_segment(a, b, 'also new') FROM t LIMIT 5").fetchall()
+    con.close()
+    assert differ == 0
+    assert all(r[0] for r in unseen)  # two unseen values are the same "other" category
+
+
+def test_report_shows_each_category_share_per_segment(mixed_db):
+    from tillite import report as R
+
+    x, c, _ = mixed_data()
+    model = run_model(mixed_db, 6)
+    seg = labels_of(mixed_db, model)
+    with open_source(str(mixed_db), table="t") as (engine, src):
+        content = R.report_of_model(engine, src, model, ["district"])
+    assert content is not None
+    # outside reference: numpy share of "north" rows in each labelled segment
+    name = model.categorical[0]["indicators"][model.categorical[0]["values"].index("north")]
+    for i, sid in enumerate(model.segment_ids()):
+        rows = seg == sid
+        expected = float(np.mean([v == "north" for v in c[rows]]))
+        assert model.category_shares(i)["district"]["north"] == pytest.approx(expected, abs=1e-9)
+    assert name in json.dumps(content, default=str)
+
+
+def test_a_store_refuses_categorical_columns_in_one_line(mixed_db):
+    from tillite import store as S
+    from tillite.errors import ParameterError
+
+    with open_source(str(mixed_db), table="t", writable=True) as (engine, src):
+        with pytest.raises(ParameterError, match="categorical"):
+            S.build(engine, src, ["a", "b"], S.PartitionSpec(("district",)), Settings(k=3, categorical=("district",)))
+
+
+@pytest.mark.parametrize("sql_type, make", [
+    ("INTEGER", "i % 4"),
+    ("DATE", "DATE '2026-01-01' + (i % 4)::INT"),
+    ("BOOLEAN", "CASE WHEN i % 4 = 3 THEN NULL ELSE i % 4 = 0 END"),
+    ("VARCHAR", "CASE i % 4 WHEN 0 THEN 'O''Brien \"q\"' WHEN 1 THEN '(other)' WHEN 2 THEN 'select' ELSE NULL END"),
+])
+def test_categories_of_any_type_match_their_literals(tmp_path, sql_type, make):
+    path = tmp_path / "types.duckdb"
+    con = duckdb.connect(str(path))
+    con.execute(f"CREATE TABLE t AS SELECT i AS id, CAST({make} AS {sql_type}) AS c FROM range(4000) r(i)")
+    expected = sorted(n for (n,) in con.execute("SELECT count(*) FROM t GROUP BY c").fetchall())
+    con.close()
+    with open_source(str(path), table="t", writable=True) as (engine, src):
+        model = segment(engine, src, [], Settings(k=len(expected), categorical=("c",)))
+        label(engine, src, model, "labels")
+        got = sorted(n for n in engine.query(__import__("sqlglot").parse_one(
+            'SELECT count(*) AS n FROM labels GROUP BY segment'))["n"].tolist())
+    # outside reference: DuckDB's own GROUP BY of the column; each category (NULL too) is one segment
+    assert sorted(model.sizes) == expected == got
+    assert model.sse == pytest.approx(0.0, abs=1e-9)
