@@ -140,7 +140,7 @@ def block_sample_pays(engine: Engine, source: Source, percent: float) -> bool:
     x 8 columns it cost 0.17 of a plain scan against 2.2 for BERNOULLI REPEATABLE
     (benchmarks/bench_sample.py), which reads every row.
     """
-    if engine.dialect != "duckdb" or not source.table or not hasattr(engine, "one_thread"):
+    if not engine.target.block_sample or not source.table or not hasattr(engine, "one_thread"):
         return False
     if sqlgen.BLOCK_SAMPLE_SPREAD * percent > BLOCK_SAMPLE_MAX_PERCENT:
         return False

@@ -62,6 +62,9 @@ class Target:
     sample_repeats: str = "no"
     #: The TABLESAMPLE method the profile tries first (SYSTEM reads blocks, cheaper, may come back short).
     first_sample_method: str = "SYSTEM"
+    #: Base tables take the two-stage seeded block sample (sqlgen.block_sample_statement), which
+    #: repeats when one thread runs it.
+    block_sample: bool = False
     #: Multi-statement transactions (a summary store needs them).
     transactions: bool = True
     #: The fingerprints row_hash builds are exact when summed; False: refused by name.
@@ -187,6 +190,7 @@ class DuckDB(Target):
     repeatable_sample = True
     sample_repeats = "yes"
     first_sample_method = "BERNOULLI"
+    block_sample = True
     hashes_rows = True
 
     def is_finite(self, e: exp.Expression) -> exp.Expression:
