@@ -59,8 +59,11 @@ def child(kind: str, db: str, table: str, cols: int, k: int) -> None:
     tracemalloc.start()
     t0 = time.perf_counter()
     out: dict = {}
-    if kind == "tillite":
-        from tillite import DuckDBEngine, Settings, Source, segment
+    if kind in ("tillite", "tillite-bernoulli"):
+        from tillite import DuckDBEngine, Settings, Source, segment, stages
+
+        if kind == "tillite-bernoulli":  # the profile as before the block sample: BERNOULLI REPEATABLE over every row
+            stages.block_sample_pays = lambda *a, **k: False
 
         engine = DuckDBEngine(db, read_only=True)
         model = segment(engine, Source.of_table(table), [f"c{j}" for j in range(cols)], Settings(k=k))
@@ -96,6 +99,8 @@ def child(kind: str, db: str, table: str, cols: int, k: int) -> None:
             times.append(time.perf_counter() - t)
         out["timings"] = {"scan": statistics.median(times)}
     out["wall"] = time.perf_counter() - t0
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    out["cpu"] = usage.ru_utime + usage.ru_stime  # every thread's CPU seconds: steadier than wall time on a loaded machine
     out["python_peak_mb"] = tracemalloc.get_traced_memory()[1] / 2**20
     out["rss_peak_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(json.dumps(out))
@@ -107,11 +112,15 @@ def measure_command(db: Path, table: str, cols: int, k: int, repeat: int) -> lis
     import tempfile
 
     env = dict(os.environ)
+    env.pop("PYTHONDONTWRITEBYTECODE", None)  # bytecode cached, as for an installed package (the first run writes it)
     src = str(HERE.parent / "src")
     env["PYTHONPATH"] = src + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
     out = Path(tempfile.gettempdir()) / "tillite-bench-command-model.json"
     cmd = [sys.executable, "-m", "tillite.cli", "segment", str(db), "-t", table,
            "-c", ",".join(f"c{j}" for j in range(cols)), "--k", str(k), "-q", "-o", str(out)]
+    subprocess.run([sys.executable, "-m", "tillite.cli", "--version"], check=True, capture_output=True, env=env)
+    subprocess.run([sys.executable, "-c", "import tillite.cli, tillite.pipeline, tillite.engines, tillite.model"],
+                   check=True, capture_output=True, env=env)
     walls = []
     for _ in range(repeat):
         t0 = time.perf_counter()
@@ -136,6 +145,8 @@ def main() -> None:
     ap.add_argument("--table", default="blobs")
     ap.add_argument("--child", default=None, help=argparse.SUPPRESS)
     ap.add_argument("--skip-export", action="store_true", help="skip the export-and-cluster comparison")
+    ap.add_argument("--compare-sample", action="store_true",
+                    help="also run the API with the profile's old BERNOULLI sample, alternating with the block sample")
     args = ap.parse_args()
     if args.child:
         child(args.child, args.db, args.table, args.cols, args.k)
@@ -152,6 +163,17 @@ def main() -> None:
     runs = [measure("tillite", db, "blobs", args.cols, args.k) for _ in range(args.repeat)]
     tenth = measure("tillite", db, "blobs_tenth", args.cols, args.k)
     run = sorted(runs, key=lambda r: r["timings"]["total"])[len(runs) // 2]
+    if args.compare_sample:
+        pairs = [(measure("tillite-bernoulli", db, "blobs", args.cols, args.k), measure("tillite", db, "blobs", args.cols, args.k))
+                 for _ in range(args.repeat)]
+        print("\nprofile sample, side by side (alternating fresh processes; medians, in plain scans):")
+        for name, pick in (("BERNOULLI over every row", 0), ("block sample (now)", 1)):
+            for stage in ("profile", "cells", "total"):
+                v = statistics.median(p[pick]["timings"][stage] for p in pairs)
+                print(f"  {name:<26}{stage:<9}{v:>8.3f} s{v / scan:>8.2f}")
+            cpu = statistics.median(p[pick]["cpu"] for p in pairs)
+            print(f"  {name:<26}CPU s of the whole process (all threads, imports included): {cpu:.2f}")
+            print(f"  {name:<26}same SSE in every run: {len({p[pick]['sse'] for p in pairs}) == 1}")
     print(f"\n{args.rows:,} rows x {args.cols} doubles, k={args.k}, DuckDB file {db}")
     print(f"{'stage':<22}{'seconds':>10}{'plain scans':>13}")
     print(f"{'plain sum scan':<22}{scan:>10.3f}{1.0:>13.2f}")

@@ -167,3 +167,26 @@ def test_pairwise_nearest_form_only_where_it_was_measured_to_pay():
     # an unfenced PostgreSQL view would inline the pairwise CASE twice: it keeps LEAST
     assert uses_least(sqlgen.label_select(src, names, names, assign, "postgres"), "postgres")
     assert uses_least(sqlgen.refine_statement(src, names, assign, "spark"), "spark")
+
+
+def test_block_sample_reads_seeded_vectors_then_seeded_rows_and_repeats_on_one_thread():
+    # reference: DuckDB's documentation of samples (SYSTEM keeps each vector with the given
+    # probability, BERNOULLI each row; REPEATABLE (seed) fixes the draw) and a binomial bound on the count
+    stmt = sqlgen.block_sample_statement(Source.of_table("t"), ["a", "b"], 2.0, seed=7, limit=1_000_000)
+    text = sqlgen.render(stmt)
+    assert "TABLESAMPLE SYSTEM (1.6e+01 PERCENT) REPEATABLE (7)" in text
+    assert "TABLESAMPLE BERNOULLI (1.25e+01 PERCENT) REPEATABLE (7)" in text
+    con = duckdb.connect()
+    con.execute("CREATE TABLE t AS SELECT i::DOUBLE AS a, (i % 13)::DOUBLE AS b FROM range(2000000) r(i)")
+    drawn = []
+    for threads in (1, 2, 4):
+        con.execute(sqlgen.render(sqlgen.set_threads_statement(threads)))
+        assert int(con.execute(sqlgen.render(sqlgen.threads_statement())).fetchone()[0]) == threads
+        con.execute(sqlgen.render(sqlgen.set_threads_statement(1)))
+        drawn.append(sorted(con.execute(text).fetchall()))
+    assert drawn[0] == drawn[1] == drawn[2]
+    n = len(drawn[0])
+    # 2% of 2M rows is 40,000; whole vectors make the count vary more than a row sample would,
+    # about sqrt(156 vectors) * 256 rows, so allow a wide band
+    assert 25_000 < n < 55_000
+    assert len({round(a) // 2048 for a, _ in drawn[0]}) > 100  # many vectors, not a few

@@ -256,6 +256,19 @@ class DuckDBEngine(StatementRunner):
         """A transaction whose reads all see one snapshot: every DuckDB transaction does."""
         return self.transaction()
 
+    @contextmanager
+    def one_thread(self) -> Iterator[None]:
+        """Statements inside run on one thread; the connection's thread count is restored after.
+
+        DuckDB's seeded SYSTEM sample repeats only on one thread (``sqlgen.block_sample_statement``).
+        """
+        before = int(self.query(sqlgen.threads_statement())["threads"][0])
+        self.execute(sqlgen.set_threads_statement(1))
+        try:
+            yield
+        finally:
+            self.execute(sqlgen.set_threads_statement(before))
+
     def describe(self, source: Source) -> list[tuple[str, str]]:
         try:
             rel = self.con.sql(self.sql_text(sqlgen.describe_statement(source)))

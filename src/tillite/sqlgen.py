@@ -1379,6 +1379,51 @@ def labelled_rows_select(labels: Source, columns: Sequence[str], by: Sequence[st
     ).from_(labels.relation())
 
 
+# ----------------------------------------------------------------------------- DuckDB block sample
+
+#: How many times more rows the block stage of ``block_sample_statement`` keeps than the whole sample.
+BLOCK_SAMPLE_SPREAD = 8
+
+
+def block_sample_statement(
+    source: Source, columns: Sequence[str], percent: float, seed: int, spread: int = BLOCK_SAMPLE_SPREAD,
+    limit: int | None = None,
+) -> exp.Select:
+    """DuckDB: about ``percent`` % of the rows, drawn in two seeded stages.
+
+    ``TABLESAMPLE SYSTEM (spread * percent PERCENT) REPEATABLE (seed)`` keeps whole
+    vectors (2,048 rows) and reads only those from a base table; a
+    ``BERNOULLI (100 / spread PERCENT) REPEATABLE (seed)`` over them keeps each of
+    their rows with that chance, so the sample comes from some hundreds of
+    vectors spread over the table, not from a few dozen.  DuckDB repeats its
+    SYSTEM sample only when one thread runs the statement
+    (``DuckDBEngine.one_thread``); measured in benchmarks/bench_sample.py.
+    Columns and the usable-rows filter are those of ``sample_statement``.
+    """
+    rel = source.relation()
+    rel.set("sample", exp.TableSample(method=exp.var("SYSTEM"), percent=num(float(spread * percent)), seed=num(int(seed))))
+    names = [internal(f"x{j}") for j in range(len(columns))]
+    blocks = exp.select(*[exp.alias_(to_double(col(c)), n, quoted=True) for c, n in zip(columns, names)]).from_(rel)
+    rows = subquery(blocks, internal("s"))
+    rows.set("sample", exp.TableSample(method=exp.var("BERNOULLI"), percent=num(100.0 / spread), seed=num(int(seed))))
+    outer = exp.select(*[col(n) for n in names]).from_(rows).where(usable_rows(names, "duckdb"))
+    if limit is not None:
+        outer = outer.limit(num(int(limit)))
+    return outer
+
+
+def threads_statement() -> exp.Select:
+    """DuckDB: the connection's thread count, as ``threads``."""
+    setting = exp.Anonymous(this="current_setting", expressions=[exp.Literal.string("threads")])
+    return exp.select(exp.alias_(exp.cast(setting, "BIGINT"), "threads", quoted=True))
+
+
+def set_threads_statement(threads: int) -> exp.Set:
+    """DuckDB: ``SET threads = n``."""
+    item = exp.SetItem(this=exp.EQ(this=exp.column("threads"), expression=exp.Literal.number(int(threads))))
+    return exp.Set(expressions=[item])
+
+
 # --------------------------------------------------------------------------- categorical columns
 
 
