@@ -380,16 +380,32 @@ def run_refine_pass(
     """
     t0 = time.perf_counter()
     got = engine.query(sqlgen.refine_statement(source, columns, assign, engine.target, cell_map=cell_map))
-    null = null_mask(got["segment"])
-    ids = np.asarray(np.ma.getdata(got["segment"]), dtype=np.float64)
-    null = null | (ids < 0)  # the outlier group takes no part in the centroids
-    n_all = np.asarray(got["n"], dtype=np.int64)
+    seg, null, n_all = refine_rows(got, assign)
     k, d = len(assign.centroids), len(columns)
-    position = {sid: i for i, sid in enumerate(assign.segment_ids())}
-    seg = np.array([position[int(i)] for i in ids[~null]], dtype=np.int64)
-    n = np.bincount(seg, weights=n_all[~null].astype(np.float64), minlength=k)
+    n = np.bincount(seg, weights=n_all[~null], minlength=k)
     ls_v = np.column_stack([np.asarray(got[f"ls{j}"], dtype=np.float64)[~null] for j in range(d)])
     ls_u = np.column_stack([np.bincount(seg, weights=ls_v[:, j], minlength=k) for j in range(d)]) * np.asarray(assign.inv_scale)[None, :]
+    return refine_result(got, assign, seg, null, n_all, n, ls_u, t0)
+
+
+def refine_rows(got: dict[str, np.ndarray], assign: Assignment) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """A refine statement's rows: each row's segment position, the rows left out (NULL segment, or
+    the outlier group, which takes no part in the centroids), and the row counts."""
+    null = null_mask(got["segment"])
+    ids = np.asarray(np.ma.getdata(got["segment"]), dtype=np.float64)
+    null = null | (ids < 0)
+    position = {sid: i for i, sid in enumerate(assign.segment_ids())}
+    seg = np.array([position[int(i)] for i in ids[~null]], dtype=np.int64)
+    return seg, null, np.asarray(got["n"], dtype=np.float64)
+
+
+def refine_result(
+    got: dict[str, np.ndarray], assign: Assignment, seg: np.ndarray, null: np.ndarray, n_all: np.ndarray,
+    n: np.ndarray, ls_u: np.ndarray, t0: float,
+) -> RefineResult:
+    """The pass's statistics: each segment's SSE about its old centroid (the summed distances) and
+    about its new mean, lower by exactly n ||m - c||^2 (weighted)."""
+    k = len(assign.centroids)
     dist = np.bincount(seg, weights=np.asarray(np.ma.getdata(got["dist"]), dtype=np.float64)[~null], minlength=k)
     old = np.asarray(assign.centroids, dtype=np.float64)
     means = np.where(n[:, None] > 0, ls_u / np.where(n > 0, n, 1.0)[:, None], old)
@@ -399,7 +415,7 @@ def run_refine_pass(
     return RefineResult(
         assigned=SegmentStats(n, old, dist),
         updated=SegmentStats(n, means, np.maximum(dist - n * shift, 0.0)),
-        skipped=int(n_all[null].sum()),
+        skipped=int(round(n_all[null].sum())),
         seconds=time.perf_counter() - t0,
     )
 
@@ -968,6 +984,14 @@ def grid_with_category_codes(prof: Profile, settings: Settings, weights: np.ndar
     )
 
 
+def numeric_positions(d: int, groups: Sequence[np.ndarray]) -> np.ndarray:
+    """Positions of the numeric columns among d, the categorical columns' indicators being ``groups``."""
+    numeric = np.ones(d, dtype=bool)
+    for pos in groups:
+        numeric[pos] = False
+    return np.flatnonzero(numeric)
+
+
 def run_cell_pass_with_codes(
     engine: Engine, source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str]
 ) -> CellPass:
@@ -976,10 +1000,7 @@ def run_cell_pass_with_codes(
     indicators, so their sums follow exactly from the cell's count (``categorical.indicator_cells``)."""
     t0 = time.perf_counter()
     d = len(columns)
-    numeric = np.ones(d, dtype=bool)
-    for pos in groups:
-        numeric[pos] = False
-    num_idx = np.flatnonzero(numeric)
+    num_idx = numeric_positions(d, groups)
     center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
     # the grid on the numeric columns alone (none: no key but the codes)
     sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
@@ -1012,10 +1033,7 @@ def code_assignment(
     categorical column a lookup of the squared distance its indicators add, by category code:
     D_i[q] = sum_c w_c^2 ((delta_cq - m_c) s_c - C_ic)^2 over the column's indicators c."""
     d = len(columns)
-    numeric = np.ones(d, dtype=bool)
-    for pos in groups:
-        numeric[pos] = False
-    idx = np.flatnonzero(numeric)
+    idx = numeric_positions(d, groups)
     center, inv_scale = np.asarray(assign.center), np.asarray(assign.inv_scale)
     w2 = np.asarray(assign.weights) ** 2
     cent = np.asarray(assign.centroids, dtype=np.float64).reshape(len(assign.centroids), d)
@@ -1043,13 +1061,8 @@ def run_refine_pass_with_codes(
     numeric_cols, numeric_assign, lookups = code_assignment(columns, assign, groups, code_names)
     num_idx = [columns.index(c) for c in numeric_cols]
     got = engine.query(sqlgen.refine_statement(source, numeric_cols, numeric_assign, engine.target, lookups=lookups))
-    null = null_mask(got["segment"])
-    ids = np.asarray(np.ma.getdata(got["segment"]), dtype=np.float64)
-    null = null | (ids < 0)
-    n_all = np.asarray(got["n"], dtype=np.float64)
+    seg, null, n_all = refine_rows(got, assign)
     k = len(assign.centroids)
-    position = {sid: i for i, sid in enumerate(assign.segment_ids())}
-    seg = np.array([position[int(i)] for i in ids[~null]], dtype=np.int64)
     n_rows = n_all[~null]
     n = np.bincount(seg, weights=n_rows, minlength=k)
     center, inv_scale = np.asarray(assign.center), np.asarray(assign.inv_scale)
@@ -1061,15 +1074,4 @@ def run_refine_pass_with_codes(
         ls_c, _ = cat.indicator_cells(n_rows, codes, center[pos], inv_scale[pos])
         for c_i, j in enumerate(pos):
             ls_u[:, j] = np.bincount(seg, weights=ls_c[:, c_i], minlength=k)
-    dist = np.bincount(seg, weights=np.asarray(np.ma.getdata(got["dist"]), dtype=np.float64)[~null], minlength=k)
-    old = np.asarray(assign.centroids, dtype=np.float64)
-    means = np.where(n[:, None] > 0, ls_u / np.where(n > 0, n, 1.0)[:, None], old)
-    w = np.asarray(assign.weights, dtype=np.float64)
-    shift = (((means - old) * w[None, :]) ** 2).sum(axis=1)
-    dist = np.maximum(dist, 0.0)
-    return RefineResult(
-        assigned=SegmentStats(n, old, dist),
-        updated=SegmentStats(n, means, np.maximum(dist - n * shift, 0.0)),
-        skipped=int(n_all[null].sum()),
-        seconds=time.perf_counter() - t0,
-    )
+    return refine_result(got, assign, seg, null, n_all, n, ls_u, t0)
