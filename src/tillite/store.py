@@ -44,7 +44,7 @@ from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-
 )
 from .features import CF
 from .model import Model
-from .pipeline import Settings, check_refresh_options, label as label_relation, store_owns_label
+from .pipeline import Settings, check_refresh_options, label as label_relation, owner_comment, store_of_comment, store_owns_label
 from .stages import (
     ProgressFn,
     SegmentStats,
@@ -1107,7 +1107,8 @@ def drop(engine: Engine, store: str) -> list[str]:
     """Remove a store: its rows in the registry tables and its cells table, in one transaction.
 
     Returns the tables dropped.  Label views made with ``label`` stay (they read
-    the source, not the store).  The registry tables themselves are dropped
+    the source, not the store), unmarked to plain labels of tillite's (``_unmark_labels``)
+    so that `tillite label --model` and the demo may replace them.  The registry tables themselves are dropped
     with the last store, so a database without stores holds no tillite_* table
     of the store's making.
     """
@@ -1118,6 +1119,7 @@ def drop(engine: Engine, store: str) -> list[str]:
         _claim(engine, info)
         for st in _drop_store_statements(store, info.cells_table):
             engine.execute(st)
+        _unmark_labels(engine, store)
         engine.execute(sqlgen.delete_statement(LABELS, sqlgen.equals_all({"store": store})))
         left = _rows(engine.query(sqlgen.select_where(STORES, None, ["store"])))
         store_history.forget(engine, store, drop_table=not left)
@@ -1126,6 +1128,23 @@ def drop(engine: Engine, store: str) -> list[str]:
                 engine.execute(sqlgen.drop_statement(table, "table"))
             dropped += [STORES, PARTS, LABELS, store_history.HISTORY]
     return dropped
+
+
+def registered_labels(engine: Engine, store: str) -> list[str]:
+    """The label views/tables registered by ``store`` (re-created by its refreshes); none for an unknown store."""
+    try:
+        return [r["name"] for r in _rows(engine.query(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": store}))))]
+    except Exception:  # no registry table: drop says why in its own words
+        return []
+
+
+def _unmark_labels(engine: Engine, store: str) -> None:
+    """The store's registered label views/tables that still carry its mark become plain labels of
+    tillite's (no longer re-created by refreshes, replaced by `label` without --replace)."""
+    for r in _rows(engine.query(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": store})))):
+        kind = engine.relation_kind(r["name"])
+        if kind is not None and store_of_comment(engine.relation_comment(r["name"])) == store:
+            engine.execute(sqlgen.mark_statement(r["name"], kind, owner_comment(None), engine.target))
 
 
 # ----------------------------------------------------------------------------- deltas, labels, status

@@ -233,6 +233,29 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, target, c
     return [sqlgen.label_select(src, cols, source_columns, assign, target, cell_map=model.cell_map_spec(), lookups=lookups)]
 
 
+#: The view the demo labels into (the README's store example uses another name).
+DEMO_LABELS = "meter_day_segments"
+
+
+def _demo_takes_back_labels(engine, db_path: str) -> bool:
+    """Whether the demo may replace its labels view although it holds a store's labels: yes when that
+    store no longer exists (dropped by an earlier version); a live store's labels are refused in one line."""
+    from ..pipeline import store_of_comment
+    from ..store import StoreError, load
+
+    holder = store_of_comment(engine.relation_comment(DEMO_LABELS)) if engine.relation_kind(DEMO_LABELS) else None
+    if holder is None:
+        return False
+    try:
+        load(engine, holder)
+    except StoreError:
+        return True
+    raise click.ClickException(
+        f"view {DEMO_LABELS} of {db_path} holds the labels of store {holder}; the demo does not replace them: "
+        f"drop the store (`tillite store drop {db_path} --store {holder}`) or give another --db"
+    )
+
+
 @click.command("demo")
 @click.option("--db", "db_path", default="tillite-demo.duckdb", show_default=True, help="Demo database file to build or reuse.")
 @click.option("--rows", type=int, default=1_000_000, show_default=True, help="Meter-day rows to generate.")
@@ -260,7 +283,7 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
         with open_source(db_path, "meter_days", writable=True) as (engine, src):
             model = segment(engine, src, list(demo.DEMO_COLUMNS), Settings(k=k), progress=progress)
             model.write(out)
-            made = label(engine, src, model, "meter_day_segments")
+            made = label(engine, src, model, DEMO_LABELS, replace=_demo_takes_back_labels(engine, db_path))
             progress("label", made)
             click.echo(model.describe())
             click.echo("")

@@ -178,8 +178,12 @@ def _echo_history(source: str, store_name: str, last: int = 5) -> None:
 @click.option("--store", "store_name", required=True, help="Store name.")
 def drop_command(source, store_name) -> None:
     """Remove a store: its cells table and its rows in tillite's registry tables (the registry tables too
-    when no store is left). Tables and views you made, label views included, stay."""
+    when no store is left). Tables and views you made stay; the store's label views stay as plain labels
+    (no longer re-created by refreshes; `tillite label --model` replaces them without --replace)."""
     with user_errors():
         with open_store_database(source, writable=True) as engine:
+            labels = store_api.registered_labels(engine, store_name)
             dropped = store_api.drop(engine, store_name)
         click.echo(f"store {store_name} dropped: {', '.join(dropped)}")
+        if labels:
+            click.echo(f"its label views/tables stay as plain labels, no longer refreshed: {', '.join(labels)}")
