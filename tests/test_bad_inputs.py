@@ -220,3 +220,24 @@ def test_empty_into_name_is_a_usage_error(bad_inputs_db, model, into):
 
 def test_sql_cells_stage_refuses_a_cell_budget_below_one(bad_inputs_db):
     assert_one_error_line(run_cli("sql", bad_inputs_db, "-t", "points", "-c", "a,b", "--stage", "cells", "--cell-budget", 0), "--cell-budget")
+
+
+@pytest.mark.parametrize("args, needle", [
+    (["segment", "x.duckdb", "-t", "t", "-c", "a", "--k", "abc"], "--k"),
+    (["segment", "x.duckdb", "-t", "t", "-c", "a", "--k", "5..2"], "--k"),
+    (["segment", "x.duckdb", "-t", "t", "-c", "a", "--k", "2", "--weights", "a"], "--weights"),
+    (["segment", "x.duckdb", "-t", "t", "-c", "a"], "--k"),
+    (["label", "x.duckdb", "--into", "v"], "--model"),
+    (["sql", "--dialect", "nonsense", "--table", "t", "-c", "x", "--stage", "profile"], "--dialect"),
+    (["sql", "bad.duckdb", "--table", "a..b", "-c", "x", "--stage", "profile"], "--table"),
+    (["segment", "x.duckdb", "--nonsense"], "--nonsense"),
+])
+def test_usage_errors_are_one_error_line_naming_the_option_with_exit_2(args, needle):
+    res = run_cli(*args)
+    assert_one_error_line(res, needle, code=2)
+    assert len(res.stderr.strip().splitlines()) == 1, res.stderr  # no Usage:/Try lines
+
+
+def test_help_still_prints_usage():
+    res = run_cli("segment", "--help")
+    assert res.exit_code == 0 and res.output.startswith("Usage:")

@@ -142,6 +142,10 @@ def open_with_options(source: str, table: str | None, writable: bool = False) ->
     ctx = click.get_current_context(silent=True)
     meta = ctx.meta if ctx is not None else {}
     try:
+        if table is not None:  # a malformed --table is said before a missing database
+            from ..sqlgen import Source
+
+            Source.of_table(table)
         return open_source(
             source, table, writable=writable,
             engine=meta.get("tillite.engine"), spark_conf=_parse_spark_conf(meta.get("tillite.spark_conf", ())),
