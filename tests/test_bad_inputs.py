@@ -241,3 +241,31 @@ def test_usage_errors_are_one_error_line_naming_the_option_with_exit_2(args, nee
 def test_help_still_prints_usage():
     res = run_cli("segment", "--help")
     assert res.exit_code == 0 and res.output.startswith("Usage:")
+
+
+def _no_python_internals(line: str) -> None:
+    for internal in ("<class", "sqlglot.", "{'", "[0", "nan"):
+        assert internal not in line, line
+
+
+def test_unparsable_where_says_where_it_stopped_without_python_class_names(three_part_store_db):
+    line = assert_one_error_line(run_cli("refresh", three_part_store_db, "--store", "points", "--where", "part >= "),
+                                 "--where", "cannot parse it (line 1, col 7)")  # sqlglot: the end of the last token it read
+    _no_python_internals(line)
+
+
+def test_a_negative_weight_is_shown_as_column_equals_value(tmp_path, bad_inputs_db):
+    res = run_cli("segment", bad_inputs_db, "-t", "points", "-c", "a,b,c", "--k", 3, "--weights", "a=-1", "-o", tmp_path / "m.json")
+    _no_python_internals(assert_one_error_line(res, "--weights", "a=-1"))
+
+
+def test_an_unknown_segment_id_lists_the_ids_as_plain_numbers(tmp_path, model):
+    copy = tmp_path / "m.json"
+    copy.write_bytes(model.read_bytes())
+    _no_python_internals(assert_one_error_line(run_cli("name", copy, 7, "x"), "its ids are 0, 1, 2"))
+
+
+def test_k_larger_than_the_distinct_cells_names_the_k_option(tmp_path):
+    path = write_table(tmp_path / "three.duckdb", "t", {"a": np.array([1.0, 2.0, 5.0]), "b": np.array([2.0, 1.0, 7.0])})
+    assert_one_error_line(run_cli("segment", path, "-t", "t", "-c", "a,b", "--k", 100000, "-q", "-o", tmp_path / "m.json"),
+                          "--k 100,000 is larger than the 3 distinct grid cells")

@@ -418,7 +418,7 @@ def test_non_numeric_column_error_names_its_type(blobs_db_copy):
 def test_k_larger_than_the_distinct_values_is_an_error(tmp_path):
     path = write_table(tmp_path / "t.duckdb", "t", {"x": np.array([1.0, 1.0, 2.0, 2.0] * 50)})
     result = run_cli("segment", path, "-t", "t", "-c", "x", "--k", 3, "-o", tmp_path / "m.json", "-q")
-    assert_one_error_line(result, "k=3", "2 distinct")
+    assert_one_error_line(result, "--k 3", "2 distinct")
     assert not (tmp_path / "m.json").exists()
 
 
@@ -627,3 +627,14 @@ def test_open_database_opens_a_postgresql_url_as_postgresql():
 
     with pytest.raises(SourceError, match="cannot connect to PostgreSQL"):
         open_database("postgresql://nobody@127.0.0.1:1/nothing_here?connect_timeout=2")
+
+
+def test_k_auto_on_three_rows_says_why_fewer_candidates_were_compared_and_prints_no_python_lists(tmp_path):
+    path = write_table(tmp_path / "three.duckdb", "t", {"a": np.array([1.0, 2.0, 5.0]), "b": np.array([2.0, 1.0, 7.0])})
+    res = run_cli("segment", path, "-t", "t", "-c", "a,b", "--k", "auto", "-o", tmp_path / "m.json")
+    assert res.exit_code == 0, res.output
+    assert "k chosen among 1, 2 by" in res.stdout and "[1, 2]" not in res.stdout
+    assert "only k = 1, 2 of the asked 1..12 compared: a k above 1 must be smaller than the 3 distinct grid cells" in res.stdout
+    assert "[tillite] choose k: \n" not in res.stderr + "\n" and "nan" not in res.stderr
+    k1_row = next(ln for ln in res.stderr.splitlines() if ln.strip().startswith("1 "))
+    assert k1_row.split()[2] == "-"  # Calinski-Harabasz is undefined for one segment

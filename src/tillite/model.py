@@ -17,6 +17,14 @@ from typing import TYPE_CHECKING, Any
 
 from .errors import ModelError, TilliteError
 
+
+def k_list_text(ks: "list[int] | tuple[int, ...]") -> str:
+    """Candidate ks for a reader: '1..12' when consecutive, else '2, 4, 8'."""
+    ks = list(ks)
+    if len(ks) > 2 and ks == list(range(ks[0], ks[-1] + 1)):
+        return f"{ks[0]}..{ks[-1]}"
+    return ", ".join(map(str, ks))
+
 if TYPE_CHECKING:  # imported where used: `tillite show` needs neither numpy nor sqlglot
     from .sqlgen import Assignment, CellMap
 
@@ -174,8 +182,10 @@ class Model:
             )
         choice = self.params.get("k_choice")
         if choice:
-            out.append(f"k chosen among {[r['k'] for r in choice['table']]} by {choice['rule'].replace('_', '-')}: {choice['k']}"
+            out.append(f"k chosen among {k_list_text([r['k'] for r in choice['table']])} by {choice['rule'].replace('_', '-')}: {choice['k']}"
                        + (f" ({choice['reason']})" if choice.get("reason") else ""))
+            if choice.get("narrowed"):
+                out.append(choice["narrowed"])
         heights = self.extras.get("merge_heights")
         if heights:
             k = len(self.sizes)

@@ -660,7 +660,7 @@ def partition_predicate(text: str, partition_columns: Sequence[str], target: Tar
     try:
         tree = sqlglot.parse_one(text, read=dialect)
     except ParseError as err:
-        raise ValueError(f"cannot parse it: {str(err).splitlines()[0]}") from None
+        raise ValueError(f"cannot parse it{_parse_error_place(err)}") from None
     if not isinstance(tree, (exp.Predicate, exp.Connector, exp.Not, exp.Paren)):
         raise ValueError("it is not a predicate")
     by_lower = {c.lower(): c for c in partition_columns}
@@ -1228,6 +1228,13 @@ def mark_statement(name: str, kind: str, text: str, target: TargetLike) -> exp.E
     tables only; a catalog view takes its comment as the table property 'comment'.
     """
     return target_for(target).mark(table_name(name), kind, text)
+
+
+def _parse_error_place(err: Exception) -> str:
+    """Where sqlglot stopped, as ' (line 1, col 8)' (its description names its own classes, so it is left out)."""
+    first = (getattr(err, "errors", None) or [{}])[0]
+    line, col = first.get("line"), first.get("col")
+    return f" (line {line}, col {col})" if line is not None and col is not None else ""
 
 
 def comment_of_statement(name: str, target: TargetLike) -> exp.Select:
