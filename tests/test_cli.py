@@ -638,3 +638,12 @@ def test_k_auto_on_three_rows_says_why_fewer_candidates_were_compared_and_prints
     assert "[tillite] choose k: \n" not in res.stderr + "\n" and "nan" not in res.stderr
     k1_row = next(ln for ln in res.stderr.splitlines() if ln.strip().startswith("1 "))
     assert k1_row.split()[2] == "-"  # Calinski-Harabasz is undefined for one segment
+
+
+def test_segment_minus_one_is_nameable_as_an_id_not_an_option(tmp_path, blobs_db_copy):
+    out = tmp_path / "m.json"
+    assert run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 2, "-o", out, "-q").exit_code == 0
+    res = run_cli("name", out, -1, "unusual", 0, "first")
+    assert res.exit_code == 0, res.output
+    assert '-1: "unusual"' in res.stdout
+    assert json.loads(out.read_text())["names"] == {"-1": "unusual", "0": "first"}
