@@ -269,3 +269,14 @@ def test_k_larger_than_the_distinct_cells_names_the_k_option(tmp_path):
     path = write_table(tmp_path / "three.duckdb", "t", {"a": np.array([1.0, 2.0, 5.0]), "b": np.array([2.0, 1.0, 7.0])})
     assert_one_error_line(run_cli("segment", path, "-t", "t", "-c", "a,b", "--k", 100000, "-q", "-o", tmp_path / "m.json"),
                           "--k 100,000 is larger than the 3 distinct grid cells")
+
+
+@pytest.mark.parametrize("command", [["segment", "{src}", "-c", "a", "--k", 2],
+                                     ["label", "{src}", "-m", "m.json", "--into", "out.parquet"],
+                                     ["store", "build", "{src}", "-c", "a", "--k", 2, "--db", "s.duckdb"]])
+def test_table_with_a_file_source_is_one_error_line_not_silently_ignored(tmp_path, command):
+    src = tmp_path / "points.parquet"
+    with duckdb.connect() as con:
+        con.execute(f"COPY (SELECT 1.0 AS a) TO '{src}' (FORMAT parquet)")
+    res = run_cli(*[str(src) if a == "{src}" else a for a in command], "--table", "points")
+    assert_one_error_line(res, "--table", "file source", code=2)

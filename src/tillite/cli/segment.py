@@ -11,7 +11,7 @@ import click
 
 from ..lazy import lazy_module, lazy_name
 from .shared import (
-    columns_option, open_with_options, progress_printer, settings_from_options, settings_options, source_argument,
+    columns_option, open_with_options, progress_printer, refuse_table_for_files, settings_from_options, settings_options, source_argument,
     split_columns, table_option, parameter_option, user_errors,
 )
 
@@ -96,6 +96,7 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
     if bool(model_path) == bool(store_name):
         raise click.UsageError("give exactly one of --model and --store")
     _check_into(into)
+    refuse_table_for_files(source, table)
     with user_errors():
         if store_name:
             from .. import store as store_api

@@ -10,7 +10,7 @@ from typing import TYPE_CHECKING
 
 from ..errors import DatabaseLocked
 from ..lazy import lazy_module, lazy_name
-from .shared import parameter_option, parse_weights, progress_printer, split_columns, user_errors
+from .shared import parameter_option, parse_weights, progress_printer, refuse_table_for_files, split_columns, user_errors
 
 if TYPE_CHECKING:
     from ..engines import Engine
@@ -63,6 +63,7 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
             k=k, method=method, scaling=scaling, weights=parse_weights(weights), cell_budget=cell_budget,
             refine_passes=refine_passes, n_init=n_init, seed=seed,
         )
+        refuse_table_for_files(source, table)
         if is_file_source(source) and not database:
             raise click.UsageError("a store over files needs --db, the DuckDB file that keeps it")
         with open_source(source, table, writable=True, database=database) as (engine, src):
