@@ -647,3 +647,10 @@ def test_segment_minus_one_is_nameable_as_an_id_not_an_option(tmp_path, blobs_db
     assert res.exit_code == 0, res.output
     assert '-1: "unusual"' in res.stdout
     assert json.loads(out.read_text())["names"] == {"-1": "unusual", "0": "first"}
+
+
+def test_segment_json_names_the_model_file_it_wrote_even_when_quiet(tmp_path, blobs_db_copy):
+    out = tmp_path / "m.json"
+    res = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 2, "-o", out, "-q", "--json")
+    assert res.exit_code == 0, res.output
+    assert json.loads(res.stdout)["model_file"] == str(out) and res.stderr == ""

@@ -51,12 +51,13 @@ segment_columns_option = click.option(
 @click.option("--out", "-o", default=None, help="Model file to write [default: SOURCE's table or file name + .model.json, "
               "e.g. meter_days.model.json, in the current folder].")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
-@click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
+@click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON (with the model file's path as model_file).")
 def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
     """Segment SOURCE's rows on the chosen columns and write a model file.
 
     SOURCE is a DuckDB database file (with --table) or a Parquet/CSV path or glob.
-    The model file's path is printed on stderr; replacing a file that held the
+    The model file's path is printed on stderr (not with --quiet; in the --json output
+    as model_file); replacing a file that held the
     model of another source or column list is said in a warning line.
     """
     from ..model import default_model_path, replaced_model_note
@@ -74,7 +75,7 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
             warnings.warn(note, UserWarning)
         if not quiet:
             click.echo(f"[tillite] model: written to {out} ({model.timings['total']:.2f} s in all)", err=True)
-        click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
+        click.echo(json.dumps({**model.summary(), "model_file": str(out)}, indent=2) if as_json else model.describe())
 
 
 @click.command("label")
