@@ -476,11 +476,12 @@ def usual_file_mode() -> int:
 def default_model_path(source: str, table: str | None) -> str:
     """<source>.model.json in the current folder: the table's name, or a data file's (or folder's) name.
 
-    ``meter_days`` -> ``meter_days.model.json``; ``exports/*.parquet`` -> ``exports.model.json``.
+    ``meter_days`` -> ``meter_days.model.json``; ``"my.table"`` -> ``my.table.model.json``;
+    ``exports/*.parquet`` -> ``exports.model.json``.
     Characters other than letters, digits, ``.``, ``_`` and ``-`` become ``_``.
     """
     if table:
-        stem = table
+        stem = table.replace('"', "")  # a quoted name's quotes are SQL syntax, not part of the name
     else:
         path = Path(source.rstrip("/\\"))
         stem = path.stem if path.suffix and not _has_glob(path.name) else path.name
