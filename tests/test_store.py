@@ -722,3 +722,21 @@ def test_demo_runs_again_after_the_readme_store_example_and_takes_back_labels_of
     res = CliRunner().invoke(main, [str(a) for a in demo])
     assert res.exit_code == 1 and res.stderr.strip().startswith("Error:") and len(res.stderr.strip().splitlines()) == 1
     assert "store drop" in res.stderr
+
+
+def test_a_refresh_that_finds_no_change_is_recorded_and_status_says_so(built):
+    engine, _, _ = built
+    report = S.refresh(engine, "meter_days")
+    assert report.new == report.changed == report.vanished == []
+    from tillite import store_history
+
+    events = [r["event"] for r in store_history.history(engine, "meter_days")]
+    assert events == ["build", "refresh"]
+    st = S.status(engine, "meter_days")
+    assert st["last_refresh"] and st["last_refresh_found_change"] is False
+    path = engine.path
+    engine.close()
+    res = CliRunner().invoke(main, ["store", "status", path, "--store", "meter_days"])
+    assert res.exit_code == 0, res.output
+    assert "last refresh never" not in res.output and "(found no change)" in res.output
+    assert "ids 0, 1, 2, 3, 4" in res.output

@@ -873,6 +873,7 @@ def refresh(
             recompute = new + changed
             if not (recompute or vanished or touched_meta or force or settings_moved):
                 report.model = info.model
+                store_history.record(engine, store, "refresh", info.model, report)  # a check that found no change is a refresh too
                 return report
             # 2. claim the store: a concurrent refresh fails here
             _claim(engine, info)
@@ -1209,6 +1210,16 @@ def label(engine: Engine, store: str, into: str, materialize: bool = False, repl
     return made
 
 
+def _last_refresh(engine: Engine, store: str, info: StoreInfo) -> dict[str, Any]:
+    """When the store was last refreshed (one that found no change included, from its history), and whether
+    that refresh found anything new, changed or vanished (None when unknown)."""
+    rows = [r for r in store_history.history(engine, store) if r["event"] == "refresh"]
+    if not rows:
+        return {"last_refresh": info.refreshed_at or None, "last_refresh_found_change": None}
+    last = rows[-1]
+    return {"last_refresh": last["at"][:19], "last_refresh_found_change": bool(last["new"] or last["changed"] or last["vanished"])}
+
+
 def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, Any]:
     """Partitions, rows, when summarised, the grid in use, and rows outside the built key range."""
     check_refresh_options(outside_warn=outside_warn)
@@ -1239,6 +1250,7 @@ def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, 
         "outside_share": share,
         "built_at": info.built_at,
         "refreshed_at": info.refreshed_at,
+        **_last_refresh(engine, store, info),
         "last_summarised": max((p["summarised_at"] for p in parts), default=None),
         "k": info.model.k,
         "settings": info.settings,

@@ -109,10 +109,11 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
             return
         click.echo(f"store {st['store']} on {st['source']} ({', '.join(st['columns'])})")
         click.echo(f"partitions: {st['partitions']:,}; rows: {st['rows']:,} ({st['skipped_rows']:,} skipped); cells: {st['cells']:,}")
-        click.echo(f"built {st['built_at']}; last refresh {st['refreshed_at'] or 'never'}; last summarised {st['last_summarised']}")
+        found = {False: " (found no change)", True: "", None: ""}[st["last_refresh_found_change"]]
+        click.echo(f"built {st['built_at']}; last refresh {st['last_refresh'] or 'never'}{found}; last summarised {st['last_summarised']}")
         click.echo(f"grid: width {st['grid']['width']:.4g} on {st['grid']['axes_count']} axes; "
                    f"{100 * st['outside_share']:.2f}% of rows outside the built range")
-        click.echo(f"segments: k={st['k']}, ids {st['segment_ids']}")
+        click.echo(f"segments: k={st['k']}, ids {', '.join(map(str, st['segment_ids']))}")
         kept = st["settings"]
         click.echo(f"settings kept by refreshes: k={kept.get('k')}, method {kept.get('method', 'kmeans')}, refine passes {kept.get('refine_passes')}, "
                    f"restarts {kept.get('n_init')}, seed {kept.get('seed')}, scaling {kept.get('scaling')}")
