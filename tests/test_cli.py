@@ -654,3 +654,24 @@ def test_segment_json_names_the_model_file_it_wrote_even_when_quiet(tmp_path, bl
     res = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 2, "-o", out, "-q", "--json")
     assert res.exit_code == 0, res.output
     assert json.loads(res.stdout)["model_file"] == str(out) and res.stderr == ""
+
+
+def test_wording_on_one_column_says_axis_and_sse_units_without_nested_brackets(tmp_path, blobs_db_copy):
+    res = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a", "--k", 2, "-o", tmp_path / "m.json")
+    assert res.exit_code == 0, res.output
+    assert "on 1 axis," in res.stderr and "1 axes" not in res.stderr
+    assert "SSE (row level, in standard deviations):" in res.stdout
+
+
+def test_several_missing_columns_are_named_in_the_plural(tmp_path, blobs_db_copy):
+    res = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,nope,nope2", "--k", 2, "-o", tmp_path / "m.json")
+    assert_one_error_line(res, "columns nope, nope2 not found")
+
+
+def test_into_a_missing_schema_names_into_not_a_raw_catalog_error(tmp_path, blobs_db_copy):
+    out = tmp_path / "m.json"
+    assert run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 2, "-o", out, "-q").exit_code == 0
+    res = run_cli("label", blobs_db_copy, "-t", "points", "-m", out, "--into", "missing_schema.x")
+    line = assert_one_error_line(res, "--into missing_schema.x", "schema missing_schema does not exist")
+    assert "Catalog Error" not in line
+    assert run_cli("label", blobs_db_copy, "-t", "points", "-m", out, "--into", "main.x", "-q").exit_code == 0

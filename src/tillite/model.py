@@ -236,7 +236,7 @@ class Model:
             f"source: {self.source}",
             f"method: {self.method}, k={self.k}, scaling={self.scaling}",
             f"rows: {self.rows:,} ({self.skipped:,} skipped for NULL/NaN/Inf), segmented: {self.usable:,}",
-            f"SSE (row level, {self.units()}): {self.sse:.6g}",
+            f"SSE (row level, {self.units(short=True)}): {self.sse:.6g}",
         ]
         if self.constant_columns:
             lines.append(f"constant columns (no weight): {', '.join(self.constant_columns)}")
@@ -265,9 +265,11 @@ class Model:
         lines.extend(self._name_lines())
         return "\n".join(lines)
 
-    def units(self) -> str:
-        """What distances are measured in: standard deviations or the columns' own units, maybe weighted."""
-        base = "scaled units (standard deviations)" if self.scaling == "zscore" else "original units"
+    def units(self, short: bool = False) -> str:
+        """What distances are measured in: standard deviations or the columns' own units, maybe weighted
+        (``short``: 'in standard deviations', to sit inside brackets)."""
+        scaled = "in standard deviations" if short else "scaled units (standard deviations)"
+        base = scaled if self.scaling == "zscore" else ("in original units" if short else "original units")
         return base + (", weighted" if any(w not in (0, 1) for w in self.weights) else "")
 
     def _rows_outside_segments(self) -> str:

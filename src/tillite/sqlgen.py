@@ -728,6 +728,23 @@ def select_where(table: str, where: exp.Expression | None = None, columns: Seque
     return sel.where(where) if where is not None else sel
 
 
+def schema_count_statement(schema: str, fold_case: bool) -> exp.Select:
+    """SELECT count(*) AS n of information_schema.schemata named ``schema``.
+
+    ``fold_case`` (DuckDB): compared case-insensitively, as DuckDB resolves names, and an attached
+    database's name counts too (DuckDB reads ``db.name`` as that database's default schema).
+    """
+    value: exp.Expression = exp.Literal.string(schema)
+    if not fold_case:
+        where: exp.Expression = exp.EQ(this=exp.column("schema_name"), expression=value)
+    else:
+        where = exp.or_(*(exp.EQ(this=exp.Lower(this=exp.column(c)), expression=exp.Lower(this=value.copy()))
+                          for c in ("schema_name", "catalog_name")))
+    return (exp.select(exp.Count(this=exp.Star()).as_("n"))
+            .from_(exp.table_("schemata", db="information_schema"))
+            .where(where))
+
+
 def lock_rows_statement(table: str, where: exp.Expression, columns: Sequence[str], target: TargetLike) -> exp.Select:
     """SELECT columns FROM table WHERE ..., locking the rows until the transaction ends where the dialect can.
 

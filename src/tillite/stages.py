@@ -56,7 +56,7 @@ def check_columns(engine: Engine, source: Source, columns: Sequence[str]) -> lis
     missing = [c for c in columns if c not in types]
     if missing:
         listing = ", ".join(f"{n} ({t})" for n, t in described)
-        raise SourceError(f"column {', '.join(missing)} not found in {source.label}; columns there: {listing}")
+        raise SourceError(f"{'column' if len(missing) == 1 else 'columns'} {', '.join(missing)} not found in {source.label}; columns there: {listing}")
     for c in columns:
         if not is_numeric_type(types[c]) and source.files and not engine_has_rows(engine, source):
             raise InputError(f"{source.label} has no rows (a header only?)")
@@ -462,6 +462,11 @@ def narrowed_candidates_note(asked: Sequence[int], usable: Sequence[int], filled
 
     return (f"only k = {k_list_text(usable)} of the asked {k_list_text(asked)} compared: a k above 1 must be smaller "
             f"than the {filled:,} distinct grid cells")
+
+
+def axes_text(n: int) -> str:
+    """'1 axis', '3 axes'."""
+    return f"{n} axis" if n == 1 else f"{n} axes"
 
 
 def check_k_fits(cells: CF, k: int, where: str) -> None:

@@ -64,6 +64,7 @@ from .stages import (
     standardise_cells,
 )
 from .segmenters import nearest
+from .stages import axes_text
 from .sqlgen import Grid, Source
 
 __all__ = [
@@ -723,7 +724,7 @@ def build(
     if grid is None:
         prof = run_profile(engine, source, columns, settings)
         grid = grid_for_profile(prof, settings, weights)
-        progress("profile", f"{prof.rows:,} rows, frozen grid width {grid.width:.3g} on {grid.dims} axes, {time.perf_counter() - t0:.2f} s")
+        progress("profile", f"{prof.rows:,} rows, frozen grid width {grid.width:.3g} on {axes_text(grid.dims)}, {time.perf_counter() - t0:.2f} s")
     scan = _scan_source(source, partition)
     fps = fingerprint_partitions(engine, scan, columns, partition, {})
     cells_table = previous.cells_table if previous is not None else choose_cells_table(engine, name)

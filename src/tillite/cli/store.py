@@ -111,7 +111,7 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
         click.echo(f"partitions: {st['partitions']:,}; rows: {st['rows']:,} ({st['skipped_rows']:,} skipped); cells: {st['cells']:,}")
         found = {False: " (found no change)", True: "", None: ""}[st["last_refresh_found_change"]]
         click.echo(f"built {st['built_at']}; last refresh {st['last_refresh'] or 'never'}{found}; last summarised {st['last_summarised']}")
-        click.echo(f"grid: width {st['grid']['width']:.4g} on {st['grid']['axes_count']} axes; "
+        click.echo(f"grid: width {st['grid']['width']:.4g} on {st['grid']['axes_count']} {'axis' if st['grid']['axes_count'] == 1 else 'axes'}; "
                    f"{100 * st['outside_share']:.2f}% of rows outside the built range")
         click.echo(f"segments: k={st['k']}, ids {', '.join(map(str, st['segment_ids']))}")
         kept = st["settings"]
