@@ -280,3 +280,10 @@ def test_table_with_a_file_source_is_one_error_line_not_silently_ignored(tmp_pat
         con.execute(f"COPY (SELECT 1.0 AS a) TO '{src}' (FORMAT parquet)")
     res = run_cli(*[str(src) if a == "{src}" else a for a in command], "--table", "points")
     assert_one_error_line(res, "--table", "file source", code=2)
+
+
+@pytest.mark.parametrize("args", [[], ["store"], ["macros"]])
+def test_a_group_without_a_command_still_shows_its_help_not_an_error_line(args):
+    res = run_cli(*args)
+    shown = res.stdout + res.stderr
+    assert "Usage:" in shown and "Commands:" in shown and "Error:" not in shown

@@ -30,6 +30,14 @@ class UsageErrorInOneLine(click.ClickException):
     exit_code = 2
 
 
+#: click >= 8.2 shows a group's help through a UsageError subclass when no command is given: kept as it is.
+_HELP_AS_ERROR = getattr(click.exceptions, "NoArgsIsHelpError", ())
+
+
+def _one_line(err: click.UsageError) -> click.ClickException:
+    return err if isinstance(err, _HELP_AS_ERROR) else UsageErrorInOneLine(err.format_message())
+
+
 class OneLineErrorsGroup(click.Group):
     """The main group: click's usage errors (bad option value, missing option, unknown option or
     command) come out as one `Error:` line instead of click's Usage/Try/Error block; --help is untouched."""
@@ -38,13 +46,13 @@ class OneLineErrorsGroup(click.Group):
         try:
             return super().make_context(*args, **kwargs)
         except click.UsageError as err:
-            raise UsageErrorInOneLine(err.format_message()) from None
+            raise _one_line(err) from None
 
     def invoke(self, ctx: click.Context):  # type: ignore[override]
         try:
             return super().invoke(ctx)
         except click.UsageError as err:
-            raise UsageErrorInOneLine(err.format_message()) from None
+            raise _one_line(err) from None
 
 
 @click.group(cls=OneLineErrorsGroup, context_settings={"help_option_names": ["-h", "--help"]})
