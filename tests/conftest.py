@@ -81,7 +81,7 @@ def run_cli(*args: object):
 def assert_one_error_line(result, *needles: str, code: int = 1, cli_words: bool = True) -> str:
     """The exit code, exactly one line starting 'Error:' on stderr naming every needle, no traceback.
 
-    With code 1 that line is all of stderr; a usage error (code 2) also prints click's usage lines.
+    With code 1 that line is all of stderr (a usage error, code 2, is one line too: cli.OneLineErrorsGroup).
     ``cli_words``: the line speaks the CLI's words, not the API's (no ``=True``, no ``None``).
     """
     assert result.exit_code == code, (result.exit_code, result.output)

@@ -220,3 +220,70 @@ def test_empty_into_name_is_a_usage_error(bad_inputs_db, model, into):
 
 def test_sql_cells_stage_refuses_a_cell_budget_below_one(bad_inputs_db):
     assert_one_error_line(run_cli("sql", bad_inputs_db, "-t", "points", "-c", "a,b", "--stage", "cells", "--cell-budget", 0), "--cell-budget")
+
+
+@pytest.mark.parametrize("args, needle", [
+    (["segment", "x.duckdb", "-t", "t", "-c", "a", "--k", "abc"], "--k"),
+    (["segment", "x.duckdb", "-t", "t", "-c", "a", "--k", "5..2"], "--k"),
+    (["segment", "x.duckdb", "-t", "t", "-c", "a", "--k", "2", "--weights", "a"], "--weights"),
+    (["segment", "x.duckdb", "-t", "t", "-c", "a"], "--k"),
+    (["label", "x.duckdb", "--into", "v"], "--model"),
+    (["sql", "--dialect", "nonsense", "--table", "t", "-c", "x", "--stage", "profile"], "--dialect"),
+    (["sql", "bad.duckdb", "--table", "a..b", "-c", "x", "--stage", "profile"], "--table"),
+    (["segment", "x.duckdb", "--nonsense"], "--nonsense"),
+])
+def test_usage_errors_are_one_error_line_naming_the_option_with_exit_2(args, needle):
+    res = run_cli(*args)
+    assert_one_error_line(res, needle, code=2)
+    assert len(res.stderr.strip().splitlines()) == 1, res.stderr  # no Usage:/Try lines
+
+
+def test_help_still_prints_usage():
+    res = run_cli("segment", "--help")
+    assert res.exit_code == 0 and res.output.startswith("Usage:")
+
+
+def _no_python_internals(line: str) -> None:
+    for internal in ("<class", "sqlglot.", "{'", "[0", "nan"):
+        assert internal not in line, line
+
+
+def test_unparsable_where_says_where_it_stopped_without_python_class_names(three_part_store_db):
+    line = assert_one_error_line(run_cli("refresh", three_part_store_db, "--store", "points", "--where", "part >= "),
+                                 "--where", "cannot parse it (line 1, col 7)")  # sqlglot: the end of the last token it read
+    _no_python_internals(line)
+
+
+def test_a_negative_weight_is_shown_as_column_equals_value(tmp_path, bad_inputs_db):
+    res = run_cli("segment", bad_inputs_db, "-t", "points", "-c", "a,b,c", "--k", 3, "--weights", "a=-1", "-o", tmp_path / "m.json")
+    _no_python_internals(assert_one_error_line(res, "--weights", "a=-1"))
+
+
+def test_an_unknown_segment_id_lists_the_ids_as_plain_numbers(tmp_path, model):
+    copy = tmp_path / "m.json"
+    copy.write_bytes(model.read_bytes())
+    _no_python_internals(assert_one_error_line(run_cli("name", copy, 7, "x"), "its ids are 0, 1, 2"))
+
+
+def test_k_larger_than_the_distinct_cells_names_the_k_option(tmp_path):
+    path = write_table(tmp_path / "three.duckdb", "t", {"a": np.array([1.0, 2.0, 5.0]), "b": np.array([2.0, 1.0, 7.0])})
+    assert_one_error_line(run_cli("segment", path, "-t", "t", "-c", "a,b", "--k", 100000, "-q", "-o", tmp_path / "m.json"),
+                          "--k 100,000 is larger than the 3 distinct grid cells")
+
+
+@pytest.mark.parametrize("command", [["segment", "{src}", "-c", "a", "--k", 2],
+                                     ["label", "{src}", "-m", "m.json", "--into", "out.parquet"],
+                                     ["store", "build", "{src}", "-c", "a", "--k", 2, "--db", "s.duckdb"]])
+def test_table_with_a_file_source_is_one_error_line_not_silently_ignored(tmp_path, command):
+    src = tmp_path / "points.parquet"
+    with duckdb.connect() as con:
+        con.execute(f"COPY (SELECT 1.0 AS a) TO '{src}' (FORMAT parquet)")
+    res = run_cli(*[str(src) if a == "{src}" else a for a in command], "--table", "points")
+    assert_one_error_line(res, "--table", "file source", code=2)
+
+
+@pytest.mark.parametrize("args", [[], ["store"], ["macros"]])
+def test_a_group_without_a_command_still_shows_its_help_not_an_error_line(args):
+    res = run_cli(*args)
+    shown = res.stdout + res.stderr
+    assert "Usage:" in shown and "Commands:" in shown and "Error:" not in shown

@@ -418,7 +418,7 @@ def test_non_numeric_column_error_names_its_type(blobs_db_copy):
 def test_k_larger_than_the_distinct_values_is_an_error(tmp_path):
     path = write_table(tmp_path / "t.duckdb", "t", {"x": np.array([1.0, 1.0, 2.0, 2.0] * 50)})
     result = run_cli("segment", path, "-t", "t", "-c", "x", "--k", 3, "-o", tmp_path / "m.json", "-q")
-    assert_one_error_line(result, "k=3", "2 distinct")
+    assert_one_error_line(result, "--k 3", "2 distinct")
     assert not (tmp_path / "m.json").exists()
 
 
@@ -627,3 +627,51 @@ def test_open_database_opens_a_postgresql_url_as_postgresql():
 
     with pytest.raises(SourceError, match="cannot connect to PostgreSQL"):
         open_database("postgresql://nobody@127.0.0.1:1/nothing_here?connect_timeout=2")
+
+
+def test_k_auto_on_three_rows_says_why_fewer_candidates_were_compared_and_prints_no_python_lists(tmp_path):
+    path = write_table(tmp_path / "three.duckdb", "t", {"a": np.array([1.0, 2.0, 5.0]), "b": np.array([2.0, 1.0, 7.0])})
+    res = run_cli("segment", path, "-t", "t", "-c", "a,b", "--k", "auto", "-o", tmp_path / "m.json")
+    assert res.exit_code == 0, res.output
+    assert "k chosen among 1, 2 by" in res.stdout and "[1, 2]" not in res.stdout
+    assert "only k = 1, 2 of the asked 1..12 compared: a k above 1 must be smaller than the 3 distinct grid cells" in res.stdout
+    assert "[tillite] choose k: \n" not in res.stderr + "\n" and "nan" not in res.stderr
+    k1_row = next(ln for ln in res.stderr.splitlines() if ln.strip().startswith("1 "))
+    assert k1_row.split()[2] == "-"  # Calinski-Harabasz is undefined for one segment
+
+
+def test_segment_minus_one_is_nameable_as_an_id_not_an_option(tmp_path, blobs_db_copy):
+    out = tmp_path / "m.json"
+    assert run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 2, "-o", out, "-q").exit_code == 0
+    res = run_cli("name", out, -1, "unusual", 0, "first")
+    assert res.exit_code == 0, res.output
+    assert '-1: "unusual"' in res.stdout
+    assert json.loads(out.read_text())["names"] == {"-1": "unusual", "0": "first"}
+
+
+def test_segment_json_names_the_model_file_it_wrote_even_when_quiet(tmp_path, blobs_db_copy):
+    out = tmp_path / "m.json"
+    res = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 2, "-o", out, "-q", "--json")
+    assert res.exit_code == 0, res.output
+    assert json.loads(res.stdout)["model_file"] == str(out) and res.stderr == ""
+
+
+def test_wording_on_one_column_says_axis_and_sse_units_without_nested_brackets(tmp_path, blobs_db_copy):
+    res = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a", "--k", 2, "-o", tmp_path / "m.json")
+    assert res.exit_code == 0, res.output
+    assert "on 1 axis," in res.stderr and "1 axes" not in res.stderr
+    assert "SSE (row level, in standard deviations):" in res.stdout
+
+
+def test_several_missing_columns_are_named_in_the_plural(tmp_path, blobs_db_copy):
+    res = run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,nope,nope2", "--k", 2, "-o", tmp_path / "m.json")
+    assert_one_error_line(res, "columns nope, nope2 not found")
+
+
+def test_into_a_missing_schema_names_into_not_a_raw_catalog_error(tmp_path, blobs_db_copy):
+    out = tmp_path / "m.json"
+    assert run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 2, "-o", out, "-q").exit_code == 0
+    res = run_cli("label", blobs_db_copy, "-t", "points", "-m", out, "--into", "missing_schema.x")
+    line = assert_one_error_line(res, "--into missing_schema.x", "schema missing_schema does not exist")
+    assert "Catalog Error" not in line
+    assert run_cli("label", blobs_db_copy, "-t", "points", "-m", out, "--into", "main.x", "-q").exit_code == 0

@@ -101,3 +101,9 @@ def test_label_files_get_the_usual_mode(tmp_path, umask_027):
     assert run_cli("label", data, "-m", model, "--into", out, "-q").exit_code == 0
     # reference: open(2) gives a new file 0666 & ~umask
     assert mode(out) == 0o640
+
+
+@pytest.mark.parametrize("table, expected", [('"my.table"', "my.table.model.json"),
+                                             ('public."My Tab"', "public.My_Tab.model.json")])
+def test_default_model_file_of_a_quoted_table_name_leaves_the_quotes_out(table, expected):
+    assert default_model_path("w.duckdb", table) == expected

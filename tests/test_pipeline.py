@@ -302,7 +302,7 @@ def test_constant_column_warns_and_carries_no_weight(tmp_path, open_engine):
 
 def test_k_larger_than_distinct_rows_is_a_clear_error(tmp_path, open_engine):
     path = write_table(tmp_path / "t.duckdb", "t", {"x": np.array([1.0, 1.0, 2.0, 2.0] * 50)})
-    with pytest.raises(InputError, match=r"k=3 is larger than the 2 distinct grid cells"):
+    with pytest.raises(InputError, match=r"k 3 is larger than the 2 distinct grid cells"):
         segment(open_engine(path), Source.of_table("t"), ["x"], Settings(k=3))
 
 

@@ -685,3 +685,58 @@ def test_store_refuses_density_with_one_clear_line(demo_db):
         assert S.STORES not in engine.tables()  # nothing was written
     finally:
         engine.close()
+
+
+def _cli_ok(*args):
+    res = CliRunner().invoke(main, [str(a) for a in args])
+    assert res.exit_code == 0, res.output
+    return res
+
+
+def test_store_drop_leaves_its_label_views_as_plain_labels_that_label_model_replaces(demo_db, tmp_path):
+    db, cols = str(demo_db), ",".join(COLS)
+    _cli_ok("store", "build", db, "--table", "meter_days", "-c", cols, "--partition-by", "day", "--k", "3", "-q")
+    _cli_ok("label", db, "--store", "meter_days", "--into", "meter_day_segments", "-q")
+    dropped = _cli_ok("store", "drop", db, "--store", "meter_days")
+    assert "plain labels, no longer refreshed: meter_day_segments" in dropped.output
+    with duckdb.connect(db, read_only=True) as con:
+        assert con.execute("SELECT comment FROM duckdb_views() WHERE view_name = 'meter_day_segments'").fetchone() == ("made by tillite: labels",)
+    _cli_ok("segment", db, "--table", "meter_days", "-c", cols, "--k", "3", "-q", "-o", tmp_path / "m.json")
+    _cli_ok("label", db, "--table", "meter_days", "--model", tmp_path / "m.json", "--into", "meter_day_segments", "-q")
+
+
+def test_demo_runs_again_after_the_readme_store_example_and_takes_back_labels_of_a_gone_store(demo_db, tmp_path):
+    db, cols = str(demo_db), ",".join(COLS)
+    demo = ("demo", "--db", db, "--out", tmp_path / "demo.json", "--report", tmp_path / "r.html", "-q")
+    _cli_ok(*demo)
+    # the README's store section, as written there
+    _cli_ok("store", "build", db, "--table", "meter_days", "-c", cols, "--partition-by", "day", "--k", "5", "-q")
+    _cli_ok("label", db, "--store", "meter_days", "--into", "meter_day_store_segments", "-q")
+    _cli_ok(*demo)
+    # a view left marked by a store that no longer exists (as an earlier `store drop` left them) is taken back
+    with duckdb.connect(db) as con:
+        con.execute("COMMENT ON VIEW meter_day_segments IS 'made by tillite: labels of store gone'")
+    _cli_ok(*demo)
+    # a live store's labels under the demo's name: one line saying what to do
+    _cli_ok("label", db, "--store", "meter_days", "--into", "meter_day_segments", "--replace", "-q")
+    res = CliRunner().invoke(main, [str(a) for a in demo])
+    assert res.exit_code == 1 and res.stderr.strip().startswith("Error:") and len(res.stderr.strip().splitlines()) == 1
+    assert "store drop" in res.stderr
+
+
+def test_a_refresh_that_finds_no_change_is_recorded_and_status_says_so(built):
+    engine, _, _ = built
+    report = S.refresh(engine, "meter_days")
+    assert report.new == report.changed == report.vanished == []
+    from tillite import store_history
+
+    events = [r["event"] for r in store_history.history(engine, "meter_days")]
+    assert events == ["build", "refresh"]
+    st = S.status(engine, "meter_days")
+    assert st["last_refresh"] and st["last_refresh_found_change"] is False
+    path = engine.path
+    engine.close()
+    res = CliRunner().invoke(main, ["store", "status", path, "--store", "meter_days"])
+    assert res.exit_code == 0, res.output
+    assert "last refresh never" not in res.output and "(found no change)" in res.output
+    assert "ids 0, 1, 2, 3, 4" in res.output

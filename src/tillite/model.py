@@ -17,6 +17,14 @@ from typing import TYPE_CHECKING, Any
 
 from .errors import ModelError, TilliteError
 
+
+def k_list_text(ks: "list[int] | tuple[int, ...]") -> str:
+    """Candidate ks for a reader: '1..12' when consecutive, else '2, 4, 8'."""
+    ks = list(ks)
+    if len(ks) > 2 and ks == list(range(ks[0], ks[-1] + 1)):
+        return f"{ks[0]}..{ks[-1]}"
+    return ", ".join(map(str, ks))
+
 if TYPE_CHECKING:  # imported where used: `tillite show` needs neither numpy nor sqlglot
     from .sqlgen import Assignment, CellMap
 
@@ -184,8 +192,10 @@ class Model:
             )
         choice = self.params.get("k_choice")
         if choice:
-            out.append(f"k chosen among {[r['k'] for r in choice['table']]} by {choice['rule'].replace('_', '-')}: {choice['k']}"
+            out.append(f"k chosen among {k_list_text([r['k'] for r in choice['table']])} by {choice['rule'].replace('_', '-')}: {choice['k']}"
                        + (f" ({choice['reason']})" if choice.get("reason") else ""))
+            if choice.get("narrowed"):
+                out.append(choice["narrowed"])
         heights = self.extras.get("merge_heights")
         if heights:
             k = len(self.sizes)
@@ -240,7 +250,7 @@ class Model:
             f"source: {self.source}",
             f"method: {self.method}, k={self.k}, scaling={self.scaling}",
             f"rows: {self.rows:,} ({self.skipped:,} skipped for NULL/NaN/Inf), segmented: {self.usable:,}",
-            f"SSE (row level, {self.units()}): {self.sse:.6g}",
+            f"SSE (row level, {self.units(short=True)}): {self.sse:.6g}",
         ]
         if self.constant_columns:
             lines.append(f"constant columns (no weight): {', '.join(self.constant_columns)}")
@@ -269,9 +279,11 @@ class Model:
         lines.extend(self._name_lines())
         return "\n".join(lines)
 
-    def units(self) -> str:
-        """What distances are measured in: standard deviations or the columns' own units, maybe weighted."""
-        base = "scaled units (standard deviations)" if self.scaling == "zscore" else "original units"
+    def units(self, short: bool = False) -> str:
+        """What distances are measured in: standard deviations or the columns' own units, maybe weighted
+        (``short``: 'in standard deviations', to sit inside brackets)."""
+        scaled = "in standard deviations" if short else "scaled units (standard deviations)"
+        base = scaled if self.scaling == "zscore" else ("in original units" if short else "original units")
         return base + (", weighted" if any(w not in (0, 1) for w in self.weights) else "")
 
     def _rows_outside_segments(self) -> str:
@@ -480,11 +492,12 @@ def usual_file_mode() -> int:
 def default_model_path(source: str, table: str | None) -> str:
     """<source>.model.json in the current folder: the table's name, or a data file's (or folder's) name.
 
-    ``meter_days`` -> ``meter_days.model.json``; ``exports/*.parquet`` -> ``exports.model.json``.
+    ``meter_days`` -> ``meter_days.model.json``; ``"my.table"`` -> ``my.table.model.json``;
+    ``exports/*.parquet`` -> ``exports.model.json``.
     Characters other than letters, digits, ``.``, ``_`` and ``-`` become ``_``.
     """
     if table:
-        stem = table
+        stem = table.replace('"', "")  # a quoted name's quotes are SQL syntax, not part of the name
     else:
         path = Path(source.rstrip("/\\"))
         stem = path.stem if path.suffix and not _has_glob(path.name) else path.name

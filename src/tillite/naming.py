@@ -39,9 +39,9 @@ def apply_names(model: Model, given: dict[Any, Any]) -> Model:
         try:
             sid = int(str(key).strip())
         except ValueError:
-            raise NamingError(f"segment id {key!r} is not a whole number; the model's ids are {ids}") from None
+            raise NamingError(f"segment id {key!r} is not a whole number; the model's ids are {', '.join(map(str, ids))}") from None
         if sid not in ids and sid != -1:
-            raise NamingError(f"segment id {sid} is not in the model; its ids are {ids}")
+            raise NamingError(f"segment id {sid} is not in the model; its ids are {', '.join(map(str, ids))}")
         if not isinstance(value, str):
             raise NamingError(f"the name of segment {sid} must be text, got {json.dumps(value)}")
         if value == "":

@@ -43,6 +43,7 @@ from .stages import (  # noqa: F401  (re-exported: the stages' old import path)
     CODE_SPACING, categorical_source, code_assignment, grid_with_category_codes, model_source, run_cell_pass_with_codes,
     run_refine_pass_with_codes,
 )
+from .stages import axes_text
 
 __all__ = [
     "Settings",
@@ -103,7 +104,7 @@ def segment(
         prof = run_profile(engine, source, columns, settings)
         grid = grid_for_profile(prof, settings, weights)
     prof.seconds = time.perf_counter() - t0
-    progress("profile", f"{prof.rows:,} rows, sample of {len(prof.sample):,}, grid width {grid.width:.3g} on {grid.dims} axes, {prof.seconds:.2f} s")
+    progress("profile", f"{prof.rows:,} rows, sample of {len(prof.sample):,}, grid width {grid.width:.3g} on {axes_text(grid.dims)}, {prof.seconds:.2f} s")
 
     # 2. cell pass, and the exact standardisation from its CFs
     if specs:
@@ -224,6 +225,7 @@ def label(
     if target[-1] == table[-1] and same_schema:
         raise InputError(f"--into {into} is the source table; labels never overwrite the source")
     refuse_own_table(into)
+    check_into_schema(engine, into)
     kind = existing_relation_kind(engine, into)
     comment = engine.relation_comment(into) if kind is not None else None
     if kind is not None and not replace:
@@ -262,6 +264,17 @@ def is_owned(comment: str | None) -> bool:
 def store_of_comment(comment: str | None) -> str | None:
     """The summary store whose labels a relation with this comment holds, if any."""
     return comment[len(_STORE_MARK):] if comment is not None and comment.startswith(_STORE_MARK) else None
+
+
+def check_into_schema(engine: Engine, into: str) -> None:
+    """A schema.name --into whose schema does not exist: said naming --into, before any database error
+    (DuckDB and PostgreSQL, through information_schema.schemata; Spark's catalog answers for itself)."""
+    parts = sqlgen.split_table_name(into)
+    if len(parts) != 2 or engine.target.name not in ("duckdb", "postgres"):
+        return
+    got = engine.query(sqlgen.schema_count_statement(parts[0], fold_case=engine.target.name == "duckdb"))
+    if not int(got["n"][0]):
+        raise InputError(f"--into {into}: schema {parts[0]} does not exist; create it first or choose another --into")
 
 
 def check_may_replace(into: str, kind: str, comment: str | None, store: str | None = None) -> None:

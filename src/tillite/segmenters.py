@@ -825,14 +825,19 @@ def _pick_k(table: list[dict], rule: str) -> tuple[dict, str]:
     return best, why
 
 
+def _score(value: float, width: int, spec: str) -> str:
+    """A score right-aligned, '-' where it is undefined (Calinski-Harabasz of k = 1 is NaN)."""
+    return f"{'-':>{width}}" if value != value else f"{value:>{width}{spec}}"
+
+
 def format_k_table(choice: KChoice) -> str:
     """The candidates as an aligned text table, the chosen k marked with '*', and why."""
     head = f"{'k':>4}  {'SSE':>14}  {'Calinski-Harabasz':>18}  {'BIC':>16}"
     lines = [head, "-" * len(head)]
     for row in choice.table:
         mark = "*" if row["k"] == choice.k else " "
-        lines.append(f"{row['k']:>3}{mark}  {row['sse']:>14.6g}  {row['calinski_harabasz']:>18.6g}  "
-                     f"{row['bic']:>16.8g}")
+        lines.append(f"{row['k']:>3}{mark}  {_score(row['sse'], 14, '.6g')}  {_score(row['calinski_harabasz'], 18, '.6g')}  "
+                     f"{_score(row['bic'], 16, '.8g')}")
     why = choice.reason or ("lowest BIC" if choice.rule == "bic" else "largest Calinski-Harabasz")
     lines.append(f"chosen k = {choice.k} ({why})")
     return "\n".join(lines)

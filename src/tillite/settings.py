@@ -172,7 +172,8 @@ class Settings:
         bad = {c: w for c, w in self.weights.items()
                if not (isinstance(w, Real) and math.isfinite(w) and 0 <= w <= MAX_WEIGHT)}
         if bad:
-            raise ParameterError(f"{{weights}} must be numbers from 0 to {MAX_WEIGHT:g}: {bad}", "weights")
+            shown = ", ".join(f"{c}={w:g}" if isinstance(w, Real) else f"{c}={w!r}" for c, w in bad.items())
+            raise ParameterError(f"{{weights}} must be numbers from 0 to {MAX_WEIGHT:g}: {shown}", "weights")
         if columns and not self.categorical and not any(float(self.weights.get(c, 1.0)) > 0 for c in columns):
             raise ParameterError("every {weights} value is 0: at least one column needs a weight above 0", "weights")
 

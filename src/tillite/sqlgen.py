@@ -660,7 +660,7 @@ def partition_predicate(text: str, partition_columns: Sequence[str], target: Tar
     try:
         tree = sqlglot.parse_one(text, read=dialect)
     except ParseError as err:
-        raise ValueError(f"cannot parse it: {str(err).splitlines()[0]}") from None
+        raise ValueError(f"cannot parse it{_parse_error_place(err)}") from None
     if not isinstance(tree, (exp.Predicate, exp.Connector, exp.Not, exp.Paren)):
         raise ValueError("it is not a predicate")
     by_lower = {c.lower(): c for c in partition_columns}
@@ -726,6 +726,23 @@ def in_list(column: str, values: Sequence[object]) -> exp.Expression:
 def select_where(table: str, where: exp.Expression | None = None, columns: Sequence[str] | None = None) -> exp.Select:
     sel = exp.select(*([col(c) for c in columns] if columns else [exp.Star()])).from_(table_name(table))
     return sel.where(where) if where is not None else sel
+
+
+def schema_count_statement(schema: str, fold_case: bool) -> exp.Select:
+    """SELECT count(*) AS n of information_schema.schemata named ``schema``.
+
+    ``fold_case`` (DuckDB): compared case-insensitively, as DuckDB resolves names, and an attached
+    database's name counts too (DuckDB reads ``db.name`` as that database's default schema).
+    """
+    value: exp.Expression = exp.Literal.string(schema)
+    if not fold_case:
+        where: exp.Expression = exp.EQ(this=exp.column("schema_name"), expression=value)
+    else:
+        where = exp.or_(*(exp.EQ(this=exp.Lower(this=exp.column(c)), expression=exp.Lower(this=value.copy()))
+                          for c in ("schema_name", "catalog_name")))
+    return (exp.select(exp.Count(this=exp.Star()).as_("n"))
+            .from_(exp.table_("schemata", db="information_schema"))
+            .where(where))
 
 
 def lock_rows_statement(table: str, where: exp.Expression, columns: Sequence[str], target: TargetLike) -> exp.Select:
@@ -1228,6 +1245,13 @@ def mark_statement(name: str, kind: str, text: str, target: TargetLike) -> exp.E
     tables only; a catalog view takes its comment as the table property 'comment'.
     """
     return target_for(target).mark(table_name(name), kind, text)
+
+
+def _parse_error_place(err: Exception) -> str:
+    """Where sqlglot stopped, as ' (line 1, col 8)' (its description names its own classes, so it is left out)."""
+    first = (getattr(err, "errors", None) or [{}])[0]
+    line, col = first.get("line"), first.get("col")
+    return f" (line {line}, col {col})" if line is not None and col is not None else ""
 
 
 def comment_of_statement(name: str, target: TargetLike) -> exp.Select:

@@ -56,7 +56,7 @@ def check_columns(engine: Engine, source: Source, columns: Sequence[str]) -> lis
     missing = [c for c in columns if c not in types]
     if missing:
         listing = ", ".join(f"{n} ({t})" for n, t in described)
-        raise SourceError(f"column {', '.join(missing)} not found in {source.label}; columns there: {listing}")
+        raise SourceError(f"{'column' if len(missing) == 1 else 'columns'} {', '.join(missing)} not found in {source.label}; columns there: {listing}")
     for c in columns:
         if not is_numeric_type(types[c]) and source.files and not engine_has_rows(engine, source):
             raise InputError(f"{source.label} has no rows (a header only?)")
@@ -501,12 +501,25 @@ def nothing_to_segment_on(columns: Sequence[str], constant: np.ndarray, weights:
     return f"nothing to segment on: {why}; every row would fall in one segment"
 
 
+def narrowed_candidates_note(asked: Sequence[int], usable: Sequence[int], filled: int) -> str:
+    """Why only some of the asked candidate ks were compared."""
+    from .model import k_list_text
+
+    return (f"only k = {k_list_text(usable)} of the asked {k_list_text(asked)} compared: a k above 1 must be smaller "
+            f"than the {filled:,} distinct grid cells")
+
+
+def axes_text(n: int) -> str:
+    """'1 axis', '3 axes'."""
+    return f"{n} axis" if n == 1 else f"{n} axes"
+
+
 def check_k_fits(cells: CF, k: int, where: str) -> None:
     """A clear error when k exceeds the non-empty cells (or entries) there are to segment."""
     nonempty = int((cells.n > 0).sum())
     if k > nonempty:
         distinct = " (only that many distinct rows)" if nonempty == int(round(cells.n.sum())) else "; try a smaller k or a finer --width"
-        raise InputError(f"k={k} is larger than the {nonempty:,} distinct grid cells of {where}{distinct}")
+        raise ParameterError(f"{{k}} {k:,} is larger than the {nonempty:,} distinct grid cells of {where}{distinct}", "k")
 
 
 K_LIMIT_CELLS = 20  # k-means refuses more segments than one per this many non-empty cells ...
@@ -628,7 +641,10 @@ def run_second_phase(
                           progress=lambda message: progress("choose k", message))
         k = choice.k
         params["k_choice"] = {"rule": choice.rule, "table": choice.table, "k": k, "reason": choice.reason}
-        progress("choose k", "\n" + format_k_table(choice))
+        if len(usable) < len(settings.k_candidates):  # said, not silent: why fewer candidates than asked were compared
+            params["k_choice"]["narrowed"] = narrowed_candidates_note(settings.k_candidates, usable, filled)
+            progress("choose k", params["k_choice"]["narrowed"])
+        progress("choose k", "candidates compared:\n" + format_k_table(choice))
     if settings.method == "ward":
         check_k_fits(entries, k, where)
         res = ward(entries, k, weights)

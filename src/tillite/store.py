@@ -44,7 +44,7 @@ from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-
 )
 from .features import CF
 from .model import Model
-from .pipeline import Settings, check_refresh_options, label as label_relation, store_owns_label
+from .pipeline import Settings, check_refresh_options, label as label_relation, owner_comment, store_of_comment, store_owns_label
 from .stages import (
     ProgressFn,
     SegmentStats,
@@ -64,6 +64,7 @@ from .stages import (
     standardise_cells,
 )
 from .segmenters import nearest
+from .stages import axes_text
 from .sqlgen import Grid, Source
 
 __all__ = [
@@ -726,7 +727,7 @@ def build(
     if grid is None:
         prof = run_profile(engine, source, columns, settings)
         grid = grid_for_profile(prof, settings, weights)
-        progress("profile", f"{prof.rows:,} rows, frozen grid width {grid.width:.3g} on {grid.dims} axes, {time.perf_counter() - t0:.2f} s")
+        progress("profile", f"{prof.rows:,} rows, frozen grid width {grid.width:.3g} on {axes_text(grid.dims)}, {time.perf_counter() - t0:.2f} s")
     scan = _scan_source(source, partition)
     fps = fingerprint_partitions(engine, scan, columns, partition, {})
     cells_table = previous.cells_table if previous is not None else choose_cells_table(engine, name)
@@ -876,6 +877,7 @@ def refresh(
             recompute = new + changed
             if not (recompute or vanished or touched_meta or force or settings_moved):
                 report.model = info.model
+                store_history.record(engine, store, "refresh", info.model, report)  # a check that found no change is a refresh too
                 return report
             # 2. claim the store: a concurrent refresh fails here
             _claim(engine, info)
@@ -1110,7 +1112,8 @@ def drop(engine: Engine, store: str) -> list[str]:
     """Remove a store: its rows in the registry tables and its cells table, in one transaction.
 
     Returns the tables dropped.  Label views made with ``label`` stay (they read
-    the source, not the store).  The registry tables themselves are dropped
+    the source, not the store), unmarked to plain labels of tillite's (``_unmark_labels``)
+    so that `tillite label --model` and the demo may replace them.  The registry tables themselves are dropped
     with the last store, so a database without stores holds no tillite_* table
     of the store's making.
     """
@@ -1121,6 +1124,7 @@ def drop(engine: Engine, store: str) -> list[str]:
         _claim(engine, info)
         for st in _drop_store_statements(store, info.cells_table):
             engine.execute(st)
+        _unmark_labels(engine, store)
         engine.execute(sqlgen.delete_statement(LABELS, sqlgen.equals_all({"store": store})))
         left = _rows(engine.query(sqlgen.select_where(STORES, None, ["store"])))
         store_history.forget(engine, store, drop_table=not left)
@@ -1129,6 +1133,23 @@ def drop(engine: Engine, store: str) -> list[str]:
                 engine.execute(sqlgen.drop_statement(table, "table"))
             dropped += [STORES, PARTS, LABELS, store_history.HISTORY]
     return dropped
+
+
+def registered_labels(engine: Engine, store: str) -> list[str]:
+    """The label views/tables registered by ``store`` (re-created by its refreshes); none for an unknown store."""
+    try:
+        return [r["name"] for r in _rows(engine.query(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": store}))))]
+    except Exception:  # no registry table: drop says why in its own words
+        return []
+
+
+def _unmark_labels(engine: Engine, store: str) -> None:
+    """The store's registered label views/tables that still carry its mark become plain labels of
+    tillite's (no longer re-created by refreshes, replaced by `label` without --replace)."""
+    for r in _rows(engine.query(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": store})))):
+        kind = engine.relation_kind(r["name"])
+        if kind is not None and store_of_comment(engine.relation_comment(r["name"])) == store:
+            engine.execute(sqlgen.mark_statement(r["name"], kind, owner_comment(None), engine.target))
 
 
 # ----------------------------------------------------------------------------- deltas, labels, status
@@ -1193,6 +1214,16 @@ def label(engine: Engine, store: str, into: str, materialize: bool = False, repl
     return made
 
 
+def _last_refresh(engine: Engine, store: str, info: StoreInfo) -> dict[str, Any]:
+    """When the store was last refreshed (one that found no change included, from its history), and whether
+    that refresh found anything new, changed or vanished (None when unknown)."""
+    rows = [r for r in store_history.history(engine, store) if r["event"] == "refresh"]
+    if not rows:
+        return {"last_refresh": info.refreshed_at or None, "last_refresh_found_change": None}
+    last = rows[-1]
+    return {"last_refresh": last["at"][:19], "last_refresh_found_change": bool(last["new"] or last["changed"] or last["vanished"])}
+
+
 def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, Any]:
     """Partitions, rows, when summarised, the grid in use, and rows outside the built key range."""
     check_refresh_options(outside_warn=outside_warn)
@@ -1223,6 +1254,7 @@ def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, 
         "outside_share": share,
         "built_at": info.built_at,
         "refreshed_at": info.refreshed_at,
+        **_last_refresh(engine, store, info),
         "last_summarised": max((p["summarised_at"] for p in parts), default=None),
         "k": info.model.k,
         "settings": info.settings,

@@ -24,7 +24,38 @@ from .store import refresh_command, store_group
 __all__ = ["main", "cli_message", "user_errors", "OPTION_NAMES"]
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+class UsageErrorInOneLine(click.ClickException):
+    """A usage error shown as every other error is: one `Error: ...` line (naming the option), exit 2."""
+
+    exit_code = 2
+
+
+#: click >= 8.2 shows a group's help through a UsageError subclass when no command is given: kept as it is.
+_HELP_AS_ERROR = getattr(click.exceptions, "NoArgsIsHelpError", ())
+
+
+def _one_line(err: click.UsageError) -> click.ClickException:
+    return err if isinstance(err, _HELP_AS_ERROR) else UsageErrorInOneLine(err.format_message())
+
+
+class OneLineErrorsGroup(click.Group):
+    """The main group: click's usage errors (bad option value, missing option, unknown option or
+    command) come out as one `Error:` line instead of click's Usage/Try/Error block; --help is untouched."""
+
+    def make_context(self, *args, **kwargs):  # type: ignore[override]
+        try:
+            return super().make_context(*args, **kwargs)
+        except click.UsageError as err:
+            raise _one_line(err) from None
+
+    def invoke(self, ctx: click.Context):  # type: ignore[override]
+        try:
+            return super().invoke(ctx)
+        except click.UsageError as err:
+            raise _one_line(err) from None
+
+
+@click.group(cls=OneLineErrorsGroup, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="tillite")
 def main() -> None:
     """Segment warehouse tables where they live.

@@ -80,7 +80,7 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
     click.echo(f"report written to {path}")
 
 
-@click.command("name")
+@click.command("name", context_settings={"ignore_unknown_options": True})  # so segment -1 (noise/outliers) is an ID, not an option
 @click.argument("target", metavar="MODEL")
 @click.argument("pairs", nargs=-1, metavar="[ID NAME]...")
 @click.option("--names", "names_file", type=click.Path(dir_okay=False), help='JSON file of names: {"4": "probable leak", ...}.')
@@ -88,7 +88,8 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
 def name_command(target, pairs, names_file, store_name) -> None:
     """Give segments names: `tillite name model.json 4 "probable leak"`.
 
-    Ids never change; an empty name removes one. Names are stored in the model
+    Ids never change; an empty name removes one; -1 names the rows in no segment
+    (density noise, the outlier group): `tillite name model.json -1 "unusual"`. Names are stored in the model
     file (written atomically) or in the store, and shown by `show`, `report`, the
     segment_name column of label views made afterwards (a store's views are
     re-created at once) and the <name>_segment_name macro.
@@ -108,5 +109,6 @@ def name_command(target, pairs, names_file, store_name) -> None:
             model = naming.name_model_file(Path(target), given)
             where = f"{target} (re-run `tillite label` to add segment_name to existing views)"
     click.echo(f"names written to {where}:")
-    for sid in model.segment_ids():
+    shown_ids = list(model.segment_ids()) + ([-1] if -1 not in model.segment_ids() and model.segment_name(-1) is not None else [])
+    for sid in shown_ids:
         click.echo(f"  {sid}: {json.dumps(model.segment_name(sid), ensure_ascii=False) if model.segment_name(sid) is not None else '(no name)'}")

@@ -11,7 +11,7 @@ import click
 
 from ..lazy import lazy_module, lazy_name
 from .shared import (
-    columns_option, open_with_options, progress_printer, settings_from_options, settings_options, source_argument,
+    columns_option, open_with_options, progress_printer, refuse_table_for_files, settings_from_options, settings_options, source_argument,
     split_columns, table_option, parameter_option, user_errors,
 )
 
@@ -51,12 +51,13 @@ segment_columns_option = click.option(
 @click.option("--out", "-o", default=None, help="Model file to write [default: SOURCE's table or file name + .model.json, "
               "e.g. meter_days.model.json, in the current folder].")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
-@click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
+@click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON (with the model file's path as model_file).")
 def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
     """Segment SOURCE's rows on the chosen columns and write a model file.
 
     SOURCE is a DuckDB database file (with --table) or a Parquet/CSV path or glob.
-    The model file's path is printed on stderr; replacing a file that held the
+    The model file's path is printed on stderr (not with --quiet; in the --json output
+    as model_file); replacing a file that held the
     model of another source or column list is said in a warning line.
     """
     from ..model import default_model_path, replaced_model_note
@@ -74,7 +75,7 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
             warnings.warn(note, UserWarning)
         if not quiet:
             click.echo(f"[tillite] model: written to {out} ({model.timings['total']:.2f} s in all)", err=True)
-        click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())
+        click.echo(json.dumps({**model.summary(), "model_file": str(out)}, indent=2) if as_json else model.describe())
 
 
 @click.command("label")
@@ -96,6 +97,7 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
     if bool(model_path) == bool(store_name):
         raise click.UsageError("give exactly one of --model and --store")
     _check_into(into)
+    refuse_table_for_files(source, table)
     with user_errors():
         if store_name:
             from .. import store as store_api
@@ -234,6 +236,29 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, target, c
     return [sqlgen.label_select(src, cols, source_columns, assign, target, cell_map=model.cell_map_spec(), lookups=lookups)]
 
 
+#: The view the demo labels into (the README's store example uses another name).
+DEMO_LABELS = "meter_day_segments"
+
+
+def _demo_takes_back_labels(engine, db_path: str) -> bool:
+    """Whether the demo may replace its labels view although it holds a store's labels: yes when that
+    store no longer exists (dropped by an earlier version); a live store's labels are refused in one line."""
+    from ..pipeline import store_of_comment
+    from ..store import StoreError, load
+
+    holder = store_of_comment(engine.relation_comment(DEMO_LABELS)) if engine.relation_kind(DEMO_LABELS) else None
+    if holder is None:
+        return False
+    try:
+        load(engine, holder)
+    except StoreError:
+        return True
+    raise click.ClickException(
+        f"view {DEMO_LABELS} of {db_path} holds the labels of store {holder}; the demo does not replace them: "
+        f"drop the store (`tillite store drop {db_path} --store {holder}`) or give another --db"
+    )
+
+
 @click.command("demo")
 @click.option("--db", "db_path", default="tillite-demo.duckdb", show_default=True, help="Demo database file to build or reuse.")
 @click.option("--rows", type=int, default=1_000_000, show_default=True, help="Meter-day rows to generate.")
@@ -261,7 +286,7 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
         with open_source(db_path, "meter_days", writable=True) as (engine, src):
             model = segment(engine, src, list(demo.DEMO_COLUMNS), Settings(k=k), progress=progress)
             model.write(out)
-            made = label(engine, src, model, "meter_day_segments")
+            made = label(engine, src, model, DEMO_LABELS, replace=_demo_takes_back_labels(engine, db_path))
             progress("label", made)
             click.echo(model.describe())
             click.echo("")

@@ -17,6 +17,7 @@ from ..lazy import lazy_name
 from ..settings import OPTION_NAMES, PARAMETERS, REFRESH_PARAMETERS, Parameter, Settings
 
 open_source = lazy_name("tillite.engines", "open_source")
+is_file_source = lazy_name("tillite.engines", "is_file_source")
 
 __all__ = [
     "OPTION_NAMES",
@@ -141,13 +142,25 @@ def open_with_options(source: str, table: str | None, writable: bool = False) ->
     """engines.open_source with this command's --engine/--spark-conf, a malformed --table as a usage error."""
     ctx = click.get_current_context(silent=True)
     meta = ctx.meta if ctx is not None else {}
+    refuse_table_for_files(source, table)
     try:
+        if table is not None:  # a malformed --table is said before a missing database
+            from ..sqlgen import Source
+
+            Source.of_table(table)
         return open_source(
             source, table, writable=writable,
             engine=meta.get("tillite.engine"), spark_conf=_parse_spark_conf(meta.get("tillite.spark_conf", ())),
         )
     except ValueError as err:
         raise click.BadParameter(str(err), param_hint="--table") from None
+
+
+def refuse_table_for_files(source: str, table: str | None) -> None:
+    """--table names a table of a database SOURCE; with Parquet/CSV files it would be ignored, so it is refused."""
+    if table is not None and is_file_source(source):
+        raise click.BadParameter(f"{source} is a file source (Parquet/CSV), which has no tables; leave --table out",
+                                 param_hint="--table")
 
 
 source_argument = click.argument("source", metavar="SOURCE")

@@ -10,7 +10,7 @@ from typing import TYPE_CHECKING
 
 from ..errors import DatabaseLocked
 from ..lazy import lazy_module, lazy_name
-from .shared import parameter_option, parse_weights, progress_printer, split_columns, user_errors
+from .shared import parameter_option, parse_weights, progress_printer, refuse_table_for_files, split_columns, user_errors
 
 if TYPE_CHECKING:
     from ..engines import Engine
@@ -64,6 +64,7 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
             k=k, method=method, scaling=scaling, weights=parse_weights(weights), cell_budget=cell_budget,
             refine_passes=refine_passes, n_init=n_init, seed=seed, within=within,
         )
+        refuse_table_for_files(source, table)
         if is_file_source(source) and not database:
             raise click.UsageError("a store over files needs --db, the DuckDB file that keeps it")
         with open_source(source, table, writable=True, database=database) as (engine, src):
@@ -109,10 +110,11 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
             return
         click.echo(f"store {st['store']} on {st['source']} ({', '.join(st['columns'])})")
         click.echo(f"partitions: {st['partitions']:,}; rows: {st['rows']:,} ({st['skipped_rows']:,} skipped); cells: {st['cells']:,}")
-        click.echo(f"built {st['built_at']}; last refresh {st['refreshed_at'] or 'never'}; last summarised {st['last_summarised']}")
-        click.echo(f"grid: width {st['grid']['width']:.4g} on {st['grid']['axes_count']} axes; "
+        found = {False: " (found no change)", True: "", None: ""}[st["last_refresh_found_change"]]
+        click.echo(f"built {st['built_at']}; last refresh {st['last_refresh'] or 'never'}{found}; last summarised {st['last_summarised']}")
+        click.echo(f"grid: width {st['grid']['width']:.4g} on {st['grid']['axes_count']} {'axis' if st['grid']['axes_count'] == 1 else 'axes'}; "
                    f"{100 * st['outside_share']:.2f}% of rows outside the built range")
-        click.echo(f"segments: k={st['k']}, ids {st['segment_ids']}")
+        click.echo(f"segments: k={st['k']}, ids {', '.join(map(str, st['segment_ids']))}")
         kept = st["settings"]
         click.echo(f"settings kept by refreshes: k={kept.get('k')}, method {kept.get('method', 'kmeans')}, refine passes {kept.get('refine_passes')}, "
                    f"restarts {kept.get('n_init')}, seed {kept.get('seed')}, scaling {kept.get('scaling')}")
@@ -179,8 +181,12 @@ def _echo_history(source: str, store_name: str, last: int = 5) -> None:
 @click.option("--store", "store_name", required=True, help="Store name.")
 def drop_command(source, store_name) -> None:
     """Remove a store: its cells table and its rows in tillite's registry tables (the registry tables too
-    when no store is left). Tables and views you made, label views included, stay."""
+    when no store is left). Tables and views you made stay; the store's label views stay as plain labels
+    (no longer re-created by refreshes; `tillite label --model` replaces them without --replace)."""
     with user_errors():
         with open_store_database(source, writable=True) as engine:
+            labels = store_api.registered_labels(engine, store_name)
             dropped = store_api.drop(engine, store_name)
         click.echo(f"store {store_name} dropped: {', '.join(dropped)}")
+        if labels:
+            click.echo(f"its label views/tables stay as plain labels, no longer refreshed: {', '.join(labels)}")
