@@ -268,13 +268,14 @@ def store_of_comment(comment: str | None) -> str | None:
 
 def check_into_schema(engine: Engine, into: str) -> None:
     """A schema.name --into whose schema does not exist: said naming --into, before any database error
-    (DuckDB and PostgreSQL, through information_schema.schemata; Spark's catalog answers for itself)."""
+    (targets whose information_schema.schemata lists them; Spark's catalog answers for itself)."""
     parts = sqlgen.split_table_name(into)
-    if len(parts) != 2 or engine.target.name not in ("duckdb", "postgres"):
+    if len(parts) != 2 or not engine.target.lists_schemata:
         return
-    got = engine.query(sqlgen.schema_count_statement(parts[0], fold_case=engine.target.name == "duckdb"))
+    got = engine.query(sqlgen.schema_count_statement(parts[0], fold_case=engine.target.folds_schema_names))
     if not int(got["n"][0]):
-        raise InputError(f"--into {into}: schema {parts[0]} does not exist; create it first or choose another --into")
+        raise ParameterError(f"{{into}} {into}: schema {parts[0]} does not exist; create it first or choose another {{into}}",
+                             "into")
 
 
 def check_may_replace(into: str, kind: str, comment: str | None, store: str | None = None) -> None:
