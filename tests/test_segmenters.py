@@ -406,3 +406,46 @@ def test_ward_cut_of_weighted_entries_equals_scipy_on_centroids_repeated_by_coun
     # after which each entry is one cluster of n points, as in Ward on the weighted entries
     ref = fcluster(linkage(x[rows], method="ward"), 5, criterion="maxclust")
     assert adjusted_rand_score(ref, got.labels[rows]) == 1.0
+
+
+# ------------------------------------------------ relocation splits, distinct restarts
+def test_split_of_every_segment_at_once_gains_the_numpy_sse_drop_of_its_two_centres(sixty):
+    from tillite.segmenters import _split_all
+
+    x, y = sixty
+    rng = np.random.default_rng(3)
+    w = rng.integers(1, 5, size=len(x)).astype(np.float64)
+    gain, ca, cb = _split_all(x, w, y, 4)
+    for j in range(4):
+        xs, ws = x[y == j], w[y == j]
+        mean = ws @ xs / ws.sum()
+        before = ws @ ((xs - mean) ** 2).sum(axis=1)  # numpy on the segment's own points
+        after = ws @ np.minimum(((xs - ca[j]) ** 2).sum(axis=1), ((xs - cb[j]) ** 2).sum(axis=1))
+        assert gain[j] == pytest.approx(before - after, rel=1e-9)
+        assert gain[j] > 0.0
+        alone = _split_all(xs, ws, np.zeros(len(xs), dtype=np.int64), 1)  # the segment split on its own
+        assert alone[0][0] == pytest.approx(gain[j], rel=1e-9)
+
+
+def test_split_gains_nothing_on_a_single_cell_or_an_empty_segment():
+    from tillite.segmenters import _split_all
+
+    x = np.array([[0.0, 0.0], [1.0, 0.0], [5.0, 5.0]])
+    gain, _, _ = _split_all(x, np.ones(3), np.array([0, 0, 1]), 3)
+    assert gain[0] == pytest.approx(0.5)  # two unit-weight points 1 apart: scatter 0.5, all of it removed
+    assert gain[1] == 0.0 and gain[2] == 0.0
+
+
+def test_restarts_on_the_same_partition_are_finished_once_with_the_same_result(monkeypatch):
+    import tillite.segmenters as S
+
+    x, _ = make_blobs(n_samples=400, n_features=3, centers=6, cluster_std=1.5, random_state=2)
+    cells = F.from_points(x)
+    assert S._partition_key(np.array([2, 2, 0, 1])) == S._partition_key(np.array([0, 0, 1, 2]))
+    assert S._partition_key(np.array([2, 2, 0, 1])) != S._partition_key(np.array([0, 1, 1, 2]))
+    got = kmeans(cells, 6, seed=4)
+    monkeypatch.setattr(S, "_distinct", lambda runs: list(runs))  # every restart finished and relocated again
+    every = kmeans(cells, 6, seed=4)
+    assert got.sse == every.sse
+    np.testing.assert_array_equal(got.labels, every.labels)
+    assert got.sse <= 1.002 * KMeans(6, n_init=10, random_state=0).fit(x).inertia_  # scikit-learn KMeans objective
