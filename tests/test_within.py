@@ -186,6 +186,18 @@ def test_scoring_macros_take_the_group_column_and_equal_the_labels_on_every_row(
     assert differ == 0 and nulls == 20
 
 
+def test_macros_install_prints_a_call_that_runs_with_the_group_column_first(within_model, tmp_path):
+    db, model = tmp_path / "hint.duckdb", tmp_path / "within.model.json"
+    write_table(db, "meters", grouped_blobs(WITHIN_GROUPS))
+    within_model.write(model)
+    result = run("macros", "install", db, "--model", model, "--name", "water")
+    assert result.exit_code == 0, result.output
+    hint = result.stdout.strip().splitlines()[-1].removeprefix("try: ").replace("my_table", "meters")
+    assert '"water_segment"("grp", "a", "b", "c")' in hint
+    with duckdb.connect(str(db)) as con:  # the printed call binds and scores every row
+        assert len(con.execute(hint).fetchall()) == sum(spec[0] for spec in WITHIN_GROUPS.values())
+
+
 # ----------------------------------------------------------------------------- bad inputs
 
 

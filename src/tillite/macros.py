@@ -298,6 +298,13 @@ def _indicator_values(model: Model, v_names: Sequence[str]) -> dict[str, exp.Exp
     return out
 
 
+def scoring_arguments(model: Model) -> list[str]:
+    """The source columns a scoring macro takes, in order: a `--within` model's group column first."""
+    if model.within:
+        return [model.within["column"], *model.columns]
+    return model.input_columns()
+
+
 def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
     """<name>_segment(x...) and <name>_distance(x...) for one model."""
     name = _check_model_name(name)
@@ -307,12 +314,8 @@ def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
             "which a scalar macro of the row's values does not reproduce; use `tillite label`, or segment with "
             "--keep-outliers for k-means/Ward"
         )
-    if model.within:  # segments within groups: the group column is the first argument
-        segment, distance = within_scoring_bodies(model)
-        params = identifiers([model.within["column"], *model.columns])
-    else:
-        segment, distance = scoring_bodies(model)
-        params = identifiers(model.input_columns())
+    segment, distance = within_scoring_bodies(model) if model.within else scoring_bodies(model)
+    params = identifiers(scoring_arguments(model))
     out = []
     for suffix, body in (("segment", segment), ("distance", distance)):
         macro = f"{name}_{suffix}"
