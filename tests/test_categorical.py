@@ -203,6 +203,25 @@ def test_bad_categorical_input_is_one_error_line(mixed_db, args, needles):
     assert_one_error_line(res, *needles)
 
 
+def test_categorical_given_twice_segments_on_both_columns(mixed_db, tmp_path):
+    out = tmp_path / "two.json"
+    res = CliRunner().invoke(main, ["segment", str(mixed_db), "-t", "t", "-c", "a,b", "--categorical", "district",
+                                    "--categorical", "truth", "--k", "6", "-o", str(out), "-q"])
+    assert res.exit_code == 0, res.output
+    assert [c["column"] for c in Model.read(out).categorical] == ["district", "truth"]
+
+
+@pytest.mark.parametrize("args, needles", [
+    (["--categorical", "district", "--categorical", "district"], ["--categorical", "more than once", "district"]),
+    (["--categorical", "district", "--weights", "district=-1"], ["--weights", "district=-1"]),
+    (["--categorical", "district", "--weights", "district=nan"], ["--weights", "district=nan"]),
+])
+def test_bad_repeated_or_weighted_categorical_is_one_error_line_in_cli_words(mixed_db, args, needles):
+    res = CliRunner().invoke(main, ["segment", str(mixed_db), "-t", "t", "-c", "a", "--k", "3", "-q", *args])
+    line = assert_one_error_line(res, *needles)
+    assert not any(mark in line for mark in "{}[]"), line  # no Python dict or list in the message
+
+
 def test_group_scale_is_the_root_of_one_minus_the_sum_of_squared_shares():
     # outside reference: the definition (Gini impurity 1 - sum p^2), worked by hand: 1 - (0.25 + 0.25) = 0.5
     assert cat.group_scale(np.array([0.5, 0.5])) == pytest.approx(np.sqrt(0.5))

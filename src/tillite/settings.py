@@ -132,7 +132,7 @@ class Settings:
                          choices=("attach", "drop"))
     within: str | None = setting(None, "Segment each group of this column separately (k per group; NULL is a group of "
                                        "its own), all groups from the same scans; at most 1,000 groups.", kind="str")
-    categorical: tuple[str, ...] = setting((), "Categorical columns, comma-separated: each becomes indicators of its "
+    categorical: tuple[str, ...] = setting((), "Categorical columns, comma-separated (repeatable): each becomes indicators of its "
                                                "top categories, weighing as much as one scaled numeric column "
                                                "(--weights COLUMN=w applies to the whole column).", kind="parsed")
     max_categories: int = setting(20, "Categories kept per --categorical column (the most rows in the profile "
@@ -172,7 +172,8 @@ class Settings:
         bad = {c: w for c, w in self.weights.items()
                if not (isinstance(w, Real) and math.isfinite(w) and 0 <= w <= MAX_WEIGHT)}
         if bad:
-            raise ParameterError(f"{{weights}} must be numbers from 0 to {MAX_WEIGHT:g}: {bad}", "weights")
+            given = ", ".join(f"{c}={w}" for c, w in bad.items())
+            raise ParameterError(f"{{weights}} must be numbers from 0 to {MAX_WEIGHT:g}, got {given}", "weights")
         if columns and not self.categorical and not any(float(self.weights.get(c, 1.0)) > 0 for c in columns):
             raise ParameterError("every {weights} value is 0: at least one column needs a weight above 0", "weights")
 
