@@ -222,6 +222,15 @@ def test_bad_repeated_or_weighted_categorical_is_one_error_line_in_cli_words(mix
     assert not any(mark in line for mark in "{}[]"), line  # no Python dict or list in the message
 
 
+@pytest.mark.parametrize("values", [["north"] * 50, [None] * 50], ids=["one-value", "nulls-only"])
+def test_a_single_category_alone_is_one_error_line_naming_the_column_not_its_indicators(tmp_path, values):
+    db = write_table(tmp_path / "one.duckdb", "t", {"a": np.arange(50.0), "district": np.array(values, dtype=object)})
+    res = CliRunner().invoke(main, ["segment", str(db), "-t", "t", "--categorical", "district", "--k", "2", "-q",
+                                    "-o", str(tmp_path / "m.json")])
+    line = assert_one_error_line(res, "nothing to segment on", "district (one category)")
+    assert "(other)" not in line and "(NULL)" not in line, line
+
+
 def test_group_scale_is_the_root_of_one_minus_the_sum_of_squared_shares():
     # outside reference: the definition (Gini impurity 1 - sum p^2), worked by hand: 1 - (0.25 + 0.25) = 0.5
     assert cat.group_scale(np.array([0.5, 0.5])) == pytest.approx(np.sqrt(0.5))
