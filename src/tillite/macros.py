@@ -288,6 +288,9 @@ def within_scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]
 def _indicator_values(model: Model, v_names: Sequence[str]) -> dict[str, exp.Expression]:
     """Categorical columns: each indicator's centred value from the macro's parameter holding the category
     (the label view's indicator expressions; a value never seen at build time counts as "other")."""
+    from .categorical import specs_of
+
+    specs_of(model.categorical)  # a damaged type in the model file is one error line, not a sqlglot traceback
     where = {c: j for j, c in enumerate(model.columns)}
     out = {}
     for spec in model.categorical:

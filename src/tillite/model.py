@@ -419,8 +419,26 @@ def _check_values(body: dict[str, Any], where: str) -> None:
         ok = isinstance(spec, dict) and isinstance(spec.get("values"), list) and isinstance(spec.get("indicators"), list)
         if not ok or len(spec["indicators"]) != len(spec["values"]) + 2 or not set(spec["indicators"]) <= set(body["columns"]):
             raise ModelError(f"{where} is damaged: a categorical column's indicators do not match its columns")
+    _check_categorical_fields(body.get("categorical") or [], where)
     if body.get("method", "kmeans") not in ("kmeans", "ward", "density") or body.get("scaling") not in ("zscore", "none"):
         raise ModelError(f"{where} is damaged: method {body.get('method')!r} or scaling {body.get('scaling')!r} is not one of ours")
+
+
+def _check_categorical_fields(specs: list, where: str) -> None:
+    """Each categorical column has a name, a type and its categories as text; no column or indicator twice."""
+    def text(v: Any) -> bool:
+        return isinstance(v, str) and v != ""
+
+    for spec in specs:
+        name = spec.get("column")
+        if not text(name) or not text(spec.get("type")):
+            raise ModelError(f"{where} is damaged: a categorical column lacks its name or its SQL type")
+        if not all(isinstance(v, str) for v in spec["values"]) or not all(text(v) for v in spec["indicators"]):
+            raise ModelError(f"{where} is damaged: categorical column {name} lists a category that is not text")
+    names = [spec["column"] for spec in specs]
+    indicators = [n for spec in specs for n in spec["indicators"]]
+    if len(set(names)) != len(names) or len(set(indicators)) != len(indicators):
+        raise ModelError(f"{where} is damaged: a categorical column or indicator is listed twice")
 
 
 def _fmt(v: float) -> str:
