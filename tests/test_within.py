@@ -307,6 +307,43 @@ def test_a_damaged_group_in_the_model_file_is_one_clear_error(within_model, tmp_
         Model.from_dict(d)
 
 
+def _damage_within(d: dict, what: str) -> None:
+    groups = d["within"]["groups"]
+    if what == "missing-center":
+        del groups[0]["center"]
+    elif what == "missing-value":
+        del groups[0]["value"]
+    elif what == "group-twice":
+        groups.append(groups[0])
+    elif what == "no-groups":
+        groups.clear()
+    elif what == "bad-type":
+        d["within"]["type"] = "BLOB; DROP TABLE meters"
+
+
+@pytest.mark.parametrize("what, needles", [
+    ("missing-center", ["damaged", "lacks center"]),
+    ("missing-value", ["damaged", "lacks its value"]),
+    ("group-twice", ["damaged", "listed twice"]),
+    ("no-groups", ["damaged", "no groups"]),
+    ("bad-type", ["damaged", "grp", "not a SQL type"]),
+])
+@pytest.mark.parametrize("command", ["show", "label", "macros"])
+def test_a_damaged_within_model_file_is_one_error_line_in_show_label_and_macros(within_db, within_model, tmp_path,
+                                                                                 what, needles, command):
+    if command == "show" and what == "bad-type":
+        pytest.skip("show writes no SQL, so it does not read the type; the commands that write SQL refuse it")
+    d = within_model.to_dict()
+    _damage_within(d, what)
+    bad = tmp_path / "bad.json"
+    bad.write_text(json.dumps(d))
+    db = tmp_path / "m.duckdb"
+    duckdb.connect(str(db)).close()
+    args = {"show": ["show", bad], "label": ["label", within_db, "-t", "meters", "--model", bad, "--into", "v", "-q"],
+            "macros": ["macros", "install", db, "--model", bad, "--name", "w"]}[command]
+    assert_one_error_line(run(*args), *needles)
+
+
 @pytest.mark.parametrize("group_sql", ["DATE '2026-01-01' + CAST(truth AS INTEGER)", "CAST(truth AS DOUBLE) / 3", "truth > 1",
                                        "CAST(truth AS VARCHAR) || ' o''clock'"])
 def test_group_columns_of_other_types_label_every_row_into_its_own_group(tmp_path, group_sql):

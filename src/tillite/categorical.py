@@ -143,14 +143,18 @@ def specs_of(data: Sequence[dict[str, Any]] | None) -> list[CategoricalColumn]:
 
 def check_type_name(spec: CategoricalColumn) -> None:
     """A model file's type of a categorical column must read as one SQL type (its literals are cast to it)."""
-    for dialect in (None, "duckdb", "postgres", "spark"):  # the engines a model comes from
+    check_sql_type(spec.type, f"categorical column {spec.column}")
+
+
+def check_sql_type(type_name: str, what: str) -> None:
+    """A type name read from a model file (``what`` has it) must parse as one SQL type of an engine we run."""
+    for dialect in (None, "duckdb", "postgres", "spark"):
         try:
-            if isinstance(exp.DataType.build(spec.type, dialect=dialect), exp.DataType):
+            if isinstance(exp.DataType.build(type_name, dialect=dialect), exp.DataType):
                 return
         except (ValueError, ParseError):
             continue
-    raise ModelError(f"the model file is damaged: categorical column {spec.column} has type {spec.type!r}, "
-                     "which is not a SQL type")
+    raise ModelError(f"the model file is damaged: {what} has type {type_name!r}, which is not a SQL type")
 
 
 # ----------------------------------------------------------------------------- maths (numpy only)

@@ -269,9 +269,11 @@ def scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
 def within_scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
     """The scoring bodies of a `segment --within` model: a CASE on the group argument choosing that
     group's own body (``scoring_bodies`` of the group's model); NULL for a group the model does not know."""
+    from .categorical import check_sql_type
     from .model import group_models
     from .within_sql import group_literal
 
+    check_sql_type(model.within["type"], f"the --within column {model.within['column']}")
     group = sqlgen.col(model.within["column"])
     branches: list[tuple[exp.Expression, exp.Expression, exp.Expression]] = []
     for entry, one in group_models(model):

@@ -560,13 +560,28 @@ def _check_groups(body: dict[str, Any], where: str) -> None:
     groups = within.get("groups")
     if not isinstance(within.get("column"), str) or not isinstance(within.get("type"), str) or not isinstance(groups, list):
         raise ModelError(f"{where} is damaged: within needs a column, a type and a list of groups")
+    if not groups:
+        raise ModelError(f"{where} is damaged: within lists no groups")
     for g in groups:
         if not isinstance(g, dict) or any(f not in g for f in GROUP_FIELDS):
-            raise ModelError(f"{where} is damaged: a group of within lacks some of {', '.join(GROUP_FIELDS)}")
+            missing = [f for f in GROUP_FIELDS if not isinstance(g, dict) or f not in g]
+            raise ModelError(f"{where} is damaged: a group of within lacks {', '.join(missing)}")
+        _check_group_value(g, where)
+    values = [g["value"] for g in groups]
+    if len(set(values)) != len(values):
+        raise ModelError(f"{where} is damaged: a group of within is listed twice (its rows would be labelled twice)")
+    for g in groups:
         label = f"{where} (group {g.get('name')})"
         part = {**body, **{f: g[f] for f in GROUP_FIELDS}, "ids": g.get("ids") or []}
         _check_shapes(part, label)
         _check_values(part, label)
+
+
+def _check_group_value(g: dict[str, Any], where: str) -> None:
+    """A group's value is its text (or null for the NULL group) and its name is text."""
+    if "value" not in g or not (g["value"] is None or isinstance(g["value"], str)) or not isinstance(g.get("name"), str):
+        raise ModelError(f"{where} is damaged: a group of within lacks its value (text, or null for the NULL group) "
+                         "or its name")
 
 
 def group_models(model: Model) -> list[tuple[dict[str, Any], Model]]:
