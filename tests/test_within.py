@@ -158,6 +158,16 @@ def test_model_file_round_trips_and_show_lists_groups_with_null_named(within_db,
     assert sum(s["size"] for g in digest["groups"] for s in g["segments"]) == 13_000
 
 
+def test_a_text_group_null_and_the_null_group_are_named_apart(tmp_path):
+    data = grouped_blobs({"NULL": (300, 2, 0.0, 1.0), None: (300, 2, 20.0, 1.0)})
+    db = write_table(tmp_path / "nulls.duckdb", "meters", data)
+    with DuckDBEngine(str(db), read_only=True) as engine:
+        model = segment(engine, Source.of_table("meters"), COLUMNS, Settings(k=2, within="grp"))
+    names = {g["value"]: g["name"] for g in model.within["groups"]}
+    assert names == {"NULL": "'NULL'", None: "NULL"}
+    assert "== grp = 'NULL'" in model.describe() and "== grp = NULL" in model.describe()
+
+
 def test_without_within_the_model_file_keeps_its_single_model_shape(within_db):
     with DuckDBEngine(str(within_db), read_only=True) as engine:
         model = segment(engine, Source.of_table("only_dune"), COLUMNS, Settings(k=4))

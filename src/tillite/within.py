@@ -47,7 +47,10 @@ def _quiet(stage: str, message: str) -> None:
 
 
 def group_name(value: str | None) -> str:
-    return NULL_GROUP_NAME if value is None else value
+    """The NULL group is NULL; a text value 'NULL' is shown quoted, so the two read apart."""
+    if value is None:
+        return NULL_GROUP_NAME
+    return f"'{value}'" if value == NULL_GROUP_NAME else value
 
 
 def _part_value(key: str) -> str | None:
