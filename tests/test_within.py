@@ -158,6 +158,17 @@ def test_model_file_round_trips_and_show_lists_groups_with_null_named(within_db,
     assert sum(s["size"] for g in digest["groups"] for s in g["segments"]) == 13_000
 
 
+def test_sql_stage_cells_of_a_within_model_prints_the_group_and_cell_pass(within_db, within_model, tmp_path):
+    model = tmp_path / "within.model.json"
+    within_model.write(model)
+    result = run("sql", within_db, "-t", "meters", "--model", model, "--stage", "cells")
+    assert result.exit_code == 0, result.output
+    with duckdb.connect(str(within_db), read_only=True) as con:  # the printed statement, run as a user would
+        got = con.execute(f"SELECT part, sum(n) FROM ({result.stdout.strip().rstrip(';')}) GROUP BY part").fetchall()
+    assert len(got) == len(WITHIN_GROUPS)  # one set of cells per group: harbour, dune and the NULL group
+    assert sorted(int(n) for _, n in got) == sorted(spec[0] for spec in WITHIN_GROUPS.values())
+
+
 def test_a_text_group_null_and_the_null_group_are_named_apart(tmp_path):
     data = grouped_blobs({"NULL": (300, 2, 0.0, 1.0), None: (300, 2, 20.0, 1.0)})
     db = write_table(tmp_path / "nulls.duckdb", "meters", data)

@@ -205,6 +205,13 @@ def _model_source(src, model, target):
     return with_indicators(src, specs_of(model.categorical), target)
 
 
+def _within_partition(model):
+    """A --within model's cell pass groups by (group, cell), as `segment --within` runs it."""
+    if model is None or not model.within:
+        return None
+    return sqlgen.Partitioning.of_columns([model.within["column"]])
+
+
 def _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget):
     from ..stages import grid_for_profile
 
@@ -217,7 +224,7 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, target, c
             settings = Settings(k=1, cell_budget=cell_budget)
             settings.check(cols)
             grid = grid_for_profile(run_profile(engine, src, cols, settings), settings)
-        return [sqlgen.cells_statement(src, cols, grid, target)]
+        return [sqlgen.cells_statement(src, cols, grid, target, partition=_within_partition(model))]
     if model is None:
         raise click.UsageError(f"--stage {stage} needs --model")
     model.refuse_within(f"tillite sql --stage {stage}")
