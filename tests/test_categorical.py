@@ -264,6 +264,21 @@ def test_a_damaged_categorical_field_in_the_model_file_is_one_error_line(mixed_d
     assert_one_error_line(res, *needles)
 
 
+def test_sql_stage_cells_of_a_categorical_model_prints_the_cell_pass_keyed_by_category(mixed_db, tmp_path):
+    path = tmp_path / "m.json"
+    model = run_model(mixed_db, 6)
+    model.write(path)
+    res = CliRunner().invoke(main, ["sql", str(mixed_db), "-t", "t", "--model", str(path), "--stage", "cells"])
+    assert res.exit_code == 0, res.output
+    with duckdb.connect(str(mixed_db), read_only=True) as con:  # the printed statement, run as a user would
+        got = con.execute(f"SELECT * FROM ({res.stdout.strip().rstrip(';')})")
+        columns = [d[0] for d in got.description]
+        rows = got.fetchall()
+    assert "q0" in columns  # keyed by the category's code, as segment's own cell pass is
+    assert len(rows) == model.grid["cells"]  # the cells segment itself counted
+    assert sum(row[columns.index("n")] for row in rows) == 12_000
+
+
 def test_group_scale_is_the_root_of_one_minus_the_sum_of_squared_shares():
     # outside reference: the definition (Gini impurity 1 - sum p^2), worked by hand: 1 - (0.25 + 0.25) = 0.5
     assert cat.group_scale(np.array([0.5, 0.5])) == pytest.approx(np.sqrt(0.5))

@@ -988,6 +988,23 @@ def grid_with_category_codes(prof: Profile, settings: Settings, weights: np.ndar
     )
 
 
+def cells_statement_with_codes(
+    source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str], target: Any
+) -> tuple[Any, Grid, np.ndarray]:
+    """The cell statement of a run with categorical columns (keyed by the numeric grid and each column's
+    code), the grid on the numeric columns alone, and those columns' positions."""
+    numeric = np.ones(len(columns), dtype=bool)
+    for pos in groups:
+        numeric[pos] = False
+    num_idx = np.flatnonzero(numeric)
+    center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
+    # the grid on the numeric columns alone (none: no key but the codes)
+    sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
+               axes=tuple(tuple(r) for r in np.asarray(grid.axes)[num_idx]) if len(num_idx) else None, sums_scaled=True)
+    statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, target, extra_keys=code_names)
+    return statement, sub, num_idx
+
+
 def run_cell_pass_with_codes(
     engine: Engine, source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str]
 ) -> CellPass:
@@ -996,15 +1013,8 @@ def run_cell_pass_with_codes(
     indicators, so their sums follow exactly from the cell's count (``categorical.indicator_cells``)."""
     t0 = time.perf_counter()
     d = len(columns)
-    numeric = np.ones(d, dtype=bool)
-    for pos in groups:
-        numeric[pos] = False
-    num_idx = np.flatnonzero(numeric)
+    statement, sub, num_idx = cells_statement_with_codes(source, columns, grid, groups, code_names, engine.target)
     center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
-    # the grid on the numeric columns alone (none: no key but the codes)
-    sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
-               axes=tuple(tuple(r) for r in np.asarray(grid.axes)[num_idx]) if len(num_idx) else None, sums_scaled=True)
-    statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, engine.target, extra_keys=code_names)
     got = engine.query(statement)
     names = sub.key_names()
     n_all = np.asarray(got["n"], dtype=np.float64)

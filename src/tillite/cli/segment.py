@@ -224,6 +224,13 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, target, c
             settings = Settings(k=1, cell_budget=cell_budget)
             settings.check(cols)
             grid = grid_for_profile(run_profile(engine, src, cols, settings), settings)
+        if model is not None and model.categorical:  # keyed by the numeric grid and each category, as segment runs it
+            from ..categorical import code_names, indicator_positions, specs_of
+            from ..stages import cells_statement_with_codes
+
+            specs = specs_of(model.categorical)
+            statement, _, _ = cells_statement_with_codes(src, cols, grid, indicator_positions(cols, specs), code_names(specs), target)
+            return [statement]
         return [sqlgen.cells_statement(src, cols, grid, target, partition=_within_partition(model))]
     if model is None:
         raise click.UsageError(f"--stage {stage} needs --model")
