@@ -122,6 +122,21 @@ def test_group_value_unknown_to_the_model_is_labelled_null_with_a_count(within_d
     assert nulls == 37
 
 
+def test_a_group_whose_rows_were_all_skipped_is_not_counted_as_unknown_when_labelling(tmp_path):
+    data = grouped_blobs({"harbour": (400, 2, 0.0, 1.0), "marsh": (5, 1, 0.0, 1.0)})
+    data["a"] = np.where(data["grp"] == "marsh", np.nan, data["a"])  # marsh: every row skipped (NaN) at build time
+    db = write_table(tmp_path / "skipped.duckdb", "meters", data)
+    with DuckDBEngine(str(db)) as engine:
+        with warnings.catch_warnings(record=True) as built:
+            warnings.simplefilter("always")
+            model = segment(engine, Source.of_table("meters"), COLUMNS, Settings(k=2, within="grp"))
+        assert any("group marsh: all 5 rows" in str(w.message) for w in built)
+        with warnings.catch_warnings(record=True) as labelled:
+            warnings.simplefilter("always")
+            label(engine, Source.of_table("meters"), model, "meter_segments")
+    assert not [w for w in labelled if "does not know" in str(w.message)], [str(w.message) for w in labelled]
+
+
 def test_group_with_too_few_rows_gets_fewer_segments_with_a_warning(tmp_path):
     data = grouped_blobs({"big": (3_000, 3, 0.0, 1.0), "two": (2, 1, 9.0, 1.0)})
     write_table(tmp_path / "few.duckdb", "t", data)
