@@ -148,9 +148,9 @@ def check_type_name(spec: CategoricalColumn) -> None:
 
 def check_sql_type(type_name: str, what: str) -> None:
     """A type name read from a model file (``what`` has it) must parse as one SQL type of an engine we run."""
-    for dialect in (None, "duckdb", "postgres", "spark"):
+    for reader in (None, "duckdb", "postgres", "spark"):  # the engines a model can come from
         try:
-            if isinstance(exp.DataType.build(type_name, dialect=dialect), exp.DataType):
+            if isinstance(exp.DataType.build(type_name, dialect=reader), exp.DataType):
                 return
         except (ValueError, ParseError):
             continue
