@@ -203,6 +203,82 @@ def test_bad_categorical_input_is_one_error_line(mixed_db, args, needles):
     assert_one_error_line(res, *needles)
 
 
+def test_categorical_given_twice_segments_on_both_columns(mixed_db, tmp_path):
+    out = tmp_path / "two.json"
+    res = CliRunner().invoke(main, ["segment", str(mixed_db), "-t", "t", "-c", "a,b", "--categorical", "district",
+                                    "--categorical", "truth", "--k", "6", "-o", str(out), "-q"])
+    assert res.exit_code == 0, res.output
+    assert [c["column"] for c in Model.read(out).categorical] == ["district", "truth"]
+
+
+@pytest.mark.parametrize("args, needles", [
+    (["--categorical", "district", "--categorical", "district"], ["--categorical", "more than once", "district"]),
+    (["--categorical", "district", "--weights", "district=-1"], ["--weights", "district=-1"]),
+    (["--categorical", "district", "--weights", "district=nan"], ["--weights", "district=nan"]),
+])
+def test_bad_repeated_or_weighted_categorical_is_one_error_line_in_cli_words(mixed_db, args, needles):
+    res = CliRunner().invoke(main, ["segment", str(mixed_db), "-t", "t", "-c", "a", "--k", "3", "-q", *args])
+    line = assert_one_error_line(res, *needles)
+    assert not any(mark in line for mark in "{}[]"), line  # no Python dict or list in the message
+
+
+@pytest.mark.parametrize("values", [["north"] * 50, [None] * 50], ids=["one-value", "nulls-only"])
+def test_a_single_category_alone_is_one_error_line_naming_the_column_not_its_indicators(tmp_path, values):
+    db = write_table(tmp_path / "one.duckdb", "t", {"a": np.arange(50.0), "district": np.array(values, dtype=object)})
+    res = CliRunner().invoke(main, ["segment", str(db), "-t", "t", "--categorical", "district", "--k", "2", "-q",
+                                    "-o", str(tmp_path / "m.json")])
+    line = assert_one_error_line(res, "nothing to segment on", "district (one category)")
+    assert "(other)" not in line and "(NULL)" not in line, line
+
+
+def _damage(spec: dict, what: str) -> None:
+    if what == "no-type":
+        del spec["type"]
+    elif what == "bad-type":
+        spec["type"] = "BLOB; DROP TABLE t"
+    elif what == "null-category":
+        spec["values"][0] = None
+
+
+@pytest.mark.parametrize("what, needles", [
+    ("no-type", ["damaged", "SQL type"]),
+    ("bad-type", ["damaged", "district", "not a SQL type"]),
+    ("null-category", ["damaged", "district", "not text"]),
+])
+@pytest.mark.parametrize("command", ["show", "label", "macros"])
+def test_a_damaged_categorical_field_in_the_model_file_is_one_error_line(mixed_db, tmp_path, what, needles, command):
+    good = tmp_path / "good.json"
+    run_model(mixed_db, 3).write(good)
+    data = json.loads(good.read_text())
+    _damage(data["categorical"][0], what)
+    bad = tmp_path / "bad.json"
+    bad.write_text(json.dumps(data))
+    args = {"show": ["show", bad],
+            "label": ["label", mixed_db, "-t", "t", "--model", bad, "--into", "v", "-q"],
+            "macros": ["macros", "install", tmp_path / "m.duckdb", "--model", bad, "--name", "w"]}[command]
+    if command == "macros":
+        duckdb.connect(str(tmp_path / "m.duckdb")).close()
+    if command == "show" and what == "bad-type":
+        pytest.skip("show writes no SQL, so it does not read the type; the commands that write SQL refuse it")
+    res = CliRunner().invoke(main, [str(a) for a in args])
+    assert_one_error_line(res, *needles)
+
+
+def test_sql_stage_cells_of_a_categorical_model_prints_the_cell_pass_keyed_by_category(mixed_db, tmp_path):
+    path = tmp_path / "m.json"
+    model = run_model(mixed_db, 6)
+    model.write(path)
+    res = CliRunner().invoke(main, ["sql", str(mixed_db), "-t", "t", "--model", str(path), "--stage", "cells"])
+    assert res.exit_code == 0, res.output
+    with duckdb.connect(str(mixed_db), read_only=True) as con:  # the printed statement, run as a user would
+        got = con.execute(f"SELECT * FROM ({res.stdout.strip().rstrip(';')})")
+        columns = [d[0] for d in got.description]
+        rows = got.fetchall()
+    assert "q0" in columns  # keyed by the category's code, as segment's own cell pass is
+    assert len(rows) == model.grid["cells"]  # the cells segment itself counted
+    assert sum(row[columns.index("n")] for row in rows) == 12_000
+
+
 def test_group_scale_is_the_root_of_one_minus_the_sum_of_squared_shares():
     # outside reference: the definition (Gini impurity 1 - sum p^2), worked by hand: 1 - (0.25 + 0.25) = 0.5
     assert cat.group_scale(np.array([0.5, 0.5])) == pytest.approx(np.sqrt(0.5))

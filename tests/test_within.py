@@ -122,6 +122,21 @@ def test_group_value_unknown_to_the_model_is_labelled_null_with_a_count(within_d
     assert nulls == 37
 
 
+def test_a_group_whose_rows_were_all_skipped_is_not_counted_as_unknown_when_labelling(tmp_path):
+    data = grouped_blobs({"harbour": (400, 2, 0.0, 1.0), "marsh": (5, 1, 0.0, 1.0)})
+    data["a"] = np.where(data["grp"] == "marsh", np.nan, data["a"])  # marsh: every row skipped (NaN) at build time
+    db = write_table(tmp_path / "skipped.duckdb", "meters", data)
+    with DuckDBEngine(str(db)) as engine:
+        with warnings.catch_warnings(record=True) as built:
+            warnings.simplefilter("always")
+            model = segment(engine, Source.of_table("meters"), COLUMNS, Settings(k=2, within="grp"))
+        assert any("group marsh: all 5 rows" in str(w.message) for w in built)
+        with warnings.catch_warnings(record=True) as labelled:
+            warnings.simplefilter("always")
+            label(engine, Source.of_table("meters"), model, "meter_segments")
+    assert not [w for w in labelled if "does not know" in str(w.message)], [str(w.message) for w in labelled]
+
+
 def test_group_with_too_few_rows_gets_fewer_segments_with_a_warning(tmp_path):
     data = grouped_blobs({"big": (3_000, 3, 0.0, 1.0), "two": (2, 1, 9.0, 1.0)})
     write_table(tmp_path / "few.duckdb", "t", data)
@@ -158,6 +173,27 @@ def test_model_file_round_trips_and_show_lists_groups_with_null_named(within_db,
     assert sum(s["size"] for g in digest["groups"] for s in g["segments"]) == 13_000
 
 
+def test_sql_stage_cells_of_a_within_model_prints_the_group_and_cell_pass(within_db, within_model, tmp_path):
+    model = tmp_path / "within.model.json"
+    within_model.write(model)
+    result = run("sql", within_db, "-t", "meters", "--model", model, "--stage", "cells")
+    assert result.exit_code == 0, result.output
+    with duckdb.connect(str(within_db), read_only=True) as con:  # the printed statement, run as a user would
+        got = con.execute(f"SELECT part, sum(n) FROM ({result.stdout.strip().rstrip(';')}) GROUP BY part").fetchall()
+    assert len(got) == len(WITHIN_GROUPS)  # one set of cells per group: harbour, dune and the NULL group
+    assert sorted(int(n) for _, n in got) == sorted(spec[0] for spec in WITHIN_GROUPS.values())
+
+
+def test_a_text_group_null_and_the_null_group_are_named_apart(tmp_path):
+    data = grouped_blobs({"NULL": (300, 2, 0.0, 1.0), None: (300, 2, 20.0, 1.0)})
+    db = write_table(tmp_path / "nulls.duckdb", "meters", data)
+    with DuckDBEngine(str(db), read_only=True) as engine:
+        model = segment(engine, Source.of_table("meters"), COLUMNS, Settings(k=2, within="grp"))
+    names = {g["value"]: g["name"] for g in model.within["groups"]}
+    assert names == {"NULL": "'NULL'", None: "NULL"}
+    assert "== grp = 'NULL'" in model.describe() and "== grp = NULL" in model.describe()
+
+
 def test_without_within_the_model_file_keeps_its_single_model_shape(within_db):
     with DuckDBEngine(str(within_db), read_only=True) as engine:
         model = segment(engine, Source.of_table("only_dune"), COLUMNS, Settings(k=4))
@@ -184,6 +220,18 @@ def test_scoring_macros_take_the_group_column_and_equal_the_labels_on_every_row(
     finally:
         con.close()
     assert differ == 0 and nulls == 20
+
+
+def test_macros_install_prints_a_call_that_runs_with_the_group_column_first(within_model, tmp_path):
+    db, model = tmp_path / "hint.duckdb", tmp_path / "within.model.json"
+    write_table(db, "meters", grouped_blobs(WITHIN_GROUPS))
+    within_model.write(model)
+    result = run("macros", "install", db, "--model", model, "--name", "water")
+    assert result.exit_code == 0, result.output
+    hint = result.stdout.strip().splitlines()[-1].removeprefix("try: ").replace("my_table", "meters")
+    assert '"water_segment"("grp", "a", "b", "c")' in hint
+    with duckdb.connect(str(db)) as con:  # the printed call binds and scores every row
+        assert len(con.execute(hint).fetchall()) == sum(spec[0] for spec in WITHIN_GROUPS.values())
 
 
 # ----------------------------------------------------------------------------- bad inputs
@@ -293,6 +341,43 @@ def test_a_damaged_group_in_the_model_file_is_one_clear_error(within_model, tmp_
     del d["within"]["groups"][0]["sizes"]
     with pytest.raises(ModelError, match="a group of within lacks"):
         Model.from_dict(d)
+
+
+def _damage_within(d: dict, what: str) -> None:
+    groups = d["within"]["groups"]
+    if what == "missing-center":
+        del groups[0]["center"]
+    elif what == "missing-value":
+        del groups[0]["value"]
+    elif what == "group-twice":
+        groups.append(groups[0])
+    elif what == "no-groups":
+        groups.clear()
+    elif what == "bad-type":
+        d["within"]["type"] = "BLOB; DROP TABLE meters"
+
+
+@pytest.mark.parametrize("what, needles", [
+    ("missing-center", ["damaged", "lacks center"]),
+    ("missing-value", ["damaged", "lacks its value"]),
+    ("group-twice", ["damaged", "listed twice"]),
+    ("no-groups", ["damaged", "no groups"]),
+    ("bad-type", ["damaged", "grp", "not a SQL type"]),
+])
+@pytest.mark.parametrize("command", ["show", "label", "macros"])
+def test_a_damaged_within_model_file_is_one_error_line_in_show_label_and_macros(within_db, within_model, tmp_path,
+                                                                                 what, needles, command):
+    if command == "show" and what == "bad-type":
+        pytest.skip("show writes no SQL, so it does not read the type; the commands that write SQL refuse it")
+    d = within_model.to_dict()
+    _damage_within(d, what)
+    bad = tmp_path / "bad.json"
+    bad.write_text(json.dumps(d))
+    db = tmp_path / "m.duckdb"
+    duckdb.connect(str(db)).close()
+    args = {"show": ["show", bad], "label": ["label", within_db, "-t", "meters", "--model", bad, "--into", "v", "-q"],
+            "macros": ["macros", "install", db, "--model", bad, "--name", "w"]}[command]
+    assert_one_error_line(run(*args), *needles)
 
 
 @pytest.mark.parametrize("group_sql", ["DATE '2026-01-01' + CAST(truth AS INTEGER)", "CAST(truth AS DOUBLE) / 3", "truth > 1",

@@ -21,9 +21,11 @@ from dataclasses import dataclass, replace
 from typing import Any, Sequence
 
 import numpy as np
+from sqlglot import exp
+from sqlglot.errors import ParseError
 
 from . import sqlgen
-from .errors import InputError, ParameterError
+from .errors import InputError, ModelError, ParameterError
 from .sqlgen import Source
 
 #: Default and largest --max-categories: each category adds an indicator to every pass.
@@ -133,7 +135,26 @@ def indicator_cells(n: np.ndarray, codes: np.ndarray, center: np.ndarray, inv_sc
 
 
 def specs_of(data: Sequence[dict[str, Any]] | None) -> list[CategoricalColumn]:
-    return [CategoricalColumn.from_dict(d) for d in (data or [])]
+    specs = [CategoricalColumn.from_dict(d) for d in (data or [])]
+    for spec in specs:
+        check_type_name(spec)
+    return specs
+
+
+def check_type_name(spec: CategoricalColumn) -> None:
+    """A model file's type of a categorical column must read as one SQL type (its literals are cast to it)."""
+    check_sql_type(spec.type, f"categorical column {spec.column}")
+
+
+def check_sql_type(type_name: str, what: str) -> None:
+    """A type name read from a model file (``what`` has it) must parse as one SQL type of an engine we run."""
+    for reader in (None, "duckdb", "postgres", "spark"):  # the engines a model can come from
+        try:
+            if isinstance(exp.DataType.build(type_name, dialect=reader), exp.DataType):
+                return
+        except (ValueError, ParseError):
+            continue
+    raise ModelError(f"the model file is damaged: {what} has type {type_name!r}, which is not a SQL type")
 
 
 # ----------------------------------------------------------------------------- maths (numpy only)

@@ -269,9 +269,11 @@ def scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
 def within_scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
     """The scoring bodies of a `segment --within` model: a CASE on the group argument choosing that
     group's own body (``scoring_bodies`` of the group's model); NULL for a group the model does not know."""
+    from .categorical import check_sql_type
     from .model import group_models
     from .within_sql import group_literal
 
+    check_sql_type(model.within["type"], f"the --within column {model.within['column']}")
     group = sqlgen.col(model.within["column"])
     branches: list[tuple[exp.Expression, exp.Expression, exp.Expression]] = []
     for entry, one in group_models(model):
@@ -288,6 +290,9 @@ def within_scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]
 def _indicator_values(model: Model, v_names: Sequence[str]) -> dict[str, exp.Expression]:
     """Categorical columns: each indicator's centred value from the macro's parameter holding the category
     (the label view's indicator expressions; a value never seen at build time counts as "other")."""
+    from .categorical import specs_of
+
+    specs_of(model.categorical)  # a damaged type in the model file is one error line, not a sqlglot traceback
     where = {c: j for j, c in enumerate(model.columns)}
     out = {}
     for spec in model.categorical:
@@ -296,6 +301,13 @@ def _indicator_values(model: Model, v_names: Sequence[str]) -> dict[str, exp.Exp
             j = where[name]
             out[v_names[j]] = sqlgen.paren(exp.Sub(this=e, expression=sqlgen.num(float(model.center[j]))))
     return out
+
+
+def scoring_arguments(model: Model) -> list[str]:
+    """The source columns a scoring macro takes, in order: a `--within` model's group column first."""
+    if model.within:
+        return [model.within["column"], *model.columns]
+    return model.input_columns()
 
 
 def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
@@ -307,12 +319,8 @@ def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
             "which a scalar macro of the row's values does not reproduce; use `tillite label`, or segment with "
             "--keep-outliers for k-means/Ward"
         )
-    if model.within:  # segments within groups: the group column is the first argument
-        segment, distance = within_scoring_bodies(model)
-        params = identifiers([model.within["column"], *model.columns])
-    else:
-        segment, distance = scoring_bodies(model)
-        params = identifiers(model.input_columns())
+    segment, distance = within_scoring_bodies(model) if model.within else scoring_bodies(model)
+    params = identifiers(scoring_arguments(model))
     out = []
     for suffix, body in (("segment", segment), ("distance", distance)):
         macro = f"{name}_{suffix}"

@@ -431,8 +431,26 @@ def _check_values(body: dict[str, Any], where: str) -> None:
         ok = isinstance(spec, dict) and isinstance(spec.get("values"), list) and isinstance(spec.get("indicators"), list)
         if not ok or len(spec["indicators"]) != len(spec["values"]) + 2 or not set(spec["indicators"]) <= set(body["columns"]):
             raise ModelError(f"{where} is damaged: a categorical column's indicators do not match its columns")
+    _check_categorical_fields(body.get("categorical") or [], where)
     if body.get("method", "kmeans") not in ("kmeans", "ward", "density") or body.get("scaling") not in ("zscore", "none"):
         raise ModelError(f"{where} is damaged: method {body.get('method')!r} or scaling {body.get('scaling')!r} is not one of ours")
+
+
+def _check_categorical_fields(specs: list, where: str) -> None:
+    """Each categorical column has a name, a type and its categories as text; no column or indicator twice."""
+    def text(v: Any) -> bool:
+        return isinstance(v, str) and v != ""
+
+    for spec in specs:
+        name = spec.get("column")
+        if not text(name) or not text(spec.get("type")):
+            raise ModelError(f"{where} is damaged: a categorical column lacks its name or its SQL type")
+        if not all(isinstance(v, str) for v in spec["values"]) or not all(text(v) for v in spec["indicators"]):
+            raise ModelError(f"{where} is damaged: categorical column {name} lists a category that is not text")
+    names = [spec["column"] for spec in specs]
+    indicators = [n for spec in specs for n in spec["indicators"]]
+    if len(set(names)) != len(names) or len(set(indicators)) != len(indicators):
+        raise ModelError(f"{where} is damaged: a categorical column or indicator is listed twice")
 
 
 def _fmt(v: float) -> str:
@@ -555,13 +573,28 @@ def _check_groups(body: dict[str, Any], where: str) -> None:
     groups = within.get("groups")
     if not isinstance(within.get("column"), str) or not isinstance(within.get("type"), str) or not isinstance(groups, list):
         raise ModelError(f"{where} is damaged: within needs a column, a type and a list of groups")
+    if not groups:
+        raise ModelError(f"{where} is damaged: within lists no groups")
     for g in groups:
         if not isinstance(g, dict) or any(f not in g for f in GROUP_FIELDS):
-            raise ModelError(f"{where} is damaged: a group of within lacks some of {', '.join(GROUP_FIELDS)}")
+            missing = [f for f in GROUP_FIELDS if not isinstance(g, dict) or f not in g]
+            raise ModelError(f"{where} is damaged: a group of within lacks {', '.join(missing)}")
+        _check_group_value(g, where)
+    values = [g["value"] for g in groups]
+    if len(set(values)) != len(values):
+        raise ModelError(f"{where} is damaged: a group of within is listed twice (its rows would be labelled twice)")
+    for g in groups:
         label = f"{where} (group {g.get('name')})"
         part = {**body, **{f: g[f] for f in GROUP_FIELDS}, "ids": g.get("ids") or []}
         _check_shapes(part, label)
         _check_values(part, label)
+
+
+def _check_group_value(g: dict[str, Any], where: str) -> None:
+    """A group's value is its text (or null for the NULL group) and its name is text."""
+    if "value" not in g or not (g["value"] is None or isinstance(g["value"], str)) or not isinstance(g.get("name"), str):
+        raise ModelError(f"{where} is damaged: a group of within lacks its value (text, or null for the NULL group) "
+                         "or its name")
 
 
 def group_models(model: Model) -> list[tuple[dict[str, Any], Model]]:

@@ -205,6 +205,8 @@ def label(
     if model.within:  # segments within groups: the centroid set chosen by each row's group
         from .within import label_within_select
 
+        cat.check_sql_type(model.within["type"], f"the --within column {model.within['column']}")
+
         select = label_within_select(engine, source, model, source_columns, materialize or bool(source.files))
     else:
         columns, assign, lookups = list(model.columns), model.assignment(), []

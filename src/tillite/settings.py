@@ -132,7 +132,7 @@ class Settings:
                          choices=("attach", "drop"))
     within: str | None = setting(None, "Segment each group of this column separately (k per group; NULL is a group of "
                                        "its own), all groups from the same scans; at most 1,000 groups.", kind="str")
-    categorical: tuple[str, ...] = setting((), "Categorical columns, comma-separated: each becomes indicators of its "
+    categorical: tuple[str, ...] = setting((), "Categorical columns, comma-separated (repeatable): each becomes indicators of its "
                                                "top categories, weighing as much as one scaled numeric column "
                                                "(--weights COLUMN=w applies to the whole column).", kind="parsed")
     max_categories: int = setting(20, "Categories kept per --categorical column (the most rows in the profile "

@@ -465,11 +465,11 @@ def standardise_cells(
         s_ = cat.group_scale(center[pos])
         constant[pos] = s_ == 0.0
         fixed[pos] = s_ if s_ > 0.0 else 1.0
+    shown = constant_names(columns, constant, indicator_groups)
+    if not (np.where(constant, 0.0, weights) > 0).any():  # the error alone: no warning line before it
+        raise InputError(nothing_to_segment_on(columns, constant, weights, indicator_groups))
     if constant.any():
-        names = ", ".join(c for c, flag in zip(columns, constant) if flag)
-        warnings.warn(f"constant column(s) {names}: they carry no weight", UserWarning, stacklevel=3)
-    if not (np.where(constant, 0.0, weights) > 0).any():
-        raise InputError(nothing_to_segment_on(columns, constant, weights))
+        warnings.warn(f"constant column(s) {', '.join(shown)}: they carry no weight", UserWarning, stacklevel=3)
     weights = np.where(constant, 0.0, weights)
     scale = np.where(constant, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
     scale = np.where(np.isnan(fixed), scale, fixed)
@@ -491,12 +491,32 @@ def constant_columns(center: np.ndarray, sd: np.ndarray) -> np.ndarray:
     return ~(sd > CONSTANT_ULPS * np.finfo(np.float64).eps * magnitude)
 
 
-def nothing_to_segment_on(columns: Sequence[str], constant: np.ndarray, weights: np.ndarray) -> str:
-    """Why every column carries weight 0."""
+def constant_names(columns: Sequence[str], constant: np.ndarray, indicator_groups: Sequence[np.ndarray] = ()) -> list[str]:
+    """The constant columns as a user named them: a categorical column with a single category (or only
+    NULLs) once, as "COLUMN (one category)", not as each of its indicators."""
+    return user_names(columns, constant, indicator_groups, " (one category)")
+
+
+def user_names(columns: Sequence[str], flags: np.ndarray, indicator_groups: Sequence[np.ndarray], note: str = "") -> list[str]:
+    """The flagged columns, a categorical column whose indicators are all flagged named once (with ``note``)."""
+    names = {j: c for j, (c, flag) in enumerate(zip(columns, flags)) if flag}
+    for pos in indicator_groups:
+        if len(pos) and all(int(j) in names for j in pos):
+            other = columns[pos[-2]] if len(pos) >= 2 else columns[pos[0]]
+            column = other[: -len("=(other)")] if other.endswith("=(other)") else other
+            for j in pos[1:]:
+                del names[int(j)]
+            names[int(pos[0])] = f"{column}{note}"
+    return [names[j] for j in sorted(names)]
+
+
+def nothing_to_segment_on(columns: Sequence[str], constant: np.ndarray, weights: np.ndarray,
+                          indicator_groups: Sequence[np.ndarray] = ()) -> str:
+    """Why every column carries weight 0, naming a categorical column once (not each indicator)."""
     if not (weights > 0).any():
         return "every weight is 0: at least one column needs a weight above 0"
-    zero = [c for c, w in zip(columns, weights) if not w > 0]
-    const = [c for c, flag in zip(columns, constant) if flag]
+    zero = user_names(columns, ~(weights > 0) & ~constant, indicator_groups)
+    const = constant_names(columns, constant, indicator_groups)
     why = f"constant column(s) {', '.join(const)}" + (f" and weight 0 on {', '.join(zero)}" if zero else "")
     return f"nothing to segment on: {why}; every row would fall in one segment"
 
@@ -1008,6 +1028,20 @@ def numeric_positions(d: int, groups: Sequence[np.ndarray]) -> np.ndarray:
     return np.flatnonzero(numeric)
 
 
+def cells_statement_with_codes(
+    source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str], target: Any
+) -> tuple[Any, Grid, np.ndarray]:
+    """The cell statement of a run with categorical columns (keyed by the numeric grid and each column's
+    code), the grid on the numeric columns alone, and those columns' positions."""
+    num_idx = numeric_positions(len(columns), groups)
+    center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
+    # the grid on the numeric columns alone (none: no key but the codes)
+    sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
+               axes=tuple(tuple(r) for r in np.asarray(grid.axes)[num_idx]) if len(num_idx) else None, sums_scaled=True)
+    statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, target, extra_keys=code_names)
+    return statement, sub, num_idx
+
+
 def run_cell_pass_with_codes(
     engine: Engine, source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str]
 ) -> CellPass:
@@ -1016,12 +1050,8 @@ def run_cell_pass_with_codes(
     indicators, so their sums follow exactly from the cell's count (``categorical.indicator_cells``)."""
     t0 = time.perf_counter()
     d = len(columns)
-    num_idx = numeric_positions(d, groups)
+    statement, sub, num_idx = cells_statement_with_codes(source, columns, grid, groups, code_names, engine.target)
     center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
-    # the grid on the numeric columns alone (none: no key but the codes)
-    sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
-               axes=tuple(tuple(r) for r in np.asarray(grid.axes)[num_idx]) if len(num_idx) else None, sums_scaled=True)
-    statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, engine.target, extra_keys=code_names)
     got = engine.query(statement)
     names = sub.key_names()
     n_all = np.asarray(got["n"], dtype=np.float64)

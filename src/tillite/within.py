@@ -47,7 +47,10 @@ def _quiet(stage: str, message: str) -> None:
 
 
 def group_name(value: str | None) -> str:
-    return NULL_GROUP_NAME if value is None else value
+    """The NULL group is NULL; a text value 'NULL' is shown quoted, so the two read apart."""
+    if value is None:
+        return NULL_GROUP_NAME
+    return f"'{value}'" if value == NULL_GROUP_NAME else value
 
 
 def _part_value(key: str) -> str | None:
@@ -525,7 +528,7 @@ def label_within_select(engine: Engine, source: Source, model: Model, source_col
     if model.within["column"] not in source_columns:
         raise SourceError(f"--within column {model.within['column']} of the model not found in {source.label}")
     assign = model_assignment(model)
-    unknown = int(engine.query(within_sql.unknown_groups_statement(source, assign, engine.target))["n"][0])
+    unknown = int(engine.query(within_sql.unknown_groups_statement(source, assign, engine.target, model.columns))["n"][0])
     if unknown:
         warnings.warn(f"{unknown:,} row(s) of {source.label} are in {model.within['column']} groups the model does not know "
                       "(values that appeared after it was built): labelled NULL", UserWarning, stacklevel=3)

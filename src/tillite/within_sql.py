@@ -200,13 +200,17 @@ def label_select(
     ).from_(sqlgen.subquery(inner, internal("d")))
 
 
-def unknown_groups_statement(source: Source, assign: GroupAssignment, target: TargetLike) -> exp.Select:
-    """Rows whose group the model does not know (a value that appeared after the build): count n."""
+def unknown_groups_statement(source: Source, assign: GroupAssignment, target: TargetLike,
+                             columns: Sequence[str] = ()) -> exp.Select:
+    """Rows whose group the model does not know (a value that appeared after the build): count n.
+    With ``columns``, only rows whose values there are all finite (the others are skipped in any group)."""
+    unknown = exp.Is(this=col(internal("wgid"), PARAMS_ALIAS), expression=exp.Null())
+    finite = [sqlgen.is_finite(exp.cast(col(c), exp.DataType.build("DOUBLE")), target) for c in columns]
     return (
         exp.select(exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True))
         .from_(_aliased_source(source))
         .join(params_relation(assign, target), on=_same_group(assign.column), join_type="LEFT")
-        .where(exp.Is(this=col(internal("wgid"), PARAMS_ALIAS), expression=exp.Null()))
+        .where(sqlgen.all_of([unknown, *finite]))
     )
 
 

@@ -36,7 +36,7 @@ def _example(definitions: list[M.MacroDefinition], model: Model | None) -> str:
     """One line showing how to call what was installed."""
     if model is None:
         return "try: SELECT * FROM tillite_profile('my_table', ['col_a', 'col_b']);"
-    call = f"{M.identifier(definitions[0].name).text}({M.identifiers(model.input_columns()).text})"
+    call = f"{M.identifier(definitions[0].name).text}({M.identifiers(M.scoring_arguments(model)).text})"
     return f"try: SELECT *, {call} AS segment FROM my_table;"
 
 

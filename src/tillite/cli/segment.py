@@ -207,6 +207,13 @@ def _model_source(src, model, target):
     return with_indicators(src, specs_of(model.categorical), target)
 
 
+def _within_partition(model):
+    """A --within model's cell pass groups by (group, cell), as `segment --within` runs it."""
+    if model is None or not model.within:
+        return None
+    return sqlgen.Partitioning.of_columns([model.within["column"]])
+
+
 def _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget):
     from ..stages import grid_for_profile
 
@@ -219,7 +226,14 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, target, c
             settings = Settings(k=1, cell_budget=cell_budget)
             settings.check(cols)
             grid = grid_for_profile(run_profile(engine, src, cols, settings), settings)
-        return [sqlgen.cells_statement(src, cols, grid, target)]
+        if model is not None and model.categorical:  # keyed by the numeric grid and each category, as segment runs it
+            from ..categorical import code_names, indicator_positions, specs_of
+            from ..stages import cells_statement_with_codes
+
+            specs = specs_of(model.categorical)
+            statement, _, _ = cells_statement_with_codes(src, cols, grid, indicator_positions(cols, specs), code_names(specs), target)
+            return [statement]
+        return [sqlgen.cells_statement(src, cols, grid, target, partition=_within_partition(model))]
     if model is None:
         raise click.UsageError(f"--stage {stage} needs --model")
     model.refuse_within(f"tillite sql --stage {stage}")

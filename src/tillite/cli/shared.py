@@ -199,6 +199,10 @@ def _click_type(p: Parameter) -> Any:
     return {"int": int, "float": float}.get(p.kind, str)
 
 
+#: Settings options given more than once add up (each also comma-separated), instead of the last one winning.
+REPEATABLE_OPTIONS = frozenset({"categorical"})
+
+
 def parameter_option(name: str, **override: Any) -> Callable:
     """The click option of one row of the parameter table (settings or refresh); ``override``
     replaces what a command needs differently (its own help text, default or type)."""
@@ -214,6 +218,8 @@ def parameter_option(name: str, **override: Any) -> Callable:
         kw = {"type": _click_type(p), "default": None}
     else:  # parsed by settings_from_options (--k, --weights)
         kw = {"type": str, "default": None}
+    if name in REPEATABLE_OPTIONS:
+        kw = {"type": str, "multiple": True}
     return click.option(*names, **{**kw, "help": p.help, **override})
 
 
@@ -231,5 +237,5 @@ def settings_from_options(**kw: Any) -> Settings:
     k_value, candidates = parse_k(k_text)
     if kw.get("method", "kmeans") != "density" and k_text is None:
         raise click.UsageError("give --k (a number, 'auto' or a range like 2..12)")
-    categorical = tuple(split_columns((kw.pop("categorical", None) or "",)))
+    categorical = tuple(split_columns(tuple(kw.pop("categorical", None) or ())))
     return Settings(k=k_value, k_candidates=candidates, weights=parse_weights(kw.pop("weights")), categorical=categorical, **kw)
