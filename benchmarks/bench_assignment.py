@@ -143,8 +143,8 @@ def postgres_run(rows: int, cols: int, ks: list[int]) -> None:
     server = start_postgres()
     try:
         rng = np.random.default_rng(3)
-        centres = rng.uniform(-10, 10, (8, cols))
-        x = centres[rng.integers(0, 8, rows)] + rng.normal(0, 1.5, (rows, cols))
+        centers = rng.uniform(-10, 10, (8, cols))
+        x = centers[rng.integers(0, 8, rows)] + rng.normal(0, 1.5, (rows, cols))
         names = [f"c{j}" for j in range(cols)]
         with psycopg.connect(server.conninfo, autocommit=True) as con:
             con.execute("CREATE TABLE blobs (" + ", ".join(f"{c} DOUBLE PRECISION" for c in names) + ")")

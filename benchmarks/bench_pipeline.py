@@ -28,14 +28,14 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 
 
-def build(db: Path, rows: int, cols: int, centres: int, seed: int) -> None:
+def build(db: Path, rows: int, cols: int, centers: int, seed: int) -> None:
     """Blob data (scikit-learn make_blobs) in a DuckDB file, built in chunks."""
     import duckdb
     import numpy as np
     from sklearn.datasets import make_blobs
 
     rng = np.random.default_rng(seed)
-    centers = rng.uniform(-10, 10, size=(centres, cols))
+    centers = rng.uniform(-10, 10, size=(centers, cols))
     con = duckdb.connect(str(db))
     names = [f"c{j}" for j in range(cols)]
     con.execute("CREATE TABLE blobs (" + ", ".join(f"{n} DOUBLE" for n in names) + ")")

@@ -59,25 +59,25 @@ def load_old():
 def grid_pattern(seed):
     rng = np.random.default_rng(seed)
     g = np.arange(10) * 4 * np.sqrt(2)
-    centres = np.array([(a, b) for a in g for b in g])
+    centers = np.array([(a, b) for a in g for b in g])
     truth = np.repeat(np.arange(100), 1000)
-    return centres[truth] + rng.normal(size=(truth.size, 2)), centres
+    return centers[truth] + rng.normal(size=(truth.size, 2)), centers
 
 
 def random_pattern(seed):
     rng = np.random.default_rng(seed)
-    centres = rng.uniform(0, 40 * np.sqrt(2), size=(100, 2))
+    centers = rng.uniform(0, 40 * np.sqrt(2), size=(100, 2))
     radius = rng.uniform(0, 4, 100)
     truth = np.repeat(np.arange(100), rng.integers(0, 2001, 100))
-    return centres[truth] + rng.normal(size=(truth.size, 2)) * (radius[truth] / np.sqrt(2))[:, None], centres
+    return centers[truth] + rng.normal(size=(truth.size, 2)) * (radius[truth] / np.sqrt(2))[:, None], centers
 
 
 def wide_pattern(seed, rows=300_000, cols=8, comps=12):
     rng = np.random.default_rng(seed)
-    centres = rng.normal(scale=3.0, size=(comps, cols))
+    centers = rng.normal(scale=3.0, size=(comps, cols))
     truth = rng.choice(comps, size=rows, p=rng.dirichlet(np.ones(comps)))
     mix = rng.normal(size=(comps, cols, cols)) * 0.6
-    return centres[truth] + np.einsum("ij,ijk->ik", rng.normal(size=(rows, cols)), mix[truth])
+    return centers[truth] + np.einsum("ij,ijk->ik", rng.normal(size=(rows, cols)), mix[truth])
 
 
 def cells_of(x, budget):
@@ -95,18 +95,18 @@ def cells_of(x, budget):
     return F.from_groups(u, cell.reshape(-1)), u
 
 
-def sse_at(u, centres):
-    return sum(float(((u[lo:lo + 10_000, None, :] - centres[None]) ** 2).sum(axis=2).min(axis=1).sum())
+def sse_at(u, centers):
+    return sum(float(((u[lo:lo + 10_000, None, :] - centers[None]) ** 2).sum(axis=2).min(axis=1).sum())
                for lo in range(0, len(u), 10_000))
 
 
-def refined(u, centres, passes=3):
+def refined(u, centers, passes=3):
     """SSE after the pipeline's default three refine passes (Lloyd steps on the rows, in numpy)."""
     for _ in range(passes):
-        near = np.concatenate([((u[lo:lo + 10_000, None, :] - centres[None]) ** 2).sum(axis=2).argmin(axis=1)
+        near = np.concatenate([((u[lo:lo + 10_000, None, :] - centers[None]) ** 2).sum(axis=2).argmin(axis=1)
                                for lo in range(0, len(u), 10_000)])
-        centres = np.array([u[near == j].mean(axis=0) if (near == j).any() else centres[j] for j in range(len(centres))])
-    return sse_at(u, centres)
+        centers = np.array([u[near == j].mean(axis=0) if (near == j).any() else centers[j] for j in range(len(centers))])
+    return sse_at(u, centers)
 
 
 def timed(fn, *args, **kwargs):
@@ -126,9 +126,9 @@ def line(target, measured):
 def issue_15(old, seeds):
     print("Issue 15: k = 100 on the BIRCH patterns (data seed 0; second-phase seeds 0..%d)" % (seeds - 1))
     for name, maker in (("grid", grid_pattern), ("random", random_pattern)):
-        x, centres = maker(0)
+        x, centers = maker(0)
         cells, u = cells_of(x, 17_000)
-        gen = sse_at(u, (centres - x.mean(axis=0)) / x.std(axis=0))
+        gen = sse_at(u, (centers - x.mean(axis=0)) / x.std(axis=0))
         inertia = KMeans(n_clusters=100, n_init=3, random_state=0).fit(u).inertia_
         print(f" {name}: {cells.m:,} cells; SSE at generating centres {gen:.6g}; scikit-learn KMeans(n_init=3) on rows {inertia:.6g}")
         for label, mod in (("old", old), ("new", new)):

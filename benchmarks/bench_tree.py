@@ -36,10 +36,10 @@ def cells(count: int, cols: int, group: int, seed: int, spread: float = 0.05) ->
     +-``spread`` (standardised units) of its centre, like the rows of one grid cell.
     """
     rng = np.random.default_rng(seed)
-    centre, _ = make_blobs(n_samples=count, n_features=cols, centers=10, cluster_std=1.0,
+    center, _ = make_blobs(n_samples=count, n_features=cols, centers=10, cluster_std=1.0,
                            center_box=(-10, 10), random_state=seed)
-    centre = (centre - centre.mean(axis=0)) / centre.std(axis=0)
-    x = np.repeat(centre, group, axis=0) + rng.uniform(-spread, spread, size=(count * group, cols))
+    center = (center - center.mean(axis=0)) / center.std(axis=0)
+    x = np.repeat(center, group, axis=0) + rng.uniform(-spread, spread, size=(count * group, cols))
     return F.from_groups(x, np.repeat(np.arange(count), group), count)
 
 

@@ -245,8 +245,8 @@ def grouped_blobs(spec: dict, n_features: int = 3, seed: int = 0) -> dict[str, n
     """Columns a, b, c, ... and ``grp``: per group value (None: NULL) scikit-learn make_blobs with
     (rows, centres, shift, scale) from ``spec``; ``truth`` holds the generating blob per row."""
     cols, groups, truth = [], [], []
-    for i, (value, (rows, centres, shift, scale)) in enumerate(spec.items()):
-        x, y = make_blobs(n_samples=rows, centers=centres, n_features=n_features, cluster_std=0.5, center_box=(-10, 10),
+    for i, (value, (rows, centers, shift, scale)) in enumerate(spec.items()):
+        x, y = make_blobs(n_samples=rows, centers=centers, n_features=n_features, cluster_std=0.5, center_box=(-10, 10),
                           random_state=seed + i)
         cols.append(x * scale + shift)
         groups += [value] * rows

@@ -199,13 +199,13 @@ def test_ward_cost_matches_scipy_ward_linkage_merge_heights(blobs_600_4d_5c):
         cfs = F.concat(cfs, F.merge(cfs[i], cfs[j]))
 
 
-def test_assignment_cost_matches_brute_force_squared_distances_to_centres(blobs_600_4d_5c, weights):
+def test_assignment_cost_matches_brute_force_squared_distances_to_centers(blobs_600_4d_5c, weights):
     x, y = blobs_600_4d_5c
-    centres = np.random.default_rng(9).normal(scale=5.0, size=(6, 4))
-    xs, cs = _scaled(x, weights), _scaled(centres, weights)
+    centers = np.random.default_rng(9).normal(scale=5.0, size=(6, 4))
+    xs, cs = _scaled(x, weights), _scaled(centers, weights)
     # brute force: sum over the entry's points of ||x - c||^2, via scipy cdist
     want = np.array([cdist(xs[y == g], cs, "sqeuclidean").sum(0) for g in range(5)])
-    got = F.assignment_cost(F.from_groups(x, y), centres, weights)
+    got = F.assignment_cost(F.from_groups(x, y), centers, weights)
     np.testing.assert_allclose(got, want, rtol=RTOL)
 
 
@@ -253,13 +253,13 @@ def test_scatter_of_data_near_1e9_after_centring_matches_unshifted():
     y = rng.integers(0, 4, size=2000)
     raw = x0 + 1e9  # spread ~1 around 1e9 (timestamps, coordinates)
     shift = raw[:100].mean(axis=0)  # a profile's sample mean, as the SQL stage would use
-    centred = F.from_groups(raw - shift, y, 4)
+    centered = F.from_groups(raw - shift, y, 4)
     # move to exact centring and sample-sd scaling with affine, offsets small by construction
     sd = (raw[:100] - shift).std(axis=0)
-    exact_mean = F.centroids(F.total(centred))[0]
-    moved = F.affine(centred, 1.0 / sd, -exact_mean / sd)
+    exact_mean = F.centroids(F.total(centered))[0]
+    moved = F.affine(centered, 1.0 / sd, -exact_mean / sd)
     want = np.array([((x0[y == g] - x0[y == g].mean(0)) ** 2).sum() for g in range(4)])  # numpy, unshifted
-    np.testing.assert_allclose(F.scatter(centred), want, rtol=1e-6)
+    np.testing.assert_allclose(F.scatter(centered), want, rtol=1e-6)
     np.testing.assert_allclose(F.scatter(moved, sd), want, rtol=1e-6)  # weights sd undo the scaling
     np.testing.assert_allclose(F.total(moved).ls, 0.0, atol=1e-6)
     # why centring is required: raw square sums at 1e9 lose the spread entirely

@@ -258,19 +258,19 @@ def _grid_pattern(seed):
     (standard deviation 1 per axis in two dimensions)."""
     rng = np.random.default_rng(seed)
     g = np.arange(10) * 4 * np.sqrt(2)
-    centres = np.array([(a, b) for a in g for b in g])
+    centers = np.array([(a, b) for a in g for b in g])
     truth = np.repeat(np.arange(100), 1000)
-    return centres[truth] + rng.normal(size=(truth.size, 2)), centres
+    return centers[truth] + rng.normal(size=(truth.size, 2)), centers
 
 
 def _random_pattern(seed):
     """The paper's third pattern (recalled from memory): 100 clusters, centres uniform in the grid
     pattern's square, radius uniform in [0, 4], sizes uniform in [0, 2000]."""
     rng = np.random.default_rng(seed)
-    centres = rng.uniform(0, 40 * np.sqrt(2), size=(100, 2))
+    centers = rng.uniform(0, 40 * np.sqrt(2), size=(100, 2))
     radius = rng.uniform(0, 4, 100)
     truth = np.repeat(np.arange(100), rng.integers(0, 2001, 100))
-    return centres[truth] + rng.normal(size=(truth.size, 2)) * (radius[truth] / np.sqrt(2))[:, None], centres
+    return centers[truth] + rng.normal(size=(truth.size, 2)) * (radius[truth] / np.sqrt(2))[:, None], centers
 
 
 def _cells_like_the_cell_pass(x, budget=17_000):
@@ -287,26 +287,26 @@ def _cells_like_the_cell_pass(x, budget=17_000):
     return F.from_groups(u, cell.reshape(-1)), u
 
 
-def _sse_at(u, centres):
+def _sse_at(u, centers):
     """numpy direct: every row to its nearest of the given centres."""
-    return sum(float(((u[lo:lo + 10_000, None, :] - centres[None]) ** 2).sum(axis=2).min(axis=1).sum())
+    return sum(float(((u[lo:lo + 10_000, None, :] - centers[None]) ** 2).sum(axis=2).min(axis=1).sum())
                for lo in range(0, len(u), 10_000))
 
 
-def _refined(u, centres, passes=3):
+def _refined(u, centers, passes=3):
     """The pipeline's refine passes (Lloyd steps on the rows), in numpy; the SSE after them."""
     for _ in range(passes):
-        near = ((u[:, None, :] - centres[None]) ** 2).sum(axis=2).argmin(axis=1)
-        centres = np.array([u[near == j].mean(axis=0) if (near == j).any() else centres[j]
-                            for j in range(len(centres))])
-    return _sse_at(u, centres)
+        near = ((u[:, None, :] - centers[None]) ** 2).sum(axis=2).argmin(axis=1)
+        centers = np.array([u[near == j].mean(axis=0) if (near == j).any() else centers[j]
+                            for j in range(len(centers))])
+    return _sse_at(u, centers)
 
 
 @pytest.fixture(scope="module", params=["grid", "random"])
 def hundred_clusters(request):
-    x, centres = (_grid_pattern if request.param == "grid" else _random_pattern)(0)
+    x, centers = (_grid_pattern if request.param == "grid" else _random_pattern)(0)
     cells, u = _cells_like_the_cell_pass(x)
-    at_generating = _sse_at(u, (centres - x.mean(axis=0)) / x.std(axis=0))
+    at_generating = _sse_at(u, (centers - x.mean(axis=0)) / x.std(axis=0))
     # scikit-learn KMeans(n_init=3) on the standardised rows: the issue's reference
     inertia = KMeans(n_clusters=100, n_init=3, random_state=0).fit(u).inertia_
     return request.param, cells, u, at_generating, inertia
@@ -329,9 +329,9 @@ def test_kmeans_at_k100_finds_the_generating_solution_for_nine_of_ten_seeds(hund
 
 
 def test_warm_start_with_two_clusters_merged_and_one_split_recovers_the_grid_pattern():
-    x, centres = _grid_pattern(1)
+    x, centers = _grid_pattern(1)
     cells, u = _cells_like_the_cell_pass(x, 8_000)
-    good = (centres - x.mean(axis=0)) / x.std(axis=0)
+    good = (centers - x.mean(axis=0)) / x.std(axis=0)
     bad = good.copy()
     bad[0] = (good[0] + good[1]) / 2  # one centre between two clusters ...
     bad[1] = good[55] + 0.05  # ... and two centres inside one: what refresh may start from
@@ -409,7 +409,7 @@ def test_ward_cut_of_weighted_entries_equals_scipy_on_centroids_repeated_by_coun
 
 
 # ------------------------------------------------ relocation splits, distinct restarts
-def test_split_of_every_segment_at_once_gains_the_numpy_sse_drop_of_its_two_centres(sixty):
+def test_split_of_every_segment_at_once_gains_the_numpy_sse_drop_of_its_two_centers(sixty):
     from tillite.segmenters import _split_all
 
     x, y = sixty

@@ -274,12 +274,12 @@ def ward_cost(a: CF, b: CF, weights: np.ndarray | None = None) -> np.ndarray:
     return na * nb / nn * _sq_centroid_gap(a, b, weights)
 
 
-def assignment_cost(cf: CF, centres: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
+def assignment_cost(cf: CF, centers: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
     """Cost of putting all points of each entry at each centre, matrix (m, k).
 
     sum_{x in entry} ||x - c||^2 = scatter + n ||centroid - c||^2.
     """
-    pts = CF(np.ones(len(centres)), np.asarray(centres, dtype=np.float64), np.asarray(centres, dtype=np.float64) ** 2)
+    pts = CF(np.ones(len(centers)), np.asarray(centers, dtype=np.float64), np.asarray(centers, dtype=np.float64) ** 2)
     return scatter(cf, weights)[:, None] + cf.n[:, None] * _sq_centroid_gap(cf, pts, weights)
 
 

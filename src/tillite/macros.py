@@ -241,7 +241,7 @@ def scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
     norm = assign.norm_coefficients()
     d, k = len(model.columns), len(model.centroids)
     v_names = [sqlgen.internal(f"v{j}") for j in range(d)]
-    v_exprs = {n: sqlgen.paren(e) for n, e in zip(v_names, sqlgen.centred(model.columns, model.center))}
+    v_exprs = {n: sqlgen.paren(e) for n, e in zip(v_names, sqlgen.centered(model.columns, model.center))}
     v_exprs.update(_indicator_values(model, v_names))
     scores = [_substitute(sqlgen.linear_form(v_names, a[i], b[i]), v_exprs) for i in range(k)]
     usable = _substitute(sqlgen.usable_rows(v_names, TARGET), v_exprs)

@@ -85,7 +85,7 @@ def kmeans_plus_plus(x: np.ndarray, w: np.ndarray, k: int, rng: np.random.Genera
     trials = 2 + int(np.log(k))
     xn = sq_norms(x)
     first = rng.choice(m, p=w / w.sum())
-    centres = [x[first]]
+    centers = [x[first]]
     closest = np.maximum(xn - 2.0 * x @ x[first] + xn[first], 0.0)
     for _ in range(1, k):
         pot = w * closest
@@ -104,9 +104,9 @@ def kmeans_plus_plus(x: np.ndarray, w: np.ndarray, k: int, rng: np.random.Genera
         np.minimum(dist, closest[None, :], out=dist)
         costs = dist @ w
         best = int(costs.argmin())
-        centres.append(x[cand[best]])
+        centers.append(x[cand[best]])
         closest = dist[best]
-    return np.array(centres)
+    return np.array(centers)
 
 
 # Lloyd iterations with Hamerly's bounds (Hamerly 2010, from memory): each cell keeps an
@@ -134,14 +134,14 @@ def _means(xw: np.ndarray, w: np.ndarray, labels: np.ndarray, k: int) -> tuple[n
     return mass, sums
 
 
-def _cost(x: np.ndarray, w: np.ndarray, centres: np.ndarray, labels: np.ndarray) -> float:
+def _cost(x: np.ndarray, w: np.ndarray, centers: np.ndarray, labels: np.ndarray) -> float:
     """Weighted SSE of the cells' centroids around their assigned centres (direct differences)."""
-    gap = x - centres[labels]
+    gap = x - centers[labels]
     return float(w @ np.einsum("ij,ij->i", gap, gap))
 
 
 def _lloyd(
-    x: np.ndarray, w: np.ndarray, centres: np.ndarray, max_iter: int, tol: float
+    x: np.ndarray, w: np.ndarray, centers: np.ndarray, max_iter: int, tol: float
 ) -> tuple[np.ndarray, np.ndarray, float, int]:
     """Weighted Lloyd iterations from the given centres, with Hamerly's bounds.
 
@@ -151,10 +151,10 @@ def _lloyd(
     iteration costs O(moved cells x k) plus a few O(cells) bound updates.
     Returns the centres (means of their cells), labels, cost and iterations.
     """
-    k = centres.shape[0]
+    k = centers.shape[0]
     xw = x * w[:, None]
     sq = w * sq_norms(x)
-    labels, upper, lower = _two_nearest(x, centres)
+    labels, upper, lower = _two_nearest(x, centers)
     mass, sums = _means(xw, w, labels, k)
     s2 = np.bincount(labels, weights=sq, minlength=k)
     cost = np.inf
@@ -165,8 +165,8 @@ def _lloyd(
             # reseat an empty centre on the cells that cost most, then assign afresh
             new = sums / np.where(mass > 0, mass, 1.0)[:, None]
             new[empty] = x[np.argsort(-(w * upper * upper))[: empty.size]]
-            centres = new
-            labels, upper, lower = _two_nearest(x, centres)
+            centers = new
+            labels, upper, lower = _two_nearest(x, centers)
             mass, sums = _means(xw, w, labels, k)
             s2 = np.bincount(labels, weights=sq, minlength=k)
             cost = np.inf
@@ -174,8 +174,8 @@ def _lloyd(
         new = sums / mass[:, None]
         # cost of the current labels around their means, from the per-segment sums (a stopping test only)
         new_cost = float((s2 - sq_norms(sums) / mass).sum())
-        drift = np.sqrt(sq_norms(new - centres))
-        centres = new
+        drift = np.sqrt(sq_norms(new - centers))
+        centers = new
         if cost - new_cost <= tol * abs(new_cost):
             break
         cost = new_cost
@@ -186,19 +186,19 @@ def _lloyd(
             if d1 < d2:
                 top, d1, d2 = top[::-1], d2, d1
             lower -= np.where(labels == top[0], d2, d1)
-            gaps = sq_distances(centres, centres)
+            gaps = sq_distances(centers, centers)
             np.fill_diagonal(gaps, np.inf)
             bound = np.maximum(lower, 0.5 * np.sqrt(gaps.min(axis=1))[labels])
         else:
             bound = np.full(len(x), np.inf)
         check = np.flatnonzero(upper > bound)
         if check.size:
-            gap = x[check] - centres[labels[check]]
+            gap = x[check] - centers[labels[check]]
             upper[check] = np.sqrt(np.einsum("ij,ij->i", gap, gap))
             check = check[upper[check] > bound[check]]
         if check.size == 0:
             break
-        lab, up, low = _two_nearest(x[check], centres)
+        lab, up, low = _two_nearest(x[check], centers)
         upper[check], lower[check] = up, low
         moved = lab != labels[check]
         if not moved.any():
@@ -211,8 +211,8 @@ def _lloyd(
             for j in range(x.shape[1]):  # loop over columns, not cells
                 sums[:, j] += sign * np.bincount(grp, weights=xw[idx, j], minlength=k)
     mass, sums = _means(xw, w, labels, k)
-    centres = np.where(mass[:, None] > 0, sums / np.where(mass > 0, mass, 1.0)[:, None], centres)
-    return centres, labels, _cost(x, w, centres, labels), it
+    centers = np.where(mass[:, None] > 0, sums / np.where(mass > 0, mass, 1.0)[:, None], centers)
+    return centers, labels, _cost(x, w, centers, labels), it
 
 def _split_all(x: np.ndarray, w: np.ndarray, labels: np.ndarray, k: int, rounds: int = 4
                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -318,7 +318,7 @@ RELOCATE_MOVES = 200  # at most this many accepted moves
 
 
 def _relocate(
-    x: np.ndarray, w: np.ndarray, centres: np.ndarray, labels: np.ndarray, cost: float, max_iter: int,
+    x: np.ndarray, w: np.ndarray, centers: np.ndarray, labels: np.ndarray, cost: float, max_iter: int,
     tick: Callable[[str], None],
 ) -> tuple[np.ndarray, np.ndarray, float, int]:
     """Move centres from where they are least needed to where they are most needed.
@@ -330,13 +330,13 @@ def _relocate(
     kept only when the exact cost drops.  Repeated until no tried move helps.
     Returns centres, labels, cost and the number of accepted moves.
     """
-    k = centres.shape[0]
+    k = centers.shape[0]
     if k < 3:
-        return centres, labels, cost, 0
+        return centers, labels, cost, 0
     accepted = 0
     while accepted < RELOCATE_MOVES:
         mass = np.bincount(labels, weights=w, minlength=k)
-        gaps = sq_distances(centres, centres)
+        gaps = sq_distances(centers, centers)
         merge = mass[:, None] * mass[None, :] / np.maximum(mass[:, None] + mass[None, :], 1e-300) * gaps
         merge[np.tril_indices(k)] = np.inf
         gain, split_a, split_b = _splits(x, w, labels, k)
@@ -352,12 +352,12 @@ def _relocate(
                 if gain[c] <= price or tried >= RELOCATE_SPLITS:
                     break
                 tried += 1
-                trial = centres.copy()
-                trial[a] = (mass[a] * centres[a] + mass[b] * centres[b]) / (mass[a] + mass[b])
+                trial = centers.copy()
+                trial[a] = (mass[a] * centers[a] + mass[b] * centers[b]) / (mass[a] + mass[b])
                 trial[b], trial[c] = split_a[c], split_b[c]
                 got = _lloyd(x, w, trial, max_iter, 0.0)
                 if got[2] < cost * (1.0 - 1e-12):
-                    centres, labels, cost = got[0], got[1], got[2]
+                    centers, labels, cost = got[0], got[1], got[2]
                     better = True
                     break
             if better:
@@ -366,7 +366,7 @@ def _relocate(
             break
         accepted += 1
         tick(f"relocation move {accepted}: cell SSE {cost:.6g}")
-    return centres, labels, cost, accepted
+    return centers, labels, cost, accepted
 
 
 BRIEF_ITER = 5  # Lloyd iterations given to each restart before the best is finished
@@ -465,7 +465,7 @@ def _kmeans(cells: CF, k: int, weights: np.ndarray | None, n_init: int, max_iter
         brief.sort(key=lambda got: got[2])
         finish = len(brief) if len(x) * k <= FINISH_ALL_BELOW else FINISH
         starts = [got[0] for got in _distinct(brief[:finish])]
-    finished = sorted((_lloyd(x, mass, centres, max_iter, tol) for centres in starts), key=lambda got: got[2])
+    finished = sorted((_lloyd(x, mass, centers, max_iter, tol) for centers in starts), key=lambda got: got[2])
     best: tuple[np.ndarray, np.ndarray, float, int] = finished[0]
     moves = 0
     small = len(x) * k <= FINISH_ALL_BELOW

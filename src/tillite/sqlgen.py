@@ -318,7 +318,7 @@ def subquery(select: exp.Select, alias: str) -> exp.Subquery:
     return exp.Subquery(this=select, alias=exp.TableAlias(this=exp.to_identifier(alias, quoted=True)))
 
 
-def centred(columns: Sequence[str], center: Sequence[float]) -> list[exp.Expression]:
+def centered(columns: Sequence[str], center: Sequence[float]) -> list[exp.Expression]:
     """CAST(x AS DOUBLE) - center for each column.
 
     Sums are taken on centred values so nothing cancels (values near 1e9 with a
@@ -538,7 +538,7 @@ def cells_statement(
     v = [internal(f"v{j}") for j in range(d)]
     parts = partition.projected() if partition is not None else []
     parts += [exp.alias_(col(name), f"q{i}", quoted=True) for i, name in enumerate(extra_keys)]
-    stage1 = exp.select(*parts, *[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, grid.center), v)]).from_(
+    stage1 = exp.select(*parts, *[exp.alias_(e, n, quoted=True) for e, n in zip(centered(columns, grid.center), v)]).from_(
         source.relation()
     )
     if where is not None:
@@ -975,8 +975,8 @@ def _assignment_layers(
     stage1 = exp.select(
         *src_cols,
         *[exp.alias_(col(lk.code), q, quoted=True) for lk, q in zip(lookups, codes)],
-        *[exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, assign.center), v)],
-        *([exp.alias_(e, n, quoted=True) for e, n in zip(centred(columns, cell_map.grid.center), grid_v)] if cell_map else []),
+        *[exp.alias_(e, n, quoted=True) for e, n in zip(centered(columns, assign.center), v)],
+        *([exp.alias_(e, n, quoted=True) for e, n in zip(centered(columns, cell_map.grid.center), grid_v)] if cell_map else []),
     ).from_(source.relation())
     a, b = assign.score_coefficients()
     passthrough = [exp.Star()] if keep_source else [col(n) for n in codes + v + grid_v]

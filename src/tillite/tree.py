@@ -678,9 +678,9 @@ def condense(cells: CF, *, threshold: float | None = None, branching: int = 50, 
         raise ValueError(f"{w.shape[0]} weights for {cells.d} columns")
     rng = np.random.default_rng(seed)
     tot = F.total(cells[cells.n > 0])
-    centre = tot.ls[0] / tot.n[0] if tot.n[0] > 0 else np.zeros(cells.d)
+    center = tot.ls[0] / tot.n[0] if tot.n[0] > 0 else np.zeros(cells.d)
     # centred on the overall mean so that the distance expansions do not cancel
-    x_all = (F.centroids(cells) - centre[None, :]) * w[None, :]
+    x_all = (F.centroids(cells) - center[None, :]) * w[None, :]
     s_all = F.scatter(cells, w)
     order = rng.permutation(np.flatnonzero(cells.n > 0))
     n, x, s = cells.n[order], x_all[order], s_all[order]
@@ -690,7 +690,7 @@ def condense(cells: CF, *, threshold: float | None = None, branching: int = 50, 
         threshold = starting_threshold(n, x, s, budget, criterion, rng)
 
     def fresh(t: float) -> CFTree:
-        return CFTree(cells.d, t, branching, leaf_capacity, criterion, scale, n_scale, centre * w)
+        return CFTree(cells.d, t, branching, leaf_capacity, criterion, scale, n_scale, center * w)
 
     tree = fresh(threshold)
     assign = np.full(order.shape[0], -1, dtype=np.int64)

@@ -130,11 +130,11 @@ def assignment_layers(
     v = [internal(f"v{j}") for j in range(d)]
     gid = internal("gid")
     src_cols = [exp.Column(this=exp.Star(), table=exp.to_identifier(SOURCE_ALIAS, quoted=True))] if keep_source else []
-    centred = [exp.Sub(this=sqlgen.to_double(col(c, SOURCE_ALIAS)), expression=col(cn, PARAMS_ALIAS)) for c, cn in zip(columns, names["c"])]
+    centered = [exp.Sub(this=sqlgen.to_double(col(c, SOURCE_ALIAS)), expression=col(cn, PARAMS_ALIAS)) for c, cn in zip(columns, names["c"])]
     carried = [*names["f"], *[n for row in names["a"] for n in row], *names["b"]]
     stage1 = (
         exp.select(*src_cols, exp.alias_(col(internal("wgid"), PARAMS_ALIAS), gid, quoted=True),
-                   *[exp.alias_(e, n, quoted=True) for e, n in zip(centred, v)],
+                   *[exp.alias_(e, n, quoted=True) for e, n in zip(centered, v)],
                    *[col(n, PARAMS_ALIAS) for n in carried])
         .from_(_aliased_source(source))
         .join(params_relation(assign, target), on=_same_group(assign.column), join_type="INNER" if only_listed else "LEFT")
