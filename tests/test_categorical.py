@@ -258,9 +258,11 @@ def test_a_damaged_categorical_field_in_the_model_file_is_one_error_line(mixed_d
             "macros": ["macros", "install", tmp_path / "m.duckdb", "--model", bad, "--name", "w"]}[command]
     if command == "macros":
         duckdb.connect(str(tmp_path / "m.duckdb")).close()
-    if command == "show" and what == "bad-type":
-        pytest.skip("show writes no SQL, so it does not read the type; the commands that write SQL refuse it")
     res = CliRunner().invoke(main, [str(a) for a in args])
+    if command == "show" and what == "bad-type":
+        # show writes no SQL, so it never reads the type: it prints the model; the commands that write SQL refuse it
+        assert res.exit_code == 0 and "district" in res.stdout, res.output
+        return
     assert_one_error_line(res, *needles)
 
 

@@ -367,8 +367,6 @@ def _damage_within(d: dict, what: str) -> None:
 @pytest.mark.parametrize("command", ["show", "label", "macros"])
 def test_a_damaged_within_model_file_is_one_error_line_in_show_label_and_macros(within_db, within_model, tmp_path,
                                                                                  what, needles, command):
-    if command == "show" and what == "bad-type":
-        pytest.skip("show writes no SQL, so it does not read the type; the commands that write SQL refuse it")
     d = within_model.to_dict()
     _damage_within(d, what)
     bad = tmp_path / "bad.json"
@@ -377,7 +375,12 @@ def test_a_damaged_within_model_file_is_one_error_line_in_show_label_and_macros(
     duckdb.connect(str(db)).close()
     args = {"show": ["show", bad], "label": ["label", within_db, "-t", "meters", "--model", bad, "--into", "v", "-q"],
             "macros": ["macros", "install", db, "--model", bad, "--name", "w"]}[command]
-    assert_one_error_line(run(*args), *needles)
+    res = run(*args)
+    if command == "show" and what == "bad-type":
+        # show writes no SQL, so it never reads the type: it lists the groups; the commands that write SQL refuse it
+        assert res.exit_code == 0 and "grp" in res.stdout, res.output
+        return
+    assert_one_error_line(res, *needles)
 
 
 @pytest.mark.parametrize("group_sql", ["DATE '2026-01-01' + CAST(truth AS INTEGER)", "CAST(truth AS DOUBLE) / 3", "truth > 1",
