@@ -222,6 +222,12 @@ def test_bad_repeated_or_weighted_categorical_is_one_error_line_in_cli_words(mix
     assert not any(mark in line for mark in "{}[]"), line  # no Python dict or list in the message
 
 
+@pytest.mark.parametrize("value", ["", " , "], ids=["empty", "commas-only"])
+def test_categorical_without_column_names_is_a_usage_error_not_ignored(mixed_db, value):
+    res = CliRunner().invoke(main, ["segment", str(mixed_db), "-t", "t", "-c", "a", "--k", "3", "-q", "--categorical", value])
+    assert_one_error_line(res, "--categorical", "column names", code=2)
+
+
 @pytest.mark.parametrize("values", [["north"] * 50, [None] * 50], ids=["one-value", "nulls-only"])
 def test_a_single_category_alone_is_one_error_line_naming_the_column_not_its_indicators(tmp_path, values):
     db = write_table(tmp_path / "one.duckdb", "t", {"a": np.arange(50.0), "district": np.array(values, dtype=object)})

@@ -415,3 +415,14 @@ def test_within_statements_render_and_parse_back_in_each_dialect(within_model, d
         text = sqlgen.render(statement, dialect)
         # reference: sqlglot's own parser for the dialect reads every statement back
         assert sqlglot.parse_one(text, read=dialect) is not None
+
+
+def test_show_of_a_model_with_one_group_says_one_group_in_the_singular(tmp_path):
+    rng = np.random.default_rng(5)
+    x = np.vstack([rng.normal(0, 0.3, (300, 2)), rng.normal(4, 0.3, (300, 2))])
+    db = write_table(tmp_path / "one.duckdb", "t", {"a": x[:, 0], "b": x[:, 1], "grp": np.array(["only"] * 600, dtype=object)})
+    path = tmp_path / "m.json"
+    assert run("segment", db, "-t", "t", "-c", "a,b", "--within", "grp", "--k", "2", "-o", path, "-q").exit_code == 0
+    out = run("show", path).stdout
+    assert "(1 group, 2 segments in all)" in out, out
+

@@ -635,7 +635,8 @@ def within_describe(model: Model) -> str:
     lines = [
         f"source: {model.source}",
         f"method: {model.method}, segments within each {model.within['column']} "
-        f"({len(groups)} groups, {segments} segments in all), scaling={model.scaling}",
+        f"({len(groups)} group{'' if len(groups) == 1 else 's'}, {segments} segment{'' if segments == 1 else 's'} in all), "
+        f"scaling={model.scaling}",
         f"rows: {model.rows:,} ({model.skipped:,} skipped for NULL/NaN/Inf)",
         f"SSE (row level, summed over the groups, each in its own {model.units()}): {model.sse:.6g}",
         "",

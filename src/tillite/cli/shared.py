@@ -237,5 +237,8 @@ def settings_from_options(**kw: Any) -> Settings:
     k_value, candidates = parse_k(k_text)
     if kw.get("method", "kmeans") != "density" and k_text is None:
         raise click.UsageError("give --k (a number, 'auto' or a range like 2..12)")
-    categorical = tuple(split_columns(tuple(kw.pop("categorical", None) or ())))
+    given = tuple(kw.pop("categorical", None) or ())
+    categorical = tuple(split_columns(given))
+    if given and not categorical:
+        raise click.BadParameter("give one or more column names, e.g. --categorical district", param_hint="--categorical")
     return Settings(k=k_value, k_candidates=candidates, weights=parse_weights(kw.pop("weights")), categorical=categorical, **kw)
