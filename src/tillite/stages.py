@@ -15,7 +15,7 @@ import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
-from typing import TYPE_CHECKING, Any, Callable, Iterator, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Iterator, Sequence, TypeVar
 
 import numpy as np
 
@@ -99,32 +99,64 @@ def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings
     an engine cannot promise that).
     """
     t0 = time.perf_counter()
+    rows = count_rows(engine, source)
+    d = len(columns)
+    target = settings.sample_rows
+    if rows > 2 * target and block_sample_pays(engine, source, min(100.0, 150.0 * target / rows)):
+        sample = _block_sample(engine, source, columns, 150.0 * target / rows, settings.seed, 4 * target)
+    else:
+        sample = seeded_sample(
+            engine, rows, settings,
+            lambda **kw: fetch_matrix(engine, sqlgen.sample_statement(source, columns, engine.target, **kw), d), len,
+        )
+    sample = canonical_sample(sample, target, settings.seed)
+    center, scale = center_and_scale(sample, settings.scaling)
+    repeats = sample_promise(engine, rows, settings)
+    return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
+
+
+def count_rows(engine: Engine, source: Source) -> int:
+    """The source's row count; a source without rows is an error naming it."""
     rows = int(engine.query(sqlgen.count_statement(source))["n"][0])
     if rows == 0:
         raise InputError(f"{source.label} has no rows")
-    d = len(columns)
+    return rows
+
+
+SampleT = TypeVar("SampleT")
+
+
+def seeded_sample(engine: Engine, rows: int, settings: Settings, fetch: Callable[..., SampleT],
+                  size: Callable[[SampleT], int]) -> SampleT:
+    """The profile's seeded sample drawn through ``fetch`` (which builds and runs the statement from
+    ``sample_statement``'s keywords): the whole table up to twice the sample size, else the engine's first
+    TABLESAMPLE method, and BERNOULLI when that brought back under a tenth of the sample (SYSTEM keeps
+    whole blocks, too few on a small table). ``size`` counts the rows a fetch brought back."""
     target = settings.sample_rows
     if rows <= 2 * target:
-        sample = fetch_matrix(engine, sqlgen.sample_statement(source, columns, engine.target), d)
-    elif block_sample_pays(engine, source, min(100.0, 150.0 * target / rows)):
-        sample = _block_sample(engine, source, columns, 150.0 * target / rows, settings.seed, 4 * target)
-    else:
-        percent = min(100.0, 150.0 * target / rows)
-        first = engine.target.first_sample_method
-        stmt = sqlgen.sample_statement(source, columns, engine.target, percent=percent, method=first,
-                                       limit=4 * target, seed=settings.seed)
-        sample = fetch_matrix(engine, stmt, d)
-        if len(sample) < target // 10 and first != "BERNOULLI":
-            stmt = sqlgen.sample_statement(source, columns, engine.target, percent=percent, method="BERNOULLI",
-                                           limit=4 * target, seed=settings.seed)
-            sample = fetch_matrix(engine, stmt, d)
-    sample = canonical_sample(sample, target, settings.seed)
+        return fetch()
+    percent = min(100.0, 150.0 * target / rows)
+    first = engine.target.first_sample_method
+    got = fetch(percent=percent, method=first, limit=4 * target, seed=settings.seed)
+    if size(got) < target // 10 and first != "BERNOULLI":
+        got = fetch(percent=percent, method="BERNOULLI", limit=4 * target, seed=settings.seed)
+    return got
+
+
+def center_and_scale(sample: np.ndarray, scaling: str) -> tuple[np.ndarray, np.ndarray]:
+    """The sample's per-column center and the grid's scale: its sd under zscore, else 1.
+
+    A column equal in every sampled row has only the mean's round-off as sd (1/sd may overflow): scale 1.
+    """
+    d = sample.shape[1]
     center, sd = robust_mean_sd(sample)
-    # a column equal in every sampled row has only the mean's round-off as sd (1/sd may overflow): scale 1
     flat = np.ptp(sample, axis=0) == 0 if len(sample) else np.ones(d, dtype=bool)
-    scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
-    repeats = "yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.target)
-    return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
+    return center, (np.where(flat, 1.0, sd) if scaling == "zscore" else np.ones(d))
+
+
+def sample_promise(engine: Engine, rows: int, settings: Settings) -> str:
+    """Whether the same data and seed give the same sample: always when the table is read whole."""
+    return "yes" if rows <= 2 * settings.sample_rows else sqlgen.sample_repeats(engine.target)
 
 
 #: The block sample is used while its block stage reads at most this share (percent) of the table.
@@ -937,9 +969,7 @@ def categorical_source(
     cat.check_categorical(columns, settings.categorical, described, source.label)
     if columns:
         check_columns(engine, source, columns)
-    rows = int(engine.query(sqlgen.count_statement(source))["n"][0])
-    if rows == 0:
-        raise InputError(f"{source.label} has no rows")
+    rows = count_rows(engine, source)
     p, target, texts = len(columns), settings.sample_rows, list(settings.categorical)
 
     def fetch(**kw: Any) -> tuple[np.ndarray, list[list[Any]]]:
@@ -950,14 +980,7 @@ def categorical_source(
                                                            null_mask(got[sqlgen.internal(f"t{i}")]))] for i in range(len(texts))]
         return (np.column_stack(x) if p else np.zeros((m, 0))), values
 
-    if rows <= 2 * target:
-        x, values = fetch()
-    else:
-        percent = min(100.0, 150.0 * target / rows)
-        first = engine.target.first_sample_method
-        x, values = fetch(percent=percent, method=first, limit=4 * target, seed=settings.seed)
-        if len(x) < target // 10 and first != "BERNOULLI":
-            x, values = fetch(percent=percent, method="BERNOULLI", limit=4 * target, seed=settings.seed)
+    x, values = seeded_sample(engine, rows, settings, fetch, lambda got: len(got[0]))
     taken = set(described)
     specs, codes = [], []
     for column, vals in zip(texts, values):
@@ -971,12 +994,10 @@ def categorical_source(
         codes.append([len(top) + 2 if v is None else position.get(v, len(top) + 1) for v in vals])
     sample = np.hstack([x, np.asarray(codes, dtype=np.float64).T.reshape(len(x), len(texts))])
     sample = canonical_sample(sample, target, settings.seed)
-    center, sd = robust_mean_sd(sample[:, :p])
-    flat = np.ptp(sample[:, :p], axis=0) == 0 if len(sample) else np.ones(p, dtype=bool)
-    scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(p)
+    center, scale = center_and_scale(sample[:, :p], settings.scaling)
     prof = Profile(rows=rows, sample=sample, center=np.concatenate([center, np.zeros(len(texts))]),
                    scale=np.concatenate([scale, np.ones(len(texts))]), seconds=time.perf_counter() - t0,
-                   repeats="yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.target))
+                   repeats=sample_promise(engine, rows, settings))
     return cat.with_indicators(source, specs, engine.target), specs, prof
 
 

@@ -25,8 +25,9 @@ from .errors import InputError, ParameterError
 from .features import CF
 from .model import Model
 from .stages import (
-    CellBoxes, Profile, ProgressFn, SegmentStats, Standardisation, canonical_sample,
-    check_columns, choose_width, grid_for_profile, robust_mean_sd, run_second_phase, size_order, standardise_cells,
+    CellBoxes, Profile, ProgressFn, SegmentStats, Standardisation, canonical_sample, center_and_scale,
+    check_columns, choose_width, count_rows, grid_for_profile, quiet_progress, run_second_phase, sample_promise,
+    seeded_sample, size_order, standardise_cells,
 )
 from .settings import Settings
 from .sqlgen import Grid, Partitioning, Source
@@ -40,10 +41,6 @@ MAX_GROUPS = 1_000
 
 #: How the NULL group is named in output.
 NULL_GROUP_NAME = "NULL"
-
-
-def _quiet(stage: str, message: str) -> None:
-    return None
 
 
 def group_name(value: str | None) -> str:
@@ -99,19 +96,13 @@ class GroupedProfile:
 def run_grouped_profile(engine: Engine, source: Source, columns: Sequence[str], within: str, settings: Settings) -> GroupedProfile:
     """``pipeline.run_profile`` with each sampled row's group: one sample for the grid of every group."""
     t0 = time.perf_counter()
-    rows = int(engine.query(sqlgen.count_statement(source))["n"][0])
-    if rows == 0:
-        raise InputError(f"{source.label} has no rows")
+    rows = count_rows(engine, source)
     d, target = len(columns), settings.sample_rows
-    if rows <= 2 * target:
-        got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.target))
-    else:
-        percent = min(100.0, 150.0 * target / rows)
-        first = engine.target.first_sample_method
-        got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.target, percent, first, settings.seed))
-        if len(got[within_sql.GROUP_TEXT]) < target // 10 and first != "BERNOULLI":
-            got = engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.target, percent, "BERNOULLI",
-                                                                   settings.seed))
+
+    def fetch(limit: int | None = None, **kw: Any) -> dict[str, Any]:  # no LIMIT: every sampled row keeps its group
+        return engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.target, **kw))
+
+    got = seeded_sample(engine, rows, settings, fetch, lambda g: len(g[within_sql.GROUP_TEXT]))
     texts = [None if t is None or (isinstance(t, float) and math.isnan(t)) else str(t)
              for t in np.ma.filled(np.asarray(got[within_sql.GROUP_TEXT], dtype=object), None)]
     values = sorted(set(texts), key=lambda t: (t is None, t or ""))
@@ -122,10 +113,8 @@ def run_grouped_profile(engine: Engine, source: Source, columns: Sequence[str], 
     codes = np.array([code[t] for t in texts], dtype=np.float64)
     both = canonical_sample(np.column_stack([codes, x]), target, settings.seed) if len(x) else np.zeros((0, d + 1))
     sample, groups = both[:, 1:], both[:, 0].astype(np.int64)
-    center, sd = robust_mean_sd(sample)
-    flat = np.ptp(sample, axis=0) == 0 if len(sample) else np.ones(d, dtype=bool)
-    scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(d)
-    repeats = "yes" if rows <= 2 * target else sqlgen.sample_repeats(engine.target)
+    center, scale = center_and_scale(sample, settings.scaling)
+    repeats = sample_promise(engine, rows, settings)
     prof = Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
     return GroupedProfile(prof, groups, values)
 
@@ -174,9 +163,7 @@ def own_grid_cells(engine: Engine, source: Source, columns: Sequence[str], withi
     sample = gp.profile.sample[gp.groups == code]
     if len(sample) < 2:
         return None
-    center, sd = robust_mean_sd(sample)
-    flat = np.ptp(sample, axis=0) == 0
-    scale = np.where(flat, 1.0, sd) if settings.scaling == "zscore" else np.ones(len(columns))
+    center, scale = center_and_scale(sample, settings.scaling)
     prof = Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=0.0)
     k = max(settings.k_candidates or (settings.k,))
     budget = max(settings.cell_budget // max(groups, 1), OWN_GRID_CELLS_PER_SEGMENT * k)
@@ -387,7 +374,7 @@ def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within
 
 
 def segment_within(engine: Engine, source: Source, columns: Sequence[str], settings: Settings,
-                   progress: ProgressFn = _quiet) -> Model:
+                   progress: ProgressFn = quiet_progress) -> Model:
     """Segment each group of ``settings.within`` separately, every group from one cell pass and one statement per
     refine pass."""
     columns, within = list(columns), settings.within
