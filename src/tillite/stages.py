@@ -439,17 +439,21 @@ def refine_result(
     about its new mean, lower by exactly n ||m - c||^2 (weighted)."""
     k = len(assign.centroids)
     dist = np.bincount(seg, weights=np.asarray(np.ma.getdata(got["dist"]), dtype=np.float64)[~null], minlength=k)
-    old = np.asarray(assign.centroids, dtype=np.float64)
+    assigned, updated = moved_to_means(n, ls_u, dist, np.asarray(assign.centroids, dtype=np.float64),
+                                       np.asarray(assign.weights, dtype=np.float64))
+    return RefineResult(assigned=assigned, updated=updated, skipped=int(round(n_all[null].sum())),
+                        seconds=time.perf_counter() - t0)
+
+
+def moved_to_means(n: np.ndarray, ls_u: np.ndarray, dist: np.ndarray, old: np.ndarray, weights: np.ndarray
+                   ) -> tuple[SegmentStats, SegmentStats]:
+    """A refine pass's segments at the centroids it assigned by (SSE: the summed distances) and at their
+    new means (an empty segment keeps its centroid): moving a centroid from c to its mean m lowers its
+    SSE by exactly n ||m - c||^2 (weighted)."""
     means = np.where(n[:, None] > 0, ls_u / np.where(n > 0, n, 1.0)[:, None], old)
-    w = np.asarray(assign.weights, dtype=np.float64)
-    shift = (((means - old) * w[None, :]) ** 2).sum(axis=1)
+    shift = (((means - old) * weights[None, :]) ** 2).sum(axis=1)
     dist = np.maximum(dist, 0.0)
-    return RefineResult(
-        assigned=SegmentStats(n, old, dist),
-        updated=SegmentStats(n, means, np.maximum(dist - n * shift, 0.0)),
-        skipped=int(round(n_all[null].sum())),
-        seconds=time.perf_counter() - t0,
-    )
+    return SegmentStats(n, old, dist), SegmentStats(n, means, np.maximum(dist - n * shift, 0.0))
 
 
 # ----------------------------------------------------------------------------- segment

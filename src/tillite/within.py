@@ -26,7 +26,7 @@ from .features import CF
 from .model import Model
 from .stages import (
     CellBoxes, Profile, ProgressFn, SegmentStats, Standardisation, canonical_sample, center_and_scale,
-    check_columns, choose_width, count_rows, grid_for_profile, quiet_progress, run_second_phase, sample_promise,
+    check_columns, choose_width, count_rows, grid_for_profile, moved_to_means, null_mask, quiet_progress, run_second_phase, sample_promise,
     seeded_sample, size_order, standardise_cells,
 )
 from .settings import Settings
@@ -297,11 +297,8 @@ def run_refine_pass(engine: Engine, source: Source, columns: Sequence[str], assi
     t0 = time.perf_counter()
     got = engine.query(within_sql.refine_statement(source, columns, assign, engine.target))
     d = len(columns)
-    seg_null = np.ma.getmaskarray(got["segment"]) if np.ma.isMaskedArray(got["segment"]) else np.isnan(np.asarray(got["segment"], dtype=np.float64))
-    gid_raw = got["gid"]
-    gid_null = np.ma.getmaskarray(gid_raw) if np.ma.isMaskedArray(gid_raw) else np.isnan(np.asarray(gid_raw, dtype=np.float64))
-    keep = ~(seg_null | gid_null)
-    gid = np.asarray(np.ma.getdata(gid_raw), dtype=np.float64)[keep].astype(np.int64)
+    keep = ~(null_mask(got["segment"]) | null_mask(got["gid"]))
+    gid = np.asarray(np.ma.getdata(got["gid"]), dtype=np.float64)[keep].astype(np.int64)
     seg = np.asarray(np.ma.getdata(got["segment"]), dtype=np.float64)[keep].astype(np.int64)
     n_all = np.asarray(got["n"], dtype=np.float64)[keep]
     ls_all = np.column_stack([np.asarray(np.ma.getdata(got[f"ls{j}"]), dtype=np.float64)[keep] for j in range(d)])
@@ -313,10 +310,8 @@ def run_refine_pass(engine: Engine, source: Source, columns: Sequence[str], assi
         s = seg[mine]
         n = np.bincount(s, weights=n_all[mine], minlength=k)[:k]
         ls_u = np.column_stack([np.bincount(s, weights=ls_all[mine, j], minlength=k)[:k] for j in range(d)]) * assign.inv_scale[g][None, :]
-        dist = np.maximum(np.bincount(s, weights=dist_all[mine], minlength=k)[:k], 0.0)
-        means = np.where(n[:, None] > 0, ls_u / np.where(n > 0, n, 1.0)[:, None], old)
-        shift = (((means - old) * assign.weights[g][None, :]) ** 2).sum(axis=1)
-        out.append((SegmentStats(n, old, dist), SegmentStats(n, means, np.maximum(dist - n * shift, 0.0))))
+        dist = np.bincount(s, weights=dist_all[mine], minlength=k)[:k]
+        out.append(moved_to_means(n, ls_u, dist, old, assign.weights[g]))
     return out, time.perf_counter() - t0
 
 
