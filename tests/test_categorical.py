@@ -358,3 +358,35 @@ def test_categories_of_any_type_match_their_literals(tmp_path, sql_type, make):
     # outside reference: DuckDB's own GROUP BY of the column; each category (NULL too) is one segment
     assert sorted(model.sizes) == expected == got
     assert model.sse == pytest.approx(0.0, abs=1e-9)
+
+
+
+def test_a_categorical_model_does_not_depend_on_the_order_the_engine_returns_rows_in(tmp_path, monkeypatch):
+    # reference: the model's own definition; a parallel GROUP BY returns its rows in any order, so the same
+    # data and seed must give the same figures, to the last bit, whatever that order (here: every result
+    # shuffled). The refine pass groups by (segment, category code): several rows per segment.
+    from tillite.demo import build_demo_database
+    from tillite.engines import DuckDBEngine
+
+    path = tmp_path / "demo.duckdb"
+    build_demo_database(path, rows=300_000, days=10, seed=7)
+
+    def model() -> dict:
+        with open_source(str(path), table="meter_days") as (engine, src):
+            settings = Settings(k=3, categorical=("district",))
+            return segment(engine, src, ["litres", "night_share", "zero_hours"], settings).to_dict()
+
+    expected = model()
+    plain_query = DuckDBEngine.query
+    rng = np.random.default_rng(7)
+
+    def shuffled_query(self, statement):
+        got = plain_query(self, statement)
+        order = rng.permutation(len(next(iter(got.values()))) if got else 0)
+        return {name: values[order] for name, values in got.items()}
+
+    monkeypatch.setattr(DuckDBEngine, "query", shuffled_query)
+    got = model()
+    for name in ("sse", "segment_sse", "radius", "centroids", "sizes"):
+        assert got[name] == expected[name], name
+    assert [p["sse"] for p in got["passes"]] == [p["sse"] for p in expected["passes"]]

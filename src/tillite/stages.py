@@ -431,6 +431,18 @@ def refine_rows(got: dict[str, np.ndarray], assign: Assignment) -> tuple[np.ndar
     return seg, null, np.asarray(got["n"], dtype=np.float64)
 
 
+def rows_in_key_order(got: dict[str, np.ndarray], keys: Sequence[str]) -> dict[str, np.ndarray]:
+    """A GROUP BY's rows sorted by its key columns (NULL keys last). Engines return them in any order
+    (parallel aggregation), and sums that Python then takes over several rows per segment must not
+    depend on it: the same data and seed give the same figures to the last bit."""
+    columns: list[np.ndarray] = []
+    for key in reversed(keys):  # np.lexsort sorts by the last key first
+        values = got[key]
+        columns += [np.asarray(np.ma.getdata(values), dtype=np.float64), null_mask(values)]
+    order = np.lexsort([np.where(np.isnan(c), -np.inf, c) if c.dtype.kind == "f" else c for c in columns])
+    return {name: values[order] for name, values in got.items()}
+
+
 def refine_result(
     got: dict[str, np.ndarray], assign: Assignment, seg: np.ndarray, null: np.ndarray, n_all: np.ndarray,
     n: np.ndarray, ls_u: np.ndarray, t0: float,
@@ -1132,6 +1144,7 @@ def run_refine_pass_with_codes(
     numeric_cols, numeric_assign, lookups = code_assignment(columns, assign, groups, code_names)
     num_idx = [columns.index(c) for c in numeric_cols]
     got = engine.query(sqlgen.refine_statement(source, numeric_cols, numeric_assign, engine.target, lookups=lookups))
+    got = rows_in_key_order(got, ["segment", *[f"q{g}" for g in range(len(groups))]])
     seg, null, n_all = refine_rows(got, assign)
     k = len(assign.centroids)
     n_rows = n_all[~null]
