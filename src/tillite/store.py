@@ -37,7 +37,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from . import features as F
-from . import sqlgen, store_history
+from . import sqlgen, store_groups, store_history
 from .engines import Engine
 from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
     EngineError, InputError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
@@ -160,6 +160,7 @@ class RefreshReport:
     model: Model | None = None
     checked: str = "every partition"  # or "named partitions" (refresh --partitions/--where)
     seeding: dict[str, Any] = field(default_factory=dict)  # warm-start and fresh-seeding SSE, and which was kept
+    groups: dict[str, Any] = field(default_factory=dict)  # a --within store: groups re-segmented, new, vanished, kept
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -167,6 +168,7 @@ class RefreshReport:
             "checked": self.checked,
             "partitions": {"new": self.new, "changed": self.changed, "vanished": self.vanished, "unchanged": self.unchanged},
             "seeding": self.seeding,
+            **({"groups": self.groups} if self.groups else {}),
             "drift": self.drift,
             "warnings": self.warnings,
             "seconds": self.seconds,
@@ -183,18 +185,25 @@ class RefreshReport:
                 f"re-segmented from a fresh k-means++ seeding (SSE {self.seeding['fresh_sse']:.6g}; "
                 f"warm start from the last model: {self.seeding['warm_sse']:.6g})"
             )
-        if self.drift:
-            head = f"{'segment':>7}  {'size before':>11}  {'size after':>10}  {'shift (sd)':>10}  {'cells moved':>11}"
-            lines += ["", head]
-            for d in self.drift:
-                before = "-" if d["size_before"] is None else f"{d['size_before']:,}"
-                after = "-" if d["size_after"] is None else f"{d['size_after']:,}"
-                shift = "-" if d["shift_sd"] is None else f"{d['shift_sd']:.3f}"
-                moved = "-" if d["cells_moved"] is None else f"{100 * d['cells_moved']:.1f}%"
-                lines.append(f"{d['segment']:>7}  {before:>11}  {after:>10}  {shift:>10}  {moved:>11}")
+        if self.groups:
+            lines += store_groups.report_lines(self.groups, self.drift)
+        elif self.drift:
+            lines += ["", DRIFT_HEAD] + [drift_line(d) for d in self.drift]
         if with_warnings:
             lines += [f"warning: {w}" for w in self.warnings]
         return "\n".join(lines)
+
+
+DRIFT_HEAD = f"{'segment':>7}  {'size before':>11}  {'size after':>10}  {'shift (sd)':>10}  {'cells moved':>11}"
+
+
+def drift_line(d: dict[str, Any]) -> str:
+    """One segment's row of the drift table (under DRIFT_HEAD)."""
+    before = "-" if d["size_before"] is None else f"{d['size_before']:,}"
+    after = "-" if d["size_after"] is None else f"{d['size_after']:,}"
+    shift = "-" if d["shift_sd"] is None else f"{d['shift_sd']:.3f}"
+    moved = "-" if d["cells_moved"] is None else f"{100 * d['cells_moved']:.1f}%"
+    return f"{d['segment']:>7}  {before:>11}  {after:>10}  {shift:>10}  {moved:>11}"
 
 
 # ----------------------------------------------------------------------------- tables
@@ -266,7 +275,10 @@ def _now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
-def _cells_columns(p: int, d: int) -> list[tuple[str, str]]:
+def _cells_columns(p: int, d: int, within: str | None = None) -> list[tuple[str, str]]:
+    """part, k0.., n, ls0.., ss0..; a --within store keeps each cell's group key after part."""
+    if within is not None:
+        return store_groups.cells_columns(_cells_columns(p, d))
     return (
         [("part", "VARCHAR")]
         + [(f"k{a}", "DOUBLE") for a in range(p)]
@@ -458,6 +470,7 @@ def _settings_dict(settings: Settings) -> dict[str, Any]:
         "refine_passes": settings.refine_passes, "tolerance": settings.tolerance, "n_init": settings.n_init,
         "seed": settings.seed, "sample_rows": settings.sample_rows,
         **({"method": settings.method} if settings.method != "kmeans" else {}),  # k-means stores keep their old settings
+        **({"within": settings.within} if settings.within is not None else {}),
     }
 
 
@@ -704,9 +717,7 @@ def build(
         raise ParameterError("a summary store does not keep categorical columns yet; segment with {categorical} "
                              "without a store", "categorical")
     settings.check(columns)
-    if settings.within is not None:
-        raise ParameterError(f"{{within}} {settings.within}: summary stores do not keep segments within groups yet; "
-                             "use `tillite segment --within` (a model file)", "within")
+    group_type = store_groups.check(engine, source, columns, settings) if settings.within is not None else None
     name = store or default_store_name(source)
     if not partition.files and not partition.columns:
         raise ParameterError("give the partition column(s) ({partition}) for a table source", "partition")
@@ -724,6 +735,9 @@ def build(
     warnings_ = [] if partition.files else _check_partition_count(engine, source, partition, many_partitions)
     t0 = time.perf_counter()
     weights = settings.column_weights(columns)
+    repeats = None
+    if grid is None and settings.within is not None:  # a --within store's grid is segment --within's
+        grid, repeats = store_groups.frozen_grid(engine, source, columns, settings, weights, progress)
     if grid is None:
         prof = run_profile(engine, source, columns, settings)
         grid = grid_for_profile(prof, settings, weights)
@@ -735,17 +749,23 @@ def build(
     with engine.transaction():
         for st in _drop_store_statements(name, cells_table):
             engine.execute(st)
-        engine.execute(sqlgen.create_table_statement(cells_table, _cells_columns(grid.dims, d), if_not_exists=False))
+        engine.execute(sqlgen.create_table_statement(cells_table, _cells_columns(grid.dims, d, settings.within), if_not_exists=False))
         t1 = time.perf_counter()
-        engine.execute(sqlgen.insert_select_statement(cells_table, sqlgen.cells_statement(scan, columns, grid, engine.target, _partitioning(partition))))
+        engine.execute(sqlgen.insert_select_statement(cells_table, _cells_pass(scan, columns, grid, engine.target, partition, settings.within)))
         cells_grid, keys, skipped = merged_cells(engine, cells_table, grid, d)
         if cells_grid.m == 0:
             raise InputError(f"no usable rows in {source.label}")
         progress("cells", f"{len(fps):,} partitions -> {cells_grid.m:,} cells ({skipped:,} rows skipped), {time.perf_counter() - t1:.2f} s")
-        model, _, _ = _segment_cells(engine, source, columns, cells_grid, keys, skipped, grid, settings, source.label, init_centroids, progress)
+        if settings.within is not None:  # a model per group; ids matched per group to the previous model's
+            model = store_groups.segment_groups(
+                engine, source, columns, cells_table, grid, settings, str(group_type), source.label, progress,
+                old=previous.model if previous is not None else None, new_segment_shift=new_segment_shift, repeats=repeats,
+            ).model
+        else:
+            model, _, _ = _segment_cells(engine, source, columns, cells_grid, keys, skipped, grid, settings, source.label, init_centroids, progress)
         key_range = np.stack([keys.min(axis=0), keys.max(axis=0)])
         next_id = model.k
-        if previous is not None:
+        if previous is not None and not model.within:
             sd = np.asarray(model.grid["sd"])
             model.ids, next_id = match_segments(
                 np.asarray(previous.model.centroids), previous.model.segment_ids(), np.asarray(model.centroids),
@@ -884,6 +904,8 @@ def refresh(
             # 3. replace the cells of changed and vanished partitions, add new ones
             t1 = time.perf_counter()
             gone = changed + vanished
+            within = info.settings.get("within")
+            before = store_groups.group_cells(engine, info.cells_table, gone) if within is not None else {}
             if gone:
                 engine.execute(sqlgen.delete_statement(info.cells_table, sqlgen.in_list("part", gone)))
             if recompute:
@@ -899,9 +921,14 @@ def refresh(
                 engine.execute(sqlgen.insert_values_statement(PARTS, _part_rows(store, current, fresh)))
             # 5. re-segment the merged cells (warm start and fresh seeding), match ids, drift
             t2 = time.perf_counter()
-            model, cells, std = _resegment(engine, info, settings, progress, new_segment_shift, report.seeding)
+            if within is not None:  # only the groups whose cells in new, changed or vanished partitions differ
+                touched = store_groups.changed_groups(before, store_groups.group_cells(engine, info.cells_table, recompute))
+                model = _resegment_groups(engine, info, settings, progress, new_segment_shift, drift_threshold, report,
+                                          None if force or settings_moved else touched)
+            else:
+                model, cells, std = _resegment(engine, info, settings, progress, new_segment_shift, report.seeding)
+                report.drift, report.warnings = _drift(info.model, model, cells, np.where(std.sd > 0, std.sd, 1.0), drift_threshold)
             report.seconds["segment"] = time.perf_counter() - t2
-            report.drift, report.warnings = _drift(info.model, model, cells, np.where(std.sd > 0, std.sd, 1.0), drift_threshold)
             if report.seeding.get("segments_changed"):
                 report.warnings.insert(0, _reseeded_warning(report.seeding))
             # 6. the new model and settings, then the registered label views
@@ -1017,11 +1044,20 @@ def _restricted_cells(
     the blocks of other partitions.
     """
     partitioning = _partitioning(info.partition)
+    within = info.settings.get("within")
     if info.partition.files:
-        return sqlgen.cells_statement(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.target, partitioning)
+        return _cells_pass(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.target, info.partition, within)
     types = types or dict(engine.describe(info.source))
     where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps], engine.target)
-    return sqlgen.cells_statement(scan, info.columns, info.grid, engine.target, partitioning, where=where)
+    return _cells_pass(scan, info.columns, info.grid, engine.target, info.partition, within, where=where)
+
+
+def _cells_pass(scan: Source, columns: Sequence[str], grid: Grid, target: Any, partition: PartitionSpec, within: str | None,
+                where: Any = None):
+    """The store's cell pass keyed by (partition, cell), or by (partition, group, cell) for a --within store."""
+    if within is not None:
+        return store_groups.cells_statement(scan, columns, grid, target, _partitioning(partition), within, where=where)
+    return sqlgen.cells_statement(scan, columns, grid, target, _partitioning(partition), where=where)
 
 
 def _claim(engine: Engine, info: StoreInfo) -> None:
@@ -1080,6 +1116,23 @@ def _resegment(
     return model, cells, std
 
 
+def _resegment_groups(
+    engine: Engine, info: StoreInfo, settings: Settings, progress: ProgressFn, new_segment_shift: float, drift_threshold: float,
+    report: RefreshReport | None = None, touched: set[str | None] | None = None,
+) -> Model:
+    """A --within store's model after its cells changed: ``touched`` groups (None: all) re-segmented, ids
+    matched per group; what changed per group goes into ``report``."""
+    done = store_groups.segment_groups(
+        engine, info.source, info.columns, info.cells_table, info.grid, settings, info.model.within["type"], f"store {info.name}",
+        progress, old=info.model, touched=touched, new_segment_shift=new_segment_shift, drift_threshold=drift_threshold,
+    )
+    if info.partition.files:
+        done.model.source = info.model.source
+    if report is not None:
+        report.groups, report.drift, report.warnings = done.report(), done.drift, done.warnings
+    return done.model
+
+
 def _save_model(engine: Engine, info: StoreInfo, model: Model, settings: Settings | None = None) -> None:
     """The new model; and the settings when given, so an option given to one refresh (--k) is kept."""
     values: dict[str, object] = {"model": model.to_json(), "next_id": info.next_id, "refreshed_at": _now()}
@@ -1102,7 +1155,11 @@ def resegment(engine: Engine, store: str, progress: ProgressFn = quiet_progress,
     info = load(engine, store)
     with engine.transaction():
         _claim(engine, info)
-        model, _, _ = _resegment(engine, info, _settings_of(info.settings), progress, new_segment_shift)
+        settings = _settings_of(info.settings)
+        if settings.within is not None:
+            model = _resegment_groups(engine, info, settings, progress, new_segment_shift, drift_threshold=0.5)
+        else:
+            model, _, _ = _resegment(engine, info, settings, progress, new_segment_shift)
         _save_model(engine, info, model)
         _relabel(engine, info, model)
     return model
@@ -1163,6 +1220,9 @@ def subtract_rows(engine: Engine, store: str, part: str, rows: np.ndarray) -> in
     """
     require_transactions(engine)
     info = load(engine, store)
+    if info.model.within:
+        raise StoreError(f"store {store} keeps cells per group of {info.model.within['column']}, which rows of the segmenting "
+                         "columns alone do not name; refresh the partition instead")
     part = _part_key(engine, info, part)
     rows = np.asarray(rows, dtype=np.float64).reshape(-1, len(info.columns))
     rows = rows[np.isfinite(rows).all(axis=1)]
@@ -1260,6 +1320,7 @@ def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, 
         "settings": info.settings,
         "cells_table": info.cells_table,
         "segment_ids": info.model.segment_ids(),
+        **store_groups.status_fields(info.model),
         "warnings": warnings_,
         "partition_list": [
             {"part": part_label(json.loads(p["part_values"]), info.partition.columns, p["part"]), "rows": p["rows"], "summarised_at": p["summarised_at"]}

@@ -14,7 +14,7 @@ import time
 import warnings
 from dataclasses import dataclass, replace
 from datetime import datetime, timezone
-from typing import Any, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
@@ -50,7 +50,7 @@ def group_name(value: str | None) -> str:
     return f"'{value}'" if value == NULL_GROUP_NAME else value
 
 
-def _part_value(key: str) -> str | None:
+def group_value_of_key(key: str) -> str | None:
     """The group's text from a partition key (``Partitioning.key``: ``~`` for NULL, else ``len:text``)."""
     if key == "~":
         return None
@@ -205,12 +205,12 @@ def split_cells(got: dict[str, np.ndarray], grid: Grid, d: int) -> list[tuple[st
 
     parts = np.asarray(got["part"], dtype=object)
     out = []
-    for key in sorted(set(parts.tolist()), key=lambda t: (t == "~", _part_value(t) or "")):
+    for key in sorted(set(parts.tolist()), key=lambda t: (t == "~", group_value_of_key(t) or "")):
         rows = parts == key
         sub = {name: np.asarray(np.ma.getdata(values))[rows] if not np.ma.isMaskedArray(values) else values[rows]
                for name, values in got.items()}
         cells, keys, skipped = cells_from_result(sub, grid, d)
-        out.append((_part_value(key), cells, keys, skipped))
+        out.append((group_value_of_key(key), cells, keys, skipped))
     return out
 
 
@@ -400,41 +400,63 @@ def segment_within(engine: Engine, source: Source, columns: Sequence[str], setti
                       f"in {len(parts):,} group(s), one statement, {t_cells:.2f} s")
 
     t0 = time.perf_counter()
+
+    def own_grid(value: str | None, cells: CF, group_skipped: int) -> tuple[Grid, CF, np.ndarray, int] | None:
+        return own_grid_cells(engine, source, columns, within, group_type, value, gp, int(round(cells.n.sum())) + group_skipped,
+                              settings, weights, len(parts))
+
+    runs = group_runs(parts, grid, columns, settings, weights, source.label, progress, own_grid)
+    t_second = time.perf_counter() - t0
+    progress("second phase", f"{len(runs):,} group(s), {sum(r.k for r in runs):,} segments in all, {t_second:.2f} s")
+
+    passes, refine_times = refine_groups(engine, source, columns, within, group_type, runs, grid, settings, progress)
+    overall, pairs = overall_standardisation([c for _, c, _, _ in parts], grid, columns, settings, weights)
+    model = within_model(columns, overall, grid, [group_entry(r, columns) for r in runs], settings, source, within, group_type,
+                         usable + skipped, skipped, pairs, gp.profile.repeats)
+    model.passes = passes
+    model.timings = {"profile": t_profile, "cells": t_cells, "second_phase": t_second, **refine_times,
+                     "total": time.perf_counter() - t_start}
+    return model
+
+
+def group_runs(parts: Sequence[tuple[str | None, CF, np.ndarray, int]], grid: Grid, columns: Sequence[str], settings: Settings,
+               weights: np.ndarray, where: str, progress: ProgressFn,
+               own_grid: Callable[[str | None, CF, int], tuple[Grid, CF, np.ndarray, int] | None] | None = None) -> list[GroupRun]:
+    """The second phase of each group (``split_cells``'s parts); a group whose rows were all skipped gets none.
+
+    ``own_grid(value, cells, skipped)``: the cells of a group too coarse on the shared grid on a grid of its
+    own (``own_grid_cells``), or None; without it (a summary store) every group stays on the shared grid.
+    """
     runs = []
     k_most = max(settings.k_candidates or (settings.k,))
     for value, cells, keys, group_skipped in parts:
         if cells.m == 0:  # every row of the group skipped: no model for it, its rows get NULL
             warnings.warn(f"group {group_name(value)}: all {group_skipped:,} rows have a NULL, NaN or infinite value; "
-                          "no segments (labelled NULL)", UserWarning, stacklevel=2)
+                          "no segments (labelled NULL)", UserWarning, stacklevel=3)
             continue
-        own = None
-        if needs_own_grid(cells, k_most):
-            own = own_grid_cells(engine, source, columns, within, group_type, value, gp, int(round(cells.n.sum())) + group_skipped,
-                                 settings, weights, len(parts))
-            if own is not None:
-                progress("cells", f"group {group_name(value)}: {int((cells.n > 0).sum()):,} cells on the shared grid; "
-                                  f"{int((own[1].n > 0).sum()):,} on a grid of its own (one more statement, its rows only)")
+        own = own_grid(value, cells, group_skipped) if own_grid is not None and needs_own_grid(cells, k_most) else None
+        if own is not None:
+            progress("cells", f"group {group_name(value)}: {int((cells.n > 0).sum()):,} cells on the shared grid; "
+                              f"{int((own[1].n > 0).sum()):,} on a grid of its own (one more statement, its rows only)")
         group_grid, cells, keys = (own[0], own[1], own[2]) if own is not None else (grid, cells, keys)
-        run = run_group(value, cells, keys, group_skipped, group_grid, columns, settings, weights, source.label, progress)
+        run = run_group(value, cells, keys, group_skipped, group_grid, columns, settings, weights, where, progress)
         run.grid = group_grid
         runs.append(run)
-    t_second = time.perf_counter() - t0
-    progress("second phase", f"{len(runs):,} group(s), {sum(r.k for r in runs):,} segments in all, {t_second:.2f} s")
+    return runs
 
-    passes, refine_times = refine_groups(engine, source, columns, within, group_type, runs, grid, settings, progress)
-    all_cells = F.concat(*[c for _, c, _, _ in parts if c.m])
+
+def overall_standardisation(cells: Sequence[CF], grid: Grid, columns: Sequence[str], settings: Settings,
+                            weights: np.ndarray) -> tuple[Standardisation, int]:
+    """The whole table's standardisation (the model's top-level centre and scale) from every group's cells, and
+    the count of filled (group, cell) pairs."""
+    all_cells = F.concat(*[c for c in cells if c.m])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # constant columns are said per group
         try:
             _, overall = standardise_cells(all_cells, grid, columns, settings, weights)
         except InputError:
             _, overall, _ = standardise_group(all_cells, grid, columns, settings, weights, "(all)", [])
-    model = within_model(columns, overall, grid, runs, settings, source, within, group_type, usable + skipped, skipped,
-                         int((all_cells.n > 0).sum()), gp.profile.repeats)
-    model.passes = passes
-    model.timings = {"profile": t_profile, "cells": t_cells, "second_phase": t_second, **refine_times,
-                     "total": time.perf_counter() - t_start}
-    return model
+    return overall, int((all_cells.n > 0).sum())
 
 
 def group_entry(r: GroupRun, columns: Sequence[str]) -> dict[str, Any]:
@@ -470,10 +492,11 @@ def group_entry(r: GroupRun, columns: Sequence[str]) -> dict[str, Any]:
     return entry
 
 
-def within_model(columns: Sequence[str], overall: Standardisation, grid: Grid, runs: Sequence[GroupRun], settings: Settings,
+def within_model(columns: Sequence[str], overall: Standardisation, grid: Grid, groups: Sequence[dict[str, Any]], settings: Settings,
                  source: Source, within: str, group_type: str, rows: int, skipped: int, cells: int, repeats: str) -> Model:
-    """The model file of a --within run: the shared grid and overall figures at the top, one entry per group."""
-    groups = [group_entry(r, columns) for r in runs]
+    """The model file of a --within run: the shared grid and overall figures at the top, one entry per group
+    (``group_entry``)."""
+    groups = list(groups)
     return Model(
         columns=list(columns), center=overall.center.tolist(), scale=overall.scale.tolist(), weights=overall.weights.tolist(),
         scaling=settings.scaling, centroids=[], centroids_scaled=[], sizes=[], sse=float(sum(g["sse"] for g in groups)),
@@ -502,7 +525,15 @@ def model_assignment(model: Model) -> GroupAssignment:
         weights=np.array([g["weights"] for g in groups], dtype=np.float64),
         centroids=tuple(np.asarray(g["centroids_scaled"], dtype=np.float64).reshape(len(g["sizes"]), len(model.columns))
                         for g in groups),
+        ids=stable_ids(groups),
     )
+
+
+def stable_ids(groups: Sequence[dict[str, Any]]) -> tuple[tuple[int, ...], ...]:
+    """Each group's segment ids when some group's are not its positions 0..k-1 (a store's, kept across
+    refreshes); else () and the label SQL numbers segments by position, as before."""
+    ids = tuple(tuple(int(i) for i in (g.get("ids") or range(len(g["sizes"])))) for g in groups)
+    return ids if any(i != tuple(range(len(i))) for i in ids) else ()
 
 
 def label_within_select(engine: Engine, source: Source, model: Model, source_columns: Sequence[str], materialize: bool):

@@ -37,7 +37,8 @@ class GroupAssignment:
     ``values``: each group's value as text (None for the NULL group), cast back
     to ``group_type`` in SQL; ``center``, ``inv_scale``, ``weights`` (groups x d)
     and ``centroids`` (one (k_g x d) array per group, in scaled units).  Segment
-    ids are the positions 0..k_g-1 within each group.
+    ids are the positions 0..k_g-1 within each group, unless ``ids`` gives each
+    group's own (a summary store keeps ids stable per group across refreshes).
     """
 
     column: str
@@ -47,6 +48,7 @@ class GroupAssignment:
     inv_scale: np.ndarray
     weights: np.ndarray
     centroids: tuple[np.ndarray, ...]
+    ids: tuple[tuple[int, ...], ...] = ()
 
     @property
     def most_segments(self) -> int:
@@ -66,6 +68,7 @@ class GroupAssignment:
 
 def _names(d: int, k: int) -> dict[str, list]:
     return {
+        "id": [internal(f"wid{i}") for i in range(k)],
         "c": [internal(f"wc{j}") for j in range(d)],
         "f": [internal(f"wf{j}") for j in range(d)],
         "a": [[internal(f"wa{i}_{j}") for j in range(d)] for i in range(k)],
@@ -84,11 +87,14 @@ def params_relation(assign: GroupAssignment, target: TargetLike) -> exp.Expressi
     d, k = assign.center.shape[1], assign.most_segments
     names = _names(d, k)
     columns = [internal("wg"), internal("wgid"), *names["c"], *names["f"], *[n for row in names["a"] for n in row], *names["b"]]
+    columns += names["id"] if assign.ids else []
     rows = []
     for g, value in enumerate(assign.values):
         a, b, f = assign.coefficients(g)
         values = [group_literal(value, assign.group_type, target), num(g), *[num(float(c)) for c in assign.center[g]],
                   *[num(float(x)) for x in f], *[num(float(x)) for x in a.ravel()], *[num(float(x)) for x in b]]
+        if assign.ids:  # the group's segment id at each position (padding positions never win)
+            values += [num(int(i)) for i in (*assign.ids[g], *range(len(assign.ids[g]), k))]
         rows.append(exp.Tuple(expressions=values))
     alias = exp.TableAlias(this=exp.to_identifier(PARAMS_ALIAS, quoted=True),
                            columns=[exp.to_identifier(n, quoted=True) for n in columns])
@@ -131,7 +137,7 @@ def assignment_layers(
     gid = internal("gid")
     src_cols = [exp.Column(this=exp.Star(), table=exp.to_identifier(SOURCE_ALIAS, quoted=True))] if keep_source else []
     centered = [exp.Sub(this=sqlgen.to_double(col(c, SOURCE_ALIAS)), expression=col(cn, PARAMS_ALIAS)) for c, cn in zip(columns, names["c"])]
-    carried = [*names["f"], *[n for row in names["a"] for n in row], *names["b"]]
+    carried = [*names["f"], *[n for row in names["a"] for n in row], *names["b"], *(names["id"] if assign.ids else [])]
     stage1 = (
         exp.select(*src_cols, exp.alias_(col(internal("wgid"), PARAMS_ALIAS), gid, quoted=True),
                    *[exp.alias_(e, n, quoted=True) for e, n in zip(centered, v)],
@@ -152,7 +158,10 @@ def assignment_layers(
         stage2 = sqlgen.scan_fence(stage2, target)
     best, nearest, seg = internal("best"), internal("nearest"), internal("segment")
     stage3 = sqlgen.nearest_layers(stage2, score, list(range(k)), best, nearest, target, fence)
-    pick = sqlgen.case_when(col(internal("ok")), col(nearest))
+    chosen: exp.Expression = col(nearest)
+    if assign.ids:  # the position's id in the row's group
+        chosen = exp.Case(this=col(nearest), ifs=[exp.If(this=num(i), true=col(n)) for i, n in enumerate(names["id"])])
+    pick = sqlgen.case_when(col(internal("ok")), chosen)
     stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(sqlgen.subquery(stage3, internal("n")))
     return stage4, gid, seg, best, v
 
@@ -224,3 +233,29 @@ def grouped_sample_statement(
     inner = outer.find(exp.Subquery).this  # the sampled rows, before the usable-row filter
     inner.select(exp.alias_(exp.cast(col(group), exp.DataType.build("VARCHAR")), GROUP_TEXT, quoted=True), copy=False)
     return outer.select(col(GROUP_TEXT), copy=False)
+
+
+#: The group's key column of a summary store's cells table (``Partitioning.key`` of the group column).
+GROUP_KEY = "grp"
+
+
+def store_cells_statement(
+    source: Source, columns: Sequence[str], grid: sqlgen.Grid, target: TargetLike, partition: sqlgen.Partitioning,
+    within: str, where: exp.Expression | None = None,
+) -> exp.Select:
+    """A store's cell pass keyed by (partition, group, cell): part, grp, k0.., n, ls0.., ss0.. .
+
+    The cell pass groups on the raw group value (cheaper than a text per row);
+    its key text (``Partitioning.key`` of the group column, the form `segment
+    --within` splits its cells by: ``~`` for NULL, else ``len:text``) is built
+    once per (partition, group, cell).
+    """
+    inner = sqlgen.cells_statement(source, columns, grid, target, partition, where=where, extra_keys=[within])
+    by_group = sqlgen.Partitioning.of_columns([within])
+    raw = by_group.aliases()[0]
+    named = exp.select(exp.Star(), exp.alias_(col("q0"), raw, quoted=True)).from_(sqlgen.subquery(inner, internal("g")))
+    d = len(columns)
+    sums = [col("n"), *[col(f"ls{j}") for j in range(d)], *[col(f"ss{j}") for j in range(d)]]
+    return exp.select(
+        col("part"), exp.alias_(by_group.key(), GROUP_KEY, quoted=True), *[col(k) for k in grid.key_names()], *sums
+    ).from_(sqlgen.subquery(named, internal("h")))

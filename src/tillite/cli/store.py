@@ -55,7 +55,10 @@ def store_group() -> None:
 @click.option("--out", "-o", help="Also write the model file here.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
-@parameter_option("within", help="Not yet for stores: refused in one line (use `tillite segment --within`).")
+@parameter_option("within", help="Segment each group of this column separately, as `tillite segment --within` does (k per "
+                                 "group; NULL is a group of its own); the store keeps cells per (partition, group, cell), and a "
+                                 "refresh re-segments only the groups with rows in new, changed or vanished partitions, keeping "
+                                 "segment ids stable per group.")
 def build_command(source, table, columns, partition_by, store_name, database, k, method, scaling, weights, cell_budget, refine_passes,
                   n_init, seed, regrid, many_partitions, out, quiet, as_json, within) -> None:
     """Build a summary store for SOURCE: frozen grid, per-partition cells, first segments."""
@@ -114,10 +117,15 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
         click.echo(f"built {st['built_at']}; last refresh {st['last_refresh'] or 'never'}{found}; last summarised {st['last_summarised']}")
         click.echo(f"grid: width {st['grid']['width']:.4g} on {st['grid']['axes_count']} {'axis' if st['grid']['axes_count'] == 1 else 'axes'}; "
                    f"{100 * st['outside_share']:.2f}% of rows outside the built range")
-        click.echo(f"segments: k={st['k']}, ids {', '.join(map(str, st['segment_ids']))}")
+        if st.get("within"):
+            click.echo(f"segments within each {st['within']}: " + "; ".join(
+                f"{g['group']} k={g['k']} (ids {', '.join(map(str, g['segment_ids']))})" for g in st["groups"]))
+        else:
+            click.echo(f"segments: k={st['k']}, ids {', '.join(map(str, st['segment_ids']))}")
         kept = st["settings"]
         click.echo(f"settings kept by refreshes: k={kept.get('k')}, method {kept.get('method', 'kmeans')}, refine passes {kept.get('refine_passes')}, "
-                   f"restarts {kept.get('n_init')}, seed {kept.get('seed')}, scaling {kept.get('scaling')}")
+                   f"restarts {kept.get('n_init')}, seed {kept.get('seed')}, scaling {kept.get('scaling')}"
+                   + (f", within {kept['within']}" if kept.get("within") else ""))
         click.echo(f"tables: {st['cells_table']} (cells), {store_api.STORES}, {store_api.PARTS}, {store_api.LABELS}, "
                    f"{store_api.store_history.HISTORY}")
         _echo_history(source, store_name)
