@@ -275,3 +275,13 @@ def within_db(tmp_path_factory):
     finally:
         con.close()
     return path
+
+
+def within_days_table(path: Path, spec: dict | None = None, days: int = 6, seed: int = 0) -> Path:
+    """Table ``meters`` of ``grouped_blobs(spec)`` (default WITHIN_GROUPS) with a ``day`` partition column (0..days-1,
+    seeded) and ``id``, the row's number: a --within store's data, every group spread over every day."""
+    data = grouped_blobs(spec or WITHIN_GROUPS, seed=seed)
+    n = len(data["a"])
+    data["day"] = np.random.default_rng(seed).integers(0, days, n)
+    data["id"] = np.arange(n)
+    return write_table(path, "meters", data)

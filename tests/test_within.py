@@ -287,11 +287,6 @@ def test_demo_prints_segments_within_each_district(tmp_path):
         assert f"{per_district[name]:,} rows" in ln
 
 
-def test_store_build_refuses_within_in_one_line(within_db):
-    assert_one_error_line(run("store", "build", within_db, "-t", "meters", "-c", "a,b,c", "--partition-by", "grp", "--k", 2,
-                              "--within", "grp", "-q"), "--within", "summary stores")
-
-
 def test_group_with_a_tiny_spread_gets_a_grid_of_its_own_and_equals_a_run_on_it_alone(tmp_path):
     # the "dot" group spreads over 1e-4 of the others' range: on the shared grid it fills a cell or two
     data = grouped_blobs({"wide": (6_000, 3, 0.0, 1.0), "dot": (3_000, 3, 2.0, 1e-4)}, seed=20)

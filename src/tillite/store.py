@@ -757,10 +757,11 @@ def build(
             raise InputError(f"no usable rows in {source.label}")
         progress("cells", f"{len(fps):,} partitions -> {cells_grid.m:,} cells ({skipped:,} rows skipped), {time.perf_counter() - t1:.2f} s")
         if settings.within is not None:  # a model per group; ids matched per group to the previous model's
-            model = store_groups.segment_groups(
+            grouped = store_groups.segment_groups(
                 engine, source, columns, cells_table, grid, settings, str(group_type), source.label, progress,
                 old=previous.model if previous is not None else None, new_segment_shift=new_segment_shift, repeats=repeats,
-            ).model
+            )
+            model, warnings_ = grouped.model, warnings_ + grouped.warnings
         else:
             model, _, _ = _segment_cells(engine, source, columns, cells_grid, keys, skipped, grid, settings, source.label, init_centroids, progress)
         key_range = np.stack([keys.min(axis=0), keys.max(axis=0)])

@@ -168,8 +168,6 @@ def segment_groups(
     redo = [p for p in parts if touched is None or p[0] in touched or p[0] not in old_entries]
     out = GroupsOutcome(model=old)  # type: ignore[arg-type]  # set below
     out.warnings += _coarse_warnings(redo, settings)
-    for w in out.warnings:
-        progress("cells", w)
     weights = settings.column_weights(columns)
     runs = group_runs(redo, grid, columns, settings, weights, where, progress)
     t_second = time.perf_counter() - t0
