@@ -1130,7 +1130,7 @@ def _resegment_groups(
     if info.partition.files:
         done.model.source = info.model.source
     if report is not None:
-        report.groups, report.drift, report.warnings = done.report(), done.drift, done.warnings
+        report.groups, report.drift, report.warnings = done.groups, done.drift, done.warnings
     return done.model
 
 

@@ -113,15 +113,9 @@ class GroupsOutcome:
     """A --within store's new model and what changed per group (for the refresh report)."""
 
     model: Model
-    resegmented: list[str] = field(default_factory=list)
-    new: list[str] = field(default_factory=list)
-    vanished: list[str] = field(default_factory=list)
-    kept: int = 0
+    groups: dict[str, Any]  # names of the groups re-segmented, new and vanished, and the count kept as they were
     drift: list[dict[str, Any]] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
-
-    def report(self) -> dict[str, Any]:
-        return {"resegmented": self.resegmented, "new": self.new, "vanished": self.vanished, "kept": self.kept}
 
 
 def _stable_ids(before: dict[str, Any] | None, entry: dict[str, Any], shift: float) -> tuple[list[int], int]:
@@ -166,8 +160,7 @@ def segment_groups(
     parts = merged_groups(engine, cells_table, grid, d, within)
     old_entries = {g["value"]: g for g in old.within.get("groups", [])} if old is not None and old.within else {}
     redo = [p for p in parts if touched is None or p[0] in touched or p[0] not in old_entries]
-    out = GroupsOutcome(model=old)  # type: ignore[arg-type]  # set below
-    out.warnings += _coarse_warnings(redo, settings)
+    coarse = _coarse_warnings(redo, settings)
     weights = settings.column_weights(columns)
     runs = group_runs(redo, grid, columns, settings, weights, where, progress)
     t_second = time.perf_counter() - t0
@@ -186,15 +179,16 @@ def segment_groups(
                          pairs, repeats)
     model.passes = passes
     model.timings = {"second_phase": t_second, **refine_times}
-    out.model = model
-    out.resegmented = [group_name(v) for v in fresh]
-    out.kept = len(entries) - len(fresh)
+    present = {g["value"] for g in entries}
+    out = GroupsOutcome(model, {
+        "resegmented": [group_name(v) for v in fresh],
+        "new": [group_name(v) for v in fresh if v not in old_entries] if old is not None else [],
+        "vanished": [group_name(v) for v in old_entries if v not in present],
+        "kept": len(entries) - len(fresh),
+    }, warnings=coarse)
     if old is not None:
-        present = {g["value"] for g in entries}
-        out.new = [group_name(v) for v in fresh if v not in old_entries]
-        out.vanished = [group_name(v) for v in old_entries if v not in present]
         _group_drift(out, old, {r.value: r for r in runs}, drift_threshold)
-    progress("second phase", f"{len(fresh):,} group(s) re-segmented, {out.kept:,} kept as they were, "
+    progress("second phase", f"{len(fresh):,} group(s) re-segmented, {out.groups['kept']:,} kept as they were, "
                              f"{time.perf_counter() - t0:.2f} s")
     return out
 
