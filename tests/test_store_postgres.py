@@ -403,3 +403,21 @@ def test_postgres_refresh_of_named_partitions_gives_the_same_cells_as_a_fingerpr
     assert (got.changed, got.vanished, got.new) == EXPECTED["day"]
     assert S.refresh(pg, TABLE).unchanged == 12  # 12 - 1 vanished + 1 new, all verified by the named refresh
     assert_pg_store_equals_fresh_cell_pass(pg, info)
+
+
+def test_postgres_within_store_equals_the_duckdb_one_and_refreshes_only_the_changed_district(pg_and_duck_demo):
+    from engine_checks import assert_same_within_model
+
+    pg, duck = pg_and_duck_demo
+    spec, settings = S.PartitionSpec(("day",)), Settings(**{**SETTINGS, "k": 3}, within="district")
+    duck_info, duck_model = S.build(duck, SRC, COLS, spec, settings)
+    _, pg_model = S.build(pg, SRC, COLS, spec, settings, grid=duck_info.grid)
+    # reference: the DuckDB store over the same rows on the same grid
+    assert_same_within_model(pg_model, duck_model)
+    district = duck_model.within["groups"][0]["value"]
+    run_both(pg, duck, [f"UPDATE meter_days SET litres = litres * 1.5 WHERE day = DATE '2026-01-03' AND district = '{district}'"])
+    got, ref = S.refresh(pg, TABLE), S.refresh(duck, TABLE)
+    assert got.groups == ref.groups == {"resegmented": [district], "new": [], "vanished": [],
+                                        "kept": len(duck_model.within["groups"]) - 1}
+    assert_same_within_model(got.model, ref.model)
+    assert [g["ids"] for g in got.model.within["groups"]] == [g["ids"] for g in ref.model.within["groups"]]
