@@ -906,7 +906,7 @@ def refresh(
             t1 = time.perf_counter()
             gone = changed + vanished
             within = info.settings.get("within")
-            before = store_groups.group_cells(engine, info.cells_table, gone) if within is not None else {}
+            before = store_groups.group_cells(engine, info.cells_table, gone, len(info.columns)) if within is not None else {}
             if gone:
                 engine.execute(sqlgen.delete_statement(info.cells_table, sqlgen.in_list("part", gone)))
             if recompute:
@@ -923,7 +923,7 @@ def refresh(
             # 5. re-segment the merged cells (warm start and fresh seeding), match ids, drift
             t2 = time.perf_counter()
             if within is not None:  # only the groups whose cells in new, changed or vanished partitions differ
-                touched = store_groups.changed_groups(before, store_groups.group_cells(engine, info.cells_table, recompute))
+                touched = store_groups.changed_groups(before, store_groups.group_cells(engine, info.cells_table, recompute, len(info.columns)))
                 model = _resegment_groups(engine, info, settings, progress, new_segment_shift, drift_threshold, report,
                                           None if force or settings_moved else touched)
             else:

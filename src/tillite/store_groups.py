@@ -34,7 +34,7 @@ from .within import (
     overall_standardisation, refine_groups, run_grouped_profile, split_cells, too_many_groups, within_model,
 )
 
-__all__ = ["GROUP_KEY", "GroupsOutcome", "check", "frozen_grid", "cells_columns", "cells_statement", "group_cells", "changed_groups",
+__all__ = ["GROUP_KEY", "GroupsOutcome", "check", "frozen_grid", "cells_columns", "cells_statement", "GroupCells", "group_cells", "changed_groups",
            "segment_groups", "status_fields", "report_lines"]
 
 GROUP_KEY = within_sql.GROUP_KEY
@@ -81,31 +81,56 @@ def merged_groups(engine: Engine, cells_table: str, grid: Grid, d: int, within: 
     return parts
 
 
-def group_cells(engine: Engine, cells_table: str, parts: Sequence[str]) -> dict[str | None, list[tuple]]:
-    """The stored cells of these partitions per group value: every row (partition, keys, sums) in a fixed order."""
+@dataclass
+class GroupCells:
+    """One group's stored cells in some partitions, in a fixed order: partition and keys of each, n, ls, ss."""
+
+    parts: np.ndarray  # (cells,) partition keys
+    keys: np.ndarray  # (cells, axes), NaN for the skipped rows' cell
+    n: np.ndarray
+    ls: np.ndarray
+    ss: np.ndarray
+
+    def same_as(self, other: "GroupCells", rtol: float = 1e-12) -> bool:
+        """The same cells with the same counts, and sums equal but for the last digits of a compensated sum
+        (``rtol`` of the sums' own size: sqrt(n ss) bounds the sum of |v| that ls adds up)."""
+        if (self.parts.tolist() != other.parts.tolist() or not np.array_equal(self.keys, other.keys, equal_nan=True)
+                or not np.array_equal(self.n, other.n)):
+            return False
+        bound = rtol * np.maximum(np.sqrt(self.n[:, None] * np.abs(self.ss)), np.abs(self.ls)) + 1e-300
+        return bool((np.abs(self.ls - other.ls) <= bound).all() and
+                    (np.abs(self.ss - other.ss) <= rtol * np.abs(self.ss) + 1e-300).all())
+
+
+def group_cells(engine: Engine, cells_table: str, parts: Sequence[str], d: int) -> dict[str | None, GroupCells]:
+    """The stored cells of these partitions, per group value."""
     if not parts:
         return {}
     got = engine.query(sqlgen.select_where(cells_table, sqlgen.in_list("part", list(parts))))
-    names = [n for n in got if n != GROUP_KEY]
-    rows: dict[str | None, list[tuple]] = {}
-    for i, key in enumerate(got[GROUP_KEY]):
-        rows.setdefault(group_value_of_key(str(key)), []).append(tuple(_plain(got[n], i) for n in names))
-    return {g: sorted(r, key=repr) for g, r in rows.items()}
+
+    def floats(name: str) -> np.ndarray:
+        return np.asarray(np.ma.filled(np.ma.asarray(got[name], dtype=np.float64), np.nan), dtype=np.float64)
+
+    key_names = sorted((name for name in got if name.startswith("k") and name[1:].isdigit()), key=lambda k: int(k[1:]))
+    part = np.asarray(got["part"], dtype=object).astype(str)
+    keys = np.column_stack([floats(k) for k in key_names]) if key_names else np.zeros((len(part), 0))
+    n = floats("n")
+    ls = np.nan_to_num(np.column_stack([floats(f"ls{j}") for j in range(d)]))  # the skipped rows' sums are meaningless
+    ss = np.nan_to_num(np.column_stack([floats(f"ss{j}") for j in range(d)]))
+    order = np.lexsort([*(np.nan_to_num(keys[:, a], nan=np.inf) for a in reversed(range(keys.shape[1]))), part])
+    members: dict[str | None, list[int]] = {}
+    for i in order.tolist():
+        members.setdefault(group_value_of_key(str(got[GROUP_KEY][i])), []).append(i)
+    return {g: GroupCells(part[rows], keys[rows], n[rows], ls[rows], ss[rows]) for g, rows in members.items()}
 
 
-def _plain(values: np.ndarray, i: int) -> Any:
-    if np.ma.isMaskedArray(values) and np.ma.getmaskarray(values)[i]:
-        return None
-    v = values[i]
-    return v.item() if hasattr(v, "item") else v
-
-
-def changed_groups(before: dict[str | None, list[tuple]], after: dict[str | None, list[tuple]]) -> set[str | None]:
+def changed_groups(before: dict[str | None, GroupCells], after: dict[str | None, GroupCells]) -> set[str | None]:
     """The groups whose cells in the rescanned or dropped partitions differ (``group_cells`` before the
     refresh replaced them, and after): a group with rows in a changed partition whose own rows did not
-    change keeps its model.  Cell sums are exact where the engine sums exactly (DuckDB's fsum); elsewhere
-    a difference in the last digit only re-segments a group more than needed."""
-    return {g for g in set(before) | set(after) if before.get(g) != after.get(g)}
+    change keeps its model.  Counts and cell keys must be equal; the sums may differ in their last digits,
+    since DuckDB's compensated ``fsum`` is not exactly rounded and a rewritten partition is read in
+    another order (a row whose value moved by less than that is not a change worth a new model)."""
+    return {g for g in set(before) | set(after) if g not in before or g not in after or not before[g].same_as(after[g])}
 
 
 @dataclass

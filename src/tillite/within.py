@@ -204,11 +204,13 @@ def split_cells(got: dict[str, np.ndarray], grid: Grid, d: int) -> list[tuple[st
     from .stages import cells_from_result
 
     parts = np.asarray(got["part"], dtype=object)
+    rows_of: dict[str, list[int]] = {}
+    for i, key in enumerate(parts.tolist()):  # one pass over the rows, not one comparison of them all per group
+        rows_of.setdefault(key, []).append(i)
     out = []
-    for key in sorted(set(parts.tolist()), key=lambda t: (t == "~", group_value_of_key(t) or "")):
-        rows = parts == key
-        sub = {name: np.asarray(np.ma.getdata(values))[rows] if not np.ma.isMaskedArray(values) else values[rows]
-               for name, values in got.items()}
+    for key in sorted(rows_of, key=lambda t: (t == "~", group_value_of_key(t) or "")):
+        rows = np.asarray(rows_of[key], dtype=np.int64)
+        sub = {name: values[rows] for name, values in got.items()}
         cells, keys, skipped = cells_from_result(sub, grid, d)
         out.append((group_value_of_key(key), cells, keys, skipped))
     return out
