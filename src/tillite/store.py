@@ -13,6 +13,8 @@ same keys and add up.  Tables of our own naming, in the source's database:
   The name is unique among the
   stores and tables of the database (``choose_cells_table``); ``part`` is the
   partition's key, one-to-one with its typed values (``Partitioning.key``).
+  A ``--within`` store also keys them by the group (``grp``) and keeps a model
+  per group; store_groups.py holds what differs for it.
 
 A refresh fingerprints every partition (or only named ones) in one aggregate
 pass, recomputes cells only for new and changed partitions (one statement
