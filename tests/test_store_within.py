@@ -265,3 +265,13 @@ def test_a_group_coarse_on_the_frozen_grid_is_warned_about(tmp_path):
         warnings.simplefilter("ignore")
         info, _ = S.build(engine, SOURCE, COLUMNS, PARTS, Settings(k=3, within="grp"))
     assert any("group dot fills only" in w and "frozen grid" in w for w in info.warnings)
+
+
+def test_within_with_categorical_columns_is_refused_by_a_store_in_one_line(tmp_path):
+    from tillite.errors import ParameterError
+
+    path = within_days_table(tmp_path / "cat.duckdb")
+    with DuckDBEngine(str(path)) as engine, pytest.raises(ParameterError) as caught:
+        S.build(engine, SOURCE, COLUMNS, PARTS, Settings(k=2, within="grp", categorical=("grp",)))
+    text = str(caught.value)
+    assert "\n" not in text and "categorical" in text
