@@ -397,6 +397,8 @@ def test_group_columns_of_other_types_label_every_row_into_its_own_group(tmp_pat
 
 @pytest.mark.parametrize("dialect", ["duckdb", "postgres", "spark"])
 def test_within_statements_render_and_parse_back_in_each_dialect(within_model, dialect):
+    from dataclasses import replace
+
     import sqlglot
 
     from tillite import within_sql
@@ -406,7 +408,12 @@ def test_within_statements_render_and_parse_back_in_each_dialect(within_model, d
     for statement in (within_sql.refine_statement(src, COLUMNS, assign, dialect),
                       within_sql.label_select(src, COLUMNS, [*COLUMNS, "grp"], assign, dialect, materialize=True),
                       within_sql.unknown_groups_statement(src, assign, dialect),
-                      within_sql.grouped_sample_statement(src, COLUMNS, "grp", dialect, percent=5.0, seed=1)):
+                      within_sql.grouped_sample_statement(src, COLUMNS, "grp", dialect, percent=5.0, seed=1),
+                      # a store's: the (partition, group, cell) pass, and labels with ids kept stable per group
+                      within_sql.store_cells_statement(src, COLUMNS, sqlgen.Grid.from_dict(within_model.grid), dialect,
+                                                       sqlgen.Partitioning.of_columns(["day"]), "grp"),
+                      within_sql.label_select(src, COLUMNS, [*COLUMNS, "grp"], replace(assign, ids=tuple(
+                          tuple(range(len(c), 0, -1)) for c in assign.centroids)), dialect)):
         text = sqlgen.render(statement, dialect)
         # reference: sqlglot's own parser for the dialect reads every statement back
         assert sqlglot.parse_one(text, read=dialect) is not None
