@@ -607,7 +607,8 @@ def group_models(model: Model) -> list[tuple[dict[str, Any], Model]]:
             segment_sse=g["segment_sse"], radius=g["radius"], rows=g["rows"], skipped=g["skipped"],
             source=f"{model.source} where {model.within['column']} is {g['name']}", k=g["k"], method=model.method,
             ids=g.get("ids") or [], constant_columns=g.get("constant_columns", []), grid={"sd": g.get("sd")},
-            params={k: v for k, v in (("k_choice", g.get("k_choice")),) if v},
+            params={k: v for k, v in (("k_choice", g.get("k_choice")),) if v}, categorical=model.categorical,
+            names=dict(g.get("names") or {}),
         )
         out.append((g, one))
     return out
@@ -628,6 +629,16 @@ def within_summary(model: Model) -> dict[str, Any]:
     }
 
 
+def within_sse_line(model: Model) -> str:
+    """The SSE line of `show` for a --within model: under zscore each group is measured in its own
+    standard deviations, which the line says in words rather than in nested brackets."""
+    weighted = " (weighted)" if any(w not in (0, 1) for w in model.weights) else ""
+    if model.scaling == "zscore":
+        return (f"SSE (row level, summed over the groups): {model.sse:.6g}; each group's part is in that group's "
+                f"own standard deviations{weighted}")
+    return f"SSE (row level, summed over the groups, in original units{weighted}): {model.sse:.6g}"
+
+
 def within_describe(model: Model) -> str:
     """`tillite show` of a --within model: one line per group, then each group's segment table."""
     groups = group_models(model)
@@ -638,7 +649,7 @@ def within_describe(model: Model) -> str:
         f"({len(groups)} group{'' if len(groups) == 1 else 's'}, {segments} segment{'' if segments == 1 else 's'} in all), "
         f"scaling={model.scaling}",
         f"rows: {model.rows:,} ({model.skipped:,} skipped for NULL/NaN/Inf)",
-        f"SSE (row level, summed over the groups, each in its own {model.units()}): {model.sse:.6g}",
+        within_sse_line(model),
         "",
         "groups:",
     ]

@@ -216,11 +216,11 @@ def unknown_groups_statement(source: Source, assign: GroupAssignment, target: Ta
 
 def grouped_sample_statement(
     source: Source, columns: Sequence[str], group: str, target: TargetLike, percent: float | None = None,
-    method: str = "SYSTEM", seed: int | None = None,
+    method: str = "SYSTEM", seed: int | None = None, text_columns: Sequence[str] = (),
 ) -> exp.Select:
-    """``sqlgen.sample_statement``'s usable rows (its sampling forms, per engine) plus each row's group as text
-    (GROUP_TEXT, NULL stays NULL)."""
-    outer = sqlgen.sample_statement(source, columns, target, percent=percent, method=method, seed=seed)
+    """``sqlgen.sample_statement``'s usable rows (its sampling forms, per engine; ``text_columns`` as t0, t1, ...)
+    plus each row's group as text (GROUP_TEXT, NULL stays NULL)."""
+    outer = sqlgen.sample_statement(source, columns, target, percent=percent, method=method, seed=seed, text_columns=text_columns)
     inner = outer.find(exp.Subquery).this  # the sampled rows, before the usable-row filter
     inner.select(exp.alias_(exp.cast(col(group), exp.DataType.build("VARCHAR")), GROUP_TEXT, quoted=True), copy=False)
     return outer.select(col(GROUP_TEXT), copy=False)
