@@ -306,7 +306,7 @@ def _indicator_values(model: Model, v_names: Sequence[str]) -> dict[str, exp.Exp
 def scoring_arguments(model: Model) -> list[str]:
     """The source columns a scoring macro takes, in order: a `--within` model's group column first."""
     if model.within:
-        return [model.within["column"], *model.columns]
+        return [model.within["column"], *model.input_columns()]
     return model.input_columns()
 
 
