@@ -482,6 +482,9 @@ def segment_within(engine: Engine, source: Source, columns: Sequence[str], setti
                          int((all_cells.n > 0).sum()), gp.profile.repeats)
     model.passes = passes
     model.categorical = inputs.model_categorical()
+    from .report import attach_group_maps
+
+    attach_group_maps(model, [r.cells for r in runs])  # each group's report map, as a single model keeps its own
     model.timings = {"profile": t_profile, "cells": t_cells, "second_phase": t_second, **refine_times,
                      "total": time.perf_counter() - t_start}
     return model

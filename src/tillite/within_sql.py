@@ -200,6 +200,19 @@ def label_select(
     ).from_(sqlgen.subquery(inner, internal("d")))
 
 
+def report_rows_select(source: Source, columns: Sequence[str], by: Sequence[str], assign: GroupAssignment, target: TargetLike,
+                       stride: int) -> exp.Select:
+    """``sqlgen.report_rows_select`` for every group at once: the model's and the breakdown columns, and as the
+    segment (internal name) group position * ``stride`` + segment within the group, so one GROUP BY gives every
+    group's segments (NULL for skipped rows and groups the model does not know)."""
+    inner, gid, seg, _, _ = assignment_layers(source, columns, assign, target, keep_source=True, fence=True)
+    keep = list(dict.fromkeys(list(columns) + list(by)))
+    combined = exp.Add(this=exp.Mul(this=col(gid), expression=num(int(stride))), expression=col(seg))
+    return exp.select(
+        *[col(c) for c in keep], exp.alias_(exp.cast(combined, exp.DataType.build("INT")), seg, quoted=True)
+    ).from_(sqlgen.subquery(inner, internal("d")))
+
+
 def unknown_groups_statement(source: Source, assign: GroupAssignment, target: TargetLike,
                              columns: Sequence[str] = ()) -> exp.Select:
     """Rows whose group the model does not know (a value that appeared after the build): count n.
