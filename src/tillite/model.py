@@ -591,10 +591,15 @@ def _check_groups(body: dict[str, Any], where: str) -> None:
 
 
 def _check_group_value(g: dict[str, Any], where: str) -> None:
-    """A group's value is its text (or null for the NULL group) and its name is text."""
+    """A group's value is its text (or null for the NULL group), its name is text, and its segment names
+    (`tillite name --group`), if any, are text keyed by segment id."""
     if "value" not in g or not (g["value"] is None or isinstance(g["value"], str)) or not isinstance(g.get("name"), str):
         raise ModelError(f"{where} is damaged: a group of within lacks its value (text, or null for the NULL group) "
                          "or its name")
+    names = g.get("names", {})
+    if not isinstance(names, dict) or not all(isinstance(k, str) and k.lstrip("-").isdigit() and isinstance(v, str)
+                                               for k, v in names.items()):
+        raise ModelError(f"{where} is damaged: the segment names of group {g['name']} are not text keyed by segment id")
 
 
 def group_models(model: Model) -> list[tuple[dict[str, Any], Model]]:

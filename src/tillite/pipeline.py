@@ -219,6 +219,13 @@ def label(
         )
     if model.names and not model.within:  # a segment_name column once segments are named (`tillite name`)
         select = sqlgen.segment_names_column(select, "segment", {int(k): v for k, v in model.names.items()})
+    elif model.within and any(g.get("names") for g in model.within["groups"]):  # named per group (`name --group`)
+        from .within_sql import group_segment_names_column
+
+        select = group_segment_names_column(
+            select, model.within["column"], model.within["type"], "segment",
+            [(g["value"], {int(k): v for k, v in g["names"].items()}) for g in model.within["groups"] if g.get("names")],
+            engine.target)
     if source.files:
         return _label_to_file(engine, source, select, into, replace)
     target = tuple(p.lower() for p in into.split("."))

@@ -680,7 +680,7 @@ def within_report(engine: Engine, source: Source, model: Model, by: Sequence[str
         own = {s % stride: q for s, q in quartiles.items() if s // stride == position}
         content = assemble(one, with_quartiles(stats, own), _no_cells(one), breakdowns, [], None, None,
                            figure=entry.get("report_map") or None, sampled=sum(q["n"] for q in own.values()))
-        content["header"].update(source=model.source, units=f"the group's own {one.units()}")
+        content["header"].update(source=model.source, units=f"in the group's own {one.units(short=True).removeprefix('in ')}")
         reports.append({"group": entry["name"], "value": entry["value"], "notes": entry.get("notes", []), "report": content})
     return {
         "format": REPORT_FORMAT, "version": REPORT_VERSION,

@@ -482,6 +482,15 @@ def _within_header_items(h: dict[str, Any]) -> list[tuple[str, str]]:
     ]
 
 
+def _group_items(g: dict[str, Any]) -> list[tuple[str, str]]:
+    """The figures heading one group's section."""
+    h = g["report"]["header"]
+    items = [("rows", fmt(h["rows"])), ("segmented rows", fmt(h["segmented"])), ("k", str(h["k"])),
+             (f"SSE (row level, {h.get('units', 'in scaled units')})", fmt(h["sse"])),
+             ("Calinski-Harabasz (exact, from the segments' CFs)", fmt(h["calinski_harabasz"]))]
+    return items + ([("notes", "; ".join(g["notes"]))] if g.get("notes") else [])
+
+
 def render_within_html(content: dict[str, Any]) -> str:
     """A --within model's report: the groups' table, then one section per group that opens and closes by a click
     (``<details>``: no script), the first one open, each drawn as a single model's report is; figure ids carry the
@@ -507,12 +516,7 @@ def render_within_html(content: dict[str, Any]) -> str:
         r = g["report"]
         parts.append(f'<details class="group" id="group-{i}"{" open" if i == 0 else ""}>'
                      f'<summary><h2>{esc(h["within"] + " = " + g["group"])}</h2></summary>')
-        items = [("rows", fmt(r["header"]["rows"])), ("segmented rows", fmt(r["header"]["segmented"])),
-                 ("k", str(r["header"]["k"])), (f"SSE (row level, {r['header'].get('units', 'scaled units')})", fmt(r["header"]["sse"])),
-                 ("Calinski-Harabasz", fmt(r["header"]["calinski_harabasz"]))]
-        if g.get("notes"):
-            items.append(("notes", "; ".join(g["notes"])))
-        parts.append('<dl class="header">' + "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in items) + "</dl>")
+        parts.append('<dl class="header">' + "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in _group_items(g)) + "</dl>")
         sections = "\n".join(_html_sections(r, "h3")).replace('id="chart-', f'id="group-{i}-chart-')
         parts += [sections, "</details>"]
     return _page_end(parts)
@@ -550,6 +554,7 @@ def render_within_markdown(content: dict[str, Any]) -> str:
     )
     for g in content["groups"]:
         lines += [f"## {_md_escape(h['within'] + ' = ' + g['group'])}", ""]
+        lines += [f"- **{_md_escape(k)}**: {_md_escape(v)}" for k, v in _group_items(g)] + [""]
         lines += _md_sections(g["report"], "###")
     return "\n".join(lines)
 

@@ -213,6 +213,21 @@ def report_rows_select(source: Source, columns: Sequence[str], by: Sequence[str]
     ).from_(sqlgen.subquery(inner, internal("d")))
 
 
+def group_segment_names_column(select: exp.Select, column: str, group_type: str, segment: str,
+                               names: Sequence[tuple[str | None, dict[int, str]]], target: TargetLike,
+                               alias: str = "segment_name") -> exp.Select:
+    """The label select wrapped to add a text column naming each row's segment within its group (``names``: per
+    group value, segment id -> name; NULL where unnamed).  Names are string literals made by sqlglot."""
+    ifs = []
+    for value, given in names:
+        same = group_predicate(column, value, group_type, target)
+        for sid, name in sorted(given.items()):
+            ifs.append(exp.If(this=exp.and_(same.copy(), exp.EQ(this=col(segment), expression=num(int(sid)))),
+                              true=exp.Literal.string(str(name))))
+    cased = exp.Case(ifs=ifs) if ifs else exp.cast(exp.Null(), exp.DataType.build("VARCHAR"))
+    return exp.select(exp.Star(), exp.alias_(cased, alias, quoted=True)).from_(sqlgen.subquery(select, internal("n")))
+
+
 def unknown_groups_statement(source: Source, assign: GroupAssignment, target: TargetLike,
                              columns: Sequence[str] = ()) -> exp.Select:
     """Rows whose group the model does not know (a value that appeared after the build): count n.
