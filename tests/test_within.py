@@ -7,6 +7,7 @@ plain SQL WHERE in DuckDB), scikit-learn's KMeans(n_init=10) objective on the gr
 
 from __future__ import annotations
 
+import copy
 import json
 import warnings
 
@@ -502,3 +503,25 @@ def test_name_names_segments_per_group_shown_by_show_report_and_the_label_view(w
     # reference: the names given, on the rows of that group and segment only
     assert got == {("dune", 0): "dune steady", (None, 1): "null busy"}
     assert_one_error_line(run("name", path, "--group", "marsh", 0, "x"), "--group marsh", "dune")
+
+
+def test_segment_name_macro_of_a_model_named_per_group_equals_the_label_view(within_db, within_model, tmp_path):
+    from tillite import macros as M
+    from tillite.naming import apply_names
+
+    model = Model.from_dict(copy.deepcopy(within_model.to_dict()))  # the module's model stays unnamed
+    apply_names(model, {0: "dune steady", 2: "dune 'busy'"}, group="dune")
+    db = tmp_path / "named.duckdb"
+    db.write_bytes(within_db.read_bytes())
+    with DuckDBEngine(str(db)) as engine:
+        label(engine, Source.of_table("meters"), model, "named")
+    M.install_into(db, M.scoring_macros(model, "water"))
+    con = duckdb.connect(str(db), read_only=True)
+    try:
+        # reference: the label view's segment_name column, computed by another statement form (the per-group join)
+        differ = con.execute("SELECT count(*) FROM named WHERE water_segment_name(grp, a, b, c) IS DISTINCT FROM segment_name"
+                             ).fetchone()[0]
+        named = con.execute("SELECT count(*) FROM named WHERE segment_name IS NOT NULL").fetchone()[0]
+    finally:
+        con.close()
+    assert differ == 0 and named > 0
