@@ -196,3 +196,19 @@ def test_sql_stage_cells_of_such_a_model_groups_by_group_and_category(grouped_mi
     assert result.exit_code == 0, result.output
     # reference: the statement segment ran, keyed by the group column and the category code
     assert '"grp"' in result.stdout and "GROUP BY" in result.stdout and '"district"' in result.stdout
+
+
+def test_report_gives_each_group_its_category_shares_per_segment(grouped_mixed_db, grouped_mixed_model, tmp_path):
+    from tillite import report as R
+
+    labels = labels_by_id(grouped_mixed_db, grouped_mixed_model, tmp_path)
+    with DuckDBEngine(str(grouped_mixed_db), read_only=True) as engine:
+        content = R.report_of_model(engine, Source.of_table("t"), grouped_mixed_model)
+    column = grouped_mixed_model.columns.index("district=north")
+    for g in content["groups"]:
+        ids, _, c = group_rows(grouped_mixed_db, g["value"])
+        seg = np.array([labels[i][1] for i in ids])
+        for s, profile in zip(g["report"]["segments"], g["report"]["profile"]):
+            # outside reference: numpy's share of "north" among the group's rows labelled with that segment
+            expected = float(np.mean(c[seg == s["segment"]] == "north"))
+            assert profile["mean"][column] == pytest.approx(expected, abs=1e-9)
