@@ -981,11 +981,7 @@ def categorical_source(
     read with their indicators; and the profile of the numeric columns followed by one category code
     column per categorical column."""
     t0 = time.perf_counter()
-    described = dict(engine.describe(source))
-    cat.check_categorical(columns, settings.categorical, described, source.label)
-    if columns:
-        check_columns(engine, source, columns)
-    rows = count_rows(engine, source)
+    described, rows = checked_categorical_source(engine, source, columns, settings)
     p, target, texts = len(columns), settings.sample_rows, list(settings.categorical)
 
     def fetch(**kw: Any) -> tuple[np.ndarray, list[list[Any]]]:
@@ -997,13 +993,36 @@ def categorical_source(
 
     x, values = seeded_sample(engine, rows, settings, fetch, lambda got: len(got[0]))
     specs, codes = category_specs(texts, values, described, settings)
-    sample = np.hstack([x, codes])
-    sample = canonical_sample(sample, target, settings.seed)
-    center, scale = center_and_scale(sample[:, :p], settings.scaling)
-    prof = Profile(rows=rows, sample=sample, center=np.concatenate([center, np.zeros(len(texts))]),
-                   scale=np.concatenate([scale, np.ones(len(texts))]), seconds=time.perf_counter() - t0,
-                   repeats=sample_promise(engine, rows, settings))
+    sample = canonical_sample(np.hstack([x, codes]), target, settings.seed)
+    prof = profile_with_codes(engine, sample, p, rows, settings, t0)
     return cat.with_indicators(source, specs, engine.target), specs, prof
+
+
+def checked_categorical_source(engine: Engine, source: Source, columns: Sequence[str], settings: Settings) -> tuple[dict[str, str], int]:
+    """The source's columns and types, and its row count, after refusing bad numeric or categorical columns."""
+    described = dict(engine.describe(source))
+    cat.check_categorical(columns, settings.categorical, described, source.label)
+    if columns:
+        check_columns(engine, source, columns)
+    return described, count_rows(engine, source)
+
+
+def profile_with_codes(engine: Engine, sample: np.ndarray, p: int, rows: int, settings: Settings, t0: float) -> Profile:
+    """The profile of a sample holding ``p`` numeric columns, then one category code per categorical column
+    (centre 0 and scale 1: the codes are keys, not values)."""
+    codes = sample.shape[1] - p
+    center, scale = center_and_scale(sample[:, :p], settings.scaling)
+    return Profile(rows=rows, sample=sample, center=np.concatenate([center, np.zeros(codes)]),
+                   scale=np.concatenate([scale, np.ones(codes)]), seconds=time.perf_counter() - t0,
+                   repeats=sample_promise(engine, rows, settings))
+
+
+def indicator_weights(settings: Settings, columns: Sequence[str], specs: Sequence[cat.CategoricalColumn]) -> np.ndarray:
+    """Each column's weight, every indicator of a categorical column taking that column's (--weights district=0.5)."""
+    weights = settings.column_weights(columns)
+    for spec, pos in zip(specs, cat.indicator_positions(columns, specs)):
+        weights[pos] = float(settings.weights.get(spec.column, 1.0))
+    return weights
 
 
 def sampled_texts(got: dict[str, Any], count: int) -> list[list[Any]]:

@@ -26,8 +26,9 @@ from .engines import Engine
 from .settings import Settings
 from .sqlgen import Grid, Partitioning, Source
 from .stages import (
-    Profile, canonical_sample, category_specs, cells_statement_with_codes, cells_with_codes, center_and_scale, check_columns,
-    choose_width, count_rows, grid_with_category_codes, sample_promise, sampled_texts, seeded_sample, CODE_SPACING,
+    CODE_SPACING, Profile, canonical_sample, category_specs, cells_statement_with_codes, cells_with_codes, center_and_scale,
+    checked_categorical_source, choose_width, grid_with_category_codes, indicator_weights, profile_with_codes, sampled_texts,
+    seeded_sample,
 )
 from .within import GroupedProfile, WithinInputs, sampled_groups
 
@@ -96,11 +97,7 @@ def categorical_inputs(engine: Engine, source: Source, columns: Sequence[str], w
     categories as text; the categories listed from it (top ``max_categories`` of the whole table); the source
     read with their indicators."""
     t0 = time.perf_counter()
-    described = dict(engine.describe(source))
-    cat.check_categorical(columns, settings.categorical, described, source.label)
-    if columns:
-        check_columns(engine, source, columns)
-    rows = count_rows(engine, source)
+    described, rows = checked_categorical_source(engine, source, columns, settings)
     p, texts = len(columns), list(settings.categorical)
 
     def fetch(limit: int | None = None, **kw: Any) -> dict[str, Any]:  # no LIMIT: every sampled row keeps its group
@@ -113,14 +110,9 @@ def categorical_inputs(engine: Engine, source: Source, columns: Sequence[str], w
     specs, codes = category_specs(texts, sampled_texts(got, len(texts)), described, settings)
     both = canonical_sample(np.hstack([groups[:, None], x, codes]), settings.sample_rows, settings.seed)
     sample, sample_groups = both[:, 1:], both[:, 0].astype(np.int64)
-    center, scale = center_and_scale(sample[:, :p], settings.scaling)
-    prof = Profile(rows=rows, sample=sample, center=np.concatenate([center, np.zeros(len(texts))]),
-                   scale=np.concatenate([scale, np.ones(len(texts))]), seconds=time.perf_counter() - t0,
-                   repeats=sample_promise(engine, rows, settings))
+    prof = profile_with_codes(engine, sample, p, rows, settings, t0)
     all_columns = list(columns) + [n for s in specs for n in s.names]
-    weights = settings.column_weights(all_columns)
-    for spec, pos in zip(specs, cat.indicator_positions(all_columns, specs)):
-        weights[pos] = float(settings.weights.get(spec.column, 1.0))
+    weights = indicator_weights(settings, all_columns, specs)
     return CategoricalInputs(
         source=cat.with_indicators(source, specs, engine.target), columns=all_columns, weights=weights,
         numeric=list(columns), specs=specs, profile=GroupedProfile(prof, sample_groups, values),
