@@ -212,3 +212,29 @@ def test_report_gives_each_group_its_category_shares_per_segment(grouped_mixed_d
             # outside reference: numpy's share of "north" among the group's rows labelled with that segment
             expected = float(np.mean(c[seg == s["segment"]] == "north"))
             assert profile["mean"][column] == pytest.approx(expected, abs=1e-9)
+
+
+def test_group_with_a_tiny_spread_gets_its_own_grid_keyed_by_category_and_equals_a_run_on_it_alone(tmp_path):
+    from conftest import grouped_blobs
+
+    # the "dot" group spreads over 1e-4 of the others' range: on the shared grid it fills a cell or two per category
+    data = grouped_blobs({"wide": (6_000, 3, 0.0, 1.0), "dot": (3_000, 3, 2.0, 1e-4)}, seed=20)
+    data["district"] = np.array(["north", "south"], dtype=object)[np.random.default_rng(3).integers(0, 2, len(data["grp"]))]
+    db = write_table(tmp_path / "dot.duckdb", "t", data)
+    con = duckdb.connect(str(db))
+    con.execute("CREATE TABLE only_dot AS SELECT * FROM t WHERE grp = 'dot'")
+    con.close()
+    settings = dict(k=6, categorical=("district",), cell_budget=2_000, refine_passes=30, tolerance=1e-12)
+    seen = []
+    with DuckDBEngine(str(db), read_only=True) as engine:
+        model = segment(engine, Source.of_table("t"), ["a", "b", "c"], Settings(**settings, within="grp"),
+                        progress=lambda stage, message: seen.append(message))
+        alone = segment(engine, Source.of_table("only_dot"), ["a", "b", "c"], Settings(**settings))
+    assert any("group dot" in m and "a grid of its own" in m for m in seen)
+    dot = {g["name"]: g for g in model.within["groups"]}["dot"]
+    assert dot["k"] == 6 and not dot["notes"]
+    # outside reference: tillite --categorical on a table holding only the dot group (SQL WHERE in DuckDB)
+    assert sorted(dot["sizes"]) == sorted(alone.sizes)
+    np.testing.assert_allclose(by_column_name(model.columns, dot["centroids"], alone.columns),
+                               by_column_name(alone.columns, alone.centroids, alone.columns), rtol=1e-6, atol=1e-9)
+    assert dot["sse"] == pytest.approx(alone.sse, rel=1e-6)

@@ -1105,14 +1105,19 @@ def cells_statement_with_codes(
     """The cell statement of a run with categorical columns (keyed by the numeric grid and each column's
     code; with ``partition`` by (partition, cell, codes), ``where`` filtering the rows), the grid on the
     numeric columns alone, and those columns' positions."""
-    num_idx = numeric_positions(len(columns), groups)
-    center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
-    # the grid on the numeric columns alone (none: no key but the codes)
-    sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
-               axes=tuple(tuple(r) for r in np.asarray(grid.axes)[num_idx]) if len(num_idx) else None, sums_scaled=True)
+    sub, num_idx = numeric_grid(grid, len(columns), groups)
     statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, target, extra_keys=code_names,
                                        partition=partition, where=where)
     return statement, sub, num_idx
+
+
+def numeric_grid(grid: Grid, d: int, groups: Sequence[np.ndarray]) -> tuple[Grid, np.ndarray]:
+    """The grid on the numeric columns alone (none: no key but the codes), and their positions among d."""
+    num_idx = numeric_positions(d, groups)
+    center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
+    sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
+               axes=tuple(tuple(r) for r in np.asarray(grid.axes)[num_idx]) if len(num_idx) else None, sums_scaled=True)
+    return sub, num_idx
 
 
 def run_cell_pass_with_codes(

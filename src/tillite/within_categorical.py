@@ -27,8 +27,8 @@ from .settings import Settings
 from .sqlgen import Grid, Partitioning, Source
 from .stages import (
     CODE_SPACING, Profile, canonical_sample, category_specs, cells_statement_with_codes, cells_with_codes, center_and_scale,
-    checked_categorical_source, choose_width, grid_with_category_codes, indicator_weights, profile_with_codes, sampled_texts,
-    seeded_sample,
+    checked_categorical_source, choose_width, grid_with_category_codes, indicator_weights, numeric_grid, profile_with_codes,
+    sampled_texts, seeded_sample,
 )
 from .within import GroupedProfile, WithinInputs, sampled_groups
 
@@ -71,9 +71,7 @@ class CategoricalInputs(WithinInputs):
         return statement
 
     def cells_of(self, got: dict[str, np.ndarray], grid: Grid) -> tuple[Any, np.ndarray, int]:
-        # the statement is rebuilt only for its numeric sub-grid and positions (no SQL runs here)
-        _, sub, num_idx = cells_statement_with_codes(self.source, self.columns, grid, self.indicator_groups,
-                                                     cat.code_names(self.specs), "duckdb")
+        sub, num_idx = numeric_grid(grid, len(self.columns), self.indicator_groups)
         cp = cells_with_codes(got, grid, sub, num_idx, self.indicator_groups, len(self.columns))
         return cp.cells, cp.keys, cp.skipped
 
