@@ -71,7 +71,10 @@ def _apply_group_names(model: Model, given: dict[Any, Any], group: str | None) -
     if not found:
         raise NamingError(f"--group {group} is not a group of the model's {model.within['column']}; its groups: {listing}")
     entry, one = found[0]
-    apply_names(one, given)
+    try:
+        apply_names(one, given)
+    except NamingError as err:
+        raise NamingError(f"group {group}: {err}") from None
     if one.names:
         entry["names"] = one.names
     else:
