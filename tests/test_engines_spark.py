@@ -337,3 +337,33 @@ def test_categorical_segment_and_labels_equal_duckdb(sparks, duck, data, engine_
     label(sparks, Source.of_table(REGISTERED), ref, "kind_segments", materialize=True)
     # reference: DuckDB's labels over the same rows
     assert_same_labels(ordered_rows(sparks, "kind_segments"), expected, engine_rows)
+
+
+def test_segment_within_with_a_categorical_column_and_its_labels_equal_duckdb(spark, sparks, data, engine_rows, tmp_path):
+    import warnings
+
+    from engine_checks import assert_same_within_labels, assert_same_within_model
+
+    from tillite.within import label_within_select
+
+    band = "CASE WHEN id % 3 = 0 THEN 'east' WHEN id % 3 = 1 THEN 'west' END"  # a category column beside kind
+    spark.sql(f"CREATE OR REPLACE TEMPORARY VIEW points_banded AS SELECT *, {band} AS band FROM {REGISTERED}")
+    copy = tmp_path / "banded.duckdb"
+    copy.write_bytes(data[0].read_bytes())
+    with duckdb.connect(str(copy)) as con:
+        con.execute(f'CREATE VIEW points_banded AS SELECT *, {band} AS band FROM "{TABLE}"')
+    src = Source.of_table("points_banded")
+    settings = Settings(**{**SETTINGS, "k": 2}, within="kind", categorical=("band",))
+    with DuckDBEngine(str(copy)) as duck, warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the NULL group: one row, one segment
+        ref = segment(duck, src, COLUMNS, settings)
+        from tillite.stages import model_source
+
+        banded = model_source(duck, src, ref)
+        select = label_within_select(duck, banded, ref, ["id", *COLUMNS, "kind", "band"], materialize=False)
+        want = duck.query(exp.select(exp.Star()).from_(sqlgen.subquery(select, "l")).order_by(sqlgen.col("id")))
+        got = segment(sparks, src, COLUMNS, settings)
+    # reference: DuckDB running the same trees ((group, cell, code) cell pass, joined refine passes)
+    assert_same_within_model(got, ref)
+    label(sparks, src, ref, "band_groups")
+    assert_same_within_labels(ordered_rows(sparks, "band_groups"), want, engine_rows)

@@ -493,6 +493,33 @@ def test_report_opens_in_headless_chromium_with_every_chart_drawn(tmp_path):
     assert look.requests == []
 
 
+def test_within_report_opens_in_headless_chromium_with_the_first_group_drawn(tmp_path):
+    """A --within report in a real browser: the first group's section is open with every chart drawn, the
+    others closed (their charts take no room until opened); no console error, no network request."""
+    browser = _browser_or_skip()
+    from headless_browser import look_at, region_is_drawn
+
+    from tillite import demo
+
+    db = tmp_path / "demo.duckdb"
+    demo.build_demo_database(db, rows=20_000, days=20, seed=7)
+    with DuckDBEngine(str(db)) as engine:
+        src = Source.of_table("meter_days")
+        model = segment(engine, src, list(demo.DEMO_COLUMNS), Settings(k=3, within="district"))
+        content = R.report_of_model(engine, src, model)
+    page = R.write_report(content, tmp_path / "report.html")
+    look = look_at(page, browser=browser)
+    first = {c for c in look.charts if c.startswith("group-0-chart-")}
+    assert {"group-0-chart-sizes", "group-0-chart-profile", "group-0-chart-map"} <= first
+    for chart in first:
+        box = look.charts[chart]
+        assert box["width"] > 50 and box["height"] > 50, chart
+        assert region_is_drawn(look.png, box), f"{chart} is blank"
+    assert all(f"group-{i}-chart-sizes" in look.charts for i in range(len(model.within["groups"])))
+    assert look.errors == []
+    assert look.requests == []
+
+
 @pytest.mark.parametrize("dialect", ["duckdb", "postgres", "spark"])
 def test_report_statements_render_and_parse_back_in_each_dialect(dialect):
     import sqlglot

@@ -7,6 +7,7 @@ plain SQL WHERE in DuckDB), scikit-learn's KMeans(n_init=10) objective on the gr
 
 from __future__ import annotations
 
+import copy
 import json
 import warnings
 
@@ -263,9 +264,9 @@ def test_bad_within_gives_one_error_line(many_groups_db, extra, needles):
 def test_commands_without_within_support_refuse_such_a_model_in_one_line(within_db, tmp_path):
     out = tmp_path / "m.json"
     assert run("segment", within_db, "-t", "meters", "-c", "a,b,c", "--k", 2, "--within", "grp", "-o", out, "-q").exit_code == 0
-    assert_one_error_line(run("report", within_db, "-t", "meters", "--model", out, "-o", tmp_path / "r.html", "-q"),
-                          "segment --within", "tillite report")
-    assert_one_error_line(run("name", out, 0, "steady"), "segment --within", "tillite name")
+    assert_one_error_line(run("report", within_db, "-t", "meters", "--model", out, "--labels", "meters", "-q"),
+                          "--labels", "segment --within")
+    assert_one_error_line(run("name", out, 0, "steady"), "segment --within", "--group", "harbour")
     assert_one_error_line(run("sql", "-t", "meters", "--stage", "refine", "--model", out), "tillite sql")
 
 
@@ -428,3 +429,101 @@ def test_show_of_a_model_with_one_group_says_one_group_in_the_singular(tmp_path)
     out = run("show", path).stdout
     assert "(1 group, 2 segments in all)" in out, out
 
+
+
+# ----------------------------------------------------------------------------- report and names
+
+
+def test_report_of_a_within_model_gives_each_group_the_figures_of_its_own_rows(within_db, within_model, tmp_path):
+    from tillite import report as R
+
+    copy = tmp_path / "labels.duckdb"
+    copy.write_bytes(within_db.read_bytes())
+    with DuckDBEngine(str(copy)) as engine:
+        label(engine, Source.of_table("meters"), within_model, "meter_segments")
+        content = R.report_of_model(engine, Source.of_table("meters"), within_model, ["grp"])
+    assert [g["group"] for g in content["groups"]] == [g["name"] for g in within_model.within["groups"]]
+    con = duckdb.connect(str(copy), read_only=True)
+    try:
+        for g, entry in zip(content["groups"], within_model.within["groups"]):
+            where = "grp IS NULL" if entry["value"] is None else f"grp = '{entry['value']}'"
+            rows = con.execute(f"SELECT segment, a, b, c FROM meter_segments WHERE {where}").fetchall()
+            seg = np.array([r[0] for r in rows])
+            x = np.array([r[1:] for r in rows], dtype=float)
+            report = g["report"]
+            assert [s["rows"] for s in report["segments"]] == entry["sizes"]
+            for s, spread in zip(report["segments"], report["spread"]["a"]):
+                mine = x[seg == s["segment"], 0]
+                # outside reference: numpy mean, population sd, min and max of the group's rows in that segment
+                assert spread["mean"] == pytest.approx(mine.mean(), rel=1e-9, abs=1e-9)
+                assert spread["sd"] == pytest.approx(mine.std(), rel=1e-6, abs=1e-9)
+                assert (spread["min"], spread["max"]) == (mine.min(), mine.max())
+            assert report["map"] and report["map"]["centroids"]  # each group's map, kept in the model file
+            assert report["breakdowns"][0]["categories"] == [entry["name"] if entry["value"] is not None else "(missing)"]
+    finally:
+        con.close()
+    assert "statistical grouping" in content["header"]["caution"]
+
+
+def test_report_page_of_a_within_model_has_a_section_per_group_and_stays_self_contained(within_db, within_model, tmp_path):
+    import re
+
+    from tillite import report as R
+    from tillite.report_render import render_html, render_markdown
+
+    with DuckDBEngine(str(within_db), read_only=True) as engine:
+        content = R.report_of_model(engine, Source.of_table("meters"), within_model)
+    page = render_html(content)
+    assert page.count('<details class="group"') == len(within_model.within["groups"])
+    assert not re.search(r"<script|<link|<img|<iframe|@import|url\(|(src|href)=", page, re.I)
+    ids = re.findall(r' id="([^"]+)"', page)
+    assert len(ids) == len(set(ids))  # every figure id is unique across the groups
+    assert "statistical grouping" in page
+    md = render_markdown(content)
+    assert all(f"## grp = {g['name']}" in md for g in within_model.within["groups"])
+
+
+def test_name_names_segments_per_group_shown_by_show_report_and_the_label_view(within_db, within_model, tmp_path):
+    path, db = tmp_path / "m.json", tmp_path / "labels.duckdb"
+    within_model.write(path)
+    db.write_bytes(within_db.read_bytes())
+    result = run("name", path, "--group", "dune", 0, "dune steady")
+    assert result.exit_code == 0, result.output
+    assert run("name", path, "--group", "NULL", 1, "null busy").exit_code == 0
+    model = Model.read(path)
+    groups = {g["name"]: g for g in model.within["groups"]}
+    assert groups["dune"]["names"] == {"0": "dune steady"} and groups["NULL"]["names"] == {"1": "null busy"}
+    assert "harbour" in groups and "names" not in groups["harbour"]
+    assert '0 "dune steady"' in run("show", path).stdout
+    assert run("label", db, "-t", "meters", "--model", path, "--into", "named", "-q").exit_code == 0
+    con = duckdb.connect(str(db), read_only=True)
+    try:
+        got = dict(((g, s), n) for g, s, n in con.execute(
+            "SELECT DISTINCT grp, segment, segment_name FROM named WHERE segment_name IS NOT NULL").fetchall())
+    finally:
+        con.close()
+    # reference: the names given, on the rows of that group and segment only
+    assert got == {("dune", 0): "dune steady", (None, 1): "null busy"}
+    assert_one_error_line(run("name", path, "--group", "marsh", 0, "x"), "--group marsh", "dune")
+
+
+def test_segment_name_macro_of_a_model_named_per_group_equals_the_label_view(within_db, within_model, tmp_path):
+    from tillite import macros as M
+    from tillite.naming import apply_names
+
+    model = Model.from_dict(copy.deepcopy(within_model.to_dict()))  # the module's model stays unnamed
+    apply_names(model, {0: "dune steady", 2: "dune 'busy'"}, group="dune")
+    db = tmp_path / "named.duckdb"
+    db.write_bytes(within_db.read_bytes())
+    with DuckDBEngine(str(db)) as engine:
+        label(engine, Source.of_table("meters"), model, "named")
+    M.install_into(db, M.scoring_macros(model, "water"))
+    con = duckdb.connect(str(db), read_only=True)
+    try:
+        # reference: the label view's segment_name column, computed by another statement form (the per-group join)
+        differ = con.execute("SELECT count(*) FROM named WHERE water_segment_name(grp, a, b, c) IS DISTINCT FROM segment_name"
+                             ).fetchone()[0]
+        named = con.execute("SELECT count(*) FROM named WHERE segment_name IS NOT NULL").fetchone()[0]
+    finally:
+        con.close()
+    assert differ == 0 and named > 0

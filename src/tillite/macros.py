@@ -307,7 +307,7 @@ def _indicator_values(model: Model, v_names: Sequence[str]) -> dict[str, exp.Exp
 def scoring_arguments(model: Model) -> list[str]:
     """The source columns a scoring macro takes, in order: a `--within` model's group column first."""
     if model.within:
-        return [model.within["column"], *model.columns]
+        return [model.within["column"], *model.input_columns()]
     return model.input_columns()
 
 
@@ -329,6 +329,8 @@ def scoring_macros(model: Model, name: str) -> list[MacroDefinition]:
         out.append(MacroDefinition(macro, "scalar", fill(template("scoring"), values), model=name))
     if model.names and not model.within:  # <name>_segment_name once segments are named (`tillite name`)
         out.append(segment_name_macro(model, name, segment))
+    elif model.within and any(g.get("names") for g in model.within["groups"]):  # named per group (`name --group`)
+        out.append(within_segment_name_macro(model, name, segment))
     return out
 
 
@@ -537,4 +539,21 @@ def segment_name_macro(model: Model, name: str, segment: exp.Expression) -> Macr
     ])
     macro = f"{name}_segment_name"
     values = {"macro": identifier(macro), "params": identifiers(model.input_columns()), "body": expression(case, pretty=True)}
+    return MacroDefinition(macro, "scalar", fill(template("scoring"), values), model=name)
+
+
+def within_segment_name_macro(model: Model, name: str, segment: exp.Expression) -> MacroDefinition:
+    """<name>_segment_name(group, x...) of a --within model: the name given to the row's segment within its
+    group (`tillite name --group`), NULL where unnamed, unusable or in a group the model does not know."""
+    from .within_sql import group_predicate
+
+    ifs = []
+    for g in model.within["groups"]:
+        same = group_predicate(model.within["column"], g["value"], model.within["type"], TARGET)
+        for sid, given in sorted((int(k), v) for k, v in (g.get("names") or {}).items()):
+            ifs.append(exp.If(this=exp.and_(same.copy(), exp.EQ(this=segment.copy(), expression=sqlgen.num(sid))),
+                              true=exp.Literal.string(str(given))))
+    macro = f"{name}_segment_name"
+    values = {"macro": identifier(macro), "params": identifiers(scoring_arguments(model)),
+              "body": expression(exp.Case(ifs=ifs), pretty=True)}
     return MacroDefinition(macro, "scalar", fill(template("scoring"), values), model=name)

@@ -591,10 +591,15 @@ def _check_groups(body: dict[str, Any], where: str) -> None:
 
 
 def _check_group_value(g: dict[str, Any], where: str) -> None:
-    """A group's value is its text (or null for the NULL group) and its name is text."""
+    """A group's value is its text (or null for the NULL group), its name is text, and its segment names
+    (`tillite name --group`), if any, are text keyed by segment id."""
     if "value" not in g or not (g["value"] is None or isinstance(g["value"], str)) or not isinstance(g.get("name"), str):
         raise ModelError(f"{where} is damaged: a group of within lacks its value (text, or null for the NULL group) "
                          "or its name")
+    names = g.get("names", {})
+    if not isinstance(names, dict) or not all(isinstance(k, str) and k.lstrip("-").isdigit() and isinstance(v, str)
+                                               for k, v in names.items()):
+        raise ModelError(f"{where} is damaged: the segment names of group {g['name']} are not text keyed by segment id")
 
 
 def group_models(model: Model) -> list[tuple[dict[str, Any], Model]]:
@@ -607,7 +612,8 @@ def group_models(model: Model) -> list[tuple[dict[str, Any], Model]]:
             segment_sse=g["segment_sse"], radius=g["radius"], rows=g["rows"], skipped=g["skipped"],
             source=f"{model.source} where {model.within['column']} is {g['name']}", k=g["k"], method=model.method,
             ids=g.get("ids") or [], constant_columns=g.get("constant_columns", []), grid={"sd": g.get("sd")},
-            params={k: v for k, v in (("k_choice", g.get("k_choice")),) if v},
+            params={k: v for k, v in (("k_choice", g.get("k_choice")),) if v}, categorical=model.categorical,
+            names=dict(g.get("names") or {}),
         )
         out.append((g, one))
     return out
@@ -628,6 +634,16 @@ def within_summary(model: Model) -> dict[str, Any]:
     }
 
 
+def within_sse_line(model: Model) -> str:
+    """The SSE line of `show` for a --within model: under zscore each group is measured in its own
+    standard deviations, which the line says in words rather than in nested brackets."""
+    weighted = " (weighted)" if any(w not in (0, 1) for w in model.weights) else ""
+    if model.scaling == "zscore":
+        return (f"SSE (row level, summed over the groups): {model.sse:.6g}; each group's part is in that group's "
+                f"own standard deviations{weighted}")
+    return f"SSE (row level, summed over the groups, in original units{weighted}): {model.sse:.6g}"
+
+
 def within_describe(model: Model) -> str:
     """`tillite show` of a --within model: one line per group, then each group's segment table."""
     groups = group_models(model)
@@ -638,7 +654,7 @@ def within_describe(model: Model) -> str:
         f"({len(groups)} group{'' if len(groups) == 1 else 's'}, {segments} segment{'' if segments == 1 else 's'} in all), "
         f"scaling={model.scaling}",
         f"rows: {model.rows:,} ({model.skipped:,} skipped for NULL/NaN/Inf)",
-        f"SSE (row level, summed over the groups, each in its own {model.units()}): {model.sse:.6g}",
+        within_sse_line(model),
         "",
         "groups:",
     ]

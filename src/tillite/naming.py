@@ -30,9 +30,15 @@ def read_names_file(path: str | Path) -> dict[str, Any]:
     return data
 
 
-def apply_names(model: Model, given: dict[Any, Any]) -> Model:
-    """Set names on a model (in place): keys are segment ids, values text; an empty text removes a name."""
-    model.refuse_within("tillite name")
+def apply_names(model: Model, given: dict[Any, Any], group: str | None = None) -> Model:
+    """Set names on a model (in place): keys are segment ids, values text; an empty text removes a name.
+
+    A --within model names the segments of one group (``group``: its name as `show` prints it), by the same
+    rules; its names are kept in that group's entry."""
+    if model.within:
+        return _apply_group_names(model, given, group)
+    if group is not None:
+        raise NamingError("--group is for a model of segments within groups (segment --within); this model has none")
     ids = model.segment_ids()
     names = dict(model.names)
     for key, value in given.items():
@@ -52,9 +58,33 @@ def apply_names(model: Model, given: dict[Any, Any]) -> Model:
     return model
 
 
-def name_model_file(path: Path, given: dict[Any, Any]) -> Model:
+def _apply_group_names(model: Model, given: dict[Any, Any], group: str | None) -> Model:
+    """``apply_names`` on one group of a --within model, named as `show` names it."""
+    from .model import group_models
+
+    groups = group_models(model)
+    listing = ", ".join(g["name"] for g, _ in groups)
+    if group is None:
+        raise NamingError(f"this model holds segments within each {model.within['column']} (segment --within): give --group "
+                          f"with one of its groups: {listing}")
+    found = [(g, one) for g, one in groups if g["name"] == group]
+    if not found:
+        raise NamingError(f"--group {group} is not a group of the model's {model.within['column']}; its groups: {listing}")
+    entry, one = found[0]
+    try:
+        apply_names(one, given)
+    except NamingError as err:
+        raise NamingError(f"group {group}: {err}") from None
+    if one.names:
+        entry["names"] = one.names
+    else:
+        entry.pop("names", None)
+    return model
+
+
+def name_model_file(path: Path, given: dict[Any, Any], group: str | None = None) -> Model:
     """Read, name, and write back atomically (a failure leaves the file as it was)."""
-    model = apply_names(Model.read(path), given)
+    model = apply_names(Model.read(path), given, group)
     model.write(path)
     return model
 

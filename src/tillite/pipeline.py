@@ -40,7 +40,7 @@ from .stages import (  # noqa: F401  (re-exported: the stages' old import path)
     run_cell_pass, run_profile, run_refine_pass, run_second_phase, second_phase, size_order, standardise_cells,
     temporary_cell_map,
     # categorical columns
-    CODE_SPACING, categorical_source, code_assignment, grid_with_category_codes, model_source, run_cell_pass_with_codes,
+    CODE_SPACING, categorical_source, code_assignment, indicator_weights, grid_with_category_codes, model_source, run_cell_pass_with_codes,
     run_refine_pass_with_codes,
 )
 from .stages import axes_text
@@ -89,10 +89,8 @@ def segment(
         columns = columns + [n for s in specs for n in s.names]
     else:
         check_columns(engine, source, columns)
-    weights = settings.column_weights(columns)
+    weights = indicator_weights(settings, columns, specs)
     groups = cat.indicator_positions(columns, specs)
-    for spec, pos in zip(specs, groups):
-        weights[pos] = float(settings.weights.get(spec.column, 1.0))
 
     # 1. profile on a sample, and the grid from it
     t0 = time.perf_counter()
@@ -219,6 +217,13 @@ def label(
         )
     if model.names and not model.within:  # a segment_name column once segments are named (`tillite name`)
         select = sqlgen.segment_names_column(select, "segment", {int(k): v for k, v in model.names.items()})
+    elif model.within and any(g.get("names") for g in model.within["groups"]):  # named per group (`name --group`)
+        from .within_sql import group_segment_names_column
+
+        select = group_segment_names_column(
+            select, model.within["column"], model.within["type"], "segment",
+            [(g["value"], {int(k): v for k, v in g["names"].items()}) for g in model.within["groups"] if g.get("names")],
+            engine.target)
     if source.files:
         return _label_to_file(engine, source, select, into, replace)
     target = tuple(p.lower() for p in into.split("."))

@@ -8,7 +8,7 @@ import json
 import math
 import os
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 from sqlglot import exp
@@ -192,6 +192,11 @@ def sample_quartiles(
     percent = quartile_sample_percent(model) if percent is None else percent
     rows = assigned_rows(engine, source, model, [], labels)
     got = engine.query(sqlgen.quartile_statement(sqlgen.sampled_rows(rows, percent, engine.target), model.columns, engine.target))
+    return quartiles_of(got, model.columns)
+
+
+def quartiles_of(got: dict[str, np.ndarray], columns: Sequence[str]) -> tuple[dict[int, dict[str, Any]], int]:
+    """The quartile statement's result per segment (rows with no segment left out), and the rows sampled."""
     out: dict[int, dict[str, Any]] = {}
     segs = _masked_ints(got["s"])
     sampled = 0
@@ -199,7 +204,7 @@ def sample_quartiles(
         if sid is None:
             continue
         per = {}
-        for j, name in enumerate(model.columns):
+        for j, name in enumerate(columns):
             if f"q_{j}" in got:  # one list of the three quartiles (DuckDB)
                 listed = got[f"q_{j}"][i]
                 values = [None] * 3 if np.ma.is_masked(listed) or listed is None else list(listed)
@@ -330,7 +335,11 @@ def cell_segments(cells: CF, model: Model, keys: np.ndarray | None = None) -> np
 
 def map_figure(cells_grid: CF, model: Model, keys: np.ndarray | None = None, bins: int = MAP_BINS) -> dict[str, Any]:
     """The cells on the first two principal axes; cells on the same spot of a bins x bins raster are summed."""
-    cells = cells_in_model_space(cells_grid, model)
+    return map_of_cells(cells_in_model_space(cells_grid, model), model, keys, bins)
+
+
+def map_of_cells(cells: CF, model: Model, keys: np.ndarray | None = None, bins: int = MAP_BINS) -> dict[str, Any]:
+    """``map_figure`` of cells already in the model's weighted scaled units."""
     keep = cells.n > 0
     cells = CF(cells.n[keep], cells.ls[keep], cells.ss[keep])
     keys = None if keys is None or len(keys) != len(keep) else np.asarray(keys)[keep]
@@ -366,6 +375,26 @@ def stored_map(cells_grid: CF, keys: np.ndarray | None, model: Model) -> dict[st
         return {}
     figure = map_figure(cells_grid, model, keys, bins=MAP_BINS)
     return _rounded(figure)
+
+
+def attach_group_maps(model: Model, cells: Mapping[str | None, CF]) -> None:
+    """Each group of a --within model in ``cells`` (its value -> its cells in its own scaled units) gets its
+    report map (``report_map`` of its entry), as a single model keeps its map; other groups keep theirs (a
+    store's groups that a refresh did not re-segment)."""
+    from .model import group_models
+    from .segmenters import one_blas_thread
+
+    for entry, one in group_models(model):
+        if entry["value"] not in cells:
+            continue
+        group_cells = cells[entry["value"]]
+        w = np.asarray(one.weights, dtype=np.float64)
+        try:
+            with np.errstate(all="ignore"), one_blas_thread():
+                weighted = F.affine(group_cells, w, np.zeros_like(w))
+                entry["report_map"] = _rounded(map_of_cells(weighted, one)) if (group_cells.n > 0).any() else {}
+        except (ValueError, FloatingPointError, np.linalg.LinAlgError):
+            entry["report_map"] = {}
 
 
 def _rounded(value: Any) -> Any:
@@ -557,13 +586,19 @@ def report_of_model(
 
     from .stages import check_columns, model_source
 
-    model.refuse_within("tillite report")
     by = list(dict.fromkeys(by))  # a column named twice is one breakdown
     source = model_source(engine, source, model)  # categorical columns: their indicators' means are the shares
     present = check_columns(engine, source, list(model.columns))
     missing = [c for c in by if c not in present]
     if missing:
         raise TilliteError(f"--by column {', '.join(missing)} not found in {source.label}; columns there: {', '.join(present)}")
+    if model.within:
+        if labels:
+            raise TilliteError("--labels is not taken with a model of segments within groups (segment --within) yet; "
+                               "leave it out: the report assigns the rows in its one scan")
+        if model.within["column"] not in present:
+            raise TilliteError(f"--within column {model.within['column']} of the model not found in {source.label}")
+        return within_report(engine, source, model, by, progress)
     labelled = _labels_table(engine, labels, model, by) if labels else None
     t0 = time.perf_counter()
     stats, breakdowns = report_scan(engine, source, model, by, labels=labelled)
@@ -610,3 +645,52 @@ def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress
     _say(progress, "report", f"store {store}: statistics, {cells_grid.m:,} kept cells, {len(breakdowns)} breakdown(s)")
     return assemble(info.model, with_quartiles(stats, quartiles), cells_grid, breakdowns,
                     store_history.history(engine, store), store, keys, sampled=sampled)
+
+
+# --------------------------------------------------------------------------- reports of --within models
+
+
+def within_report(engine: Engine, source: Source, model: Model, by: Sequence[str] = (), progress: Any = None) -> dict[str, Any]:
+    """The report of a `segment --within` model: every group's report (sizes, profile, spread, its map kept in the
+    model file, breakdowns) from the same two statements a single model's report makes, one scan and one sample,
+    each row's segment keyed by (group, segment) through the per-group join of the label view."""
+    import time
+
+    from .model import group_models
+    from .within import model_assignment
+    from .within_sql import report_rows_select
+
+    groups = group_models(model)
+    stride = max(g["k"] for g, _ in groups) + 1
+    t0 = time.perf_counter()
+    rows = report_rows_select(source, model.columns, by, model_assignment(model), engine.target, stride)
+    got = engine.query(sqlgen.report_scan_statement(rows, model.columns, by))
+    codes = _masked_ints(got["s"])
+    sets = _grouping_sets(got, len(by), [i for i, s in enumerate(codes) if s is not None])
+    _say(progress, "report", f"per-segment statistics of {len(groups):,} group(s){' and breakdowns by ' + ', '.join(by) if by else ''}, "
+                             f"one scan, {time.perf_counter() - t0:.2f} s")
+    t1 = time.perf_counter()
+    sample = engine.query(sqlgen.quartile_statement(sqlgen.sampled_rows(rows, quartile_sample_percent(model), engine.target),
+                                                    model.columns, engine.target))
+    quartiles, sampled = quartiles_of(sample, model.columns)
+    _say(progress, "report", f"quartiles from a sample of {sampled:,} rows, {time.perf_counter() - t1:.2f} s")
+    reports = []
+    for position, (entry, one) in enumerate(groups):
+        mine = [i for i, s in enumerate(codes) if s is not None and s // stride == position]
+        segs = [None if s is None else s % stride for s in codes]
+        stats = _pooled_statistics(got, model.columns, [i for i in mine if sets[i] == 0], segs)
+        breakdowns = [_ranked_breakdown(got, one, column, f"c{b}", [i for i in mine if sets[i] == b], segs, TOP_CATEGORIES)
+                      for b, column in enumerate(by)]
+        own = {s % stride: q for s, q in quartiles.items() if s // stride == position}
+        content = assemble(one, with_quartiles(stats, own), _no_cells(one), breakdowns, [], None, None,
+                           figure=entry.get("report_map") or None, sampled=sum(q["n"] for q in own.values()))
+        content["header"].update(source=model.source, units=f"in the group's own {one.units(short=True).removeprefix('in ')}")
+        reports.append({"group": entry["name"], "value": entry["value"], "notes": entry.get("notes", []), "report": content})
+    return {
+        "format": REPORT_FORMAT, "version": REPORT_VERSION,
+        "header": {"source": model.source, "within": model.within["column"], "rows": model.rows, "skipped": model.skipped,
+                   "columns": list(model.columns), "method": model.method, "groups": len(groups),
+                   "segments": sum(g["k"] for g, _ in groups), "built": model.created, "sse": model.sse,
+                   "quartile_sample": sampled, "quartile_sample_percent": quartile_sample_percent(model), "caution": CAUTION},
+        "groups": reports,
+    }

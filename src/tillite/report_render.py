@@ -425,29 +425,101 @@ def _header_items(h: dict[str, Any]) -> list[tuple[str, str]]:
 
 def render_html(content: dict[str, Any]) -> str:
     """One self-contained page: inline CSS and SVG, no script, no external resource."""
+    if content.get("groups") is not None:
+        return render_within_html(content)
     h = content["header"]
-    parts = [
+    parts = _page_head(str(h["source"]))
+    parts += [
+        '<dl class="header">' + "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in _header_items(h)) + "</dl>",
+        f'<p class="caution">{esc(h["caution"])}</p>',
+    ]
+    parts += _html_sections(content, "h2")
+    return _page_end(parts)
+
+
+#: Extra style of a --within report's group sections.
+_GROUP_STYLE = "details.group>summary{cursor:pointer}details.group>summary h2{display:inline-block;margin-top:1em}"
+
+
+def _page_head(source: str, style: str = _STYLE) -> list[str]:
+    return [
         "<!DOCTYPE html>",
         '<html lang="en"><head><meta charset="utf-8">',
         '<meta http-equiv="Content-Security-Policy" content="default-src \'none\'; style-src \'unsafe-inline\'; img-src data:">',
-        f"<title>{esc('Segments of ' + str(h['source']))}</title><style>{_STYLE}</style></head><body>",
-        f"<h1>{esc('Segments of ' + str(h['source']))}</h1>",
-        '<dl class="header">' + "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in _header_items(h)) + "</dl>",
-        f'<p class="caution">{esc(h["caution"])}</p>',
-        "<h2>Sizes</h2>", sizes_chart(content["segments"]),
-        "<h2>Profile</h2>", profile_chart(content),
-        "<h2>Spread</h2>",
+        f"<title>{esc('Segments of ' + source)}</title><style>{style}</style></head><body>",
+        f"<h1>{esc('Segments of ' + source)}</h1>",
     ]
-    parts += [spread_chart(content, c, j) for j, c in enumerate(h["columns"])]
-    if content.get("map"):
-        parts += ["<h2>Map</h2>", map_chart(content)]
-    for i, b in enumerate(content.get("breakdowns") or []):
-        parts += [f"<h2>{esc('Breakdown by ' + b['column'])}</h2>", breakdown_chart(content, b, i)]
-    if content.get("history"):
-        parts += ["<h2>Refresh history</h2>", history_charts(content)]
+
+
+def _page_end(parts: list[str]) -> str:
     parts.append("<p><small>Written by tillite. Every figure was computed in the database as an aggregate; "
                  "no row left it.</small></p></body></html>")
     return "\n".join(parts) + "\n"
+
+
+def _html_sections(content: dict[str, Any], hx: str) -> list[str]:
+    """Sizes, profile, spread, map, breakdowns and history of one model, headed by ``hx`` elements."""
+    h = content["header"]
+    parts = [f"<{hx}>Sizes</{hx}>", sizes_chart(content["segments"]), f"<{hx}>Profile</{hx}>", profile_chart(content),
+             f"<{hx}>Spread</{hx}>"]
+    parts += [spread_chart(content, c, j) for j, c in enumerate(h["columns"])]
+    if content.get("map"):
+        parts += [f"<{hx}>Map</{hx}>", map_chart(content)]
+    for i, b in enumerate(content.get("breakdowns") or []):
+        parts += [f"<{hx}>{esc('Breakdown by ' + b['column'])}</{hx}>", breakdown_chart(content, b, i)]
+    if content.get("history"):
+        parts += [f"<{hx}>Refresh history</{hx}>", history_charts(content)]
+    return parts
+
+
+def _within_header_items(h: dict[str, Any]) -> list[tuple[str, str]]:
+    return [
+        ("source", h["source"]), ("segments within each", h["within"]),
+        ("groups", fmt(h["groups"])), ("segments in all", fmt(h["segments"])),
+        ("rows", fmt(h["rows"])), ("skipped rows (NULL/NaN/Inf)", fmt(h["skipped"])),
+        ("columns", ", ".join(h["columns"])), ("method", h["method"]), ("model built", h["built"] or "–"),
+        ("SSE (row level, summed over the groups)", fmt(h["sse"])),
+    ]
+
+
+def _group_items(g: dict[str, Any]) -> list[tuple[str, str]]:
+    """The figures heading one group's section."""
+    h = g["report"]["header"]
+    items = [("rows", fmt(h["rows"])), ("segmented rows", fmt(h["segmented"])), ("k", str(h["k"])),
+             (f"SSE (row level, {h.get('units', 'in scaled units')})", fmt(h["sse"])),
+             ("Calinski-Harabasz (exact, from the segments' CFs)", fmt(h["calinski_harabasz"]))]
+    return items + ([("notes", "; ".join(g["notes"]))] if g.get("notes") else [])
+
+
+def render_within_html(content: dict[str, Any]) -> str:
+    """A --within model's report: the groups' table, then one section per group that opens and closes by a click
+    (``<details>``: no script), the first one open, each drawn as a single model's report is; figure ids carry the
+    group's position, so they stay unique."""
+    h = content["header"]
+    parts = _page_head(str(h["source"]), _STYLE + _GROUP_STYLE)
+    parts += [
+        '<dl class="header">' + "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in _within_header_items(h)) + "</dl>",
+        f'<p class="caution">{esc(h["caution"])}</p>',
+        f"<h2>{esc('Groups of ' + h['within'])}</h2>",
+        "<p>Each group was segmented on its own; click a group's name below to open or close its section.</p>",
+        '<table class="groups"><thead><tr><th>group</th><th>rows</th><th>segments</th><th>sizes</th><th>SSE</th></tr>'
+        "</thead><tbody>",
+    ]
+    for i, g in enumerate(content["groups"]):
+        r = g["report"]
+        sizes = ", ".join(fmt(s["rows"]) for s in r["segments"])
+        parts.append(f'<tr><td>{esc(g["group"])}</td><td class="num">{esc(fmt(r["header"]["rows"]))}</td>'
+                     f'<td class="num">{esc(r["header"]["k"])}</td><td class="num">{esc(sizes)}</td>'
+                     f'<td class="num">{esc(fmt(r["header"]["sse"]))}</td></tr>')
+    parts.append("</tbody></table>")
+    for i, g in enumerate(content["groups"]):
+        r = g["report"]
+        parts.append(f'<details class="group" id="group-{i}"{" open" if i == 0 else ""}>'
+                     f'<summary><h2>{esc(h["within"] + " = " + g["group"])}</h2></summary>')
+        parts.append('<dl class="header">' + "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in _group_items(g)) + "</dl>")
+        sections = "\n".join(_html_sections(r, "h3")).replace('id="chart-', f'id="group-{i}-chart-')
+        parts += [sections, "</details>"]
+    return _page_end(parts)
 
 
 def _md_escape(text: Any) -> str:
@@ -462,22 +534,48 @@ def _md_table(head: Sequence[Any], rows: Sequence[Sequence[Any]]) -> list[str]:
 
 def render_markdown(content: dict[str, Any]) -> str:
     """The same content as text: the header, then every chart's numbers as a table."""
+    if content.get("groups") is not None:
+        return render_within_markdown(content)
     h = content["header"]
-    segments = content["segments"]
     lines = [f"# Segments of {_md_escape(h['source'])}", ""]
     lines += [f"- **{_md_escape(k)}**: {_md_escape(v)}" for k, v in _header_items(h)] + ["", f"> {_md_escape(h['caution'])}", ""]
-    lines += ["## Sizes", ""] + _md_table(
+    return "\n".join(lines + _md_sections(content, "##"))
+
+
+def render_within_markdown(content: dict[str, Any]) -> str:
+    """A --within model's report as text: the groups' table, then each group's sections."""
+    h = content["header"]
+    lines = [f"# Segments of {_md_escape(h['source'])}", ""]
+    lines += [f"- **{_md_escape(k)}**: {_md_escape(v)}" for k, v in _within_header_items(h)] + ["", f"> {_md_escape(h['caution'])}", ""]
+    lines += [f"## Groups of {_md_escape(h['within'])}", ""] + _md_table(
+        ["group", "rows", "segments", "sizes", "SSE"],
+        [[g["group"], fmt(g["report"]["header"]["rows"]), g["report"]["header"]["k"],
+          ", ".join(fmt(s["rows"]) for s in g["report"]["segments"]), fmt(g["report"]["header"]["sse"])] for g in content["groups"]],
+    )
+    for g in content["groups"]:
+        lines += [f"## {_md_escape(h['within'] + ' = ' + g['group'])}", ""]
+        lines += [f"- **{_md_escape(k)}**: {_md_escape(v)}" for k, v in _group_items(g)] + [""]
+        lines += _md_sections(g["report"], "###")
+    return "\n".join(lines)
+
+
+def _md_sections(content: dict[str, Any], hx: str) -> list[str]:
+    """Every chart's numbers of one model as tables, headed by ``hx`` (## or ###)."""
+    h = content["header"]
+    segments = content["segments"]
+    sub = hx + "#"
+    lines = [f"{hx} Sizes", ""] + _md_table(
         ["segment", "name", "rows", "share", "description"],
         [[s["segment"], s.get("name") or "", fmt(s["rows"]), pct(s["share"]), s["description"]] for s in segments],
     )
-    lines += ["## Profile (segment mean; sd from the overall mean)", ""] + _md_table(
+    lines += [f"{hx} Profile (segment mean; sd from the overall mean)", ""] + _md_table(
         ["segment", *h["columns"]],
         [[segment_label(s)] + [f"{fmt(m)}; {'–' if z is None else f'{z:+.2f}'}" for m, z in zip(p["mean"], p["z"])]
          for s, p in zip(segments, content["profile"])],
     )
-    lines += ["## Spread", "", quartile_note(content), ""]
+    lines += [f"{hx} Spread", "", quartile_note(content), ""]
     for c in h["columns"]:
-        lines += [f"### {_md_escape(c)}", ""] + _md_table(
+        lines += [f"{sub} {_md_escape(c)}", ""] + _md_table(
             ["segment", "rows", "mean", "sd", "min", "q25", "median", "q75", "max"],
             [[segment_label(s), fmt(s["rows"]), fmt(r["mean"]), fmt(r["sd"]), fmt(r["min"]), fmt(r["q25"]), fmt(r["q50"]),
               fmt(r["q75"]), fmt(r["max"])] for s, r in zip(segments, content["spread"][c])],
@@ -485,12 +583,12 @@ def render_markdown(content: dict[str, Any]) -> str:
     m = content.get("map")
     if m:
         share = m["variance_share"]
-        lines += ["## Map", "", f"{m['cells']:,} grid cells on the first two principal axes, which hold "
+        lines += [f"{hx} Map", "", f"{m['cells']:,} grid cells on the first two principal axes, which hold "
                   f"{pct(sum(share[:2]))} of the variance ({', '.join(pct(v) for v in share[:2])}).", ""]
         lines += _md_table(["", *h["columns"]], [[f"axis {a + 1} loading"] + [f"{v:+.3f}" for v in m["axes"][a]] for a in range(len(m["axes"]))])
         lines += _md_table(["segment", "axis 1", "axis 2"], [[c["segment"], f"{c['x']:.3f}", f"{c['y']:.3f}"] for c in m["centroids"]])
     for b in content.get("breakdowns") or []:
-        lines += [f"## Breakdown by {_md_escape(b['column'])}", ""]
+        lines += [f"{hx} Breakdown by {_md_escape(b['column'])}", ""]
         rows = []
         for s in segments:
             counts = b["counts"].get(str(s["segment"]), [0] * len(b["categories"]))
@@ -500,9 +598,9 @@ def render_markdown(content: dict[str, Any]) -> str:
     hist = content.get("history")
     if hist:
         ids = sorted({k for x in hist for k in x["sizes"]}, key=int)
-        lines += ["## Refresh history", ""] + _md_table(
+        lines += [f"{hx} Refresh history", ""] + _md_table(
             ["when", "event", "new", "changed", "vanished", "rows", "largest move (sd)"] + [f"rows in {i}" for i in ids],
             [[x["at"][:19], x["event"], x["new"], x["changed"], x["vanished"], fmt(x["rows"]),
               "–" if x["largest_shift"] is None else f"{x['largest_shift']:.3f}"] + [fmt(x["sizes"].get(i)) for i in ids] for x in hist],
         )
-    return "\n".join(lines)
+    return lines

@@ -981,22 +981,60 @@ def categorical_source(
     read with their indicators; and the profile of the numeric columns followed by one category code
     column per categorical column."""
     t0 = time.perf_counter()
-    described = dict(engine.describe(source))
-    cat.check_categorical(columns, settings.categorical, described, source.label)
-    if columns:
-        check_columns(engine, source, columns)
-    rows = count_rows(engine, source)
+    described, rows = checked_categorical_source(engine, source, columns, settings)
     p, target, texts = len(columns), settings.sample_rows, list(settings.categorical)
 
     def fetch(**kw: Any) -> tuple[np.ndarray, list[list[Any]]]:
         got = engine.query(sqlgen.sample_statement(source, columns, engine.target, text_columns=texts, **kw))
         x = [np.asarray(got[sqlgen.internal(f"x{j}")], dtype=np.float64) for j in range(p)]
         m = len(got[sqlgen.internal("t0")])
-        values = [[None if null else v for v, null in zip(np.ma.getdata(got[sqlgen.internal(f"t{i}")]).tolist(),
-                                                           null_mask(got[sqlgen.internal(f"t{i}")]))] for i in range(len(texts))]
+        values = sampled_texts(got, len(texts))
         return (np.column_stack(x) if p else np.zeros((m, 0))), values
 
     x, values = seeded_sample(engine, rows, settings, fetch, lambda got: len(got[0]))
+    specs, codes = category_specs(texts, values, described, settings)
+    sample = canonical_sample(np.hstack([x, codes]), target, settings.seed)
+    prof = profile_with_codes(engine, sample, p, rows, settings, t0)
+    return cat.with_indicators(source, specs, engine.target), specs, prof
+
+
+def checked_categorical_source(engine: Engine, source: Source, columns: Sequence[str], settings: Settings) -> tuple[dict[str, str], int]:
+    """The source's columns and types, and its row count, after refusing bad numeric or categorical columns."""
+    described = dict(engine.describe(source))
+    cat.check_categorical(columns, settings.categorical, described, source.label)
+    if columns:
+        check_columns(engine, source, columns)
+    return described, count_rows(engine, source)
+
+
+def profile_with_codes(engine: Engine, sample: np.ndarray, p: int, rows: int, settings: Settings, t0: float) -> Profile:
+    """The profile of a sample holding ``p`` numeric columns, then one category code per categorical column
+    (centre 0 and scale 1: the codes are keys, not values)."""
+    codes = sample.shape[1] - p
+    center, scale = center_and_scale(sample[:, :p], settings.scaling)
+    return Profile(rows=rows, sample=sample, center=np.concatenate([center, np.zeros(codes)]),
+                   scale=np.concatenate([scale, np.ones(codes)]), seconds=time.perf_counter() - t0,
+                   repeats=sample_promise(engine, rows, settings))
+
+
+def indicator_weights(settings: Settings, columns: Sequence[str], specs: Sequence[cat.CategoricalColumn]) -> np.ndarray:
+    """Each column's weight, every indicator of a categorical column taking that column's (--weights district=0.5)."""
+    weights = settings.column_weights(columns)
+    for spec, pos in zip(specs, cat.indicator_positions(columns, specs)):
+        weights[pos] = float(settings.weights.get(spec.column, 1.0))
+    return weights
+
+
+def sampled_texts(got: dict[str, Any], count: int) -> list[list[Any]]:
+    """The sample's text columns t0.. as lists of values, NULL as None."""
+    return [[None if null else v for v, null in zip(np.ma.getdata(got[sqlgen.internal(f"t{i}")]).tolist(),
+                                                    null_mask(got[sqlgen.internal(f"t{i}")]))] for i in range(count)]
+
+
+def category_specs(texts: Sequence[str], values: Sequence[Sequence[Any]], described: dict[str, str], settings: Settings
+                   ) -> tuple[list[cat.CategoricalColumn], np.ndarray]:
+    """Each categorical column's top categories by sampled rows (its indicators named apart from ``described``'s
+    columns), and the sampled rows' category codes (rows x columns, 1-based: listed, then other, then NULL)."""
     taken = set(described)
     specs, codes = [], []
     for column, vals in zip(texts, values):
@@ -1008,13 +1046,8 @@ def categorical_source(
         specs.append(cat.CategoricalColumn(column, described[column], top, names))
         position = {v: i + 1 for i, v in enumerate(top)}
         codes.append([len(top) + 2 if v is None else position.get(v, len(top) + 1) for v in vals])
-    sample = np.hstack([x, np.asarray(codes, dtype=np.float64).T.reshape(len(x), len(texts))])
-    sample = canonical_sample(sample, target, settings.seed)
-    center, scale = center_and_scale(sample[:, :p], settings.scaling)
-    prof = Profile(rows=rows, sample=sample, center=np.concatenate([center, np.zeros(len(texts))]),
-                   scale=np.concatenate([scale, np.ones(len(texts))]), seconds=time.perf_counter() - t0,
-                   repeats=sample_promise(engine, rows, settings))
-    return cat.with_indicators(source, specs, engine.target), specs, prof
+    rows = len(values[0]) if values else 0
+    return specs, np.asarray(codes, dtype=np.float64).T.reshape(rows, len(texts))
 
 
 def model_source(engine: Engine, source: Source, model: Model) -> Source:
@@ -1066,17 +1099,25 @@ def numeric_positions(d: int, groups: Sequence[np.ndarray]) -> np.ndarray:
 
 
 def cells_statement_with_codes(
-    source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str], target: Any
+    source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str], target: Any,
+    partition: sqlgen.Partitioning | None = None, where: Any = None,
 ) -> tuple[Any, Grid, np.ndarray]:
     """The cell statement of a run with categorical columns (keyed by the numeric grid and each column's
-    code), the grid on the numeric columns alone, and those columns' positions."""
-    num_idx = numeric_positions(len(columns), groups)
+    code; with ``partition`` by (partition, cell, codes), ``where`` filtering the rows), the grid on the
+    numeric columns alone, and those columns' positions."""
+    sub, num_idx = numeric_grid(grid, len(columns), groups)
+    statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, target, extra_keys=code_names,
+                                       partition=partition, where=where)
+    return statement, sub, num_idx
+
+
+def numeric_grid(grid: Grid, d: int, groups: Sequence[np.ndarray]) -> tuple[Grid, np.ndarray]:
+    """The grid on the numeric columns alone (none: no key but the codes), and their positions among d."""
+    num_idx = numeric_positions(d, groups)
     center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
-    # the grid on the numeric columns alone (none: no key but the codes)
     sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
                axes=tuple(tuple(r) for r in np.asarray(grid.axes)[num_idx]) if len(num_idx) else None, sums_scaled=True)
-    statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, target, extra_keys=code_names)
-    return statement, sub, num_idx
+    return sub, num_idx
 
 
 def run_cell_pass_with_codes(
@@ -1086,10 +1127,17 @@ def run_cell_pass_with_codes(
     column's code.  Only the numeric columns are summed in SQL; every row of a cell has the same
     indicators, so their sums follow exactly from the cell's count (``categorical.indicator_cells``)."""
     t0 = time.perf_counter()
-    d = len(columns)
     statement, sub, num_idx = cells_statement_with_codes(source, columns, grid, groups, code_names, engine.target)
+    cp = cells_with_codes(engine.query(statement), grid, sub, num_idx, groups, len(columns))
+    cp.seconds = time.perf_counter() - t0
+    return cp
+
+
+def cells_with_codes(got: dict[str, np.ndarray], grid: Grid, sub: Grid, num_idx: np.ndarray, groups: Sequence[np.ndarray],
+                     d: int) -> CellPass:
+    """The cells of a cell statement with category codes (``cells_statement_with_codes``), in key order: the
+    numeric columns' sums as returned, the indicators' from each cell's count and code."""
     center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
-    got = engine.query(statement)
     names = sub.key_names()
     n_all = np.asarray(got["n"], dtype=np.float64)
     null = null_mask(got[names[0]]) if names else np.zeros(len(n_all), dtype=bool)
@@ -1100,13 +1148,13 @@ def run_cell_pass_with_codes(
     if len(num_idx):
         numeric_cf = cf_from_result(got, len(num_idx), keep)
         ls[:, num_idx], ss[:, num_idx] = numeric_cf.ls, numeric_cf.ss
-    codes = np.column_stack([np.asarray(np.ma.getdata(got[f"q{i}"]), dtype=np.float64)[keep] for i in range(len(code_names))])
+    codes = np.column_stack([np.asarray(np.ma.getdata(got[f"q{i}"]), dtype=np.float64)[keep] for i in range(len(groups))])
     for i, pos in enumerate(groups):
         ls[:, pos], ss[:, pos] = cat.indicator_cells(n, codes[:, i], center[pos], inv_scale[pos])
     keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names] + [codes]) if names else codes
     order = np.lexsort(keys.T[::-1])
     cells = CF(n, ls, ss)[order]
-    return CellPass(cells=cells, keys=keys[order], usable=int(round(n.sum())), skipped=skipped, seconds=time.perf_counter() - t0)
+    return CellPass(cells=cells, keys=keys[order], usable=int(round(n.sum())), skipped=skipped, seconds=0.0)
 
 
 def code_assignment(

@@ -28,7 +28,7 @@ from .features import CF
 from .model import Model, group_models
 from .settings import Settings
 from .sqlgen import Grid, Partitioning, Source
-from .stages import ProgressFn
+from .stages import ProgressFn, cells_from_result
 from .within import (
     MAX_GROUPS, check_within, group_entry, group_name, group_runs, group_value_of_key, grouped_grid, needs_own_grid,
     overall_standardisation, refine_groups, run_grouped_profile, split_cells, too_many_groups, within_model,
@@ -75,7 +75,7 @@ def merged_groups(engine: Engine, cells_table: str, grid: Grid, d: int, within: 
     """Every partition's cells summed per (group, cell), split per group (text order, NULL last)."""
     got = engine.query(sqlgen.merged_cells_statement(cells_table, [GROUP_KEY, *grid.key_names()], d))
     got = {("part" if name == GROUP_KEY else name): values for name, values in got.items()}
-    parts = split_cells(got, grid, d)
+    parts = split_cells(got, grid, lambda rows, g: cells_from_result(rows, g, d))
     if len(parts) > MAX_GROUPS:
         raise too_many_groups(len(parts), within, "table")
     return parts
@@ -203,6 +203,9 @@ def segment_groups(
     model = within_model(columns, overall, grid, entries, settings, source, within, group_type, usable + skipped, skipped,
                          pairs, repeats)
     model.passes = passes
+    from .report import attach_group_maps
+
+    attach_group_maps(model, {r.value: r.cells for r in runs})  # kept groups keep their maps
     model.timings = {"second_phase": t_second, **refine_times}
     present = {g["value"] for g in entries}
     out = GroupsOutcome(model, {

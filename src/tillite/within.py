@@ -65,8 +65,8 @@ def check_within(engine: Engine, source: Source, columns: Sequence[str], within:
         raise ParameterError(f"{{within}} {within} is also a segmenting column; group by a column not in --columns", "within")
     if settings.method == "density":
         raise ParameterError("{within} works with {method} kmeans or ward, not density", "within", "method")
-    if getattr(settings, "categorical", ()):
-        raise ParameterError("{within} does not take {categorical} columns yet: segment each group on numeric columns",
+    if within in (getattr(settings, "categorical", ()) or ()):
+        raise ParameterError(f"{{within}} {within} is also a {{categorical}} column; group by a column not segmented on",
                              "within", "categorical")
     described = engine.describe(source)
     types = dict(described)
@@ -103,20 +103,26 @@ def run_grouped_profile(engine: Engine, source: Source, columns: Sequence[str], 
         return engine.query(within_sql.grouped_sample_statement(source, columns, within, engine.target, **kw))
 
     got = seeded_sample(engine, rows, settings, fetch, lambda g: len(g[within_sql.GROUP_TEXT]))
-    texts = [None if t is None or (isinstance(t, float) and math.isnan(t)) else str(t)
-             for t in np.ma.filled(np.asarray(got[within_sql.GROUP_TEXT], dtype=object), None)]
-    values = sorted(set(texts), key=lambda t: (t is None, t or ""))
-    if len(values) > MAX_GROUPS:
-        raise too_many_groups(len(values), within, "sample")
-    code = {v: i for i, v in enumerate(values)}
-    x = np.column_stack([np.asarray(got[sqlgen.internal(f"x{j}")], dtype=np.float64) for j in range(d)]) if texts else np.zeros((0, d))
-    codes = np.array([code[t] for t in texts], dtype=np.float64)
+    codes, values = sampled_groups(got, within)
+    x = np.column_stack([np.asarray(got[sqlgen.internal(f"x{j}")], dtype=np.float64) for j in range(d)]) if len(codes) else np.zeros((0, d))
     both = canonical_sample(np.column_stack([codes, x]), target, settings.seed) if len(x) else np.zeros((0, d + 1))
     sample, groups = both[:, 1:], both[:, 0].astype(np.int64)
     center, scale = center_and_scale(sample, settings.scaling)
     repeats = sample_promise(engine, rows, settings)
     prof = Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
     return GroupedProfile(prof, groups, values)
+
+
+def sampled_groups(got: dict[str, Any], within: str) -> tuple[np.ndarray, list[str | None]]:
+    """Each sampled row's group code (its position in the values: text order, NULL last), and the values;
+    more than MAX_GROUPS values are refused."""
+    texts = [None if t is None or (isinstance(t, float) and math.isnan(t)) else str(t)
+             for t in np.ma.filled(np.asarray(got[within_sql.GROUP_TEXT], dtype=object), None)]
+    values = sorted(set(texts), key=lambda t: (t is None, t or ""))
+    if len(values) > MAX_GROUPS:
+        raise too_many_groups(len(values), within, "sample")
+    code = {v: i for i, v in enumerate(values)}
+    return np.array([code[t] for t in texts], dtype=np.float64), values
 
 
 def grouped_grid(gp: GroupedProfile, settings: Settings, weights: np.ndarray) -> Grid:
@@ -152,8 +158,8 @@ def needs_own_grid(cells: CF, k: int) -> bool:
     return filled < COARSE_CELLS_PER_SEGMENT * k and cells.n.sum() > filled
 
 
-def own_grid_cells(engine: Engine, source: Source, columns: Sequence[str], within: str, group_type: str, value: str | None,
-                   gp: GroupedProfile, rows: int, settings: Settings, weights: np.ndarray, groups: int
+def own_grid_cells(engine: Engine, inputs: "WithinInputs", within: str, group_type: str, value: str | None,
+                   gp: GroupedProfile, rows: int, settings: Settings, groups: int
                    ) -> tuple[Grid, CF, np.ndarray, int] | None:
     """A group that a shared grid bins too coarsely (its spread far below the table's): one more cell pass, over
     that group's rows only, on a grid from its own sampled rows (as a run on the group alone would make), aiming
@@ -163,16 +169,12 @@ def own_grid_cells(engine: Engine, source: Source, columns: Sequence[str], withi
     sample = gp.profile.sample[gp.groups == code]
     if len(sample) < 2:
         return None
-    center, scale = center_and_scale(sample, settings.scaling)
-    prof = Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=0.0)
     k = max(settings.k_candidates or (settings.k,))
     budget = max(settings.cell_budget // max(groups, 1), OWN_GRID_CELLS_PER_SEGMENT * k)
-    grid = grid_for_profile(prof, replace(settings, cell_budget=budget), weights)
+    grid = inputs.sample_grid(sample, rows, replace(settings, cell_budget=budget))
     where = within_sql.group_predicate(within, value, group_type, engine.target)
-    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.target, where=where))
-    from .stages import cells_from_result
-
-    cells, keys, skipped = cells_from_result(got, grid, len(columns))
+    got = engine.query(inputs.cells_statement(grid, engine.target, where=where))
+    cells, keys, skipped = inputs.cells_of(got, grid)
     return grid, cells, keys, skipped
 
 
@@ -199,10 +201,10 @@ class GroupRun:
         return group_name(self.value)
 
 
-def split_cells(got: dict[str, np.ndarray], grid: Grid, d: int) -> list[tuple[str | None, CF, np.ndarray, int]]:
-    """The cell pass's rows split per group: (value, cells, keys, skipped), groups in text order, NULL last."""
-    from .stages import cells_from_result
-
+def split_cells(got: dict[str, np.ndarray], grid: Grid,
+                cells_of: Callable[[dict[str, np.ndarray], Grid], tuple[CF, np.ndarray, int]]) -> list[tuple[str | None, CF, np.ndarray, int]]:
+    """The cell pass's rows split per group: (value, cells, keys, skipped), groups in text order, NULL last;
+    ``cells_of`` reads one group's rows (``WithinInputs.cells_of``)."""
     parts = np.asarray(got["part"], dtype=object)
     rows_of: dict[str, list[int]] = {}
     for i, key in enumerate(parts.tolist()):  # one pass over the rows, not one comparison of them all per group
@@ -211,9 +213,46 @@ def split_cells(got: dict[str, np.ndarray], grid: Grid, d: int) -> list[tuple[st
     for key in sorted(rows_of, key=lambda t: (t == "~", group_value_of_key(t) or "")):
         rows = np.asarray(rows_of[key], dtype=np.int64)
         sub = {name: values[rows] for name, values in got.items()}
-        cells, keys, skipped = cells_from_result(sub, grid, d)
+        cells, keys, skipped = cells_of(sub, grid)
         out.append((group_value_of_key(key), cells, keys, skipped))
     return out
+
+
+@dataclass
+class WithinInputs:
+    """What a --within run segments on, and how its profile, grids and cell passes read it: the numeric columns
+    here; ``within_categorical.CategoricalInputs`` adds categorical columns' indicators."""
+
+    source: Source
+    columns: list[str]
+    weights: np.ndarray
+
+    @property
+    def indicator_groups(self) -> list[np.ndarray]:
+        """Positions of each categorical column's indicators among ``columns`` (none here)."""
+        return []
+
+    def model_categorical(self) -> list[dict[str, Any]]:
+        return []
+
+    def profile_and_grid(self, engine: Engine, within: str, settings: Settings) -> tuple[GroupedProfile, Grid]:
+        gp = run_grouped_profile(engine, self.source, self.columns, within, settings)
+        return gp, grouped_grid(gp, settings, self.weights)
+
+    def sample_grid(self, sample: np.ndarray, rows: int, settings: Settings) -> Grid:
+        """The grid a run on these sampled rows alone would make (one group's own grid)."""
+        center, scale = center_and_scale(sample, settings.scaling)
+        prof = Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=0.0)
+        return grid_for_profile(prof, settings, self.weights)
+
+    def cells_statement(self, grid: Grid, target: Any, partition: Partitioning | None = None, where: Any = None) -> Any:
+        return sqlgen.cells_statement(self.source, self.columns, grid, target, partition=partition, where=where)
+
+    def cells_of(self, got: dict[str, np.ndarray], grid: Grid) -> tuple[CF, np.ndarray, int]:
+        """(cells, keys, skipped) of a cell statement's rows (one group's)."""
+        from .stages import cells_from_result
+
+        return cells_from_result(got, grid, len(self.columns))
 
 
 def _warn_for_group(name: str, caught: list[warnings.WarningMessage], notes: list[str]) -> None:
@@ -224,13 +263,13 @@ def _warn_for_group(name: str, caught: list[warnings.WarningMessage], notes: lis
 
 
 def standardise_group(cells_grid: CF, grid: Grid, columns: Sequence[str], settings: Settings, weights: np.ndarray,
-                      name: str, notes: list[str]) -> tuple[CF, Standardisation, bool]:
+                      name: str, notes: list[str], indicator_groups: Sequence[np.ndarray] = ()) -> tuple[CF, Standardisation, bool]:
     """``standardise_cells`` for one group; a group with nothing to segment on (every column constant there)
     gets one segment with a warning instead of an error.  Returns (cells, std, degenerate)."""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            cells, std = standardise_cells(cells_grid, grid, columns, settings, weights)
+            cells, std = standardise_cells(cells_grid, grid, columns, settings, weights, indicator_groups)
             degenerate = False
         except InputError as err:
             d = len(columns)
@@ -261,10 +300,11 @@ def group_settings(settings: Settings, filled: int, name: str, notes: list[str])
 
 
 def run_group(value: str | None, cells_grid: CF, keys: np.ndarray, skipped: int, grid: Grid, columns: Sequence[str],
-              settings: Settings, weights: np.ndarray, where: str, progress: ProgressFn) -> GroupRun:
+              settings: Settings, weights: np.ndarray, where: str, progress: ProgressFn,
+              indicator_groups: Sequence[np.ndarray] = ()) -> GroupRun:
     """Exact standardisation and the second phase of one group."""
     name, notes = group_name(value), []
-    cells, std, degenerate = standardise_group(cells_grid, grid, columns, settings, weights, name, notes)
+    cells, std, degenerate = standardise_group(cells_grid, grid, columns, settings, weights, name, notes, indicator_groups)
     filled = int((cells.n > 0).sum())
     local, k = group_settings(settings, 1 if degenerate else filled, name, notes)
     if degenerate or (k == 1 and not local.k_candidates):
@@ -370,6 +410,17 @@ def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within
 # ----------------------------------------------------------------------------- segment
 
 
+def within_inputs(engine: Engine, source: Source, columns: Sequence[str], within: str, settings: Settings) -> WithinInputs:
+    """The columns a run segments on: the numeric ones checked, or with ``settings.categorical`` their
+    indicators too (``within_categorical``)."""
+    if settings.categorical:
+        from .within_categorical import categorical_inputs
+
+        return categorical_inputs(engine, source, columns, within, settings)
+    check_columns(engine, source, columns)
+    return WithinInputs(source, list(columns), settings.column_weights(columns))
+
+
 def segment_within(engine: Engine, source: Source, columns: Sequence[str], settings: Settings,
                    progress: ProgressFn = quiet_progress) -> Model:
     """Segment each group of ``settings.within`` separately, every group from one cell pass and one statement per
@@ -378,19 +429,18 @@ def segment_within(engine: Engine, source: Source, columns: Sequence[str], setti
     settings.check(columns)
     t_start = time.perf_counter()
     group_type = check_within(engine, source, columns, within, settings)
-    check_columns(engine, source, columns)
-    weights = settings.column_weights(columns)
+    inputs = within_inputs(engine, source, columns, within, settings)
+    source, columns, weights, indicators = inputs.source, inputs.columns, inputs.weights, inputs.indicator_groups
 
     t0 = time.perf_counter()
-    gp = run_grouped_profile(engine, source, columns, within, settings)
-    grid = grouped_grid(gp, settings, weights)
+    gp, grid = inputs.profile_and_grid(engine, within, settings)
     t_profile = time.perf_counter() - t0
     progress("profile", f"{gp.profile.rows:,} rows, sample of {len(gp.profile.sample):,} in {len(gp.values):,} group(s), "
                         f"grid width {grid.width:.3g} on {grid.dims} axes, {t_profile:.2f} s")
 
     t0 = time.perf_counter()
-    got = engine.query(sqlgen.cells_statement(source, columns, grid, engine.target, partition=Partitioning.of_columns([within])))
-    parts = split_cells(got, grid, len(columns))
+    got = engine.query(inputs.cells_statement(grid, engine.target, partition=Partitioning.of_columns([within])))
+    parts = split_cells(got, grid, inputs.cells_of)
     t_cells = time.perf_counter() - t0
     if len(parts) > MAX_GROUPS:
         raise too_many_groups(len(parts), within, "table")
@@ -404,18 +454,22 @@ def segment_within(engine: Engine, source: Source, columns: Sequence[str], setti
     t0 = time.perf_counter()
 
     def own_grid(value: str | None, cells: CF, group_skipped: int) -> tuple[Grid, CF, np.ndarray, int] | None:
-        return own_grid_cells(engine, source, columns, within, group_type, value, gp, int(round(cells.n.sum())) + group_skipped,
-                              settings, weights, len(parts))
+        return own_grid_cells(engine, inputs, within, group_type, value, gp, int(round(cells.n.sum())) + group_skipped,
+                              settings, len(parts))
 
-    runs = group_runs(parts, grid, columns, settings, weights, source.label, progress, own_grid)
+    runs = group_runs(parts, grid, columns, settings, weights, source.label, progress, own_grid, indicators)
     t_second = time.perf_counter() - t0
     progress("second phase", f"{len(runs):,} group(s), {sum(r.k for r in runs):,} segments in all, {t_second:.2f} s")
 
     passes, refine_times = refine_groups(engine, source, columns, within, group_type, runs, grid, settings, progress)
-    overall, pairs = overall_standardisation([c for _, c, _, _ in parts], grid, columns, settings, weights)
+    overall, pairs = overall_standardisation([c for _, c, _, _ in parts], grid, columns, settings, weights, indicators)
     model = within_model(columns, overall, grid, [group_entry(r, columns) for r in runs], settings, source, within, group_type,
                          usable + skipped, skipped, pairs, gp.profile.repeats)
     model.passes = passes
+    model.categorical = inputs.model_categorical()
+    from .report import attach_group_maps
+
+    attach_group_maps(model, {r.value: r.cells for r in runs})  # each group's report map, as a single model keeps its own
     model.timings = {"profile": t_profile, "cells": t_cells, "second_phase": t_second, **refine_times,
                      "total": time.perf_counter() - t_start}
     return model
@@ -423,7 +477,8 @@ def segment_within(engine: Engine, source: Source, columns: Sequence[str], setti
 
 def group_runs(parts: Sequence[tuple[str | None, CF, np.ndarray, int]], grid: Grid, columns: Sequence[str], settings: Settings,
                weights: np.ndarray, where: str, progress: ProgressFn,
-               own_grid: Callable[[str | None, CF, int], tuple[Grid, CF, np.ndarray, int] | None] | None = None) -> list[GroupRun]:
+               own_grid: Callable[[str | None, CF, int], tuple[Grid, CF, np.ndarray, int] | None] | None = None,
+               indicators: Sequence[np.ndarray] = ()) -> list[GroupRun]:
     """The second phase of each group (``split_cells``'s parts); a group whose rows were all skipped gets none.
 
     ``own_grid(value, cells, skipped)``: the cells of a group too coarse on the shared grid on a grid of its
@@ -441,23 +496,24 @@ def group_runs(parts: Sequence[tuple[str | None, CF, np.ndarray, int]], grid: Gr
             progress("cells", f"group {group_name(value)}: {int((cells.n > 0).sum()):,} cells on the shared grid; "
                               f"{int((own[1].n > 0).sum()):,} on a grid of its own (one more statement, its rows only)")
         group_grid, cells, keys = (own[0], own[1], own[2]) if own is not None else (grid, cells, keys)
-        run = run_group(value, cells, keys, group_skipped, group_grid, columns, settings, weights, where, progress)
+        run = run_group(value, cells, keys, group_skipped, group_grid, columns, settings, weights, where, progress,
+                        indicators)
         run.grid = group_grid
         runs.append(run)
     return runs
 
 
 def overall_standardisation(cells: Sequence[CF], grid: Grid, columns: Sequence[str], settings: Settings,
-                            weights: np.ndarray) -> tuple[Standardisation, int]:
+                            weights: np.ndarray, indicators: Sequence[np.ndarray] = ()) -> tuple[Standardisation, int]:
     """The whole table's standardisation (the model's top-level centre and scale) from every group's cells, and
     the count of filled (group, cell) pairs."""
     all_cells = F.concat(*[c for c in cells if c.m])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # constant columns are said per group
         try:
-            _, overall = standardise_cells(all_cells, grid, columns, settings, weights)
+            _, overall = standardise_cells(all_cells, grid, columns, settings, weights, indicators)
         except InputError:
-            _, overall, _ = standardise_group(all_cells, grid, columns, settings, weights, "(all)", [])
+            _, overall, _ = standardise_group(all_cells, grid, columns, settings, weights, "(all)", [], indicators)
     return overall, int((all_cells.n > 0).sum())
 
 

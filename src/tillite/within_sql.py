@@ -209,6 +209,34 @@ def label_select(
     ).from_(sqlgen.subquery(inner, internal("d")))
 
 
+def report_rows_select(source: Source, columns: Sequence[str], by: Sequence[str], assign: GroupAssignment, target: TargetLike,
+                       stride: int) -> exp.Select:
+    """``sqlgen.report_rows_select`` for every group at once: the model's and the breakdown columns, and as the
+    segment (internal name) group position * ``stride`` + segment within the group, so one GROUP BY gives every
+    group's segments (NULL for skipped rows and groups the model does not know)."""
+    inner, gid, seg, _, _ = assignment_layers(source, columns, assign, target, keep_source=True, fence=True)
+    keep = list(dict.fromkeys(list(columns) + list(by)))
+    combined = exp.Add(this=exp.Mul(this=col(gid), expression=num(int(stride))), expression=col(seg))
+    return exp.select(
+        *[col(c) for c in keep], exp.alias_(exp.cast(combined, exp.DataType.build("INT")), seg, quoted=True)
+    ).from_(sqlgen.subquery(inner, internal("d")))
+
+
+def group_segment_names_column(select: exp.Select, column: str, group_type: str, segment: str,
+                               names: Sequence[tuple[str | None, dict[int, str]]], target: TargetLike,
+                               alias: str = "segment_name") -> exp.Select:
+    """The label select wrapped to add a text column naming each row's segment within its group (``names``: per
+    group value, segment id -> name; NULL where unnamed).  Names are string literals made by sqlglot."""
+    ifs = []
+    for value, given in names:
+        same = group_predicate(column, value, group_type, target)
+        for sid, name in sorted(given.items()):
+            ifs.append(exp.If(this=exp.and_(same.copy(), exp.EQ(this=col(segment), expression=num(int(sid)))),
+                              true=exp.Literal.string(str(name))))
+    cased = exp.Case(ifs=ifs) if ifs else exp.cast(exp.Null(), exp.DataType.build("VARCHAR"))
+    return exp.select(exp.Star(), exp.alias_(cased, alias, quoted=True)).from_(sqlgen.subquery(select, internal("n")))
+
+
 def unknown_groups_statement(source: Source, assign: GroupAssignment, target: TargetLike,
                              columns: Sequence[str] = ()) -> exp.Select:
     """Rows whose group the model does not know (a value that appeared after the build): count n.
@@ -225,11 +253,11 @@ def unknown_groups_statement(source: Source, assign: GroupAssignment, target: Ta
 
 def grouped_sample_statement(
     source: Source, columns: Sequence[str], group: str, target: TargetLike, percent: float | None = None,
-    method: str = "SYSTEM", seed: int | None = None,
+    method: str = "SYSTEM", seed: int | None = None, text_columns: Sequence[str] = (),
 ) -> exp.Select:
-    """``sqlgen.sample_statement``'s usable rows (its sampling forms, per engine) plus each row's group as text
-    (GROUP_TEXT, NULL stays NULL)."""
-    outer = sqlgen.sample_statement(source, columns, target, percent=percent, method=method, seed=seed)
+    """``sqlgen.sample_statement``'s usable rows (its sampling forms, per engine; ``text_columns`` as t0, t1, ...)
+    plus each row's group as text (GROUP_TEXT, NULL stays NULL)."""
+    outer = sqlgen.sample_statement(source, columns, target, percent=percent, method=method, seed=seed, text_columns=text_columns)
     inner = outer.find(exp.Subquery).this  # the sampled rows, before the usable-row filter
     inner.select(exp.alias_(exp.cast(col(group), exp.DataType.build("VARCHAR")), GROUP_TEXT, quoted=True), copy=False)
     return outer.select(col(GROUP_TEXT), copy=False)

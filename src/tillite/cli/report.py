@@ -85,19 +85,24 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
 @click.argument("pairs", nargs=-1, metavar="[ID NAME]...")
 @click.option("--names", "names_file", type=click.Path(dir_okay=False), help='JSON file of names: {"4": "probable leak", ...}.')
 @click.option("--store", "store_name", help="Name the segments of a summary store instead: MODEL is then its database.")
-def name_command(target, pairs, names_file, store_name) -> None:
+@click.option("--group", "group", metavar="GROUP", help="For a model of segments within groups (segment --within): the "
+              "group whose segments are named, as `tillite show` lists it (NULL for the NULL group).")
+def name_command(target, pairs, names_file, store_name, group) -> None:
     """Give segments names: `tillite name model.json 4 "probable leak"`.
 
     Ids never change; an empty name removes one; -1 names the rows in no segment
     (density noise, the outlier group): `tillite name model.json -1 "unusual"`. Names are stored in the model
     file (written atomically) or in the store, and shown by `show`, `report`, the
     segment_name column of label views made afterwards (a store's views are
-    re-created at once) and the <name>_segment_name macro.
+    re-created at once) and the <name>_segment_name macro. A model of segments within groups
+    (segment --within) is named one group at a time: `tillite name model.json --group north 0 "steady"`.
     """
     if len(pairs) % 2:
         raise click.UsageError("give segment ids and names in pairs: ID NAME [ID NAME ...]")
     if not pairs and not names_file:
         raise click.UsageError("give ID NAME, or --names FILE")
+    if group is not None and store_name:
+        raise click.UsageError("--group goes with a model file, not --store")
     with user_errors():
         given = naming.read_names_file(names_file) if names_file else {}
         given.update({pairs[i]: pairs[i + 1] for i in range(0, len(pairs), 2)})
@@ -106,8 +111,13 @@ def name_command(target, pairs, names_file, store_name) -> None:
                 model = naming.name_store_segments(engine, store_name, given)
             where = f"store {store_name} (label views re-created)"
         else:
-            model = naming.name_model_file(Path(target), given)
+            model = naming.name_model_file(Path(target), given, group)
             where = f"{target} (re-run `tillite label` to add segment_name to existing views)"
+    if model.within:
+        from ..model import group_models
+
+        model = next(one for g, one in group_models(model) if g["name"] == group)
+        where += f", group {group}"
     click.echo(f"names written to {where}:")
     shown_ids = list(model.segment_ids()) + ([-1] if -1 not in model.segment_ids() and model.segment_name(-1) is not None else [])
     for sid in shown_ids:

@@ -231,7 +231,8 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, target, c
             from ..stages import cells_statement_with_codes
 
             specs = specs_of(model.categorical)
-            statement, _, _ = cells_statement_with_codes(src, cols, grid, indicator_positions(cols, specs), code_names(specs), target)
+            statement, _, _ = cells_statement_with_codes(src, cols, grid, indicator_positions(cols, specs), code_names(specs), target,
+                                                         partition=_within_partition(model))
             return [statement]
         return [sqlgen.cells_statement(src, cols, grid, target, partition=_within_partition(model))]
     if model is None:
