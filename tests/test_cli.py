@@ -566,6 +566,23 @@ def test_show_reads_a_model_without_numpy_sqlglot_or_any_driver(model_file):
     assert not imported_after(code) & set(HEAVY_MODULES)
 
 
+def test_segment_on_a_table_without_nulls_does_not_import_numpy_ma(tmp_path):
+    import subprocess
+    import sys
+
+    import duckdb
+
+    db = tmp_path / "plain.duckdb"
+    con = duckdb.connect(str(db))
+    con.execute("CREATE TABLE t AS SELECT (i % 97) / 7.0 AS a, (i % 13) * 1.5 AS b FROM range(5000) r(i)")
+    con.close()
+    code = (f"from tillite.cli import main\nmain(['segment', {str(db)!r}, '-t', 't', '-c', 'a,b', '--k', '3', '-q', "
+            f"'-o', {str(tmp_path / 'm.json')!r}], standalone_mode=False)\nimport sys; print('numpy.ma' in sys.modules)")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    # reference: sys.modules of the fresh interpreter; numpy.ma is imported only by asking np.ma (or np.unique)
+    assert done.stdout.split()[-1] == "False", done.stdout
+
+
 def test_the_package_still_offers_its_public_names_on_first_use():
     import tillite
     from tillite.engines import TilliteError as from_engines

@@ -431,6 +431,8 @@ def test_a_refresh_finds_a_newly_arrived_group_that_the_warm_start_misses_and_sa
     report = S.refresh(engine, "readings")
     seeding = report.seeding
     assert seeding["kept"] == "fresh" and seeding["segments_changed"] and seeding["fresh_sse"] < 0.9 * seeding["warm_sse"]
+    # the new group shows as a larger share of the variance left unexplained by the warm start: that is why it reseeded
+    assert seeding["fresh"].startswith("run: the warm start leaves") and seeding["changed_share"] < S.RESEED_ROWS
     assert report.warnings[0].startswith("the segments changed: a fresh k-means++ seeding")
     assert "re-segmented from a fresh k-means++ seeding" in report.describe()
     # reference: scikit-learn KMeans on the rows themselves; the cell-level SSE can only be a little above it
@@ -442,7 +444,21 @@ def test_a_refresh_finds_a_newly_arrived_group_that_the_warm_start_misses_and_sa
     engine.con.execute("UPDATE readings SET b = b + 0.01 WHERE day = 3")
     again = S.refresh(engine, "readings")
     assert again.seeding["kept"] == "warm" and not any("segments changed" in w for w in again.warnings)
+    assert again.seeding["fresh"].startswith("skipped")  # nothing new to find: no fresh k-means++ restarts
     engine.close()
+
+
+@pytest.mark.parametrize("seeding, warm, runs", [
+    ({"last_unexplained": 0.20, "changed_share": 0.01, "vanished": 0, "version": 3}, 0.201, False),
+    ({"last_unexplained": 0.20, "changed_share": 0.01, "vanished": 0, "version": 3}, 0.203, True),
+    ({"last_unexplained": 0.20, "changed_share": 0.05, "vanished": 0, "version": 3}, 0.20, True),
+    ({"last_unexplained": 0.20, "changed_share": 0.01, "vanished": 1, "version": 3}, 0.20, True),
+    ({"last_unexplained": 0.20, "changed_share": 0.01, "vanished": 0, "version": 20}, 0.20, True),
+    ({"last_unexplained": None, "changed_share": 0.01, "vanished": 0, "version": 3}, 0.20, True),
+])
+def test_fresh_seeding_runs_only_when_the_documented_rule_gives_a_reason(seeding, warm, runs):
+    # reference: the rule as README's "Store refresh" states it (1% more unexplained, 5% of rows, vanished, every 10th)
+    assert (S.fresh_seeding_reason(warm, seeding) is not None) == runs
 
 
 def test_refresh_warnings_are_printed_once_on_stderr(demo_db):

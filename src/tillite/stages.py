@@ -294,7 +294,8 @@ def choose_width(coords: np.ndarray, rows: int, budget: int) -> float:
         keys = np.floor(rows_coords / width).astype(np.int64)
         with np.errstate(over="ignore"):
             hashed = (keys * mix[None, :]).sum(axis=1)  # wraps around; collisions are negligible
-        return len(np.unique(hashed))
+        hashed.sort()  # distinct values counted without np.unique, which imports numpy.ma (a command's start-up)
+        return int(1 + np.count_nonzero(hashed[1:] != hashed[:-1])) if len(hashed) else 0
 
     def estimate(width: float) -> float:
         seen = distinct(coords, width)
@@ -336,8 +337,19 @@ def cf_from_result(got: dict[str, np.ndarray], d: int, keep: np.ndarray | None =
     return cf if keep is None else cf[keep]
 
 
+def is_masked_array(values: Any) -> bool:
+    """Is this result column a masked array (it has NULLs)?  Asked without ``np.ma``: merely reading
+    ``np.ma`` imports numpy.ma, 25-60 ms of a command's start-up, even when no result had a NULL."""
+    return hasattr(values, "mask") and hasattr(values, "filled")
+
+
+def unmasked(values: Any) -> np.ndarray:
+    """A result column's values without its NULL mask (``np.ma.getdata``, without importing numpy.ma)."""
+    return values.data if is_masked_array(values) else np.asarray(values)
+
+
 def null_mask(values: np.ndarray) -> np.ndarray:
-    if np.ma.isMaskedArray(values):
+    if is_masked_array(values):
         return np.ma.getmaskarray(values)
     values = np.asarray(values)
     if values.dtype.kind == "f":
@@ -369,7 +381,7 @@ def cells_from_result(got: dict[str, np.ndarray], grid: Grid, d: int) -> tuple[C
         cells = F.affine(cells, np.asarray(grid.inv_scale), np.zeros(d))
     if not keep.any():
         return cells, np.zeros((0, len(names))), skipped
-    keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names])
+    keys = np.column_stack([np.asarray(unmasked(got[k]), dtype=np.float64)[keep] for k in names])
     order = np.lexsort(keys.T[::-1])  # groups come back in any order; later steps pick cells by position
     return cells[order], keys[order], skipped
 
@@ -424,7 +436,7 @@ def refine_rows(got: dict[str, np.ndarray], assign: Assignment) -> tuple[np.ndar
     """A refine statement's rows: each row's segment position, the rows left out (NULL segment, or
     the outlier group, which takes no part in the centroids), and the row counts."""
     null = null_mask(got["segment"])
-    ids = np.asarray(np.ma.getdata(got["segment"]), dtype=np.float64)
+    ids = np.asarray(unmasked(got["segment"]), dtype=np.float64)
     null = null | (ids < 0)
     position = {sid: i for i, sid in enumerate(assign.segment_ids())}
     seg = np.array([position[int(i)] for i in ids[~null]], dtype=np.int64)
@@ -438,7 +450,7 @@ def rows_in_key_order(got: dict[str, np.ndarray], keys: Sequence[str]) -> dict[s
     columns: list[np.ndarray] = []
     for key in reversed(keys):  # np.lexsort sorts by the last key first
         values = got[key]
-        columns += [np.asarray(np.ma.getdata(values), dtype=np.float64), null_mask(values)]
+        columns += [np.asarray(unmasked(values), dtype=np.float64), null_mask(values)]
     order = np.lexsort([np.where(np.isnan(c), -np.inf, c) if c.dtype.kind == "f" else c for c in columns])
     return {name: values[order] for name, values in got.items()}
 
@@ -450,7 +462,7 @@ def refine_result(
     """The pass's statistics: each segment's SSE about its old centroid (the summed distances) and
     about its new mean, lower by exactly n ||m - c||^2 (weighted)."""
     k = len(assign.centroids)
-    dist = np.bincount(seg, weights=np.asarray(np.ma.getdata(got["dist"]), dtype=np.float64)[~null], minlength=k)
+    dist = np.bincount(seg, weights=np.asarray(unmasked(got["dist"]), dtype=np.float64)[~null], minlength=k)
     assigned, updated = moved_to_means(n, ls_u, dist, np.asarray(assign.centroids, dtype=np.float64),
                                        np.asarray(assign.weights, dtype=np.float64))
     return RefineResult(assigned=assigned, updated=updated, skipped=int(round(n_all[null].sum())),
@@ -1027,7 +1039,7 @@ def indicator_weights(settings: Settings, columns: Sequence[str], specs: Sequenc
 
 def sampled_texts(got: dict[str, Any], count: int) -> list[list[Any]]:
     """The sample's text columns t0.. as lists of values, NULL as None."""
-    return [[None if null else v for v, null in zip(np.ma.getdata(got[sqlgen.internal(f"t{i}")]).tolist(),
+    return [[None if null else v for v, null in zip(unmasked(got[sqlgen.internal(f"t{i}")]).tolist(),
                                                     null_mask(got[sqlgen.internal(f"t{i}")]))] for i in range(count)]
 
 
@@ -1148,10 +1160,10 @@ def cells_with_codes(got: dict[str, np.ndarray], grid: Grid, sub: Grid, num_idx:
     if len(num_idx):
         numeric_cf = cf_from_result(got, len(num_idx), keep)
         ls[:, num_idx], ss[:, num_idx] = numeric_cf.ls, numeric_cf.ss
-    codes = np.column_stack([np.asarray(np.ma.getdata(got[f"q{i}"]), dtype=np.float64)[keep] for i in range(len(groups))])
+    codes = np.column_stack([np.asarray(unmasked(got[f"q{i}"]), dtype=np.float64)[keep] for i in range(len(groups))])
     for i, pos in enumerate(groups):
         ls[:, pos], ss[:, pos] = cat.indicator_cells(n, codes[:, i], center[pos], inv_scale[pos])
-    keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names] + [codes]) if names else codes
+    keys = np.column_stack([np.asarray(unmasked(got[k]), dtype=np.float64)[keep] for k in names] + [codes]) if names else codes
     order = np.lexsort(keys.T[::-1])
     cells = CF(n, ls, ss)[order]
     return CellPass(cells=cells, keys=keys[order], usable=int(round(n.sum())), skipped=skipped, seconds=0.0)
@@ -1202,7 +1214,7 @@ def run_refine_pass_with_codes(
     for j, col_j in zip(num_idx, range(len(num_idx))):
         ls_u[:, j] = np.bincount(seg, weights=np.asarray(got[f"ls{col_j}"], dtype=np.float64)[~null], minlength=k) * inv_scale[j]
     for g, pos in enumerate(groups):
-        codes = np.asarray(np.ma.getdata(got[f"q{g}"]), dtype=np.float64)[~null]
+        codes = np.asarray(unmasked(got[f"q{g}"]), dtype=np.float64)[~null]
         ls_c, _ = cat.indicator_cells(n_rows, codes, center[pos], inv_scale[pos])
         for c_i, j in enumerate(pos):
             ls_u[:, j] = np.bincount(seg, weights=ls_c[:, c_i], minlength=k)

@@ -517,13 +517,16 @@ def _segment_cells(
         result = _better_of_warm_and_fresh(cells, settings, std.weights, where, result, seeding)
         if seeding["kept"] == "fresh":
             init = None  # ordered by size below, like a fresh build
+    total_sse = F.sse(F.total(cells), std.weights)
+    unexplained = result.sse / total_sse if total_sse > 0 else 0.0
     progress("second phase", f"{'warm start' if init is not None else f'k-means++ x{result.restarts}'} on {int((cells.n > 0).sum()):,} cells, SSE {result.sse:.6g}, {time.perf_counter() - t0:.2f} s")
     stats = SegmentStats.of_cfs(F.group_sum(cells, result.labels, settings.k), std.weights)
     usable = int(round(cells.n.sum()))
     stats, passes, _ = refine_passes(engine, source, columns, std, result.centroids, stats, settings, progress, usable)
     if init is None:
         stats = order_by_size(stats)
-    model = make_model(columns, std, grid, stats, settings, source, usable + skipped, skipped, int((cells.n > 0).sum()))
+    model = make_model(columns, std, grid, stats, settings, source, usable + skipped, skipped, int((cells.n > 0).sum()),
+                       extra_params={"cell_sse": float(result.sse), "cell_unexplained": float(unexplained)})
     model.passes = passes
     return model, cells, std
 
@@ -554,8 +557,55 @@ def check_store_method(method: str) -> None:
         )
 
 
+#: A refresh seeds afresh when the warm start leaves this much more of the variance unexplained than the last model did
+#: (relative: 0.01 is 1%), when at least RESEED_ROWS of the rows changed, and on every RESEED_EVERY-th store version.
+RESEED_UNEXPLAINED = 0.01
+RESEED_ROWS = 0.05
+RESEED_EVERY = 10
+
+
+def fresh_seeding_reason(warm_unexplained: float, seeding: dict[str, Any]) -> str | None:
+    """Why a refresh also runs a freshly seeded k-means, or None when the warm start is kept without one.
+
+    A warm start cannot find a group of rows that arrived since the last model,
+    but such a group shows: the merged cells' share of the variance left
+    unexplained (cell SSE / total scatter, in the same units) rises.  Fresh
+    seeding (``n_init`` restarts, most of a small refresh's own work) therefore
+    runs only when that share rose by more than RESEED_UNEXPLAINED, when the
+    new, changed and vanished partitions hold at least RESEED_ROWS of the rows,
+    when partitions vanished, when the last model recorded no share (stores
+    built before it was kept), and on every RESEED_EVERY-th store version, so
+    a slow drift spread over many small refreshes is also caught.
+    ``seeding`` holds the inputs (``last_unexplained``, ``changed_share``,
+    ``vanished``, ``version``), filled by ``refresh``.
+    """
+    last = seeding.get("last_unexplained")
+    if last is None:
+        return "the last model recorded no unexplained share"
+    if warm_unexplained > last * (1.0 + RESEED_UNEXPLAINED) + 1e-12:
+        return f"the warm start leaves {100 * warm_unexplained:.2f}% of the variance unexplained, the last model {100 * last:.2f}%"
+    if seeding.get("changed_share", 1.0) >= RESEED_ROWS:
+        return f"{100 * seeding.get('changed_share', 1.0):.1f}% of the rows changed"
+    if seeding.get("vanished"):
+        return "partitions vanished"
+    if seeding.get("version", 0) % RESEED_EVERY == 0:
+        return f"every {RESEED_EVERY}th store version is seeded afresh"
+    return None
+
+
 def _better_of_warm_and_fresh(cells: CF, settings: Settings, weights: np.ndarray, where: str, warm: Any, seeding: dict[str, Any]) -> Any:
-    """The warm-started result or a freshly seeded one, whichever has the lower SSE; fills ``seeding``."""
+    """The warm-started result or a freshly seeded one, whichever has the lower SSE; fills ``seeding``.
+
+    The fresh seeding runs only when ``fresh_seeding_reason`` gives a reason;
+    otherwise the warm start is kept and ``seeding['fresh']`` says so.
+    """
+    total = F.sse(F.total(cells), weights)
+    reason = fresh_seeding_reason(warm.sse / total if total > 0 else 0.0, seeding)
+    if reason is None:
+        seeding.update({"warm_sse": float(warm.sse), "kept": "warm", "segments_changed": False,
+                        "fresh": "skipped: the warm start explains the cells as well as the last model did"})
+        return warm
+    seeding["fresh"] = f"run: {reason}"
     fresh = second_phase(cells, settings, weights, where, init=None)
     kept = fresh if fresh.sse < warm.sse * (1.0 - 1e-9) else warm
     seeding.update({
@@ -922,13 +972,14 @@ def refresh(
             fresh = recompute + touched_meta
             if fresh:
                 engine.execute(sqlgen.insert_values_statement(PARTS, _part_rows(store, current, fresh)))
-            # 5. re-segment the merged cells (warm start and fresh seeding), match ids, drift
+            # 5. re-segment the merged cells (warm start, and fresh seeding when fresh_seeding_reason says), match ids, drift
             t2 = time.perf_counter()
             if within is not None:  # only the groups whose cells in new, changed or vanished partitions differ
                 touched = store_groups.changed_groups(before, store_groups.group_cells(engine, info.cells_table, recompute, len(info.columns)))
                 model = _resegment_groups(engine, info, settings, progress, new_segment_shift, drift_threshold, report,
                                           None if force or settings_moved else touched)
             else:
+                report.seeding.update(_seeding_inputs(info, stored, current, new, changed, vanished))
                 model, cells, std = _resegment(engine, info, settings, progress, new_segment_shift, report.seeding)
                 report.drift, report.warnings = _drift(info.model, model, cells, np.where(std.sd > 0, std.sd, 1.0), drift_threshold)
             report.seconds["segment"] = time.perf_counter() - t2
@@ -945,6 +996,19 @@ def refresh(
     report.model = model
     report.seconds["total"] = time.perf_counter() - t0
     return report
+
+
+def _seeding_inputs(
+    info: StoreInfo, stored: dict[str, Fingerprint], current: dict[str, Fingerprint], new: Sequence[str],
+    changed: Sequence[str], vanished: Sequence[str],
+) -> dict[str, Any]:
+    """What ``fresh_seeding_reason`` weighs: the last model's unexplained share, the share of rows changed, the version."""
+    moved = sum(current[p].rows for p in new) + sum(max(current[p].rows, stored[p].rows) for p in changed)
+    moved += sum(stored[p].rows for p in vanished)
+    total = max(sum(f.rows for f in stored.values()), 1)
+    last = info.model.params.get("cell_unexplained")
+    return {"last_unexplained": None if last is None else float(last), "changed_share": min(moved / total, 1.0),
+            "vanished": len(vanished), "version": info.version + 1}
 
 
 def _snapshot_transaction(engine: Engine):
