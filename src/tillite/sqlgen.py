@@ -833,30 +833,51 @@ class CellMap:
 
     def relation(self) -> exp.Expression:
         """The map as a FROM item aliased __tillite_m: the loaded ``table``, or an inline VALUES list."""
-        alias = internal("m")
         if self.table is not None:
-            return exp.alias_(table_name(self.table), alias, quoted=True)
+            return exp.alias_(table_name(self.table), internal("m"), quoted=True)
+        return self.values_relation()
+
+    def table_select(self) -> exp.Select:
+        """The map's rows typed as the joins read them (keys DOUBLE, segment INT), to fill a table once."""
+        names = self.column_names()
+        typed = [exp.cast(col(n), exp.DataType.build("DOUBLE")) for n in names[:-1]]
+        typed.append(exp.cast(col(names[-1]), exp.DataType.build("INT")))
+        return exp.select(*[exp.alias_(e, n, quoted=True) for e, n in zip(typed, names)]).from_(self.values_relation())
+
+    def values_relation(self) -> exp.Values:
+        """The map as an inline VALUES list aliased __tillite_m."""
+        alias = internal("m")
         names = self.column_names()
         cols = self.columns()
         rows = [exp.Tuple(expressions=[_whole(v) for v in row]) for row in zip(*(cols[n].tolist() for n in names))]
         table_alias = exp.TableAlias(this=exp.to_identifier(alias, quoted=True), columns=[exp.to_identifier(n, quoted=True) for n in names])
         return exp.Values(expressions=rows, alias=table_alias)
 
-    def row_keys(self, grid_v: Sequence[str], target: TargetLike) -> list[exp.Expression]:
-        """Each row's packed cell code (or its per-axis keys), computed exactly as the cell pass does."""
+    def axis_keys(self, grid_v: Sequence[str], target: TargetLike) -> list[exp.Expression]:
+        """Each row's per-axis cell keys from its centred grid values ``grid_v``, computed exactly as the cell pass does."""
         factors = self.grid.key_factors()
-        keys = [floor_of(linear_form(grid_v, factors[:, a]), target) for a in range(factors.shape[1])]
+        return [floor_of(linear_form(grid_v, factors[:, a]), target) for a in range(factors.shape[1])]
+
+    def row_codes(self, key_cols: Sequence[str]) -> list[exp.Expression]:
+        """A row's join keys from its per-axis keys (columns ``key_cols``): the packed code, NULL outside the
+        mapped cells' key range (so it matches nothing), or the keys themselves when they do not pack.
+
+        A range test (comparisons) rather than clamping each key with LEAST/GREATEST: in DuckDB the
+        clamps cost more than the floors and the join together (benchmarks/bench_cell_map.py)."""
         packing = self.packing()
         if packing is None:
-            return keys
+            return [col(k) for k in key_cols]
         low, strides = packing
-        top = self.key_array.max(axis=0) + 1.0
+        keys = self.key_array
+        inside = all_of([
+            exp.Between(this=col(k), low=num(float(lo)), high=num(float(hi)))
+            for k, lo, hi in zip(key_cols, keys.min(axis=0), keys.max(axis=0))
+        ])
         terms: list[exp.Expression] = []
-        for a, key in enumerate(keys):
-            clamped = least_of([greatest_of([key, num(float(low[a]))]), num(float(top[a]))])
-            shifted = exp.Sub(this=clamped, expression=num(float(low[a])))
+        for a, key in enumerate(key_cols):
+            shifted = exp.Sub(this=col(key), expression=num(float(low[a])))
             terms.append(shifted if strides[a] == 1.0 else exp.Mul(this=num(float(strides[a])), expression=paren(shifted)))
-        return [total_sum(terms)]
+        return [case_when(inside, total_sum(terms))]
 
 
 def _whole(value: float | int) -> exp.Expression:
@@ -1003,14 +1024,23 @@ def _assignment_layers(
         return stage4, seg, best, v
     # rows take their cell's segment when the cell is in the map: one hash join
     # on the packed cell code (or on the per-axis keys) against a small relation
-    row_keys = cell_map.row_keys(grid_v, target)
-    key_names = [internal(f"c{a_}") for a_ in range(len(row_keys))]
+    axis_keys = cell_map.axis_keys(grid_v, target)
+    axis_names = [internal(f"x{a_}") for a_ in range(len(axis_keys))]
     map_names = cell_map.column_names()
+    key_names = [internal(f"c{a_}") for a_ in range(len(map_names) - 1)]
     # the join carries what the pass needs, not the grid's own centred values
-    carried = [exp.Star()] if keep_source else [col(n) for n in [*v, internal("ok"), *score, best, nearest]]
-    keyed = exp.select(*carried, *[exp.alias_(e, n, quoted=True) for e, n in zip(row_keys, key_names)]).from_(
+    carried = [] if keep_source else [*v, internal("ok"), *score, best, nearest]
+
+    def carry() -> list[exp.Expression]:
+        return [col(n) for n in carried] if carried else [exp.Star()]
+
+    on_axes = exp.select(*carry(), *[exp.alias_(e, n, quoted=True) for e, n in zip(axis_keys, axis_names)]).from_(
         subquery(stage3, internal("n"))
     )
+    keyed = exp.select(
+        *carry(),
+        *[exp.alias_(e, n, quoted=True) for e, n in zip(cell_map.row_codes(axis_names), key_names)],
+    ).from_(subquery(on_axes, internal("x")))
     on = all_of([exp.EQ(this=col(kn, internal("k")), expression=col(mn, internal("m"))) for kn, mn in zip(key_names, map_names)])
     fallback = pick if cell_map.unmapped == "nearest" else case_when(col(internal("ok")), num(-1))
     mapped = case_when(col(internal("ok")), exp.Coalesce(this=col(internal("mseg")), expressions=[fallback]))
