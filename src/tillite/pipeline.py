@@ -166,12 +166,13 @@ def cells_count(cp: CellPass) -> int:
 def _holding_cell_map(label_fn: Callable[..., str]) -> Callable[..., str]:
     """Labels written once (a table, a file) join the cell map as a temporary relation, dropped afterwards.
 
-    A view keeps its map inline: it outlives the session.
+    A view outlives the session: it reads its own map table (``cell_map_table``), filled from the
+    temporary relation (or from an inline VALUES list where the engine holds none).
     """
 
     @functools.wraps(label_fn)
     def wrapper(engine: Engine, source: Source, model: Model, into: str, materialize: bool = False, *args: Any, **kw: Any) -> str:
-        cell_map = model.cell_map_spec() if (materialize or source.files) else None
+        cell_map = None if model.within else model.cell_map_spec()
         with temporary_cell_map(engine, cell_map) as held:
             if held is not None and held.table is not None:
                 model = replace(model, cell_map={**model.cell_map, "table": held.table})
@@ -234,7 +235,8 @@ def label(
     if kind is not None and not replace:
         check_may_replace(into, kind, comment, store)
     made = "table" if materialize else "view"
-    map_statements = cell_map_statements(engine, into, None if model.within else label_cell_map(model, into, materialize, source))
+    map_statements = [] if model.within else cell_map_statements(
+        engine, into, label_cell_map(model, into, materialize, source), model.cell_map_spec())
     statements = [
         *map_statements,
         sqlgen.create_relation_statement(into, select, materialize),
@@ -275,13 +277,16 @@ def label_cell_map(model: Model, into: str, materialize: bool, source: Source) -
     joined once per row rather than an inline VALUES list of thousands of rows evaluated per row.
     Tables and files join it held as a temporary relation (``_holding_cell_map``) or inline."""
     cell_map = model.cell_map_spec()
-    if cell_map is None or cell_map.table is not None or materialize or source.files:
+    if cell_map is None or materialize or source.files:
         return cell_map
     return replace(cell_map, table=cell_map_table(into))
 
 
-def cell_map_statements(engine: Engine, into: str, cell_map: sqlgen.CellMap | None) -> list[sqlgen.exp.Expression]:
-    """Drop the cell map table of the labels ``into`` that tillite made before, and make the view's new one.
+def cell_map_statements(
+    engine: Engine, into: str, cell_map: sqlgen.CellMap | None, fill: sqlgen.CellMap | None = None,
+) -> list[sqlgen.exp.Expression]:
+    """Drop the cell map table of the labels ``into`` that tillite made before, and make the view's new one
+    (``cell_map``, read from its table) from ``fill``: the map held as a temporary relation, or inline.
 
     Nothing when no map table is needed and none of ours exists.  A relation of that name tillite did not
     make is never dropped: left alone when no map is needed, one error line naming --into when one is."""
@@ -297,7 +302,7 @@ def cell_map_statements(engine: Engine, into: str, cell_map: sqlgen.CellMap | No
     out = [sqlgen.drop_statement(table, kind)] if kind is not None else []
     if cell_map is not None and cell_map.table == table:
         out += [
-            sqlgen.create_relation_statement(table, cell_map.table_select(), materialize=True),
+            sqlgen.create_relation_statement(table, (fill or replace(cell_map, table=None)).table_select(), materialize=True),
             sqlgen.mark_statement(table, "table", f"{OWNED_MARK}: cell map of labels {into}", engine.target),
         ]
     return out

@@ -838,11 +838,12 @@ class CellMap:
         return self.values_relation()
 
     def table_select(self) -> exp.Select:
-        """The map's rows typed as the joins read them (keys DOUBLE, segment INT), to fill a table once."""
+        """The map's rows typed as the joins read them (keys DOUBLE, segment INT), to fill a table once:
+        from ``table`` (a temporary relation holding them) or an inline VALUES list."""
         names = self.column_names()
         typed = [exp.cast(col(n), exp.DataType.build("DOUBLE")) for n in names[:-1]]
         typed.append(exp.cast(col(names[-1]), exp.DataType.build("INT")))
-        return exp.select(*[exp.alias_(e, n, quoted=True) for e, n in zip(typed, names)]).from_(self.values_relation())
+        return exp.select(*[exp.alias_(e, n, quoted=True) for e, n in zip(typed, names)]).from_(self.relation())
 
     def values_relation(self) -> exp.Values:
         """The map as an inline VALUES list aliased __tillite_m."""
