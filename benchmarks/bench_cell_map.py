@@ -7,10 +7,13 @@ budget so an outlier group (segment -1, labelled through its cells) exists,
 then times in one process, median of --repeat runs each:
   - a refine pass with the map held as a temporary relation (what `segment` does),
     with the map inline (what engines without temporary relations get), and without a map;
-  - a materialized label table with and without the map; creating a label view
-    (inline map) and counting its rows per segment.
+  - a materialized label table with and without the map;
+  - a label view: made and read once, and read alone (rows and mean litres per segment), with its map
+    in its own table (what `label` makes), inline (what views had before), and without a map; and its count(*),
+    which without a map needs no label at all.
 Statement building and rendering are included: they are part of what a pass costs.
-Target: a pass with a map <= 1.5 x the same pass without one.  Not a pass/fail test.
+Wall and CPU seconds (this process, DuckDB's threads included: less moved by other jobs on a shared
+machine).  Target: a pass with a map <= 1.5 x the same pass without one.  Not a pass/fail test.
 """
 
 from __future__ import annotations
@@ -21,6 +24,8 @@ import time
 from dataclasses import replace
 from pathlib import Path
 from typing import Callable
+
+import sqlglot
 
 from tillite import demo, pipeline, sqlgen
 from tillite.engines import DuckDBEngine
@@ -78,10 +83,14 @@ def main() -> None:
         "held": lambda: pipeline.label(engine, src, model, "bench_labels", materialize=True, replace=True),
     }, args.repeat)
     engine.execute(sqlgen.drop_statement("bench_labels", "table"))
-    count = sqlgen.select_where("bench_view", None, ["segment"])
+    # a read that needs every row's label: rows and mean litres per segment
+    per_segment = sqlglot.parse_one('SELECT "segment", count(*) AS n, avg("litres") AS l FROM "bench_view" GROUP BY 1')
+    count = sqlgen.count_statement(sqlgen.Source.of_table("bench_view"))
 
     def read_view() -> None:
-        engine.query(sqlgen.count_statement(sqlgen.Source.of_table("bench_view")))
+        engine.query(per_segment)
+
+    def count_view() -> None:
         engine.query(count)
 
     source_columns = pipeline.check_columns(engine, src, cols)
@@ -102,7 +111,7 @@ def main() -> None:
                        ("table", lambda: pipeline.label(engine, src, model, "bench_view", replace=True)),
                        ("inline", inline_view)):
         make()
-        reads.update(median_times({name: read_view}, args.repeat))
+        reads.update(median_times({name: read_view, f"{name} count": count_view}, args.repeat))
     engine.execute(sqlgen.drop_statement("bench_view", "view"))
     engine.execute(sqlgen.drop_statement(pipeline.cell_map_table("bench_view"), "table"))
     engine.close()
@@ -114,12 +123,14 @@ def main() -> None:
         ("refine pass, map inline (PostgreSQL path)", refine["inline"], refine["plain"], None),
         ("label table, no map", table["plain"], table["plain"], None),
         ("label table, map as temporary relation", table["held"], table["plain"], TARGET),
-        ("make label view + 2 reads, no map", view["plain"], view["plain"], None),
-        ("make label view + 2 reads, map in its own table", view["table"], view["plain"], None),
-        ("make label view + 2 reads, map inline (before)", view["inline"], view["plain"], None),
-        ("2 reads of the view, no map", reads["plain"], reads["plain"], None),
-        ("2 reads of the view, map in its own table", reads["table"], reads["plain"], TARGET),
-        ("2 reads of the view, map inline (before)", reads["inline"], reads["plain"], None),
+        ("make label view + read it, no map", view["plain"], view["plain"], None),
+        ("make label view + read it, map in its own table", view["table"], view["plain"], None),
+        ("make label view + read it, map inline (before)", view["inline"], view["plain"], None),
+        ("read the view per segment, no map", reads["plain"], reads["plain"], None),
+        ("read the view per segment, map in its own table", reads["table"], reads["plain"], TARGET),
+        ("read the view per segment, map inline (before)", reads["inline"], reads["plain"], None),
+        ("count(*) of the view, no map (labels not computed)", reads["plain count"], reads["plain count"], None),
+        ("count(*) of the view, map in its own table", reads["table count"], reads["plain count"], None),
     ]
     for name, (wall, cpu), (base_wall, base_cpu), target in rows:
         mark = "" if target is None else f"{target:>8.1f}  {'ok' if wall / base_wall <= target else 'MISSED'}"

@@ -979,7 +979,8 @@ def _assignment_layers(
     argmin needs only the scores, which cost one multiply-add per column.  With
     ``cell_map`` rows of mapped cells take their cell's segment instead.
     Returns (select, segment column, the assigned segment's score column,
-    centred value columns); when keep_source the select also carries every
+    centred value columns, the row's ||u||_w^2 (a column, or an expression of
+    the centred values)); when keep_source the select also carries every
     source column.  ``fence`` (default: when not keeping the source) computes
     the scores once per row on engines that would inline them (``scan_fence``).
     ``lookups``: each adds to score i its table's entry for the row's code
@@ -1009,10 +1010,15 @@ def _assignment_layers(
             form = exp.Add(this=form, expression=lk.entry(i, col(q), target))
         return form
 
+    # with a map the row's ||u||_w^2 is computed before the join too: DuckDB's arithmetic on a join's
+    # output (sliced vectors) cost several times as much as on the scan's (benchmarks/bench_cell_map.py)
+    nrm = internal("nrm")
+    norm = col(nrm) if cell_map is not None else _squared_norm(v, assign)
     stage2 = exp.select(
         *passthrough,
         exp.alias_(usable_rows(v, target), internal("ok"), quoted=True),
         *[exp.alias_(scored(i), score[i], quoted=True) for i in range(k)],
+        *([exp.alias_(_squared_norm(v, assign), nrm, quoted=True)] if cell_map is not None else []),
     ).from_(subquery(stage1, internal("a")))
     if fence:
         stage2 = scan_fence(stage2, target)
@@ -1022,7 +1028,7 @@ def _assignment_layers(
     pick = case_when(col(internal("ok")), col(nearest))
     if cell_map is None:
         stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("n")))
-        return stage4, seg, best, v
+        return stage4, seg, best, v, norm
     # rows take their cell's segment when the cell is in the map: one hash join
     # on the packed cell code (or on the per-axis keys) against a small relation
     axis_keys = cell_map.axis_keys(grid_v, target)
@@ -1030,7 +1036,7 @@ def _assignment_layers(
     map_names = cell_map.column_names()
     key_names = [internal(f"c{a_}") for a_ in range(len(map_names) - 1)]
     # the join carries what the pass needs, not the grid's own centred values
-    carried = [] if keep_source else [*v, internal("ok"), *score, best, nearest]
+    carried = [] if keep_source else [*v, internal("ok"), *score, best, nearest, nrm]
 
     def carry() -> list[exp.Expression]:
         return [col(n) for n in carried] if carried else [exp.Star()]
@@ -1054,7 +1060,7 @@ def _assignment_layers(
         .join(cell_map.relation(), on=on, join_type="LEFT")
     )
     stage5 = exp.select(exp.Star(), exp.alias_(chosen, internal("chosen"), quoted=True)).from_(subquery(joined, internal("j")))
-    return stage5, seg, internal("chosen"), v
+    return stage5, seg, internal("chosen"), v, norm
 
 
 def _squared_norm(v_names: Sequence[str], assign: Assignment) -> exp.Expression:
@@ -1082,13 +1088,13 @@ def refine_statement(
     per segment and category code (see ``CodeLookup``).
     """
     target = target_for(target)
-    inner, seg, best, v = _assignment_layers(source, columns, assign, target, keep_source=False, cell_map=cell_map,
+    inner, seg, best, v, norm = _assignment_layers(source, columns, assign, target, keep_source=False, cell_map=cell_map,
                                              lookups=lookups)
     codes = [internal(f"q{g}") for g in range(len(lookups))]
     aggs = [*[exp.alias_(col(q), f"q{g}", quoted=True) for g, q in enumerate(codes)],
             exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
     aggs += [exp.alias_(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(v)]
-    dist = exp.Add(this=col(best), expression=paren(_squared_norm(v, assign)))
+    dist = exp.Add(this=col(best), expression=paren(norm))
     aggs.append(exp.alias_(float_sum(dist, target), "dist", quoted=True))
     return (
         exp.select(exp.alias_(col(seg), "segment", quoted=True), *aggs)
@@ -1118,10 +1124,9 @@ def label_select(
     distance = sqrt(max(score + ||u||_w^2, 0)) for the segment's centroid; NULL
     for skipped rows and for the outlier group / noise (segment -1).
     """
-    inner, seg, best, v = _assignment_layers(
+    inner, seg, best, v, sq_norm = _assignment_layers(
         source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=materialize, lookups=lookups
     )
-    sq_norm = _squared_norm(v, assign)
     distance = case_when(
         exp.GTE(this=col(seg), expression=num(0)),
         exp.Sqrt(this=greatest_of([exp.Add(this=col(best), expression=sq_norm), num(0.0)])),
@@ -1345,7 +1350,7 @@ def report_rows_select(
 
     The scores are fenced (computed once per row) where the planner would inline them.
     """
-    inner, seg, _, _ = _assignment_layers(source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=True)
+    inner, seg, *_ = _assignment_layers(source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=True)
     keep = list(dict.fromkeys(list(columns) + list(by)))
     return exp.select(
         *[col(c) for c in keep], exp.alias_(exp.cast(col(seg), exp.DataType.build("INT")), seg, quoted=True)
