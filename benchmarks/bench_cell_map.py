@@ -1,6 +1,6 @@
 """Cost of labelling rows through a cell map (outlier group), beside the same pass without one.
 
-    python benchmarks/bench_cell_map.py [--rows 1000000] [--tree-budget 2000]
+    python benchmarks/bench_cell_map.py [--rows 1000000] [--tree-budget 2000] [--repeat 5] [--postgres]
 
 Builds the demo database once (in /tmp), segments it with a small CF tree
 budget so an outlier group (segment -1, labelled through its cells) exists,
@@ -11,6 +11,7 @@ then times in one process, median of --repeat runs each:
   - a label view: made and read once, and read alone (rows and mean litres per segment), with its map
     in its own table (what `label` makes), inline (what views had before), and without a map; and its count(*),
     which without a map needs no label at all.
+With --postgres, the refine pass and the view read again on a throwaway PostgreSQL server.
 Statement building and rendering are included: they are part of what a pass costs.
 Wall and CPU seconds (this process, DuckDB's threads included: less moved by other jobs on a shared
 machine).  Target: a pass with a map <= 1.5 x the same pass without one.  Not a pass/fail test.
@@ -51,6 +52,7 @@ def main() -> None:
     ap.add_argument("--rows", type=int, default=1_000_000)
     ap.add_argument("--tree-budget", type=int, default=2000)
     ap.add_argument("--repeat", type=int, default=5)
+    ap.add_argument("--postgres", action="store_true", help="also time the refine pass and the view read on a throwaway PostgreSQL server")
     args = ap.parse_args()
     db = Path(f"/tmp/tillite-bench-demo-{args.rows}.duckdb")
     if not db.exists():
@@ -135,6 +137,66 @@ def main() -> None:
     for name, (wall, cpu), (base_wall, base_cpu), target in rows:
         mark = "" if target is None else f"{target:>8.1f}  {'ok' if wall / base_wall <= target else 'MISSED'}"
         print(f"{name:<50}{wall:>8.3f}{wall / base_wall:>9.2f}{cpu:>8.3f}{cpu / base_cpu:>9.2f}{mark}")
+    if args.postgres:
+        postgres_run(db, model, args.repeat)
+
+
+def postgres_run(db: Path, model, repeat: int) -> None:
+    """On a throwaway PostgreSQL server holding the same rows: the refine pass (map inline: the segmenting
+    session is read-only) and the label view read per segment, with its map table, inline, and without a map."""
+    import sys
+
+    import duckdb
+    import psycopg
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+    from throwaway_servers import start_postgres
+
+    from tillite.engines import PostgresEngine
+
+    cols = list(demo.DEMO_COLUMNS)
+    with duckdb.connect(str(db), read_only=True) as con:
+        rows = con.execute("SELECT " + ", ".join(f'CAST("{c}" AS DOUBLE)' for c in cols) + " FROM meter_days").fetchall()
+    server = start_postgres()
+    try:
+        with psycopg.connect(server.conninfo, autocommit=True) as con:
+            con.execute("CREATE TABLE meter_days (" + ", ".join(f'"{c}" DOUBLE PRECISION' for c in cols) + ")")
+            with con.cursor().copy("COPY meter_days FROM STDIN") as copy:
+                for row in rows:
+                    copy.write_row(row)
+            con.execute("ANALYZE meter_days")
+        engine = PostgresEngine(server.conninfo)
+        src = sqlgen.Source.of_table("meter_days")
+        assign, cell_map, without = model.assignment(), model.cell_map_spec(), replace(model, cell_map={})
+        refine = median_times({
+            "plain": lambda: run_refine_pass(engine, src, cols, assign),
+            "inline": lambda: run_refine_pass(engine, src, cols, assign, cell_map),
+        }, repeat)
+        per_segment = sqlglot.parse_one('SELECT "segment", count(*) AS n, avg("litres") AS l FROM "pg_view" GROUP BY 1')
+
+        def inline_view() -> None:
+            select = sqlgen.label_select(src, cols, cols, assign, engine.target, cell_map=cell_map)
+            engine.run_in_transaction([sqlgen.drop_statement("pg_view", "view"),
+                                       sqlgen.create_relation_statement("pg_view", select, materialize=False)])
+
+        reads = {}
+        for name, make in (("plain", lambda: pipeline.label(engine, src, without, "pg_view", replace=True)),
+                           ("table", lambda: pipeline.label(engine, src, model, "pg_view", replace=True)),
+                           ("inline", inline_view)):
+            make()
+            reads.update(median_times({name: lambda: engine.query(per_segment)}, repeat))
+        engine.close()
+    finally:
+        server.stop()
+    print(f"\nPostgreSQL, the same {len(rows):,} rows (wall seconds; the server's CPU is not this process's)")
+    for name, secs, base in (
+        ("refine pass, no map", refine["plain"][0], refine["plain"][0]),
+        ("refine pass, map inline", refine["inline"][0], refine["plain"][0]),
+        ("read the view per segment, no map", reads["plain"][0], reads["plain"][0]),
+        ("read the view per segment, map in its own table", reads["table"][0], reads["plain"][0]),
+        ("read the view per segment, map inline (before)", reads["inline"][0], reads["plain"][0]),
+    ):
+        print(f"{name:<50}{secs:>8.3f}{secs / base:>9.2f}")
 
 
 if __name__ == "__main__":

@@ -118,7 +118,7 @@ def test_two_tree_insertion_orders_agree_after_refinement(tmp_path):
     engine.close()
 
 
-def test_outlier_rows_are_the_rows_of_mapped_cells_whether_the_map_is_inline_or_held(tmp_path):
+def test_outlier_rows_are_the_rows_of_mapped_cells_whether_the_map_is_a_table_or_held(tmp_path):
     x, _ = make_blobs(n_samples=40_000, centers=4, n_features=3, cluster_std=0.6, center_box=(-12, 12), random_state=3)
     far = np.random.default_rng(2).uniform(30, 50, size=(25, 3))
     rows = np.vstack([x, far])
@@ -126,7 +126,7 @@ def test_outlier_rows_are_the_rows_of_mapped_cells_whether_the_map_is_inline_or_
     model = segment(engine, Source.of_table("t"), ["a", "b", "c"], Settings(k=4, tree_budget=600))
     cell_map = model.cell_map_spec()
     assert cell_map is not None and cell_map.packing() is not None
-    label(engine, Source.of_table("t"), model, "as_view")  # map inline in the view
+    label(engine, Source.of_table("t"), model, "as_view")  # the view reads its map table
     label(engine, Source.of_table("t"), model, "as_table", materialize=True)  # map held as a temporary relation
     order = 'ORDER BY "a", "b", "c"'
     view = engine.con.execute(f'SELECT "a", "b", "c", "segment" FROM "as_view" {order}').fetchnumpy()
