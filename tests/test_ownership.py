@@ -274,3 +274,14 @@ def test_comment_query_renders_and_parses_back(dialect):
             assert con.execute(text).fetchall() == [("x",)]
         finally:
             con.close()
+
+
+def test_cell_map_table_names_stay_within_postgresqls_identifier_length_and_apart():
+    from tillite.pipeline import cell_map_table
+
+    long_a, long_b = "segments_of_" + "x" * 50 + "_a", "segments_of_" + "x" * 50 + "_b"
+    names = [cell_map_table(n) for n in (long_a, long_b, "s.labelled", "labelled", "é" * 40)]
+    # reference (from memory): PostgreSQL cuts identifiers at NAMEDATALEN - 1 = 63 bytes
+    assert all(len(n.split(".")[-1].encode()) <= 63 for n in names)
+    assert names[0] != names[1]
+    assert names[2:4] == ["s.tillite_cellmap_labelled", "tillite_cellmap_labelled"]
