@@ -22,6 +22,7 @@ from tillite.engines import DuckDBEngine, EngineError, MissingExtraError, Postgr
 from tillite.pipeline import (
     InputError,
     Settings,
+    cell_map_table,
     existing_relation_kind,
     grid_for_profile,
     label,
@@ -129,6 +130,28 @@ def test_labels_view_equals_duckdb_row_for_row(server, loaded, engine_rows):
         assert existing_relation_kind(pg, "public.point_segments") == "view"
         assert existing_relation_kind(pg, "Point_Segments") is None  # quoted names keep their case in PostgreSQL
         label(pg, SRC, model, "point_segments")  # CREATE OR REPLACE VIEW over itself
+    finally:
+        pg.close()
+        duck.close()
+
+
+def test_labels_view_reading_its_cell_map_table_equals_duckdb_row_for_row(server, loaded, engine_rows):
+    from engine_checks import with_every_third_cell_mapped
+
+    from tillite.pipeline import OWNED_MARK
+
+    pg = PostgresEngine(server.conninfo)
+    duck = DuckDBEngine(str(loaded))
+    try:
+        model = with_every_third_cell_mapped(duck, SRC, segment(duck, SRC, COLUMNS, Settings(**SETTINGS)))
+        for _ in range(2):  # made, then replaced: the view is dropped before the map table it reads
+            assert label(pg, SRC, model, "mapped_segments") == "view mapped_segments"
+        label(duck, SRC, model, "mapped_segments")
+        # reference: DuckDB's labels view over the same rows, reading its own map table
+        assert_same_labels(ordered_rows(pg, "mapped_segments"), ordered_rows(duck, "mapped_segments"), engine_rows)
+        assert pg.relation_comment(cell_map_table("mapped_segments")).startswith(OWNED_MARK)
+        label(pg, SRC, model, "mapped_segments", materialize=True)
+        assert existing_relation_kind(pg, cell_map_table("mapped_segments")) is None
     finally:
         pg.close()
         duck.close()

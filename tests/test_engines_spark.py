@@ -21,6 +21,7 @@ from tillite.cli import main
 from tillite.engines import DuckDBEngine, EngineError, MissingExtraError, SourceError, SparkEngine, open_source
 from tillite.pipeline import (
     Settings,
+    cell_map_table,
     existing_relation_kind,
     grid_for_profile,
     label,
@@ -157,6 +158,26 @@ def test_labels_equal_duckdb_row_for_row_as_view_and_table(sparks, duck, data, e
     assert existing_relation_kind(sparks, "segments_table") == "table"
     label(sparks, src, model, "segments_table", materialize=True, replace=True)
     assert_same_labels(ordered_rows(sparks, "segments_table"), ref, engine_rows)
+
+
+def test_labels_view_reading_its_cell_map_table_equals_duckdb_row_for_row(sparks, duck, data, engine_rows):
+    from engine_checks import with_every_third_cell_mapped
+
+    from tillite.pipeline import OWNED_MARK
+
+    model = with_every_third_cell_mapped(duck, DUCK_SRC, segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS)))
+    # reference: DuckDB's labels over the same rows with the map inline
+    select = sqlgen.label_select(DUCK_SRC, COLUMNS, ["id", *COLUMNS, "kind"], model.assignment(), "duckdb",
+                                 cell_map=model.cell_map_spec())
+    ref = duck.query(exp.select(exp.Star()).from_(sqlgen.subquery(select, "l")).order_by(sqlgen.col("id")))
+    for src, into in ((Source.of_table(REGISTERED), "mapped_segments"), (Source.of_table("points_temp"), "mapped_temp")):
+        for again in (False, True):  # made, then replaced with its map table (a temporary view keeps no mark)
+            label(sparks, src, model, into, replace=again)
+        assert_same_labels(ordered_rows(sparks, into), ref, engine_rows)
+        assert existing_relation_kind(sparks, cell_map_table(into)) == "table"
+        assert sparks.relation_comment(cell_map_table(into)).startswith(OWNED_MARK)
+    label(sparks, Source.of_table(REGISTERED), model, "mapped_segments", materialize=True)
+    assert existing_relation_kind(sparks, cell_map_table("mapped_segments")) is None
 
 
 def test_labels_over_a_temporary_view_are_a_temporary_view(sparks, duck, data, engine_rows):

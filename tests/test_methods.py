@@ -118,7 +118,7 @@ def test_two_tree_insertion_orders_agree_after_refinement(tmp_path):
     engine.close()
 
 
-def test_outlier_rows_are_the_rows_of_mapped_cells_whether_the_map_is_inline_or_held(tmp_path):
+def test_outlier_rows_are_the_rows_of_mapped_cells_whether_the_map_is_a_table_or_held(tmp_path):
     x, _ = make_blobs(n_samples=40_000, centers=4, n_features=3, cluster_std=0.6, center_box=(-12, 12), random_state=3)
     far = np.random.default_rng(2).uniform(30, 50, size=(25, 3))
     rows = np.vstack([x, far])
@@ -126,7 +126,7 @@ def test_outlier_rows_are_the_rows_of_mapped_cells_whether_the_map_is_inline_or_
     model = segment(engine, Source.of_table("t"), ["a", "b", "c"], Settings(k=4, tree_budget=600))
     cell_map = model.cell_map_spec()
     assert cell_map is not None and cell_map.packing() is not None
-    label(engine, Source.of_table("t"), model, "as_view")  # map inline in the view
+    label(engine, Source.of_table("t"), model, "as_view")  # the view reads its map table
     label(engine, Source.of_table("t"), model, "as_table", materialize=True)  # map held as a temporary relation
     order = 'ORDER BY "a", "b", "c"'
     view = engine.con.execute(f'SELECT "a", "b", "c", "segment" FROM "as_view" {order}').fetchnumpy()
@@ -198,3 +198,33 @@ def test_ward_on_tiny_or_constant_weighted_data_ends_without_a_traceback(tmp_pat
         assert shown.exit_code == 0 and "Traceback" not in shown.output
     else:
         assert res.exit_code == 1 and res.stderr.strip().splitlines()[-1].startswith("Error:")
+
+
+@pytest.mark.parametrize("settings", [dict(k=4, tree_budget=300), dict(k=0, method="density")], ids=["outliers", "density"])
+def test_a_label_view_reading_its_cell_map_table_equals_the_inline_map_labels_on_the_demo(tmp_path, settings):
+    from tillite import sqlgen
+    from tillite.demo import DEMO_COLUMNS, build_demo_database
+    from tillite.pipeline import cell_map_table, check_columns
+
+    path = tmp_path / "water.duckdb"
+    build_demo_database(path, rows=20_000, days=4, seed=5)
+    engine = DuckDBEngine(str(path))
+    src, cols = Source.of_table("meter_days"), list(DEMO_COLUMNS)
+    model = segment(engine, src, cols, Settings(**settings))
+    assert model.cell_map_spec() is not None
+    label(engine, src, model, "by_table")
+    kept = engine.con.execute(f'SELECT count(*) FROM "{cell_map_table("by_table")}"').fetchone()[0]
+    assert kept == len(model.cell_map["keys"])
+    # reference: the view as labels made it before, the map inline as a VALUES list (its own statement)
+    inline = sqlgen.label_select(src, cols, check_columns(engine, src, cols), model.assignment(), engine.target,
+                                 cell_map=model.cell_map_spec())
+    engine.execute(sqlgen.create_relation_statement("inline", inline, materialize=False))
+    order = 'ORDER BY "meter_id", "day"'
+    got = engine.con.execute(f'SELECT "segment", "distance" FROM "by_table" {order}').fetchnumpy()
+    ref = engine.con.execute(f'SELECT "segment", "distance" FROM "inline" {order}').fetchnumpy()
+    np.testing.assert_array_equal(got["segment"], ref["segment"])
+    np.testing.assert_array_equal(np.ma.getmaskarray(got["distance"]), np.ma.getmaskarray(ref["distance"]))
+    np.testing.assert_array_equal(np.ma.filled(got["distance"], 0.0), np.ma.filled(ref["distance"], 0.0))
+    if "tree_budget" in settings:  # rows of the outlier group's cells are there (density labels every row by its cell)
+        assert (np.asarray(got["segment"]) == -1).any()
+    engine.close()

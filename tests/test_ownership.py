@@ -88,6 +88,54 @@ def test_a_view_tillite_made_is_re_created_without_replace(points_and_model):
     assert catalog_entry(path, "labelled")[0][0] == "table"
 
 
+# ----------------------------------------------------------------------------- a label view's cell map table
+
+
+@pytest.fixture
+def outliers_and_model(tmp_path):
+    """Blobs with far points and a small --tree-budget: the model has an outlier group, labelled through a cell map."""
+    x, _ = make_blobs(n_samples=6_000, centers=3, n_features=2, random_state=4)
+    far = np.random.default_rng(1).uniform(40, 60, size=(20, 2))
+    path = write_table(tmp_path / "far.duckdb", "points", columns_of(np.vstack([x, far]), NAMES))
+    model = tmp_path / "far.model.json"
+    res = run_cli("segment", path, "-t", "points", "-c", "a,b", "--k", "3", "--tree-budget", "150", "-o", model, "-q")
+    assert res.exit_code == 0, res.output
+    return path, model
+
+
+def test_a_label_view_keeps_its_cell_map_in_a_marked_table_dropped_when_no_longer_needed(outliers_and_model, points_and_model):
+    path, model = outliers_and_model
+    for _ in range(2):  # made, then replaced without --replace: both are tillite's
+        result = run_cli("label", path, "-t", "points", "-m", model, "--into", "labelled", "-q")
+        assert result.exit_code == 0, result.output
+        (kind, _, comment), = catalog_entry(path, "tillite_cellmap_labelled")
+        assert kind == "table" and comment.startswith(OWNED_MARK)
+        assert (catalog_entry(path, "labelled")[0][0]) == "view"
+    # reference: DuckDB's own catalog; a labels table joins the map held for the run only
+    assert run_cli("label", path, "-t", "points", "-m", model, "--into", "labelled", "--materialize", "-q").exit_code == 0
+    assert catalog_entry(path, "tillite_cellmap_labelled") == []
+    assert run_cli("label", path, "-t", "points", "-m", model, "--into", "labelled", "--replace", "-q").exit_code == 0
+    assert catalog_entry(path, "tillite_cellmap_labelled")[0][0] == "table"
+    plain = points_and_model[1]  # a model labelling every row by its nearest centroid: no map table
+    assert run_cli("label", path, "-t", "points", "-m", plain, "--into", "labelled", "-q").exit_code == 0
+    assert catalog_entry(path, "tillite_cellmap_labelled") == []
+    assert catalog_entry(path, "labelled")[0][0] == "view"
+
+
+@pytest.mark.parametrize("kind", ["TABLE", "VIEW"])
+def test_a_label_view_refuses_a_users_object_in_place_of_its_cell_map_table(outliers_and_model, points_and_model, kind):
+    path, model = outliers_and_model
+    fetch_rows(path, f'CREATE {kind} "tillite_cellmap_labelled" AS SELECT 42 AS answer')
+    before = catalog_entry(path, "tillite_cellmap_labelled"), contents(path, "tillite_cellmap_labelled")
+    for replace in ([], ["--replace"]):
+        result = run_cli("label", path, "-t", "points", "-m", model, "--into", "labelled", *replace)
+        assert_one_error_line(result, "--into labelled", "tillite_cellmap_labelled", "did not make")
+        assert catalog_entry(path, "labelled") == []
+    # a model that needs no map labels beside it and leaves the user's object alone
+    assert run_cli("label", path, "-t", "points", "-m", points_and_model[1], "--into", "labelled", "-q").exit_code == 0
+    assert (catalog_entry(path, "tillite_cellmap_labelled"), contents(path, "tillite_cellmap_labelled")) == before
+
+
 # ----------------------------------------------------------------------------- store label views and refresh
 
 
@@ -226,3 +274,14 @@ def test_comment_query_renders_and_parses_back(dialect):
             assert con.execute(text).fetchall() == [("x",)]
         finally:
             con.close()
+
+
+def test_cell_map_table_names_stay_within_postgresqls_identifier_length_and_apart():
+    from tillite.pipeline import cell_map_table
+
+    long_a, long_b = "segments_of_" + "x" * 50 + "_a", "segments_of_" + "x" * 50 + "_b"
+    names = [cell_map_table(n) for n in (long_a, long_b, "s.labelled", "labelled", "é" * 40)]
+    # reference (from memory): PostgreSQL cuts identifiers at NAMEDATALEN - 1 = 63 bytes
+    assert all(len(n.split(".")[-1].encode()) <= 63 for n in names)
+    assert names[0] != names[1]
+    assert names[2:4] == ["s.tillite_cellmap_labelled", "tillite_cellmap_labelled"]

@@ -542,3 +542,21 @@ def test_demo_ends_by_writing_its_report_beside_the_database_and_says_where(tmp_
     page = tmp_path / "tillite-demo-report.html"
     assert page.exists() and f"report written to {page.resolve()}" in got.output
     assert 'id="chart-breakdown-0"' in page.read_text(encoding="utf-8")
+
+
+def test_report_of_an_outlier_model_counts_the_rows_its_label_view_gives_each_segment(tmp_path):
+    from sklearn.datasets import make_blobs
+
+    x, _ = make_blobs(n_samples=8_000, centers=3, n_features=2, random_state=6)
+    far = np.random.default_rng(3).uniform(40, 60, size=(25, 2))
+    engine = DuckDBEngine(str(write_table(tmp_path / "far.duckdb", "t", columns_of(np.vstack([x, far]), ["a", "b"]))))
+    model = segment(engine, Source.of_table("t"), ["a", "b"], Settings(k=3, tree_budget=150))
+    assert model.cell_map_spec() is not None
+    stats, _ = R.report_scan(engine, Source.of_table("t"), model)  # the map held as a temporary relation
+    label(engine, Source.of_table("t"), model, "labels")
+    seg = np.asarray(engine.con.execute('SELECT "segment" FROM "labels"').fetchnumpy()["segment"])
+    # reference: numpy's counts of the label view's segments (-1: the outlier group)
+    assert {sid: s["n"] for sid, s in stats.items()} == {int(v): int((seg == v).sum()) for v in np.unique(seg)}
+    assert (seg == -1).any()
+    assert engine.con.execute("SELECT count(*) FROM duckdb_views() WHERE view_name LIKE '__tillite_map%'").fetchone()[0] == 0
+    engine.close()

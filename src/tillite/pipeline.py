@@ -12,6 +12,7 @@ from __future__ import annotations
 import fnmatch
 import functools
 import glob
+import hashlib
 import os
 import tempfile
 import time
@@ -163,12 +164,13 @@ def cells_count(cp: CellPass) -> int:
 def _holding_cell_map(label_fn: Callable[..., str]) -> Callable[..., str]:
     """Labels written once (a table, a file) join the cell map as a temporary relation, dropped afterwards.
 
-    A view keeps its map inline: it outlives the session.
+    A view outlives the session: it reads its own map table (``cell_map_table``), filled from the
+    temporary relation (or from an inline VALUES list where the engine holds none).
     """
 
     @functools.wraps(label_fn)
     def wrapper(engine: Engine, source: Source, model: Model, into: str, materialize: bool = False, *args: Any, **kw: Any) -> str:
-        cell_map = model.cell_map_spec() if (materialize or source.files) else None
+        cell_map = None if model.within else model.cell_map_spec()
         with temporary_cell_map(engine, cell_map) as held:
             if held is not None and held.table is not None:
                 model = replace(model, cell_map={**model.cell_map, "table": held.table})
@@ -212,7 +214,7 @@ def label(
         if specs:
             columns, assign, lookups = code_assignment(columns, assign, cat.indicator_positions(columns, specs), cat.code_names(specs))
         select = sqlgen.label_select(
-            source, columns, source_columns, assign, engine.target, cell_map=model.cell_map_spec(),
+            source, columns, source_columns, assign, engine.target, cell_map=label_cell_map(model, into, materialize, source),
             materialize=materialize or bool(source.files), lookups=lookups,
         )
     if model.names and not model.within:  # a segment_name column once segments are named (`tillite name`)
@@ -238,13 +240,17 @@ def label(
     if kind is not None and not replace:
         check_may_replace(into, kind, comment, store)
     made = "table" if materialize else "view"
+    map_statements = [] if model.within else cell_map_statements(
+        engine, into, label_cell_map(model, into, materialize, source), model.cell_map_spec())
     statements = [
+        *map_statements,
         sqlgen.create_relation_statement(into, select, materialize),
         sqlgen.mark_statement(into, made, owner_comment(store), engine.target),
     ]
     # no engine but DuckDB has CREATE OR REPLACE TABLE, and PostgreSQL replaces a view only by one
-    # with the same leading columns: anything but a view of ours is dropped first, in the same transaction
-    if kind == "table" or kind == "view" and (materialize or not is_owned(comment)):
+    # with the same leading columns: anything but a view of ours is dropped first, in the same transaction;
+    # so is a view whose cell map table is dropped or made (PostgreSQL drops no table a view reads)
+    if kind == "table" or kind == "view" and (materialize or not is_owned(comment) or map_statements):
         statements.insert(0, sqlgen.drop_statement(into, kind))
     if in_transaction:
         for st in statements:
@@ -252,6 +258,59 @@ def label(
     else:
         engine.run_in_transaction(statements)
     return f"{made} {into}"
+
+
+#: A label view whose rows are labelled through their grid cell (an outlier group, density segments) reads
+#: its cell map from a table beside it, named with this prefix (see ``cell_map_table``).
+CELL_MAP_PREFIX = "tillite_cellmap_"
+
+
+def cell_map_table(into: str) -> str:
+    """The table holding the cell map of the label view ``into``: tillite_cellmap_<view>, in the view's schema.
+
+    A view name too long for PostgreSQL's 63-byte identifiers is shortened and a hash of it appended."""
+    *schema, name = into.split(".")
+    own = f"{CELL_MAP_PREFIX}{name}"
+    if len(own.encode()) > 63:
+        head = name.encode()[:24].decode(errors="ignore")
+        own = f"{CELL_MAP_PREFIX}{head}_{hashlib.sha256(name.encode()).hexdigest()[:12]}"
+    return ".".join([*schema, own])
+
+
+def label_cell_map(model: Model, into: str, materialize: bool, source: Source) -> sqlgen.CellMap | None:
+    """The model's cell map as the labels read it: for a view, from its own table (``cell_map_table``),
+    joined once per row rather than an inline VALUES list of thousands of rows evaluated per row.
+    Tables and files join it held as a temporary relation (``_holding_cell_map``) or inline."""
+    cell_map = model.cell_map_spec()
+    if cell_map is None or materialize or source.files:
+        return cell_map
+    return replace(cell_map, table=cell_map_table(into))
+
+
+def cell_map_statements(
+    engine: Engine, into: str, cell_map: sqlgen.CellMap | None, fill: sqlgen.CellMap | None = None,
+) -> list[sqlgen.exp.Expression]:
+    """Drop the cell map table of the labels ``into`` that tillite made before, and make the view's new one
+    (``cell_map``, read from its table) from ``fill``: the map held as a temporary relation, or inline.
+
+    Nothing when no map table is needed and none of ours exists.  A relation of that name tillite did not
+    make is never dropped: left alone when no map is needed, one error line naming --into when one is."""
+    table = cell_map_table(into)
+    kind = existing_relation_kind(engine, table)
+    if kind is not None and not is_owned(engine.relation_comment(table)):
+        if cell_map is None or cell_map.table != table:
+            return []
+        raise ParameterError(
+            f"{{into}} {into}: its labels keep their cell map in the table {table}, but a {kind} of that name "
+            "exists that tillite did not make; drop or rename it, or choose another {into}", "into",
+        )
+    out = [sqlgen.drop_statement(table, kind)] if kind is not None else []
+    if cell_map is not None and cell_map.table == table:
+        out += [
+            sqlgen.create_relation_statement(table, (fill or replace(cell_map, table=None)).table_select(), materialize=True),
+            sqlgen.mark_statement(table, "table", f"{OWNED_MARK}: cell map of labels {into}", engine.target),
+        ]
+    return out
 
 
 OWNED_MARK = sqlgen.OWNED_MARK

@@ -8,7 +8,7 @@ import json
 import math
 import os
 from pathlib import Path
-from typing import Any, Mapping, Sequence
+from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 from sqlglot import exp
@@ -102,12 +102,26 @@ def segment_colour(position: int, segment_id: int) -> str:
 # --------------------------------------------------------------------------- statistics in the engine
 
 
-def assigned_rows(engine: Engine, source: Source, model: Model, by: Sequence[str], labels: Source | None = None) -> exp.Select:
-    """The model's and the breakdown columns with each row's segment: assigned in SQL, or read from a
-    materialized labels table (``labels``, made by `tillite label --materialize` with this model)."""
+def assigned_rows(
+    engine: Engine, source: Source, model: Model, by: Sequence[str], labels: Source | None = None,
+    cell_map: sqlgen.CellMap | None = None,
+) -> exp.Select:
+    """The model's and the breakdown columns with each row's segment: assigned in SQL (through ``cell_map``,
+    the model's map as ``stages.temporary_cell_map`` holds it, else inline), or read from a materialized
+    labels table (``labels``, made by `tillite label --materialize` with this model)."""
     if labels is not None:
         return sqlgen.labelled_rows_select(labels, model.columns, by)
-    return sqlgen.report_rows_select(source, model.columns, by, model.assignment(), engine.target, cell_map=model.cell_map_spec())
+    return sqlgen.report_rows_select(source, model.columns, by, model.assignment(), engine.target,
+                                     cell_map=cell_map or model.cell_map_spec())
+
+
+def _query_assigned(engine: Engine, model: Model, labels: Source | None, statement: Callable[..., exp.Select]) -> dict:
+    """Run ``statement(cell_map)`` with the model's cell map held as a temporary relation where the engine
+    holds one (a join on a small table rather than thousands of literals planned in the statement)."""
+    from .stages import temporary_cell_map
+
+    with temporary_cell_map(engine, model.cell_map_spec() if labels is None else None) as held:
+        return engine.query(statement(held))
 
 
 def report_scan(
@@ -116,8 +130,8 @@ def report_scan(
 ) -> tuple[dict[int, dict[str, Any]], list[dict[str, Any]]]:
     """Per-segment statistics (no quartiles) and the breakdowns by ``by``, from ONE statement that assigns
     each row once (or reads ``labels``) and groups by (segment, category): the groups are pooled exactly here."""
-    rows = assigned_rows(engine, source, model, by, labels)
-    got = engine.query(sqlgen.report_scan_statement(rows, model.columns, by))
+    got = _query_assigned(engine, model, labels, lambda held: sqlgen.report_scan_statement(
+        assigned_rows(engine, source, model, by, labels, held), model.columns, by))
     segs = _masked_ints(got["s"])
     keep = [i for i, s in enumerate(segs) if s is not None]  # groups with a NULL segment hold the skipped rows
     sets = _grouping_sets(got, len(by), keep)
@@ -190,8 +204,9 @@ def sample_quartiles(
     """Per segment: sampled rows and per column q25, q50, q75 from a seeded Bernoulli sample of the rows
     (all rows when the table is small); returns them and the sample's size."""
     percent = quartile_sample_percent(model) if percent is None else percent
-    rows = assigned_rows(engine, source, model, [], labels)
-    got = engine.query(sqlgen.quartile_statement(sqlgen.sampled_rows(rows, percent, engine.target), model.columns, engine.target))
+    got = _query_assigned(engine, model, labels, lambda held: sqlgen.quartile_statement(
+        sqlgen.sampled_rows(assigned_rows(engine, source, model, [], labels, held), percent, engine.target),
+        model.columns, engine.target))
     return quartiles_of(got, model.columns)
 
 

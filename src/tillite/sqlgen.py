@@ -833,30 +833,52 @@ class CellMap:
 
     def relation(self) -> exp.Expression:
         """The map as a FROM item aliased __tillite_m: the loaded ``table``, or an inline VALUES list."""
-        alias = internal("m")
         if self.table is not None:
-            return exp.alias_(table_name(self.table), alias, quoted=True)
+            return exp.alias_(table_name(self.table), internal("m"), quoted=True)
+        return self.values_relation()
+
+    def table_select(self) -> exp.Select:
+        """The map's rows typed as the joins read them (keys DOUBLE, segment INT), to fill a table once:
+        from ``table`` (a temporary relation holding them) or an inline VALUES list."""
+        names = self.column_names()
+        typed = [exp.cast(col(n), exp.DataType.build("DOUBLE")) for n in names[:-1]]
+        typed.append(exp.cast(col(names[-1]), exp.DataType.build("INT")))
+        return exp.select(*[exp.alias_(e, n, quoted=True) for e, n in zip(typed, names)]).from_(self.relation())
+
+    def values_relation(self) -> exp.Values:
+        """The map as an inline VALUES list aliased __tillite_m."""
+        alias = internal("m")
         names = self.column_names()
         cols = self.columns()
         rows = [exp.Tuple(expressions=[_whole(v) for v in row]) for row in zip(*(cols[n].tolist() for n in names))]
         table_alias = exp.TableAlias(this=exp.to_identifier(alias, quoted=True), columns=[exp.to_identifier(n, quoted=True) for n in names])
         return exp.Values(expressions=rows, alias=table_alias)
 
-    def row_keys(self, grid_v: Sequence[str], target: TargetLike) -> list[exp.Expression]:
-        """Each row's packed cell code (or its per-axis keys), computed exactly as the cell pass does."""
+    def axis_keys(self, grid_v: Sequence[str], target: TargetLike) -> list[exp.Expression]:
+        """Each row's per-axis cell keys from its centred grid values ``grid_v``, computed exactly as the cell pass does."""
         factors = self.grid.key_factors()
-        keys = [floor_of(linear_form(grid_v, factors[:, a]), target) for a in range(factors.shape[1])]
+        return [floor_of(linear_form(grid_v, factors[:, a]), target) for a in range(factors.shape[1])]
+
+    def row_codes(self, key_cols: Sequence[str]) -> list[exp.Expression]:
+        """A row's join keys from its per-axis keys (columns ``key_cols``): the packed code, NULL outside the
+        mapped cells' key range (so it matches nothing), or the keys themselves when they do not pack.
+
+        A range test (comparisons) rather than clamping each key with LEAST/GREATEST: in DuckDB the
+        clamps cost more than the floors and the join together (benchmarks/bench_cell_map.py)."""
         packing = self.packing()
         if packing is None:
-            return keys
+            return [col(k) for k in key_cols]
         low, strides = packing
-        top = self.key_array.max(axis=0) + 1.0
+        keys = self.key_array
+        inside = all_of([
+            exp.Between(this=col(k), low=num(float(lo)), high=num(float(hi)))
+            for k, lo, hi in zip(key_cols, keys.min(axis=0), keys.max(axis=0))
+        ])
         terms: list[exp.Expression] = []
-        for a, key in enumerate(keys):
-            clamped = least_of([greatest_of([key, num(float(low[a]))]), num(float(top[a]))])
-            shifted = exp.Sub(this=clamped, expression=num(float(low[a])))
+        for a, key in enumerate(key_cols):
+            shifted = exp.Sub(this=col(key), expression=num(float(low[a])))
             terms.append(shifted if strides[a] == 1.0 else exp.Mul(this=num(float(strides[a])), expression=paren(shifted)))
-        return [total_sum(terms)]
+        return [case_when(inside, total_sum(terms))]
 
 
 def _whole(value: float | int) -> exp.Expression:
@@ -957,7 +979,8 @@ def _assignment_layers(
     argmin needs only the scores, which cost one multiply-add per column.  With
     ``cell_map`` rows of mapped cells take their cell's segment instead.
     Returns (select, segment column, the assigned segment's score column,
-    centred value columns); when keep_source the select also carries every
+    centred value columns, the row's ||u||_w^2 (a column, or an expression of
+    the centred values)); when keep_source the select also carries every
     source column.  ``fence`` (default: when not keeping the source) computes
     the scores once per row on engines that would inline them (``scan_fence``).
     ``lookups``: each adds to score i its table's entry for the row's code
@@ -987,10 +1010,15 @@ def _assignment_layers(
             form = exp.Add(this=form, expression=lk.entry(i, col(q), target))
         return form
 
+    # with a map the row's ||u||_w^2 is computed before the join too: DuckDB's arithmetic on a join's
+    # output (sliced vectors) cost several times as much as on the scan's (benchmarks/bench_cell_map.py)
+    nrm = internal("nrm")
+    norm = col(nrm) if cell_map is not None else _squared_norm(v, assign)
     stage2 = exp.select(
         *passthrough,
         exp.alias_(usable_rows(v, target), internal("ok"), quoted=True),
         *[exp.alias_(scored(i), score[i], quoted=True) for i in range(k)],
+        *([exp.alias_(_squared_norm(v, assign), nrm, quoted=True)] if cell_map is not None else []),
     ).from_(subquery(stage1, internal("a")))
     if fence:
         stage2 = scan_fence(stage2, target)
@@ -1000,17 +1028,26 @@ def _assignment_layers(
     pick = case_when(col(internal("ok")), col(nearest))
     if cell_map is None:
         stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("n")))
-        return stage4, seg, best, v
+        return stage4, seg, best, v, norm
     # rows take their cell's segment when the cell is in the map: one hash join
     # on the packed cell code (or on the per-axis keys) against a small relation
-    row_keys = cell_map.row_keys(grid_v, target)
-    key_names = [internal(f"c{a_}") for a_ in range(len(row_keys))]
+    axis_keys = cell_map.axis_keys(grid_v, target)
+    axis_names = [internal(f"x{a_}") for a_ in range(len(axis_keys))]
     map_names = cell_map.column_names()
+    key_names = [internal(f"c{a_}") for a_ in range(len(map_names) - 1)]
     # the join carries what the pass needs, not the grid's own centred values
-    carried = [exp.Star()] if keep_source else [col(n) for n in [*v, internal("ok"), *score, best, nearest]]
-    keyed = exp.select(*carried, *[exp.alias_(e, n, quoted=True) for e, n in zip(row_keys, key_names)]).from_(
+    carried = [] if keep_source else [*v, internal("ok"), *score, best, nearest, nrm]
+
+    def carry() -> list[exp.Expression]:
+        return [col(n) for n in carried] if carried else [exp.Star()]
+
+    on_axes = exp.select(*carry(), *[exp.alias_(e, n, quoted=True) for e, n in zip(axis_keys, axis_names)]).from_(
         subquery(stage3, internal("n"))
     )
+    keyed = exp.select(
+        *carry(),
+        *[exp.alias_(e, n, quoted=True) for e, n in zip(cell_map.row_codes(axis_names), key_names)],
+    ).from_(subquery(on_axes, internal("x")))
     on = all_of([exp.EQ(this=col(kn, internal("k")), expression=col(mn, internal("m"))) for kn, mn in zip(key_names, map_names)])
     fallback = pick if cell_map.unmapped == "nearest" else case_when(col(internal("ok")), num(-1))
     mapped = case_when(col(internal("ok")), exp.Coalesce(this=col(internal("mseg")), expressions=[fallback]))
@@ -1023,7 +1060,7 @@ def _assignment_layers(
         .join(cell_map.relation(), on=on, join_type="LEFT")
     )
     stage5 = exp.select(exp.Star(), exp.alias_(chosen, internal("chosen"), quoted=True)).from_(subquery(joined, internal("j")))
-    return stage5, seg, internal("chosen"), v
+    return stage5, seg, internal("chosen"), v, norm
 
 
 def _squared_norm(v_names: Sequence[str], assign: Assignment) -> exp.Expression:
@@ -1051,13 +1088,13 @@ def refine_statement(
     per segment and category code (see ``CodeLookup``).
     """
     target = target_for(target)
-    inner, seg, best, v = _assignment_layers(source, columns, assign, target, keep_source=False, cell_map=cell_map,
+    inner, seg, best, v, norm = _assignment_layers(source, columns, assign, target, keep_source=False, cell_map=cell_map,
                                              lookups=lookups)
     codes = [internal(f"q{g}") for g in range(len(lookups))]
     aggs = [*[exp.alias_(col(q), f"q{g}", quoted=True) for g, q in enumerate(codes)],
             exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
     aggs += [exp.alias_(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(v)]
-    dist = exp.Add(this=col(best), expression=paren(_squared_norm(v, assign)))
+    dist = exp.Add(this=col(best), expression=paren(norm))
     aggs.append(exp.alias_(float_sum(dist, target), "dist", quoted=True))
     return (
         exp.select(exp.alias_(col(seg), "segment", quoted=True), *aggs)
@@ -1087,10 +1124,9 @@ def label_select(
     distance = sqrt(max(score + ||u||_w^2, 0)) for the segment's centroid; NULL
     for skipped rows and for the outlier group / noise (segment -1).
     """
-    inner, seg, best, v = _assignment_layers(
+    inner, seg, best, v, sq_norm = _assignment_layers(
         source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=materialize, lookups=lookups
     )
-    sq_norm = _squared_norm(v, assign)
     distance = case_when(
         exp.GTE(this=col(seg), expression=num(0)),
         exp.Sqrt(this=greatest_of([exp.Add(this=col(best), expression=sq_norm), num(0.0)])),
@@ -1314,7 +1350,7 @@ def report_rows_select(
 
     The scores are fenced (computed once per row) where the planner would inline them.
     """
-    inner, seg, _, _ = _assignment_layers(source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=True)
+    inner, seg, *_ = _assignment_layers(source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=True)
     keep = list(dict.fromkeys(list(columns) + list(by)))
     return exp.select(
         *[col(c) for c in keep], exp.alias_(exp.cast(col(seg), exp.DataType.build("INT")), seg, quoted=True)
