@@ -40,7 +40,7 @@ from .stages import (  # noqa: F401  (re-exported: the stages' old import path)
     run_cell_pass, run_profile, run_refine_pass, run_second_phase, second_phase, size_order, standardise_cells,
     temporary_cell_map,
     # categorical columns
-    CODE_SPACING, categorical_source, code_assignment, grid_with_category_codes, model_source, run_cell_pass_with_codes,
+    CODE_SPACING, categorical_source, categorical_weights, code_assignment, grid_with_category_codes, model_source, run_cell_pass_with_codes,
     run_refine_pass_with_codes,
 )
 from .stages import axes_text
@@ -89,10 +89,7 @@ def segment(
         columns = columns + [n for s in specs for n in s.names]
     else:
         check_columns(engine, source, columns)
-    weights = settings.column_weights(columns)
-    groups = cat.indicator_positions(columns, specs)
-    for spec, pos in zip(specs, groups):
-        weights[pos] = float(settings.weights.get(spec.column, 1.0))
+    weights, groups = categorical_weights(settings, columns, specs)
 
     # 1. profile on a sample, and the grid from it
     t0 = time.perf_counter()

@@ -974,12 +974,14 @@ def make_model(
 
 
 def categorical_source(
-    engine: Engine, source: Source, columns: Sequence[str], settings: Settings
+    engine: Engine, source: Source, columns: Sequence[str], settings: Settings,
+    fixed: Sequence[cat.CategoricalColumn] | None = None,
 ) -> tuple[Source, list[cat.CategoricalColumn], Profile]:
     """Check the numeric and categorical columns; take the profile sample (seeded, as ``run_profile``) with
     the categorical columns as text; each categorical column's top categories by sampled rows; the source
     read with their indicators; and the profile of the numeric columns followed by one category code
-    column per categorical column."""
+    column per categorical column.  ``fixed``: the categories already chosen (a store's regrid keeps
+    them), used instead of the sample's top ones."""
     t0 = time.perf_counter()
     described = dict(engine.describe(source))
     cat.check_categorical(columns, settings.categorical, described, source.label)
@@ -999,13 +1001,17 @@ def categorical_source(
     x, values = seeded_sample(engine, rows, settings, fetch, lambda got: len(got[0]))
     taken = set(described)
     specs, codes = [], []
-    for column, vals in zip(texts, values):
-        distinct, counts = np.unique(np.array(["\0NULL" if v is None else v for v in vals], dtype=object).astype(str), return_counts=True)
-        cat.check_distinct(column, len(distinct), len(vals))
-        labels = [None if v == "\0NULL" else v for v in distinct.tolist()]
-        top = cat.top_categories(labels, counts, settings.max_categories)
-        names = cat.indicator_names(column, (*top, cat.OTHER, cat.NULL), taken)
-        specs.append(cat.CategoricalColumn(column, described[column], top, names))
+    for i, (column, vals) in enumerate(zip(texts, values)):
+        if fixed is not None:
+            specs.append(fixed[i])
+            top = fixed[i].values
+        else:
+            distinct, counts = np.unique(np.array(["\0NULL" if v is None else v for v in vals], dtype=object).astype(str), return_counts=True)
+            cat.check_distinct(column, len(distinct), len(vals))
+            labels = [None if v == "\0NULL" else v for v in distinct.tolist()]
+            top = cat.top_categories(labels, counts, settings.max_categories)
+            names = cat.indicator_names(column, (*top, cat.OTHER, cat.NULL), taken)
+            specs.append(cat.CategoricalColumn(column, described[column], top, names))
         position = {v: i + 1 for i, v in enumerate(top)}
         codes.append([len(top) + 2 if v is None else position.get(v, len(top) + 1) for v in vals])
     sample = np.hstack([x, np.asarray(codes, dtype=np.float64).T.reshape(len(x), len(texts))])
@@ -1015,6 +1021,16 @@ def categorical_source(
                    scale=np.concatenate([scale, np.ones(len(texts))]), seconds=time.perf_counter() - t0,
                    repeats=sample_promise(engine, rows, settings))
     return cat.with_indicators(source, specs, engine.target), specs, prof
+
+
+def categorical_weights(settings: Settings, columns: Sequence[str], specs: Sequence[cat.CategoricalColumn]) -> tuple[np.ndarray, list[np.ndarray]]:
+    """Each column's multiplier (a categorical column's --weights on all its indicators) and the positions
+    of each categorical column's indicators in ``columns``."""
+    weights = settings.column_weights(columns)
+    groups = cat.indicator_positions(columns, specs)
+    for spec, pos in zip(specs, groups):
+        weights[pos] = float(settings.weights.get(spec.column, 1.0))
+    return weights, groups
 
 
 def model_source(engine: Engine, source: Source, model: Model) -> Source:
@@ -1066,16 +1082,18 @@ def numeric_positions(d: int, groups: Sequence[np.ndarray]) -> np.ndarray:
 
 
 def cells_statement_with_codes(
-    source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str], target: Any
+    source: Source, columns: Sequence[str], grid: Grid, groups: Sequence[np.ndarray], code_names: Sequence[str], target: Any,
+    partition: sqlgen.Partitioning | None = None, where: Any = None,
 ) -> tuple[Any, Grid, np.ndarray]:
     """The cell statement of a run with categorical columns (keyed by the numeric grid and each column's
-    code), the grid on the numeric columns alone, and those columns' positions."""
+    code), the grid on the numeric columns alone, and those columns' positions.  ``partition`` and
+    ``where`` as in ``sqlgen.cells_statement`` (a summary store keys its cells by partition too)."""
     num_idx = numeric_positions(len(columns), groups)
     center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
     # the grid on the numeric columns alone (none: no key but the codes)
     sub = Grid(center=tuple(center[num_idx]), inv_scale=tuple(inv_scale[num_idx]), width=grid.width,
                axes=tuple(tuple(r) for r in np.asarray(grid.axes)[num_idx]) if len(num_idx) else None, sums_scaled=True)
-    statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, target, extra_keys=code_names)
+    statement = sqlgen.cells_statement(source, [columns[j] for j in num_idx], sub, target, partition, where, extra_keys=code_names)
     return statement, sub, num_idx
 
 
@@ -1086,11 +1104,19 @@ def run_cell_pass_with_codes(
     column's code.  Only the numeric columns are summed in SQL; every row of a cell has the same
     indicators, so their sums follow exactly from the cell's count (``categorical.indicator_cells``)."""
     t0 = time.perf_counter()
-    d = len(columns)
     statement, sub, num_idx = cells_statement_with_codes(source, columns, grid, groups, code_names, engine.target)
+    cells, keys, skipped = cells_with_codes(engine.query(statement), grid, sub.key_names(), num_idx, groups)
+    return CellPass(cells=cells, keys=keys, usable=int(round(cells.n.sum())), skipped=skipped, seconds=time.perf_counter() - t0)
+
+
+def cells_with_codes(
+    got: dict[str, np.ndarray], grid: Grid, names: Sequence[str], num_idx: np.ndarray, groups: Sequence[np.ndarray]
+) -> tuple[CF, np.ndarray, int]:
+    """Cells keyed by the numeric grid (key columns ``names``) and category codes q0, q1, ... from a result
+    holding n and the numeric columns' sums: (cells on every column, in key order; keys, the codes last;
+    skipped rows).  The indicators' sums follow exactly from each cell's count and code."""
+    d = len(num_idx) + sum(len(pos) for pos in groups)
     center, inv_scale = np.asarray(grid.center), np.asarray(grid.inv_scale)
-    got = engine.query(statement)
-    names = sub.key_names()
     n_all = np.asarray(got["n"], dtype=np.float64)
     null = null_mask(got[names[0]]) if names else np.zeros(len(n_all), dtype=bool)
     skipped = int(n_all[null].sum())
@@ -1100,13 +1126,12 @@ def run_cell_pass_with_codes(
     if len(num_idx):
         numeric_cf = cf_from_result(got, len(num_idx), keep)
         ls[:, num_idx], ss[:, num_idx] = numeric_cf.ls, numeric_cf.ss
-    codes = np.column_stack([np.asarray(np.ma.getdata(got[f"q{i}"]), dtype=np.float64)[keep] for i in range(len(code_names))])
+    codes = np.column_stack([np.asarray(np.ma.getdata(got[f"q{i}"]), dtype=np.float64)[keep] for i in range(len(groups))])
     for i, pos in enumerate(groups):
         ls[:, pos], ss[:, pos] = cat.indicator_cells(n, codes[:, i], center[pos], inv_scale[pos])
     keys = np.column_stack([np.asarray(np.ma.getdata(got[k]), dtype=np.float64)[keep] for k in names] + [codes]) if names else codes
     order = np.lexsort(keys.T[::-1])
-    cells = CF(n, ls, ss)[order]
-    return CellPass(cells=cells, keys=keys[order], usable=int(round(n.sum())), skipped=skipped, seconds=time.perf_counter() - t0)
+    return CF(n, ls, ss)[order], keys[order], skipped
 
 
 def code_assignment(
