@@ -1,0 +1,223 @@
+"""A summary store with categorical columns: built, refreshed, labelled and scored exactly as
+`segment --categorical` runs, checked against numpy on explicitly one-hot-encoded, scaled rows."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from tillite import macros as M
+from tillite import store as S
+from tillite.engines import DuckDBEngine
+from tillite.errors import ParameterError, StoreError
+from tillite.model import Model
+from tillite.pipeline import Settings, label, segment
+from tillite.sqlgen import Source
+
+from conftest import (
+    assert_one_error_line, centroids_in_numpy_units, fetch_rows, mixed_data, one_hot_scaled, run_cli,
+    sorted_cells, sse_at_centroids, write_table,
+)
+
+SETTINGS = Settings(k=6, categorical=("district",), refine_passes=3)
+SPEC = S.PartitionSpec(("part",))
+
+
+@pytest.fixture
+def parted_db(tmp_path):
+    """mixed_data (2 blobs x 3 districts, one NULL) in table t, split into 4 partitions by ``part``."""
+    x, c, _ = mixed_data()
+    path = tmp_path / "parted.duckdb"
+    write_table(path, "t", {"id": np.arange(len(x)), "a": x[:, 0], "b": x[:, 1], "district": c, "part": np.arange(len(x)) % 4})
+    return path
+
+
+@pytest.fixture
+def cat_store(parted_db):
+    engine = DuckDBEngine(str(parted_db))
+    info, model = S.build(engine, Source.of_table("t"), ["a", "b"], SPEC, SETTINGS, store="s")
+    yield engine, info, model
+    try:
+        engine.close()
+    except Exception:  # closed by the test already
+        pass
+
+
+def rows_now(engine) -> tuple[np.ndarray, np.ndarray]:
+    """The table's numeric columns and districts (None for NULL), in id order, as numpy reads them."""
+    got = engine.con.execute("SELECT a, b, district FROM t ORDER BY id").fetchall()
+    return np.array([(r[0], r[1]) for r in got]), np.array([r[2] for r in got], dtype=object)
+
+
+def segments_of(engine, view: str) -> np.ndarray:
+    return engine.con.execute(f'SELECT segment FROM "{view}" ORDER BY id').fetchnumpy()["segment"]
+
+
+def assert_sse_equals_numpy(engine, model: Model, view: str) -> None:
+    x, c = rows_now(engine)
+    listed = model.categorical[0]["values"]
+    seg = segments_of(engine, view)
+    # outside reference: numpy's SSE of the same assignment on explicitly one-hot-encoded, scaled rows
+    # (every value not listed at build, 'west' and 'east' included, in the "other" column)
+    u = one_hot_scaled(x, c, listed)
+    expected = sse_at_centroids(u, seg, centroids_in_numpy_units(model, x, c, listed), model.segment_ids())
+    assert model.sse == pytest.approx(expected, rel=1e-9)
+    ids, counts = np.unique(seg, return_counts=True)
+    assert dict(zip(ids.tolist(), counts.tolist())) == dict(zip(model.segment_ids(), model.sizes))
+
+
+def test_store_built_with_categorical_equals_segment_categorical_and_numpy(cat_store):
+    engine, info, model = cat_store
+    ref = segment(engine, Source.of_table("t"), ["a", "b"], SETTINGS)
+    assert model.categorical == ref.categorical
+    assert model.sizes == ref.sizes
+    assert model.sse == pytest.approx(ref.sse, rel=1e-9)
+    S.label(engine, "s", "store_labels")
+    assert_sse_equals_numpy(engine, model, "store_labels")
+
+
+def test_store_cells_keep_only_numeric_sums_and_indicator_totals_equal_numpy_counts(cat_store):
+    engine, info, _ = cat_store
+    names = [r[0] for r in engine.con.execute(f"SELECT column_name FROM duckdb_columns() WHERE table_name = '{info.cells_table}'").fetchall()]
+    assert names == ["part", "q0", "k0", "k1", "n", "ls0", "ls1", "ss0", "ss1"]
+    cells, keys, skipped = S.store_cells(engine, info.cells_table, info.grid, info.columns, S.store_categories(info))
+    _, c = rows_now(engine)
+    grid_center = np.asarray(info.grid.center)
+    # outside reference: numpy's count of each category's rows; an indicator's sum is its count (centre 0, scale 1 in the grid)
+    for j, value in zip(range(2, 6), ["harbour", "north", None, None]):
+        if j == 4:  # "(other)": no such rows at build
+            expected = 0
+        else:
+            expected = int(np.sum([v == value for v in c])) if value is not None else int(np.sum([v is None for v in c]))
+        assert grid_center[j] == 0.0
+        assert cells.ls[:, j].sum() == expected
+        np.testing.assert_array_equal(cells.ss[:, j], cells.ls[:, j])
+    assert skipped == 0
+
+
+def change_with_unseen_categories(con) -> None:
+    """A new partition of 'west' rows (never seen at build), a listed category turned into an unseen one
+    in partition 2, and NULLs turned into a listed category in partition 1."""
+    con.execute("INSERT INTO t SELECT id + 100000, a + 0.5, b, 'west', 9 FROM t WHERE id < 900")
+    con.execute("UPDATE t SET district = 'east' WHERE part = 2 AND district = 'north' AND id % 5 = 0")
+    con.execute("UPDATE t SET district = 'harbour' WHERE part = 1 AND district IS NULL AND id % 7 = 0")
+
+
+def test_refresh_with_never_seen_categories_equals_a_fresh_build_counting_them_as_other(cat_store):
+    engine, info, before = cat_store
+    change_with_unseen_categories(engine.con)
+    report = S.refresh(engine, "s")
+    assert report.new == ["9"] and report.changed == ["1", "2"]
+    # outside reference: DuckDB's own count of the summarised partitions' rows outside the listed categories
+    other = fetch_other_rows(engine, ("1", "2", "9"))
+    assert report.other_rows["district"]["rows"] == other > 0
+    assert any("district" in line and f"{other:,} row(s)" in line for line in report.describe().splitlines())
+    after = S.load(engine, "s")
+    assert after.model.categorical == before.categorical  # the categories stay those listed at build
+    specs = S.store_categories(after)
+    fresh, fresh_model = S.build(engine, Source.of_table("t"), ["a", "b"], SPEC, SETTINGS, store="fresh", grid=info.grid,
+                                 categories=specs)
+    got = sorted_cells(*S.store_cells(engine, after.cells_table, after.grid, after.columns, specs)[:2])
+    ref = sorted_cells(*S.store_cells(engine, fresh.cells_table, fresh.grid, fresh.columns, specs)[:2])
+    np.testing.assert_array_equal(got[0], ref[0])  # keys and category codes
+    np.testing.assert_array_equal(got[1], ref[1])  # counts
+    for g, r in ((got[2], ref[2]), (got[3], ref[3])):
+        np.testing.assert_allclose(g, r, rtol=1e-12, atol=1e-12 * float(np.abs(r).max()))
+    assert sorted(fresh_model.sizes) == sorted(after.model.sizes)
+    assert fresh_model.sse == pytest.approx(after.model.sse, rel=1e-9)
+    # the refreshed model against numpy, through the label view the refresh re-created
+    S.label(engine, "s", "store_labels")
+    assert_sse_equals_numpy(engine, after.model, "store_labels")
+
+
+def fetch_other_rows(engine, parts) -> int:
+    listed = ", ".join("'" + v + "'" for v in ("harbour", "north"))
+    return engine.con.execute(f"SELECT count(*) FROM t WHERE CAST(part AS VARCHAR) IN {tuple(parts)} "
+                              f"AND district IS NOT NULL AND district NOT IN ({listed})").fetchone()[0]
+
+
+def test_a_row_moving_between_two_unlisted_values_changes_no_cell_and_no_fingerprint(cat_store):
+    engine, _, _ = cat_store
+    engine.con.execute("INSERT INTO t SELECT id + 100000, a, b, 'west', 9 FROM t WHERE id < 100")
+    S.refresh(engine, "s")
+    engine.con.execute("UPDATE t SET district = 'south' WHERE district = 'west'")
+    report = S.refresh(engine, "s")
+    # outside reference: the definition of "(other)": both values are unlisted, so the rows' indicators are equal
+    assert report.changed == [] and report.new == []
+
+
+def test_label_view_of_the_store_equals_label_with_its_model_file_and_the_scoring_macros(cat_store, parted_db, tmp_path):
+    engine, _, _ = cat_store
+    change_with_unseen_categories(engine.con)
+    S.refresh(engine, "s")
+    S.label(engine, "s", "store_labels")
+    model_path = tmp_path / "store.model.json"
+    S.load(engine, "s").model.write(model_path)
+    model = Model.read(model_path)
+    assert model.segment_ids() != list(range(model.k))  # the refresh matched ids: the macros must return ids, not positions
+    label(engine, Source.of_table("t"), model, "file_labels")
+    engine.close()
+    M.install_into(parted_db, M.scoring_macros(model, "st"))
+    # outside reference: DuckDB compares the views and the macros row by row (segment and distance)
+    differ = fetch_rows(parted_db, """
+        SELECT count(*) FROM store_labels s JOIN file_labels f USING (id)
+        WHERE s.segment IS DISTINCT FROM f.segment OR abs(s.distance - f.distance) > 1e-12 * (1 + f.distance)
+           OR st_segment(s.a, s.b, s.district) IS DISTINCT FROM s.segment
+           OR abs(st_distance(s.a, s.b, s.district) - s.distance) > 1e-9 * (1 + s.distance)""")[0][0]
+    counts = fetch_rows(parted_db, "SELECT (SELECT count(*) FROM store_labels), (SELECT count(*) FROM t)")[0]
+    assert differ == 0 and counts[0] == counts[1]
+    unseen = fetch_rows(parted_db, "SELECT st_segment(a, b, 'never seen') = st_segment(a, b, 'west') FROM t LIMIT 20")
+    assert all(r[0] for r in unseen)  # two values unseen at build are the same "(other)"
+
+
+def test_status_shows_the_categories_fixed_at_build(cat_store):
+    engine, _, _ = cat_store
+    st = S.status(engine, "s")
+    assert st["categorical"] == [{"column": "district", "categories": ["harbour", "north"]}]
+    assert st["outside_share"] == 0.0
+
+
+def test_regrid_keeps_the_categories_listed_at_build(cat_store):
+    engine, info, _ = cat_store
+    engine.con.execute("INSERT INTO t SELECT id + 100000, a, b, 'west', 9 FROM t")  # 'west' now the largest category
+    model = S.regrid(engine, "s")
+    assert model.categorical == info.model.categorical
+
+
+def test_subtract_rows_refuses_a_categorical_store_in_one_line(cat_store):
+    engine, _, _ = cat_store
+    with pytest.raises(StoreError, match="categorical"):
+        S.subtract_rows(engine, "s", "0", np.zeros((1, 6)))
+
+
+def test_store_with_categorical_and_within_is_refused_in_one_line(parted_db):
+    with DuckDBEngine(str(parted_db)) as engine:
+        with pytest.raises(ParameterError, match="categorical.*within"):
+            S.build(engine, Source.of_table("t"), ["a"], SPEC, Settings(k=3, categorical=("district",), within="part"))
+
+
+def test_store_commands_with_categorical_columns_run_from_the_cli(parted_db):
+    res = run_cli("store", "build", parted_db, "-t", "t", "--categorical", "district", "--partition-by", "part", "--k", "3", "-q")
+    assert res.exit_code == 0, res.output
+    assert "district: 100%" in res.output  # only a categorical column: the segments are its categories
+    with DuckDBEngine(str(parted_db)) as engine:
+        engine.con.execute("INSERT INTO t SELECT id + 100000, a, b, 'west', 9 FROM t WHERE id < 50")
+    res = run_cli("refresh", parted_db, "--store", "t", "-q")
+    assert res.exit_code == 0, res.output
+    # outside reference: the 50 rows inserted above, none of them a listed category
+    assert "district: 50 row(s) of the 1 partition(s) summarised" in res.output
+    res = run_cli("store", "status", parted_db, "--store", "t")
+    assert "categories of district fixed at build: harbour, north" in res.output
+
+
+@pytest.mark.parametrize("args, needles, code", [
+    (["--categorical", "district", "--within", "part"], ["--categorical", "--within"], 1),
+    (["--categorical", "nope"], ["nope", "not found"], 1),
+    (["--categorical", "id"], ["id", "10,000", "distinct"], 1),
+    (["-c", "a", "--categorical", "district", "--max-categories", "0"], ["--max-categories", "0"], 1),
+    (["-c", "a", "--categorical", ","], ["--categorical", "column names"], 2),
+    ([], ["--columns", "--categorical"], 2),
+])
+def test_bad_categorical_store_input_is_one_error_line(parted_db, args, needles, code):
+    res = run_cli("store", "build", parted_db, "-t", "t", "--partition-by", "part", "--k", "3", "-q", *args)
+    assert_one_error_line(res, *needles, code=code)
