@@ -173,7 +173,7 @@ def test_label_view_of_the_store_equals_label_with_its_model_file_and_the_scorin
 def test_status_shows_the_categories_fixed_at_build(cat_store):
     engine, _, _ = cat_store
     st = S.status(engine, "s")
-    assert st["categorical"] == [{"column": "district", "categories": ["harbour", "north"]}]
+    assert [(c["column"], c["categories"]) for c in st["categorical"]] == [("district", ["harbour", "north"])]
     assert st["outside_share"] == 0.0
 
 
@@ -208,6 +208,7 @@ def test_store_commands_with_categorical_columns_run_from_the_cli(parted_db):
     assert "district: 50 row(s) of the 1 partition(s) summarised" in res.output
     res = run_cli("store", "status", parted_db, "--store", "t")
     assert "categories of district fixed at build: harbour, north" in res.output
+    assert "on t (district (categorical))" in res.output
 
 
 @pytest.mark.parametrize("args, needles, code", [
@@ -221,3 +222,23 @@ def test_store_commands_with_categorical_columns_run_from_the_cli(parted_db):
 def test_bad_categorical_store_input_is_one_error_line(parted_db, args, needles, code):
     res = run_cli("store", "build", parted_db, "-t", "t", "--partition-by", "part", "--k", "3", "-q", *args)
     assert_one_error_line(res, *needles, code=code)
+
+
+def test_store_report_shows_each_category_share_per_segment(cat_store):
+    from tillite import report as R
+
+    engine, _, _ = cat_store
+    change_with_unseen_categories(engine.con)
+    S.refresh(engine, "s")
+    model = S.load(engine, "s").model
+    S.label(engine, "s", "store_labels")
+    content = R.report_of_store(engine, "s", ["district"])
+    _, c = rows_now(engine)
+    seg = segments_of(engine, "store_labels")
+    listed = model.categorical[0]["values"]
+    for entry in content["profile"]:
+        rows = seg == entry["segment"]
+        # outside reference: numpy's share of each category (unlisted ones as other) among the segment's labelled rows
+        shares = [np.mean([v == name for v in c[rows]]) for name in listed]
+        shares += [np.mean([v is not None and v not in listed for v in c[rows]]), np.mean([v is None for v in c[rows]])]
+        np.testing.assert_allclose(entry["mean"][2:], shares, atol=1e-12)

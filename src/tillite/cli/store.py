@@ -117,7 +117,7 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
         if as_json:
             click.echo(json.dumps(st, indent=2, default=str))
             return
-        click.echo(f"store {st['store']} on {st['source']} ({', '.join(st['columns'])})")
+        click.echo(f"store {st['store']} on {st['source']} ({', '.join(_shown_columns(st))})")
         click.echo(f"partitions: {st['partitions']:,}; rows: {st['rows']:,} ({st['skipped_rows']:,} skipped); cells: {st['cells']:,}")
         found = {False: " (found no change)", True: "", None: ""}[st["last_refresh_found_change"]]
         click.echo(f"built {st['built_at']}; last refresh {st['last_refresh'] or 'never'}{found}; last summarised {st['last_summarised']}")
@@ -135,6 +135,12 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
         _echo_history(source, store_name)
         for w in st["warnings"]:
             click.echo(f"warning: {w}", err=True)
+
+
+def _shown_columns(st: dict) -> list[str]:
+    """The store's columns as the user named them: numeric ones, then each categorical column once."""
+    indicators = {n for c in st.get("categorical", []) for n in c["indicators"]}
+    return [c for c in st["columns"] if c not in indicators] + [f"{c['column']} (categorical)" for c in st.get("categorical", [])]
 
 
 @click.command("refresh")
