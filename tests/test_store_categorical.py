@@ -242,3 +242,45 @@ def test_store_report_shows_each_category_share_per_segment(cat_store):
         shares = [np.mean([v == name for v in c[rows]]) for name in listed]
         shares += [np.mean([v is not None and v not in listed for v in c[rows]]), np.mean([v is None for v in c[rows]])]
         np.testing.assert_allclose(entry["mean"][2:], shares, atol=1e-12)
+
+
+def test_a_ward_store_with_categorical_equals_segment_ward_categorical(parted_db):
+    settings = Settings(k=6, categorical=("district",), method="ward", refine_passes=2)
+    with DuckDBEngine(str(parted_db)) as engine:
+        _, stored = S.build(engine, Source.of_table("t"), ["a", "b"], SPEC, settings, store="w")
+        plain = segment(engine, Source.of_table("t"), ["a", "b"], settings)
+        # reference: numpy's SSE on the one-hot rows, through the store's own label view
+        S.label(engine, "w", "ward_labels")
+        assert_sse_equals_numpy(engine, stored, "ward_labels")
+    assert stored.method == "ward" and stored.sizes == plain.sizes
+    assert stored.sse == pytest.approx(plain.sse, rel=1e-9)
+
+
+def test_a_file_store_with_categorical_counts_a_new_files_unseen_category_as_other(tmp_path):
+    import duckdb
+
+    x, c, _ = mixed_data(n=4_000)
+    folder = tmp_path / "files"
+    folder.mkdir()
+    db = tmp_path / "rows.duckdb"
+    write_table(db, "t", {"id": np.arange(len(x)), "a": x[:, 0], "b": x[:, 1], "district": c, "part": np.arange(len(x)) % 3})
+    con = duckdb.connect(str(db))
+    for p in range(3):
+        con.execute(f"COPY (SELECT * FROM t WHERE part = {p}) TO '{folder}/p{p}.parquet' (FORMAT parquet)")
+    store_db = tmp_path / "store.duckdb"
+    src = Source.of_files(str(folder / "*.parquet"), "parquet")
+    with DuckDBEngine(str(store_db)) as engine:
+        info, _ = S.build(engine, src, ["a", "b"], S.PartitionSpec(files=True), SETTINGS, store="files")
+        con.execute(f"COPY (SELECT id + 10000 AS id, a, b, 'west' AS district, 3 AS part FROM t WHERE part = 0) "
+                    f"TO '{folder}/p3.parquet' (FORMAT parquet)")
+        report = S.refresh(engine, "files")
+        specs = S.store_categories(info)
+        cells, _, _ = S.store_cells(engine, info.cells_table, info.grid, info.columns, specs)
+    # outside reference: DuckDB's count of the new file's rows (all 'west', unseen at build), and of every file's rows
+    west = con.execute(f"SELECT count(*) FROM read_parquet('{folder}/p3.parquet')").fetchone()[0]
+    total = con.execute(f"SELECT count(*) FROM read_parquet('{folder}/*.parquet')").fetchone()[0]
+    con.close()
+    assert report.new == [str(folder / "p3.parquet")]
+    assert report.other_rows["district"]["rows"] == west
+    other = info.columns.index("district=(other)")
+    assert cells.ls[:, other].sum() == west and int(cells.n.sum()) == total

@@ -320,10 +320,12 @@ def _partitioning(spec: PartitionSpec) -> sqlgen.Partitioning:
 
 
 def _scan_source(source: Source, spec: PartitionSpec, files: Sequence[str] | None = None) -> Source:
-    """The source as scanned by the store: files carry their name; optionally only some files."""
+    """The source as scanned by the store: files carry their name; optionally only some files (derived
+    columns, e.g. category indicators, kept)."""
     if not spec.files:
         return source
-    return Source(files=tuple(files) if files is not None else source.files, reader=source.reader, filename=True)
+    return Source(files=tuple(files) if files is not None else source.files, reader=source.reader, filename=True,
+                  derived=source.derived)
 
 
 def _list_files(source: Source) -> list[str]:
