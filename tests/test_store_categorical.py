@@ -150,6 +150,10 @@ def test_label_view_of_the_store_equals_label_with_its_model_file_and_the_scorin
     engine, _, _ = cat_store
     change_with_unseen_categories(engine.con)
     S.refresh(engine, "s")
+    from tillite.naming import name_store_segments
+
+    named = S.load(engine, "s").model.segment_ids()[0]
+    name_store_segments(engine, "s", {named: "first"})
     S.label(engine, "s", "store_labels")
     model_path = tmp_path / "store.model.json"
     S.load(engine, "s").model.write(model_path)
@@ -166,6 +170,10 @@ def test_label_view_of_the_store_equals_label_with_its_model_file_and_the_scorin
            OR abs(st_distance(s.a, s.b, s.district) - s.distance) > 1e-9 * (1 + s.distance)""")[0][0]
     counts = fetch_rows(parted_db, "SELECT (SELECT count(*) FROM store_labels), (SELECT count(*) FROM t)")[0]
     assert differ == 0 and counts[0] == counts[1]
+    misnamed = fetch_rows(parted_db, "SELECT count(*) FROM store_labels s WHERE st_segment_name(s.a, s.b, s.district) "
+                                     "IS DISTINCT FROM s.segment_name")[0][0]
+    assert misnamed == 0 and fetch_rows(parted_db, f"SELECT count(*) FROM store_labels WHERE segment = {named} "
+                                                   "AND segment_name = 'first'")[0][0] > 0
     unseen = fetch_rows(parted_db, "SELECT st_segment(a, b, 'never seen') = st_segment(a, b, 'west') FROM t LIMIT 20")
     assert all(r[0] for r in unseen)  # two values unseen at build are the same "(other)"
 

@@ -232,7 +232,7 @@ def scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
 
     Same arithmetic as the label view (sqlgen.label_select): v_j = CAST(x_j AS DOUBLE) -
     center_j; scores s_i = b_i + sum_j a_ij v_j (Assignment.score_coefficients); best =
-    LEAST(s); segment = the id of the first i with s_i = best (a CASE); distance = sqrt(GREATEST(best +
+    LEAST(s); segment = the first i with s_i = best (a CASE); distance = sqrt(GREATEST(best +
     sum_j norm_j v_j^2, 0)).  NULL when isfinite(v_1 + ... + v_d) is not true (NULL/NaN/Inf).
     The scores are computed once per call by binding them to a lambda variable.
     """
@@ -256,8 +256,8 @@ def scoring_bodies(model: Model) -> tuple[exp.Expression, exp.Expression]:
     s_i = [_call("list_extract", s.copy(), exp.Literal.number(i + 1)) for i in range(k)]
     least = s_i[0] if k == 1 else sqlgen.least_of([e.copy() for e in s_i])
     best = sqlgen.col(_LAMBDA_BEST)
-    ids = model.segment_ids()  # a store's refresh keeps ids, which then need not be 0..k-1 in order
-    pick = exp.Case(ifs=[exp.If(this=exp.EQ(this=s_i[i].copy(), expression=best.copy()), true=sqlgen.num(int(ids[i]))) for i in range(k)])
+    ids = model.segment_ids()  # a store's stable ids, as the label view gives them
+    pick = exp.Case(ifs=[exp.If(this=exp.EQ(this=s_i[i].copy(), expression=best.copy()), true=sqlgen.num(ids[i])) for i in range(k)])
     segment_of_scores = _bind(least, _LAMBDA_BEST, pick)
     distance_of_scores = exp.Sqrt(this=sqlgen.greatest_of([exp.Add(this=least.copy(), expression=sq_norm), sqlgen.num(0.0)]))
 
@@ -532,8 +532,8 @@ def segment_name_macro(model: Model, name: str, segment: exp.Expression) -> Macr
     Names go in as string literals made by sqlglot.
     """
     case = exp.Case(this=segment.copy(), ifs=[
-        exp.If(this=sqlgen.num(i), true=exp.Literal.string(str(model.segment_name(sid))))
-        for i, sid in enumerate(model.segment_ids()) if model.segment_name(sid) is not None
+        exp.If(this=sqlgen.num(sid), true=exp.Literal.string(str(model.segment_name(sid))))
+        for sid in model.segment_ids() if model.segment_name(sid) is not None
     ])
     macro = f"{name}_segment_name"
     values = {"macro": identifier(macro), "params": identifiers(model.input_columns()), "body": expression(case, pretty=True)}
