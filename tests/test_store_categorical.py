@@ -3,6 +3,8 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 
@@ -53,27 +55,30 @@ def segments_of(engine, view: str) -> np.ndarray:
     return engine.con.execute(f'SELECT segment FROM "{view}" ORDER BY id').fetchnumpy()["segment"]
 
 
-def assert_sse_equals_numpy(engine, model: Model, view: str) -> None:
+def assert_sse_equals_numpy(engine, model: Model, view: str, cat_weight: float = 1.0) -> None:
     x, c = rows_now(engine)
     listed = model.categorical[0]["values"]
     seg = segments_of(engine, view)
     # outside reference: numpy's SSE of the same assignment on explicitly one-hot-encoded, scaled rows
     # (every value not listed at build, 'west' and 'east' included, in the "other" column)
-    u = one_hot_scaled(x, c, listed)
-    expected = sse_at_centroids(u, seg, centroids_in_numpy_units(model, x, c, listed), model.segment_ids())
+    u = one_hot_scaled(x, c, listed, cat_weight=cat_weight)
+    expected = sse_at_centroids(u, seg, centroids_in_numpy_units(model, x, c, listed, cat_weight=cat_weight), model.segment_ids())
     assert model.sse == pytest.approx(expected, rel=1e-9)
     ids, counts = np.unique(seg, return_counts=True)
     assert dict(zip(ids.tolist(), counts.tolist())) == dict(zip(model.segment_ids(), model.sizes))
 
 
-def test_store_built_with_categorical_equals_segment_categorical_and_numpy(cat_store):
-    engine, info, model = cat_store
-    ref = segment(engine, Source.of_table("t"), ["a", "b"], SETTINGS)
-    assert model.categorical == ref.categorical
-    assert model.sizes == ref.sizes
-    assert model.sse == pytest.approx(ref.sse, rel=1e-9)
-    S.label(engine, "s", "store_labels")
-    assert_sse_equals_numpy(engine, model, "store_labels")
+@pytest.mark.parametrize("cat_weight", [1.0, 0.5])
+def test_store_built_with_categorical_equals_segment_categorical_and_numpy(parted_db, cat_weight):
+    settings = replace(SETTINGS, weights={"district": cat_weight})
+    with DuckDBEngine(str(parted_db)) as engine:
+        _, model = S.build(engine, Source.of_table("t"), ["a", "b"], SPEC, settings, store="s")
+        ref = segment(engine, Source.of_table("t"), ["a", "b"], settings)
+        assert model.categorical == ref.categorical
+        assert model.sizes == ref.sizes
+        assert model.sse == pytest.approx(ref.sse, rel=1e-9)
+        S.label(engine, "s", "store_labels")
+        assert_sse_equals_numpy(engine, model, "store_labels", cat_weight)
 
 
 def test_store_cells_keep_only_numeric_sums_and_indicator_totals_equal_numpy_counts(cat_store):
