@@ -3,6 +3,7 @@
     python benchmarks/bench_store.py                   # 3M meter-days (50,000 per day)
     python benchmarks/bench_store.py --rows 30000000   # the large target
     python benchmarks/bench_store.py --rows 600000 --repeat 1   # quick look
+    python benchmarks/bench_store.py --categorical district --no-commands   # a store keeping a categorical column
 
 Two ways, each on one database built once:
 
@@ -112,7 +113,7 @@ def prepare(db: Path, rows: int, days: int) -> float:
     return statistics.median(scans)
 
 
-def in_process(db: Path, k: int, repeat: int, day_of) -> dict[str, list]:
+def in_process(db: Path, k: int, repeat: int, day_of, categorical: tuple[str, ...] = ()) -> dict[str, list]:
     engine = DuckDBEngine(str(db))
     cols = list(DEMO_COLUMNS)
     out: dict[str, list] = {"build": [], "idle": [], "fingerprints": [], "named": [], "named_fresh": [], "stages": [],
@@ -120,7 +121,8 @@ def in_process(db: Path, k: int, repeat: int, day_of) -> dict[str, list]:
     S.match_segments(np.zeros((1, 1)), [0], np.zeros((1, 1)), 1, np.ones(1), 1.0)  # load the assignment solver once
     for r in range(repeat):
         t = time.perf_counter()
-        S.build(engine, Source.of_table("meter_days"), cols, S.PartitionSpec(("day",)), Settings(k=k, refine_passes=0), replace=True)
+        S.build(engine, Source.of_table("meter_days"), cols, S.PartitionSpec(("day",)),
+                Settings(k=k, refine_passes=0, categorical=categorical), replace=True)
         out["build"].append(time.perf_counter() - t)
         t = time.perf_counter()
         S.refresh(engine, "meter_days")
@@ -145,14 +147,15 @@ def in_process(db: Path, k: int, repeat: int, day_of) -> dict[str, list]:
     return out
 
 
-def as_commands(db: Path, k: int, repeat: int, day_of) -> dict[str, list]:
+def as_commands(db: Path, k: int, repeat: int, day_of, categorical: tuple[str, ...] = ()) -> dict[str, list]:
     cols = ",".join(DEMO_COLUMNS)
+    extra_build = [a for c in categorical for a in ("--categorical", c)]
     out: dict[str, list] = {"build": [], "fingerprints": [], "named": [], "version": []}
     run_command(["store", "status", str(db), "--store", "meter_days"])  # writes the bytecode cache once
     for r in range(repeat):
         out["version"].append(run_command(["--version"], "version"))
         out["build"].append(run_command(["store", "build", str(db), "-t", "meter_days", "-c", cols, "--partition-by", "day",
-                                         "--k", str(k), "--refine-passes", "0", "--regrid", "-q"], "build"))
+                                         "--k", str(k), "--refine-passes", "0", "--regrid", "-q", *extra_build], "build"))
         for kind in ("fingerprints", "named"):
             day = day_of(r + repeat, kind)
             change_day(db, day)
@@ -171,7 +174,10 @@ def main() -> None:
     ap.add_argument("--days", type=int, default=60)
     ap.add_argument("--k", type=int, default=5)
     ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--categorical", action="append", default=[], help="Also keep this categorical column (e.g. district).")
+    ap.add_argument("--no-commands", action="store_true", help="Only the in-process runs.")
     args = ap.parse_args()
+    categorical = tuple(args.categorical)
     work = Path(tempfile.mkdtemp(prefix="tillite-bench-store-"))
 
     def day_of(r: int, kind: str) -> str:  # a different day for every change, all inside the 60 days
@@ -181,11 +187,12 @@ def main() -> None:
     try:
         db = work / "water.duckdb"
         scan = prepare(db, args.rows, args.days)
-        api = in_process(db, args.k, args.repeat, day_of)
-        cli = as_commands(db, args.k, args.repeat, day_of)
+        api = in_process(db, args.k, args.repeat, day_of, categorical)
+        cli = None if args.no_commands else as_commands(db, args.k, args.repeat, day_of, categorical)
         fp_target, named_target = targets_for(args.rows)
         b, i, f, n = (median(api[x]) for x in ("build", "idle", "fingerprints", "named"))
-        print(f"\n{args.rows:,} meter-days in {args.days} daily partitions, k={args.k}; medians of {args.repeat}")
+        kept = f", categorical {', '.join(categorical)}" if categorical else ""
+        print(f"\n{args.rows:,} meter-days in {args.days} daily partitions, k={args.k}{kept}; medians of {args.repeat}")
         print(f"{'plain sum scan':<46}{scan:>9.3f} s")
         print("in process (the store's own work):")
         print(f"  {'full store build':<44}{b:>9.3f} s   ({b / scan:.1f} plain scans)")
@@ -197,6 +204,8 @@ def main() -> None:
         for name, key in (("fingerprints", "stages"), ("--partitions", "named_stages")):
             keys = sorted({k for st in api[key] for k in st})
             print(f"  stages, {name} (median s): " + ", ".join(f"{k} {median([st.get(k, 0.0) for st in api[key]]):.3f}" for k in keys))
+        if cli is None:
+            return
         cb, cf, cn, cv = (median(cli[x]) for x in ("build", "fingerprints", "named", "version"))
         print("as commands (fresh process each, start-up included, bytecode cached as when installed):")
         print(f"  {'tillite --version (start-up alone)':<44}{cv:>9.3f} s")

@@ -18,6 +18,7 @@ from sklearn.datasets import make_blobs
 
 from tillite.cli import main
 from tillite.engines import DuckDBEngine
+from tillite.model import Model
 
 from engine_checks import make_rows
 from throwaway_servers import start_postgres
@@ -285,3 +286,50 @@ def within_days_table(path: Path, spec: dict | None = None, days: int = 6, seed:
     data["day"] = np.random.default_rng(seed).integers(0, days, n)
     data["id"] = np.arange(n)
     return write_table(path, "meters", data)
+
+
+# ----------------------------------------------------------------------------- categorical columns
+
+
+CATEGORIES = np.array(["harbour", "north", None], dtype=object)
+
+
+def mixed_data(n: int = 12_000, seed: int = 5):
+    """2 numeric blobs (scikit-learn make_blobs) x 3 category groups (one of them NULL): 6 clusters that only
+    numbers and categories together tell apart."""
+    x, blob = make_blobs(n_samples=n, centers=[(-4.0, -4.0), (4.0, 4.0)], cluster_std=1.0, random_state=seed)
+    group = np.random.default_rng(seed).integers(0, 3, n)
+    truth = blob * 3 + group
+    return x, CATEGORIES[group], truth
+
+
+def one_hot_scaled(x: np.ndarray, c: np.ndarray, listed, weights=(1.0, 1.0), cat_weight: float = 1.0) -> np.ndarray:
+    """Rows as numpy sees them: numeric columns z-scored (population sd), then one 0/1 column per listed
+    category, "other" and NULL, centred and divided by sqrt(1 - sum p^2), times the weights."""
+    z = (x - x.mean(axis=0)) / x.std(axis=0)
+    is_null = np.array([v is None for v in c])
+    onehot = [np.array([v == name for v in c], dtype=float) for name in listed]
+    onehot.append((~is_null & ~np.isin(c.astype(str), list(listed))).astype(float))
+    onehot.append(is_null.astype(float))
+    ind = np.column_stack(onehot)
+    p = ind.mean(axis=0)
+    ind = (ind - p) / np.sqrt(1.0 - (p * p).sum())
+    return np.hstack([z * np.asarray(weights)[None, :], ind * cat_weight])
+
+
+def sse_at_centroids(u: np.ndarray, seg: np.ndarray, centroids_u: np.ndarray, ids) -> float:
+    """numpy direct: the squared distances of the rows ``u`` to the centroid of their segment id, summed."""
+    pos = {sid: i for i, sid in enumerate(ids)}
+    own = centroids_u[[pos[s] for s in seg]]
+    return float(((u - own) ** 2).sum())
+
+
+def centroids_in_numpy_units(model: Model, x: np.ndarray, c: np.ndarray, listed, weights=(1.0, 1.0), cat_weight=1.0):
+    """The model's centroids (original units: numeric means, category shares) in numpy's scaled units."""
+    cent = np.asarray(model.centroids)
+    num = (cent[:, :2] - x.mean(axis=0)) / x.std(axis=0) * np.asarray(weights)
+    is_null = np.array([v is None for v in c])
+    ind = np.column_stack([np.array([v == name for v in c], float) for name in listed]
+                          + [(~is_null & ~np.isin(c.astype(str), list(listed))).astype(float), is_null.astype(float)])
+    p = ind.mean(axis=0)
+    return np.hstack([num, (cent[:, 2:] - p) / np.sqrt(1.0 - (p * p).sum()) * cat_weight])

@@ -10,7 +10,6 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 from sklearn.cluster import KMeans
-from sklearn.datasets import make_blobs
 from sklearn.metrics import adjusted_rand_score
 
 from tillite import categorical as cat
@@ -19,19 +18,9 @@ from tillite.engines import open_source
 from tillite.model import Model
 from tillite.pipeline import Settings, label, segment
 
-from conftest import assert_one_error_line, write_table
-
-CATEGORIES = np.array(["harbour", "north", None], dtype=object)
-
-
-def mixed_data(n: int = 12_000, seed: int = 5):
-    """2 numeric blobs (scikit-learn make_blobs) x 3 category groups (one of them NULL): 6 clusters that only
-    numbers and categories together tell apart."""
-    x, blob = make_blobs(n_samples=n, centers=[(-4.0, -4.0), (4.0, 4.0)], cluster_std=1.0, random_state=seed)
-    group = np.random.default_rng(seed).integers(0, 3, n)
-    truth = blob * 3 + group
-    return x, CATEGORIES[group], truth
-
+from conftest import (
+    assert_one_error_line, centroids_in_numpy_units, mixed_data, one_hot_scaled, sse_at_centroids, write_table,
+)
 
 @pytest.fixture(scope="module")
 def mixed_db(tmp_path_factory):
@@ -39,20 +28,6 @@ def mixed_db(tmp_path_factory):
     path = tmp_path_factory.mktemp("cat") / "mixed.duckdb"
     write_table(path, "t", {"id": np.arange(len(x)), "a": x[:, 0], "b": x[:, 1], "district": c, "truth": truth})
     return path
-
-
-def one_hot_scaled(x: np.ndarray, c: np.ndarray, listed, weights=(1.0, 1.0), cat_weight: float = 1.0) -> np.ndarray:
-    """Rows as numpy sees them: numeric columns z-scored (population sd), then one 0/1 column per listed
-    category, "other" and NULL, centred and divided by sqrt(1 - sum p^2), times the weights."""
-    z = (x - x.mean(axis=0)) / x.std(axis=0)
-    is_null = np.array([v is None for v in c])
-    onehot = [np.array([v == name for v in c], dtype=float) for name in listed]
-    onehot.append((~is_null & ~np.isin(c.astype(str), list(listed))).astype(float))
-    onehot.append(is_null.astype(float))
-    ind = np.column_stack(onehot)
-    p = ind.mean(axis=0)
-    ind = (ind - p) / np.sqrt(1.0 - (p * p).sum())
-    return np.hstack([z * np.asarray(weights)[None, :], ind * cat_weight])
 
 
 def labels_of(path, model: Model, source_table: str = "t") -> np.ndarray:
@@ -68,23 +43,6 @@ def labels_of(path, model: Model, source_table: str = "t") -> np.ndarray:
 def run_model(path, k: int, **kw) -> Model:
     with open_source(str(path), table="t") as (engine, src):
         return segment(engine, src, ["a", "b"], Settings(k=k, categorical=("district",), **kw))
-
-
-def sse_at_centroids(u: np.ndarray, seg: np.ndarray, centroids_u: np.ndarray, ids) -> float:
-    pos = {sid: i for i, sid in enumerate(ids)}
-    own = centroids_u[[pos[s] for s in seg]]
-    return float(((u - own) ** 2).sum())
-
-
-def centroids_in_numpy_units(model: Model, x: np.ndarray, c: np.ndarray, listed, weights=(1.0, 1.0), cat_weight=1.0):
-    """The model's centroids (original units: numeric means, category shares) in numpy's scaled units."""
-    cent = np.asarray(model.centroids)
-    num = (cent[:, :2] - x.mean(axis=0)) / x.std(axis=0) * np.asarray(weights)
-    is_null = np.array([v is None for v in c])
-    ind = np.column_stack([np.array([v == name for v in c], float) for name in listed]
-                          + [(~is_null & ~np.isin(c.astype(str), list(listed))).astype(float), is_null.astype(float)])
-    p = ind.mean(axis=0)
-    return np.hstack([num, (cent[:, 2:] - p) / np.sqrt(1.0 - (p * p).sum()) * cat_weight])
 
 
 def test_sse_equals_numpy_on_one_hot_scaled_rows(mixed_db):
@@ -327,15 +285,6 @@ def test_report_shows_each_category_share_per_segment(mixed_db):
         expected = float(np.mean([v == "north" for v in c[rows]]))
         assert model.category_shares(i)["district"]["north"] == pytest.approx(expected, abs=1e-9)
     assert name in json.dumps(content, default=str)
-
-
-def test_a_store_refuses_categorical_columns_in_one_line(mixed_db):
-    from tillite import store as S
-    from tillite.errors import ParameterError
-
-    with open_source(str(mixed_db), table="t", writable=True) as (engine, src):
-        with pytest.raises(ParameterError, match="categorical"):
-            S.build(engine, src, ["a", "b"], S.PartitionSpec(("district",)), Settings(k=3, categorical=("district",)))
 
 
 @pytest.mark.parametrize("sql_type, make", [

@@ -421,3 +421,31 @@ def test_postgres_within_store_equals_the_duckdb_one_and_refreshes_only_the_chan
                                         "kept": len(duck_model.within["groups"]) - 1}
     assert_same_within_model(got.model, ref.model)
     assert [g["ids"] for g in got.model.within["groups"]] == [g["ids"] for g in ref.model.within["groups"]]
+
+
+#: A new partition whose district was never seen at build ('newtown'), and a listed district renamed in one day.
+UNSEEN_DISTRICTS = (
+    "INSERT INTO meter_days SELECT meter_id, 'newtown', day + 50, litres, night_share, peak_litres, flow_run_hours, "
+    "zero_hours, day_number + 50 FROM meter_days WHERE day = DATE '2026-01-08'",
+    "UPDATE meter_days SET district = 'riverside' WHERE day = DATE '2026-01-09' AND meter_id % 2 = 0",
+)
+
+
+def test_postgres_store_with_a_categorical_column_equals_the_duckdb_store_through_unseen_categories(pg_and_duck_demo):
+    pg, duck = pg_and_duck_demo
+    spec, settings = S.PartitionSpec(("day",)), Settings(categorical=("district",), max_categories=4, **SETTINGS)
+    duck_info, _ = S.build(duck, SRC, ["litres", "night_share"], spec, settings)
+    specs = S.store_categories(duck_info)
+    pg_info, _ = S.build(pg, SRC, ["litres", "night_share"], spec, settings, grid=duck_info.grid, categories=specs)
+    run_both(pg, duck, CHANGES + UNSEEN_DISTRICTS)
+    pg_report, duck_report = S.refresh(pg, TABLE), S.refresh(duck, TABLE)
+    # reference: the DuckDB store over the same rows (an independent engine)
+    assert pg_report.other_rows == duck_report.other_rows
+    # reference: PostgreSQL's own count of the new partition's rows (all 'newtown', never seen at build)
+    newtown = int(pg.con.execute("SELECT count(*) FROM meter_days WHERE district = 'newtown'").fetchone()[0])
+    assert pg_report.other_rows["district"]["rows"] >= newtown > 0
+    pg_info, duck_info = S.load(pg, TABLE), S.load(duck, TABLE)
+    assert_same_cells(S.store_cells(pg, pg_info.cells_table, pg_info.grid, pg_info.columns, specs),
+                      S.store_cells(duck, duck_info.cells_table, duck_info.grid, duck_info.columns, specs))
+    assert pg_info.model.sizes == duck_info.model.sizes
+    assert pg_info.model.categorical == duck_info.model.categorical

@@ -646,17 +646,18 @@ def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress
     """The report of a summary store's current model: the map from its kept cells (no scan), plus its history."""
     from . import store as S
     from . import store_history
-    from .stages import check_columns
+    from .stages import check_columns, model_source
 
     info = S.load(engine, store)
     by = list(dict.fromkeys(by))  # a column named twice is one breakdown
-    present = check_columns(engine, info.source, list(info.model.columns))
+    source = model_source(engine, info.source, info.model)  # categorical columns: their indicators' means are the shares
+    present = check_columns(engine, source, list(info.model.columns))
     missing = [c for c in by if c not in present]
     if missing:
         raise TilliteError(f"--by column {', '.join(missing)} not found in {info.source.label}; columns there: {', '.join(present)}")
-    stats, breakdowns = report_scan(engine, info.source, info.model, by)
-    quartiles, sampled = sample_quartiles(engine, info.source, info.model)
-    cells_grid, keys, _ = S.merged_cells(engine, info.cells_table, info.grid, len(info.columns))
+    stats, breakdowns = report_scan(engine, source, info.model, by)
+    quartiles, sampled = sample_quartiles(engine, source, info.model)
+    cells_grid, keys, _ = S.store_cells(engine, info.cells_table, info.grid, info.columns, S.store_categories(info))
     _say(progress, "report", f"store {store}: statistics, {cells_grid.m:,} kept cells, {len(breakdowns)} breakdown(s)")
     return assemble(info.model, with_quartiles(stats, quartiles), cells_grid, breakdowns,
                     store_history.history(engine, store), store, keys, sampled=sampled)

@@ -986,12 +986,14 @@ def make_model(
 
 
 def categorical_source(
-    engine: Engine, source: Source, columns: Sequence[str], settings: Settings
+    engine: Engine, source: Source, columns: Sequence[str], settings: Settings,
+    fixed: Sequence[cat.CategoricalColumn] | None = None,
 ) -> tuple[Source, list[cat.CategoricalColumn], Profile]:
     """Check the numeric and categorical columns; take the profile sample (seeded, as ``run_profile``) with
     the categorical columns as text; each categorical column's top categories by sampled rows; the source
     read with their indicators; and the profile of the numeric columns followed by one category code
-    column per categorical column."""
+    column per categorical column.  ``fixed``: the categories already chosen (a store's regrid keeps
+    them), used instead of the sample's top ones."""
     t0 = time.perf_counter()
     described, rows = checked_categorical_source(engine, source, columns, settings)
     p, target, texts = len(columns), settings.sample_rows, list(settings.categorical)
@@ -1004,7 +1006,7 @@ def categorical_source(
         return (np.column_stack(x) if p else np.zeros((m, 0))), values
 
     x, values = seeded_sample(engine, rows, settings, fetch, lambda got: len(got[0]))
-    specs, codes = category_specs(texts, values, described, settings)
+    specs, codes = category_specs(texts, values, described, settings, fixed)
     sample = canonical_sample(np.hstack([x, codes]), target, settings.seed)
     prof = profile_with_codes(engine, sample, p, rows, settings, t0)
     return cat.with_indicators(source, specs, engine.target), specs, prof
@@ -1043,19 +1045,24 @@ def sampled_texts(got: dict[str, Any], count: int) -> list[list[Any]]:
                                                     null_mask(got[sqlgen.internal(f"t{i}")]))] for i in range(count)]
 
 
-def category_specs(texts: Sequence[str], values: Sequence[Sequence[Any]], described: dict[str, str], settings: Settings
-                   ) -> tuple[list[cat.CategoricalColumn], np.ndarray]:
+def category_specs(texts: Sequence[str], values: Sequence[Sequence[Any]], described: dict[str, str], settings: Settings,
+                   fixed: Sequence[cat.CategoricalColumn] | None = None) -> tuple[list[cat.CategoricalColumn], np.ndarray]:
     """Each categorical column's top categories by sampled rows (its indicators named apart from ``described``'s
-    columns), and the sampled rows' category codes (rows x columns, 1-based: listed, then other, then NULL)."""
+    columns), or ``fixed``'s (a store's, kept since its build), and the sampled rows' category codes (rows x
+    columns, 1-based: listed, then other, then NULL)."""
     taken = set(described)
     specs, codes = [], []
-    for column, vals in zip(texts, values):
-        distinct, counts = np.unique(np.array(["\0NULL" if v is None else v for v in vals], dtype=object).astype(str), return_counts=True)
-        cat.check_distinct(column, len(distinct), len(vals))
-        labels = [None if v == "\0NULL" else v for v in distinct.tolist()]
-        top = cat.top_categories(labels, counts, settings.max_categories)
-        names = cat.indicator_names(column, (*top, cat.OTHER, cat.NULL), taken)
-        specs.append(cat.CategoricalColumn(column, described[column], top, names))
+    for i, (column, vals) in enumerate(zip(texts, values)):
+        if fixed is not None:
+            specs.append(fixed[i])
+            top = fixed[i].values
+        else:
+            distinct, counts = np.unique(np.array(["\0NULL" if v is None else v for v in vals], dtype=object).astype(str), return_counts=True)
+            cat.check_distinct(column, len(distinct), len(vals))
+            labels = [None if v == "\0NULL" else v for v in distinct.tolist()]
+            top = cat.top_categories(labels, counts, settings.max_categories)
+            names = cat.indicator_names(column, (*top, cat.OTHER, cat.NULL), taken)
+            specs.append(cat.CategoricalColumn(column, described[column], top, names))
         position = {v: i + 1 for i, v in enumerate(top)}
         codes.append([len(top) + 2 if v is None else position.get(v, len(top) + 1) for v in vals])
     rows = len(values[0]) if values else 0

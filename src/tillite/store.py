@@ -31,13 +31,14 @@ import json
 import os
 import re
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace as with_fields
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Callable, Sequence
 
 import numpy as np
 
+from . import categorical as cat
 from . import features as F
 from . import sqlgen, store_groups, store_history
 from .engines import Engine
@@ -57,6 +58,13 @@ from .stages import (
     make_model,
     order_by_size,
     attach_phase,
+    categorical_source,
+    indicator_weights,
+    cells_statement_with_codes,
+    cells_with_codes,
+    numeric_grid,
+    grid_with_category_codes,
+    numeric_positions,
     quiet_progress,
     refine_passes,
     refine_phase,
@@ -163,6 +171,9 @@ class RefreshReport:
     checked: str = "every partition"  # or "named partitions" (refresh --partitions/--where)
     seeding: dict[str, Any] = field(default_factory=dict)  # warm-start and fresh-seeding SSE, and which was kept
     groups: dict[str, Any] = field(default_factory=dict)  # a --within store: groups re-segmented, new, vanished, kept
+    #: per categorical column: rows of the partitions summarised now whose value is none of the categories
+    #: listed at build (values first seen since among them), counted as "(other)"
+    other_rows: dict[str, dict[str, Any]] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -171,6 +182,7 @@ class RefreshReport:
             "partitions": {"new": self.new, "changed": self.changed, "vanished": self.vanished, "unchanged": self.unchanged},
             "seeding": self.seeding,
             **({"groups": self.groups} if self.groups else {}),
+            **({"other_rows": self.other_rows} if self.other_rows else {}),
             "drift": self.drift,
             "warnings": self.warnings,
             "seconds": self.seconds,
@@ -187,6 +199,7 @@ class RefreshReport:
                 f"re-segmented from a fresh k-means++ seeding (SSE {self.seeding['fresh_sse']:.6g}; "
                 f"warm start from the last model: {self.seeding['warm_sse']:.6g})"
             )
+        lines += other_rows_lines(self.other_rows)
         if self.groups:
             lines += store_groups.report_lines(self.groups, self.drift)
         elif self.drift:
@@ -322,10 +335,12 @@ def _partitioning(spec: PartitionSpec) -> sqlgen.Partitioning:
 
 
 def _scan_source(source: Source, spec: PartitionSpec, files: Sequence[str] | None = None) -> Source:
-    """The source as scanned by the store: files carry their name; optionally only some files."""
+    """The source as scanned by the store: files carry their name; optionally only some files (derived
+    columns, e.g. category indicators, kept)."""
     if not spec.files:
         return source
-    return Source(files=tuple(files) if files is not None else source.files, reader=source.reader, filename=True)
+    return Source(files=tuple(files) if files is not None else source.files, reader=source.reader, filename=True,
+                  derived=source.derived)
 
 
 def _list_files(source: Source) -> list[str]:
@@ -463,6 +478,8 @@ def load(engine: Engine, store: str) -> StoreInfo:
 
 def _settings_of(info_settings: dict[str, Any], **override: Any) -> Settings:
     data = {**info_settings, **{k: v for k, v in override.items() if v is not None}}
+    if "categorical" in data:  # a JSON list
+        data["categorical"] = tuple(data["categorical"])
     return Settings(**data)
 
 
@@ -473,6 +490,7 @@ def _settings_dict(settings: Settings) -> dict[str, Any]:
         "seed": settings.seed, "sample_rows": settings.sample_rows,
         **({"method": settings.method} if settings.method != "kmeans" else {}),  # k-means stores keep their old settings
         **({"within": settings.within} if settings.within is not None else {}),
+        **_categorical_settings(settings),
     }
 
 
@@ -483,6 +501,149 @@ def merged_cells(engine: Engine, cells_table: str, grid: Grid, d: int) -> tuple[
     """All partitions' cells summed per grid cell: (cells on grid units, keys, skipped rows)."""
     got = engine.query(sqlgen.merged_cells_statement(cells_table, grid.key_names(), d))
     return cells_from_result(got, grid, d)
+
+
+# ----------------------------------------------------------------------------- categorical columns
+#
+# A store with --categorical keys its cells by (part, code q0.., grid key k0..) and keeps the numeric
+# columns' sums only: every row of such a cell holds the same category, so its indicators' sums are
+# exact functions of the cell's count (categorical.indicator_cells), made when the cells are read.
+# The listed categories are fixed at build, like the grid; a value first seen later counts as "(other)".
+
+
+def check_store_categorical(settings: Settings) -> None:
+    """A store keeps categorical columns or --within groups, not both yet: one line naming both options."""
+    if settings.categorical and settings.within is not None:
+        raise ParameterError("a summary store does not keep {categorical} columns and {within} groups together yet; "
+                             "build it with one of them", "categorical", "within")
+
+
+def store_categories(info: StoreInfo) -> list[cat.CategoricalColumn]:
+    """The store's categorical columns with the categories listed at build (none for a numeric store)."""
+    return cat.specs_of(info.model.categorical)
+
+
+def _categorical_settings(settings: Settings) -> dict[str, Any]:
+    """The settings a store with categorical columns keeps (none for other stores: their settings stay as they were)."""
+    if not settings.categorical:
+        return {}
+    return {"categorical": list(settings.categorical), "max_categories": settings.max_categories}
+
+
+def _source_columns(engine: Engine, source: Source, columns: Sequence[str], settings: Settings) -> list[str]:
+    """Every column of the source, after checking the numeric ones (none are needed with categorical columns)."""
+    if columns or not settings.categorical:
+        return check_columns(engine, source, columns)
+    return [n for n, _ in engine.describe(source)]
+
+
+def _numeric_columns(columns: Sequence[str], specs: Sequence[cat.CategoricalColumn]) -> list[str]:
+    indicators = {n for spec in specs for n in spec.names}
+    return [c for c in columns if c not in indicators]
+
+
+def _categorical_build(
+    engine: Engine, source: Source, columns: Sequence[str], settings: Settings, grid: Grid | None,
+    categories: Sequence[cat.CategoricalColumn] | None,
+) -> tuple[Source, list[str], list[cat.CategoricalColumn], Grid]:
+    """A build with categorical columns: the source read with their indicators and codes, the columns
+    (numeric, then indicators), the categories (the profile sample's top ones unless given) and the frozen
+    grid (binning the numeric columns, as ``segment --categorical`` does)."""
+    if grid is not None and categories is not None:  # both given: no profile needed
+        specs = list(categories)
+        return cat.with_indicators(source, specs, engine.target), [*columns, *(n for s in specs for n in s.names)], specs, grid
+    source, specs, prof = categorical_source(engine, source, columns, settings, fixed=categories)
+    full = [*columns, *(n for s in specs for n in s.names)]
+    weights, groups = indicator_weights(settings, full, specs), cat.indicator_positions(full, specs)
+    return source, full, specs, grid if grid is not None else grid_with_category_codes(prof, settings, weights, groups)
+
+
+def _store_scan(
+    engine: Engine, source: Source, spec: PartitionSpec, specs: Sequence[cat.CategoricalColumn], files: Sequence[str] | None = None
+) -> Source:
+    """The source as the store scans it (``_scan_source``), with the categorical columns' indicators and codes."""
+    return cat.with_indicators(_scan_source(with_fields(source, derived=()), spec, files), specs, engine.target)
+
+
+def _fingerprint_columns(columns: Sequence[str], specs: Sequence[cat.CategoricalColumn]) -> list[str]:
+    """What a partition's fingerprint hashes: the numeric columns and each categorical column's code (a row
+    moving between two unlisted values changes no cell, so it need not be rescanned)."""
+    if not specs:
+        return list(columns)
+    return _numeric_columns(columns, specs) + cat.code_names(specs)
+
+
+def _cells_layout(grid: Grid, columns: Sequence[str], specs: Sequence[cat.CategoricalColumn]) -> tuple[list[str], list[str], np.ndarray]:
+    """The cells table's grid key columns, code columns and the positions of the summed (numeric) columns."""
+    if not specs:
+        return grid.key_names(), [], np.arange(len(columns))
+    num_idx = numeric_positions(len(columns), cat.indicator_positions(columns, specs))
+    return (grid.key_names() if len(num_idx) else []), [f"q{i}" for i in range(len(specs))], num_idx
+
+
+def _store_cells_columns(grid: Grid, columns: Sequence[str], specs: Sequence[cat.CategoricalColumn],
+                         within: str | None = None) -> list[tuple[str, str]]:
+    """The cells table's columns, in the order the cell statement returns them (part, group or codes, keys, sums)."""
+    if not specs:
+        return _cells_columns(grid.dims, len(columns), within)
+    keys, codes, num_idx = _cells_layout(grid, columns, specs)
+    cols = _cells_columns(len(keys), len(num_idx))
+    return cols[:1] + [(q, "BIGINT") for q in codes] + cols[1:]
+
+
+def _cells_select(
+    engine: Engine, scan: Source, columns: Sequence[str], grid: Grid, specs: Sequence[cat.CategoricalColumn],
+    partitioning: sqlgen.Partitioning, where: Any = None, within: str | None = None,
+) -> Any:
+    """The store's cell pass (keyed by partition): with categorical columns keyed by their codes too, in a
+    --within store by (partition, group, cell)."""
+    if within is not None:
+        return store_groups.cells_statement(scan, columns, grid, engine.target, partitioning, within, where=where)
+    if not specs:
+        return sqlgen.cells_statement(scan, columns, grid, engine.target, partitioning, where=where)
+    groups = cat.indicator_positions(columns, specs)
+    return cells_statement_with_codes(scan, columns, grid, groups, cat.code_names(specs), engine.target, partitioning, where)[0]
+
+
+def store_cells(
+    engine: Engine, cells_table: str, grid: Grid, columns: Sequence[str], specs: Sequence[cat.CategoricalColumn] = ()
+) -> tuple[CF, np.ndarray, int]:
+    """``merged_cells`` for any store: with categorical columns summed per (grid cell, codes), the
+    indicators' sums made from the counts; the keys then end with the codes."""
+    if not specs:
+        return merged_cells(engine, cells_table, grid, len(columns))
+    keys, codes, _ = _cells_layout(grid, columns, specs)
+    groups = cat.indicator_positions(columns, specs)
+    sub, num_idx = numeric_grid(grid, len(columns), groups)
+    got = engine.query(sqlgen.merged_cells_statement(cells_table, keys + codes, len(num_idx)))
+    cp = cells_with_codes(got, grid, sub, num_idx, groups, len(columns))
+    return cp.cells, cp.keys, cp.skipped
+
+
+def _range_keys(keys: np.ndarray, specs: Sequence[cat.CategoricalColumn]) -> np.ndarray:
+    """The grid's keys of merged cells, without the category codes (the built range bounds the grid only)."""
+    return keys[:, : keys.shape[1] - len(specs)]
+
+
+def _other_rows(engine: Engine, cells_table: str, specs: Sequence[cat.CategoricalColumn], parts: Sequence[str]) -> dict[str, dict[str, Any]]:
+    """Per categorical column, the rows of ``parts`` counted as "(other)": one aggregate over their kept cells."""
+    sums = [
+        sqlgen.exp.alias_(sqlgen.exp.Sum(this=sqlgen.case_when(
+            sqlgen.exp.EQ(this=sqlgen.col(f"q{i}"), expression=sqlgen.num(len(spec.values) + 1)), sqlgen.col("n"))), f"o{i}", quoted=True)
+        for i, spec in enumerate(specs)
+    ]
+    got = _rows(engine.query(sqlgen.exp.select(*sums).from_(sqlgen.table_name(cells_table)).where(sqlgen.in_list("part", parts))))
+    return {spec.column: {"rows": int(got[0][f"o{i}"] or 0), "listed": len(spec.values), "partitions": len(parts)}
+            for i, spec in enumerate(specs)}
+
+
+def other_rows_lines(other_rows: dict[str, dict[str, Any]]) -> list[str]:
+    """The refresh report's lines on rows whose category is none of those listed at build."""
+    return [
+        f"{column}: {o['rows']:,} row(s) of the {o['partitions']} partition(s) summarised hold a value outside the "
+        f"{o['listed']} categories listed at build (values first seen since among them); they count as (other)"
+        for column, o in other_rows.items() if o["rows"]
+    ]
 
 
 def _segment_cells(
@@ -498,18 +659,25 @@ def _segment_cells(
     init_original: np.ndarray | None,
     progress: ProgressFn,
     seeding: dict[str, Any] | None = None,
+    specs: Sequence[cat.CategoricalColumn] = (),
 ) -> tuple[Model, CF, Any]:
     """Second phase on merged cells (k-means warm-started from centroids in original units), optional refine.
 
     With ``seeding`` (a dict to fill) a warm start is also tried against fresh
     k-means++ seeding on the same cells, and the lower SSE is kept: a warm start
     cannot find a group of rows that arrived since the last model.  Ward has
-    no start to warm: it runs as in ``pipeline.segment`` (``_ward_on_cells``).
+    no start to warm: it runs as in ``pipeline.segment`` (``_ward_on_cells``).  ``specs``: the
+    categorical columns (``source`` reads their indicators and codes), as ``pipeline.segment`` runs them.
     """
-    weights = settings.column_weights(columns)
-    cells, std = standardise_cells(cells_grid, grid, columns, settings, weights)
+    weights, groups = indicator_weights(settings, columns, specs), cat.indicator_positions(columns, specs)
+    cells, std = standardise_cells(cells_grid, grid, columns, settings, weights, groups)
+    codes = (groups, cat.code_names(specs)) if specs else None
+    if specs:
+        settings = with_fields(settings, keep_outliers=True)  # as segment: cells are keyed by category codes too
     if settings.method == "ward":
-        return _ward_on_cells(engine, source, columns, cells, keys, std, skipped, grid, settings, where, progress), cells, std
+        model = _ward_on_cells(engine, source, columns, cells, keys, std, skipped, grid, settings, where, progress, codes)
+        model.categorical = [spec.to_dict() for spec in specs]
+        return model, cells, std
     init = None if init_original is None else (np.asarray(init_original) - std.center[None, :]) / std.scale[None, :]
     t0 = time.perf_counter()
     result = second_phase(cells, settings, std.weights, where, init=init)
@@ -522,18 +690,20 @@ def _segment_cells(
     progress("second phase", f"{'warm start' if init is not None else f'k-means++ x{result.restarts}'} on {int((cells.n > 0).sum()):,} cells, SSE {result.sse:.6g}, {time.perf_counter() - t0:.2f} s")
     stats = SegmentStats.of_cfs(F.group_sum(cells, result.labels, settings.k), std.weights)
     usable = int(round(cells.n.sum()))
-    stats, passes, _ = refine_passes(engine, source, columns, std, result.centroids, stats, settings, progress, usable)
+    stats, passes, _ = refine_passes(engine, source, columns, std, result.centroids, stats, settings, progress, usable, codes=codes)
     if init is None:
         stats = order_by_size(stats)
     model = make_model(columns, std, grid, stats, settings, source, usable + skipped, skipped, int((cells.n > 0).sum()),
                        extra_params={"cell_sse": float(result.sse), "cell_unexplained": float(unexplained)})
     model.passes = passes
+    model.categorical = [spec.to_dict() for spec in specs]
     return model, cells, std
 
 
 def _ward_on_cells(
     engine: Engine, source: Source, columns: Sequence[str], cells: CF, keys: np.ndarray, std: Standardisation,
     skipped: int, grid: Grid, settings: Settings, where: str, progress: ProgressFn,
+    codes: tuple[Sequence[np.ndarray], Sequence[str]] | None = None,
 ) -> Model:
     """Ward on the merged cells, the same stages as ``pipeline.segment --method ward``: the second phase (a CF tree
     first above the budget), refine passes (none when the cells settle it), segments numbered largest first."""
@@ -541,7 +711,7 @@ def _ward_on_cells(
     phase = run_second_phase(cells, keys, settings, std.weights, where, progress)
     progress("second phase", f"{phase.summary}, {time.perf_counter() - t0:.2f} s")
     usable = int(round(cells.n.sum()))
-    refined = refine_phase(engine, source, columns, cells, keys, grid, std, phase, settings, progress, usable)
+    refined = refine_phase(engine, source, columns, cells, keys, grid, std, phase, settings, progress, usable, codes=codes)
     model = make_model(columns, std, grid, refined.stats, settings, source, usable + skipped, skipped,
                        int((cells.n > 0).sum()), extra_params={"cell_sse": phase.sse, **phase.params})
     return attach_phase(model, "ward", phase, refined, grid, keys)
@@ -751,6 +921,7 @@ def build(
     previous: StoreInfo | None = None,
     new_segment_shift: float = 3.0,
     many_partitions: bool = False,
+    categories: Sequence[cat.CategoricalColumn] | None = None,
 ) -> tuple[StoreInfo, Model]:
     """Build a store from scratch: frozen grid, per-partition cells and fingerprints, first model.
 
@@ -760,20 +931,20 @@ def build(
     model, its next id carries on, and its label views are re-created, all in
     the build's transaction.  The returned StoreInfo's ``warnings`` hold the
     build's warnings (e.g. many partitions).  Above PARTITIONS_LIMIT
-    partitions the build refuses unless ``many_partitions``.
+    partitions the build refuses unless ``many_partitions``.  ``settings.categorical``: categorical
+    columns, kept as in ``pipeline.segment``; ``categories`` (with them) the listed categories to keep
+    (a regrid keeps the store's), else the profile sample's top ones.
     """
     require_transactions(engine)
     columns = list(columns)
     check_store_method(settings.method)  # before the checks of k, which density does not take
-    if settings.categorical:
-        raise ParameterError("a summary store does not keep categorical columns yet; segment with {categorical} "
-                             "without a store", "categorical")
+    check_store_categorical(settings)
     settings.check(columns)
     group_type = store_groups.check(engine, source, columns, settings) if settings.within is not None else None
     name = store or default_store_name(source)
     if not partition.files and not partition.columns:
         raise ParameterError("give the partition column(s) ({partition}) for a table source", "partition")
-    source_columns = check_columns(engine, source, columns)
+    source_columns = _source_columns(engine, source, columns, settings)
     missing = [c for c in partition.columns if c not in source_columns]
     if missing:
         raise InputError(f"partition column {', '.join(missing)} not found in {source.label}; columns there: {', '.join(source_columns)}")
@@ -788,23 +959,28 @@ def build(
     t0 = time.perf_counter()
     weights = settings.column_weights(columns)
     repeats = None
-    if grid is None and settings.within is not None:  # a --within store's grid is segment --within's
+    specs: list[cat.CategoricalColumn] = []
+    if settings.categorical:
+        source, columns, specs, grid = _categorical_build(engine, source, columns, settings, grid, categories)
+        progress("profile", f"frozen grid width {grid.width:.3g}; categories of {', '.join(s.column for s in specs)} fixed, {time.perf_counter() - t0:.2f} s")
+    elif grid is None and settings.within is not None:  # a --within store's grid is segment --within's
         grid, repeats = store_groups.frozen_grid(engine, source, columns, settings, weights, progress)
-    if grid is None:
+    elif grid is None:
         prof = run_profile(engine, source, columns, settings)
         grid = grid_for_profile(prof, settings, weights)
         progress("profile", f"{prof.rows:,} rows, frozen grid width {grid.width:.3g} on {axes_text(grid.dims)}, {time.perf_counter() - t0:.2f} s")
-    scan = _scan_source(source, partition)
-    fps = fingerprint_partitions(engine, scan, columns, partition, {})
+    scan = _store_scan(engine, source, partition, specs)
+    fps = fingerprint_partitions(engine, scan, _fingerprint_columns(columns, specs), partition, {})
     cells_table = previous.cells_table if previous is not None else choose_cells_table(engine, name)
-    d = len(columns)
     with engine.transaction():
         for st in _drop_store_statements(name, cells_table):
             engine.execute(st)
-        engine.execute(sqlgen.create_table_statement(cells_table, _cells_columns(grid.dims, d, settings.within), if_not_exists=False))
+        engine.execute(sqlgen.create_table_statement(cells_table, _store_cells_columns(grid, columns, specs, settings.within),
+                                                     if_not_exists=False))
         t1 = time.perf_counter()
-        engine.execute(sqlgen.insert_select_statement(cells_table, _cells_pass(scan, columns, grid, engine.target, partition, settings.within)))
-        cells_grid, keys, skipped = merged_cells(engine, cells_table, grid, d)
+        engine.execute(sqlgen.insert_select_statement(cells_table, _cells_select(engine, scan, columns, grid, specs, _partitioning(partition),
+                                                                                 within=settings.within)))
+        cells_grid, keys, skipped = store_cells(engine, cells_table, grid, columns, specs)
         if cells_grid.m == 0:
             raise InputError(f"no usable rows in {source.label}")
         progress("cells", f"{len(fps):,} partitions -> {cells_grid.m:,} cells ({skipped:,} rows skipped), {time.perf_counter() - t1:.2f} s")
@@ -815,8 +991,10 @@ def build(
             )
             model, warnings_ = grouped.model, warnings_ + grouped.warnings
         else:
-            model, _, _ = _segment_cells(engine, source, columns, cells_grid, keys, skipped, grid, settings, source.label, init_centroids, progress)
-        key_range = np.stack([keys.min(axis=0), keys.max(axis=0)])
+            model, _, _ = _segment_cells(engine, source, columns, cells_grid, keys, skipped, grid, settings, source.label, init_centroids,
+                                         progress, specs=specs)
+        grid_keys = _range_keys(keys, specs)
+        key_range = np.stack([grid_keys.min(axis=0), grid_keys.max(axis=0)])
         next_id = model.k
         if previous is not None and not model.within:
             sd = np.asarray(model.grid["sd"])
@@ -868,9 +1046,10 @@ def regrid(engine: Engine, store: str, progress: ProgressFn = quiet_progress, ne
     """
     check_refresh_options(new_segment_shift=new_segment_shift)
     info = load(engine, store)
+    specs = store_categories(info)
     _, model = build(
-        engine, info.source, info.columns, info.partition, _settings_of(info.settings), store=store,
-        progress=progress, replace=True, previous=info, new_segment_shift=new_segment_shift,
+        engine, info.source, _numeric_columns(info.columns, specs), info.partition, _settings_of(info.settings), store=store,
+        progress=progress, replace=True, previous=info, new_segment_shift=new_segment_shift, categories=specs or None,
     )
     return model
 
@@ -923,7 +1102,8 @@ def refresh(
     predicate = named_partitions_predicate(engine, info, partitions, where, types)
     if predicate is not None:
         report.checked = "named partitions"
-    scan = _scan_source(info.source, info.partition)
+    specs = store_categories(info)
+    scan = _store_scan(engine, info.source, info.partition, specs)
     settings = _settings_of(info.settings, k=k, refine_passes=refine if refine is not None else info.settings.get("refine_passes"))
     settings_moved = _settings_dict(settings) != _settings_dict(_settings_of(info.settings))
     try:
@@ -931,7 +1111,7 @@ def refresh(
             # 1. fingerprints, read in the transaction's snapshot
             stored = _stored_fingerprints(engine, store)
             if predicate is None:
-                current = fingerprint_partitions(engine, scan, info.columns, info.partition, stored)
+                current = fingerprint_partitions(engine, scan, _fingerprint_columns(info.columns, specs), info.partition, stored)
                 in_scope = set(stored)
             else:
                 current = _fingerprints_where(engine, scan, info, predicate)
@@ -963,6 +1143,8 @@ def refresh(
                 engine.execute(sqlgen.delete_statement(info.cells_table, sqlgen.in_list("part", gone)))
             if recompute:
                 engine.execute(sqlgen.insert_select_statement(info.cells_table, _restricted_cells(engine, info, scan, [current[p] for p in recompute], recompute, types)))
+            if recompute and specs:
+                report.other_rows = _other_rows(engine, info.cells_table, specs, recompute)
             report.seconds["cells"] = time.perf_counter() - t1
             progress("cells", f"{len(recompute)} partition(s) summarised, {len(gone)} dropped, {report.seconds['cells']:.2f} s")
             # 4. their bookkeeping rows
@@ -1073,7 +1255,8 @@ def named_partitions_predicate(
 
 def _fingerprints_where(engine: Engine, scan: Source, info: StoreInfo, predicate: Any) -> dict[str, Fingerprint]:
     """Fingerprints of only the partitions whose rows satisfy ``predicate`` (the engine can skip the others' blocks)."""
-    statement = sqlgen.fingerprint_statement(scan, info.columns, _partitioning(info.partition), engine.target, where=predicate)
+    columns = _fingerprint_columns(info.columns, store_categories(info))
+    statement = sqlgen.fingerprint_statement(scan, columns, _partitioning(info.partition), engine.target, where=predicate)
     return _fingerprints_of(engine.query(statement), len(info.partition.columns))
 
 
@@ -1111,20 +1294,14 @@ def _restricted_cells(
     the blocks of other partitions.
     """
     partitioning = _partitioning(info.partition)
+    specs = store_categories(info)
     within = info.settings.get("within")
     if info.partition.files:
-        return _cells_pass(_scan_source(info.source, info.partition, parts), info.columns, info.grid, engine.target, info.partition, within)
+        files = _store_scan(engine, info.source, info.partition, specs, parts)
+        return _cells_select(engine, files, info.columns, info.grid, specs, partitioning, within=within)
     types = types or dict(engine.describe(info.source))
     where = partitioning.filter([types[c] for c in info.partition.columns], [fp.values for fp in fps], engine.target)
-    return _cells_pass(scan, info.columns, info.grid, engine.target, info.partition, within, where=where)
-
-
-def _cells_pass(scan: Source, columns: Sequence[str], grid: Grid, target: Any, partition: PartitionSpec, within: str | None,
-                where: Any = None):
-    """The store's cell pass keyed by (partition, cell), or by (partition, group, cell) for a --within store."""
-    if within is not None:
-        return store_groups.cells_statement(scan, columns, grid, target, _partitioning(partition), within, where=where)
-    return sqlgen.cells_statement(scan, columns, grid, target, _partitioning(partition), where=where)
+    return _cells_select(engine, scan, info.columns, info.grid, specs, partitioning, where, within)
 
 
 def _claim(engine: Engine, info: StoreInfo) -> None:
@@ -1166,13 +1343,15 @@ def _resegment(
     engine: Engine, info: StoreInfo, settings: Settings, progress: ProgressFn, new_segment_shift: float,
     seeding: dict[str, Any] | None = None,
 ):
-    cells_grid, keys, skipped = merged_cells(engine, info.cells_table, info.grid, len(info.columns))
+    specs = store_categories(info)
+    cells_grid, keys, skipped = store_cells(engine, info.cells_table, info.grid, info.columns, specs)
     if cells_grid.m == 0:
         raise InputError(f"store {info.name} has no usable rows left")
     old = info.model
     init = np.asarray(old.centroids) if settings.k == old.k else None
     model, cells, std = _segment_cells(
-        engine, info.source, info.columns, cells_grid, keys, skipped, info.grid, settings, f"store {info.name}", init, progress, seeding,
+        engine, cat.with_indicators(info.source, specs, engine.target), info.columns, cells_grid, keys, skipped, info.grid,
+        settings, f"store {info.name}", init, progress, seeding, specs,
     )
     ids, next_id = match_segments(np.asarray(old.centroids), old.segment_ids(), np.asarray(model.centroids), info.next_id, np.where(std.sd > 0, std.sd, 1.0), new_segment_shift)
     model.ids = ids
@@ -1290,6 +1469,9 @@ def subtract_rows(engine: Engine, store: str, part: str, rows: np.ndarray) -> in
     if info.model.within:
         raise StoreError(f"store {store} keeps cells per group of {info.model.within['column']}, which rows of the segmenting "
                          "columns alone do not name; refresh the partition instead")
+    if info.model.categorical:
+        raise StoreError(f"store {store} keeps categorical columns, whose rows subtract_rows cannot take (numbers only); "
+                         "refresh the partition instead")
     part = _part_key(engine, info, part)
     rows = np.asarray(rows, dtype=np.float64).reshape(-1, len(info.columns))
     rows = rows[np.isfinite(rows).all(axis=1)]
@@ -1356,7 +1538,9 @@ def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, 
     check_refresh_options(outside_warn=outside_warn)
     info = load(engine, store)
     parts = _rows(engine.query(sqlgen.select_where(PARTS, sqlgen.equals_all({"store": store}))))
-    cells_grid, keys, skipped = merged_cells(engine, info.cells_table, info.grid, len(info.columns))
+    specs = store_categories(info)
+    cells_grid, keys, skipped = store_cells(engine, info.cells_table, info.grid, info.columns, specs)
+    keys = _range_keys(keys, specs)
     lo, hi = info.key_range
     outside = ((keys < lo[None, :]) | (keys > hi[None, :])).any(axis=1) if len(keys) else np.zeros(0, bool)
     usable = float(cells_grid.n.sum())
@@ -1371,6 +1555,8 @@ def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, 
         "store": store,
         "source": info.source.label,
         "columns": info.columns,
+        **({"categorical": [{"column": sp.column, "categories": list(sp.values), "indicators": list(sp.names)} for sp in specs]}
+           if specs else {}),
         "partition_by": info.partition.to_dict(),
         "partitions": len(parts),
         "rows": int(sum(p["rows"] for p in parts)),

@@ -17,15 +17,29 @@ Model = lazy_name("tillite.model", "Model")
 __all__ = ["macros"]
 
 
-def _model(model_path: str | None, name: str | None) -> Model | None:
-    """The model behind --model/--name (both or neither), or None for the generic macros."""
-    if model_path is None and name is None:
+def _model(model_path: str | None, name: str | None, store: tuple[str, str] | None = None) -> Model | None:
+    """The model behind --model/--name (both or neither), or None for the generic macros.
+    ``store``: (database, store name) of `install --store`, whose current model is read instead."""
+    if model_path is not None and store is not None:
+        raise click.UsageError("give --model or --store, not both")
+    if model_path is None and store is None and name is None:
         return None
-    if model_path is None:
-        raise click.UsageError("--name names the scoring macros of a model: give --model too")
+    if model_path is None and store is None:
+        raise click.UsageError("--name names the scoring macros of a model: give --model (or --store) too")
     if name is None:
-        raise click.UsageError("--model needs --name: the scoring macros are called <name>_segment and <name>_distance")
+        raise click.UsageError(f"{'--model' if store is None else '--store'} needs --name: the scoring macros are called "
+                               "<name>_segment and <name>_distance")
+    if store is not None:
+        return _store_model(*store)
     return Model.read(model_path)
+
+
+def _store_model(database: str, store: str) -> Model:
+    """A summary store's current model, read from its database (a refresh does not re-install macros)."""
+    from .store import open_store_database, store_api
+
+    with open_store_database(database) as engine:
+        return store_api.load(engine, store).model
 
 
 def _definitions(model: Model | None, name: str | None) -> list[M.MacroDefinition]:
@@ -60,14 +74,16 @@ def macros() -> None:
 @click.argument("database", type=click.Path(dir_okay=False))
 @click.option("--model", "model_path", type=click.Path(dir_okay=False), help="Model file: install its scoring macros.")
 @click.option("--name", help="Prefix of the scoring macros: NAME_segment and NAME_distance.")
+@click.option("--store", "store_name", help="Instead of --model: the current model of this summary store in DATABASE "
+              "(install again after a refresh to follow it).")
 @click.option("--replace", is_flag=True, help="Also replace macros of the same names that tillite did not install.")
-def install_command(database: str, model_path: str | None, name: str | None, replace: bool) -> None:
+def install_command(database: str, model_path: str | None, name: str | None, store_name: str | None, replace: bool) -> None:
     """Create (or replace) tillite's macros in an existing DuckDB file DATABASE.
 
     A macro of the same name that tillite did not install is replaced only with --replace.
     """
     with user_errors():
-        model = _model(model_path, name)
+        model = _model(model_path, name, (database, store_name) if store_name else None)
         definitions = _definitions(model, name)
         names = M.install_into(database, definitions, replace=replace)
     hint = _example(definitions, model)

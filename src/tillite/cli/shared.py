@@ -231,14 +231,19 @@ def settings_options(f: Callable) -> Callable:
     return f
 
 
+def categorical_columns(given: tuple[str, ...] | None) -> tuple[str, ...]:
+    """--categorical's column names; the option given without any is a usage error, not ignored."""
+    named = tuple(split_columns(given or ()))
+    if given and not named:
+        raise click.BadParameter("give one or more column names, e.g. --categorical district", param_hint="--categorical")
+    return named
+
+
 def settings_from_options(**kw: Any) -> Settings:
     """The Settings of `segment`'s options (keyword arguments named as the Settings fields)."""
     k_text = kw.pop("k")
     k_value, candidates = parse_k(k_text)
     if kw.get("method", "kmeans") != "density" and k_text is None:
         raise click.UsageError("give --k (a number, 'auto' or a range like 2..12)")
-    given = tuple(kw.pop("categorical", None) or ())
-    categorical = tuple(split_columns(given))
-    if given and not categorical:
-        raise click.BadParameter("give one or more column names, e.g. --categorical district", param_hint="--categorical")
+    categorical = categorical_columns(kw.pop("categorical", None))
     return Settings(k=k_value, k_candidates=candidates, weights=parse_weights(kw.pop("weights")), categorical=categorical, **kw)

@@ -10,7 +10,7 @@ from typing import TYPE_CHECKING
 
 from ..errors import DatabaseLocked
 from ..lazy import lazy_module, lazy_name
-from .shared import parameter_option, parse_weights, progress_printer, refuse_table_for_files, split_columns, user_errors
+from .shared import categorical_columns, parameter_option, parse_weights, progress_printer, refuse_table_for_files, split_columns, user_errors
 
 if TYPE_CHECKING:
     from ..engines import Engine
@@ -32,7 +32,8 @@ def store_group() -> None:
 @store_group.command("build")
 @click.argument("source", metavar="SOURCE")
 @click.option("--table", "-t", help="Table to read (for a database SOURCE).")
-@click.option("--columns", "-c", multiple=True, required=True, help="Numeric columns to segment on, comma-separated.")
+@click.option("--columns", "-c", multiple=True,
+              help="Numeric columns to segment on, comma-separated (may be left out with --categorical).")
 @click.option("--partition-by", "partition_by", multiple=True,
               help="Partition column(s), comma-separated; for a Parquet/CSV SOURCE each file is a partition.")
 @click.option("--store", "store_name", help="Store name (default: the table name, or the folder of the files).")
@@ -55,17 +56,25 @@ def store_group() -> None:
 @click.option("--out", "-o", help="Also write the model file here.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
+@parameter_option("categorical", help="Categorical columns, comma-separated (repeatable), as in `tillite segment`: "
+                                      "the categories listed at build are kept by refreshes; values first seen later "
+                                      "count as '(other)'. Not with --within.")
+@parameter_option("max_categories")
 @parameter_option("within", help="Segment each group of this column separately, as `tillite segment --within` does (k per "
                                  "group; NULL is a group of its own); the store keeps cells per (partition, group, cell), and a "
                                  "refresh re-segments only the groups with rows in new, changed or vanished partitions, keeping "
                                  "segment ids stable per group.")
 def build_command(source, table, columns, partition_by, store_name, database, k, method, scaling, weights, cell_budget, refine_passes,
-                  n_init, seed, regrid, many_partitions, out, quiet, as_json, within) -> None:
+                  n_init, seed, regrid, many_partitions, out, quiet, as_json, categorical, max_categories, within) -> None:
     """Build a summary store for SOURCE: frozen grid, per-partition cells, first segments."""
     with user_errors(options={"replace": "--regrid"}):
+        named = categorical_columns(categorical)
+        if not columns and not named:
+            raise click.UsageError("give --columns (numeric columns) or --categorical (or both)")
         settings = store_api.Settings(
             k=k, method=method, scaling=scaling, weights=parse_weights(weights), cell_budget=cell_budget,
-            refine_passes=refine_passes, n_init=n_init, seed=seed, within=within,
+            refine_passes=refine_passes, n_init=n_init, seed=seed, within=within, categorical=named,
+            max_categories=max_categories,
         )
         refuse_table_for_files(source, table)
         if is_file_source(source) and not database:
@@ -111,7 +120,7 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
         if as_json:
             click.echo(json.dumps(st, indent=2, default=str))
             return
-        click.echo(f"store {st['store']} on {st['source']} ({', '.join(st['columns'])})")
+        click.echo(f"store {st['store']} on {st['source']} ({', '.join(_shown_columns(st))})")
         click.echo(f"partitions: {st['partitions']:,}; rows: {st['rows']:,} ({st['skipped_rows']:,} skipped); cells: {st['cells']:,}")
         found = {False: " (found no change)", True: "", None: ""}[st["last_refresh_found_change"]]
         click.echo(f"built {st['built_at']}; last refresh {st['last_refresh'] or 'never'}{found}; last summarised {st['last_summarised']}")
@@ -122,6 +131,9 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
                 f"{g['group']} k={g['k']} (ids {', '.join(map(str, g['segment_ids']))})" for g in st["groups"]))
         else:
             click.echo(f"segments: k={st['k']}, ids {', '.join(map(str, st['segment_ids']))}")
+        for c in st.get("categorical", []):
+            click.echo(f"categories of {c['column']} fixed at build: {', '.join(c['categories']) or '(none)'}; "
+                       "any other value counts as (other), NULL as (NULL)")
         kept = st["settings"]
         click.echo(f"settings kept by refreshes: k={kept.get('k')}, method {kept.get('method', 'kmeans')}, refine passes {kept.get('refine_passes')}, "
                    f"restarts {kept.get('n_init')}, seed {kept.get('seed')}, scaling {kept.get('scaling')}"
@@ -131,6 +143,12 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
         _echo_history(source, store_name)
         for w in st["warnings"]:
             click.echo(f"warning: {w}", err=True)
+
+
+def _shown_columns(st: dict) -> list[str]:
+    """The store's columns as the user named them: numeric ones, then each categorical column once."""
+    indicators = {n for c in st.get("categorical", []) for n in c["indicators"]}
+    return [c for c in st["columns"] if c not in indicators] + [f"{c['column']} (categorical)" for c in st.get("categorical", [])]
 
 
 @click.command("refresh")
