@@ -14,8 +14,8 @@ of that cell assignment.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable, Sequence
-from contextlib import AbstractContextManager, nullcontext
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import AbstractContextManager, contextmanager, nullcontext
 from dataclasses import dataclass
 
 import numpy as np
@@ -24,17 +24,33 @@ from . import features as F
 from .distances import nearest_rows, sq_distance_blocks, sq_distances, sq_norms
 from .features import CF
 
+#: How many one_blas_thread blocks are open: inner ones do nothing (threadpoolctl takes about 1.5 ms a call).
+_ONE_THREAD_DEPTH = [0]
+
+
+@contextmanager
+def _counted(limit: AbstractContextManager) -> Iterator[None]:
+    with limit:
+        _ONE_THREAD_DEPTH[0] += 1
+        try:
+            yield
+        finally:
+            _ONE_THREAD_DEPTH[0] -= 1
+
+
 def one_blas_thread() -> AbstractContextManager:
-    """Run BLAS on one thread inside the block (threadpoolctl, when installed).
+    """Run BLAS on one thread inside the block (threadpoolctl, when installed); inside another such block, nothing.
 
     The second phase's products are thin (cells x k x a few columns); on a busy
     2-core box OpenBLAS threads made them 5 to 15 times slower than one thread.
     """
+    if _ONE_THREAD_DEPTH[0]:
+        return nullcontext()
     try:
         from threadpoolctl import threadpool_limits
     except ImportError:  # pragma: no cover - optional
         return nullcontext()
-    return threadpool_limits(1, user_api="blas")
+    return _counted(threadpool_limits(1, user_api="blas"))
 
 
 __all__ = [
