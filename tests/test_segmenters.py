@@ -451,3 +451,19 @@ def test_restarts_on_the_same_partition_are_finished_once_with_the_same_result(m
     assert got.sse == every.sse
     np.testing.assert_array_equal(got.labels, every.labels)
     assert got.sse <= 1.002 * KMeans(6, n_init=10, random_state=0).fit(x).inertia_  # scikit-learn KMeans objective
+
+
+def test_restarts_drawn_together_return_the_means_and_numpy_weighted_sse_of_their_labels():
+    import tillite.segmenters as S
+
+    x, _ = make_blobs(n_samples=300, n_features=3, centers=5, random_state=3)  # scikit-learn blobs
+    w = np.random.default_rng(1).integers(1, 40, len(x)).astype(float)
+    got = S._brief_restarts_together(x, w, 5, 8, np.random.default_rng(0))
+    assert len(got) == 8
+    for centers, labels, cost, iterations in got:
+        assert 1 <= iterations <= S.BRIEF_ITER
+        for c in range(5):  # numpy: weighted mean of each segment's points
+            mine = labels == c
+            if mine.any():
+                np.testing.assert_allclose(centers[c], np.average(x[mine], axis=0, weights=w[mine]), rtol=1e-9, atol=1e-12)
+        assert cost == pytest.approx(float((w * ((x - centers[labels]) ** 2).sum(axis=1)).sum()), rel=1e-9)  # numpy direct
