@@ -125,8 +125,22 @@ def sampled_groups(got: dict[str, Any], within: str) -> tuple[np.ndarray, list[s
     return np.array([code[t] for t in texts], dtype=np.float64), values
 
 
+def pair_budget(cell_budget: int, groups: int) -> int:
+    """The (group, cell) pairs the shared grid aims at: the cell budget times the square root of the groups.
+
+    With the budget alone, 50 groups got about 200 cells each (k = 4): cell-level
+    centroids that far from the rows' made the first refine pass gain 0.15-0.2%
+    in every group, so every group took a second pass (a whole scan).  At
+    budget x sqrt(groups) each group gets about 5 times the cells, the first pass
+    gains below the 1e-4 tolerance and one pass suffices; the cell pass's GROUP BY
+    and the per-group k-means grow far less than a pass costs
+    (``benchmarks/bench_within.py``).
+    """
+    return int(cell_budget * math.sqrt(max(groups, 1)))
+
+
 def grouped_grid(gp: GroupedProfile, settings: Settings, weights: np.ndarray) -> Grid:
-    """One grid for every group, its width chosen so the (group, cell) pairs fit the cell budget.
+    """One grid for every group, its width chosen so the (group, cell) pairs fit ``pair_budget``.
 
     Each group's sampled coordinates are moved by a distinct offset far beyond
     the data's span, so ``choose_width`` counts (group, cell) pairs.
@@ -139,7 +153,7 @@ def grouped_grid(gp: GroupedProfile, settings: Settings, weights: np.ndarray) ->
     coords = u @ axes
     span = float(np.ptp(coords[:, 0])) + 200.0  # > the data's span plus the widest width searched (50)
     coords[:, 0] += gp.groups * span
-    width = choose_width(coords, gp.profile.rows, settings.cell_budget)
+    width = choose_width(coords, gp.profile.rows, pair_budget(settings.cell_budget, len(gp.values)))
     return replace(grid, width=float(width))
 
 
