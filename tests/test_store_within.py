@@ -275,3 +275,36 @@ def test_within_with_categorical_columns_is_refused_by_a_store_in_one_line(tmp_p
         S.build(engine, SOURCE, COLUMNS, PARTS, Settings(k=2, within="grp", categorical=("grp",)))
     text = str(caught.value)
     assert "\n" not in text and "categorical" in text
+
+
+def test_report_of_a_within_store_has_one_section_per_group_like_a_segment_within_model(store_db, tmp_path):
+    path, model = store_db
+    refresh_store(path, force=True)
+    for fmt in ("md", "html", "json"):
+        out = tmp_path / f"srep.{fmt}"
+        result = run("report", path, "--store", "meters", "--by", "grp", "--format", fmt, "--out", out, "-q")
+        assert result.exit_code == 0, result.output
+    content = json.loads((tmp_path / "srep.json").read_text())
+    assert [g["group"] for g in content["groups"]] == ["dune", "harbour", "NULL"]
+    # reference: DuckDB's own counts of each group's rows
+    counts = dict(fetch_rows(path, "SELECT coalesce(grp, 'NULL'), count(*) FROM meters GROUP BY 1", read_only=True))
+    for g in content["groups"]:
+        assert sum(s["rows"] for s in g["report"]["segments"]) == counts[g["group"]]
+        assert g["report"]["map"]  # the map each group's build or refresh kept
+    assert [h["event"] for h in content["history"]] == ["build", "refresh"]
+    assert all(h["k"] == 12 for h in content["history"])  # 3 groups x k=4, by construction
+    assert "## grp = dune" in (tmp_path / "srep.md").read_text() and "Refresh history" in (tmp_path / "srep.md").read_text()
+
+
+def test_store_status_history_of_a_within_store_counts_every_groups_segments_and_the_largest_move_of_all(store_db):
+    path, _ = store_db
+    run_sql(path, "UPDATE meters SET a = a + 3 WHERE day = 3 AND grp = 'dune'",
+            "UPDATE meters SET a = a + 0.25 WHERE day = 3 AND grp = 'harbour'")  # harbour's drift rows come last
+    report = refresh_store(path)
+    assert report.groups["resegmented"] == ["dune", "harbour"]
+    status = run("store", "status", path, "--store", "meters")
+    assert status.exit_code == 0, status.output
+    assert "12 segments in 3 groups" in status.output and "k=0" not in status.output
+    # reference: the refresh's own drift rows (every group's), their largest move
+    largest = max(d["shift_sd"] for d in report.drift if d.get("shift_sd") is not None)
+    assert f"largest centroid move {largest:.3f} sd" in status.output
