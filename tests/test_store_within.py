@@ -308,3 +308,26 @@ def test_store_status_history_of_a_within_store_counts_every_groups_segments_and
     # reference: the refresh's own drift rows (every group's), their largest move
     largest = max(d["shift_sd"] for d in report.drift if d.get("shift_sd") is not None)
     assert f"largest centroid move {largest:.3f} sd" in status.output
+
+
+def test_naming_a_within_store_group_names_its_segments_and_the_names_survive_refreshes(store_db):
+    path, model = store_db
+    named = run("name", path, "--store", "meters", "--group", "dune", "0", "quiet", "1", "busy")
+    assert named.exit_code == 0, named.output
+    assert "group dune" in named.output and '0: "quiet"' in named.output
+    assert_one_error_line(run("name", path, "--store", "meters", "0", "x"), "--group", "dune, harbour, NULL")
+    assert_one_error_line(run("name", path, "--store", "meters", "--group", "reef", "0", "x"), "--group reef", "dune")
+    run("name", path, "--store", "meters", "--group", "harbour", "2", "edge")
+    # a refresh re-segmenting dune only: harbour's entry is kept, dune's names follow its matched ids
+    run_sql(path, "UPDATE meters SET a = a + 0.25 WHERE day = 3 AND grp = 'dune'")
+    report = refresh_store(path)
+    assert report.groups["resegmented"] == ["dune"]
+    groups = groups_of(report.model)
+    assert groups["dune"]["names"] == {"0": "quiet", "1": "busy"} and groups["harbour"]["names"] == {"2": "edge"}
+    with DuckDBEngine(str(path)) as engine:
+        S.label(engine, "meters", "named_view")
+    # reference: DuckDB's own join of the view's segment ids to the names given
+    got = dict(fetch_rows(path, "SELECT DISTINCT segment, segment_name FROM named_view WHERE grp = 'dune' AND segment IN (0, 1)",
+                          read_only=True))
+    assert got == {0: "quiet", 1: "busy"}
+    assert fetch_rows(path, "SELECT DISTINCT segment_name FROM named_view WHERE grp = 'harbour' AND segment = 2", read_only=True) == [("edge",)]

@@ -194,6 +194,8 @@ def segment_groups(
     for r in runs:
         entry = group_entry(r, columns)
         entry["ids"], entry["next_id"] = _stable_ids(old_entries.get(r.value), entry, new_segment_shift)
+        if (old_entries.get(r.value) or {}).get("names"):  # names follow the ids, as a plain store's do
+            entry["names"] = dict(old_entries[r.value]["names"])
         fresh[r.value] = entry
     entries = [fresh.get(v, old_entries.get(v)) for v, cells, _, _ in parts if cells.m and (v in fresh or v in old_entries)]
     usable = sum(int(round(c.n.sum())) for _, c, _, _ in parts)
