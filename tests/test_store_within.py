@@ -331,3 +331,23 @@ def test_naming_a_within_store_group_names_its_segments_and_the_names_survive_re
                           read_only=True))
     assert got == {0: "quiet", 1: "busy"}
     assert fetch_rows(path, "SELECT DISTINCT segment_name FROM named_view WHERE grp = 'harbour' AND segment = 2", read_only=True) == [("edge",)]
+
+
+@pytest.mark.parametrize("passes", [0, 3])
+def test_a_within_store_claims_no_pass_needed_only_when_its_labels_match_its_sizes(tmp_path, passes):
+    path = within_days_table(tmp_path / "coarse.duckdb")
+    said = []
+    with DuckDBEngine(str(path)) as engine:  # coarse cells (budget 200): some straddle harbour's segment boundaries
+        _, model = S.build(engine, SOURCE, COLUMNS, PARTS, Settings(k=3, cell_budget=200, refine_passes=passes, within="grp"),
+                           progress=lambda stage, text: said.append(f"{stage}: {text}"))
+        S.label(engine, "meters", "coarse_labels", materialize=True)
+    refine = [s for s in said if s.startswith("refine")]
+    # reference: DuckDB's own count of each group's labelled rows per segment
+    counts = {(g, s): n for g, s, n in fetch_rows(path, "SELECT coalesce(grp, 'NULL'), segment, count(*) FROM coarse_labels "
+                                                        "GROUP BY 1, 2", read_only=True)}
+    match = all([counts.get((g["name"], i), 0) for i in g["ids"]] == g["sizes"] for g in model.within["groups"])
+    if passes == 0:
+        assert refine and "no pass run" in refine[0] and not any("no pass needed" in s for s in refine)
+        assert not match  # cell-level estimates, as the message says (by construction of the coarse grid)
+    else:
+        assert match and not any("no pass run" in s for s in refine)

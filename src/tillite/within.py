@@ -377,7 +377,10 @@ def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within
         elif (r.stats.n > 0).all():
             boxes = CellBoxes.of_grid(r.grid or grid, r.keys, r.std, r.cell_labels)
             r.done = boxes is not None and boxes.all_settled(r.stats.centroids, r.std.weights)
-    if all(r.done for r in runs):
+    if settings.refine_passes == 0:  # nothing checked: a cell's rows all take its segment, a row's label may not
+        progress("refine", "no pass run (refine passes 0): each group's sizes and SSE are its cells' estimates; labels "
+                           "assign each row to its nearest centroid, so their counts may differ")
+    elif all(r.done for r in runs):
         progress("refine", "no pass needed: every group's cells lie wholly nearest their own segments' centroids")
     for p in range(1, settings.refine_passes + 1):
         if all(r.done for r in runs):
