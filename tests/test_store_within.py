@@ -351,3 +351,34 @@ def test_a_within_store_claims_no_pass_needed_only_when_its_labels_match_its_siz
         assert not match  # cell-level estimates, as the message says (by construction of the coarse grid)
     else:
         assert match and not any("no pass run" in s for s in refine)
+
+
+def test_a_within_store_build_and_refresh_say_what_their_counts_count_in_stage_order(tmp_path):
+    path = within_days_table(tmp_path / "counts.duckdb")
+    built = run("store", "build", path, "-t", "meters", "-c", "a,b,c", "--partition-by", "day", "--k", 3, "--within", "grp",
+                "--cell-budget", 200)
+    assert built.exit_code == 0, built.output
+    # reference: DuckDB's own count of the (group, cell) pairs in the cells table
+    pairs = fetch_rows(path, "SELECT count(*) FROM (SELECT DISTINCT grp, k0, k1, k2 FROM tillite_cells_meters WHERE k0 IS NOT NULL)",
+                       read_only=True)[0][0]
+    assert f"6 partitions -> {pairs:,} (group, cell) pairs" in built.output
+    stages = [line.split(":")[0] for line in built.output.splitlines() if line.startswith("[tillite]")]
+    assert stages.index("[tillite] second phase") < stages.index("[tillite] refine") < stages.index("[tillite] groups")
+    status = run("store", "status", path, "--store", "meters")
+    assert f"cells: {pairs:,} (group, cell) pairs" in status.output
+    run_sql(path, "UPDATE meters SET a = a + 1 WHERE day = 2", "INSERT INTO meters SELECT a, b, c, grp, truth, 99, id FROM meters WHERE day = 1")
+    refreshed = run("refresh", path, "--store", "meters")
+    assert refreshed.exit_code == 0, refreshed.output
+    assert "2 partition(s) summarised (1 new, 1 changed), 0 vanished partition(s) dropped" in refreshed.output
+
+
+def test_a_constant_group_in_a_within_store_gets_one_warning(tmp_path):
+    path = within_days_table(tmp_path / "flat.duckdb")
+    run_sql(path, "INSERT INTO meters SELECT 1.0, 2.0, 3.0, 'flat', 0, day, id + 100000 FROM meters WHERE grp = 'dune'")
+    with DuckDBEngine(str(path)) as engine, warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        info, model = S.build(engine, SOURCE, COLUMNS, PARTS, Settings(k=3, cell_budget=300, within="grp"))
+    said = [str(w.message) for w in caught] + list(info.warnings)
+    flat = [w for w in said if "flat" in w]
+    assert len(flat) == 1 and "nothing to segment on" in flat[0], said
+    assert groups_of(model)["flat"]["k"] == 1  # reference: numpy's unique rows of the group, by construction one

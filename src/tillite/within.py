@@ -306,7 +306,8 @@ def run_group(value: str | None, cells_grid: CF, keys: np.ndarray, skipped: int,
     name, notes = group_name(value), []
     cells, std, degenerate = standardise_group(cells_grid, grid, columns, settings, weights, name, notes, indicator_groups)
     filled = int((cells.n > 0).sum())
-    local, k = group_settings(settings, 1 if degenerate else filled, name, notes)
+    # a group with nothing to segment on was warned about once, by standardise_group
+    local, k = (settings, 1) if degenerate else group_settings(settings, filled, name, notes)
     if degenerate or (k == 1 and not local.k_candidates):
         labels = np.zeros(cells.m, dtype=np.int64)
         cf = F.group_sum(cells, labels, 1)

@@ -112,7 +112,8 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
             click.echo(json.dumps(st, indent=2, default=str))
             return
         click.echo(f"store {st['store']} on {st['source']} ({', '.join(st['columns'])})")
-        click.echo(f"partitions: {st['partitions']:,}; rows: {st['rows']:,} ({st['skipped_rows']:,} skipped); cells: {st['cells']:,}")
+        click.echo(f"partitions: {st['partitions']:,}; rows: {st['rows']:,} ({st['skipped_rows']:,} skipped); cells: {st['cells']:,}"
+                   + (f" {st['cells_counted']}" if st.get("cells_counted", "grid cells") != "grid cells" else ""))
         found = {False: " (found no change)", True: "", None: ""}[st["last_refresh_found_change"]]
         click.echo(f"built {st['built_at']}; last refresh {st['last_refresh'] or 'never'}{found}; last summarised {st['last_summarised']}")
         click.echo(f"grid: width {st['grid']['width']:.4g} on {st['grid']['axes_count']} {'axis' if st['grid']['axes_count'] == 1 else 'axes'}; "
