@@ -382,3 +382,11 @@ def test_a_constant_group_in_a_within_store_gets_one_warning(tmp_path):
     flat = [w for w in said if "flat" in w]
     assert len(flat) == 1 and "nothing to segment on" in flat[0], said
     assert groups_of(model)["flat"]["k"] == 1  # reference: numpy's unique rows of the group, by construction one
+
+
+@pytest.mark.parametrize("k", ["auto", "2..5"])
+def test_store_build_and_refresh_refuse_a_k_that_is_not_one_number_in_one_line(store_db, k):
+    path, _ = store_db
+    built = run("store", "build", path, "-t", "meters", "-c", "a,b,c", "--partition-by", "day", "--k", k, "--store", "other", "-q")
+    assert_one_error_line(built, "--k", "one number", "segment --k auto", code=2)
+    assert_one_error_line(run("refresh", path, "--store", "meters", "--k", k), "--k", "one number", code=2)
