@@ -275,3 +275,118 @@ def test_within_with_categorical_columns_is_refused_by_a_store_in_one_line(tmp_p
         S.build(engine, SOURCE, COLUMNS, PARTS, Settings(k=2, within="grp", categorical=("grp",)))
     text = str(caught.value)
     assert "\n" not in text and "categorical" in text
+
+
+def test_report_of_a_within_store_has_one_section_per_group_like_a_segment_within_model(store_db, tmp_path):
+    path, model = store_db
+    refresh_store(path, force=True)
+    for fmt in ("md", "html", "json"):
+        out = tmp_path / f"srep.{fmt}"
+        result = run("report", path, "--store", "meters", "--by", "grp", "--format", fmt, "--out", out, "-q")
+        assert result.exit_code == 0, result.output
+    content = json.loads((tmp_path / "srep.json").read_text())
+    assert [g["group"] for g in content["groups"]] == ["dune", "harbour", "NULL"]
+    # reference: DuckDB's own counts of each group's rows
+    counts = dict(fetch_rows(path, "SELECT coalesce(grp, 'NULL'), count(*) FROM meters GROUP BY 1", read_only=True))
+    for g in content["groups"]:
+        assert sum(s["rows"] for s in g["report"]["segments"]) == counts[g["group"]]
+        assert g["report"]["map"]  # the map each group's build or refresh kept
+    assert [h["event"] for h in content["history"]] == ["build", "refresh"]
+    assert all(h["k"] == 12 for h in content["history"])  # 3 groups x k=4, by construction
+    assert "## grp = dune" in (tmp_path / "srep.md").read_text() and "Refresh history" in (tmp_path / "srep.md").read_text()
+
+
+def test_store_status_history_of_a_within_store_counts_every_groups_segments_and_the_largest_move_of_all(store_db):
+    path, _ = store_db
+    run_sql(path, "UPDATE meters SET a = a + 3 WHERE day = 3 AND grp = 'dune'",
+            "UPDATE meters SET a = a + 0.25 WHERE day = 3 AND grp = 'harbour'")  # harbour's drift rows come last
+    report = refresh_store(path)
+    assert report.groups["resegmented"] == ["dune", "harbour"]
+    status = run("store", "status", path, "--store", "meters")
+    assert status.exit_code == 0, status.output
+    assert "12 segments in 3 groups" in status.output and "k=0" not in status.output
+    # reference: the refresh's own drift rows (every group's), their largest move
+    largest = max(d["shift_sd"] for d in report.drift if d.get("shift_sd") is not None)
+    assert f"largest centroid move {largest:.3f} sd" in status.output
+
+
+def test_naming_a_within_store_group_names_its_segments_and_the_names_survive_refreshes(store_db):
+    path, model = store_db
+    named = run("name", path, "--store", "meters", "--group", "dune", "0", "quiet", "1", "busy")
+    assert named.exit_code == 0, named.output
+    assert "group dune" in named.output and '0: "quiet"' in named.output
+    assert_one_error_line(run("name", path, "--store", "meters", "0", "x"), "--group", "dune, harbour, NULL")
+    assert_one_error_line(run("name", path, "--store", "meters", "--group", "reef", "0", "x"), "--group reef", "dune")
+    run("name", path, "--store", "meters", "--group", "harbour", "2", "edge")
+    # a refresh re-segmenting dune only: harbour's entry is kept, dune's names follow its matched ids
+    run_sql(path, "UPDATE meters SET a = a + 0.25 WHERE day = 3 AND grp = 'dune'")
+    report = refresh_store(path)
+    assert report.groups["resegmented"] == ["dune"]
+    groups = groups_of(report.model)
+    assert groups["dune"]["names"] == {"0": "quiet", "1": "busy"} and groups["harbour"]["names"] == {"2": "edge"}
+    with DuckDBEngine(str(path)) as engine:
+        S.label(engine, "meters", "named_view")
+    # reference: DuckDB's own join of the view's segment ids to the names given
+    got = dict(fetch_rows(path, "SELECT DISTINCT segment, segment_name FROM named_view WHERE grp = 'dune' AND segment IN (0, 1)",
+                          read_only=True))
+    assert got == {0: "quiet", 1: "busy"}
+    assert fetch_rows(path, "SELECT DISTINCT segment_name FROM named_view WHERE grp = 'harbour' AND segment = 2", read_only=True) == [("edge",)]
+
+
+@pytest.mark.parametrize("passes", [0, 3])
+def test_a_within_store_claims_no_pass_needed_only_when_its_labels_match_its_sizes(tmp_path, passes):
+    path = within_days_table(tmp_path / "coarse.duckdb")
+    said = []
+    with DuckDBEngine(str(path)) as engine:  # coarse cells (budget 200): some straddle harbour's segment boundaries
+        _, model = S.build(engine, SOURCE, COLUMNS, PARTS, Settings(k=3, cell_budget=200, refine_passes=passes, within="grp"),
+                           progress=lambda stage, text: said.append(f"{stage}: {text}"))
+        S.label(engine, "meters", "coarse_labels", materialize=True)
+    refine = [s for s in said if s.startswith("refine")]
+    # reference: DuckDB's own count of each group's labelled rows per segment
+    counts = {(g, s): n for g, s, n in fetch_rows(path, "SELECT coalesce(grp, 'NULL'), segment, count(*) FROM coarse_labels "
+                                                        "GROUP BY 1, 2", read_only=True)}
+    match = all([counts.get((g["name"], i), 0) for i in g["ids"]] == g["sizes"] for g in model.within["groups"])
+    if passes == 0:
+        assert refine and "no pass run" in refine[0] and not any("no pass needed" in s for s in refine)
+        assert not match  # cell-level estimates, as the message says (by construction of the coarse grid)
+    else:
+        assert match and not any("no pass run" in s for s in refine)
+
+
+def test_a_within_store_build_and_refresh_say_what_their_counts_count_in_stage_order(tmp_path):
+    path = within_days_table(tmp_path / "counts.duckdb")
+    built = run("store", "build", path, "-t", "meters", "-c", "a,b,c", "--partition-by", "day", "--k", 3, "--within", "grp",
+                "--cell-budget", 200)
+    assert built.exit_code == 0, built.output
+    # reference: DuckDB's own count of the (group, cell) pairs in the cells table
+    pairs = fetch_rows(path, "SELECT count(*) FROM (SELECT DISTINCT grp, k0, k1, k2 FROM tillite_cells_meters WHERE k0 IS NOT NULL)",
+                       read_only=True)[0][0]
+    assert f"6 partitions -> {pairs:,} (group, cell) pairs" in built.output
+    stages = [line.split(":")[0] for line in built.output.splitlines() if line.startswith("[tillite]")]
+    assert stages.index("[tillite] second phase") < stages.index("[tillite] refine") < stages.index("[tillite] groups")
+    status = run("store", "status", path, "--store", "meters")
+    assert f"cells: {pairs:,} (group, cell) pairs" in status.output
+    run_sql(path, "UPDATE meters SET a = a + 1 WHERE day = 2", "INSERT INTO meters SELECT a, b, c, grp, truth, 99, id FROM meters WHERE day = 1")
+    refreshed = run("refresh", path, "--store", "meters")
+    assert refreshed.exit_code == 0, refreshed.output
+    assert "2 partition(s) summarised (1 new, 1 changed), 0 vanished partition(s) dropped" in refreshed.output
+
+
+def test_a_constant_group_in_a_within_store_gets_one_warning(tmp_path):
+    path = within_days_table(tmp_path / "flat.duckdb")
+    run_sql(path, "INSERT INTO meters SELECT 1.0, 2.0, 3.0, 'flat', 0, day, id + 100000 FROM meters WHERE grp = 'dune'")
+    with DuckDBEngine(str(path)) as engine, warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        info, model = S.build(engine, SOURCE, COLUMNS, PARTS, Settings(k=3, cell_budget=300, within="grp"))
+    said = [str(w.message) for w in caught] + list(info.warnings)
+    flat = [w for w in said if "flat" in w]
+    assert len(flat) == 1 and "nothing to segment on" in flat[0], said
+    assert groups_of(model)["flat"]["k"] == 1  # reference: numpy's unique rows of the group, by construction one
+
+
+@pytest.mark.parametrize("k", ["auto", "2..5"])
+def test_store_build_and_refresh_refuse_a_k_that_is_not_one_number_in_one_line(store_db, k):
+    path, _ = store_db
+    built = run("store", "build", path, "-t", "meters", "-c", "a,b,c", "--partition-by", "day", "--k", k, "--store", "other", "-q")
+    assert_one_error_line(built, "--k", "one number", "segment --k auto", code=2)
+    assert_one_error_line(run("refresh", path, "--store", "meters", "--k", k), "--k", "one number", code=2)

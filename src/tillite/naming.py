@@ -89,13 +89,14 @@ def name_model_file(path: Path, given: dict[Any, Any], group: str | None = None)
     return model
 
 
-def name_store_segments(engine: Engine, store: str, given: dict[Any, Any]) -> Model:
-    """Name a store's segments and re-create its label views, in one transaction."""
+def name_store_segments(engine: Engine, store: str, given: dict[Any, Any], group: str | None = None) -> Model:
+    """Name a store's segments (of ``group``, for a --within store) and re-create its label views, in one
+    transaction."""
     from . import sqlgen
     from . import store as S
 
     info = S.load(engine, store)
-    model = apply_names(info.model, given)
+    model = apply_names(info.model, given, group)
     with engine.transaction():
         S._claim(engine, info)
         engine.execute(sqlgen.update_statement(S.STORES, {"model": model.to_json()}, sqlgen.equals_all({"store": store})))

@@ -538,7 +538,7 @@ def assemble(
 def _history_series(history: list[dict[str, Any]], ids: Sequence[int]) -> list[dict[str, Any]]:
     return [
         {"at": h["at"], "event": h["event"], "new": h["new"], "changed": h["changed"], "vanished": h["vanished"],
-         "rows": h["rows"], "sizes": {str(k): v for k, v in h["sizes"].items()},
+         "rows": h["rows"], "k": h["k"], "sizes": {str(k): v for k, v in h["sizes"].items()},
          "largest_shift": max(h["shifts"].values(), default=None), "shifts": {str(k): v for k, v in h["shifts"].items()}}
         for h in history
     ]
@@ -655,6 +655,11 @@ def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress
     missing = [c for c in by if c not in present]
     if missing:
         raise TilliteError(f"--by column {', '.join(missing)} not found in {info.source.label}; columns there: {', '.join(present)}")
+    if info.model.within:  # one section per group, each with the map its refresh kept, as `segment --within`'s file
+        content = within_report(engine, info.source, info.model, by, progress)
+        content["header"]["store"] = store
+        content["history"] = _history_series(store_history.history(engine, store), [])
+        return content
     stats, breakdowns = report_scan(engine, source, info.model, by)
     quartiles, sampled = sample_quartiles(engine, source, info.model)
     cells_grid, keys, _ = S.store_cells(engine, info.cells_table, info.grid, info.columns, S.store_categories(info))

@@ -519,7 +519,18 @@ def render_within_html(content: dict[str, Any]) -> str:
         parts.append('<dl class="header">' + "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in _group_items(g)) + "</dl>")
         sections = "\n".join(_html_sections(r, "h3")).replace('id="chart-', f'id="group-{i}-chart-')
         parts += [sections, "</details>"]
+    if content.get("history"):
+        head, rows = _within_history(content["history"])
+        parts += ["<h2>Refresh history</h2>", "<p>Segments and the largest centroid move are over all groups "
+                  "(each group's move in its own standard deviations).</p>", _table(head, rows, numeric_from=2)]
     return _page_end(parts)
+
+
+def _within_history(hist: list[dict[str, Any]]) -> tuple[list[str], list[list[Any]]]:
+    """A --within store's refresh history as one table: its segments are per group, so no per-segment columns."""
+    head = ["when", "event", "new", "changed", "vanished", "rows", "segments", "largest move (sd)"]
+    return head, [[h["at"][:19], h["event"], h["new"], h["changed"], h["vanished"], fmt(h["rows"]), fmt(h.get("k")),
+                   "–" if h["largest_shift"] is None else f"{h['largest_shift']:.3f}"] for h in hist]
 
 
 def _md_escape(text: Any) -> str:
@@ -556,6 +567,8 @@ def render_within_markdown(content: dict[str, Any]) -> str:
         lines += [f"## {_md_escape(h['within'] + ' = ' + g['group'])}", ""]
         lines += [f"- **{_md_escape(k)}**: {_md_escape(v)}" for k, v in _group_items(g)] + [""]
         lines += _md_sections(g["report"], "###")
+    if content.get("history"):
+        lines += ["## Refresh history", ""] + _md_table(*_within_history(content["history"]))
     return "\n".join(lines)
 
 

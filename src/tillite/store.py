@@ -983,7 +983,9 @@ def build(
         cells_grid, keys, skipped = store_cells(engine, cells_table, grid, columns, specs)
         if cells_grid.m == 0:
             raise InputError(f"no usable rows in {source.label}")
-        progress("cells", f"{len(fps):,} partitions -> {cells_grid.m:,} cells ({skipped:,} rows skipped), {time.perf_counter() - t1:.2f} s")
+        counted = (f"{store_groups.cell_pairs(engine, cells_table, grid, d, settings.within):,} {store_groups.CELLS_COUNTED}"
+                   if settings.within is not None else f"{cells_grid.m:,} cells")
+        progress("cells", f"{len(fps):,} partitions -> {counted} ({skipped:,} rows skipped), {time.perf_counter() - t1:.2f} s")
         if settings.within is not None:  # a model per group; ids matched per group to the previous model's
             grouped = store_groups.segment_groups(
                 engine, source, columns, cells_table, grid, settings, str(group_type), source.label, progress,
@@ -1146,7 +1148,8 @@ def refresh(
             if recompute and specs:
                 report.other_rows = _other_rows(engine, info.cells_table, specs, recompute)
             report.seconds["cells"] = time.perf_counter() - t1
-            progress("cells", f"{len(recompute)} partition(s) summarised, {len(gone)} dropped, {report.seconds['cells']:.2f} s")
+            progress("cells", f"{len(recompute)} partition(s) summarised ({len(new)} new, {len(changed)} changed), "
+                              f"{len(vanished)} vanished partition(s) dropped, {report.seconds['cells']:.2f} s")
             # 4. their bookkeeping rows
             stale = gone + touched_meta
             if stale:
@@ -1562,7 +1565,9 @@ def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, 
         "rows": int(sum(p["rows"] for p in parts)),
         "usable_rows": int(usable),
         "skipped_rows": skipped,
-        "cells": int(cells_grid.m),
+        "cells": int(cells_grid.m) if not info.model.within else store_groups.cell_pairs(
+            engine, info.cells_table, info.grid, len(info.columns), info.model.within["column"]),
+        "cells_counted": "grid cells" if not info.model.within else store_groups.CELLS_COUNTED,
         "grid": {**info.grid.to_dict(), "axes_count": info.grid.dims},
         "outside_share": share,
         "built_at": info.built_at,

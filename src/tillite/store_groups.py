@@ -34,7 +34,7 @@ from .within import (
     overall_standardisation, refine_groups, run_grouped_profile, split_cells, too_many_groups, within_model,
 )
 
-__all__ = ["GROUP_KEY", "GroupsOutcome", "check", "frozen_grid", "cells_columns", "cells_statement", "GroupCells", "group_cells", "changed_groups",
+__all__ = ["GROUP_KEY", "CELLS_COUNTED", "cell_pairs", "GroupsOutcome", "check", "frozen_grid", "cells_columns", "cells_statement", "GroupCells", "group_cells", "changed_groups",
            "segment_groups", "status_fields", "report_lines"]
 
 GROUP_KEY = within_sql.GROUP_KEY
@@ -79,6 +79,15 @@ def merged_groups(engine: Engine, cells_table: str, grid: Grid, d: int, within: 
     if len(parts) > MAX_GROUPS:
         raise too_many_groups(len(parts), within, "table")
     return parts
+
+
+def cell_pairs(engine: Engine, cells_table: str, grid: Grid, d: int, within: str) -> int:
+    """The (group, cell) pairs holding rows: the cells the groups are segmented on, summed over the groups (a
+    cell two groups share counts twice; the skipped rows' cell not at all)."""
+    return sum(int((cells.n > 0).sum()) for _, cells, _, _ in merged_groups(engine, cells_table, grid, d, within))
+
+
+CELLS_COUNTED = "(group, cell) pairs"
 
 
 @dataclass
@@ -157,15 +166,16 @@ def _stable_ids(before: dict[str, Any] | None, entry: dict[str, Any], shift: flo
                           np.where(sd > 0, sd, 1.0), shift)
 
 
-def _coarse_warnings(parts: Sequence[Part], settings: Settings) -> list[str]:
+def _coarse_warnings(runs: Sequence[Any], settings: Settings) -> list[str]:
     """Groups that fill too few cells of the frozen grid for their segments (`segment --within` would give
-    them a grid of their own)."""
+    them a grid of their own).  Not said of a group with nothing to segment on: its one warning (from
+    ``within.standardise_group``) says so, and no refine pass would split it."""
     k_most = max(settings.k_candidates or (settings.k,))
     return [
-        f"group {group_name(value)} fills only {int((cells.n > 0).sum()):,} cells of the store's frozen grid for "
+        f"group {r.name} fills only {int((r.cells.n > 0).sum()):,} cell(s) of the store's frozen grid for "
         f"k={k_most}: its segments come from coarse cells (its spread is far below the table's); refine passes "
         "(--refine-passes) assign its rows exactly"
-        for value, cells, _, _ in parts if cells.m and needs_own_grid(cells, k_most)
+        for r in runs if r.cells.m and r.std.weights.sum() > 0 and needs_own_grid(r.cells, k_most)
     ]
 
 
@@ -185,15 +195,18 @@ def segment_groups(
     parts = merged_groups(engine, cells_table, grid, d, within)
     old_entries = {g["value"]: g for g in old.within.get("groups", [])} if old is not None and old.within else {}
     redo = [p for p in parts if touched is None or p[0] in touched or p[0] not in old_entries]
-    coarse = _coarse_warnings(redo, settings)
     weights = settings.column_weights(columns)
     runs = group_runs(redo, grid, columns, settings, weights, where, progress)
+    coarse = _coarse_warnings(runs, settings)
     t_second = time.perf_counter() - t0
+    progress("second phase", f"{len(runs):,} group(s) segmented on their merged cells, {t_second:.2f} s")
     passes, refine_times = refine_groups(engine, source, columns, within, group_type, runs, grid, settings, progress) if runs else ([], {})
     fresh = {}
     for r in runs:
         entry = group_entry(r, columns)
         entry["ids"], entry["next_id"] = _stable_ids(old_entries.get(r.value), entry, new_segment_shift)
+        if (old_entries.get(r.value) or {}).get("names"):  # names follow the ids, as a plain store's do
+            entry["names"] = dict(old_entries[r.value]["names"])
         fresh[r.value] = entry
     entries = [fresh.get(v, old_entries.get(v)) for v, cells, _, _ in parts if cells.m and (v in fresh or v in old_entries)]
     usable = sum(int(round(c.n.sum())) for _, c, _, _ in parts)
@@ -216,8 +229,8 @@ def segment_groups(
     }, warnings=coarse)
     if old is not None:
         _group_drift(out, old, {r.value: r for r in runs}, drift_threshold)
-    progress("second phase", f"{len(fresh):,} group(s) re-segmented, {out.groups['kept']:,} kept as they were, "
-                             f"{time.perf_counter() - t0:.2f} s")
+    progress("groups", f"{len(fresh):,} group(s) re-segmented, {out.groups['kept']:,} kept as they were, "
+                       f"{time.perf_counter() - t0:.2f} s")
     return out
 
 

@@ -44,10 +44,10 @@ def record(engine: Engine, store: str, event: str, model: Model, report: Any = N
     engine.execute(sqlgen.create_table_statement(HISTORY, HISTORY_COLUMNS))
     if event == "build":
         engine.execute(sqlgen.delete_statement(HISTORY, sqlgen.equals_all({"store": store})))
-    sizes = {str(sid): int(n) for sid, n in zip(model.segment_ids(), model.sizes)}
+    sizes, k = _sizes(model)
     shifts = {}
-    if report is not None:
-        shifts = {str(d["segment"]): d["shift_sd"] for d in report.drift if d.get("shift_sd") is not None}
+    if report is not None:  # a --within store's drift rows name their group: keyed "group:segment", none overwritten
+        shifts = {_key(d.get("group"), d["segment"]): d["shift_sd"] for d in report.drift if d.get("shift_sd") is not None}
     row = (
         store,
         datetime.now(timezone.utc).isoformat(timespec="microseconds"),
@@ -56,11 +56,34 @@ def record(engine: Engine, store: str, event: str, model: Model, report: Any = N
         len(report.changed) if report is not None else 0,
         len(report.vanished) if report is not None else 0,
         int(model.rows),
-        int(model.k),
+        k,
         json.dumps(sizes),
         json.dumps(shifts),
     )
     engine.execute(sqlgen.insert_values_statement(HISTORY, [row]))
+
+
+def _key(group: str | None, segment: Any) -> str:
+    """A segment's key in a history row: its id, or "group:id" for a --within store's segment."""
+    return str(segment) if group is None else f"{group}:{segment}"
+
+
+def _sizes(model: Model) -> tuple[dict[str, int], int]:
+    """Rows per segment and the number of segments; a --within store's are over all its groups."""
+    if not model.within:
+        return {str(sid): int(n) for sid, n in zip(model.segment_ids(), model.sizes)}, int(model.k)
+    from .model import group_models
+
+    sizes = {_key(g["name"], sid): int(n) for g, one in group_models(model) for sid, n in zip(one.segment_ids(), one.sizes)}
+    return sizes, len(sizes)
+
+
+def _id(key: str) -> int | str:
+    """A stored key back: an int id, or a --within store's "group:id" as it is."""
+    try:
+        return int(key)
+    except ValueError:
+        return key
 
 
 def forget(engine: Engine, store: str, drop_table: bool) -> None:
@@ -86,8 +109,8 @@ def history(engine: Engine, store: str, last: int | None = None) -> list[dict[st
             "vanished": int(got["vanished_parts"][i]),
             "rows": int(got["rows"][i]),
             "k": int(got["k"][i]),
-            "sizes": {int(k): int(v) for k, v in json.loads(str(got["sizes"][i])).items()},
-            "shifts": {int(k): float(v) for k, v in json.loads(str(got["shifts"][i])).items()},
+            "sizes": {_id(k): int(v) for k, v in json.loads(str(got["sizes"][i])).items()},
+            "shifts": {_id(k): float(v) for k, v in json.loads(str(got["shifts"][i])).items()},
         })
     rows.sort(key=lambda r: r["at"])
     return rows[-last:] if last else rows
@@ -99,8 +122,10 @@ def describe(rows: list[dict[str, Any]]) -> list[str]:
     for r in rows:
         largest = max(r["shifts"].values(), default=None)
         moved = "-" if largest is None or not np.isfinite(largest) else f"{largest:.3f} sd"
+        grouped = {str(key).rpartition(":")[0] for key in r["sizes"] if isinstance(key, str)}
+        k = f"{r['k']} segments in {len(grouped)} groups" if grouped else f"k={r['k']}"
         out.append(
             f"  {r['at'][:19]}  {r['event']:<7}  {r['new']} new, {r['changed']} changed, {r['vanished']} vanished; "
-            f"{r['rows']:,} rows, k={r['k']}; largest centroid move {moved}"
+            f"{r['rows']:,} rows, {k}; largest centroid move {moved}"
         )
     return out

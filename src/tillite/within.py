@@ -320,7 +320,8 @@ def run_group(value: str | None, cells_grid: CF, keys: np.ndarray, skipped: int,
     name, notes = group_name(value), []
     cells, std, degenerate = standardise_group(cells_grid, grid, columns, settings, weights, name, notes, indicator_groups)
     filled = int((cells.n > 0).sum())
-    local, k = group_settings(settings, 1 if degenerate else filled, name, notes)
+    # a group with nothing to segment on was warned about once, by standardise_group
+    local, k = (settings, 1) if degenerate else group_settings(settings, filled, name, notes)
     if degenerate or (k == 1 and not local.k_candidates):
         labels = np.zeros(cells.m, dtype=np.int64)
         cf = F.group_sum(cells, labels, 1)
@@ -391,7 +392,10 @@ def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within
         elif (r.stats.n > 0).all():
             boxes = CellBoxes.of_grid(r.grid or grid, r.keys, r.std, r.cell_labels)
             r.done = boxes is not None and boxes.all_settled(r.stats.centroids, r.std.weights)
-    if all(r.done for r in runs):
+    if settings.refine_passes == 0:  # nothing checked: a cell's rows all take its segment, a row's label may not
+        progress("refine", "no pass run (refine passes 0): each group's sizes and SSE are its cells' estimates; labels "
+                           "assign each row to its nearest centroid, so their counts may differ")
+    elif all(r.done for r in runs):
         progress("refine", "no pass needed: every group's cells lie wholly nearest their own segments' centroids")
     for p in range(1, settings.refine_passes + 1):
         if all(r.done for r in runs):

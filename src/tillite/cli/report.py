@@ -85,8 +85,8 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
 @click.argument("pairs", nargs=-1, metavar="[ID NAME]...")
 @click.option("--names", "names_file", type=click.Path(dir_okay=False), help='JSON file of names: {"4": "probable leak", ...}.')
 @click.option("--store", "store_name", help="Name the segments of a summary store instead: MODEL is then its database.")
-@click.option("--group", "group", metavar="GROUP", help="For a model of segments within groups (segment --within): the "
-              "group whose segments are named, as `tillite show` lists it (NULL for the NULL group).")
+@click.option("--group", "group", metavar="GROUP", help="For a model or store of segments within groups (--within): the "
+              "group whose segments are named, as `tillite show` or `store status` lists it (NULL for the NULL group).")
 def name_command(target, pairs, names_file, store_name, group) -> None:
     """Give segments names: `tillite name model.json 4 "probable leak"`.
 
@@ -101,14 +101,12 @@ def name_command(target, pairs, names_file, store_name, group) -> None:
         raise click.UsageError("give segment ids and names in pairs: ID NAME [ID NAME ...]")
     if not pairs and not names_file:
         raise click.UsageError("give ID NAME, or --names FILE")
-    if group is not None and store_name:
-        raise click.UsageError("--group goes with a model file, not --store")
     with user_errors():
         given = naming.read_names_file(names_file) if names_file else {}
         given.update({pairs[i]: pairs[i + 1] for i in range(0, len(pairs), 2)})
         if store_name:
             with open_store_database(target, writable=True) as engine:
-                model = naming.name_store_segments(engine, store_name, given)
+                model = naming.name_store_segments(engine, store_name, given, group)
             where = f"store {store_name} (label views re-created)"
         else:
             model = naming.name_model_file(Path(target), given, group)

@@ -24,6 +24,21 @@ open_database, open_source, is_file_source = (
 __all__ = ["store_group", "refresh_command", "open_store_database"]
 
 
+def _store_k(ctx: click.Context, param: click.Parameter, value: str | None) -> int | None:
+    """--k of a store: one number.  'auto' and ranges are refused: a store keeps k fixed so that every refresh
+    matches its segments to the last ones and keeps their ids."""
+    if value is None:
+        return None
+    text = value.strip().lower()
+    if text == "auto" or ".." in text:
+        raise click.BadParameter(f"a store takes one number, not {value!r}: it keeps k fixed so refreshes keep segment ids; "
+                                 "choose k first with `tillite segment --k auto` on the table, then give that number")
+    try:
+        return int(text)
+    except ValueError:
+        raise click.BadParameter(f"expected a whole number, got {value!r}") from None
+
+
 @click.group("store")
 def store_group() -> None:
     """Keep per-partition summaries in the database and segments current as partitions change."""
@@ -38,7 +53,8 @@ def store_group() -> None:
               help="Partition column(s), comma-separated; for a Parquet/CSV SOURCE each file is a partition.")
 @click.option("--store", "store_name", help="Store name (default: the table name, or the folder of the files).")
 @click.option("--db", "database", help="For a Parquet/CSV SOURCE: the DuckDB file that keeps the store (created if missing).")
-@parameter_option("k", type=int, required=True, help="Number of segments.")
+@parameter_option("k", type=str, callback=_store_k, required=True,
+                  help="Number of segments (one number: a store keeps it, so refreshes keep segment ids).")
 @parameter_option("method", help="Second phase on the merged cells: kmeans or ward, as in `tillite segment`; refreshes keep "
                                  "it. density is refused (its cell map would miss rows arriving in new cells).")
 @parameter_option("scaling", help="Put columns on a common scale (z-scores) before measuring distances, or use them as they are.")
@@ -121,7 +137,8 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
             click.echo(json.dumps(st, indent=2, default=str))
             return
         click.echo(f"store {st['store']} on {st['source']} ({', '.join(_shown_columns(st))})")
-        click.echo(f"partitions: {st['partitions']:,}; rows: {st['rows']:,} ({st['skipped_rows']:,} skipped); cells: {st['cells']:,}")
+        click.echo(f"partitions: {st['partitions']:,}; rows: {st['rows']:,} ({st['skipped_rows']:,} skipped); cells: {st['cells']:,}"
+                   + (f" {st['cells_counted']}" if st.get("cells_counted", "grid cells") != "grid cells" else ""))
         found = {False: " (found no change)", True: "", None: ""}[st["last_refresh_found_change"]]
         click.echo(f"built {st['built_at']}; last refresh {st['last_refresh'] or 'never'}{found}; last summarised {st['last_summarised']}")
         click.echo(f"grid: width {st['grid']['width']:.4g} on {st['grid']['axes_count']} {'axis' if st['grid']['axes_count'] == 1 else 'axes'}; "
@@ -154,7 +171,7 @@ def _shown_columns(st: dict) -> list[str]:
 @click.command("refresh")
 @click.argument("source", metavar="DATABASE")
 @click.option("--store", "store_name", required=True, help="Store name.")
-@parameter_option("k", type=int, help="Change the number of segments.")
+@parameter_option("k", type=str, callback=_store_k, help="Change the number of segments (one number).")
 @parameter_option("drift_threshold")
 @parameter_option("new_segment_shift")
 @click.option("--force", is_flag=True, help="Re-segment even when no partition changed.")
