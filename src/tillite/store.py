@@ -983,7 +983,7 @@ def build(
         cells_grid, keys, skipped = store_cells(engine, cells_table, grid, columns, specs)
         if cells_grid.m == 0:
             raise InputError(f"no usable rows in {source.label}")
-        counted = (f"{store_groups.cell_pairs(engine, cells_table, grid, d, settings.within):,} {store_groups.CELLS_COUNTED}"
+        counted = (f"{store_groups.cell_pairs(engine, cells_table, grid, len(columns), settings.within):,} {store_groups.CELLS_COUNTED}"
                    if settings.within is not None else f"{cells_grid.m:,} cells")
         progress("cells", f"{len(fps):,} partitions -> {counted} ({skipped:,} rows skipped), {time.perf_counter() - t1:.2f} s")
         if settings.within is not None:  # a model per group; ids matched per group to the previous model's
