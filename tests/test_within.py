@@ -159,6 +159,22 @@ def test_k_auto_chooses_per_group(tmp_path):
     assert all(g["k_choice"]["k"] == g["k"] for g in model.within["groups"])
 
 
+def test_k_auto_says_one_line_per_group_and_reruns_its_finalists_with_every_restart(tmp_path):
+    data = grouped_blobs({"three": (3_000, 3, 0.0, 1.0), "five": (5_000, 5, 0.0, 1.0)}, seed=20)
+    write_table(tmp_path / "auto.duckdb", "t", data)
+    said: list[tuple[str, str]] = []
+    with DuckDBEngine(str(tmp_path / "auto.duckdb"), read_only=True) as engine:
+        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(k=0, k_candidates=tuple(range(1, 13)), within="grp"),
+                        progress=lambda stage, message: said.append((stage, message)))
+    choose = [m for stage, m in said if stage == "choose k"]
+    assert len(choose) == 2 and all("\n" not in m for m in choose), choose
+    # outside reference: the number of centres make_blobs generated in each group
+    assert {g["name"]: g["k"] for g in model.within["groups"]} == {"three": 3, "five": 5}
+    for g in model.within["groups"]:  # the chosen k's row is a full run: its SSE is the group's cell-level k-means SSE
+        row = next(r for r in g["k_choice"]["table"] if r["k"] == g["k"])
+        assert row["sse"] == pytest.approx(g["cell_sse"], rel=1e-9)
+
+
 def test_model_file_round_trips_and_show_lists_groups_with_null_named(within_db, tmp_path):
     out = tmp_path / "m.json"
     res = CliRunner().invoke(main, ["segment", str(within_db), "-t", "meters", "-c", "a,b,c", "--k", "4", "--within", "grp",
