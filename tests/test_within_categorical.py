@@ -20,7 +20,7 @@ from tillite.model import Model
 from tillite.pipeline import Settings, label, segment
 from tillite.sqlgen import Source
 
-from conftest import run_cli as run, write_table
+from conftest import altered_copy, assert_one_error_line, run_cli as run, write_table
 
 NUMERIC = ["a", "b"]
 #: passes until Lloyd's fixed point, so the --within run and a run on a group alone end at the same centroids
@@ -238,3 +238,29 @@ def test_group_with_a_tiny_spread_gets_its_own_grid_keyed_by_category_and_equals
     np.testing.assert_allclose(by_column_name(model.columns, dot["centroids"], alone.columns),
                                by_column_name(alone.columns, alone.centroids, alone.columns), rtol=1e-6, atol=1e-9)
     assert dot["sse"] == pytest.approx(alone.sse, rel=1e-6)
+
+
+@pytest.mark.parametrize("dropped, role", [("district", "categorical"), ("grp", "--within group"), ("b", "numeric")])
+def test_label_and_report_on_a_table_without_a_model_column_name_it_and_the_model_file(
+        grouped_mixed_db, grouped_mixed_model, tmp_path, dropped, role):
+    db = altered_copy(grouped_mixed_db, tmp_path / "lacks.duckdb", f"CREATE TABLE lacks AS SELECT * EXCLUDE ({dropped}) FROM t")
+    model_file = tmp_path / "wc.json"
+    grouped_mixed_model.write(model_file)
+    # outside reference: DuckDB's own listing of the table's columns (the dropped one is not there)
+    labelled = run("label", db, "-t", "lacks", "--model", model_file, "--into", "lab")
+    assert_one_error_line(labelled, f"{role} column {dropped} of model {model_file}", "not found in lacks")
+    reported = run("report", db, "-t", "lacks", "--model", model_file, "-o", tmp_path / "r.html")
+    assert_one_error_line(reported, f"{role} column {dropped} of model {model_file}", "not found in lacks")
+
+
+def test_report_with_a_model_of_another_table_says_so_in_a_warning_line(grouped_mixed_db, grouped_mixed_model, tmp_path):
+    db = altered_copy(grouped_mixed_db, tmp_path / "other.duckdb", "CREATE TABLE copied AS SELECT * FROM t")
+    model_file = tmp_path / "wc.json"
+    grouped_mixed_model.write(model_file)
+    other = run("report", db, "-t", "copied", "--model", model_file, "-o", tmp_path / "r.html", "-q")
+    same = run("report", db, "-t", "t", "--model", model_file, "-o", tmp_path / "s.html", "-q")
+    assert other.exit_code == 0 and same.exit_code == 0, (other.output, same.output)
+    # outside reference: the model file's own source field (t) against the table given (copied)
+    warned = [ln for ln in other.stderr.splitlines() if ln.startswith("warning:")]
+    assert len(warned) == 1 and "built on t, not copied" in warned[0], other.stderr
+    assert not [ln for ln in same.stderr.splitlines() if ln.startswith("warning:")], same.stderr

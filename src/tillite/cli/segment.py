@@ -110,6 +110,9 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
             return
         model = Model.read(model_path)
         with open_with_options(source, table, writable=True) as (engine, src):
+            from ..stages import check_model_columns
+
+            check_model_columns(engine, src, model, f"model {model_path}")
             t0 = time.perf_counter()
             made = _label_explained(engine, src, model, into, materialize, replace)
         progress_printer(quiet)("label", f"{made} from {src.label}, {time.perf_counter() - t0:.2f} s")
