@@ -211,6 +211,23 @@ def test_a_text_group_null_and_the_null_group_are_named_apart(tmp_path):
     assert "== grp = 'NULL'" in model.describe() and "== grp = NULL" in model.describe()
 
 
+def test_empty_and_blank_groups_are_shown_quoted_in_show_report_and_name(tmp_path):
+    data = grouped_blobs({"": (300, 2, 0.0, 1.0), " ": (300, 2, 20.0, 1.0), "north": (300, 2, 40.0, 1.0)})
+    db = write_table(tmp_path / "blank.duckdb", "meters", data)
+    out = tmp_path / "m.json"
+    assert run("segment", db, "-t", "meters", "-c", "a,b,c", "--k", "2", "--within", "grp", "-o", out, "-q").exit_code == 0
+    # outside reference: the group texts written to the table ('' and ' ', as DuckDB stores them)
+    shown = run("show", out).stdout
+    assert "== grp = ''" in shown and "== grp = ' '" in shown and "\n  ''" in shown and "\n  ' '" in shown, shown
+    md = tmp_path / "r.md"
+    assert run("report", db, "-t", "meters", "--model", out, "--format", "md", "-o", md, "-q").exit_code == 0
+    text = md.read_text()
+    assert "grp = ''" in text and "grp = ' '" in text, text
+    named = run("name", out, "--group", "' '", "0", "steady")
+    assert named.exit_code == 0, named.output
+    assert "group ' '" in named.stdout and "group :" not in named.stdout, named.stdout
+
+
 def test_without_within_the_model_file_keeps_its_single_model_shape(within_db):
     with DuckDBEngine(str(within_db), read_only=True) as engine:
         model = segment(engine, Source.of_table("only_dune"), COLUMNS, Settings(k=4))

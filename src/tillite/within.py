@@ -44,10 +44,11 @@ NULL_GROUP_NAME = "NULL"
 
 
 def group_name(value: str | None) -> str:
-    """The NULL group is NULL; a text value 'NULL' is shown quoted, so the two read apart."""
+    """The NULL group is NULL; a text value 'NULL', an empty value and one with blanks at either end are shown
+    quoted (``''``, ``' '``), so they read apart from NULL and are seen at all."""
     if value is None:
         return NULL_GROUP_NAME
-    return f"'{value}'" if value == NULL_GROUP_NAME else value
+    return f"'{value}'" if value == NULL_GROUP_NAME or value != value.strip() or not value else value
 
 
 def group_value_of_key(key: str) -> str | None:
