@@ -284,7 +284,7 @@ def many_groups_db(tmp_path_factory):
 
 @pytest.mark.parametrize("extra, needles", [
     (["--within", "a"], ["--within", "a", "also a segmenting column"]),
-    (["--within", "nope"], ["--within", "nope", "not found", "columns there"]),
+    (["--within", "nope"], ["--within", "nope", "not found", "columns there", "a (DOUBLE)"]),
     (["--within", "id"], ["--within", "id", "100,000", "at most 1,000"]),
     (["--within", "kind", "--method", "density"], ["--within", "--method", "density"]),
     (["--within", "kind", "--categorical", "kind"], ["--within", "--categorical"]),
@@ -292,6 +292,21 @@ def many_groups_db(tmp_path_factory):
 def test_bad_within_gives_one_error_line(many_groups_db, extra, needles):
     k = [] if "density" in extra else ["--k", 3]
     assert_one_error_line(run("segment", many_groups_db, "-t", "t", "-c", "a,b,c", *k, *extra, "-q"), *needles)
+
+
+@pytest.mark.parametrize("command, needles", [
+    (["macros"], ["group column first", "--categorical columns"]),
+    (["label"], ["segment --within"]),
+    (["report"], ["segment --within"]),
+    (["show"], ["segment --within"]),
+    (["refresh"], ["--within"]),
+    (["segment"], ["1 to 200"]),
+])
+def test_help_of_commands_that_take_within_models_says_how(command, needles):
+    # outside reference: the behaviour the other tests here check (argument order of the macros, per-group output)
+    text = " ".join(run(*command, "--help").stdout.split())
+    for needle in needles:
+        assert needle in text, (needle, text)
 
 
 def test_commands_without_within_support_refuse_such_a_model_in_one_line(within_db, tmp_path):

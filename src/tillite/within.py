@@ -72,7 +72,7 @@ def check_within(engine: Engine, source: Source, columns: Sequence[str], within:
     described = engine.describe(source)
     types = dict(described)
     if within not in types:
-        listing = ", ".join(n for n, _ in described)
+        listing = ", ".join(f"{n} ({t})" for n, t in described)
         raise SourceError(f"--within column {within} not found in {source.label}; columns there: {listing}")
     return types[within]
 

@@ -57,6 +57,8 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
     """Write a report of the segments: sizes, profile, spread, map, breakdowns (and a store's refresh history).
 
     Every figure is computed in the database as an aggregate; no row is exported.
+    A model of segments within groups (segment --within) gives a table of the groups, then
+    one report per group; the table must hold the model's group column too.
     """
     if bool(model_path) == bool(store_name):
         raise click.UsageError("give exactly one of --model and --store")
