@@ -9,6 +9,7 @@ model's centroids and the nearest centroid of every row.
 from __future__ import annotations
 
 import json
+import re
 
 import duckdb
 import numpy as np
@@ -264,3 +265,21 @@ def test_report_with_a_model_of_another_table_says_so_in_a_warning_line(grouped_
     warned = [ln for ln in other.stderr.splitlines() if ln.startswith("warning:")]
     assert len(warned) == 1 and "built on t, not copied" in warned[0], other.stderr
     assert not [ln for ln in same.stderr.splitlines() if ln.startswith("warning:")], same.stderr
+
+
+def test_show_gives_category_shares_adding_to_100_and_group_sizes_apart_from_thousands(grouped_mixed_model, tmp_path):
+    from tillite.model import whole_percents
+
+    # outside reference: the largest remainder (Hamilton) method worked by hand: 54.5, 30.9, 14.6 -> 54, 31, 15
+    assert whole_percents([0.545, 0.309, 0.146]) == [54, 31, 15]
+    assert whole_percents([1, 1, 1]) == [34, 33, 33]
+    model_file = tmp_path / "wc.json"
+    grouped_mixed_model.write(model_file)
+    shown = run("show", model_file).stdout
+    share_lines = [ln for ln in shown.splitlines() if re.match(r"^  \d+ district: \d+% ", ln) and "more" not in ln]
+    assert share_lines
+    for line in share_lines:  # all but categories under 0.5% shown: the shares add to 100 (99 with one left out)
+        shares = [int(part.split("%")[0]) for part in line.split(": ", 1)[1].split(", ")]
+        assert 99 <= sum(shares) <= 100, line
+    group_lines = [ln for ln in shown.splitlines() if " rows  k=" in ln]
+    assert group_lines and all(" / " in ln.split("sizes ", 1)[1] for ln in group_lines if "k=1 " not in ln), group_lines
