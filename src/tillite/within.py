@@ -24,6 +24,7 @@ from .engines import Engine, SourceError
 from .errors import InputError, ParameterError
 from .features import CF
 from .model import Model, k_list_text
+from .segmenters import KMeansResult
 from .stages import (
     CellBoxes, Profile, ProgressFn, SegmentStats, Standardisation, canonical_sample, center_and_scale,
     check_columns, check_k_limit, choose_width, count_rows, grid_for_profile, moved_to_means, null_mask, quiet_progress, run_second_phase, sample_promise,
@@ -310,8 +311,12 @@ def run_group(value: str | None, cells_grid: CF, keys: np.ndarray, skipped: int,
     local, k = group_settings(settings, 1 if degenerate else filled, name, notes)
     choice: dict[str, Any] = {}
     if local.k_candidates and not degenerate:
-        local, choice = choose_group_k(cells, local, std.weights, f"{where} group {name}", name, progress)
+        local, choice, done = choose_group_k(cells, local, std.weights, f"{where} group {name}", name, progress)
         k = local.k
+        if done is not None and local.method == "kmeans" and k > 1:  # the chosen k's full run: not run again
+            stats = SegmentStats.of_cfs(F.group_sum(cells, done.labels, k), std.weights)
+            return GroupRun(value, cells, keys, skipped, std, k, done.centroids, done.labels, stats, done.sse,
+                            {"k_choice": choice}, notes)
     if degenerate or (k == 1 and not local.k_candidates):
         labels = np.zeros(cells.m, dtype=np.int64)
         cf = F.group_sum(cells, labels, 1)
@@ -340,11 +345,11 @@ FINALISTS = 2
 
 
 def choose_group_k(cells: CF, local: Settings, weights: np.ndarray, where: str, name: str, progress: ProgressFn
-                   ) -> tuple[Settings, dict[str, Any]]:
+                   ) -> tuple[Settings, dict[str, Any], KMeansResult | None]:
     """One group's k among ``local.k_candidates`` by ``--k-rule`` at a fraction of the k-means runs of comparing
     every candidate with every restart (FULL_RESTARTS_UP_TO, CANDIDATE_RESTARTS, FINALISTS), said in one progress
-    line.  Returns the group's settings with that k and no candidates (its second phase runs that k alone) and the
-    model's ``k_choice``."""
+    line.  Returns the group's settings with that k and no candidates, the model's ``k_choice``, and the chosen k's
+    k-means run with every restart when one was made here (what the second phase would compute again), else None."""
     from .segmenters import _pick_k, choose_k
 
     check_k_limit(cells, local.k_candidates, where)
@@ -352,8 +357,15 @@ def choose_group_k(cells: CF, local: Settings, weights: np.ndarray, where: str, 
     small = [k for k in local.k_candidates if k <= FULL_RESTARTS_UP_TO]
     large = [k for k in local.k_candidates if k > FULL_RESTARTS_UP_TO]
 
+    full_runs: dict[int, KMeansResult] = {}
+
     def table_of(ks: Sequence[int], n_init: int) -> list[dict[str, Any]]:
-        return choose_k(cells, ks, weights, n_init=n_init, seed=local.seed, rule=local.k_rule).table if ks else []
+        if not ks:
+            return []
+        got = choose_k(cells, ks, weights, n_init=n_init, seed=local.seed, rule=local.k_rule)
+        if n_init == local.n_init:
+            full_runs[got.k] = got.result
+        return got.table
 
     table = table_of(small, local.n_init) + table_of(large, restarts)
     if large and restarts < local.n_init:
@@ -364,7 +376,7 @@ def choose_group_k(cells: CF, local: Settings, weights: np.ndarray, where: str, 
     progress("choose k", f"group {name}: k={best['k']} of {k_list_text(ks)} ({reason})")
     params = {"rule": local.k_rule, "table": table, "k": best["k"], "reason": reason,
               "restarts": {"up_to_k": FULL_RESTARTS_UP_TO, "larger_k": restarts, "finalists": FINALISTS}}
-    return replace(local, k=best["k"], k_candidates=()), params
+    return replace(local, k=best["k"], k_candidates=()), params, full_runs.get(best["k"])
 
 
 def finalists(table: Sequence[dict[str, Any]], rule: str) -> list[int]:
