@@ -159,6 +159,22 @@ def test_k_auto_chooses_per_group(tmp_path):
     assert all(g["k_choice"]["k"] == g["k"] for g in model.within["groups"])
 
 
+def test_k_auto_says_one_line_per_group_and_reruns_its_finalists_with_every_restart(tmp_path):
+    data = grouped_blobs({"three": (3_000, 3, 0.0, 1.0), "five": (5_000, 5, 0.0, 1.0)}, seed=20)
+    write_table(tmp_path / "auto.duckdb", "t", data)
+    said: list[tuple[str, str]] = []
+    with DuckDBEngine(str(tmp_path / "auto.duckdb"), read_only=True) as engine:
+        model = segment(engine, Source.of_table("t"), COLUMNS, Settings(k=0, k_candidates=tuple(range(1, 13)), within="grp"),
+                        progress=lambda stage, message: said.append((stage, message)))
+    choose = [m for stage, m in said if stage == "choose k"]
+    assert len(choose) == 2 and all("\n" not in m for m in choose), choose
+    # outside reference: the number of centres make_blobs generated in each group
+    assert {g["name"]: g["k"] for g in model.within["groups"]} == {"three": 3, "five": 5}
+    for g in model.within["groups"]:  # the chosen k's row is a full run: its SSE is the group's cell-level k-means SSE
+        row = next(r for r in g["k_choice"]["table"] if r["k"] == g["k"])
+        assert row["sse"] == pytest.approx(g["cell_sse"], rel=1e-9)
+
+
 def test_model_file_round_trips_and_show_lists_groups_with_null_named(within_db, tmp_path):
     out = tmp_path / "m.json"
     res = CliRunner().invoke(main, ["segment", str(within_db), "-t", "meters", "-c", "a,b,c", "--k", "4", "--within", "grp",
@@ -193,6 +209,23 @@ def test_a_text_group_null_and_the_null_group_are_named_apart(tmp_path):
     names = {g["value"]: g["name"] for g in model.within["groups"]}
     assert names == {"NULL": "'NULL'", None: "NULL"}
     assert "== grp = 'NULL'" in model.describe() and "== grp = NULL" in model.describe()
+
+
+def test_empty_and_blank_groups_are_shown_quoted_in_show_report_and_name(tmp_path):
+    data = grouped_blobs({"": (300, 2, 0.0, 1.0), " ": (300, 2, 20.0, 1.0), "north": (300, 2, 40.0, 1.0)})
+    db = write_table(tmp_path / "blank.duckdb", "meters", data)
+    out = tmp_path / "m.json"
+    assert run("segment", db, "-t", "meters", "-c", "a,b,c", "--k", "2", "--within", "grp", "-o", out, "-q").exit_code == 0
+    # outside reference: the group texts written to the table ('' and ' ', as DuckDB stores them)
+    shown = run("show", out).stdout
+    assert "== grp = ''" in shown and "== grp = ' '" in shown and "\n  ''" in shown and "\n  ' '" in shown, shown
+    md = tmp_path / "r.md"
+    assert run("report", db, "-t", "meters", "--model", out, "--format", "md", "-o", md, "-q").exit_code == 0
+    text = md.read_text()
+    assert "grp = ''" in text and "grp = ' '" in text, text
+    named = run("name", out, "--group", "' '", "0", "steady")
+    assert named.exit_code == 0, named.output
+    assert "group ' '" in named.stdout and "group :" not in named.stdout, named.stdout
 
 
 def test_without_within_the_model_file_keeps_its_single_model_shape(within_db):
@@ -251,7 +284,7 @@ def many_groups_db(tmp_path_factory):
 
 @pytest.mark.parametrize("extra, needles", [
     (["--within", "a"], ["--within", "a", "also a segmenting column"]),
-    (["--within", "nope"], ["--within", "nope", "not found", "columns there"]),
+    (["--within", "nope"], ["--within", "nope", "not found", "columns there", "a (DOUBLE)"]),
     (["--within", "id"], ["--within", "id", "100,000", "at most 1,000"]),
     (["--within", "kind", "--method", "density"], ["--within", "--method", "density"]),
     (["--within", "kind", "--categorical", "kind"], ["--within", "--categorical"]),
@@ -259,6 +292,21 @@ def many_groups_db(tmp_path_factory):
 def test_bad_within_gives_one_error_line(many_groups_db, extra, needles):
     k = [] if "density" in extra else ["--k", 3]
     assert_one_error_line(run("segment", many_groups_db, "-t", "t", "-c", "a,b,c", *k, *extra, "-q"), *needles)
+
+
+@pytest.mark.parametrize("command, needles", [
+    (["macros"], ["group column first", "--categorical columns"]),
+    (["label"], ["segment --within"]),
+    (["report"], ["segment --within"]),
+    (["show"], ["segment --within"]),
+    (["refresh"], ["--within"]),
+    (["segment"], ["1 to 200"]),
+])
+def test_help_of_commands_that_take_within_models_says_how(command, needles):
+    # outside reference: the behaviour the other tests here check (argument order of the macros, per-group output)
+    text = " ".join(run(*command, "--help").stdout.split())
+    for needle in needles:
+        assert needle in text, (needle, text)
 
 
 def test_commands_without_within_support_refuse_such_a_model_in_one_line(within_db, tmp_path):

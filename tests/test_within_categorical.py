@@ -9,6 +9,7 @@ model's centroids and the nearest centroid of every row.
 from __future__ import annotations
 
 import json
+import re
 
 import duckdb
 import numpy as np
@@ -20,7 +21,7 @@ from tillite.model import Model
 from tillite.pipeline import Settings, label, segment
 from tillite.sqlgen import Source
 
-from conftest import run_cli as run, write_table
+from conftest import altered_copy, assert_one_error_line, run_cli as run, write_table
 
 NUMERIC = ["a", "b"]
 #: passes until Lloyd's fixed point, so the --within run and a run on a group alone end at the same centroids
@@ -238,3 +239,47 @@ def test_group_with_a_tiny_spread_gets_its_own_grid_keyed_by_category_and_equals
     np.testing.assert_allclose(by_column_name(model.columns, dot["centroids"], alone.columns),
                                by_column_name(alone.columns, alone.centroids, alone.columns), rtol=1e-6, atol=1e-9)
     assert dot["sse"] == pytest.approx(alone.sse, rel=1e-6)
+
+
+@pytest.mark.parametrize("dropped, role", [("district", "categorical"), ("grp", "--within group"), ("b", "numeric")])
+def test_label_and_report_on_a_table_without_a_model_column_name_it_and_the_model_file(
+        grouped_mixed_db, grouped_mixed_model, tmp_path, dropped, role):
+    db = altered_copy(grouped_mixed_db, tmp_path / "lacks.duckdb", f"CREATE TABLE lacks AS SELECT * EXCLUDE ({dropped}) FROM t")
+    model_file = tmp_path / "wc.json"
+    grouped_mixed_model.write(model_file)
+    # outside reference: DuckDB's own listing of the table's columns (the dropped one is not there)
+    labelled = run("label", db, "-t", "lacks", "--model", model_file, "--into", "lab")
+    assert_one_error_line(labelled, f"{role} column {dropped} of model {model_file}", "not found in lacks")
+    reported = run("report", db, "-t", "lacks", "--model", model_file, "-o", tmp_path / "r.html")
+    assert_one_error_line(reported, f"{role} column {dropped} of model {model_file}", "not found in lacks")
+
+
+def test_report_with_a_model_of_another_table_says_so_in_a_warning_line(grouped_mixed_db, grouped_mixed_model, tmp_path):
+    db = altered_copy(grouped_mixed_db, tmp_path / "other.duckdb", "CREATE TABLE copied AS SELECT * FROM t")
+    model_file = tmp_path / "wc.json"
+    grouped_mixed_model.write(model_file)
+    other = run("report", db, "-t", "copied", "--model", model_file, "-o", tmp_path / "r.html", "-q")
+    same = run("report", db, "-t", "t", "--model", model_file, "-o", tmp_path / "s.html", "-q")
+    assert other.exit_code == 0 and same.exit_code == 0, (other.output, same.output)
+    # outside reference: the model file's own source field (t) against the table given (copied)
+    warned = [ln for ln in other.stderr.splitlines() if ln.startswith("warning:")]
+    assert len(warned) == 1 and "built on t, not copied" in warned[0], other.stderr
+    assert not [ln for ln in same.stderr.splitlines() if ln.startswith("warning:")], same.stderr
+
+
+def test_show_gives_category_shares_adding_to_100_and_group_sizes_apart_from_thousands(grouped_mixed_model, tmp_path):
+    from tillite.model import whole_percents
+
+    # outside reference: the largest remainder (Hamilton) method worked by hand: 54.5, 30.9, 14.6 -> 54, 31, 15
+    assert whole_percents([0.545, 0.309, 0.146]) == [54, 31, 15]
+    assert whole_percents([1, 1, 1]) == [34, 33, 33]
+    model_file = tmp_path / "wc.json"
+    grouped_mixed_model.write(model_file)
+    shown = run("show", model_file).stdout
+    share_lines = [ln for ln in shown.splitlines() if re.match(r"^  \d+ district: \d+% ", ln) and "more" not in ln]
+    assert share_lines
+    for line in share_lines:  # all but categories under 0.5% shown: the shares add to 100 (99 with one left out)
+        shares = [int(part.split("%")[0]) for part in line.split(": ", 1)[1].split(", ")]
+        assert 99 <= sum(shares) <= 100, line
+    group_lines = [ln for ln in shown.splitlines() if " rows  k=" in ln]
+    assert group_lines and all(" / " in ln.split("sizes ", 1)[1] for ln in group_lines if "k=1 " not in ln), group_lines

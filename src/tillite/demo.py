@@ -614,7 +614,7 @@ def within_district_example(engine: Any, source: Any, k: int = WITHIN_EXAMPLE_K,
 
     model = segment(engine, source, list(DEMO_COLUMNS), Settings(k=k, within="district"),
                     progress=progress or (lambda stage, message: None))
-    from .model import group_models
+    from .model import group_models, whole_percents
 
     lines = [
         f"Segments within each district (tillite segment tillite-demo.duckdb --table meter_days "
@@ -623,7 +623,6 @@ def within_district_example(engine: Any, source: Any, k: int = WITHIN_EXAMPLE_K,
     groups = group_models(model)
     width = max(len(g["name"]) for g, _ in groups)
     for g, one in groups:
-        usable = max(sum(g["sizes"]), 1)
-        shares = ", ".join(f"{100.0 * s / usable:.0f}%" for s in g["sizes"])
+        shares = ", ".join(f"{p}%" for p in whole_percents(g["sizes"]))
         lines.append(f"  {g['name'].ljust(width)}  {g['rows']:>9,} rows  segments {shares}; largest: {one.segment_description(0)}")
     return "\n".join(lines)

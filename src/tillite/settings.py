@@ -135,8 +135,8 @@ class Settings:
     categorical: tuple[str, ...] = setting((), "Categorical columns, comma-separated (repeatable): each becomes indicators of its "
                                                "top categories, weighing as much as one scaled numeric column "
                                                "(--weights COLUMN=w applies to the whole column).", kind="parsed")
-    max_categories: int = setting(20, "Categories kept per --categorical column (the most rows in the profile "
-                                      "sample); the rest count as '(other)', NULL as '(NULL)'.", low=1, high=200)
+    max_categories: int = setting(20, "Categories kept per --categorical column, 1 to 200 (those with the most rows "
+                                      "in the profile sample); the rest count as '(other)', NULL as '(NULL)'.", low=1, high=200)
 
     def column_weights(self, columns: Sequence[str]) -> Any:
         """The multiplier of each column (1 unless --weights says otherwise), as a numpy array."""

@@ -1074,6 +1074,34 @@ def model_source(engine: Engine, source: Source, model: Model) -> Source:
     return cat.with_indicators(source, cat.specs_of(model.categorical), engine.target)
 
 
+def check_model_columns(engine: Engine, source: Source, model: Model, where: str = "the model") -> None:
+    """Every column the model reads (numeric, categorical, the --within group column) is in the source; else one
+    line naming the first missing one, its role and ``where`` (the model file), before any statement runs."""
+    described = engine.describe(source)
+    present = {n for n, _ in described}
+    needed = [(model.columns[j], "numeric") for j in model.numeric_positions()]
+    needed += [(c["column"], "categorical") for c in model.categorical]
+    if model.within:
+        needed.append((model.within["column"], "--within group"))
+    for column, role in needed:
+        if column not in present:
+            listing = ", ".join(f"{n} ({t})" for n, t in described)
+            raise SourceError(f"{role} column {column} of {where} not found in {source.label}; columns there: {listing}")
+
+
+def other_source_note(model: Model, source: Source, where: str = "the model") -> str | None:
+    """A line saying the model was built on another source than the one given (its figures - sizes, SSE - are of
+    that source), or None when they are the same (compared without case and a leading main.)."""
+    def plain(label: str) -> str:
+        text = label.strip().lower()
+        return text[len("main."):] if text.startswith("main.") else text
+
+    if not model.source or plain(model.source) == plain(source.label):
+        return None
+    return (f"{where} was built on {model.source}, not {source.label}: its own figures (sizes, SSE) are of "
+            f"{model.source}, the report's statistics of {source.label}")
+
+
 #: Spacing of category codes in the width search's coordinates: above its widest width (50), so
 #: every code stays its own bin there as it does in SQL.
 CODE_SPACING = 100.0

@@ -23,10 +23,11 @@ from . import sqlgen, within_sql
 from .engines import Engine, SourceError
 from .errors import InputError, ParameterError
 from .features import CF
-from .model import Model
+from .model import Model, k_list_text
+from .segmenters import KMeansResult
 from .stages import (
     CellBoxes, Profile, ProgressFn, SegmentStats, Standardisation, canonical_sample, center_and_scale,
-    check_columns, choose_width, count_rows, grid_for_profile, moved_to_means, null_mask, quiet_progress, run_second_phase, sample_promise,
+    check_columns, check_k_limit, choose_width, count_rows, grid_for_profile, moved_to_means, null_mask, quiet_progress, run_second_phase, sample_promise,
     seeded_sample, size_order, standardise_cells,
 )
 from .settings import Settings
@@ -44,10 +45,11 @@ NULL_GROUP_NAME = "NULL"
 
 
 def group_name(value: str | None) -> str:
-    """The NULL group is NULL; a text value 'NULL' is shown quoted, so the two read apart."""
+    """The NULL group is NULL; a text value 'NULL', an empty value and one with blanks at either end are shown
+    quoted (``''``, ``' '``), so they read apart from NULL and are seen at all."""
     if value is None:
         return NULL_GROUP_NAME
-    return f"'{value}'" if value == NULL_GROUP_NAME else value
+    return f"'{value}'" if value == NULL_GROUP_NAME or value != value.strip() or not value else value
 
 
 def group_value_of_key(key: str) -> str | None:
@@ -71,7 +73,7 @@ def check_within(engine: Engine, source: Source, columns: Sequence[str], within:
     described = engine.describe(source)
     types = dict(described)
     if within not in types:
-        listing = ", ".join(n for n, _ in described)
+        listing = ", ".join(f"{n} ({t})" for n, t in described)
         raise SourceError(f"--within column {within} not found in {source.label}; columns there: {listing}")
     return types[within]
 
@@ -322,19 +324,81 @@ def run_group(value: str | None, cells_grid: CF, keys: np.ndarray, skipped: int,
     filled = int((cells.n > 0).sum())
     # a group with nothing to segment on was warned about once, by standardise_group
     local, k = (settings, 1) if degenerate else group_settings(settings, filled, name, notes)
+    choice: dict[str, Any] = {}
+    if local.k_candidates and not degenerate:
+        local, choice, done = choose_group_k(cells, local, std.weights, f"{where} group {name}", name, progress)
+        k = local.k
+        if done is not None and local.method == "kmeans" and k > 1:  # the chosen k's full run: not run again
+            stats = SegmentStats.of_cfs(F.group_sum(cells, done.labels, k), std.weights)
+            return GroupRun(value, cells, keys, skipped, std, k, done.centroids, done.labels, stats, done.sse,
+                            {"k_choice": choice}, notes)
     if degenerate or (k == 1 and not local.k_candidates):
         labels = np.zeros(cells.m, dtype=np.int64)
         cf = F.group_sum(cells, labels, 1)
         stats = SegmentStats.of_cfs(cf, std.weights)
-        return GroupRun(value, cells, keys, skipped, std, 1, stats.centroids, labels, stats, float(stats.sse.sum()), {}, notes)
+        return GroupRun(value, cells, keys, skipped, std, 1, stats.centroids, labels, stats, float(stats.sse.sum()),
+                        {"k_choice": choice} if choice else {}, notes)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         phase = run_second_phase(cells, keys, local, std.weights, f"{where} group {name}",
                                  lambda stage, message: progress(stage, f"group {name}: {message}"))
     _warn_for_group(name, caught, notes)
     stats = SegmentStats.of_cfs(F.group_sum(cells, phase.cell_labels, phase.k), std.weights)
+    params = {**phase.params, "k_choice": choice} if choice else phase.params
     return GroupRun(value, cells, keys, skipped, std, phase.k, phase.centroids, phase.cell_labels, stats, phase.sse,
-                    phase.params, notes)
+                    params, notes)
+
+
+#: When ``--k auto``/a range chooses k per group, candidates up to this k get the full ``--restarts`` (their runs
+#: are cheap: a restart costs about k times the cells; and a k = 2 run on a skewed group found a poor split
+#: with 3 restarts in 2 of the demo's 50 routes) ...
+FULL_RESTARTS_UP_TO = 4
+#: ... larger candidates this many restarts ...
+CANDIDATE_RESTARTS = 3
+#: ... and the FINALISTS best-scored of those are run again with every restart before the choice is made.
+FINALISTS = 2
+
+
+def choose_group_k(cells: CF, local: Settings, weights: np.ndarray, where: str, name: str, progress: ProgressFn
+                   ) -> tuple[Settings, dict[str, Any], KMeansResult | None]:
+    """One group's k among ``local.k_candidates`` by ``--k-rule`` at a fraction of the k-means runs of comparing
+    every candidate with every restart (FULL_RESTARTS_UP_TO, CANDIDATE_RESTARTS, FINALISTS), said in one progress
+    line.  Returns the group's settings with that k and no candidates, the model's ``k_choice``, and the chosen k's
+    k-means run with every restart when one was made here (what the second phase would compute again), else None."""
+    from .segmenters import _pick_k, choose_k
+
+    check_k_limit(cells, local.k_candidates, where)
+    restarts = min(local.n_init, CANDIDATE_RESTARTS)
+    small = [k for k in local.k_candidates if k <= FULL_RESTARTS_UP_TO]
+    large = [k for k in local.k_candidates if k > FULL_RESTARTS_UP_TO]
+
+    full_runs: dict[int, KMeansResult] = {}
+
+    def table_of(ks: Sequence[int], n_init: int) -> list[dict[str, Any]]:
+        if not ks:
+            return []
+        got = choose_k(cells, ks, weights, n_init=n_init, seed=local.seed, rule=local.k_rule)
+        if n_init == local.n_init:
+            full_runs[got.k] = got.result
+        return got.table
+
+    table = table_of(small, local.n_init) + table_of(large, restarts)
+    if large and restarts < local.n_init:
+        again = {row["k"]: row for row in table_of([k for k in finalists(table, local.k_rule) if k in large], local.n_init)}
+        table = [again.get(row["k"], row) for row in table]
+    best, reason = _pick_k(table, local.k_rule)
+    ks = [row["k"] for row in table]
+    progress("choose k", f"group {name}: k={best['k']} of {k_list_text(ks)} ({reason})")
+    params = {"rule": local.k_rule, "table": table, "k": best["k"], "reason": reason,
+              "restarts": {"up_to_k": FULL_RESTARTS_UP_TO, "larger_k": restarts, "finalists": FINALISTS}}
+    return replace(local, k=best["k"], k_candidates=()), params, full_runs.get(best["k"])
+
+
+def finalists(table: Sequence[dict[str, Any]], rule: str) -> list[int]:
+    """The FINALISTS best candidates by the rule's score (Calinski-Harabasz: largest; BIC: lowest)."""
+    key = (lambda row: row["bic"]) if rule == "bic" else (lambda row: -row["calinski_harabasz"])
+    scored = [row for row in table if rule == "bic" or not np.isnan(row["calinski_harabasz"])]
+    return sorted(row["k"] for row in sorted(scored, key=lambda row: (key(row), row["k"]))[:FINALISTS])
 
 
 # ----------------------------------------------------------------------------- refine

@@ -67,6 +67,9 @@ def macros() -> None:
     Scoring macros of one model (--model, --name NAME):
       NAME_segment(col1, ..., colN)              the nearest segment id, NULL for NULL/NaN/Inf input
       NAME_distance(col1, ..., colN)             the distance to its centroid (scaled units)
+    Arguments in the model's order, as `macros show --model` prints them: the numeric columns,
+    then any --categorical columns (the category text); a model of segments within groups
+    (segment --within) takes the group column first: NAME_segment(group, col1, ..., colN).
     """
 
 

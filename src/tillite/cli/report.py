@@ -57,6 +57,8 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
     """Write a report of the segments: sizes, profile, spread, map, breakdowns (and a store's refresh history).
 
     Every figure is computed in the database as an aggregate; no row is exported.
+    A model of segments within groups (segment --within) gives a table of the groups, then
+    one report per group; the table must hold the model's group column too.
     """
     if bool(model_path) == bool(store_name):
         raise click.UsageError("give exactly one of --model and --store")
@@ -75,9 +77,23 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
 
             model = Model.read(model_path)
             with open_with_options(source, table) as (engine, src):
+                _check_model_fits(engine, src, model, model_path)
                 content = R.report_of_model(engine, src, model, _split(by), progress, labels=labels)
         path = R.write_report(content, out, fmt)
     click.echo(f"report written to {path}")
+
+
+def _check_model_fits(engine, src, model, model_path: str) -> None:
+    """The model's columns are in the table (one line naming a missing one), and a warning line when the model was
+    built on another source (the report would mix its figures with the table's)."""
+    import warnings
+
+    from ..stages import check_model_columns, other_source_note
+
+    check_model_columns(engine, src, model, f"model {model_path}")
+    note = other_source_note(model, src, f"model {model_path}")
+    if note:
+        warnings.warn(note, UserWarning, stacklevel=2)
 
 
 @click.command("name", context_settings={"ignore_unknown_options": True})  # so segment -1 (noise/outliers) is an ID, not an option

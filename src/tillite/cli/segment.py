@@ -93,6 +93,9 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
     """Add segment and distance to every row of SOURCE as a view, table or file.
 
     The source itself is never written; rows skipped for NULL/NaN/Inf get NULL.
+    With a model of segments within groups (segment --within) each row gets its group's
+    nearest segment (ids count per group); rows of a group the model does not know get
+    NULL, said in a warning line.
     """
     if bool(model_path) == bool(store_name):
         raise click.UsageError("give exactly one of --model and --store")
@@ -110,6 +113,9 @@ def label_command(source, table, model_path, store_name, into, materialize, repl
             return
         model = Model.read(model_path)
         with open_with_options(source, table, writable=True) as (engine, src):
+            from ..stages import check_model_columns
+
+            check_model_columns(engine, src, model, f"model {model_path}")
             t0 = time.perf_counter()
             made = _label_explained(engine, src, model, into, materialize, replace)
         progress_printer(quiet)("label", f"{made} from {src.label}, {time.perf_counter() - t0:.2f} s")
@@ -149,7 +155,11 @@ def _label_explained(engine, src, model, into: str, materialize: bool, replace: 
 @click.argument("model_path", metavar="MODEL")
 @click.option("--json", "as_json", is_flag=True, help="Machine-readable output.")
 def show_command(model_path, as_json) -> None:
-    """Segment sizes, centroids in original units, radius and SSE of a model file."""
+    """Segment sizes, centroids in original units, radius and SSE of a model file.
+
+    A model of segments within groups (segment --within) is shown as a line per group
+    (rows, k, sizes), then each group's own model.
+    """
     with user_errors():
         model = Model.read(model_path)
         click.echo(json.dumps(model.summary(), indent=2) if as_json else model.describe())

@@ -189,6 +189,8 @@ def refresh_command(source, store_name, k, drift_threshold, new_segment_shift, f
     """Scan only new and changed partitions, re-segment, and report drift.
 
     Options given to a refresh (--k) are kept by later refreshes; `store status` shows them.
+    A store built with --within re-segments only the groups whose cells changed and
+    reports drift per group.
     """
     with user_errors():
         with open_store_database(source, writable=True) as engine:
