@@ -232,3 +232,18 @@ def test_noise_drop_says_shares_exclude_noise(tmp_path):
     assert model.extras["noise_rows"] > 0
     assert f"{model.extras['noise_rows']:,} noise rows" in model.describe()
     assert "not counted" in model.describe()
+
+
+def test_equal_rows_far_from_the_grid_centre_are_constant_though_their_sums_leave_round_off():
+    from tillite.stages import unresolved_spread
+
+    rng = np.random.default_rng(3)
+    far = np.full(5_000, 7_342.123456789)  # grid units: equal rows far from the centre
+    near = rng.normal(0.0, 1.0, 5_000)  # a real spread around the centre
+    tiny = 7_342.0 + rng.normal(0.0, 1e-3, 5_000)  # far away, but a spread well above round-off
+    for x, expected in ((far, True), (near, False), (tiny, False)):
+        n, ls, ss = float(len(x)), float(x.sum()), float((x * x).sum())
+        scatter = max(ss - ls * ls / n, 0.0)  # the one-pass formula the cells' sums give
+        # reference: numpy's range of the same rows (max - min: exactly 0 only for the equal rows)
+        assert (np.ptp(x) == 0.0) == expected
+        assert bool(unresolved_spread(np.array([scatter]), np.array([ss]))[0]) == expected

@@ -518,8 +518,9 @@ def standardise_cells(
     total = F.total(cells_grid)
     n = float(total.n[0])
     center = grid_center + total.ls[0] / n * grid_scale
-    sd = np.sqrt(F.column_scatter(total)[0] / n) * grid_scale
-    constant = constant_columns(center, sd)
+    scatter = F.column_scatter(total)[0]
+    sd = np.sqrt(scatter / n) * grid_scale
+    constant = constant_columns(center, sd) | unresolved_spread(scatter, total.ss[0])
     fixed = np.full(d, np.nan)  # the indicators of a categorical column share one scale (categorical.group_scale)
     for pos in indicator_groups:
         s_ = cat.group_scale(center[pos])
@@ -539,6 +540,23 @@ def standardise_cells(
 
 #: A column is constant when its spread is within this many units of round-off of its own size.
 CONSTANT_ULPS = 4.0
+
+
+#: A column's spread is not resolved by its sums when its scatter is within this many units of round-off of its
+#: square sum.
+RESOLVED_ULPS = 16.0
+
+
+def unresolved_spread(scatter: np.ndarray, ss: np.ndarray) -> np.ndarray:
+    """True where the scatter (ss - ls^2/n, in grid units) is round-off of the square sum itself.
+
+    The one-pass sums cannot tell such a spread from none: rows far from the
+    grid's centre that are all equal (a constant group of a --within store on the
+    table's shared grid) leave a scatter of a few units of round-off of ss,
+    which the test on the spread's own size would take for a real spread.
+    Rows near the grid's centre (every plain run) are unaffected.
+    """
+    return scatter <= RESOLVED_ULPS * np.finfo(np.float64).eps * np.abs(ss)
 
 
 def constant_columns(center: np.ndarray, sd: np.ndarray) -> np.ndarray:
