@@ -16,28 +16,14 @@ import argparse
 import statistics
 import time
 import warnings
-from pathlib import Path
 
-import duckdb
 
 from tillite import demo
 from tillite.engines import DuckDBEngine
 from tillite.pipeline import Settings, segment
 from tillite.sqlgen import Source
 
-
-def build(rows: int, groups: int) -> Path:
-    path = Path(f"/tmp/tillite-bench-within-{rows}-{groups}.duckdb")  # the file bench_within.py builds
-    if not path.exists():
-        tmp = path.with_suffix(".building")
-        if tmp.exists():
-            tmp.unlink()
-        demo.build_demo_database(tmp, rows=rows, replace=True)
-        con = duckdb.connect(str(tmp))
-        con.execute(f"CREATE TABLE routed AS SELECT *, meter_id % {int(groups)} AS route FROM meter_days")
-        con.close()
-        tmp.rename(path)
-    return path
+from bench_within import build  # the same routed demo file
 
 
 def main() -> None:
