@@ -867,7 +867,7 @@ def min_cost_assignment(cost: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return rows[order], cols[order]
 
 
-def _drift(
+def segment_drift(
     old: Model, new: Model, cells: CF, scale: np.ndarray, threshold: float
 ) -> tuple[list[dict[str, Any]], list[str]]:
     """Per segment id: size before/after, centroid shift (sd), share of its cells now elsewhere."""
@@ -1166,7 +1166,7 @@ def refresh(
             else:
                 report.seeding.update(_seeding_inputs(info, stored, current, new, changed, vanished))
                 model, cells, std = _resegment(engine, info, settings, progress, new_segment_shift, report.seeding)
-                report.drift, report.warnings = _drift(info.model, model, cells, np.where(std.sd > 0, std.sd, 1.0), drift_threshold)
+                report.drift, report.warnings = segment_drift(info.model, model, cells, np.where(std.sd > 0, std.sd, 1.0), drift_threshold)
             report.seconds["segment"] = time.perf_counter() - t2
             if report.seeding.get("segments_changed"):
                 report.warnings.insert(0, _reseeded_warning(report.seeding))

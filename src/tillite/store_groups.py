@@ -235,16 +235,16 @@ def segment_groups(
 
 
 def _group_drift(out: GroupsOutcome, old: Model, runs: dict, threshold: float) -> None:
-    """Per re-segmented group that existed before: ``store._drift`` of its segments, rows and warnings
+    """Per re-segmented group that existed before: ``store.segment_drift`` of its segments, rows and warnings
     naming the group."""
-    from .store import _drift
+    from .store import segment_drift
 
     before = {g["value"]: m for g, m in group_models(old)}
     for g, now in group_models(out.model):
         if g["value"] not in runs or g["value"] not in before:
             continue
         sd = np.asarray(g["sd"], dtype=np.float64)
-        rows, warns = _drift(before[g["value"]], now, runs[g["value"]].cells, np.where(sd > 0, sd, 1.0), threshold)
+        rows, warns = segment_drift(before[g["value"]], now, runs[g["value"]].cells, np.where(sd > 0, sd, 1.0), threshold)
         out.drift += [{"group": g["name"], **row} for row in rows]
         out.warnings += [f"group {g['name']}: {w}" for w in warns]
 
