@@ -681,11 +681,11 @@ def _segment_cells(
     init = None if init_original is None else (np.asarray(init_original) - std.center[None, :]) / std.scale[None, :]
     t0 = time.perf_counter()
     result = second_phase(cells, settings, std.weights, where, init=init)
+    total_sse = F.sse(F.total(cells), std.weights)
     if seeding is not None and init is not None:
-        result = _better_of_warm_and_fresh(cells, settings, std.weights, where, result, seeding)
+        result = _better_of_warm_and_fresh(cells, settings, std.weights, where, result, seeding, total_sse)
         if seeding["kept"] == "fresh":
             init = None  # ordered by size below, like a fresh build
-    total_sse = F.sse(F.total(cells), std.weights)
     unexplained = result.sse / total_sse if total_sse > 0 else 0.0
     progress("second phase", f"{'warm start' if init is not None else f'k-means++ x{result.restarts}'} on {int((cells.n > 0).sum()):,} cells, SSE {result.sse:.6g}, {time.perf_counter() - t0:.2f} s")
     stats = SegmentStats.of_cfs(F.group_sum(cells, result.labels, settings.k), std.weights)
@@ -763,14 +763,14 @@ def fresh_seeding_reason(warm_unexplained: float, seeding: dict[str, Any]) -> st
     return None
 
 
-def _better_of_warm_and_fresh(cells: CF, settings: Settings, weights: np.ndarray, where: str, warm: Any, seeding: dict[str, Any]) -> Any:
+def _better_of_warm_and_fresh(cells: CF, settings: Settings, weights: np.ndarray, where: str, warm: Any, seeding: dict[str, Any],
+                              total_sse: float) -> Any:
     """The warm-started result or a freshly seeded one, whichever has the lower SSE; fills ``seeding``.
 
     The fresh seeding runs only when ``fresh_seeding_reason`` gives a reason;
     otherwise the warm start is kept and ``seeding['fresh']`` says so.
     """
-    total = F.sse(F.total(cells), weights)
-    reason = fresh_seeding_reason(warm.sse / total if total > 0 else 0.0, seeding)
+    reason = fresh_seeding_reason(warm.sse / total_sse if total_sse > 0 else 0.0, seeding)
     if reason is None:
         seeding.update({"warm_sse": float(warm.sse), "kept": "warm", "segments_changed": False,
                         "fresh": "skipped: the warm start explains the cells as well as the last model did"})
@@ -983,13 +983,14 @@ def build(
         cells_grid, keys, skipped = store_cells(engine, cells_table, grid, columns, specs)
         if cells_grid.m == 0:
             raise InputError(f"no usable rows in {source.label}")
-        counted = (f"{store_groups.cell_pairs(engine, cells_table, grid, len(columns), settings.within):,} {store_groups.CELLS_COUNTED}"
-                   if settings.within is not None else f"{cells_grid.m:,} cells")
+        parts = store_groups.merged_groups(engine, cells_table, grid, len(columns), settings.within) if settings.within is not None else None
+        counted = f"{store_groups.pairs_of(parts):,} {store_groups.CELLS_COUNTED}" if parts is not None else f"{cells_grid.m:,} cells"
         progress("cells", f"{len(fps):,} partitions -> {counted} ({skipped:,} rows skipped), {time.perf_counter() - t1:.2f} s")
-        if settings.within is not None:  # a model per group; ids matched per group to the previous model's
+        if parts is not None:  # a model per group; ids matched per group to the previous model's
             grouped = store_groups.segment_groups(
                 engine, source, columns, cells_table, grid, settings, str(group_type), source.label, progress,
                 old=previous.model if previous is not None else None, new_segment_shift=new_segment_shift, repeats=repeats,
+                parts=parts,
             )
             model, warnings_ = grouped.model, warnings_ + grouped.warnings
         else:

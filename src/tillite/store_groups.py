@@ -34,7 +34,7 @@ from .within import (
     overall_standardisation, refine_groups, run_grouped_profile, split_cells, too_many_groups, within_model,
 )
 
-__all__ = ["GROUP_KEY", "CELLS_COUNTED", "cell_pairs", "GroupsOutcome", "check", "frozen_grid", "cells_columns", "cells_statement", "GroupCells", "group_cells", "changed_groups",
+__all__ = ["GROUP_KEY", "CELLS_COUNTED", "cell_pairs", "merged_groups", "pairs_of", "GroupsOutcome", "check", "frozen_grid", "cells_columns", "cells_statement", "GroupCells", "group_cells", "changed_groups",
            "segment_groups", "status_fields", "report_lines"]
 
 GROUP_KEY = within_sql.GROUP_KEY
@@ -81,10 +81,15 @@ def merged_groups(engine: Engine, cells_table: str, grid: Grid, d: int, within: 
     return parts
 
 
-def cell_pairs(engine: Engine, cells_table: str, grid: Grid, d: int, within: str) -> int:
+def pairs_of(parts: Sequence[Part]) -> int:
     """The (group, cell) pairs holding rows: the cells the groups are segmented on, summed over the groups (a
     cell two groups share counts twice; the skipped rows' cell not at all)."""
-    return sum(int((cells.n > 0).sum()) for _, cells, _, _ in merged_groups(engine, cells_table, grid, d, within))
+    return sum(int((cells.n > 0).sum()) for _, cells, _, _ in parts)
+
+
+def cell_pairs(engine: Engine, cells_table: str, grid: Grid, d: int, within: str) -> int:
+    """``pairs_of`` the store's merged cells (one read of the cells table)."""
+    return pairs_of(merged_groups(engine, cells_table, grid, d, within))
 
 
 CELLS_COUNTED = "(group, cell) pairs"
@@ -183,8 +188,9 @@ def segment_groups(
     engine: Engine, source: Source, columns: Sequence[str], cells_table: str, grid: Grid, settings: Settings,
     group_type: str, where: str, progress: ProgressFn, old: Model | None = None, touched: set[str | None] | None = None,
     new_segment_shift: float = 3.0, drift_threshold: float = 0.5, repeats: str | None = None,
+    parts: Sequence[Part] | None = None,
 ) -> GroupsOutcome:
-    """The store's --within model from its merged cells.
+    """The store's --within model from its merged cells (``parts``, when the caller has read them already).
 
     ``touched``: the groups to re-segment (None: every group); the others keep
     ``old``'s entries unchanged.  With ``old``, each re-segmented group's ids are
@@ -192,7 +198,7 @@ def segment_groups(
     """
     t0 = time.perf_counter()
     d, within = len(columns), str(settings.within)
-    parts = merged_groups(engine, cells_table, grid, d, within)
+    parts = parts if parts is not None else merged_groups(engine, cells_table, grid, d, within)
     old_entries = {g["value"]: g for g in old.within.get("groups", [])} if old is not None and old.within else {}
     redo = [p for p in parts if touched is None or p[0] in touched or p[0] not in old_entries]
     weights = settings.column_weights(columns)
