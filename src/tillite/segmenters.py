@@ -999,22 +999,31 @@ def choose_k(cfs: CF, candidates: Sequence[int], weights: np.ndarray | None = No
         runs[k] = got
         if progress is not None:
             progress(f"k={k}: SSE {got.sse:.6g}")
-    best, reason = _pick_k(table, rule)
+    best, reason = pick_k(table, rule)
     return KChoice(table=table, k=best["k"], rule=rule, result=runs[best["k"]], reason=reason)
 
 
-def _pick_k(table: list[dict], rule: str) -> tuple[dict, str]:
-    """The chosen row of the k table and why (rules in ``choose_k``)."""
+def ranked_candidates(table: Sequence[dict], rule: str) -> list[dict]:
+    """The k table's rows best first by the rule's score, ties to the smaller k: BIC lowest first;
+    Calinski-Harabasz largest first, rows where it is undefined (k = 1) left out."""
     if rule == "bic":
-        best = min(table, key=lambda row: (row["bic"], row["k"]))
-        return best, f"lowest BIC, {best['bic']:.8g}"
+        return sorted(table, key=lambda row: (row["bic"], row["k"]))
     scored = [row for row in table if not np.isnan(row["calinski_harabasz"])]
+    return sorted(scored, key=lambda row: (-row["calinski_harabasz"], row["k"]))
+
+
+def pick_k(table: list[dict], rule: str) -> tuple[dict, str]:
+    """The chosen row of the k table and why (rules in ``choose_k``)."""
+    scored = ranked_candidates(table, rule)
+    if rule == "bic":
+        best = scored[0]
+        return best, f"lowest BIC, {best['bic']:.8g}"
     one = [row for row in table if row["k"] == 1]
     if not scored:
         if one:
             return one[0], "one segment: the only candidate"
         raise ValueError("Calinski-Harabasz needs a candidate k >= 2")
-    best = max(scored, key=lambda row: (row["calinski_harabasz"], -row["k"]))
+    best = scored[0]
     split_bic = min(row["bic"] for row in scored)
     if one and one[0]["bic"] <= split_bic:
         return one[0], (f"one segment: its BIC {one[0]['bic']:.8g} is lower than every split's "

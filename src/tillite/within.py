@@ -24,7 +24,7 @@ from .engines import Engine, SourceError
 from .errors import InputError, ParameterError
 from .features import CF
 from .model import Model, k_list_text
-from .segmenters import KMeansResult
+from .segmenters import KMeansResult, choose_k, pick_k, ranked_candidates
 from .stages import (
     CellBoxes, Profile, ProgressFn, SegmentStats, Standardisation, canonical_sample, center_and_scale,
     check_columns, check_k_limit, choose_width, count_rows, grid_for_profile, moved_to_means, null_mask, quiet_progress, run_second_phase, sample_promise,
@@ -365,8 +365,6 @@ def choose_group_k(cells: CF, local: Settings, weights: np.ndarray, where: str, 
     every candidate with every restart (FULL_RESTARTS_UP_TO, CANDIDATE_RESTARTS, FINALISTS), said in one progress
     line.  Returns the group's settings with that k and no candidates, the model's ``k_choice``, and the chosen k's
     k-means run with every restart when one was made here (what the second phase would compute again), else None."""
-    from .segmenters import _pick_k, choose_k
-
     check_k_limit(cells, local.k_candidates, where)
     restarts = min(local.n_init, CANDIDATE_RESTARTS)
     small = [k for k in local.k_candidates if k <= FULL_RESTARTS_UP_TO]
@@ -386,7 +384,7 @@ def choose_group_k(cells: CF, local: Settings, weights: np.ndarray, where: str, 
     if large and restarts < local.n_init:
         again = {row["k"]: row for row in table_of([k for k in finalists(table, local.k_rule) if k in large], local.n_init)}
         table = [again.get(row["k"], row) for row in table]
-    best, reason = _pick_k(table, local.k_rule)
+    best, reason = pick_k(table, local.k_rule)
     ks = [row["k"] for row in table]
     progress("choose k", f"group {name}: k={best['k']} of {k_list_text(ks)} ({reason})")
     params = {"rule": local.k_rule, "table": table, "k": best["k"], "reason": reason,
@@ -396,9 +394,7 @@ def choose_group_k(cells: CF, local: Settings, weights: np.ndarray, where: str, 
 
 def finalists(table: Sequence[dict[str, Any]], rule: str) -> list[int]:
     """The FINALISTS best candidates by the rule's score (Calinski-Harabasz: largest; BIC: lowest)."""
-    key = (lambda row: row["bic"]) if rule == "bic" else (lambda row: -row["calinski_harabasz"])
-    scored = [row for row in table if rule == "bic" or not np.isnan(row["calinski_harabasz"])]
-    return sorted(row["k"] for row in sorted(scored, key=lambda row: (key(row), row["k"]))[:FINALISTS])
+    return sorted(row["k"] for row in ranked_candidates(table, rule)[:FINALISTS])
 
 
 # ----------------------------------------------------------------------------- refine
