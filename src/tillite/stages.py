@@ -44,6 +44,11 @@ def quiet_progress(stage: str, message: str) -> None:
 # ----------------------------------------------------------------------------- checks
 
 
+def columns_there(described: Sequence[tuple[str, str]]) -> str:
+    """A source's columns with their types, as error lines list them: "a (DOUBLE), district (VARCHAR)"."""
+    return ", ".join(f"{n} ({t})" for n, t in described)
+
+
 def check_columns(engine: Engine, source: Source, columns: Sequence[str]) -> list[str]:
     """All source columns, after checking the chosen ones exist and are numeric."""
     if not columns:
@@ -55,8 +60,8 @@ def check_columns(engine: Engine, source: Source, columns: Sequence[str]) -> lis
     types = dict(described)
     missing = [c for c in columns if c not in types]
     if missing:
-        listing = ", ".join(f"{n} ({t})" for n, t in described)
-        raise SourceError(f"{'column' if len(missing) == 1 else 'columns'} {', '.join(missing)} not found in {source.label}; columns there: {listing}")
+        raise SourceError(f"{'column' if len(missing) == 1 else 'columns'} {', '.join(missing)} not found in {source.label}; "
+                          f"columns there: {columns_there(described)}")
     for c in columns:
         if not is_numeric_type(types[c]) and source.files and not engine_has_rows(engine, source):
             raise InputError(f"{source.label} has no rows (a header only?)")
@@ -1103,8 +1108,7 @@ def check_model_columns(engine: Engine, source: Source, model: Model, where: str
         needed.append((model.within["column"], "--within group"))
     for column, role in needed:
         if column not in present:
-            listing = ", ".join(f"{n} ({t})" for n, t in described)
-            raise SourceError(f"{role} column {column} of {where} not found in {source.label}; columns there: {listing}")
+            raise SourceError(f"{role} column {column} of {where} not found in {source.label}; columns there: {columns_there(described)}")
 
 
 def other_source_note(model: Model, source: Source, where: str = "the model") -> str | None:

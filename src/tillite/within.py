@@ -27,7 +27,7 @@ from .model import Model, k_list_text
 from .segmenters import KMeansResult, choose_k, pick_k, ranked_candidates
 from .stages import (
     CellBoxes, Profile, ProgressFn, SegmentStats, Standardisation, canonical_sample, center_and_scale,
-    check_columns, check_k_limit, choose_width, count_rows, grid_for_profile, moved_to_means, null_mask, quiet_progress, run_second_phase, sample_promise,
+    check_columns, check_k_limit, columns_there, choose_width, count_rows, grid_for_profile, moved_to_means, null_mask, quiet_progress, run_second_phase, sample_promise,
     seeded_sample, size_order, standardise_cells,
 )
 from .settings import Settings
@@ -73,8 +73,7 @@ def check_within(engine: Engine, source: Source, columns: Sequence[str], within:
     described = engine.describe(source)
     types = dict(described)
     if within not in types:
-        listing = ", ".join(f"{n} ({t})" for n, t in described)
-        raise SourceError(f"--within column {within} not found in {source.label}; columns there: {listing}")
+        raise SourceError(f"--within column {within} not found in {source.label}; columns there: {columns_there(described)}")
     return types[within]
 
 
