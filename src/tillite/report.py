@@ -695,10 +695,14 @@ def within_report(engine: Engine, source: Source, model: Model, by: Sequence[str
                                                     model.columns, engine.target))
     quartiles, sampled = quartiles_of(sample, model.columns)
     _say(progress, "report", f"quartiles from a sample of {sampled:,} rows, {time.perf_counter() - t1:.2f} s")
+    segs = [None if s is None else s % stride for s in codes]  # each result row's segment within its group
+    rows_of: dict[int, list[int]] = {}  # each group position's result rows, in one pass over them
+    for i, s in enumerate(codes):
+        if s is not None:
+            rows_of.setdefault(s // stride, []).append(i)
     reports = []
     for position, (entry, one) in enumerate(groups):
-        mine = [i for i, s in enumerate(codes) if s is not None and s // stride == position]
-        segs = [None if s is None else s % stride for s in codes]
+        mine = rows_of.get(position, [])
         stats = _pooled_statistics(got, model.columns, [i for i in mine if sets[i] == 0], segs)
         breakdowns = [_ranked_breakdown(got, one, column, f"c{b}", [i for i in mine if sets[i] == b], segs, TOP_CATEGORIES)
                       for b, column in enumerate(by)]
