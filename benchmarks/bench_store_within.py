@@ -13,7 +13,6 @@ Each refresh's own seconds (fingerprints, cells, segment) are printed.  Not a pa
 
 from __future__ import annotations
 
-import argparse
 import shutil
 import statistics
 import sys
@@ -24,7 +23,7 @@ from pathlib import Path
 import duckdb
 
 sys.path.insert(0, str(Path(__file__).parent))
-from bench_within import build  # noqa: E402  (the routed demo table, built once)
+from bench_within import build, routed_arguments  # noqa: E402  (the routed demo table and options)
 
 from tillite import store as S  # noqa: E402
 from tillite.demo import DEMO_COLUMNS  # noqa: E402
@@ -44,12 +43,7 @@ def timed_refresh(path: Path, store: str, change: str) -> tuple[float, S.Refresh
 
 
 def main() -> None:
-    ap = argparse.ArgumentParser()
-    ap.add_argument("--rows", type=int, default=2_000_000)
-    ap.add_argument("--groups", type=int, default=50)
-    ap.add_argument("--k", type=int, default=4)
-    ap.add_argument("--repeat", type=int, default=3)
-    args = ap.parse_args()
+    args = routed_arguments(__doc__)
     source = build(args.rows, args.groups)
     work = Path(f"/tmp/tillite-bench-store-within-{args.rows}-{args.groups}.duckdb")
     shutil.copy(source, work)

@@ -43,13 +43,18 @@ def build(rows: int, groups: int) -> Path:
     return path
 
 
-def main() -> None:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+def routed_arguments(doc: str | None) -> argparse.Namespace:
+    """The options of the benchmarks on the routed demo table (this one, bench_within_categorical, bench_store_within)."""
+    ap = argparse.ArgumentParser(description=doc.splitlines()[0] if doc else None)
     ap.add_argument("--rows", type=int, default=2_000_000)
     ap.add_argument("--groups", type=int, default=50)
     ap.add_argument("--k", type=int, default=4)
     ap.add_argument("--repeat", type=int, default=3)
-    args = ap.parse_args()
+    return ap.parse_args()
+
+
+def main() -> None:
+    args = routed_arguments(__doc__)
     path = build(args.rows, args.groups)
     src = Source.of_table("routed")
     columns = list(demo.DEMO_COLUMNS)

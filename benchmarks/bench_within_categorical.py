@@ -12,7 +12,6 @@ Not a pass/fail test: the machine is shared.
 
 from __future__ import annotations
 
-import argparse
 import statistics
 import time
 import warnings
@@ -23,16 +22,11 @@ from tillite.engines import DuckDBEngine
 from tillite.pipeline import Settings, segment
 from tillite.sqlgen import Source
 
-from bench_within import build  # the same routed demo file
+from bench_within import build, routed_arguments  # the same routed demo file and options
 
 
 def main() -> None:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--rows", type=int, default=2_000_000)
-    ap.add_argument("--groups", type=int, default=50)
-    ap.add_argument("--k", type=int, default=4)
-    ap.add_argument("--repeat", type=int, default=3)
-    args = ap.parse_args()
+    args = routed_arguments(__doc__)
     path = build(args.rows, args.groups)
     src = Source.of_table("routed")
     columns = list(demo.DEMO_COLUMNS)
