@@ -40,7 +40,8 @@ import numpy as np
 
 from . import categorical as cat
 from . import features as F
-from . import sqlgen, store_groups, store_history
+from . import sqlgen, store_history
+from .lazy import lazy_module
 from .engines import Engine, result_rows
 from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
     EngineError, InputError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
@@ -76,6 +77,9 @@ from .stages import (
 from .segmenters import nearest
 from .stages import axes_text
 from .sqlgen import Grid, Source
+
+#: what differs for a --within store, imported only by such a store's build and refresh
+store_groups = lazy_module("tillite.store_groups")
 
 __all__ = [
     "StoreError",
