@@ -768,13 +768,14 @@ def test_a_refresh_of_few_partitions_leaves_reclaiming_the_replaced_cells_to_eve
     assert default > 0
     monkeypatch.setattr(S, "COMPACT_EVERY", 4)  # 12 partitions: one replaced is at most 1/4 of them
     seen = []
-    for day in ("2026-01-02", "2026-01-03", "2026-01-04"):  # versions 2, 3, 4
+    for day in ("2026-01-02", "2026-01-03", "2026-01-04", "2026-01-05"):  # versions 1 to 4 (a build is version 0)
         engine.con.execute(f"UPDATE meter_days SET litres = litres * 1.5 WHERE day = DATE '{day}'")
         S.refresh(engine, info.name)
         seen.append(_vacuum_tasks(engine))
-    assert seen == [0, 0, default]
-    engine.con.execute("UPDATE meter_days SET litres = litres * 1.5 WHERE day = DATE '2026-01-05'")
+    assert seen == [0, 0, 0, default]
+    engine.con.execute("UPDATE meter_days SET litres = litres * 1.5 WHERE day = DATE '2026-01-01'")
     S.refresh(engine, info.name)  # version 5: deferred again
+    assert _vacuum_tasks(engine) == 0
     engine.con.execute("UPDATE meter_days SET litres = litres * 1.5 WHERE day >= DATE '2026-01-06'")
     S.refresh(engine, info.name)  # more than 1/4 of the partitions replaced: vacuumed now
     assert _vacuum_tasks(engine) == default
