@@ -5,7 +5,9 @@
 Builds a small model once (in /tmp), then runs each command --runs times in a
 fresh interpreter and prints the median wall time beside its target (0.25 s),
 with a bare `python -c pass` for scale and the heavy modules each command
-imported.  Not a pass/fail test: read the figures (the machine may be loaded).
+imported; and how long a refresh command's imports take (no target of their
+own: they are most of a refresh of one partition on 3M rows).  Not a pass/fail
+test: read the figures (the machine may be loaded).
 """
 
 from __future__ import annotations
@@ -20,6 +22,8 @@ from pathlib import Path
 
 SRC = Path(__file__).resolve().parent.parent / "src"
 TARGET_SECONDS = 0.25
+#: what a refresh command imports before it runs its first statement
+REFRESH_IMPORTS = "import tillite.cli, tillite.cli.store, tillite.store, sqlglot.generators.duckdb, duckdb"
 HEAVY = ("numpy", "sqlglot", "duckdb", "psycopg", "pyspark", "scipy", "sklearn")
 
 
@@ -77,6 +81,10 @@ def main() -> None:
         secs = wall(py + ["-m", "tillite.cli", *argv], args.runs)
         mark = "ok" if secs <= TARGET_SECONDS else "MISSED"
         print(f"{label:<32}{secs:>10.3f}{TARGET_SECONDS:>10.2f}  {', '.join(heavy_imports(argv)) or 'none'}  ({mark})")
+    # what `tillite refresh` and `tillite store build` import before their first statement (no target of its own)
+    libraries = wall(py + ["-c", "import numpy, sqlglot, sqlglot.generators.duckdb, duckdb, click"], args.runs)
+    store_path = wall(py + ["-c", REFRESH_IMPORTS], args.runs)
+    print(f"{'imports of a refresh':<32}{store_path:>10.3f}{'':>10}  of which numpy, sqlglot, duckdb, click alone {libraries:.3f}")
 
 
 if __name__ == "__main__":

@@ -692,3 +692,23 @@ def test_into_a_missing_schema_names_into_not_a_raw_catalog_error(tmp_path, blob
     line = assert_one_error_line(res, "--into missing_schema.x", "schema missing_schema does not exist")
     assert "Catalog Error" not in line
     assert run_cli("label", blobs_db_copy, "-t", "points", "-m", out, "--into", "main.x", "-q").exit_code == 0
+
+
+def test_a_refresh_command_imports_neither_numpy_ma_nor_the_within_modules_on_a_table_with_nulls(tmp_path):
+    import subprocess
+    import sys
+
+    db = tmp_path / "nulls.duckdb"
+    con = duckdb.connect(str(db))
+    con.execute("CREATE TABLE t AS SELECT i % 4 AS day, CASE WHEN i % 50 = 0 THEN NULL ELSE (i % 97) / 7.0 END AS a, "
+                "(i % 13) * 1.5 AS b FROM range(4000) r(i)")
+    con.close()
+    assert run_cli("store", "build", db, "-t", "t", "-c", "a,b", "--partition-by", "day", "--k", "3", "-q").exit_code == 0
+    con = duckdb.connect(str(db))
+    con.execute("UPDATE t SET b = b + 1 WHERE day = 2")
+    con.close()
+    code = (f"from tillite.cli import main\nmain(['refresh', {str(db)!r}, '--store', 't', '-q'], standalone_mode=False)\n"
+            "import sys; print('numpy.ma' in sys.modules, 'tillite.store_groups' in sys.modules, 'tillite.cli.report' in sys.modules)")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    # reference: sys.modules of the fresh interpreter after the command
+    assert "1 changed" in done.stdout and done.stdout.split()[-3:] == ["False", "False", "False"], done.stdout

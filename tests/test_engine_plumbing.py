@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from sqlglot import exp
 
-from tillite.engines import DuckDBEngine, OpenedSource, open_database, open_source
+from tillite.engines import DuckDBEngine, OpenedSource, open_database, open_source, result_rows
 
 from conftest import write_table
 
@@ -85,3 +85,20 @@ def test_the_duckdb_transaction_helper_commits_all_or_nothing():
         con.execute("INSERT INTO t VALUES (2)")
     assert con.execute("SELECT count(*) FROM t").fetchone()[0] == 2
     con.close()
+
+
+def test_query_rows_gives_the_values_of_the_numpy_columns_and_none_for_null(tmp_path):
+    engine = DuckDBEngine(str(tmp_path / "r.duckdb"))
+    engine.con.execute("CREATE TABLE r (s VARCHAR, i BIGINT, j INTEGER, d DOUBLE, b BOOLEAN)")
+    engine.con.execute("INSERT INTO r VALUES ('a', 1, 2, 0.5, true), (NULL, NULL, NULL, NULL, NULL), ('', -3, 0, 'NaN', false)")
+    statement = exp.select("*").from_("r")
+    rows = engine.query_rows(statement)
+    # reference: DuckDB's fetchnumpy columns (masked where NULL), read value by value
+    expected = result_rows(engine.query(statement))
+    assert [list(r) for r in rows] == [list(r) for r in expected] == [["s", "i", "j", "d", "b"]] * 3
+    for got, want in zip(rows, expected):
+        for name in got:
+            g, w = got[name], want[name]
+            assert type(g) is type(w) and (g == w or (g != g and w != w)), (name, g, w)
+    assert rows[1] == dict.fromkeys("sijdb")
+    engine.close()

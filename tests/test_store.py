@@ -756,3 +756,44 @@ def test_a_refresh_that_finds_no_change_is_recorded_and_status_says_so(built):
     assert res.exit_code == 0, res.output
     assert "last refresh never" not in res.output and "(found no change)" in res.output
     assert "ids 0, 1, 2, 3, 4" in res.output
+
+
+def _vacuum_tasks(engine):
+    return engine.con.execute("SELECT current_setting('max_vacuum_tasks')").fetchone()[0]
+
+
+def test_a_refresh_of_few_partitions_leaves_reclaiming_the_replaced_cells_to_every_nth_version(built, monkeypatch):
+    engine, info, _ = built
+    default = _vacuum_tasks(engine)  # reference: DuckDB's own setting (max_vacuum_tasks; 0 = no vacuum at a checkpoint)
+    assert default > 0
+    monkeypatch.setattr(S, "COMPACT_EVERY", 4)  # 12 partitions: one replaced is at most 1/4 of them
+    seen = []
+    for day in ("2026-01-02", "2026-01-03", "2026-01-04", "2026-01-05"):  # versions 1 to 4 (a build is version 0)
+        engine.con.execute(f"UPDATE meter_days SET litres = litres * 1.5 WHERE day = DATE '{day}'")
+        S.refresh(engine, info.name)
+        seen.append(_vacuum_tasks(engine))
+    assert seen == [0, 0, 0, default]
+    engine.con.execute("UPDATE meter_days SET litres = litres * 1.5 WHERE day = DATE '2026-01-01'")
+    S.refresh(engine, info.name)  # version 5: deferred again
+    assert _vacuum_tasks(engine) == 0
+    engine.con.execute("UPDATE meter_days SET litres = litres * 1.5 WHERE day >= DATE '2026-01-06'")
+    S.refresh(engine, info.name)  # more than 1/4 of the partitions replaced: vacuumed now
+    assert _vacuum_tasks(engine) == default
+    assert_store_equals_fresh_cell_pass(engine, info)
+
+
+def test_cells_replaced_by_deferred_refreshes_read_back_whole_from_the_closed_file(demo_db, monkeypatch):
+    monkeypatch.setattr(S, "COMPACT_EVERY", 4)
+    engine = DuckDBEngine(str(demo_db))
+    info, _ = S.build(engine, Source.of_table("meter_days"), COLS, S.PartitionSpec(("day",)), Settings(k=5, refine_passes=0))
+    engine.close()
+    for day in ("2026-01-02", "2026-01-03"):
+        con = duckdb.connect(str(demo_db))
+        con.execute(f"UPDATE meter_days SET litres = litres * 1.5 WHERE day = DATE '{day}'")
+        con.close()
+        engine = DuckDBEngine(str(demo_db))
+        S.refresh(engine, info.name)
+        engine.close()  # its checkpoint leaves the replaced cells unreclaimed
+    engine = DuckDBEngine(str(demo_db))
+    assert_store_equals_fresh_cell_pass(engine, info)
+    engine.close()

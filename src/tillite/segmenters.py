@@ -548,10 +548,10 @@ def _kmeans(cells: CF, k: int, weights: np.ndarray | None, n_init: int, max_iter
     mass = cells.n
     within = F.sse(cells, w_col)
     tick = _Ticker(progress)
-    rng = np.random.default_rng(seed)
     if init is not None:
         starts = [np.asarray(init, dtype=np.float64) * w_col[None, :]]
     else:
+        rng = np.random.default_rng(seed)  # only seeding draws (a warm start need not import numpy.random)
         if len(x) * k * 2 * max(1, n_init) <= BATCH_RESTARTS_BELOW:
             brief = _brief_restarts_together(x, mass, k, 2 * max(1, n_init), rng)
             for r, got in enumerate(brief):

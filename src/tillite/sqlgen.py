@@ -682,13 +682,25 @@ def partition_predicate(text: str, partition_columns: Sequence[str], target: Tar
     return tree
 
 
-def merged_cells_statement(cells_table: str, key_names: Sequence[str], d: int) -> exp.Select:
-    """The store's cells summed over partitions: one CF per grid cell (NULL key = skipped rows)."""
+def merged_cells_statement(cells_table: str, key_names: Sequence[str], d: int, nan_for_null: bool = False) -> exp.Select:
+    """The store's cells summed over partitions: one CF per grid cell (NULL key = skipped rows).
+
+    ``nan_for_null`` (every key a grid key, all DOUBLE): NULLs come back as NaN, which only the
+    skipped rows' groups hold (a usable row's keys and sums are finite), so no column has a NULL
+    and DuckDB need not import numpy.ma to return it.
+    """
     keys = [col(k) for k in key_names]
     aggs = [exp.alias_(exp.Sum(this=col("n")), "n", quoted=True)]
     aggs += [exp.alias_(exp.Sum(this=col(f"ls{j}")), f"ls{j}", quoted=True) for j in range(d)]
     aggs += [exp.alias_(exp.Sum(this=col(f"ss{j}")), f"ss{j}", quoted=True) for j in range(d)]
-    return exp.select(*keys, *aggs).from_(table_name(cells_table)).group_by(*[k.copy() for k in keys])
+    merged = exp.select(*keys, *aggs).from_(table_name(cells_table)).group_by(*[k.copy() for k in keys])
+    if not nan_for_null:
+        return merged
+    nan = exp.cast(exp.Literal.string("NaN"), exp.DataType.build("DOUBLE"))
+    floats = [*key_names, *(f"{s}{j}" for s in ("ls", "ss") for j in range(d))]
+    out = {name: exp.alias_(exp.Coalesce(this=col(name), expressions=[nan.copy()]), name, quoted=True) for name in floats}
+    out["n"] = col("n")
+    return exp.select(*[out[n] for n in [*key_names, "n", *floats[len(key_names):]]]).from_(subquery(merged, internal("m")))
 
 
 def insert_select_statement(table: str, select: exp.Select) -> exp.Insert:
@@ -1480,7 +1492,18 @@ def threads_statement() -> exp.Select:
 
 def set_threads_statement(threads: int) -> exp.Set:
     """DuckDB: ``SET threads = n``."""
-    item = exp.SetItem(this=exp.EQ(this=exp.column("threads"), expression=exp.Literal.number(int(threads))))
+    return set_number_statement("threads", threads)
+
+
+def setting_statement(setting: str) -> exp.Select:
+    """DuckDB: a setting's current value as text, as ``value``."""
+    value = exp.Anonymous(this="current_setting", expressions=[exp.Literal.string(setting)])
+    return exp.select(exp.alias_(exp.cast(value, "VARCHAR"), "value", quoted=True))
+
+
+def set_number_statement(setting: str, value: int) -> exp.Set:
+    """DuckDB: ``SET setting = n`` (a setting named by tillite, never by the user)."""
+    item = exp.SetItem(this=exp.EQ(this=exp.column(setting), expression=exp.Literal.number(int(value))))
     return exp.Set(expressions=[item])
 
 

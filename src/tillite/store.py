@@ -40,8 +40,9 @@ import numpy as np
 
 from . import categorical as cat
 from . import features as F
-from . import sqlgen, store_groups, store_history
-from .engines import Engine
+from . import sqlgen, store_history
+from .lazy import lazy_module
+from .engines import Engine, result_rows
 from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
     EngineError, InputError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
 )
@@ -76,6 +77,9 @@ from .stages import (
 from .segmenters import nearest
 from .stages import axes_text
 from .sqlgen import Grid, Source
+
+#: what differs for a --within store, imported only by such a store's build and refresh
+store_groups = lazy_module("tillite.store_groups")
 
 __all__ = [
     "StoreError",
@@ -241,7 +245,7 @@ def choose_cells_table(engine: Engine, store: str) -> str:
     the folded name with the first free suffix _2, _3, ... when another store
     (or any table, ours or the user's) already has it.
     """
-    registry = {r["store"]: r["cells_table"] for r in _rows(engine.query(sqlgen.select_where(STORES, None, ["store", "cells_table"])))}
+    registry = {r["store"]: r["cells_table"] for r in engine.query_rows(sqlgen.select_where(STORES, None, ["store", "cells_table"]))}
     if store in registry:
         return registry[store]
     taken = {t.lower() for t in registry.values()} | {t.split(".")[-1].lower() for t in engine.tables()}
@@ -260,7 +264,7 @@ def store_tables(engine: Engine, store: str | None = None) -> list[str]:
     if STORES not in known:
         return []
     where = sqlgen.equals_all({"store": store}) if store is not None else None
-    cells = [r["cells_table"] for r in _rows(engine.query(sqlgen.select_where(STORES, where, ["cells_table"])))]
+    cells = [r["cells_table"] for r in engine.query_rows(sqlgen.select_where(STORES, where, ["cells_table"]))]
     return [STORES, PARTS, LABELS, *sorted(cells)]
 
 
@@ -314,17 +318,7 @@ def _source_from_dict(data: dict) -> Source:
 
 
 def _rows(got: dict[str, np.ndarray]) -> list[dict[str, Any]]:
-    names = list(got)
-    count = len(got[names[0]]) if names else 0
-    out = []
-    for i in range(count):
-        row = {}
-        for n in names:
-            v = got[n][i]
-            masked = np.ma.isMaskedArray(got[n]) and np.ma.getmaskarray(got[n])[i]
-            row[n] = None if masked else (v.item() if hasattr(v, "item") else v)
-        out.append(row)
-    return out
+    return result_rows(got)
 
 
 # ----------------------------------------------------------------------------- partitions
@@ -423,10 +417,9 @@ def fingerprint_partitions(
 
 
 def _stored_fingerprints(engine: Engine, store: str) -> dict[str, Fingerprint]:
-    got = engine.query(sqlgen.select_where(PARTS, sqlgen.equals_all({"store": store})))
     return {
         r["part"]: Fingerprint(int(r["rows"]), str(r["fingerprint"]), r["file_size"], r["file_mtime"], json.loads(r["part_values"]))
-        for r in _rows(got)
+        for r in engine.query_rows(sqlgen.select_where(PARTS, sqlgen.equals_all({"store": store})))
     }
 
 
@@ -449,14 +442,14 @@ def load(engine: Engine, store: str) -> StoreInfo:
     inside a transaction (a failed read would end a PostgreSQL one).
     """
     try:
-        got = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": store}))))
+        got = engine.query_rows(sqlgen.select_where(STORES, sqlgen.equals_all({"store": store})))
     except Exception:
         known = {t.split(".")[-1].lower() for t in engine.tables()}
         if STORES not in known:
             raise StoreError(f"no summary store here (table {STORES} not found); build one with `tillite store build`") from None
         raise
     if not got:
-        names = [r["store"] for r in _rows(engine.query(sqlgen.select_where(STORES, None, ["store"])))]
+        names = [r["store"] for r in engine.query_rows(sqlgen.select_where(STORES, None, ["store"]))]
         raise StoreError(f"store {store} not found; stores here: {', '.join(names) if names else '(none)'}")
     r = got[0]
     return StoreInfo(
@@ -499,7 +492,7 @@ def _settings_dict(settings: Settings) -> dict[str, Any]:
 
 def merged_cells(engine: Engine, cells_table: str, grid: Grid, d: int) -> tuple[CF, np.ndarray, int]:
     """All partitions' cells summed per grid cell: (cells on grid units, keys, skipped rows)."""
-    got = engine.query(sqlgen.merged_cells_statement(cells_table, grid.key_names(), d))
+    got = engine.query(sqlgen.merged_cells_statement(cells_table, grid.key_names(), d, nan_for_null=True))
     return cells_from_result(got, grid, d)
 
 
@@ -951,7 +944,7 @@ def build(
     if source.table and source.table[-1].lower().startswith("tillite_"):
         raise InputError(f"{source.label} is one of tillite's own tables; a store summarises the user's tables")
     ensure_tables(engine)
-    exists = _rows(engine.query(sqlgen.select_where(STORES, sqlgen.equals_all({"store": name}), ["store"])))
+    exists = engine.query_rows(sqlgen.select_where(STORES, sqlgen.equals_all({"store": name}), ["store"]))
     if exists and not replace:
         raise StoreExists(f"store {name} already exists; refresh it, or rebuild with {{replace}}", "replace",
                           spelled={"replace": "replace=True"})
@@ -1179,9 +1172,23 @@ def refresh(
                 before_commit()
     except TransactionConflict:  # the transaction rolled back: the store is as it was
         raise _busy(store) from None
+    _vacuum_later(engine, info.version + 1, len(gone), len(stored) + len(new))
     report.model = model
     report.seconds["total"] = time.perf_counter() - t0
     return report
+
+
+#: A refresh leaves the cells it deleted for a later checkpoint to reclaim, except at every COMPACT_EVERY-th
+#: version of the store and when it replaced more than 1/COMPACT_EVERY of the partitions: so what is left
+#: stays below about the size of the cells table itself.
+COMPACT_EVERY = 16
+
+
+def _vacuum_later(engine: Engine, version: int, replaced: int, partitions: int) -> None:
+    """Defer reclaiming the deleted cells where the engine can (DuckDB: ``defer_vacuum``), or vacuum now when it is due."""
+    defer = getattr(engine, "defer_vacuum", None)
+    if defer is not None:
+        defer(version % COMPACT_EVERY != 0 and replaced * COMPACT_EVERY <= partitions)
 
 
 def _seeding_inputs(
@@ -1393,7 +1400,7 @@ def _save_model(engine: Engine, info: StoreInfo, model: Model, settings: Setting
 
 def _relabel(engine: Engine, info: StoreInfo, model: Model) -> None:
     """Re-create the store's registered label views/tables with the current model."""
-    for r in _rows(engine.query(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": info.name})))):
+    for r in engine.query_rows(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": info.name}))):
         if store_owns_label(engine, r["name"], info.name):  # never drops what it did not make: warns and skips
             label_relation(engine, info.source, model, r["name"], materialize=bool(r["materialized"]), replace=True,
                            in_transaction=True, store=info.name)
@@ -1433,7 +1440,7 @@ def drop(engine: Engine, store: str) -> list[str]:
             engine.execute(st)
         _unmark_labels(engine, store)
         engine.execute(sqlgen.delete_statement(LABELS, sqlgen.equals_all({"store": store})))
-        left = _rows(engine.query(sqlgen.select_where(STORES, None, ["store"])))
+        left = engine.query_rows(sqlgen.select_where(STORES, None, ["store"]))
         store_history.forget(engine, store, drop_table=not left)
         if not left:
             for table in (STORES, PARTS, LABELS):
@@ -1445,7 +1452,7 @@ def drop(engine: Engine, store: str) -> list[str]:
 def registered_labels(engine: Engine, store: str) -> list[str]:
     """The label views/tables registered by ``store`` (re-created by its refreshes); none for an unknown store."""
     try:
-        return [r["name"] for r in _rows(engine.query(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": store}))))]
+        return [r["name"] for r in engine.query_rows(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": store})))]
     except Exception:  # no registry table: drop says why in its own words
         return []
 
@@ -1453,7 +1460,7 @@ def registered_labels(engine: Engine, store: str) -> list[str]:
 def _unmark_labels(engine: Engine, store: str) -> None:
     """The store's registered label views/tables that still carry its mark become plain labels of
     tillite's (no longer re-created by refreshes, replaced by `label` without --replace)."""
-    for r in _rows(engine.query(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": store})))):
+    for r in engine.query_rows(sqlgen.select_where(LABELS, sqlgen.equals_all({"store": store}))):
         kind = engine.relation_kind(r["name"])
         if kind is not None and store_of_comment(engine.relation_comment(r["name"])) == store:
             engine.execute(sqlgen.mark_statement(r["name"], kind, owner_comment(None), engine.target))
@@ -1541,7 +1548,7 @@ def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, 
     """Partitions, rows, when summarised, the grid in use, and rows outside the built key range."""
     check_refresh_options(outside_warn=outside_warn)
     info = load(engine, store)
-    parts = _rows(engine.query(sqlgen.select_where(PARTS, sqlgen.equals_all({"store": store}))))
+    parts = engine.query_rows(sqlgen.select_where(PARTS, sqlgen.equals_all({"store": store})))
     specs = store_categories(info)
     cells_grid, keys, skipped = store_cells(engine, info.cells_table, info.grid, info.columns, specs)
     keys = _range_keys(keys, specs)

@@ -5,21 +5,21 @@ The group lives here; each command family is a module of its own
 report.py: report, name; macros.py: macros) built on shared.py (error
 handling, engine options, the settings options generated from
 tillite.settings). The command modules import shared.py, never this
-package, so there is no import cycle.
+package, so there is no import cycle.  A command's module is imported only
+when that command runs (or --help lists them all), so `tillite refresh`
+does not build the options of every other command first.
 """
 
 from __future__ import annotations
 
+import importlib
 import sys
+from collections.abc import Iterator, MutableMapping
 
 import click
 
 from .. import __version__
-from .macros import macros as macros_group
-from .report import name_command, report_command
-from .segment import demo_command, label_command, segment_command, show_command, sql_command
 from .shared import OPTION_NAMES, cli_message, user_errors
-from .store import refresh_command, store_group
 
 __all__ = ["main", "cli_message", "user_errors", "OPTION_NAMES"]
 
@@ -36,6 +36,52 @@ _HELP_AS_ERROR = getattr(click.exceptions, "NoArgsIsHelpError", ())
 
 def _one_line(err: click.UsageError) -> click.ClickException:
     return err if isinstance(err, _HELP_AS_ERROR) else UsageErrorInOneLine(err.format_message())
+
+
+#: Each command of the group: its name, and the module of this package and the name it is defined as.
+COMMANDS = {
+    "segment": ("segment", "segment_command"),
+    "label": ("segment", "label_command"),
+    "show": ("segment", "show_command"),
+    "sql": ("segment", "sql_command"),
+    "demo": ("segment", "demo_command"),
+    "report": ("report", "report_command"),
+    "name": ("report", "name_command"),
+    "store": ("store", "store_group"),
+    "refresh": ("store", "refresh_command"),
+    "macros": ("macros", "macros"),
+}
+
+
+class LazyCommands(MutableMapping):
+    """The group's commands by name (click's ``Group.commands``), each module imported on first look-up."""
+
+    def __init__(self, where: dict[str, tuple[str, str]]) -> None:
+        self._where = dict(where)
+        self._loaded: dict[str, click.Command] = {}
+
+    def __getitem__(self, name: str) -> click.Command:
+        if name not in self._loaded:
+            module, attr = self._where[name]
+            self._loaded[name] = getattr(importlib.import_module(f".{module}", __name__), attr)
+        return self._loaded[name]
+
+    def __setitem__(self, name: str, command: click.Command) -> None:
+        self._where.pop(name, None)
+        self._loaded[name] = command
+
+    def __delitem__(self, name: str) -> None:
+        self._where.pop(name, None)
+        self._loaded.pop(name, None)
+
+    def __iter__(self) -> Iterator[str]:
+        return iter({**dict.fromkeys(self._where), **dict.fromkeys(self._loaded)})
+
+    def __len__(self) -> int:
+        return len(set(self._where) | set(self._loaded))
+
+    def __contains__(self, name: object) -> bool:
+        return name in self._where or name in self._loaded
 
 
 class OneLineErrorsGroup(click.Group):
@@ -65,9 +111,7 @@ def main() -> None:
     """
 
 
-for _command in (segment_command, label_command, show_command, sql_command, demo_command,
-                 report_command, name_command, store_group, refresh_command, macros_group):
-    main.add_command(_command)
+main.commands = LazyCommands(COMMANDS)
 
 
 if __name__ == "__main__":  # pragma: no cover
