@@ -1,6 +1,6 @@
 """Cost of labelling rows through a cell map (outlier group), beside the same pass without one.
 
-    python benchmarks/bench_cell_map.py [--rows 1000000] [--tree-budget 2000] [--repeat 5] [--postgres]
+    python benchmarks/bench_cell_map.py [--rows 1000000] [--tree-budget 2000] [--repeat 5] [--postgres] [--db PATH]
 
 Builds the demo database once (in /tmp), segments it with a small CF tree
 budget so an outlier group (segment -1, labelled through its cells) exists,
@@ -53,8 +53,10 @@ def main() -> None:
     ap.add_argument("--tree-budget", type=int, default=2000)
     ap.add_argument("--repeat", type=int, default=5)
     ap.add_argument("--postgres", action="store_true", help="also time the refine pass and the view read on a throwaway PostgreSQL server")
+    ap.add_argument("--db", type=Path, default=None,
+                    help="the demo DuckDB file to build or reuse (default /tmp/tillite-bench-demo-<rows>.duckdb)")
     args = ap.parse_args()
-    db = Path(f"/tmp/tillite-bench-demo-{args.rows}.duckdb")
+    db = args.db or Path(f"/tmp/tillite-bench-demo-{args.rows}.duckdb")
     if not db.exists():
         demo.build_demo_database(str(db), rows=args.rows, days=60, seed=7, replace=True)
     engine = DuckDBEngine(str(db))
