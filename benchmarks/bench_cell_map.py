@@ -1,10 +1,10 @@
 """Cost of labelling rows through a cell map (outlier group), beside the same pass without one.
 
-    python benchmarks/bench_cell_map.py [--rows 1000000] [--tree-budget 2000] [--repeat 5] [--postgres]
+    python benchmarks/bench_cell_map.py [--rows 1000000] [--tree-budget 2000] [--repeat 5] [--postgres] [--db PATH]
 
 Builds the demo database once (in /tmp), segments it with a small CF tree
 budget so an outlier group (segment -1, labelled through its cells) exists,
-then times in one process, median of --repeat runs each:
+then times in one process, median of --repeat runs each (and says how many rows skip their cell key):
   - a refine pass with the map held as a temporary relation (what `segment` does),
     with the map inline (what engines without temporary relations get), and without a map;
   - a materialized label table with and without the map;
@@ -47,14 +47,31 @@ def median_times(jobs: dict[str, Callable[[], object]], repeat: int) -> dict[str
     return {name: (statistics.median(w for w, _ in t), statistics.median(c for _, c in t)) for name, t in times.items()}
 
 
+def skipping_share(engine: DuckDBEngine, cols: list[str], model) -> float:
+    """The share of usable rows nearer some centroid than that centroid's bound (``CellMap.nearest_bound``),
+    which the passes therefore give no cell key: numpy on the rows."""
+    import numpy as np
+
+    assign = model.assignment()
+    got = engine.con.execute("SELECT " + ", ".join(f'CAST("{c}" AS DOUBLE) AS "{c}"' for c in cols) + " FROM meter_days").fetchnumpy()
+    x = np.column_stack([np.ma.filled(got[c], np.nan) for c in cols])
+    u = (x - np.asarray(assign.center)) * np.asarray(assign.inv_scale) * np.asarray(assign.weights)
+    c = np.asarray(assign.centroids) * np.asarray(assign.weights)
+    d = np.column_stack([((u - ci) ** 2).sum(axis=1) for ci in c])
+    ok = np.isfinite(d).all(axis=1)
+    return float((d[ok] < model.cell_map_spec().nearest_bound(assign)[None, :]).any(axis=1).mean())
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--rows", type=int, default=1_000_000)
     ap.add_argument("--tree-budget", type=int, default=2000)
     ap.add_argument("--repeat", type=int, default=5)
     ap.add_argument("--postgres", action="store_true", help="also time the refine pass and the view read on a throwaway PostgreSQL server")
+    ap.add_argument("--db", type=Path, default=None,
+                    help="the demo DuckDB file to build or reuse (default /tmp/tillite-bench-demo-<rows>.duckdb)")
     args = ap.parse_args()
-    db = Path(f"/tmp/tillite-bench-demo-{args.rows}.duckdb")
+    db = args.db or Path(f"/tmp/tillite-bench-demo-{args.rows}.duckdb")
     if not db.exists():
         demo.build_demo_database(str(db), rows=args.rows, days=60, seed=7, replace=True)
     engine = DuckDBEngine(str(db))
@@ -68,6 +85,7 @@ def main() -> None:
     print(f"{args.rows:,} demo rows, {len(cell_map.keys):,} cells in the map "
           f"({model.extras.get('outliers', {}).get('rows', 0):,} rows in the outlier group); median of {args.repeat}, "
           "the jobs of each table taking turns")
+    print(f"rows that skip their cell key (nearer some centroid than its bound): {skipping_share(engine, cols, model):.1%}")
 
     def refine_held() -> None:
         with temporary_cell_map(engine, cell_map) as held:

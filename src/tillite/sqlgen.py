@@ -266,7 +266,7 @@ def internal(name: str) -> str:
 
 
 def to_double(e: exp.Expression) -> exp.Expression:
-    return exp.cast(e, exp.DataType.build("DOUBLE"))
+    return exp.cast(e, exp.DataType.build(exp.DataType.Type.DOUBLE))
 
 
 def is_finite(e: exp.Expression, target: TargetLike) -> exp.Expression:
@@ -404,7 +404,7 @@ def sample_statement(
     ).from_(rel)
     if by_filter is not None:
         inner = inner.where(by_filter)
-    outer = exp.select(*[col(n) for n in names + texts]).from_(subquery(inner, internal("s"))).where(usable_rows(names, target))
+    outer = exp.select(*[col(n) for n in names + texts]).from_(subquery(inner, internal("s")), copy=False).where(usable_rows(names, target))
     if limit is not None:
         outer = outer.limit(num(int(limit)))
     return outer
@@ -557,11 +557,11 @@ def cells_statement(
         v = u
     stage2 = exp.select(
         *[c.copy() for c in part_cols], *[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *summed
-    ).from_(subquery(stage1, internal("a")))
+    ).from_(subquery(stage1, internal("a")), copy=False)
     part_text = [exp.alias_(partition.key(), "part", quoted=True)] if partition is not None else []
     part_text += [col(f"q{i}") for i in range(len(extra_keys))]
     group = [*part_cols, *[col(n) for n in names]]
-    return exp.select(*part_text, *[col(n) for n in names], *_sums(v, target)).from_(subquery(stage2, internal("b"))).group_by(
+    return exp.select(*part_text, *[col(n) for n in names], *_sums(v, target)).from_(subquery(stage2, internal("b")), copy=False).group_by(
         *[c.copy() for c in group]
     )
 
@@ -591,7 +591,7 @@ def fingerprint_statement(
         inner = inner.where(where)
     return exp.select(
         exp.alias_(partition.key(), "part", quoted=True), *partition.value_columns(), col("rows"), col("fingerprint")
-    ).from_(subquery(inner, internal("f")))
+    ).from_(subquery(inner, internal("f")), copy=False)
 
 
 #: Dialects whose 64-bit row hash ``row_hash`` builds.
@@ -633,7 +633,7 @@ def row_text(columns: Sequence[str]) -> exp.Expression:
 def distinct_count_statement(source: Source, columns: Sequence[str], limit: int) -> exp.Select:
     """How many distinct combinations of ``columns`` the source holds, counting no further than ``limit``."""
     distinct = exp.select(*[col(c) for c in columns]).from_(source.relation()).distinct().limit(num(int(limit)))
-    return exp.select(exp.alias_(exp.Count(this=exp.Star()), "partitions", quoted=True)).from_(subquery(distinct, internal("d")))
+    return exp.select(exp.alias_(exp.Count(this=exp.Star()), "partitions", quoted=True)).from_(subquery(distinct, internal("d")), copy=False)
 
 
 #: Expression kinds a partition predicate (``refresh --where``) may hold: comparisons, logic,
@@ -853,8 +853,8 @@ class CellMap:
         """The map's rows typed as the joins read them (keys DOUBLE, segment INT), to fill a table once:
         from ``table`` (a temporary relation holding them) or an inline VALUES list."""
         names = self.column_names()
-        typed = [exp.cast(col(n), exp.DataType.build("DOUBLE")) for n in names[:-1]]
-        typed.append(exp.cast(col(names[-1]), exp.DataType.build("INT")))
+        typed = [exp.cast(col(n), exp.DataType.build(exp.DataType.Type.DOUBLE)) for n in names[:-1]]
+        typed.append(exp.cast(col(names[-1]), exp.DataType.build(exp.DataType.Type.INT)))
         return exp.select(*[exp.alias_(e, n, quoted=True) for e, n in zip(typed, names)]).from_(self.relation())
 
     def values_relation(self) -> exp.Values:
@@ -866,31 +866,103 @@ class CellMap:
         table_alias = exp.TableAlias(this=exp.to_identifier(alias, quoted=True), columns=[exp.to_identifier(n, quoted=True) for n in names])
         return exp.Values(expressions=rows, alias=table_alias)
 
+    def axis_coordinates(self, grid_v: Sequence[str]) -> list[exp.Expression]:
+        """Each row's per-axis grid coordinates from its centred grid values ``grid_v``: its keys before the floor."""
+        factors = self.grid.key_factors()
+        return [linear_form(grid_v, factors[:, a]) for a in range(factors.shape[1])]
+
     def axis_keys(self, grid_v: Sequence[str], target: TargetLike) -> list[exp.Expression]:
         """Each row's per-axis cell keys from its centred grid values ``grid_v``, computed exactly as the cell pass does."""
-        factors = self.grid.key_factors()
-        return [floor_of(linear_form(grid_v, factors[:, a]), target) for a in range(factors.shape[1])]
+        return [floor_of(t, target) for t in self.axis_coordinates(grid_v)]
 
-    def row_codes(self, key_cols: Sequence[str]) -> list[exp.Expression]:
-        """A row's join keys from its per-axis keys (columns ``key_cols``): the packed code, NULL outside the
-        mapped cells' key range (so it matches nothing), or the keys themselves when they do not pack.
+    def row_codes(self, grid_v: Sequence[str], target: TargetLike, far: exp.Expression | None = None) -> list[exp.Expression]:
+        """A row's join keys from its centred grid values ``grid_v``: the packed code, NULL unless every
+        coordinate lies in the mapped cells' key range and ``far`` holds (so it matches nothing), or the
+        per-axis keys themselves (NULL unless ``far``) when they do not pack.
 
-        A range test (comparisons) rather than clamping each key with LEAST/GREATEST: in DuckDB the
-        clamps cost more than the floors and the join together (benchmarks/bench_cell_map.py)."""
+        The range test is on the coordinates before the floor (floor(t) in [lo, hi] exactly when
+        lo <= t < hi + 1), and the floors sit inside the CASE: rows that fail the test, or ``far``, pay
+        for neither.  ``far`` is ``nearest_bound``'s test; comparisons rather than clamping each key with
+        LEAST/GREATEST, which in DuckDB cost more than the floors and the join together
+        (benchmarks/bench_cell_map.py)."""
+        coords = self.axis_coordinates(grid_v)
         packing = self.packing()
         if packing is None:
-            return [col(k) for k in key_cols]
+            keys = [floor_of(t, target) for t in coords]
+            return keys if far is None else [case_when(far.copy(), k) for k in keys]
         low, strides = packing
         keys = self.key_array
-        inside = all_of([
-            exp.Between(this=col(k), low=num(float(lo)), high=num(float(hi)))
-            for k, lo, hi in zip(key_cols, keys.min(axis=0), keys.max(axis=0))
-        ])
+        tests = [] if far is None else [far]
+        for t, lo, hi in zip(coords, keys.min(axis=0), keys.max(axis=0)):
+            tests.append(exp.GTE(this=t.copy(), expression=num(float(lo))))
+            # past 2^53 every double is whole, so floor(t) <= hi is t <= hi (hi + 1 would round)
+            above = float(hi) + 1.0
+            tests.append(exp.LT(this=t.copy(), expression=num(above)) if above - float(hi) == 1.0
+                         else exp.LTE(this=t.copy(), expression=num(float(hi))))
         terms: list[exp.Expression] = []
-        for a, key in enumerate(key_cols):
-            shifted = exp.Sub(this=col(key), expression=num(float(low[a])))
+        for a, t in enumerate(coords):
+            shifted = exp.Sub(this=floor_of(t, target), expression=num(float(low[a])))
             terms.append(shifted if strides[a] == 1.0 else exp.Mul(this=num(float(strides[a])), expression=paren(shifted)))
-        return [case_when(inside, total_sum(terms))]
+        return [case_when(all_of(tests), total_sum(terms))]
+
+    def nearest_bound(self, assign: Assignment) -> np.ndarray:
+        """A squared distance below which no row lies in a mapped cell, 0 when none is known.
+
+        The distance is the refine pass's: best + ||u||_w^2, a row's squared weighted, scaled distance
+        to its nearest centroid.  A cell is the set where every grid coordinate t_a lies in
+        [key_a, key_a + 1]: one slab per axis.  The bound is the least, over mapped cells and
+        centroids, of the squared distance from the centroid to the cell, each slab widened by the SQL's
+        rounding of t_a, then lowered by the rounding of the row's distance (both far above double
+        rounding).  Per axis that distance is the gap of the centroid's t_a to the slab over the slab
+        normal's length in the distance's metric; the axes add when the normals are orthogonal in that
+        metric (a grid of the columns themselves), else the largest axis is the bound.  Axes over
+        columns without weight, and columns the grid does not bin, constrain nothing.
+        """
+        keys = self.key_array
+        if len(keys) == 0 or not assign.centroids:
+            return np.zeros(len(assign.centroids))
+        return _nearest_bound(self.grid, keys, assign)
+
+
+def _nearest_bound(grid: Grid, keys: np.ndarray, assign: Assignment) -> np.ndarray:
+    """``CellMap.nearest_bound`` on numpy arrays."""
+    factors = grid.key_factors()  # (d, p): t_a = sum_j F_ja (x_j - grid centre_j)
+    q = assign.norm_coefficients()  # distance = sum_j q_j (v_j - mu_ij)^2, v = x - assignment centre
+    s = np.asarray(assign.inv_scale, dtype=np.float64)
+    cents = np.asarray(assign.centroids, dtype=np.float64)
+    mu = np.divide(cents, s[None, :], out=np.zeros_like(cents), where=s[None, :] != 0)
+    shift = np.asarray(assign.center, dtype=np.float64) - np.asarray(grid.center, dtype=np.float64)
+    weighted = q > 0
+    used = (factors != 0).any(axis=0) & ~((factors != 0) & ~weighted[:, None]).any(axis=0)
+    if not used.any():
+        return np.zeros(len(cents))
+    f = factors[:, used][weighted]  # (d', p'): only weighted columns touch the kept axes
+    keys = keys[:, used]
+    inv_q = 1.0 / q[weighted]
+    gram = f.T @ (f * inv_q[:, None])
+    length = np.sqrt(np.diag(gram))
+    orthogonal = np.all(np.abs(gram - np.diag(np.diag(gram))) <= 1e-12 * np.outer(length, length))
+    at = (mu[:, weighted] + shift[weighted][None, :]) @ f  # (k, p'): each centroid's grid coordinates
+
+    def least(widen: np.ndarray) -> np.ndarray:
+        out = np.empty(len(at))
+        for i, t in enumerate(at):
+            gap = np.maximum(np.maximum(keys - widen - t[None, :], t[None, :] - (keys + 1.0 + widen)), 0.0) / length
+            sq = gap * gap
+            out[i] = (sq.sum(axis=1) if orthogonal else sq.max(axis=1)).min()
+        return out
+
+    plain = least(np.zeros(len(length)))
+    if not (plain > 0.0).any():
+        return np.zeros(len(at))
+    # a row that could be skipped lies within sqrt(plain_i) of a centroid, so each |x_j - grid centre_j| is at
+    # most reach_j, and its t_a is rounded by far less than 1e-9 * (1 + sum_j |F_ja| reach_j)
+    reach = np.abs(mu[:, weighted] + shift[weighted][None, :]).max(axis=0) + np.sqrt(1.01 * plain.max() * inv_q)
+    widened = least(1e-9 * (1.0 + np.abs(f).T @ reach))
+    # a row's distance sums terms up to (|c|_w + |u|_w)^2 <= (2 max|c|_w + sqrt(d))^2 in size
+    _, b = assign.score_coefficients()
+    size = (2.0 * float(np.sqrt(np.max(b))) + np.sqrt(widened)) ** 2
+    return np.maximum(widened - 1e-9 * size, 0.0)
 
 
 def _whole(value: float | int) -> exp.Expression:
@@ -905,6 +977,17 @@ def _whole(value: float | int) -> exp.Expression:
 #: (``_first_least_pairwise``); above it by LEAST and equality tests, which
 #: grow linearly rather than quadratically (benchmarks/bench_assignment.py).
 PAIRWISE_MAX_K = 8
+
+
+def fresh_select(*expressions: exp.Expression) -> exp.Select:
+    """SELECT of expressions built for this statement alone: taken as they are, not copied (copying each
+    layer's projections was most of the time spent building an assignment statement)."""
+    return exp.select(*expressions, copy=False)
+
+
+def fresh_alias(e: exp.Expression, name: str, quoted: bool = True) -> exp.Alias:
+    """e AS name, e taken as it is (see ``fresh_select``)."""
+    return exp.alias_(e, name, quoted=quoted, copy=False)
 
 
 def nearest_layers(
@@ -944,14 +1027,14 @@ def _first_least_pairwise(
     """
     k = len(score)
     if k == 1:
-        return exp.select(
-            exp.Star(), exp.alias_(col(score[0]), best, quoted=True), exp.alias_(num(ids[0]), nearest, quoted=True)
-        ).from_(subquery(scored, internal("b")))
+        return fresh_select(
+            exp.Star(), fresh_alias(col(score[0]), best, quoted=True), fresh_alias(num(ids[0]), nearest, quoted=True)
+        ).from_(subquery(scored, internal("b")), copy=False)
     ifs = [
         exp.If(this=all_of([exp.LTE(this=col(score[i]), expression=col(score[j])) for j in range(i + 1, k)]), true=num(ids[i]))
         for i in range(k - 1)
     ]
-    with_id = exp.select(exp.Star(), exp.alias_(exp.Case(ifs=ifs, default=num(ids[-1])), nearest, quoted=True)).from_(
+    with_id = fresh_select(exp.Star(), fresh_alias(exp.Case(ifs=ifs, default=num(ids[-1])), nearest, quoted=True)).from_(
         subquery(scored, internal("b"))
     )
     if fence:
@@ -959,7 +1042,7 @@ def _first_least_pairwise(
     its_score = exp.Case(
         this=col(nearest), ifs=[exp.If(this=num(sid), true=col(s)) for s, sid in zip(score[:-1], ids)], default=col(score[-1])
     )
-    return exp.select(exp.Star(), exp.alias_(its_score, best, quoted=True)).from_(subquery(with_id, internal("c")))
+    return fresh_select(exp.Star(), fresh_alias(its_score, best, quoted=True)).from_(subquery(with_id, internal("c")), copy=False)
 
 
 def _first_least_by_least(
@@ -967,11 +1050,95 @@ def _first_least_by_least(
 ) -> exp.Select:
     """best = LEAST(scores); nearest = the first i with s_i = best (a CASE)."""
     least = least_of([col(n) for n in score])
-    with_best = exp.select(exp.Star(), exp.alias_(least, best, quoted=True)).from_(subquery(scored, internal("b")))
+    with_best = fresh_select(exp.Star(), fresh_alias(least, best, quoted=True)).from_(subquery(scored, internal("b")), copy=False)
     if fence:
         with_best = scan_fence(with_best, target)
     first = exp.Case(ifs=[exp.If(this=exp.EQ(this=col(score[i]), expression=col(best)), true=num(sid)) for i, sid in enumerate(ids)])
-    return exp.select(exp.Star(), exp.alias_(first, nearest, quoted=True)).from_(subquery(with_best, internal("c")))
+    return fresh_select(exp.Star(), fresh_alias(first, nearest, quoted=True)).from_(subquery(with_best, internal("c")), copy=False)
+
+
+@dataclass
+class _Scored:
+    """The assignment layers' select and the names of what it carries (``_scored_rows``)."""
+
+    select: exp.Select
+    v: list[str]  # centred values
+    score: list[str]  # score_i = squared distance to centroid i less ||u||_w^2
+    grid_v: list[str]  # the grid's centred values (with a cell map)
+    codes: list[str]  # category codes (lookups)
+    norm: exp.Expression  # ||u||_w^2: a column with a cell map, else an expression of v
+    pick: exp.Expression  # the nearest centroid's id, NULL for unusable rows
+
+
+def _scored_rows(
+    source: Source,
+    columns: Sequence[str],
+    assign: Assignment,
+    target: Target,
+    keep_source: bool,
+    cell_map: CellMap | None,
+    fence: bool,
+    lookups: Sequence["CodeLookup"],
+) -> _Scored:
+    """Each row's scores, its least score (best) and the nearest centroid's id (nearest)."""
+    d, k = len(columns), len(assign.centroids)
+    v = [internal(f"v{j}") for j in range(d)]
+    score = [internal(f"s{i}") for i in range(k)]
+    src_cols = [exp.Star()] if keep_source else []
+    grid_v = [internal(f"g{j}") for j in range(d)] if cell_map is not None else []
+    codes = [internal(f"q{g}") for g in range(len(lookups))]
+    stage1 = fresh_select(
+        *src_cols,
+        *[fresh_alias(col(lk.code), q, quoted=True) for lk, q in zip(lookups, codes)],
+        *[fresh_alias(e, n, quoted=True) for e, n in zip(centered(columns, assign.center), v)],
+        *([fresh_alias(e, n, quoted=True) for e, n in zip(centered(columns, cell_map.grid.center), grid_v)] if cell_map else []),
+    ).from_(source.relation())
+    a, b = assign.score_coefficients()
+    passthrough = [exp.Star()] if keep_source else [col(n) for n in codes + v + grid_v]
+
+    def scored(i: int) -> exp.Expression:
+        form = linear_form(v, a[i], b[i])
+        for lk, q in zip(lookups, codes):
+            form = exp.Add(this=form, expression=lk.entry(i, col(q), target))
+        return form
+
+    # with a map the row's ||u||_w^2 is computed before the join too: DuckDB's arithmetic on a join's
+    # output (sliced vectors) cost several times as much as on the scan's (benchmarks/bench_cell_map.py)
+    nrm = internal("nrm")
+    norm = col(nrm) if cell_map is not None else _squared_norm(v, assign)
+    stage2 = fresh_select(
+        *passthrough,
+        fresh_alias(usable_rows(v, target), internal("ok"), quoted=True),
+        *[fresh_alias(scored(i), score[i], quoted=True) for i in range(k)],
+        *([fresh_alias(_squared_norm(v, assign), nrm, quoted=True)] if cell_map is not None else []),
+    ).from_(subquery(stage1, internal("a")), copy=False)
+    if fence:
+        stage2 = scan_fence(stage2, target)
+    stage3 = nearest_layers(stage2, score, assign.segment_ids(), internal("best"), internal("nearest"), target, fence)
+    pick = case_when(col(internal("ok")), col(internal("nearest")))
+    return _Scored(stage3, v, score, grid_v, codes, norm, pick)
+
+
+def _keyed_rows(scored: _Scored, cell_map: CellMap, assign: Assignment, target: Target, carried: Sequence[str] | None,
+                skip_near: bool) -> exp.Select:
+    """``scored``'s rows (the columns ``carried``, or all) plus their cell's join keys c0, c1, ...
+
+    ``skip_near``: a row nearer some centroid than that centroid's bound (``CellMap.nearest_bound``) lies
+    in no mapped cell, so its keys are NULL and never computed.  The tests go largest bound first
+    (about two per row on the demo).  Only where the scores are computed anyway: a view's count(*)
+    would otherwise compute them, which it now skips.  Not with category lookups: their scores hold
+    more than the distance.
+    """
+    bounds = cell_map.nearest_bound(assign) if skip_near else np.zeros(len(scored.score))
+    nrm = col(internal("nrm"))
+    far = [exp.GTE(this=exp.Add(this=col(scored.score[i]), expression=nrm.copy()), expression=num(float(bounds[i])))
+           for i in np.argsort(-bounds, kind="stable") if bounds[i] > 0.0]
+    keys = cell_map.row_codes(scored.grid_v, target, all_of(far) if far else None)
+    names = [internal(f"c{a}") for a in range(len(keys))]
+    return fresh_select(
+        *([col(n) for n in carried] if carried else [exp.Star()]),
+        *[fresh_alias(e, n, quoted=True) for e, n in zip(keys, names)],
+    ).from_(subquery(scored.select, internal("n")), copy=False)
 
 
 def _assignment_layers(
@@ -983,7 +1150,7 @@ def _assignment_layers(
     cell_map: CellMap | None = None,
     fence: bool | None = None,
     lookups: Sequence["CodeLookup"] = (),
-) -> tuple[exp.Select, str, str, list[str]]:
+) -> tuple[exp.Select, str, str, list[str], exp.Expression]:
     """A query with the segment of each row (NULL for unusable rows).
 
     The squared distance to centroid i is ||u||_w^2 + score_i with
@@ -1000,79 +1167,33 @@ def _assignment_layers(
     """
     target = target_for(target)
     fence = (not keep_source) if fence is None else fence
-    d, k = len(columns), len(assign.centroids)
-    v = [internal(f"v{j}") for j in range(d)]
-    score = [internal(f"s{i}") for i in range(k)]
+    scored = _scored_rows(source, columns, assign, target, keep_source, cell_map, fence, lookups)
     best, seg = internal("best"), internal("segment")
-    src_cols = [exp.Star()] if keep_source else []
-    grid_v = [internal(f"g{j}") for j in range(d)] if cell_map is not None else []
-    codes = [internal(f"q{g}") for g in range(len(lookups))]
-    stage1 = exp.select(
-        *src_cols,
-        *[exp.alias_(col(lk.code), q, quoted=True) for lk, q in zip(lookups, codes)],
-        *[exp.alias_(e, n, quoted=True) for e, n in zip(centered(columns, assign.center), v)],
-        *([exp.alias_(e, n, quoted=True) for e, n in zip(centered(columns, cell_map.grid.center), grid_v)] if cell_map else []),
-    ).from_(source.relation())
-    a, b = assign.score_coefficients()
-    passthrough = [exp.Star()] if keep_source else [col(n) for n in codes + v + grid_v]
-
-    def scored(i: int) -> exp.Expression:
-        form = linear_form(v, a[i], b[i])
-        for lk, q in zip(lookups, codes):
-            form = exp.Add(this=form, expression=lk.entry(i, col(q), target))
-        return form
-
-    # with a map the row's ||u||_w^2 is computed before the join too: DuckDB's arithmetic on a join's
-    # output (sliced vectors) cost several times as much as on the scan's (benchmarks/bench_cell_map.py)
-    nrm = internal("nrm")
-    norm = col(nrm) if cell_map is not None else _squared_norm(v, assign)
-    stage2 = exp.select(
-        *passthrough,
-        exp.alias_(usable_rows(v, target), internal("ok"), quoted=True),
-        *[exp.alias_(scored(i), score[i], quoted=True) for i in range(k)],
-        *([exp.alias_(_squared_norm(v, assign), nrm, quoted=True)] if cell_map is not None else []),
-    ).from_(subquery(stage1, internal("a")))
-    if fence:
-        stage2 = scan_fence(stage2, target)
-    ids = assign.segment_ids()
-    nearest = internal("nearest")
-    stage3 = nearest_layers(stage2, score, ids, best, nearest, target, fence)
-    pick = case_when(col(internal("ok")), col(nearest))
     if cell_map is None:
-        stage4 = exp.select(exp.Star(), exp.alias_(pick, seg, quoted=True)).from_(subquery(stage3, internal("n")))
-        return stage4, seg, best, v, norm
+        stage4 = fresh_select(exp.Star(), fresh_alias(scored.pick, seg, quoted=True)).from_(subquery(scored.select, internal("n")), copy=False)
+        return stage4, seg, best, scored.v, scored.norm
     # rows take their cell's segment when the cell is in the map: one hash join
-    # on the packed cell code (or on the per-axis keys) against a small relation
-    axis_keys = cell_map.axis_keys(grid_v, target)
-    axis_names = [internal(f"x{a_}") for a_ in range(len(axis_keys))]
-    map_names = cell_map.column_names()
-    key_names = [internal(f"c{a_}") for a_ in range(len(map_names) - 1)]
+    # on the packed cell code (or on the per-axis keys) against a small relation;
     # the join carries what the pass needs, not the grid's own centred values
-    carried = [] if keep_source else [*v, internal("ok"), *score, best, nearest, nrm]
-
-    def carry() -> list[exp.Expression]:
-        return [col(n) for n in carried] if carried else [exp.Star()]
-
-    on_axes = exp.select(*carry(), *[exp.alias_(e, n, quoted=True) for e, n in zip(axis_keys, axis_names)]).from_(
-        subquery(stage3, internal("n"))
-    )
-    keyed = exp.select(
-        *carry(),
-        *[exp.alias_(e, n, quoted=True) for e, n in zip(cell_map.row_codes(axis_names), key_names)],
-    ).from_(subquery(on_axes, internal("x")))
-    on = all_of([exp.EQ(this=col(kn, internal("k")), expression=col(mn, internal("m"))) for kn, mn in zip(key_names, map_names)])
-    fallback = pick if cell_map.unmapped == "nearest" else case_when(col(internal("ok")), num(-1))
+    carried = None if keep_source else [*scored.codes, *scored.v, internal("ok"), *scored.score, best, internal("nearest"),
+                                        internal("nrm")]
+    keyed = _keyed_rows(scored, cell_map, assign, target, carried, skip_near=fence and not lookups)
+    map_names = cell_map.column_names()
+    on = all_of([exp.EQ(this=col(internal(f"c{a}"), internal("k")), expression=col(mn, internal("m")))
+                 for a, mn in enumerate(map_names[:-1])])
+    fallback = scored.pick if cell_map.unmapped == "nearest" else case_when(col(internal("ok")), num(-1))
     mapped = case_when(col(internal("ok")), exp.Coalesce(this=col(internal("mseg")), expressions=[fallback]))
+    ids = assign.segment_ids()
     chosen = exp.Case(
-        ifs=[exp.If(this=exp.EQ(this=col(seg), expression=num(sid)), true=col(score[i])) for i, sid in enumerate(ids)]
+        ifs=[exp.If(this=exp.EQ(this=col(seg), expression=num(sid)), true=col(scored.score[i])) for i, sid in enumerate(ids)]
     )
     joined = (
-        exp.select(exp.Star(), exp.alias_(mapped, seg, quoted=True))
-        .from_(subquery(keyed, internal("k")))
-        .join(cell_map.relation(), on=on, join_type="LEFT")
+        fresh_select(exp.Star(), fresh_alias(mapped, seg, quoted=True))
+        .from_(subquery(keyed, internal("k")), copy=False)
+        .join(cell_map.relation(), on=on, join_type="LEFT", copy=False)
     )
-    stage5 = exp.select(exp.Star(), exp.alias_(chosen, internal("chosen"), quoted=True)).from_(subquery(joined, internal("j")))
-    return stage5, seg, internal("chosen"), v, norm
+    stage5 = fresh_select(exp.Star(), fresh_alias(chosen, internal("chosen"), quoted=True)).from_(subquery(joined, internal("j")), copy=False)
+    return stage5, seg, internal("chosen"), scored.v, scored.norm
 
 
 def _squared_norm(v_names: Sequence[str], assign: Assignment) -> exp.Expression:
@@ -1100,18 +1221,89 @@ def refine_statement(
     per segment and category code (see ``CodeLookup``).
     """
     target = target_for(target)
+    if cell_map is not None:
+        return _refine_through_map(source, columns, assign, target, cell_map, lookups)
     inner, seg, best, v, norm = _assignment_layers(source, columns, assign, target, keep_source=False, cell_map=cell_map,
                                              lookups=lookups)
     codes = [internal(f"q{g}") for g in range(len(lookups))]
-    aggs = [*[exp.alias_(col(q), f"q{g}", quoted=True) for g, q in enumerate(codes)],
-            exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
-    aggs += [exp.alias_(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(v)]
+    aggs = [*[fresh_alias(col(q), f"q{g}", quoted=True) for g, q in enumerate(codes)],
+            fresh_alias(exp.Count(this=exp.Star()), "n", quoted=True)]
+    aggs += [fresh_alias(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(v)]
     dist = exp.Add(this=col(best), expression=paren(norm))
-    aggs.append(exp.alias_(float_sum(dist, target), "dist", quoted=True))
+    aggs.append(fresh_alias(float_sum(dist, target), "dist", quoted=True))
     return (
-        exp.select(exp.alias_(col(seg), "segment", quoted=True), *aggs)
-        .from_(subquery(inner, internal("d")))
+        fresh_select(fresh_alias(col(seg), "segment", quoted=True), *aggs)
+        .from_(subquery(inner, internal("d")), copy=False)
         .group_by(col(seg), *[col(q) for q in codes], copy=False)  # no deep copy of an inline cell map
+    )
+
+
+def _refine_through_map(
+    source: Source, columns: Sequence[str], assign: Assignment, target: Target, cell_map: CellMap,
+    lookups: Sequence["CodeLookup"],
+) -> exp.Select:
+    """``refine_statement`` through a cell map: the rows are summed per (nearest centroid, cell code) first,
+    and only those sums meet the map.
+
+    Rows nearer the centroids than any mapped cell (``_keyed_rows``) have no code and fall into one
+    group per centroid, so the first GROUP BY has a few groups per mapped cell at most.  A join per
+    row cost DuckDB about as much as the whole pass again, mostly in handing on its output
+    (benchmarks/bench_cell_map.py); the sums join a few thousand rows.  A group whose cell maps to
+    segment m takes the sum of the distances to centroid m, summed in the first pass only when the
+    map holds a segment other than -1.
+    """
+    scored = _scored_rows(source, columns, assign, target, False, cell_map, True, lookups)
+    ids = assign.segment_ids()
+    carried = [*scored.codes, *scored.v, internal("ok"), *scored.score, internal("best"), internal("nearest"), internal("nrm")]
+    keyed = _keyed_rows(scored, cell_map, assign, target, carried, skip_near=not lookups)
+    map_names = cell_map.column_names()
+    keys = [internal(f"c{a}") for a in range(len(map_names) - 1)]
+    nearest, nrm = internal("segment"), col(internal("nrm"))
+    to_segment = any(sid >= 0 for sid in cell_map.segments)
+    sums = [
+        fresh_alias(scored.pick, nearest, quoted=True),
+        *[col(q) for q in scored.codes],
+        *[col(c) for c in keys],
+        fresh_alias(exp.Count(this=exp.Star()), "n", quoted=True),
+        *[fresh_alias(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(scored.v)],
+        fresh_alias(float_sum(exp.Add(this=col(internal("best")), expression=nrm.copy()), target), "dist", quoted=True),
+        *([fresh_alias(float_sum(exp.Add(this=col(s_), expression=nrm.copy()), target), f"d{i}", quoted=True)
+           for i, s_ in enumerate(scored.score)] if to_segment else []),
+    ]
+    per_cell = (
+        fresh_select(*sums)
+        .from_(subquery(keyed, internal("k")), copy=False)
+        .group_by(exp.Literal.number(1), *[exp.Literal.number(2 + g) for g in range(len(scored.codes) + len(keys))], copy=False)
+    )
+    mseg = col(internal("mseg"))
+    unmapped = col(nearest) if cell_map.unmapped == "nearest" else num(-1)
+    segment = case_when(exp.Not(this=exp.Is(this=col(nearest), expression=exp.Null())),
+                        exp.Coalesce(this=mseg, expressions=[unmapped]))
+    # the summed distance to the segment each group lands in: NULL for -1 (the outlier group, noise)
+    nearest_known = exp.Not(this=exp.Is(this=col(nearest), expression=exp.Null()))
+    dist = exp.Case(
+        ifs=[exp.If(this=all_of([exp.Is(this=mseg.copy(), expression=exp.Null()), nearest_known.copy()]),
+                    true=col("dist") if cell_map.unmapped == "nearest" else exp.Null()),
+             *([exp.If(this=exp.EQ(this=mseg.copy(), expression=num(sid)), true=col(f"d{i}")) for i, sid in enumerate(ids)]
+               if to_segment else [])]
+    )
+    on = all_of([exp.EQ(this=col(c, internal("p")), expression=col(mn, internal("m"))) for c, mn in zip(keys, map_names)])
+    mapped = (
+        fresh_select(fresh_alias(segment, "segment", quoted=True), *[col(q) for q in scored.codes], col("n"),
+                   *[col(f"ls{j}") for j in range(len(scored.v))], fresh_alias(dist, "dist", quoted=True))
+        .from_(subquery(per_cell, internal("p")), copy=False)
+        .join(cell_map.relation(), on=on, join_type="LEFT", copy=False)
+    )
+    totals = [
+        *[fresh_alias(col(q), f"q{g}", quoted=True) for g, q in enumerate(scored.codes)],
+        fresh_alias(exp.cast(exp.Sum(this=col("n")), exp.DataType.build(exp.DataType.Type.BIGINT)), "n", quoted=True),
+        *[fresh_alias(float_sum(col(f"ls{j}"), target), f"ls{j}", quoted=True) for j in range(len(scored.v))],
+        fresh_alias(float_sum(col("dist"), target), "dist", quoted=True),
+    ]
+    return (
+        fresh_select(col("segment"), *totals)
+        .from_(subquery(mapped, internal("d")), copy=False)
+        .group_by(col("segment"), *[col(q) for q in scored.codes], copy=False)  # no deep copy of an inline cell map
     )
 
 
@@ -1143,11 +1335,11 @@ def label_select(
         exp.GTE(this=col(seg), expression=num(0)),
         exp.Sqrt(this=greatest_of([exp.Add(this=col(best), expression=sq_norm), num(0.0)])),
     )
-    return exp.select(
+    return fresh_select(
         *[col(c) for c in source_columns],
-        exp.alias_(exp.cast(col(seg), exp.DataType.build("INT")), segment_name, quoted=True),
-        exp.alias_(distance, distance_name, quoted=True),
-    ).from_(subquery(inner, internal("d")))
+        fresh_alias(exp.cast(col(seg), exp.DataType.build(exp.DataType.Type.INT)), segment_name, quoted=True),
+        fresh_alias(distance, distance_name, quoted=True),
+    ).from_(subquery(inner, internal("d")), copy=False)
 
 
 def table_name(name: str) -> exp.Table:
@@ -1338,7 +1530,7 @@ def segment_names_column(select: exp.Select, segment: str, names: dict[int, str]
         cased = exp.case(col(segment))
         for sid, name in sorted(names.items()):
             cased = cased.when(num(int(sid)), exp.Literal.string(str(name)))
-    return exp.select(exp.Star(), exp.alias_(cased, alias, quoted=True)).from_(subquery(select, internal("n")))
+    return exp.select(exp.Star(), exp.alias_(cased, alias, quoted=True)).from_(subquery(select, internal("n")), copy=False)
 
 
 # --------------------------------------------------------------------------- the report in one scan
@@ -1365,8 +1557,8 @@ def report_rows_select(
     inner, seg, *_ = _assignment_layers(source, columns, assign, target, keep_source=True, cell_map=cell_map, fence=True)
     keep = list(dict.fromkeys(list(columns) + list(by)))
     return exp.select(
-        *[col(c) for c in keep], exp.alias_(exp.cast(col(seg), exp.DataType.build("INT")), seg, quoted=True)
-    ).from_(subquery(inner, internal("d")))
+        *[col(c) for c in keep], exp.alias_(exp.cast(col(seg), exp.DataType.build(exp.DataType.Type.INT)), seg, quoted=True)
+    ).from_(subquery(inner, internal("d")), copy=False)
 
 
 def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence[str]) -> exp.Select:
@@ -1393,7 +1585,7 @@ def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence
             exp.alias_(exp.Min(this=x.copy()), f"min{j}"),
             exp.alias_(exp.Max(this=x.copy()), f"max{j}"),
         ]
-    select = exp.select(*projections).from_(subquery(rows, internal("r")))
+    select = exp.select(*projections).from_(subquery(rows, internal("r")), copy=False)
     if len(by) <= 1:
         return select.group_by(seg.copy(), *[col(c) for c in by])
     sets = exp.GroupingSets(expressions=[exp.Tuple(expressions=[seg.copy(), col(c)]) for c in by])
@@ -1432,7 +1624,7 @@ def quartile_statement(rows: exp.Select, columns: Sequence[str], target: TargetL
         projections += [
             exp.alias_(sample_quantile(x.copy(), q, target), f"q{int(round(q * 100))}_{j}") for q in QUARTILES
         ]
-    return exp.select(*projections).from_(subquery(rows, internal("r"))).group_by(seg.copy())
+    return exp.select(*projections).from_(subquery(rows, internal("r")), copy=False).group_by(seg.copy())
 
 
 def sample_quantile(e: exp.Expression, q: float, target: TargetLike) -> exp.Expression:
@@ -1447,7 +1639,7 @@ def labelled_rows_select(labels: Source, columns: Sequence[str], by: Sequence[st
     keep = list(dict.fromkeys(list(columns) + list(by)))
     return exp.select(
         *[col(c) for c in keep],
-        exp.alias_(exp.cast(col(segment), exp.DataType.build("INT")), internal("segment"), quoted=True),
+        exp.alias_(exp.cast(col(segment), exp.DataType.build(exp.DataType.Type.INT)), internal("segment"), quoted=True),
     ).from_(labels.relation())
 
 
