@@ -26,7 +26,7 @@ from typing import Sequence
 
 from .errors import InputError
 
-__all__ = ["MODEL_FILE", "REPORT", "REPORT_MARKER", "OutputRefused", "check_output", "kind_of_file"]
+__all__ = ["MODEL_FILE", "REPORT", "REPORT_MARKER", "OutputRefused", "check_output", "kind_of_file", "is_input"]
 
 MODEL_FILE = "model file"
 REPORT = "report"
@@ -59,16 +59,20 @@ def check_output(path: str | os.PathLike[str], option: str, kind: str,
                  inputs: Sequence[tuple[str, str | os.PathLike[str] | None]] = ()) -> None:
     """Refuse, in one line naming ``option`` and the file, to write a ``kind`` (MODEL_FILE or REPORT) to ``path``
     when it is one of ``inputs`` (pairs of what the file is to this run, e.g. "the database", and its
-    location: a path, a glob, or a folder of Parquet files; None is skipped), when it is a folder, or when it
-    exists and is not tillite's own ``kind``."""
+    location: a path, a glob, or a folder of Parquet files; None is skipped), when it or its folder is not a
+    place for a file, or when it exists and is not tillite's own ``kind``.  Called before the run's work, so
+    a refusal costs nothing."""
     path = Path(path)
     for what, location in inputs:
-        if location is not None and _is_among(path, str(location)):
+        if location is not None and is_input(path, str(location)):
             shown = "" if os.fspath(location) == os.fspath(path) else f" ({location})"
             raise OutputRefused(f"{option} {path} is {what} of this run{shown}; tillite never writes over what it "
                                 f"reads or writes in the same run: choose another {option}")
     if path.is_dir():
         raise OutputRefused(f"{option} {path} is a folder; give a file name")
+    folder = path.parent if str(path.parent) else Path(".")
+    if not folder.is_dir():
+        raise OutputRefused(f"folder {folder} for {option} {path} does not exist")
     if not path.exists() and not path.is_symlink():
         return
     found = kind_of_file(path)
@@ -121,8 +125,10 @@ def _text(path: Path) -> str:
         return ""
 
 
-def _is_among(path: Path, location: str) -> bool:
-    """Whether ``path`` is the file ``location`` names, one its glob matches, or a Parquet file of its folder."""
+def is_input(path: str | os.PathLike[str], location: str) -> bool:
+    """Whether ``path`` is the file ``location`` names, one its glob matches (or would match), or a Parquet file
+    of its folder; links to such a file count (os.path.samefile).  Servers (postgresql://..., Spark masters) never."""
+    path = Path(path)
     if not location or _NOT_A_FILE.match(location):
         return False
     if os.path.isdir(location):
