@@ -58,7 +58,7 @@ from typing import Any, Sequence
 import duckdb
 from sqlglot import exp
 
-from .errors import ParameterError
+from .errors import EngineError, ParameterError
 from .sqlgen import (
     OWNED_MARK,
     Source,
@@ -590,8 +590,11 @@ def build_demo_database(
     check_demo_database_file(path)
     from .engines import duckdb_errors
 
-    with duckdb_errors():
-        return _build_demo_tables(path, table, rows, days, seed, meters, replace)
+    try:
+        with duckdb_errors():
+            return _build_demo_tables(path, table, rows, days, seed, meters, replace)
+    except EngineError as err:  # DuckDB's own line (a damaged file, a full disk), said with the file it is about
+        raise type(err)(f"demo database {path}: {err}", err.sqlstate) from None
 
 
 def _build_demo_tables(path: Path, table: str, rows: int, days: int, seed: int, meters: int, replace: bool) -> DemoSummary:
