@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 
 from tillite import demo
+from tillite.errors import ParameterError
 from tillite.demo import (
     DEMO_COLUMNS,
     DISTRICTS,
@@ -411,3 +412,74 @@ def test_public_names() -> None:
     assert len(DISTRICTS) == 6
     for name in demo.__all__:
         assert hasattr(demo, name)
+
+
+# --------------------------------------------------------------------------- what the demo replaces
+
+
+def _comments(path: Path) -> dict[str, str | None]:
+    return dict(_fetch(path, "SELECT table_name, comment FROM duckdb_tables()"))
+
+
+def test_demo_tables_carry_tillites_mark_and_the_documented_columns(demo_5k: DemoSummary) -> None:
+    assert _comments(demo_5k.path) == {"meter_days": demo.DEMO_MARK, "meters": demo.DEMO_MARK}
+    assert demo.DEMO_MARK.startswith("made by tillite")  # the mark on label views, stores and cell maps too
+    assert demo.DEMO_TABLE_COLUMNS == tuple(EXPECTED_TYPES)
+    got = _fetch(demo_5k.path, "SELECT column_name, data_type FROM information_schema.columns "
+                               "WHERE table_name = 'meters' ORDER BY ordinal_position")
+    assert tuple(got) == demo.METERS_TABLE_COLUMNS
+
+
+def test_rebuild_replaces_the_demos_own_marked_tables(tmp_path: Path) -> None:
+    path = tmp_path / "own.duckdb"
+    build_demo_database(path, rows=1_000, days=10, seed=1)
+    build_demo_database(path, rows=2_000, days=10, seed=2, replace=True)
+    assert _fetch(path, "SELECT count(*) FROM meter_days") == [(2_000,)]
+    assert _comments(path) == {"meter_days": demo.DEMO_MARK, "meters": demo.DEMO_MARK}
+
+
+@pytest.mark.parametrize("users_table", [
+    "CREATE TABLE meter_days (precious INTEGER); INSERT INTO meter_days VALUES (1)",
+    "CREATE TABLE meters (precious INTEGER); INSERT INTO meters VALUES (1)",
+    "CREATE TABLE t (precious INTEGER); INSERT INTO t VALUES (1); CREATE VIEW meter_days AS SELECT * FROM t",
+])
+def test_rebuild_refuses_a_users_table_of_the_demos_names(tmp_path: Path, users_table: str) -> None:
+    path = tmp_path / "user.duckdb"
+    with duckdb.connect(str(path)) as con:
+        con.execute(users_table)
+    name = "meters" if "TABLE meters" in users_table else "meter_days"
+    with pytest.raises(ParameterError, match=f"{name} was not made by the demo") as err:
+        build_demo_database(path, rows=1_000, days=10, replace=True)
+    assert str(path) in str(err.value)
+    assert _fetch(path, f"SELECT * FROM {name}") == [(1,)]  # the user's row, as it was
+    assert "precious" in [c for (c,) in _fetch(path, f"SELECT column_name FROM information_schema.columns WHERE table_name = '{name}'")]
+
+
+def test_rebuild_replaces_an_unmarked_demo_of_an_earlier_version(tmp_path: Path) -> None:
+    path = tmp_path / "old.duckdb"
+    build_demo_database(path, rows=1_000, days=10, seed=1)
+    with duckdb.connect(str(path)) as con:  # as the version before the mark built them
+        con.execute("COMMENT ON TABLE meter_days IS NULL; COMMENT ON TABLE meters IS NULL")
+    build_demo_database(path, rows=2_000, days=10, seed=2, replace=True)
+    assert _fetch(path, "SELECT count(*) FROM meter_days") == [(2_000,)]
+    assert _comments(path) == {"meter_days": demo.DEMO_MARK, "meters": demo.DEMO_MARK}
+
+
+def test_rebuild_refuses_unmarked_tables_of_the_demos_shape_holding_other_meters(tmp_path: Path) -> None:
+    path = tmp_path / "lookalike.duckdb"
+    build_demo_database(path, rows=1_000, days=10, seed=1)
+    with duckdb.connect(str(path)) as con:  # a user's own tables with the demo's columns
+        con.execute("COMMENT ON TABLE meter_days IS NULL; COMMENT ON TABLE meters IS NULL; "
+                    "UPDATE meters SET kind = 'apartment block' WHERE meter_id = 0")
+    with pytest.raises(ParameterError, match="meter_days was not made by the demo"):
+        build_demo_database(path, rows=2_000, days=10, seed=2, replace=True)
+    assert _fetch(path, "SELECT count(*) FROM meter_days") == [(1_000,)]
+
+
+@pytest.mark.parametrize("content", [b"a,b\n1,2\n", b""])
+def test_a_file_that_is_not_duckdb_is_refused_naming_it_and_left_as_it_was(tmp_path: Path, content: bytes) -> None:
+    path = tmp_path / "notes.duckdb"
+    path.write_bytes(content)
+    with pytest.raises(ParameterError, match=re.escape(f"path {path} exists and is not a DuckDB database")):
+        build_demo_database(path, rows=1_000, days=10, replace=True)
+    assert path.read_bytes() == content

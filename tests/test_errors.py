@@ -4,6 +4,7 @@ while the command line names options."""
 
 from __future__ import annotations
 
+import re
 from types import SimpleNamespace
 
 import duckdb
@@ -196,18 +197,21 @@ def test_a_postgres_lock_held_elsewhere_arrives_as_transaction_conflict(server):
         second.close()
 
 
-def test_the_demo_build_on_a_file_that_is_not_a_database_gives_one_database_error_line(tmp_path):
+def test_the_demo_build_on_a_damaged_database_gives_one_line_naming_the_file_and_the_database_error(tmp_path):
+    """A file with DuckDB's header magic but damaged blocks gets past the demo's own check of the header, so its
+    error is DuckDB's, wrapped by engines.duckdb_errors (never a duckdb.Error) and said with the file's name.
+    (A file that is not DuckDB at all is refused before DuckDB opens it: tests/test_outputs.py.)"""
     from tillite.demo import build_demo_database
 
     bogus = tmp_path / "notes.duckdb"
-    bogus.write_text("not a database\n" * 100)
-    with pytest.raises(EngineError, match="^database error: ") as caught:
+    bogus.write_bytes(b"\0" * 8 + b"DUCK" + b"not a database\n" * 400)  # DuckDB's magic after the 8-byte checksum
+    with pytest.raises(EngineError, match=f"^demo database {re.escape(str(bogus))}: database error: ") as caught:
         build_demo_database(bogus, rows=1_000, days=10)
     assert not isinstance(caught.value, duckdb.Error)
     res = CliRunner().invoke(main, ["demo", "--db", str(bogus), "--rebuild", "--rows", "1000", "-q"])
     assert res.exit_code == 1 and "Traceback" not in res.output, res.output
     lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
-    assert len(lines) == 1 and lines[0].startswith("Error: database error: "), lines
+    assert len(lines) == 1 and lines[0].startswith(f"Error: demo database {bogus}: database error: "), lines
 
 
 def test_refresh_limits_name_parameters_in_the_api_and_options_in_the_cli(four_days_db):

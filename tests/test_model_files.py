@@ -17,7 +17,7 @@ from sklearn.datasets import make_blobs
 
 from tillite.model import Model, default_model_path
 
-from conftest import columns_of, run_cli, write_table
+from conftest import assert_one_error_line, columns_of, run_cli, write_table
 
 
 @pytest.fixture
@@ -72,12 +72,20 @@ def test_replacing_the_model_of_another_source_or_columns_is_said_in_one_warning
     assert json.loads(out.read_text())["columns"] == ["a", "b"]
 
 
-def test_replacing_a_file_that_is_not_a_model_is_said(two_tables_db, tmp_path):
+def test_segment_refuses_to_replace_a_file_that_is_not_a_model(two_tables_db, tmp_path):
     out = tmp_path / "notes.json"
     out.write_text("my notes\n")
     result = run_cli("segment", two_tables_db, "-t", "meter_days", "-c", "a,b,c", "--k", "3", "-o", out, "-q")
-    assert result.exit_code == 0
-    assert "not a tillite model file" in result.stderr
+    assert_one_error_line(result, "--out", str(out), "not a model file tillite wrote")
+    assert out.read_text() == "my notes\n"
+
+
+def test_default_model_file_of_a_glob_in_the_current_folder_is_named_after_the_folder(tmp_path, monkeypatch):
+    folder = tmp_path / "exports"
+    folder.mkdir()
+    monkeypatch.chdir(folder)
+    assert default_model_path("*.parquet", None) == default_model_path("./*.parquet", None) == "exports.model.json"
+    assert default_model_path(".", None) == "exports.model.json"
 
 
 def test_model_files_get_the_usual_mode_not_0600(two_tables_db, tmp_path, umask_027):

@@ -58,13 +58,19 @@ from typing import Any, Sequence
 import duckdb
 from sqlglot import exp
 
+from .errors import EngineError, ParameterError
 from .sqlgen import (
+    OWNED_MARK,
+    Source,
     all_of,
     case_when,
     col,
+    comment_of_statement,
+    describe_statement,
     greatest_of,
     least_of,
     list_tables_statement,
+    mark_statement,
     num,
     paren,
     subquery,
@@ -83,6 +89,10 @@ __all__ = [
     "METERS_TABLE",
     "DemoSummary",
     "build_demo_database",
+    "check_demo_database_file",
+    "DEMO_MARK",
+    "DEMO_TABLE_COLUMNS",
+    "METERS_TABLE_COLUMNS",
     "write_demo_parquet",
     "demo_select",
 ]
@@ -97,6 +107,19 @@ MIN_ROWS = 1_000
 MAX_ROWS = 100_000_000
 START_DAY = _dt.date(2026, 1, 1)
 METERS_TABLE = "meters"
+
+#: The comment on the demo's tables: tillite's mark (as on its label views, stores and cell map tables),
+#: so that rebuilding replaces the demo's own tables and never a user's tables of the same names.
+DEMO_MARK = f"{OWNED_MARK}: demo table"
+
+#: The meter-days and meters tables' columns and DuckDB types, as the demo builds them.  A table of the
+#: demo's name without DEMO_MARK but with exactly these columns was built by a version before the mark, and
+#: is replaced as the demo's own (a user's table of that name and shape would hold invented data anyway).
+DEMO_TABLE_COLUMNS: tuple[tuple[str, str], ...] = (
+    ("meter_id", "INTEGER"), ("district", "VARCHAR"), ("day", "DATE"), ("litres", "DOUBLE"), ("night_share", "DOUBLE"),
+    ("peak_litres", "DOUBLE"), ("flow_run_hours", "INTEGER"), ("zero_hours", "INTEGER"),
+)
+METERS_TABLE_COLUMNS: tuple[tuple[str, str], ...] = (("meter_id", "INTEGER"), ("district", "VARCHAR"), ("kind", "VARCHAR"))
 
 _FAIL_NULL_LITRES = 0.0015  # share of rows with NULL litres
 _FAIL_NAN_NIGHT = 0.0005  # share of rows with NaN night_share
@@ -478,6 +501,58 @@ def _table_exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
     return bool(con.execute(list_tables_statement(named=name).sql(dialect="duckdb")).fetchall())
 
 
+def check_demo_database_file(path: str | os.PathLike[str]) -> None:
+    """A file at ``path`` that is not a DuckDB database is refused in one line naming it (DuckDB would say only
+    "not a valid DuckDB database file"); a missing file is fine: the demo creates it."""
+    path = Path(path)
+    if path.is_dir():
+        raise ParameterError(f"{{path}} {path} is a folder; give the demo's DuckDB database file", "path")
+    if not path.exists():
+        return
+    try:
+        with path.open("rb") as fh:
+            header = fh.read(12)
+    except OSError as err:
+        raise ParameterError(f"{{path}} {path} cannot be read: {err.strerror}", "path") from None
+    if header[8:12] != b"DUCK":  # DuckDB's magic bytes follow the 8-byte checksum of its main header
+        raise ParameterError(f"{{path}} {path} exists and is not a DuckDB database; the demo builds its tables only in a "
+                             "DuckDB file and never writes over another file: give another {path}", "path")
+
+
+def _check_demos_own(con: duckdb.DuckDBPyConnection, path: Path, name: str, table: str) -> None:
+    """Refuse to replace ``name`` unless it is the demo's own table: marked DEMO_MARK, or unmarked from a version
+    before the mark, recognised by ``_built_before_the_mark``."""
+    kind = con.execute(list_tables_statement(named=name).sql(dialect="duckdb")).fetchall()[0][2]
+    comment = con.execute(comment_of_statement(name, "duckdb").sql(dialect="duckdb")).fetchall()
+    if "VIEW" not in kind.upper() and comment and comment[0][0] == DEMO_MARK:
+        return
+    if "VIEW" not in kind.upper() and _built_before_the_mark(con, table):
+        return
+    raise ParameterError(
+        f"{{path}} {path}: {'view' if 'VIEW' in kind.upper() else 'table'} {name} was not made by the demo (it carries no "
+        "tillite mark), so the demo does not replace it; give another {path} for the demo", "path",
+    )
+
+
+def _built_before_the_mark(con: duckdb.DuckDBPyConnection, table: str) -> bool:
+    """Whether the tables are the demo's from a version that did not mark them: every one of them there has exactly
+    the demo's columns, and the meters table is there and holds only the demo's invented kinds and districts."""
+    if not _table_exists(con, METERS_TABLE):
+        return False
+    for name, columns in ((table, DEMO_TABLE_COLUMNS), (METERS_TABLE, METERS_TABLE_COLUMNS)):
+        if _table_exists(con, name) and _columns_of(con, name) != columns:
+            return False
+    kinds_query = _select([col("kind"), col("district")], exp.Table(this=_ident(METERS_TABLE))).distinct()
+    found = con.execute(kinds_query.sql(dialect="duckdb")).fetchall()
+    return all(k in {kind.name for kind in KINDS} and d in DISTRICTS for k, d in found)
+
+
+def _columns_of(con: duckdb.DuckDBPyConnection, name: str) -> tuple[tuple[str, str], ...]:
+    """(name, DuckDB type) of each column of a table."""
+    cursor = con.execute(describe_statement(Source.of_table(name)).sql(dialect="duckdb"))
+    return tuple((d[0], str(d[1]).upper()) for d in cursor.description)
+
+
 def build_demo_database(
     path: str | os.PathLike[str],
     rows: int = 1_000_000,
@@ -494,11 +569,15 @@ def build_demo_database(
     (rows, days, seed) always gives the same tables.
 
     The file is created if missing.  If ``table`` or ``meters`` already exists in
-    it, ``FileExistsError`` is raised unless ``replace=True``, which replaces both.
-    Both tables are written in one transaction.
+    it, ``FileExistsError`` is raised unless ``replace=True``, which replaces both,
+    but only when they are the demo's own: both tables carry ``DEMO_MARK`` (their
+    comment), and an unmarked table (or a view) of either name raises ParameterError
+    naming it, unless the pair was built by a version before the mark
+    (``_built_before_the_mark``).  Both tables are written and marked in one transaction.
 
     Raises ValueError for out-of-range ``rows``, ``days`` or ``seed`` and for a
-    ``table`` name that is empty or clashes with ``meters``.
+    ``table`` name that is empty or clashes with ``meters``; ParameterError for a
+    ``path`` that is not a DuckDB file.
     """
     rows, days, seed = _check_args(rows, days, seed)
     if not isinstance(table, str) or not table.strip():
@@ -508,10 +587,14 @@ def build_demo_database(
     meters = math.ceil(rows / days)
     path = Path(path)
 
+    check_demo_database_file(path)
     from .engines import duckdb_errors
 
-    with duckdb_errors():
-        return _build_demo_tables(path, table, rows, days, seed, meters, replace)
+    try:
+        with duckdb_errors():
+            return _build_demo_tables(path, table, rows, days, seed, meters, replace)
+    except EngineError as err:  # DuckDB's own line (a damaged file, a full disk), said with the file it is about
+        raise type(err)(f"demo database {path}: {err}", err.sqlstate) from None
 
 
 def _build_demo_tables(path: Path, table: str, rows: int, days: int, seed: int, meters: int, replace: bool) -> DemoSummary:
@@ -523,6 +606,8 @@ def _build_demo_tables(path: Path, table: str, rows: int, days: int, seed: int, 
             raise FileExistsError(
                 f"{path}: table(s) {', '.join(repr(n) for n in existing)} already exist; pass replace=True to replace them"
             )
+        for name in existing:
+            _check_demos_own(con, path, name, table)
         statements = [
             exp.Create(
                 this=exp.Table(this=_ident(table)),
@@ -536,6 +621,7 @@ def _build_demo_tables(path: Path, table: str, rows: int, days: int, seed: int, 
                 expression=_meters_table_select(meters, seed),
                 replace=True,
             ),
+            *(mark_statement(name, "table", DEMO_MARK, "duckdb") for name in (table, METERS_TABLE)),
         ]
         from .engines import duckdb_transaction
 

@@ -530,17 +530,17 @@ def default_model_path(source: str, table: str | None) -> str:
     """<source>.model.json in the current folder: the table's name, or a data file's (or folder's) name.
 
     ``meter_days`` -> ``meter_days.model.json``; ``"my.table"`` -> ``my.table.model.json``;
-    ``exports/*.parquet`` -> ``exports.model.json``.
+    ``exports/*.parquet`` -> ``exports.model.json``; ``*.parquet`` -> the current folder's name.
     Characters other than letters, digits, ``.``, ``_`` and ``-`` become ``_``.
     """
     if table:
         stem = table.replace('"', "")  # a quoted name's quotes are SQL syntax, not part of the name
     else:
-        path = Path(source.rstrip("/\\"))
+        path = Path(os.path.abspath(source.rstrip("/\\") or source))  # '*.parquet', '.': named after the current folder
         stem = path.stem if path.suffix and not _has_glob(path.name) else path.name
         while _has_glob(stem) or not stem:
             path = path.parent
-            if str(path) in ("", ".", "/"):
+            if path == path.parent:  # the root has no name
                 stem = "source"
                 break
             stem = path.name

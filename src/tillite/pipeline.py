@@ -9,9 +9,7 @@ imports keep working (new code imports them from ``stages``).
 
 from __future__ import annotations
 
-import fnmatch
 import functools
-import glob
 import hashlib
 import os
 import tempfile
@@ -27,6 +25,7 @@ from . import sqlgen
 from .engines import Engine, file_reader_for
 from .errors import InputError, ParameterError
 from .model import Model, usual_file_mode
+from .outputs import is_input
 # re-exported: store.py and older callers import these from here
 from .settings import (  # noqa: F401
     MAX_SEED, MAX_WEIGHT, SETTING_CHOICES, SETTING_RANGES, Settings, check_range, check_refresh_options,
@@ -407,10 +406,8 @@ def _label_to_file(engine: Engine, source: Source, select, into: str, replace: b
     if fmt not in ("parquet", "csv"):
         raise InputError(f"labels of files go to a .parquet or .csv file; {into!r} is neither")
     target = os.path.realpath(into)
-    for pattern in source.files:
-        matches = glob.glob(pattern, recursive=True) or [pattern]
-        if any(os.path.realpath(m) == target for m in matches) or fnmatch.fnmatch(target, os.path.realpath(pattern)):
-            raise InputError(f"--into {into} is a source file; labels never overwrite the source")
+    if any(is_input(into, pattern) for pattern in source.files):
+        raise InputError(f"--into {into} is a source file; labels never overwrite the source")
     if os.path.exists(into) and not replace:
         raise ParameterError(f"file {into} already exists; pass {{replace}} to overwrite it", "replace", spelled=REPLACE_SPELLED)
     folder = os.path.dirname(target)

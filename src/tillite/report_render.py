@@ -12,6 +12,8 @@ import html
 import math
 from typing import Any, Sequence
 
+from .outputs import REPORT_MARKER
+
 __all__ = ["render_html", "render_markdown", "diverging_colour"]
 
 #: Okabe & Ito's palette first, then a cividis-like ramp, for breakdown categories.
@@ -444,6 +446,7 @@ _GROUP_STYLE = "details.group>summary{cursor:pointer}details.group>summary h2{di
 def _page_head(source: str, style: str = _STYLE) -> list[str]:
     return [
         "<!DOCTYPE html>",
+        REPORT_MARKER,
         '<html lang="en"><head><meta charset="utf-8">',
         '<meta http-equiv="Content-Security-Policy" content="default-src \'none\'; style-src \'unsafe-inline\'; img-src data:">',
         f"<title>{esc('Segments of ' + source)}</title><style>{style}</style></head><body>",
@@ -550,7 +553,7 @@ def render_markdown(content: dict[str, Any]) -> str:
     h = content["header"]
     lines = [f"# Segments of {_md_escape(h['source'])}", ""]
     lines += [f"- **{_md_escape(k)}**: {_md_escape(v)}" for k, v in _header_items(h)] + ["", f"> {_md_escape(h['caution'])}", ""]
-    return "\n".join(lines + _md_sections(content, "##"))
+    return "\n".join(lines + _md_sections(content, "##") + [REPORT_MARKER, ""])
 
 
 def render_within_markdown(content: dict[str, Any]) -> str:
@@ -569,7 +572,7 @@ def render_within_markdown(content: dict[str, Any]) -> str:
         lines += _md_sections(g["report"], "###")
     if content.get("history"):
         lines += ["## Refresh history", ""] + _md_table(*_within_history(content["history"]))
-    return "\n".join(lines)
+    return "\n".join(lines + [REPORT_MARKER, ""])
 
 
 def _md_sections(content: dict[str, Any], hx: str) -> list[str]:

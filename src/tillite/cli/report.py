@@ -12,7 +12,8 @@ from pathlib import Path
 import click
 
 from ..lazy import lazy_module
-from .shared import engine_options, open_with_options, progress_printer, user_errors
+from ..outputs import REPORT
+from .shared import check_output, engine_options, open_with_options, progress_printer, source_inputs, user_errors
 from .store import open_store_database
 
 # imported when a command runs, so the command line starts without numpy or sqlglot
@@ -49,7 +50,8 @@ def _engine_options(f):
               "category per segment (top 20 categories, the rest as 'other').")
 @click.option("--labels", "labels", metavar="TABLE", help="A labels table made by `tillite label --materialize` with "
               "this model: the report reads its segment column instead of assigning every row again (faster).")
-@click.option("--out", "-o", "out", help="File to write (default: segments.html, .md or .json by --format).")
+@click.option("--out", "-o", "out", help="File to write (default: segments.html, .md or .json by --format); an existing "
+              "file is replaced only when it is a report tillite wrote.")
 @click.option("--format", "fmt", type=click.Choice(list(REPORT_FORMATS)), default="html", show_default=True,
               help="html: one self-contained page with inline SVG; md and json: the same content as text.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
@@ -69,6 +71,7 @@ def report_command(source, table, model_path, store_name, by, labels, out, fmt, 
     out = out or _default_out(fmt)
     progress = progress_printer(quiet)
     with user_errors():
+        check_output(out, "--out", REPORT, [*source_inputs(source), ("the model file (--model)", model_path)])
         if store_name:
             with open_store_database(source) as engine:
                 content = R.report_of_store(engine, store_name, _split(by), progress)

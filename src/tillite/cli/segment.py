@@ -10,9 +10,10 @@ from pathlib import Path
 import click
 
 from ..lazy import lazy_module, lazy_name
+from ..outputs import MODEL_FILE, REPORT
 from .shared import (
-    columns_option, open_with_options, progress_printer, refuse_table_for_files, settings_from_options, settings_options, source_argument,
-    split_columns, table_option, parameter_option, user_errors,
+    check_output, columns_option, open_with_options, progress_printer, refuse_table_for_files, settings_from_options, settings_options, source_argument,
+    source_inputs, split_columns, table_option, parameter_option, user_errors,
 )
 
 # imported when a command first uses them, so --version and show start fast
@@ -58,7 +59,8 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
     SOURCE is a DuckDB database file (with --table) or a Parquet/CSV path or glob.
     The model file's path is printed on stderr (not with --quiet; in the --json output
     as model_file); replacing a file that held the
-    model of another source or column list is said in a warning line.
+    model of another source or column list is said in a warning line. --out never
+    replaces SOURCE, nor an existing file that is not a tillite model file.
     """
     from ..model import default_model_path, replaced_model_note
 
@@ -67,6 +69,7 @@ def segment_command(source, table, columns, out, quiet, as_json, **kw) -> None:
         if not columns and not settings.categorical:
             raise click.UsageError("give --columns (numeric columns) or --categorical (or both)")
         out = out or default_model_path(source, table)
+        check_output(out, "--out", MODEL_FILE, source_inputs(source))
         with open_with_options(source, table) as (engine, src):
             model = segment(engine, src, split_columns(columns), settings, progress=progress_printer(quiet))
         note = replaced_model_note(out, model)
@@ -261,6 +264,10 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, target, c
     return [sqlgen.label_select(src, cols, source_columns, assign, target, cell_map=model.cell_map_spec(), lookups=lookups)]
 
 
+#: `demo --rows` range: demo.MIN_ROWS and demo.MAX_ROWS, written here so building the options imports nothing heavy
+#: (a test checks they agree).
+DEMO_ROWS = (1_000, 100_000_000)
+
 #: The view the demo labels into (the README's store example uses another name).
 DEMO_LABELS = "meter_day_segments"
 
@@ -286,21 +293,33 @@ def _demo_takes_back_labels(engine, db_path: str) -> bool:
 
 @click.command("demo")
 @click.option("--db", "db_path", default="tillite-demo.duckdb", show_default=True, help="Demo database file to build or reuse.")
-@click.option("--rows", type=int, default=1_000_000, show_default=True, help="Meter-day rows to generate.")
-@click.option("--days", type=int, default=60, show_default=True, help="Days of meter readings to generate.")
-@click.option("--seed", type=int, default=7, show_default=True, help="Seed of the invented data.")
+@click.option("--rows", type=click.IntRange(*DEMO_ROWS), default=1_000_000, show_default=True,
+              help=f"Meter-day rows to generate ({DEMO_ROWS[0]:,} to {DEMO_ROWS[1]:,}).")
+@click.option("--days", type=click.IntRange(min=1), default=60, show_default=True, help="Days of meter readings to generate (1 or more).")
+@click.option("--seed", type=click.IntRange(-(2**63), 2**63 - 1), default=7, show_default=True, help="Seed of the invented data.")
 @click.option("--k", "-k", "k", type=int, default=5, show_default=True, help="Number of segments.")
-@click.option("--out", "-o", default="tillite-demo-model.json", show_default=True, help="Model file to write.")
-@click.option("--rebuild", is_flag=True, help="Regenerate the demo data even if the file exists.")
+@click.option("--out", "-o", default="tillite-demo-model.json", show_default=True,
+              help="Model file to write (never over --db, nor over a file that is not a tillite model file).")
+@click.option("--rebuild", is_flag=True, help="Regenerate the demo data even if the file exists (only tables the demo "
+              "made are replaced).")
 @click.option("--report", "report_path", default=None,
               help="Report page to write (segments by district; see `tillite report`) "
-                   "[default: tillite-demo-report.html beside the database].")
+                   "[default: tillite-demo-report.html beside the database; never over --db or --out, nor over a "
+                   "file that is not a tillite report].")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines on stderr.")
 def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet) -> None:
-    """Build the invented water co-operative database and segment it end to end."""
+    """Build the invented water co-operative database and segment it end to end.
+
+    --rebuild replaces only the demo's own tables (they carry tillite's mark; tables of a demo
+    database from a version before the mark are recognised by their columns and invented kinds).
+    """
     from .. import demo, report
 
-    with user_errors():
+    page = report_path or Path(db_path).with_name("tillite-demo-report.html")
+    with user_errors(options={"path": "--db"}):
+        check_output(out, "--out", MODEL_FILE, [("the database (--db)", db_path)])
+        check_output(page, "--report", REPORT, [("the database (--db)", db_path), ("the model file (--out)", out)])
+        demo.check_demo_database_file(db_path)
         progress = progress_printer(quiet)
         if rebuild or not Path(db_path).exists():
             t0 = time.perf_counter()
@@ -318,7 +337,6 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
             click.echo(report.crosstab(engine, "meter_day_segments", demo.METERS_TABLE, "meter_id", "kind"))
             click.echo("")
             click.echo(demo.within_district_example(engine, src, progress=progress))
-            page = report_path or Path(db_path).with_name("tillite-demo-report.html")
             written = report.write_report(report.report_of_model(engine, src, model, ["district"], progress), page)
         click.echo("")
         click.echo(f"model written to {out}; labels in view meter_day_segments of {db_path}.")

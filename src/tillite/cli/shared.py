@@ -14,6 +14,7 @@ import click
 
 from ..errors import ParameterError, TilliteError
 from ..lazy import lazy_name
+from ..outputs import check_output
 from ..settings import OPTION_NAMES, PARAMETERS, REFRESH_PARAMETERS, Parameter, Settings
 
 open_source = lazy_name("tillite.engines", "open_source")
@@ -35,6 +36,8 @@ __all__ = [
     "parameter_option",
     "settings_options",
     "settings_from_options",
+    "check_output",
+    "source_inputs",
 ]
 
 
@@ -161,6 +164,11 @@ def refuse_table_for_files(source: str, table: str | None) -> None:
     if table is not None and is_file_source(source):
         raise click.BadParameter(f"{source} is a file source (Parquet/CSV), which has no tables; leave --table out",
                                  param_hint="--table")
+
+
+def source_inputs(source: str) -> list[tuple[str, str | None]]:
+    """SOURCE as an input of the run, for outputs.check_output: a source file (or glob, or folder), or the database."""
+    return [("a source file" if is_file_source(source) else "the database", source)]
 
 
 source_argument = click.argument("source", metavar="SOURCE")

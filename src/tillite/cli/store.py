@@ -10,7 +10,8 @@ from typing import TYPE_CHECKING
 
 from ..errors import DatabaseLocked
 from ..lazy import lazy_module, lazy_name
-from .shared import categorical_columns, parameter_option, parse_weights, progress_printer, refuse_table_for_files, split_columns, user_errors
+from ..outputs import MODEL_FILE
+from .shared import check_output, source_inputs, categorical_columns, parameter_option, parse_weights, progress_printer, refuse_table_for_files, split_columns, user_errors
 
 if TYPE_CHECKING:
     from ..engines import Engine
@@ -69,7 +70,8 @@ def store_group() -> None:
 @click.option("--many-partitions", is_flag=True,
               help="Build even when the partition column gives more partitions than the hard limit "
                    "(the refusal names it).")
-@click.option("--out", "-o", help="Also write the model file here.")
+@click.option("--out", "-o", help="Also write the model file here (never over SOURCE or --db, nor over a file that is "
+              "not a tillite model file).")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
 @click.option("--json", "as_json", is_flag=True, help="Print the model summary as JSON.")
 @parameter_option("categorical", help="Categorical columns, comma-separated (repeatable), as in `tillite segment`: "
@@ -95,6 +97,8 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
         refuse_table_for_files(source, table)
         if is_file_source(source) and not database:
             raise click.UsageError("a store over files needs --db, the DuckDB file that keeps it")
+        if out:
+            check_output(out, "--out", MODEL_FILE, [*source_inputs(source), ("the database that keeps the store (--db)", database)])
         with open_source(source, table, writable=True, database=database) as (engine, src):
             spec = store_api.PartitionSpec(files=True) if src.files else store_api.PartitionSpec(tuple(split_columns(partition_by)))
             info, model = store_api.build(engine, src, split_columns(columns), spec, settings, store=store_name,
