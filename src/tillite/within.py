@@ -108,7 +108,7 @@ def run_grouped_profile(engine: Engine, source: Source, columns: Sequence[str], 
     x = np.column_stack([np.asarray(got[sqlgen.internal(f"x{j}")], dtype=np.float64) for j in range(d)]) if len(codes) else np.zeros((0, d))
     both = canonical_sample(np.column_stack([codes, x]), target, settings.seed) if len(x) else np.zeros((0, d + 1))
     sample, groups = both[:, 1:], both[:, 0].astype(np.int64)
-    center, scale = center_and_scale(sample, settings.scaling)
+    center, scale = center_and_scale(sample, settings.scaling, columns)
     repeats = sample_promise(engine, rows, settings)
     prof = Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
     return GroupedProfile(prof, groups, values)
