@@ -169,6 +169,7 @@ class Model:
         missing = [k for k in required if k not in body]
         if missing:
             raise ModelError(f"{where} lacks {', '.join(missing)}")
+        _check_types(body, where)
         _check_shapes(body, where)
         _check_values(body, where)
         _check_groups(body, where)
@@ -393,6 +394,69 @@ class Model:
             label = f"{sid} \"{name}\"" if name is not None else f"{sid}"
             lines.append(f"  {label}: {self.segment_description(i)}")
         return lines
+
+
+# ------------------------------------------------------------ field types, checked from the dataclass's own hints
+
+#: Words for what a field holds, beside its type, where the type alone would not say it.
+FIELD_MEANING = {"columns": "column names", "constant_columns": "column names", "source": "the source's name",
+                 "names": "segment names keyed by segment id", "ids": "segment ids", "sizes": "row counts",
+                 "rows": "a row count", "skipped": "a row count", "k": "the number of segments"}
+
+
+def _type_words(hint: Any, plural: bool = False) -> str:
+    """A type hint in words: list[list[float]] -> 'a list of lists of numbers'."""
+    import typing
+
+    origin, args = typing.get_origin(hint), typing.get_args(hint)
+    if origin is list:
+        return ("lists of " if plural else "a list of ") + _type_words(args[0], True)
+    if origin is dict:
+        inner = "" if args[1] is Any else " of " + _type_words(args[1], True)
+        return ("objects" if plural else "an object") + inner
+    single, many = {float: ("a number", "numbers"), int: ("a whole number", "whole numbers"),
+                    str: ("text", "texts")}.get(hint, ("any value", "any values"))
+    return many if plural else single
+
+
+def _fits(value: Any, hint: Any) -> bool:
+    """Whether a JSON value has the type of a hint (list[...], dict[str, ...], float, int, str, Any); a number
+    is an int or float but not true/false, and an int field takes a float only when it is whole."""
+    import typing
+
+    origin, args = typing.get_origin(hint), typing.get_args(hint)
+    if hint is Any:
+        return True
+    if origin is list:
+        return isinstance(value, list) and all(_fits(v, args[0]) for v in value)
+    if origin is dict:
+        return isinstance(value, dict) and all(isinstance(k, str) and _fits(v, args[1]) for k, v in value.items())
+    if isinstance(value, bool):
+        return False
+    if hint is float:
+        return isinstance(value, (int, float))
+    if hint is int:
+        return isinstance(value, int)
+    return isinstance(value, hint)
+
+
+def _shown(value: Any, most: int = 60) -> str:
+    """A value as JSON, cut short: what the user would see in the file."""
+    text = json.dumps(value)
+    return text if len(text) <= most else text[: most - 3] + "..."
+
+
+def _check_types(body: dict[str, Any], where: str) -> None:
+    """Every field the model reads has the type ``Model`` declares for it (its dataclass hints), else one
+    line naming the field, what it must be and what it holds.  Fields we do not know are left alone."""
+    import typing
+
+    hints = typing.get_type_hints(Model)
+    for name, hint in hints.items():
+        if name in body and not _fits(body[name], hint):
+            meaning = f" ({FIELD_MEANING[name]})" if name in FIELD_MEANING else ""
+            raise ModelError(f'{where} is damaged: field "{name}" must be {_type_words(hint)}{meaning}, '
+                             f"got {_shown(body[name])}")
 
 
 def _check_shapes(body: dict[str, Any], where: str) -> None:
