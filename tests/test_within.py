@@ -361,12 +361,7 @@ def test_group_with_a_tiny_spread_gets_a_grid_of_its_own_and_equals_a_run_on_it_
 def test_same_data_and_options_give_the_same_within_model(within_db):
     def body(model):
         d = model.to_dict()
-        d.pop("timings"), d.pop("created")
-        for g in d["within"]["groups"]:
-            for p in g["passes"]:
-                p.pop("seconds", None)
-        for p in d["passes"]:
-            p.pop("seconds", None)
+        d.pop("timings"), d.pop("created")  # what the README says may differ, and nothing else
         return d
 
     with DuckDBEngine(str(within_db), read_only=True) as engine:

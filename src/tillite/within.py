@@ -478,7 +478,7 @@ def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within
                 r.stats, r.done = assigned, True
             else:
                 r.stats, centroids[g] = updated, updated.centroids
-        passes.append({"pass": p, "sse_assigned": before_all, "sse": after_all, "seconds": seconds, "groups": len(moving)})
+        passes.append({"pass": p, "sse_assigned": before_all, "sse": after_all, "groups": len(moving)})
         progress("refine", f"pass {p}: {len(moving):,} group(s) still moving, their SSE {before_all:.6g} -> {after_all:.6g}, "
                            f"{seconds:.2f} s")
     return passes, timings
