@@ -269,7 +269,7 @@ class Model:
             f"source: {self.source}",
             f"method: {self.method}, k={self.k}, scaling={self.scaling}",
             f"rows: {self.rows:,} ({self.skipped:,} skipped for NULL/NaN/Inf), segmented: {self.usable:,}",
-            f"SSE (row level, {self.units(short=True)}): {self.sse:.6g}",
+            f"SSE ({self.sse_basis()}, {self.units(short=True)}): {self.sse:.6g}",
         ]
         if self.constant_columns:
             lines.append(f"constant columns (no weight): {', '.join(self.constant_columns)}")
@@ -297,6 +297,13 @@ class Model:
             lines.append(f"shares are of the {self.usable:,} rows in segments; {left_out} are not counted in them")
         lines.extend(self._name_lines())
         return "\n".join(lines)
+
+    def sse_basis(self) -> str:
+        """What the SSE is: 'row level' when it is the rows' own (a refine pass ran, or one would have
+        moved no row as the cells settled every row, or density's labels follow its cells), else a
+        'cell-based estimate' (no refine pass: whole cells assigned, as a store does by default)."""
+        refined = self.passes or self.method == "density" or int(self.params.get("refine_passes") or 0) > 0
+        return "row level" if refined else "cell-based estimate, no refine pass"
 
     def units(self, short: bool = False) -> str:
         """What distances are measured in: standard deviations or the columns' own units, maybe weighted
@@ -695,7 +702,8 @@ def group_models(model: Model) -> list[tuple[dict[str, Any], Model]]:
             segment_sse=g["segment_sse"], radius=g["radius"], rows=g["rows"], skipped=g["skipped"],
             source=f"{model.source} where {model.within['column']} is {g['name']}", k=g["k"], method=model.method,
             ids=g.get("ids") or [], constant_columns=g.get("constant_columns", []), grid={"sd": g.get("sd")},
-            params={k: v for k, v in (("k_choice", g.get("k_choice")),) if v}, categorical=model.categorical,
+            params={k: v for k, v in (("k_choice", g.get("k_choice")), ("refine_passes", model.params.get("refine_passes")))
+                    if v is not None}, passes=list(g.get("passes") or []), categorical=model.categorical,
             names=dict(g.get("names") or {}),
         )
         out.append((g, one))
@@ -722,9 +730,9 @@ def within_sse_line(model: Model) -> str:
     standard deviations, which the line says in words rather than in nested brackets."""
     weighted = " (weighted)" if any(w not in (0, 1) for w in model.weights) else ""
     if model.scaling == "zscore":
-        return (f"SSE (row level, summed over the groups): {model.sse:.6g}; each group's part is in that group's "
-                f"own standard deviations{weighted}")
-    return f"SSE (row level, summed over the groups, in original units{weighted}): {model.sse:.6g}"
+        return (f"SSE ({model.sse_basis()}, summed over the groups): {model.sse:.6g}; each group's part is in that "
+                f"group's own standard deviations{weighted}")
+    return f"SSE ({model.sse_basis()}, summed over the groups, in original units{weighted}): {model.sse:.6g}"
 
 
 def within_describe(model: Model) -> str:

@@ -536,6 +536,7 @@ def assemble(
             "k": model.k,
             "built": model.created,
             "sse": model.sse,
+            "sse_basis": model.sse_basis(),
             "calinski_harabasz": calinski_harabasz_of(present, model),
             "quartile_sample": sampled,
             "quartile_sample_percent": quartile_sample_percent(model),
@@ -732,6 +733,6 @@ def within_report(engine: Engine, source: Source, model: Model, by: Sequence[str
         "header": {"source": model.source, "within": model.within["column"], "rows": model.rows, "skipped": model.skipped,
                    "columns": list(model.columns), "method": model.method, "groups": len(groups),
                    "segments": sum(g["k"] for g, _ in groups), "built": model.created, "sse": model.sse,
-                   "quartile_sample": sampled, "quartile_sample_percent": quartile_sample_percent(model), "caution": CAUTION},
+                   "sse_basis": model.sse_basis(), "quartile_sample": sampled, "quartile_sample_percent": quartile_sample_percent(model), "caution": CAUTION},
         "groups": reports,
     }

@@ -417,7 +417,7 @@ def _header_items(h: dict[str, Any]) -> list[tuple[str, str]]:
         ("method", h["method"]),
         ("k", str(h["k"])),
         ("model built", h["built"] or "–"),
-        ("SSE (row level, scaled units)", fmt(h["sse"])),
+        (f"SSE ({h.get('sse_basis', 'row level')}, scaled units)", fmt(h["sse"])),
         ("Calinski-Harabasz (exact, from the segments' CFs)", fmt(h["calinski_harabasz"])),
     ]
     return items
@@ -478,7 +478,7 @@ def _within_header_items(h: dict[str, Any]) -> list[tuple[str, str]]:
         ("groups", fmt(h["groups"])), ("segments in all", fmt(h["segments"])),
         ("rows", fmt(h["rows"])), ("skipped rows (NULL/NaN/Inf)", fmt(h["skipped"])),
         ("columns", ", ".join(h["columns"])), ("method", h["method"]), ("model built", h["built"] or "–"),
-        ("SSE (row level, summed over the groups)", fmt(h["sse"])),
+        (f"SSE ({h.get('sse_basis', 'row level')}, summed over the groups)", fmt(h["sse"])),
     ]
 
 
@@ -486,7 +486,7 @@ def _group_items(g: dict[str, Any]) -> list[tuple[str, str]]:
     """The figures heading one group's section."""
     h = g["report"]["header"]
     items = [("rows", fmt(h["rows"])), ("segmented rows", fmt(h["segmented"])), ("k", str(h["k"])),
-             (f"SSE (row level, {h.get('units', 'in scaled units')})", fmt(h["sse"])),
+             (f"SSE ({h.get('sse_basis', 'row level')}, {h.get('units', 'in scaled units')})", fmt(h["sse"])),
              ("Calinski-Harabasz (exact, from the segments' CFs)", fmt(h["calinski_harabasz"]))]
     return items + ([("notes", "; ".join(g["notes"]))] if g.get("notes") else [])
 
