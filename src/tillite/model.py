@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from .errors import ModelError, TilliteError
+from .figures import column_text, digits_to_tell_apart
 
 
 def k_list_text(ks: "list[int] | tuple[int, ...]") -> str:
@@ -280,10 +281,12 @@ class Model:
         total = max(self.usable, 1)
         # centroids come back as centre + c * scale: round-off of that size is shown as 0
         tiny = [1e-9 * (abs(m) + abs(s)) for m, s in zip(self.center, self.scale)]
+        shown_values = [[0.0 if abs(c[j]) <= tiny[j] else c[j] for j in shown] for c in self.centroids]
+        digits = [digits_to_tell_apart(col) for col in zip(*shown_values)] if shown_values else []
         for i, size in enumerate(self.sizes):
             rows.append(
                 [str(self.segment_ids()[i]), f"{size:,}", f"{100.0 * size / total:.1f}%", f"{self.radius[i]:.3g}", f"{self.segment_sse[i]:.4g}"]
-                + [_fmt(0.0 if abs(self.centroids[i][j]) <= tiny[j] else self.centroids[i][j]) for j in shown]
+                + [column_text(v, d) for v, d in zip(shown_values[i], digits)]
             )
         widths = [max([len(h)] + [len(r[c]) for r in rows]) for c, h in enumerate(head)]
         lines.append("")
@@ -541,10 +544,6 @@ def _check_categorical_fields(specs: list, where: str) -> None:
     indicators = [n for spec in specs for n in spec["indicators"]]
     if len(set(names)) != len(names) or len(set(indicators)) != len(indicators):
         raise ModelError(f"{where} is damaged: a categorical column or indicator is listed twice")
-
-
-def _fmt(v: float) -> str:
-    return f"{v:.4g}" if abs(v) < 1e5 else f"{v:.6g}"
 
 
 def _plain(o: Any) -> Any:
