@@ -425,7 +425,7 @@ def run_refine_pass(engine: Engine, source: Source, columns: Sequence[str], assi
         mine = gid == g
         s = seg[mine]
         n = np.bincount(s, weights=n_all[mine], minlength=k)[:k]
-        ls_u = np.column_stack([np.bincount(s, weights=ls_all[mine, j], minlength=k)[:k] for j in range(d)]) * assign.inv_scale[g][None, :]
+        ls_u = np.column_stack([np.bincount(s, weights=ls_all[mine, j], minlength=k)[:k] for j in range(d)])  # scaled in SQL
         dist = np.bincount(s, weights=dist_all[mine], minlength=k)[:k]
         out.append(moved_to_means(n, ls_u, dist, old, assign.weights[g]))
     return out, time.perf_counter() - t0
