@@ -394,6 +394,10 @@ def _damage_within(d: dict, what: str) -> None:
         groups.clear()
     elif what == "bad-type":
         d["within"]["type"] = "BLOB; DROP TABLE meters"
+    elif what == "sizes-text":
+        groups[0]["sizes"] = "x"
+    elif what == "sse-null":
+        groups[1]["sse"] = None
 
 
 @pytest.mark.parametrize("what, needles", [
@@ -402,6 +406,8 @@ def _damage_within(d: dict, what: str) -> None:
     ("group-twice", ["damaged", "listed twice"]),
     ("no-groups", ["damaged", "no groups"]),
     ("bad-type", ["damaged", "grp", "not a SQL type"]),
+    ("sizes-text", ["damaged", 'field "sizes" must be a list of whole numbers', "(group "]),
+    ("sse-null", ["damaged", 'field "sse" must be a number, got null', "(group "]),
 ])
 @pytest.mark.parametrize("command", ["show", "label", "macros"])
 def test_a_damaged_within_model_file_is_one_error_line_in_show_label_and_macros(within_db, within_model, tmp_path,

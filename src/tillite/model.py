@@ -675,6 +675,7 @@ def _check_groups(body: dict[str, Any], where: str) -> None:
     for g in groups:
         label = f"{where} (group {g.get('name')})"
         part = {**body, **{f: g[f] for f in GROUP_FIELDS}, "ids": g.get("ids") or []}
+        _check_types(part, label)
         _check_shapes(part, label)
         _check_values(part, label)
 
