@@ -284,17 +284,18 @@ def test_a_column_near_1e307_with_a_small_relative_spread_segments_like_the_unsh
         assert st["columns"]["a"]["max"] == rows[:, 0].max()
 
 
-@pytest.mark.parametrize("values,needles", [
-    ("1e-320 * range", ["column a", "spread", "1/sd overflows"]),  # subnormal: 1/sd is beyond the largest double
-    ("(random() - 0.5) * 1e308", ["column a", "overflow doubles"]),  # centred values summed across columns overflow
-], ids=["subnormal spread", "spread near the largest double"])
-def test_a_column_doubles_cannot_carry_is_refused_in_one_line_naming_it(tmp_path, values, needles):
+@pytest.mark.parametrize("values,options,needles", [
+    ("1e-320 * range", [], ["column a", "spread", "1/sd overflows"]),  # subnormal: 1/sd is beyond the largest double
+    ("(random() - 0.5) * 1e308", [], ["column a", "overflow doubles"]),  # centred values summed across columns overflow
+    ("random() * 1e200", ["--scaling", "none"], ["column a", "squared"]),  # unscaled: squares of 1e200 overflow
+], ids=["subnormal spread", "spread near the largest double", "unscaled squares"])
+def test_a_column_doubles_cannot_carry_is_refused_in_one_line_naming_it(tmp_path, values, options, needles):
     from conftest import assert_one_error_line, run_cli
 
     path = tmp_path / "ends.duckdb"
     with duckdb.connect(str(path)) as con:
         con.execute(f"CREATE TABLE t AS SELECT {values} AS a, random() AS b FROM range(5000)")
-    res = run_cli("segment", path, "-t", "t", "-c", "a,b", "--k", 3, "-q", "-o", tmp_path / "m.json")
+    res = run_cli("segment", path, "-t", "t", "-c", "a,b", "--k", 3, "-q", "-o", tmp_path / "m.json", *options)
     assert_one_error_line(res, *needles)
     assert not (tmp_path / "m.json").exists()
 
