@@ -156,6 +156,62 @@ def test_damaged_model_file_is_one_error_line_for_show_and_label(tmp_path, bad_i
     assert_one_error_line(run_cli("label", bad_inputs_db, "-t", "points", "-m", bad, "--into", "never_made"), "damaged", *needles)
 
 
+#: A value of each JSON type: the fuzz puts into a field every one its own value is not.
+JSON_KINDS = {"null": None, "number": 7, "text": "x", "list": [1, "y"], "object": {"x": 1}}
+
+
+def _json_kind(value) -> str:
+    return {type(None): "null", bool: "number", int: "number", float: "number", str: "text", list: "list",
+            dict: "object"}[type(value)]
+
+
+def _model_commands(bad_inputs_db: Path, bad: Path, tmp_path: Path) -> dict[str, list]:
+    """show, label and report of one model file."""
+    return {"show": ["show", bad],
+            "label": ["label", bad_inputs_db, "-t", "points", "-m", bad, "--into", "never_made"],
+            "report": ["report", bad_inputs_db, "-t", "points", "-m", bad, "-o", tmp_path / "r.html"]}
+
+
+#: Every top-level field of a model file written today (test_every_top_level_field_of_a_model_file_is_fuzzed).
+MODEL_FIELDS = [
+    "format", "version", "columns", "center", "scale", "weights", "scaling", "centroids", "centroids_scaled", "sizes", "sse",
+    "segment_sse", "radius", "rows", "skipped", "source", "k", "method", "ids", "extras", "cell_map", "constant_columns",
+    "grid", "params", "passes", "timings", "created", "names", "report_map", "within", "categorical"]
+
+
+@pytest.mark.parametrize("field", MODEL_FIELDS)
+def test_a_model_field_of_another_json_type_is_one_error_line_for_show_label_and_report(tmp_path, bad_inputs_db, model, field):
+    data = json.loads(model.read_text())
+    for kind, value in JSON_KINDS.items():
+        if kind == _json_kind(data[field]):
+            continue
+        bad = _damaged(model, tmp_path, _set(field, value))
+        for command, args in _model_commands(bad_inputs_db, bad, tmp_path).items():
+            line = assert_one_error_line(run_cli(*args), str(bad), cli_words=False)
+            assert field in line or "format" in line or "version" in line, (field, kind, command, line)
+    assert not (tmp_path / "r.html").exists()
+
+
+def test_every_top_level_field_of_a_model_file_is_fuzzed(model):
+    assert sorted(MODEL_FIELDS) == sorted(json.loads(model.read_text()))
+
+
+@pytest.mark.parametrize("field,value,words", [
+    ("columns", [1, 2], 'field "columns" must be a list of texts (column names), got [1, 2]'),
+    ("grid", "x", 'field "grid" must be an object, got "x"'),
+    ("names", [1], 'field "names" must be an object of texts'),
+    ("params", None, 'field "params" must be an object, got null'),
+    ("rows", "x", 'field "rows" must be a whole number (a row count), got "x"'),
+    ("source", 5, 'field "source" must be text'),
+    ("centroids", [[1, "a", 2]] * 3, 'field "centroids" must be a list of lists of numbers'),
+    ("sizes", [1, True, 3], 'field "sizes" must be a list of whole numbers'),
+], ids=["columns", "grid", "names", "params", "rows", "source", "centroids", "sizes"])
+def test_a_model_field_of_the_wrong_type_names_the_field_the_file_and_what_it_must_be(tmp_path, bad_inputs_db, model, field, value, words):
+    bad = _damaged(model, tmp_path, _set(field, value))
+    for args in _model_commands(bad_inputs_db, bad, tmp_path).values():
+        assert_one_error_line(run_cli(*args), f"model file {bad}", words, cli_words=False)
+
+
 def test_csv_with_only_a_header_says_it_has_no_rows(tmp_path):
     path = tmp_path / "empty.csv"
     path.write_text("a,b\n")

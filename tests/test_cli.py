@@ -659,11 +659,20 @@ def test_k_auto_on_three_rows_says_why_fewer_candidates_were_compared_and_prints
 
 def test_segment_minus_one_is_nameable_as_an_id_not_an_option(tmp_path, blobs_db_copy):
     out = tmp_path / "m.json"
-    assert run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 2, "-o", out, "-q").exit_code == 0
+    assert run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 2, "--tree-budget", 50, "-o", out, "-q").exit_code == 0
+    assert "outliers" in json.loads(out.read_text())["extras"]  # a CF tree's outlier group is segment -1
     res = run_cli("name", out, -1, "unusual", 0, "first")
     assert res.exit_code == 0, res.output
     assert '-1: "unusual"' in res.stdout
     assert json.loads(out.read_text())["names"] == {"-1": "unusual", "0": "first"}
+
+
+def test_naming_segment_minus_one_of_a_model_without_it_is_refused_listing_its_ids(tmp_path, blobs_db_copy):
+    out = tmp_path / "m.json"
+    assert run_cli("segment", blobs_db_copy, "-t", "points", "-c", "a,b", "--k", 2, "-o", out, "-q").exit_code == 0
+    before = out.read_bytes()
+    assert_one_error_line(run_cli("name", out, -1, "unusual"), "segment id -1 is not in the model", "its ids are 0, 1")
+    assert out.read_bytes() == before
 
 
 def test_segment_json_names_the_model_file_it_wrote_even_when_quiet(tmp_path, blobs_db_copy):

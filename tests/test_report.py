@@ -560,3 +560,40 @@ def test_report_of_an_outlier_model_counts_the_rows_its_label_view_gives_each_se
     assert (seg == -1).any()
     assert engine.con.execute("SELECT count(*) FROM duckdb_views() WHERE view_name LIKE '__tillite_map%'").fetchone()[0] == 0
     engine.close()
+
+
+def test_sse_without_a_refine_pass_is_labelled_a_cell_based_estimate_not_row_level(tmp_path):
+    """A store runs no refine pass by default: its SSE assigns whole cells, so `store build`, `show` and the
+    report call it a cell-based estimate; a segment run with its refine passes calls it row level.
+    Reference: the SSE of the labels (numpy on the label view's rows) equals a row-level SSE only."""
+    from sklearn.datasets import make_blobs
+
+    x, _ = make_blobs(n_samples=3_000, centers=3, n_features=2, cluster_std=1.5, random_state=2)
+    path = write_table(tmp_path / "s.duckdb", "points", {"a": x[:, 0], "b": x[:, 1], "part": np.arange(len(x)) % 3})
+    runner = CliRunner()
+    built = runner.invoke(main, ["store", "build", str(path), "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3])
+    assert built.exit_code == 0, built.output
+    assert "SSE (cell-based estimate, no refine pass" in built.stdout and "row level" not in built.stdout
+    out = tmp_path / "store.json"
+    assert runner.invoke(main, ["report", str(path), "--store", "points", "--format", "json", "--out", str(out), "-q"]).exit_code == 0
+    assert json.loads(out.read_text())["header"]["sse_basis"] == "cell-based estimate, no refine pass"
+    page = tmp_path / "store.md"
+    assert runner.invoke(main, ["report", str(path), "--store", "points", "--format", "md", "--out", str(page), "-q"]).exit_code == 0
+    assert "SSE (cell-based estimate, no refine pass, scaled units)" in page.read_text()
+    for passes, basis in ((0, "cell-based estimate, no refine pass"), (3, "row level")):
+        model = tmp_path / f"m{passes}.json"
+        assert runner.invoke(main, ["segment", str(path), "-t", "points", "-c", "a,b", "--k", 3, "--refine-passes", passes,
+                                    "-o", str(model), "-q"]).exit_code == 0
+        shown = runner.invoke(main, ["show", str(model)])
+        assert f"SSE ({basis}, in standard deviations)" in shown.stdout
+    refined = Model.read(tmp_path / "m3.json")
+    engine = DuckDBEngine(str(path))
+    try:
+        label(engine, Source.of_table("points"), refined, "labels")
+        seg = engine.con.execute("SELECT segment FROM labels ORDER BY a, b").fetchnumpy()["segment"]
+        rows = engine.con.execute("SELECT a, b FROM labels ORDER BY a, b").fetchnumpy()
+    finally:
+        engine.close()
+    u = (np.column_stack([rows["a"], rows["b"]]) - np.asarray(refined.center)) / np.asarray(refined.scale)
+    own = np.asarray(refined.centroids_scaled)[[refined.segment_ids().index(s) for s in seg]]
+    assert float(((u - own) ** 2).sum()) == pytest.approx(refined.sse, rel=1e-9)

@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from .errors import ModelError, TilliteError
+from .figures import column_text, digits_to_tell_apart
 
 
 def k_list_text(ks: "list[int] | tuple[int, ...]") -> str:
@@ -169,6 +170,7 @@ class Model:
         missing = [k for k in required if k not in body]
         if missing:
             raise ModelError(f"{where} lacks {', '.join(missing)}")
+        _check_types(body, where)
         _check_shapes(body, where)
         _check_values(body, where)
         _check_groups(body, where)
@@ -268,7 +270,7 @@ class Model:
             f"source: {self.source}",
             f"method: {self.method}, k={self.k}, scaling={self.scaling}",
             f"rows: {self.rows:,} ({self.skipped:,} skipped for NULL/NaN/Inf), segmented: {self.usable:,}",
-            f"SSE (row level, {self.units(short=True)}): {self.sse:.6g}",
+            f"SSE ({self.sse_basis()}, {self.units(short=True)}): {self.sse:.6g}",
         ]
         if self.constant_columns:
             lines.append(f"constant columns (no weight): {', '.join(self.constant_columns)}")
@@ -279,10 +281,12 @@ class Model:
         total = max(self.usable, 1)
         # centroids come back as centre + c * scale: round-off of that size is shown as 0
         tiny = [1e-9 * (abs(m) + abs(s)) for m, s in zip(self.center, self.scale)]
+        shown_values = [[0.0 if abs(c[j]) <= tiny[j] else c[j] for j in shown] for c in self.centroids]
+        digits = [digits_to_tell_apart(col) for col in zip(*shown_values)] if shown_values else []
         for i, size in enumerate(self.sizes):
             rows.append(
                 [str(self.segment_ids()[i]), f"{size:,}", f"{100.0 * size / total:.1f}%", f"{self.radius[i]:.3g}", f"{self.segment_sse[i]:.4g}"]
-                + [_fmt(0.0 if abs(self.centroids[i][j]) <= tiny[j] else self.centroids[i][j]) for j in shown]
+                + [column_text(v, d) for v, d in zip(shown_values[i], digits)]
             )
         widths = [max([len(h)] + [len(r[c]) for r in rows]) for c, h in enumerate(head)]
         lines.append("")
@@ -296,6 +300,13 @@ class Model:
             lines.append(f"shares are of the {self.usable:,} rows in segments; {left_out} are not counted in them")
         lines.extend(self._name_lines())
         return "\n".join(lines)
+
+    def sse_basis(self) -> str:
+        """What the SSE is: 'row level' when it is the rows' own (a refine pass ran, or one would have
+        moved no row as the cells settled every row, or density's labels follow its cells), else a
+        'cell-based estimate' (no refine pass: whole cells assigned, as a store does by default)."""
+        refined = self.passes or self.method == "density" or int(self.params.get("refine_passes") or 0) > 0
+        return "row level" if refined else "cell-based estimate, no refine pass"
 
     def units(self, short: bool = False) -> str:
         """What distances are measured in: standard deviations or the columns' own units, maybe weighted
@@ -395,6 +406,69 @@ class Model:
         return lines
 
 
+# ------------------------------------------------------------ field types, checked from the dataclass's own hints
+
+#: Words for what a field holds, beside its type, where the type alone would not say it.
+FIELD_MEANING = {"columns": "column names", "constant_columns": "column names", "source": "the source's name",
+                 "names": "segment names keyed by segment id", "ids": "segment ids", "sizes": "row counts",
+                 "rows": "a row count", "skipped": "a row count", "k": "the number of segments"}
+
+
+def _type_words(hint: Any, plural: bool = False) -> str:
+    """A type hint in words: list[list[float]] -> 'a list of lists of numbers'."""
+    import typing
+
+    origin, args = typing.get_origin(hint), typing.get_args(hint)
+    if origin is list:
+        return ("lists of " if plural else "a list of ") + _type_words(args[0], True)
+    if origin is dict:
+        inner = "" if args[1] is Any else " of " + _type_words(args[1], True)
+        return ("objects" if plural else "an object") + inner
+    single, many = {float: ("a number", "numbers"), int: ("a whole number", "whole numbers"),
+                    str: ("text", "texts")}.get(hint, ("any value", "any values"))
+    return many if plural else single
+
+
+def _fits(value: Any, hint: Any) -> bool:
+    """Whether a JSON value has the type of a hint (list[...], dict[str, ...], float, int, str, Any); a number
+    is an int or float but not true/false, and an int field takes a float only when it is whole."""
+    import typing
+
+    origin, args = typing.get_origin(hint), typing.get_args(hint)
+    if hint is Any:
+        return True
+    if origin is list:
+        return isinstance(value, list) and all(_fits(v, args[0]) for v in value)
+    if origin is dict:
+        return isinstance(value, dict) and all(isinstance(k, str) and _fits(v, args[1]) for k, v in value.items())
+    if isinstance(value, bool):
+        return False
+    if hint is float:
+        return isinstance(value, (int, float))
+    if hint is int:
+        return isinstance(value, int)
+    return isinstance(value, hint)
+
+
+def _shown(value: Any, most: int = 60) -> str:
+    """A value as JSON, cut short: what the user would see in the file."""
+    text = json.dumps(value)
+    return text if len(text) <= most else text[: most - 3] + "..."
+
+
+def _check_types(body: dict[str, Any], where: str) -> None:
+    """Every field the model reads has the type ``Model`` declares for it (its dataclass hints), else one
+    line naming the field, what it must be and what it holds.  Fields we do not know are left alone."""
+    import typing
+
+    hints = typing.get_type_hints(Model)
+    for name, hint in hints.items():
+        if name in body and not _fits(body[name], hint):
+            meaning = f" ({FIELD_MEANING[name]})" if name in FIELD_MEANING else ""
+            raise ModelError(f'{where} is damaged: field "{name}" must be {_type_words(hint)}{meaning}, '
+                             f"got {_shown(body[name])}")
+
+
 def _check_shapes(body: dict[str, Any], where: str) -> None:
     """A model whose lists disagree in length would fail later with an obscure error."""
     lists = ("columns", "center", "scale", "weights", "centroids", "centroids_scaled", "sizes", "segment_sse", "radius")
@@ -470,10 +544,6 @@ def _check_categorical_fields(specs: list, where: str) -> None:
     indicators = [n for spec in specs for n in spec["indicators"]]
     if len(set(names)) != len(names) or len(set(indicators)) != len(indicators):
         raise ModelError(f"{where} is damaged: a categorical column or indicator is listed twice")
-
-
-def _fmt(v: float) -> str:
-    return f"{v:.4g}" if abs(v) < 1e5 else f"{v:.6g}"
 
 
 def _plain(o: Any) -> Any:
@@ -605,6 +675,7 @@ def _check_groups(body: dict[str, Any], where: str) -> None:
     for g in groups:
         label = f"{where} (group {g.get('name')})"
         part = {**body, **{f: g[f] for f in GROUP_FIELDS}, "ids": g.get("ids") or []}
+        _check_types(part, label)
         _check_shapes(part, label)
         _check_values(part, label)
 
@@ -631,7 +702,8 @@ def group_models(model: Model) -> list[tuple[dict[str, Any], Model]]:
             segment_sse=g["segment_sse"], radius=g["radius"], rows=g["rows"], skipped=g["skipped"],
             source=f"{model.source} where {model.within['column']} is {g['name']}", k=g["k"], method=model.method,
             ids=g.get("ids") or [], constant_columns=g.get("constant_columns", []), grid={"sd": g.get("sd")},
-            params={k: v for k, v in (("k_choice", g.get("k_choice")),) if v}, categorical=model.categorical,
+            params={k: v for k, v in (("k_choice", g.get("k_choice")), ("refine_passes", model.params.get("refine_passes")))
+                    if v is not None}, passes=list(g.get("passes") or []), categorical=model.categorical,
             names=dict(g.get("names") or {}),
         )
         out.append((g, one))
@@ -658,9 +730,9 @@ def within_sse_line(model: Model) -> str:
     standard deviations, which the line says in words rather than in nested brackets."""
     weighted = " (weighted)" if any(w not in (0, 1) for w in model.weights) else ""
     if model.scaling == "zscore":
-        return (f"SSE (row level, summed over the groups): {model.sse:.6g}; each group's part is in that group's "
-                f"own standard deviations{weighted}")
-    return f"SSE (row level, summed over the groups, in original units{weighted}): {model.sse:.6g}"
+        return (f"SSE ({model.sse_basis()}, summed over the groups): {model.sse:.6g}; each group's part is in that "
+                f"group's own standard deviations{weighted}")
+    return f"SSE ({model.sse_basis()}, summed over the groups, in original units{weighted}): {model.sse:.6g}"
 
 
 def within_describe(model: Model) -> str:

@@ -39,14 +39,14 @@ def apply_names(model: Model, given: dict[Any, Any], group: str | None = None) -
         return _apply_group_names(model, given, group)
     if group is not None:
         raise NamingError("--group is for a model of segments within groups (segment --within); this model has none")
-    ids = model.segment_ids()
+    ids = model.segment_ids() + ([-1] if has_segment_minus_one(model) and -1 not in model.segment_ids() else [])
     names = dict(model.names)
     for key, value in given.items():
         try:
             sid = int(str(key).strip())
         except ValueError:
             raise NamingError(f"segment id {key!r} is not a whole number; the model's ids are {', '.join(map(str, ids))}") from None
-        if sid not in ids and sid != -1:
+        if sid not in ids and str(sid) not in model.names:  # a name already there may still be removed
             raise NamingError(f"segment id {sid} is not in the model; its ids are {', '.join(map(str, ids))}")
         if not isinstance(value, str):
             raise NamingError(f"the name of segment {sid} must be text, got {json.dumps(value)}")
@@ -56,6 +56,11 @@ def apply_names(model: Model, given: dict[Any, Any], group: str | None = None) -
             names[str(sid)] = value
     model.names = {k: names[k] for k in sorted(names, key=int)}
     return model
+
+
+def has_segment_minus_one(model: Model) -> bool:
+    """Whether the model labels rows -1: its outlier group (CF tree), or density noise dropped from the segments."""
+    return bool(model.extras.get("outliers")) or (model.method == "density" and model.params.get("noise") == "drop")
 
 
 def _apply_group_names(model: Model, given: dict[Any, Any], group: str | None) -> Model:

@@ -131,11 +131,11 @@ def report_scan(
     """Per-segment statistics (no quartiles) and the breakdowns by ``by``, from ONE statement that assigns
     each row once (or reads ``labels``) and groups by (segment, category): the groups are pooled exactly here."""
     got = _query_assigned(engine, model, labels, lambda held: sqlgen.report_scan_statement(
-        assigned_rows(engine, source, model, by, labels, held), model.columns, by))
+        assigned_rows(engine, source, model, by, labels, held), model.columns, by, *_scan_units(model)))
     segs = _masked_ints(got["s"])
     keep = [i for i, s in enumerate(segs) if s is not None]  # groups with a NULL segment hold the skipped rows
     sets = _grouping_sets(got, len(by), keep)
-    stats = _pooled_statistics(got, model.columns, [i for i in keep if sets[i] == 0], segs)
+    stats = _pooled_statistics(got, model, [i for i in keep if sets[i] == 0], segs)
     breakdowns = [_ranked_breakdown(got, model, column, f"c{b}", [i for i in keep if sets[i] == b], segs, top)
                   for b, column in enumerate(by)]
     return stats, breakdowns
@@ -149,9 +149,28 @@ def _grouping_sets(got: dict[str, np.ndarray], m: int, rows: Sequence[int]) -> d
     return {i: int(np.flatnonzero(flags[i] == 0)[0]) for i in rows}
 
 
-def _pooled_statistics(got: dict[str, np.ndarray], columns: Sequence[str], rows: Sequence[int], segs: list[int | None]) -> dict[int, dict[str, Any]]:
+def _scan_units(model: Model) -> tuple[list[float], list[float]]:
+    """The centre and inverse scale report_scan_statement measures means and sds in (the model's own)."""
+    return list(model.center), [1.0 / s for s in model.scale]
+
+
+def pooled_mean_sd(n: np.ndarray, mean: np.ndarray, sd: np.ndarray) -> tuple[float, float]:
+    """Mean and population sd of groups pooled exactly (the pooled variance is the groups' mean variance
+    plus the variance of their means), in units relative to the first mean and the largest spread, so
+    means near 1e307 or sds near 1e200 neither overflow nor lose their digits."""
+    total = n.sum()
+    ref = float(mean[0])
+    size = float(max(np.abs(mean - ref).max(), sd.max())) if len(mean) else 0.0
+    size = size if size > 0 and math.isfinite(size) else 1.0
+    m, s = (mean - ref) / size, sd / size
+    mu = float((n * m).sum() / total)
+    var = float((n * (s**2 + (m - mu) ** 2)).sum() / total)
+    return ref + size * mu, size * math.sqrt(max(var, 0.0))
+
+
+def _pooled_statistics(got: dict[str, np.ndarray], model: Model, rows: Sequence[int], segs: list[int | None]) -> dict[int, dict[str, Any]]:
     """Per segment: n and per column mean, population sd, min, max pooled exactly from its groups' figures
-    (the pooled variance is the groups' mean variance plus the variance of their means)."""
+    (means and sds come in the units of ``_scan_units``: moved back to the column's own here)."""
     n_all = np.ma.getdata(got["n"]).astype(np.float64)
     out: dict[int, dict[str, Any]] = {}
     for sid in sorted({segs[i] for i in rows}):
@@ -159,14 +178,13 @@ def _pooled_statistics(got: dict[str, np.ndarray], columns: Sequence[str], rows:
         n = n_all[idx]
         total = n.sum()
         per = {}
-        for j, name in enumerate(columns):
+        for j, name in enumerate(model.columns):
             mean = np.array([_float(got[f"mean{j}"][i]) for i in idx], dtype=np.float64)
             sd = np.array([_float(got[f"sd{j}"][i]) for i in idx], dtype=np.float64)
-            mu = float((n * mean).sum() / total)
-            var = float((n * (sd**2 + (mean - mu) ** 2)).sum() / total)
+            mu, spread = pooled_mean_sd(n, mean, sd)
             per[name] = {
-                "mean": mu,
-                "sd": math.sqrt(max(var, 0.0)),
+                "mean": float(model.center[j]) + mu * float(model.scale[j]),
+                "sd": spread * float(model.scale[j]),
                 "min": min(_float(got[f"min{j}"][i]) for i in idx),
                 "max": max(_float(got[f"max{j}"][i]) for i in idx),
             }
@@ -270,10 +288,8 @@ def overall_from_segments(stats: dict[int, dict[str, Any]], columns: Sequence[st
     n = np.array([s["n"] for s in stats.values()], dtype=np.float64)
     mean = np.array([[s["columns"][c]["mean"] for c in columns] for s in stats.values()], dtype=np.float64)
     sd = np.array([[s["columns"][c]["sd"] for c in columns] for s in stats.values()], dtype=np.float64)
-    total = n.sum()
-    mu = (n[:, None] * mean).sum(axis=0) / total
-    var = (n[:, None] * (sd**2 + (mean - mu[None, :]) ** 2)).sum(axis=0) / total
-    return mu, np.sqrt(np.maximum(var, 0.0)), int(total)
+    both = np.array([pooled_mean_sd(n, mean[:, j], sd[:, j]) for j in range(len(columns))]).reshape(-1, 2)
+    return both[:, 0], both[:, 1], int(n.sum())
 
 
 def calinski_harabasz_of(stats: dict[int, dict[str, Any]], model: Model) -> float | None:
@@ -520,6 +536,7 @@ def assemble(
             "k": model.k,
             "built": model.created,
             "sse": model.sse,
+            "sse_basis": model.sse_basis(),
             "calinski_harabasz": calinski_harabasz_of(present, model),
             "quartile_sample": sampled,
             "quartile_sample_percent": quartile_sample_percent(model),
@@ -685,7 +702,7 @@ def within_report(engine: Engine, source: Source, model: Model, by: Sequence[str
     stride = max(g["k"] for g, _ in groups) + 1
     t0 = time.perf_counter()
     rows = report_rows_select(source, model.columns, by, model_assignment(model), engine.target, stride)
-    got = engine.query(sqlgen.report_scan_statement(rows, model.columns, by))
+    got = engine.query(sqlgen.report_scan_statement(rows, model.columns, by, *_scan_units(model)))
     codes = _masked_ints(got["s"])
     sets = _grouping_sets(got, len(by), [i for i, s in enumerate(codes) if s is not None])
     _say(progress, "report", f"per-segment statistics of {len(groups):,} group(s){' and breakdowns by ' + ', '.join(by) if by else ''}, "
@@ -703,7 +720,7 @@ def within_report(engine: Engine, source: Source, model: Model, by: Sequence[str
     reports = []
     for position, (entry, one) in enumerate(groups):
         mine = rows_of.get(position, [])
-        stats = _pooled_statistics(got, model.columns, [i for i in mine if sets[i] == 0], segs)
+        stats = _pooled_statistics(got, model, [i for i in mine if sets[i] == 0], segs)
         breakdowns = [_ranked_breakdown(got, one, column, f"c{b}", [i for i in mine if sets[i] == b], segs, TOP_CATEGORIES)
                       for b, column in enumerate(by)]
         own = {s % stride: q for s, q in quartiles.items() if s // stride == position}
@@ -716,6 +733,6 @@ def within_report(engine: Engine, source: Source, model: Model, by: Sequence[str
         "header": {"source": model.source, "within": model.within["column"], "rows": model.rows, "skipped": model.skipped,
                    "columns": list(model.columns), "method": model.method, "groups": len(groups),
                    "segments": sum(g["k"] for g, _ in groups), "built": model.created, "sse": model.sse,
-                   "quartile_sample": sampled, "quartile_sample_percent": quartile_sample_percent(model), "caution": CAUTION},
+                   "sse_basis": model.sse_basis(), "quartile_sample": sampled, "quartile_sample_percent": quartile_sample_percent(model), "caution": CAUTION},
         "groups": reports,
     }

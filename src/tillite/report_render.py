@@ -12,6 +12,7 @@ import html
 import math
 from typing import Any, Sequence
 
+from .figures import column_text, digits_to_tell_apart, fmt
 from .outputs import REPORT_MARKER
 
 __all__ = ["render_html", "render_markdown", "diverging_colour"]
@@ -31,15 +32,10 @@ def esc(text: Any) -> str:
     return html.escape("" if text is None else str(text), quote=True)
 
 
-def fmt(v: Any, digits: int = 4) -> str:
-    """A number for people: thousands separators for counts, 4 significant digits otherwise."""
-    if v is None:
-        return "–"
-    if isinstance(v, int) or (isinstance(v, float) and v.is_integer() and abs(v) < 1e15):
-        return f"{int(v):,}"
-    if v != 0 and (abs(v) >= 1e6 or abs(v) < 1e-3):
-        return f"{v:.{digits - 1}e}"
-    return f"{v:,.{max(digits - 1 - int(math.floor(math.log10(abs(v)))), 0) if v else 0}f}"
+def column_digits(content: dict[str, Any]) -> list[int]:
+    """Per column, the significant digits that tell the segments' means apart (figures.digits_to_tell_apart)."""
+    profile = content.get("profile") or []
+    return [digits_to_tell_apart(p["mean"][j] for p in profile) for j in range(len(content["header"]["columns"]))]
 
 
 def pct(v: float) -> str:
@@ -166,6 +162,7 @@ def profile_chart(content: dict[str, Any]) -> str:
     segments, profile = content["segments"], content["profile"]
     left, cw, ch, top = 190, 118, 40, 34
     body = []
+    digits = column_digits(content)
     for j, c in enumerate(columns):
         body.append(_text(left + j * cw + cw / 2, top - 10, _short(c, 18), anchor="middle", weight="bold"))
     for i, (s, p) in enumerate(zip(segments, profile)):
@@ -174,10 +171,10 @@ def profile_chart(content: dict[str, Any]) -> str:
         for j, c in enumerate(columns):
             z, mean = p["z"][j], p["mean"][j]
             fill = diverging_colour(z)
-            tip = f"{segment_label(s)}, {c}: mean {fmt(mean)} ({'' if z is None else f'{z:+.2f} sd'})"
+            tip = f"{segment_label(s)}, {c}: mean {column_text(mean, digits[j])} ({'' if z is None else f'{z:+.2f} sd'})"
             body.append(_rect(left + j * cw, y, cw - 2, ch - 2, fill, tip))
             ink = _text_on(fill)
-            body.append(_text(left + j * cw + cw / 2 - 1, y + 16, fmt(mean), anchor="middle", fill=ink))
+            body.append(_text(left + j * cw + cw / 2 - 1, y + 16, column_text(mean, digits[j]), anchor="middle", fill=ink))
             body.append(_text(left + j * cw + cw / 2 - 1, y + 31, "" if z is None else f"{z:+.1f} sd", size=10, anchor="middle", fill=ink))
     # legend: -3 .. +3 sd
     ly = top + len(segments) * ch + 14
@@ -191,8 +188,8 @@ def profile_chart(content: dict[str, Any]) -> str:
     svg = _svg(left + cw * len(columns) + 10, ly + 34, "Profile: segment x column, in standard deviations from the overall mean", body, "profile")
     table = _table(
         ["segment"] + [f"{c} (mean; sd from average)" for c in columns],
-        [[segment_label(s)] + [f"{fmt(m)}; {'–' if z is None else f'{z:+.2f}'}" for m, z in zip(p["mean"], p["z"])]
-         for s, p in zip(segments, profile)],
+        [[segment_label(s)] + [f"{column_text(m, d)}; {'–' if z is None else f'{z:+.2f}'}"
+                               for m, z, d in zip(p["mean"], p["z"], digits)] for s, p in zip(segments, profile)],
     )
     return _figure(
         "profile", svg,
@@ -202,9 +199,19 @@ def profile_chart(content: dict[str, Any]) -> str:
     )
 
 
+SPREAD_HEAD = ["segment", "rows", "mean", "sd", "min", "q25", "median", "q75", "max"]
+
+
+def spread_row(s: dict[str, Any], r: dict[str, Any], digits: int) -> list[str]:
+    """One segment's row of a spread table: the column's values to ``digits`` significant digits, its sd to 4."""
+    return [segment_label(s), fmt(s["rows"]), column_text(r["mean"], digits), fmt(r["sd"]),
+            *[column_text(r[q], digits) for q in ("min", "q25", "q50", "q75", "max")]]
+
+
 def spread_chart(content: dict[str, Any], column: str, index: int) -> str:
     segments, rows = content["segments"], content["spread"][column]
     left, width, row = 190, 380, 24
+    d = column_digits(content)[index]
     lo = min((r["min"] for r in rows if r["min"] is not None), default=0.0)
     hi = max((r["max"] for r in rows if r["max"] is not None), default=1.0)
     span = (hi - lo) or 1.0
@@ -223,20 +230,17 @@ def spread_chart(content: dict[str, Any], column: str, index: int) -> str:
             body.append(_line(x(end), y - 5, x(end), y + 5, "#555555"))
         if r["q25"] is not None and r["q75"] is not None:
             body.append(_rect(x(r["q25"]), y - 7, x(r["q75"]) - x(r["q25"]), 14, s["colour"],
-                              f"{segment_label(s)}: quartiles {fmt(r['q25'])} – {fmt(r['q75'])}", stroke="#222222"))
+                              f"{segment_label(s)}: quartiles {column_text(r['q25'], d)} – {column_text(r['q75'], d)}",
+                              stroke="#222222"))
         if r["q50"] is not None:
             body.append(_line(x(r["q50"]), y - 8, x(r["q50"]), y + 8, "#000000", 2.5))
     ay = 10 + len(segments) * row
     body.append(_line(left, ay, left + width, ay, "#888888"))
-    body.append(_text(left, ay + 14, fmt(lo), size=10, anchor="start"))
-    body.append(_text(left + width, ay + 14, fmt(hi), size=10, anchor="end"))
+    body.append(_text(left, ay + 14, column_text(lo, d), size=10, anchor="start"))
+    body.append(_text(left + width, ay + 14, column_text(hi, d), size=10, anchor="end"))
     body.append(_text(left + width / 2, ay + 14, column, size=11, anchor="middle", weight="bold"))
     svg = _svg(left + width + 20, ay + 22, f"Spread of {column} per segment: min, quartiles, median, max", body, f"spread-{index}")
-    table = _table(
-        ["segment", "rows", "mean", "sd", "min", "q25", "median", "q75", "max"],
-        [[segment_label(s), fmt(s["rows"]), fmt(r["mean"]), fmt(r["sd"]), fmt(r["min"]), fmt(r["q25"]), fmt(r["q50"]),
-          fmt(r["q75"]), fmt(r["max"])] for s, r in zip(segments, rows)],
-    )
+    table = _table(SPREAD_HEAD, [spread_row(s, r, d) for s, r in zip(segments, rows)])
     return _figure(f"spread-{index}", svg, f"{column}: line from min to max, box from the first to the third quartile, "
                    f"thick tick at the median. {quartile_note(content)}", table)
 
@@ -419,7 +423,7 @@ def _header_items(h: dict[str, Any]) -> list[tuple[str, str]]:
         ("method", h["method"]),
         ("k", str(h["k"])),
         ("model built", h["built"] or "–"),
-        ("SSE (row level, scaled units)", fmt(h["sse"])),
+        (f"SSE ({h.get('sse_basis', 'row level')}, scaled units)", fmt(h["sse"])),
         ("Calinski-Harabasz (exact, from the segments' CFs)", fmt(h["calinski_harabasz"])),
     ]
     return items
@@ -481,7 +485,7 @@ def _within_header_items(h: dict[str, Any]) -> list[tuple[str, str]]:
         ("groups", fmt(h["groups"])), ("segments in all", fmt(h["segments"])),
         ("rows", fmt(h["rows"])), ("skipped rows (NULL/NaN/Inf)", fmt(h["skipped"])),
         ("columns", ", ".join(h["columns"])), ("method", h["method"]), ("model built", h["built"] or "–"),
-        ("SSE (row level, summed over the groups)", fmt(h["sse"])),
+        (f"SSE ({h.get('sse_basis', 'row level')}, summed over the groups)", fmt(h["sse"])),
     ]
 
 
@@ -489,7 +493,7 @@ def _group_items(g: dict[str, Any]) -> list[tuple[str, str]]:
     """The figures heading one group's section."""
     h = g["report"]["header"]
     items = [("rows", fmt(h["rows"])), ("segmented rows", fmt(h["segmented"])), ("k", str(h["k"])),
-             (f"SSE (row level, {h.get('units', 'in scaled units')})", fmt(h["sse"])),
+             (f"SSE ({h.get('sse_basis', 'row level')}, {h.get('units', 'in scaled units')})", fmt(h["sse"])),
              ("Calinski-Harabasz (exact, from the segments' CFs)", fmt(h["calinski_harabasz"]))]
     return items + ([("notes", "; ".join(g["notes"]))] if g.get("notes") else [])
 
@@ -580,22 +584,20 @@ def _md_sections(content: dict[str, Any], hx: str) -> list[str]:
     h = content["header"]
     segments = content["segments"]
     sub = hx + "#"
+    digits = column_digits(content)
     lines = [f"{hx} Sizes", ""] + _md_table(
         ["segment", "name", "rows", "share", "description"],
         [[s["segment"], s.get("name") or "", fmt(s["rows"]), pct(s["share"]), s["description"]] for s in segments],
     )
     lines += [f"{hx} Profile (segment mean; sd from the overall mean)", ""] + _md_table(
         ["segment", *h["columns"]],
-        [[segment_label(s)] + [f"{fmt(m)}; {'–' if z is None else f'{z:+.2f}'}" for m, z in zip(p["mean"], p["z"])]
-         for s, p in zip(segments, content["profile"])],
+        [[segment_label(s)] + [f"{column_text(m, d)}; {'–' if z is None else f'{z:+.2f}'}"
+                               for m, z, d in zip(p["mean"], p["z"], digits)] for s, p in zip(segments, content["profile"])],
     )
     lines += [f"{hx} Spread", "", quartile_note(content), ""]
-    for c in h["columns"]:
+    for c, d in zip(h["columns"], digits):
         lines += [f"{sub} {_md_escape(c)}", ""] + _md_table(
-            ["segment", "rows", "mean", "sd", "min", "q25", "median", "q75", "max"],
-            [[segment_label(s), fmt(s["rows"]), fmt(r["mean"]), fmt(r["sd"]), fmt(r["min"]), fmt(r["q25"]), fmt(r["q50"]),
-              fmt(r["q75"]), fmt(r["max"])] for s, r in zip(segments, content["spread"][c])],
-        )
+            SPREAD_HEAD, [spread_row(s, r, d) for s, r in zip(segments, content["spread"][c])])
     m = content.get("map")
     if m:
         share = m["variance_share"]

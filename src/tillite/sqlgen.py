@@ -1212,8 +1212,8 @@ def refine_statement(
 ) -> exp.Select:
     """A refine pass: nearest centroid per row, GROUP BY segment.
 
-    Returns segment, n, ls0..ls{d-1} (sums of the centred values v = x - center)
-    and dist, the sum of squared (weighted, scaled) distances of the rows to the
+    Returns segment, n, ls0..ls{d-1} (sums of the standardised values u = v * inv_scale,
+    v = x - center: sums of v overflow for spreads near 1e305 over many rows) and dist, the sum of squared (weighted, scaled) distances of the rows to the
     centroid they were assigned to: with n and LS that is the segment's exact CF
     in the published scalar form, shifted to the old centroid, so the exact SSE
     before and after moving the centroid both follow.  The segment NULL group
@@ -1228,7 +1228,8 @@ def refine_statement(
     codes = [internal(f"q{g}") for g in range(len(lookups))]
     aggs = [*[fresh_alias(col(q), f"q{g}", quoted=True) for g, q in enumerate(codes)],
             fresh_alias(exp.Count(this=exp.Star()), "n", quoted=True)]
-    aggs += [fresh_alias(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(v)]
+    aggs += [fresh_alias(float_sum(exp.Mul(this=col(n), expression=num(float(s))), target), f"ls{j}", quoted=True)
+             for j, (n, s) in enumerate(zip(v, assign.inv_scale))]
     dist = exp.Add(this=col(best), expression=paren(norm))
     aggs.append(fresh_alias(float_sum(dist, target), "dist", quoted=True))
     return (
@@ -1265,7 +1266,8 @@ def _refine_through_map(
         *[col(q) for q in scored.codes],
         *[col(c) for c in keys],
         fresh_alias(exp.Count(this=exp.Star()), "n", quoted=True),
-        *[fresh_alias(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(scored.v)],
+        *[fresh_alias(float_sum(exp.Mul(this=col(n), expression=num(float(s_))), target), f"ls{j}", quoted=True)
+          for j, (n, s_) in enumerate(zip(scored.v, assign.inv_scale))],
         fresh_alias(float_sum(exp.Add(this=col(internal("best")), expression=nrm.copy()), target), "dist", quoted=True),
         *([fresh_alias(float_sum(exp.Add(this=col(s_), expression=nrm.copy()), target), f"d{i}", quoted=True)
            for i, s_ in enumerate(scored.score)] if to_segment else []),
@@ -1561,8 +1563,12 @@ def report_rows_select(
     ).from_(subquery(inner, internal("d")), copy=False)
 
 
-def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence[str]) -> exp.Select:
+def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence[str], center: Sequence[float] = (),
+                          inv_scale: Sequence[float] = ()) -> exp.Select:
     """Per (segment, breakdown category): n and per column mean{j}, sd{j} (population), min{j}, max{j}.
+
+    With ``center`` and ``inv_scale`` mean{j} and sd{j} are of (x - center) * inv_scale (values near 1e307
+    overflow AVG and STDDEV_POP), min{j} and max{j} of x itself.
 
     One GROUP BY over the assigned rows: by (segment) alone without breakdowns,
     by (segment, c0) with one, by GROUPING SETS ((segment, c0), (segment, c1), ...)
@@ -1579,9 +1585,11 @@ def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence
     projections.append(exp.alias_(exp.Count(this=exp.Star()), "n"))
     for j, name in enumerate(columns):
         x = to_double(col(name))
+        u = x if not len(center) else exp.Mul(this=paren(exp.Sub(this=x.copy(), expression=num(float(center[j])))),
+                                              expression=num(float(inv_scale[j])))
         projections += [
-            exp.alias_(exp.Avg(this=x.copy()), f"mean{j}"),
-            exp.alias_(exp.StddevPop(this=x.copy()), f"sd{j}"),
+            exp.alias_(exp.Avg(this=u.copy()), f"mean{j}"),
+            exp.alias_(exp.StddevPop(this=u.copy()), f"sd{j}"),
             exp.alias_(exp.Min(this=x.copy()), f"min{j}"),
             exp.alias_(exp.Max(this=x.copy()), f"max{j}"),
         ]

@@ -115,7 +115,7 @@ def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings
             lambda **kw: fetch_matrix(engine, sqlgen.sample_statement(source, columns, engine.target, **kw), d), len,
         )
     sample = canonical_sample(sample, target, settings.seed)
-    center, scale = center_and_scale(sample, settings.scaling)
+    center, scale = center_and_scale(sample, settings.scaling, columns)
     repeats = sample_promise(engine, rows, settings)
     return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
 
@@ -148,15 +148,56 @@ def seeded_sample(engine: Engine, rows: int, settings: Settings, fetch: Callable
     return got
 
 
-def center_and_scale(sample: np.ndarray, scaling: str) -> tuple[np.ndarray, np.ndarray]:
+def center_and_scale(sample: np.ndarray, scaling: str, columns: Sequence[str] = ()) -> tuple[np.ndarray, np.ndarray]:
     """The sample's per-column center and the grid's scale: its sd under zscore, else 1.
 
     A column equal in every sampled row has only the mean's round-off as sd (1/sd may overflow): scale 1.
+    A column doubles cannot carry through the SQL is refused (``check_fits_doubles``; ``columns`` names them).
     """
     d = sample.shape[1]
     center, sd = robust_mean_sd(sample)
     flat = np.ptp(sample, axis=0) == 0 if len(sample) else np.ones(d, dtype=bool)
+    check_fits_doubles(sample, center, np.where(flat, 0.0, sd), scaling, columns)
     return center, (np.where(flat, 1.0, sd) if scaling == "zscore" else np.ones(d))
+
+
+#: Centred values the SQL sums (across columns, for the finiteness test of a row) stay below this share of
+#: the largest double, per column; under scaling none their squares are summed too, so they stay below 1e150.
+CENTRED_HEADROOM = 0.25
+UNSCALED_LIMIT = 1e150
+#: Smallest spread (sd) scaled under zscore: the grid multiplies by 1/sd, the width (down to 1e-3) and weights.
+SMALLEST_SPREAD = 1e-302
+
+
+def check_fits_doubles(sample: np.ndarray, center: np.ndarray, sd: np.ndarray, scaling: str,
+                       columns: Sequence[str] = ()) -> None:
+    """Refuse, naming the column, a column whose centred values or spread doubles cannot carry through the SQL.
+
+    Magnitude alone is fine (1e307 + a spread of 1e305 is centred before anything is summed); what fails is a
+    spread near the largest double (centred values summed across columns overflow; under scaling none their
+    squares too) or below about 1e-302 (1/sd, the grid's factor, overflows: subnormal values).  ``sd`` is 0 for
+    columns equal in every sampled row, which are left to the constant-column check.
+    """
+    if len(sample) == 0:
+        return
+    d = sample.shape[1]
+    with np.errstate(over="ignore", invalid="ignore"):
+        reach = np.abs(sample - center[None, :]).max(axis=0)
+    top = np.finfo(np.float64).max
+    limit = UNSCALED_LIMIT if scaling == "none" else CENTRED_HEADROOM * top / max(d, 1)
+    smallest = UNSCALED_LIMIT ** -1 if scaling == "none" else SMALLEST_SPREAD
+    for j in range(d):
+        name = columns[j] if j < len(columns) else f"column {j + 1}"
+        if not (np.isfinite(center[j]) and reach[j] <= limit):
+            raise InputError(
+                f"column {name}: its values lie up to {reach[j]:.3g} from their mean {center[j]:.3g}; sums over rows "
+                f"would overflow doubles (largest {top:.3g}{', squared' if scaling == 'none' else ''}): "
+                f"divide it by a power of ten first (e.g. in a view)")
+        if 0 < sd[j] < smallest:
+            raise InputError(
+                f"column {name}: its spread (sd {sd[j]:.3g}) is below what doubles carry through the grid "
+                f"({smallest:.0e}; {'its squares underflow to 0' if scaling == 'none' else '1/sd overflows'}): "
+                f"multiply it by a power of ten first (e.g. in a view)")
 
 
 def sample_promise(engine: Engine, rows: int, settings: Settings) -> str:
@@ -211,9 +252,12 @@ def robust_mean_sd(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     d = x.shape[1]
     if len(x) == 0:
         return np.zeros(d), np.ones(d)
-    center = x.mean(axis=0)
-    if not np.isfinite(center).all():  # the sum overflowed: average in halves
-        center = (x / 2.0).mean(axis=0) * 2.0
+    with np.errstate(over="ignore"):
+        center = x.mean(axis=0)
+    if not np.isfinite(center).all() and np.isfinite(x).all():  # the sum overflowed: average the values
+        top = np.abs(x).max(axis=0)                              # divided by a power of two near their largest
+        power = np.frexp(np.where(top > 0, top, 1.0))[1]
+        center = np.ldexp(np.ldexp(x, -power[None, :]).mean(axis=0), power)
     dev = x - center[None, :]
     big = np.abs(dev).max(axis=0)
     safe = np.where(big > 0, big, 1.0)
@@ -432,8 +476,8 @@ def run_refine_pass(
     seg, null, n_all = refine_rows(got, assign)
     k, d = len(assign.centroids), len(columns)
     n = np.bincount(seg, weights=n_all[~null], minlength=k)
-    ls_v = np.column_stack([np.asarray(got[f"ls{j}"], dtype=np.float64)[~null] for j in range(d)])
-    ls_u = np.column_stack([np.bincount(seg, weights=ls_v[:, j], minlength=k) for j in range(d)]) * np.asarray(assign.inv_scale)[None, :]
+    ls_su = np.column_stack([np.asarray(got[f"ls{j}"], dtype=np.float64)[~null] for j in range(d)])  # already scaled
+    ls_u = np.column_stack([np.bincount(seg, weights=ls_su[:, j], minlength=k) for j in range(d)])
     return refine_result(got, assign, seg, null, n_all, n, ls_u, t0)
 
 
@@ -876,8 +920,8 @@ def refine_loop(
             rr = run_refine_pass(engine, source, columns, std.assignment(centroids), cell_map)
         before, after = float(rr.assigned.sse.sum()), float(rr.updated.sse.sum())
         gain = (before - after) / before if before > 0 else 0.0
-        passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain, "seconds": rr.seconds})
-        timings[f"refine_{p}"] = rr.seconds
+        passes.append({"pass": p, "sse_assigned": before, "sse": after, "gain": gain})
+        timings[f"refine_{p}"] = rr.seconds  # seconds only under timings: the rest of the file repeats
         progress("refine", f"pass {p}: {usable:,} rows, SSE {before:.6g} -> {after:.6g}, {rr.seconds:.2f} s")
         stats, centroids = rr.updated, rr.updated.centroids
         empty = stats.n == 0
@@ -1031,7 +1075,7 @@ def categorical_source(
     x, values = seeded_sample(engine, rows, settings, fetch, lambda got: len(got[0]))
     specs, codes = category_specs(texts, values, described, settings, fixed)
     sample = canonical_sample(np.hstack([x, codes]), target, settings.seed)
-    prof = profile_with_codes(engine, sample, p, rows, settings, t0)
+    prof = profile_with_codes(engine, sample, p, rows, settings, t0, columns)
     return cat.with_indicators(source, specs, engine.target), specs, prof
 
 
@@ -1044,11 +1088,12 @@ def checked_categorical_source(engine: Engine, source: Source, columns: Sequence
     return described, count_rows(engine, source)
 
 
-def profile_with_codes(engine: Engine, sample: np.ndarray, p: int, rows: int, settings: Settings, t0: float) -> Profile:
-    """The profile of a sample holding ``p`` numeric columns, then one category code per categorical column
-    (centre 0 and scale 1: the codes are keys, not values)."""
+def profile_with_codes(engine: Engine, sample: np.ndarray, p: int, rows: int, settings: Settings, t0: float,
+                       columns: Sequence[str] = ()) -> Profile:
+    """The profile of a sample holding ``p`` numeric columns (named ``columns``), then one category code per
+    categorical column (centre 0 and scale 1: the codes are keys, not values)."""
     codes = sample.shape[1] - p
-    center, scale = center_and_scale(sample[:, :p], settings.scaling)
+    center, scale = center_and_scale(sample[:, :p], settings.scaling, columns)
     return Profile(rows=rows, sample=sample, center=np.concatenate([center, np.zeros(codes)]),
                    scale=np.concatenate([scale, np.ones(codes)]), seconds=time.perf_counter() - t0,
                    repeats=sample_promise(engine, rows, settings))
@@ -1269,7 +1314,7 @@ def run_refine_pass_with_codes(
     center, inv_scale = np.asarray(assign.center), np.asarray(assign.inv_scale)
     ls_u = np.zeros((k, d))
     for j, col_j in zip(num_idx, range(len(num_idx))):
-        ls_u[:, j] = np.bincount(seg, weights=np.asarray(got[f"ls{col_j}"], dtype=np.float64)[~null], minlength=k) * inv_scale[j]
+        ls_u[:, j] = np.bincount(seg, weights=np.asarray(got[f"ls{col_j}"], dtype=np.float64)[~null], minlength=k)  # scaled
     for g, pos in enumerate(groups):
         codes = np.asarray(unmasked(got[f"q{g}"]), dtype=np.float64)[~null]
         ls_c, _ = cat.indicator_cells(n_rows, codes, center[pos], inv_scale[pos])

@@ -108,7 +108,7 @@ def run_grouped_profile(engine: Engine, source: Source, columns: Sequence[str], 
     x = np.column_stack([np.asarray(got[sqlgen.internal(f"x{j}")], dtype=np.float64) for j in range(d)]) if len(codes) else np.zeros((0, d))
     both = canonical_sample(np.column_stack([codes, x]), target, settings.seed) if len(x) else np.zeros((0, d + 1))
     sample, groups = both[:, 1:], both[:, 0].astype(np.int64)
-    center, scale = center_and_scale(sample, settings.scaling)
+    center, scale = center_and_scale(sample, settings.scaling, columns)
     repeats = sample_promise(engine, rows, settings)
     prof = Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
     return GroupedProfile(prof, groups, values)
@@ -425,7 +425,7 @@ def run_refine_pass(engine: Engine, source: Source, columns: Sequence[str], assi
         mine = gid == g
         s = seg[mine]
         n = np.bincount(s, weights=n_all[mine], minlength=k)[:k]
-        ls_u = np.column_stack([np.bincount(s, weights=ls_all[mine, j], minlength=k)[:k] for j in range(d)]) * assign.inv_scale[g][None, :]
+        ls_u = np.column_stack([np.bincount(s, weights=ls_all[mine, j], minlength=k)[:k] for j in range(d)])  # scaled in SQL
         dist = np.bincount(s, weights=dist_all[mine], minlength=k)[:k]
         out.append(moved_to_means(n, ls_u, dist, old, assign.weights[g]))
     return out, time.perf_counter() - t0
@@ -478,7 +478,7 @@ def refine_groups(engine: Engine, source: Source, columns: Sequence[str], within
                 r.stats, r.done = assigned, True
             else:
                 r.stats, centroids[g] = updated, updated.centroids
-        passes.append({"pass": p, "sse_assigned": before_all, "sse": after_all, "seconds": seconds, "groups": len(moving)})
+        passes.append({"pass": p, "sse_assigned": before_all, "sse": after_all, "groups": len(moving)})
         progress("refine", f"pass {p}: {len(moving):,} group(s) still moving, their SSE {before_all:.6g} -> {after_all:.6g}, "
                            f"{seconds:.2f} s")
     return passes, timings

@@ -108,7 +108,7 @@ def categorical_inputs(engine: Engine, source: Source, columns: Sequence[str], w
     specs, codes = category_specs(texts, sampled_texts(got, len(texts)), described, settings)
     both = canonical_sample(np.hstack([groups[:, None], x, codes]), settings.sample_rows, settings.seed)
     sample, sample_groups = both[:, 1:], both[:, 0].astype(np.int64)
-    prof = profile_with_codes(engine, sample, p, rows, settings, t0)
+    prof = profile_with_codes(engine, sample, p, rows, settings, t0, columns)
     all_columns = list(columns) + [n for s in specs for n in s.names]
     weights = indicator_weights(settings, all_columns, specs)
     return CategoricalInputs(

@@ -71,6 +71,7 @@ def _names(d: int, k: int) -> dict[str, list]:
         "id": [internal(f"wid{i}") for i in range(k)],
         "c": [internal(f"wc{j}") for j in range(d)],
         "f": [internal(f"wf{j}") for j in range(d)],
+        "s": [internal(f"ws{j}") for j in range(d)],  # the group's 1/scale: refine sums are of v * s
         "a": [[internal(f"wa{i}_{j}") for j in range(d)] for i in range(k)],
         "b": [internal(f"wb{i}") for i in range(k)],
     }
@@ -86,13 +87,15 @@ def params_relation(assign: GroupAssignment, target: TargetLike) -> exp.Expressi
     """The inline VALUES relation, one row per group: value, position, centre, norm factors, a, b."""
     d, k = assign.center.shape[1], assign.most_segments
     names = _names(d, k)
-    columns = [internal("wg"), internal("wgid"), *names["c"], *names["f"], *[n for row in names["a"] for n in row], *names["b"]]
+    columns = [internal("wg"), internal("wgid"), *names["c"], *names["f"], *names["s"], *[n for row in names["a"] for n in row],
+               *names["b"]]
     columns += names["id"] if assign.ids else []
     rows = []
     for g, value in enumerate(assign.values):
         a, b, f = assign.coefficients(g)
         values = [group_literal(value, assign.group_type, target), num(g), *[num(float(c)) for c in assign.center[g]],
-                  *[num(float(x)) for x in f], *[num(float(x)) for x in a.ravel()], *[num(float(x)) for x in b]]
+                  *[num(float(x)) for x in f], *[num(float(x)) for x in assign.inv_scale[g]], *[num(float(x)) for x in a.ravel()],
+                  *[num(float(x)) for x in b]]
         if assign.ids:  # the group's segment id at each position (padding positions never win)
             values += [num(int(i)) for i in (*assign.ids[g], *range(len(assign.ids[g]), k))]
         rows.append(exp.Tuple(expressions=values))
@@ -137,7 +140,7 @@ def assignment_layers(
     gid = internal("gid")
     src_cols = [exp.Column(this=exp.Star(), table=exp.to_identifier(SOURCE_ALIAS, quoted=True))] if keep_source else []
     centered = [exp.Sub(this=sqlgen.to_double(col(c, SOURCE_ALIAS)), expression=col(cn, PARAMS_ALIAS)) for c, cn in zip(columns, names["c"])]
-    carried = [*names["f"], *[n for row in names["a"] for n in row], *names["b"], *(names["id"] if assign.ids else [])]
+    carried = [*names["f"], *names["s"], *[n for row in names["a"] for n in row], *names["b"], *(names["id"] if assign.ids else [])]
     stage1 = (
         exp.select(*src_cols, exp.alias_(col(internal("wgid"), PARAMS_ALIAS), gid, quoted=True),
                    *[exp.alias_(e, n, quoted=True) for e, n in zip(centered, v)],
@@ -176,13 +179,15 @@ def refine_statement(source: Source, columns: Sequence[str], assign: GroupAssign
     """One refine pass over the groups in ``assign`` (rows of other groups are left out): GROUP BY (group
     position, segment).
 
-    Returns gid, segment, n, ls0.. (sums of v = x - center_g) and dist (summed
+    Returns gid, segment, n, ls0.. (sums of u = (x - center_g) * inv_scale_g, scaled in the SQL) and dist (summed
     squared distances to the centroid used), as ``sqlgen.refine_statement`` does
     for one model.  Groups with segment NULL count skipped rows.
     """
     inner, gid, seg, best, v = assignment_layers(source, columns, assign, target, keep_source=False, only_listed=True)
     aggs = [exp.alias_(exp.Count(this=exp.Star()), "n", quoted=True)]
-    aggs += [exp.alias_(sqlgen.float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(v)]
+    scales = _names(len(columns), 0)["s"]
+    aggs += [exp.alias_(sqlgen.float_sum(exp.Mul(this=col(n), expression=col(s)), target), f"ls{j}", quoted=True)
+             for j, (n, s) in enumerate(zip(v, scales))]
     dist = exp.Add(this=col(best), expression=sqlgen.paren(_squared_norm(v, len(columns))))
     aggs.append(exp.alias_(sqlgen.float_sum(dist, target), "dist", quoted=True))
     return (
