@@ -391,3 +391,33 @@ def test_segment_within_with_a_categorical_column_and_its_labels_equal_duckdb(se
     finally:
         pg.close()
         duck.close()
+
+
+def test_postgres_reads_typed_names_folded_to_lower_case_and_quoted_into_parts(server, loaded):
+    """PostgreSQL folds an unquoted name to lower case (its manual, 4.1.1): --table POINTS and --columns LITRES
+    name points and litres, and the model records those; --into '"My Schema".labels' is schema My Schema."""
+    import psycopg
+    from psycopg import sql
+
+    with psycopg.connect(server.conninfo, autocommit=True) as con:
+        con.execute(sql.SQL("CREATE SCHEMA {}").format(sql.Identifier("My Schema")))
+        con.execute(sql.SQL("CREATE VIEW {} AS SELECT *, 1 AS segment FROM {}").format(
+            sql.Identifier("points with segment"), sql.Identifier(TABLE)))
+    pg = PostgresEngine(server.conninfo)
+    duck = DuckDBEngine(str(loaded), read_only=True)
+    try:
+        typed = [c.upper() for c in COLUMNS]
+        got = segment(pg, Source.of_table(TABLE.upper()), typed, Settings(**SETTINGS))
+        assert got.source == TABLE and list(got.columns) == COLUMNS
+        # reference: DuckDB on the table under its own names
+        assert_same_model(got, segment(duck, SRC, COLUMNS, Settings(**SETTINGS)))
+        assert label(pg, SRC, got, '"My Schema".labels') == "view My Schema.labels"
+        # reference: PostgreSQL's own catalog
+        with psycopg.connect(server.conninfo, autocommit=True) as con:
+            assert con.execute("SELECT table_schema, table_name FROM information_schema.views "
+                               "WHERE table_name = 'labels'").fetchall() == [("My Schema", "labels")]
+        with pytest.raises(InputError, match="points with segment already has a column segment"):
+            label(pg, Source.of_table("points with segment"), got, "shadowed")
+    finally:
+        pg.close()
+        duck.close()

@@ -157,6 +157,27 @@ def check_sql_type(type_name: str, what: str) -> None:
     raise ModelError(f"the model file is damaged: {what} has type {type_name!r}, which is not a SQL type")
 
 
+def type_family(type_name: str) -> str:
+    """text, number, time, boolean, or the type itself: a categorical column's values compare with its categories
+    (text cast to the model's type) only within one family (DuckDB refuses INTEGER categories against a VARCHAR
+    column; INTEGER against BIGINT or DOUBLE compare)."""
+    for reader in (None, "duckdb", "postgres", "spark"):  # the engines a type name can come from
+        try:
+            kind = exp.DataType.build(type_name, dialect=reader).this
+        except (ValueError, ParseError):
+            continue
+        if not isinstance(kind, exp.DataType.Type):
+            continue
+        if kind in exp.DataType.TEXT_TYPES or kind == exp.DataType.Type.ENUM:
+            return "text"
+        if kind in exp.DataType.NUMERIC_TYPES:
+            return "number"
+        if kind in exp.DataType.TEMPORAL_TYPES:
+            return "time"
+        return kind.value.lower()
+    return type_name.strip().lower()
+
+
 # ----------------------------------------------------------------------------- maths (numpy only)
 
 

@@ -551,7 +551,7 @@ def _relation_kind_from_listing(
     An unqualified name matches in ``default_schema`` when given, else in any schema.
     """
     fold = (lambda t: t) if case_sensitive else (lambda t: t.lower())
-    parts = [fold(p) for p in name.split(".")]
+    parts = [fold(p) for p in sqlgen.split_table_name(name)]
     schema = parts[-2] if len(parts) >= 2 else (fold(default_schema) if default_schema else None)
     for s, t, kind in zip(got["table_schema"], got["table_name"], got["table_type"]):
         if fold(str(t)) == parts[-1] and (schema is None or fold(str(s)) == schema):

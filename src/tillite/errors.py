@@ -16,6 +16,7 @@ __all__ = [
     "InputError",
     "ParameterError",
     "SourceError",
+    "ColumnTypeError",
     "DatabaseLocked",
     "EngineError",
     "TransactionConflict",
@@ -66,6 +67,11 @@ class ParameterError(InputError):
 
 class SourceError(TilliteError):
     """The database, table or column asked for is missing or unusable."""
+
+
+class ColumnTypeError(SourceError, ParameterError):
+    """A column chosen to segment on is not a number; its message (a template) names the parameter that takes
+    it as categories."""
 
 
 class DatabaseLocked(SourceError):

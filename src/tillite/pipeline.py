@@ -38,7 +38,7 @@ from .stages import (  # noqa: F401  (re-exported: the stages' old import path)
     choose_width, constant_columns, engine_has_rows, fetch_matrix, grid_axes, grid_for_profile, k_limit, make_model,
     nothing_to_segment_on, null_mask, order_by_size, quiet_progress, refine_loop, refine_passes, refine_phase, robust_mean_sd,
     run_cell_pass, run_profile, run_refine_pass, run_second_phase, second_phase, size_order, standardise_cells,
-    temporary_cell_map,
+    temporary_cell_map, resolve_names, check_model_columns,
     # categorical columns
     CODE_SPACING, categorical_source, code_assignment, indicator_weights, grid_with_category_codes, model_source, run_cell_pass_with_codes,
     run_refine_pass_with_codes,
@@ -72,7 +72,11 @@ def segment(
     """Segment the source's rows on the columns; returns the model (nothing is written).
 
     ``settings.within``: a column whose groups are segmented separately (``within.segment_within``).
+    ``columns`` is a list of names (a single string is refused, not read letter by letter); the table and
+    every column named are taken as the engine resolves them (``stages.resolve_names``: ``LITRES`` is
+    litres in DuckDB), and the model records their own names.
     """
+    source, columns, settings = resolve_names(engine, source, columns, settings)
     if settings.within is not None:
         from .segmenters import one_blas_thread
         from .within import segment_within
@@ -201,8 +205,11 @@ def label(
     whose labels these are.  ``in_transaction``: the caller already holds a
     transaction (a store refresh).
     """
+    into = into_name(into, files=bool(source.files))
+    check_model_columns(engine, source, model)
     source = model_source(engine, source, model)
-    source_columns = [c for c in check_columns(engine, source, model.columns) if c not in source.derived_names()]
+    source_columns = [c for c in check_columns(engine, source, model.columns, chosen=False) if c not in source.derived_names()]
+    check_label_columns(engine, source, source_columns, model)
     if model.within:  # segments within groups: the centroid set chosen by each row's group
         from .within import label_within_select
 
@@ -229,7 +236,7 @@ def label(
             engine.target)
     if source.files:
         return _label_to_file(engine, source, select, into, replace)
-    target = tuple(p.lower() for p in into.split("."))
+    target = tuple(p.lower() for p in sqlgen.split_table_name(into))
     table = tuple(p.lower() for p in source.table)
     same_schema = len(target) == 1 or len(table) == 1 or target[-2] == table[-2]
     if target[-1] == table[-1] and same_schema:
@@ -261,6 +268,50 @@ def label(
     return f"{made} {into}"
 
 
+#: Names of the columns the labels add to the source's (``segment_name`` only once segments are named).
+LABEL_COLUMNS = ("segment", "distance")
+NAME_COLUMN = "segment_name"
+
+
+def looks_like_file(into: str) -> bool:
+    """Whether --into names a file (a path, or a .parquet/.csv name) rather than a view or table."""
+    return "/" in into or "\\" in into or into.lower().endswith((".parquet", ".csv"))
+
+
+def into_name(into: str, files: bool = False) -> str:
+    """--into as the labels take it: for a database source a view or table name, read exactly as --table
+    is (``sqlgen.split_table_name``: a part in double quotes may hold a dot, its quotes are not part of
+    the name), returned in the one form every later step splits again (``sqlgen.join_table_name``).
+    ``files``: the source is files, whose labels go to a file (checked by ``_label_to_file``)."""
+    if files:
+        return into
+    if looks_like_file(into):
+        raise ParameterError(f"{{into}} {into} is a file, but only Parquet/CSV sources label to files; the labels of a "
+                             "database table go to a view or table in that database (name one with {into})", "into")
+    try:
+        parts = sqlgen.split_table_name(into)
+    except ValueError:
+        raise ParameterError(f"{{into}} {into} has an unclosed double quote; write a name holding a dot as \"my.view\"",
+                             "into") from None
+    if not all(p.strip() for p in parts):
+        raise ParameterError(f"{{into}} {into!r} is not a view or table name", "into")
+    return sqlgen.join_table_name(parts)
+
+
+def check_label_columns(engine: Engine, source: Source, source_columns: Sequence[str], model: Model) -> None:
+    """Refuse (one line) a source already holding a column the labels add: the label view would hold two
+    columns of one name (DuckDB renames ours, PostgreSQL refuses), so `segment` would read the source's."""
+    named = bool(model.names) or bool(model.within and any(g.get("names") for g in model.within["groups"]))
+    added = [*LABEL_COLUMNS, *([NAME_COLUMN] if named else [])]
+    clash = [c for c in added if any(engine.target.same_name(c, have) for have in source_columns)]
+    if clash:
+        raise InputError(
+            f"{source.label} already has {'a column' if len(clash) == 1 else 'columns'} {', '.join(clash)}, named as the "
+            f"columns the labels add ({', '.join(added)}); label a view of {source.label} that renames or leaves out "
+            f"{'that column' if len(clash) == 1 else 'those columns'}"
+        )
+
+
 #: A label view whose rows are labelled through their grid cell (an outlier group, density segments) reads
 #: its cell map from a table beside it, named with this prefix (see ``cell_map_table``).
 CELL_MAP_PREFIX = "tillite_cellmap_"
@@ -270,12 +321,12 @@ def cell_map_table(into: str) -> str:
     """The table holding the cell map of the label view ``into``: tillite_cellmap_<view>, in the view's schema.
 
     A view name too long for PostgreSQL's 63-byte identifiers is shortened and a hash of it appended."""
-    *schema, name = into.split(".")
+    *schema, name = sqlgen.split_table_name(into)
     own = f"{CELL_MAP_PREFIX}{name}"
     if len(own.encode()) > 63:
         head = name.encode()[:24].decode(errors="ignore")
         own = f"{CELL_MAP_PREFIX}{head}_{hashlib.sha256(name.encode()).hexdigest()[:12]}"
-    return ".".join([*schema, own])
+    return sqlgen.join_table_name([*schema, own])
 
 
 def label_cell_map(model: Model, into: str, materialize: bool, source: Source) -> sqlgen.CellMap | None:
@@ -388,7 +439,7 @@ OWN_TABLE_PREFIX = "tillite_"
 
 def refuse_own_table(into: str) -> None:
     """Labels never go into a table of tillite's own naming (tillite_stores, tillite_cells_*, ...), whatever the flags."""
-    if into.split(".")[-1].strip('"').lower().startswith(OWN_TABLE_PREFIX):
+    if sqlgen.split_table_name(into)[-1].lower().startswith(OWN_TABLE_PREFIX):
         raise InputError(
             f"--into {into}: names starting with {OWN_TABLE_PREFIX} are kept for tillite's own tables "
             "(store registry, cells, macro registry); choose another name"

@@ -16,6 +16,7 @@ from sqlglot import exp
 from . import features as F
 from . import sqlgen
 from .engines import Engine, TilliteError
+from .errors import ParameterError
 from .features import CF
 from .model import Model, write_text_atomically
 from .sqlgen import Grid, Source, col, table_name
@@ -616,11 +617,12 @@ def report_of_model(
     """
     import time
 
-    from .stages import check_columns, model_source
+    from .stages import check_columns, check_model_columns, model_source
 
-    by = list(dict.fromkeys(by))  # a column named twice is one breakdown
+    check_model_columns(engine, source, model)
     source = model_source(engine, source, model)  # categorical columns: their indicators' means are the shares
-    present = check_columns(engine, source, list(model.columns))
+    present = check_columns(engine, source, list(model.columns), chosen=False)
+    by = breakdown_columns(engine, by, present)
     missing = [c for c in by if c not in present]
     if missing:
         raise TilliteError(f"--by column {', '.join(missing)} not found in {source.label}; columns there: {', '.join(present)}")
@@ -647,12 +649,24 @@ def report_of_model(
                     figure=figure, sampled=sampled)
 
 
+def breakdown_columns(engine: Engine, by: Sequence[str], present: Sequence[str]) -> list[str]:
+    """The --by columns as the engine resolves them against the table's (``Target.resolve_name``), each once."""
+    if isinstance(by, str):
+        raise ParameterError(f"{{by}} must be a list of column names, e.g. [{by!r}], not the text {by!r}", "by")
+    return list(dict.fromkeys(engine.target.resolve_name(c, present) or c for c in by))
+
+
 def _labels_table(engine: Engine, labels: str, model: Model, by: Sequence[str]) -> Source:
-    """The --labels table as a Source, checked to hold a segment column, the model's and the --by columns."""
+    """The --labels table as a Source, checked to hold a segment column, the model's and the --by columns, and
+    to be labels tillite made (a table of the user's may have a segment column of its own)."""
+    from .pipeline import is_owned
     from .stages import check_columns
 
     src = Source.of_table(labels)
-    present = check_columns(engine, src, ["segment"])
+    present = check_columns(engine, src, ["segment"], chosen=False)
+    if not is_owned(engine.relation_comment(labels)):
+        raise TilliteError(f"--labels {labels} was not made by `tillite label`, so its segment column may not be "
+                           "labels of this model; give a table `tillite label --materialize` made, or leave --labels out")
     missing = [c for c in list(model.columns) + list(by) if c not in present]
     if missing:
         raise TilliteError(f"--labels {labels} lacks column {', '.join(missing)}; columns there: {', '.join(present)}")
@@ -666,9 +680,9 @@ def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress
     from .stages import check_columns, model_source
 
     info = S.load(engine, store)
-    by = list(dict.fromkeys(by))  # a column named twice is one breakdown
     source = model_source(engine, info.source, info.model)  # categorical columns: their indicators' means are the shares
-    present = check_columns(engine, source, list(info.model.columns))
+    present = check_columns(engine, source, list(info.model.columns), chosen=False)
+    by = breakdown_columns(engine, by, present)
     missing = [c for c in by if c not in present]
     if missing:
         raise TilliteError(f"--by column {', '.join(missing)} not found in {info.source.label}; columns there: {', '.join(present)}")

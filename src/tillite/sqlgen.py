@@ -81,7 +81,7 @@ class Source:
     @property
     def label(self) -> str:
         """Human-readable name for messages (a part holding a dot in double quotes, as it is written)."""
-        return ".".join(quote_name_part(p) for p in self.table) if self.table else ", ".join(self.files)
+        return join_table_name(self.table) if self.table else ", ".join(self.files)
 
     def relation(self, sample: exp.TableSample | None = None) -> exp.Expression:
         """The FROM item for this source (``sample`` on the stored rows, before any derived column)."""
@@ -142,6 +142,11 @@ def split_table_name(name: str) -> tuple[str, ...]:
 def quote_name_part(part: str) -> str:
     """A name part as written on the command line: in double quotes when it holds a dot or a quote."""
     return '"' + part.replace('"', '""') + '"' if "." in part or '"' in part else part
+
+
+def join_table_name(parts: Sequence[str]) -> str:
+    """Name parts as one name that ``split_table_name`` reads back into them (``Source.label``'s form)."""
+    return ".".join(quote_name_part(p) for p in parts)
 
 
 @dataclass(frozen=True)
@@ -1345,8 +1350,9 @@ def label_select(
 
 
 def table_name(name: str) -> exp.Table:
-    """A (possibly schema- and catalog-qualified, dotted) name as a table reference."""
-    return table_of(name.split("."))
+    """A (possibly schema- and catalog-qualified, dotted) name as a table reference, its parts read as
+    ``split_table_name`` reads them (a part in double quotes may hold a dot)."""
+    return table_of(split_table_name(name))
 
 
 def table_of(name_parts: Sequence[str]) -> exp.Table:
@@ -1504,7 +1510,7 @@ def comment_of_statement(name: str, target: TargetLike) -> exp.Select:
     obj_description of to_regclass, which resolves the (quoted) name as the
     server would and gives NULL for a missing relation.
     """
-    return target_for(target).comment_query(table_name(name), name.split("."))
+    return target_for(target).comment_query(table_name(name), split_table_name(name))
 # --------------------------------------------------------------------------- report statistics
 #
 # The report's figures come back as aggregates over the labels: one GROUP BY

@@ -23,7 +23,7 @@ from . import categorical as cat
 from . import features as F
 from . import sqlgen
 from .engines import Engine, SourceError, is_numeric_type
-from .errors import InputError, ParameterError
+from .errors import ColumnTypeError, InputError, ParameterError
 from .features import CF
 from .model import Model
 from .segmenters import WARD_ENTRIES, KMeansResult, kmeans
@@ -49,8 +49,12 @@ def columns_there(described: Sequence[tuple[str, str]]) -> str:
     return ", ".join(f"{n} ({t})" for n, t in described)
 
 
-def check_columns(engine: Engine, source: Source, columns: Sequence[str]) -> list[str]:
-    """All source columns, after checking the chosen ones exist and are numeric."""
+def check_columns(engine: Engine, source: Source, columns: Sequence[str], chosen: bool = True) -> list[str]:
+    """All source columns, after checking the chosen ones exist and are numeric.
+
+    ``chosen``: the columns were chosen to segment on (a column that is not a number is then said with a
+    hint to give it as a categorical column); False for the columns of a model or a labels table."""
+    check_column_list(columns)
     if not columns:
         raise InputError("no columns given to segment on")
     dupes = sorted({c for c in columns if list(columns).count(c) > 1})
@@ -65,9 +69,60 @@ def check_columns(engine: Engine, source: Source, columns: Sequence[str]) -> lis
     for c in columns:
         if not is_numeric_type(types[c]) and source.files and not engine_has_rows(engine, source):
             raise InputError(f"{source.label} has no rows (a header only?)")
+        if not is_numeric_type(types[c]) and chosen:
+            raise ColumnTypeError(f"column {c} of {source.label} has type {types[c]}, not a number: choose numeric {{columns}}, "
+                                 f"or give it as {{categorical}} {c} to segment on its categories", "columns", "categorical")
         if not is_numeric_type(types[c]):
             raise SourceError(f"column {c} of {source.label} has type {types[c]}, not a number; choose numeric columns")
     return [n for n, _ in described]
+
+
+def check_column_list(columns: Any, parameter: str = "columns") -> None:
+    """The API's column list must be a list of names: a single string would read as one column per letter."""
+    if isinstance(columns, str):
+        raise ParameterError(f"{{{parameter}}} must be a list of column names, e.g. [{columns!r}], not the text {columns!r}",
+                             parameter)
+
+
+def resolve_table(engine: Engine, source: Source) -> Source:
+    """A table source under the table's own name as the engine resolves it (``--table METER_DAYS`` is
+    meter_days in DuckDB), so a model records the name the table has; unchanged when the name is exact,
+    not found, or matches several tables (the read that follows says so)."""
+    if not source.table or len(source.table) > 2:
+        return source
+    n, target = len(source.table), engine.target
+    listed = {sqlgen.split_table_name(t) for t in engine.tables()}
+    if source.table in listed:
+        return source
+    candidates = {t[-n:] for t in listed if len(t) == n} or {t[-1:] for t in listed if n == 1 and len(t) == 2}
+    found = {t for t in candidates if all(target.resolve_name(g, [a]) is not None for g, a in zip(source.table, t))}
+    return replace(source, table=found.pop()) if len(found) == 1 else source
+
+
+def resolve_columns(engine: Engine, source: Source, names: Sequence[str]) -> list[str]:
+    """Column names typed by a person, each as the engine resolves it against the source's columns
+    (``Target.resolve_name``: DuckDB and Spark ignore case, PostgreSQL folds an unquoted name to lower
+    case); a name matching none is kept as given, for the checks that follow to name it."""
+    present = [n for n, _ in engine.describe(source)]
+    return [engine.target.resolve_name(c, present) or c for c in names]
+
+
+def resolve_names(engine: Engine, source: Source, columns: Sequence[str], settings: Settings) -> tuple[Source, list[str], Settings]:
+    """The table and every column a run names (``columns``, ``categorical``, ``within``, the ``weights``' keys) as
+    the engine resolves them, so the model records the table's and columns' own names."""
+    check_column_list(columns)
+    check_column_list(settings.categorical, "categorical")
+    source = resolve_table(engine, source)
+    named = [*columns, *settings.categorical, *([settings.within] if settings.within else []), *settings.weights]
+    if not named:
+        return source, list(columns), settings
+    actual = dict(zip(named, resolve_columns(engine, source, named)))
+    settings = replace(
+        settings, categorical=tuple(actual[c] for c in settings.categorical),
+        within=actual[settings.within] if settings.within else settings.within,
+        weights={actual[c]: w for c, w in settings.weights.items()},
+    )
+    return source, [actual[c] for c in columns], settings
 
 
 def engine_has_rows(engine: Engine, source: Source) -> bool:
@@ -1146,14 +1201,22 @@ def check_model_columns(engine: Engine, source: Source, model: Model, where: str
     """Every column the model reads (numeric, categorical, the --within group column) is in the source; else one
     line naming the first missing one, its role and ``where`` (the model file), before any statement runs."""
     described = engine.describe(source)
-    present = {n for n, _ in described}
+    types, names = dict(described), [n for n, _ in described]
     needed = [(model.columns[j], "numeric") for j in model.numeric_positions()]
     needed += [(c["column"], "categorical") for c in model.categorical]
     if model.within:
         needed.append((model.within["column"], "--within group"))
     for column, role in needed:
-        if column not in present:
+        if engine.target.resolve_name(column, names, typed=False) is None:
             raise SourceError(f"{role} column {column} of {where} not found in {source.label}; columns there: {columns_there(described)}")
+    for spec in model.categorical:  # its categories are cast to the model's type, then compared with the column
+        cat.check_sql_type(spec["type"], f"categorical column {spec['column']}")
+        have = types[engine.target.resolve_name(spec["column"], names, typed=False)]
+        if cat.type_family(have) != cat.type_family(spec["type"]):
+            raise SourceError(
+                f"categorical column {spec['column']} is {spec['type']} in {where} but {have} in {source.label}, so its "
+                f"categories cannot be compared; read {source.label} through a view that casts it to {spec['type']}"
+            )
 
 
 def other_source_note(model: Model, source: Source, where: str = "the model") -> str | None:

@@ -48,7 +48,7 @@ from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-
 )
 from .features import CF
 from .model import Model
-from .pipeline import Settings, check_refresh_options, label as label_relation, owner_comment, store_of_comment, store_owns_label
+from .pipeline import Settings, check_refresh_options, into_name, label as label_relation, owner_comment, store_of_comment, store_owns_label
 from .stages import (
     ProgressFn,
     SegmentStats,
@@ -56,6 +56,8 @@ from .stages import (
     cells_from_result,
     check_columns,
     grid_for_profile,
+    resolve_columns,
+    resolve_names,
     make_model,
     order_by_size,
     attach_phase,
@@ -929,7 +931,9 @@ def build(
     (a regrid keeps the store's), else the profile sample's top ones.
     """
     require_transactions(engine)
-    columns = list(columns)
+    source, columns, settings = resolve_names(engine, source, columns, settings)  # names as the engine resolves them
+    if partition.columns:
+        partition = with_fields(partition, columns=tuple(resolve_columns(engine, source, partition.columns)))
     check_store_method(settings.method)  # before the checks of k, which density does not take
     check_store_categorical(settings)
     settings.check(columns)
@@ -1527,6 +1531,7 @@ def _part_key(engine: Engine, info: StoreInfo, part: str) -> str:
 def label(engine: Engine, store: str, into: str, materialize: bool = False, replace: bool = False) -> str:
     """Labels from the store's current model, re-created by every refresh."""
     info = load(engine, store)
+    into = into_name(into)  # registered as every later refresh splits it again
     made = label_relation(engine, info.source, info.model, into, materialize=materialize, replace=replace, store=store)
     with engine.transaction():
         engine.execute(sqlgen.delete_statement(LABELS, sqlgen.equals_all({"store": store, "name": into})))

@@ -201,9 +201,10 @@ def sql_command(source, table, columns, stage, model_path, target, cell_budget) 
             src = _model_source(src, model, target)
             statements = _stage_statements(None, src, cols, cols, stage, model, target, cell_budget)
         else:
-            from ..stages import check_columns
+            from ..stages import check_columns, resolve_columns
 
             with open_with_options(source, table) as (engine, src):
+                cols = cols if model else resolve_columns(engine, src, cols)  # as the engine reads typed names
                 src = _model_source(src, model, target)
                 source_columns = [c for c in check_columns(engine, src, cols) if c not in src.derived_names()]
                 statements = _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget)
