@@ -98,6 +98,13 @@ MAX_ROWS = 100_000_000
 START_DAY = _dt.date(2026, 1, 1)
 METERS_TABLE = "meters"
 
+#: The demo report's caution: the general one (report.CAUTION), then what it means for this demo.
+REPORT_CAUTION = (
+    "A segment is a statistical grouping of rows that look alike on the chosen columns, not a diagnosis. "
+    "In this demo, a segment named, say, 'probable leak' lists meters for the co-operative's usual inspection "
+    "procedure to confirm; it does not show that any one of them leaks."
+)
+
 _FAIL_NULL_LITRES = 0.0015  # share of rows with NULL litres
 _FAIL_NAN_NIGHT = 0.0005  # share of rows with NaN night_share
 
