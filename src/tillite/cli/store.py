@@ -10,6 +10,7 @@ from typing import TYPE_CHECKING
 
 from ..errors import DatabaseLocked
 from ..lazy import lazy_module, lazy_name
+from ..settings import STORE_METHODS
 from .shared import categorical_columns, parameter_option, parse_weights, progress_printer, refuse_table_for_files, split_columns, user_errors
 
 if TYPE_CHECKING:
@@ -55,8 +56,9 @@ def store_group() -> None:
 @click.option("--db", "database", help="For a Parquet/CSV SOURCE: the DuckDB file that keeps the store (created if missing).")
 @parameter_option("k", type=str, callback=_store_k, required=True,
                   help="Number of segments (one number: a store keeps it, so refreshes keep segment ids).")
-@parameter_option("method", help="Second phase on the merged cells: kmeans or ward, as in `tillite segment`; refreshes keep "
-                                 "it. density is refused (its cell map would miss rows arriving in new cells).")
+@parameter_option("method", type=click.Choice(STORE_METHODS),
+                  help="Second phase on the merged cells, as in `tillite segment`; refreshes keep it. (A store takes no "
+                       "density-connected segments: their cell map would miss rows arriving in new cells.)")
 @parameter_option("scaling", help="Put columns on a common scale (z-scores) before measuring distances, or use them as they are.")
 @parameter_option("weights", help="Column multipliers after scaling, e.g. litres=2.")
 @parameter_option("cell_budget", help="About how many grid cells the frozen grid aims for.")
