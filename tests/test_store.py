@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 
 import duckdb
 import numpy as np
@@ -350,6 +351,36 @@ def test_partitions_are_told_apart_by_their_typed_values(tmp_path, partition_by)
         assert_store_equals_fresh_pass(engine, info, "t")
     assert S.status(engine, "t")["rows"] == 30_000
     engine.close()
+
+
+@pytest.mark.parametrize("named, changed", [
+    ("p=NULL", "NULL"),  # SQL NULL, as status shows it
+    ('p="NULL"', '"NULL"'),  # the text 'NULL', as status shows it (a JSON string)
+    ("p='NULL'", '"NULL"'),  # the text 'NULL' as a SQL literal
+])
+def test_named_partitions_take_null_and_the_text_null_as_status_shows_them(tmp_path, named, changed):
+    engine = DuckDBEngine(str(typed_partition_table(tmp_path / "typed.duckdb")))
+    S.build(engine, Source.of_table("t"), ["a", "b"], S.PartitionSpec(("p",)), Settings(k=2, refine_passes=0))
+    shown = {e["part"] for e in S.status(engine, "t")["partition_list"]}
+    assert {"NULL", '"NULL"', "x"} == shown
+    # both look-alike partitions change; the named one alone is rescanned (reference: the UPDATE's own WHERE)
+    engine.con.execute("UPDATE t SET a = a + 5 WHERE p IS NULL OR p = 'NULL'")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # it matched a partition: no warning
+        report = S.refresh(engine, "t", partitions=[named])
+    assert report.changed == [changed] and report.unchanged == 0
+    engine.close()
+
+
+def test_a_named_partition_that_matches_nothing_is_a_warning_naming_it(built):
+    engine, info, _ = built
+    engine.close()
+    res = CliRunner().invoke(main, ["refresh", engine.path, "--store", "meter_days", "--partitions",
+                                    "day=2031-01-01,day=2026-01-03", "-q"])
+    assert res.exit_code == 0, res.output
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("warning: --partitions day=2031-01-01 matched no partition"), lines
+    assert "2026-01-03" not in lines[0]
 
 
 def test_partition_labels_show_null_apart_from_the_string_null():

@@ -31,6 +31,7 @@ import json
 import os
 import re
 import time
+import warnings
 from dataclasses import dataclass, field, replace as with_fields
 from datetime import datetime, timezone
 from pathlib import Path
@@ -40,7 +41,7 @@ import numpy as np
 
 from . import categorical as cat
 from . import features as F
-from . import sqlgen, store_groups, store_history
+from . import sqlgen, store_groups, store_history, store_named
 from .engines import Engine
 from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
     EngineError, InputError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
@@ -1129,6 +1130,8 @@ def refresh(
             report.unchanged = len(current) - len(new) - len(changed)
             report.new, report.changed = _shown(info, current, new), _shown(info, current, changed)
             report.vanished = _shown(info, stored, vanished)
+            if partitions:  # said, not silent: a value that matched nothing is often a typo
+                _warn_unmatched(engine, info, partitions, types, [f.values for f in current.values()] + [stored[p].values for p in in_scope])
             progress("fingerprints", f"{len(current):,} partitions{' (named)' if predicate is not None else ''}: {len(new)} new, {len(changed)} changed, {len(vanished)} vanished, {report.seconds['fingerprints']:.2f} s")
             recompute = new + changed
             if not (recompute or vanished or touched_meta or force or settings_moved):
@@ -1238,23 +1241,17 @@ def named_partitions_predicate(
         except ValueError as err:
             raise ParameterError(f"{{where}} {where!r}: {err}", "where") from None
     types = types or dict(engine.describe(info.source))
-    by_lower = {n.lower(): n for n in names}
-    wanted: dict[str, list[str]] = {}
-    for item in partitions or ():
-        name, eq, value = item.partition("=")
-        if not eq or name.strip().lower() not in by_lower:
-            raise ParameterError(f"{{partitions}} {item!r}: give COLUMN=VALUE with a partition column ({', '.join(names)})", "partitions")
-        wanted.setdefault(by_lower[name.strip().lower()], []).append(value)
-    terms = []
-    for name, values in wanted.items():
-        kind = sqlgen.exp.DataType.build(types[name], dialect=engine.target.name)
-        casts = [sqlgen.exp.cast(sqlgen.exp.Literal.string(v), kind) for v in values]
-        try:  # each value must read as the column's type: one tiny query, no table
-            engine.query(sqlgen.exp.select(*[sqlgen.exp.alias_(c.copy(), f"v{i}", quoted=True) for i, c in enumerate(casts)]))
-        except EngineError:
-            raise ParameterError(f"{{partitions}}: a value of {name} ({', '.join(values)}) does not read as {types[name]}", "partitions") from None
-        terms.append(sqlgen.exp.In(this=sqlgen.col(name), expressions=casts))
-    return sqlgen.all_of(terms)
+    return sqlgen.all_of(store_named.value_terms(engine, store_named.named_values(partitions or (), names), types))
+
+
+def _warn_unmatched(engine: Engine, info: StoreInfo, partitions: Sequence[str] | str, types: dict[str, str] | None,
+                    found: list[list[str | None]]) -> None:
+    """A warning line naming each --partitions item that matched no partition."""
+    items = [p for p in partitions.split(",") if p] if isinstance(partitions, str) else list(partitions)
+    named = store_named.named_values(items, info.partition.columns)
+    note = store_named.unmatched_note(engine, named, types or dict(engine.describe(info.source)), info.partition.columns, found)
+    if note:
+        warnings.warn(note, UserWarning, stacklevel=3)
 
 
 def _fingerprints_where(engine: Engine, scan: Source, info: StoreInfo, predicate: Any) -> dict[str, Fingerprint]:

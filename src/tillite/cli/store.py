@@ -182,7 +182,8 @@ def _shown_columns(st: dict) -> list[str]:
 @click.option("--partitions", "partitions", multiple=True,
               help="Refresh only these partitions, skipping the fingerprint pass over the others: COLUMN=VALUE items, "
                    "comma-separated (e.g. day=2026-01-15,day=2026-01-16); values of one column are alternatives, "
-                   "different columns must all match.")
+                   "different columns must all match. Write values as `store status --json` lists them: NULL is SQL "
+                   "NULL, \"NULL\" (or 'NULL') the text. A value that matches no partition is said in a warning.")
 @click.option("--where", "where", help="Refresh only the partitions whose rows satisfy this SQL predicate on the "
               "partition columns alone (e.g. \"day >= DATE '2026-01-15'\"); no other column, function or subquery.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
