@@ -382,6 +382,14 @@ def test_sql_unknown_dialect_is_a_usage_error_naming_it(blobs_db_copy):
 # ----------------------------------------------------------------------------- errors
 
 
+@pytest.mark.parametrize("source, said, other", [("postgresql://me@db.example/warehouse", "a PostgreSQL URL", "postgres"),
+                                                 ("local[2]", "a Spark master URL", "spark")])
+def test_engine_duckdb_with_a_url_of_another_engine_says_duckdb_cannot_open_it(source, said, other):
+    res = run_cli("segment", "--engine", "duckdb", source, "--table", "t", "-c", "a", "--k", 2)
+    line = assert_one_error_line(res, source, said, "--engine duckdb cannot open", f"--engine {other}")
+    assert "does not exist" not in line
+
+
 @pytest.mark.parametrize(
     "command",
     [

@@ -506,7 +506,7 @@ def test_refresh_warnings_are_printed_once_on_stderr(demo_db):
     assert len(warned) == len(set(warned))
 
 
-def test_a_refresh_while_another_process_writes_the_duckdb_file_gets_the_busy_message(demo_db):
+def test_a_refresh_while_another_process_holds_the_duckdb_file_says_the_file_is_locked(demo_db):
     import subprocess
     import sys
 
@@ -522,7 +522,29 @@ def test_a_refresh_while_another_process_writes_the_duckdb_file_gets_the_busy_me
         holder.communicate("", timeout=30)
     assert res.exit_code == 1 and "Traceback" not in res.output
     lines = [ln for ln in res.output.splitlines() if ln.strip()]
-    assert len(lines) == 1 and lines[0].startswith("Error: another refresh is running; nothing was changed")
+    assert len(lines) == 1 and lines[0].startswith(f"Error: the database file {demo_db} is locked by another process"), lines
+    assert "maybe a refresh" in lines[0] and "nothing was changed" in lines[0]
+
+
+@pytest.mark.parametrize("change, needles", [
+    ("ALTER TABLE meter_days RENAME TO meter_days_old", ["its source table meter_days cannot be read", "meter_days_old"]),
+    ("ALTER TABLE meter_days DROP COLUMN zero_hours", ["column zero_hours of its source table meter_days not found"]),
+    ("ALTER TABLE meter_days RENAME COLUMN day TO reading_day", ["column day of its source table meter_days not found",
+                                                                 "reading_day"]),
+])
+@pytest.mark.parametrize("how", [[], ["--partitions", "day=2026-01-03"], ["--regrid"]])
+def test_a_refresh_after_the_source_table_or_a_column_went_names_the_store_and_what_went(built, change, needles, how):
+    engine, info, _ = built
+    engine.con.execute(change)
+    before = store_snapshot(engine.con, info)
+    engine.close()
+    res = CliRunner().invoke(main, ["refresh", engine.path, "--store", "meter_days", *how])
+    assert res.exit_code == 1 and "Traceback" not in res.output
+    lines = res.output.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("Error: store meter_days: ") and "nothing was changed" in lines[0], lines
+    assert all(n in lines[0] for n in needles) and "Catalog Error" not in lines[0] and "Binder Error" not in lines[0], lines
+    with duckdb.connect(engine.path) as con:
+        assert store_snapshot(con, info) == before
 
 
 def test_a_file_store_is_named_after_its_folder(tmp_path):

@@ -393,7 +393,7 @@ def open_source(
             return OpenedSource(DuckDBEngine(database, read_only=not writable), Source.of_files(location, reader))
         return OpenedSource(DuckDBEngine(":memory:"), Source.of_files(location, reader))
     if not os.path.exists(location):
-        raise SourceError(f"database {location} does not exist (give a .duckdb file, or a Parquet/CSV path)")
+        raise SourceError(_not_duckdb_source(location))
     if not table:
         raise SourceError(f"--table is needed to read the database {location}")
     return OpenedSource(DuckDBEngine(location, read_only=not writable), Source.of_table(table))
@@ -952,6 +952,16 @@ def _open_spark(location: str, table: str | None, conf: dict[str, str]) -> tuple
     if local and not any(ch in location for ch in "*?[") and not os.path.exists(location):
         raise SourceError(f"data file {location} does not exist")
     return SparkEngine(master=conf.get("spark.master", "local[*]"), conf=conf), Source.of_files(location, reader)
+
+
+def _not_duckdb_source(location: str) -> str:
+    """Why DuckDB cannot open SOURCE: a URL of another engine (given with --engine duckdb), or no such file."""
+    other = "postgres" if POSTGRES_URL.match(location) else "spark" if SPARK_MASTER.match(location) else None
+    if other:
+        what = "a PostgreSQL URL" if other == "postgres" else "a Spark master URL"
+        return (f"SOURCE {location} is {what}, which --engine duckdb cannot open (it reads DuckDB files and "
+                f"Parquet/CSV paths); leave out --engine or give --engine {other}")
+    return f"database {location} does not exist (give a .duckdb file, or a Parquet/CSV path)"
 
 
 def _not_spark_source(location: str) -> str:

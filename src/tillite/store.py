@@ -27,6 +27,7 @@ cells stored with them.
 
 from __future__ import annotations
 
+import functools
 import json
 import os
 import re
@@ -44,7 +45,8 @@ from . import features as F
 from . import sqlgen, store_groups, store_history, store_named
 from .engines import Engine
 from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
-    EngineError, InputError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
+    EngineError, InputError, ParameterError, SourceError, StoreBusy, StoreError, StoreExists, TilliteError,
+    TransactionConflict,
 )
 from .features import CF
 from .model import Model
@@ -1042,6 +1044,46 @@ def _check_partition_count(engine: Engine, source: Source, partition: PartitionS
     return []
 
 
+def _names_its_source(run: Callable[..., Any]) -> Callable[..., Any]:
+    """A refresh or regrid that failed on its source says so in one line naming the store, its source
+    and the missing table or column, instead of the database's own error (the transaction has rolled back)."""
+    @functools.wraps(run)
+    def wrapped(engine: Engine, store: str, *args: Any, **kw: Any) -> Any:
+        try:
+            return run(engine, store, *args, **kw)
+        except (TransactionConflict, StoreBusy):
+            raise
+        except TilliteError:  # the database's error, or a check that met the changed source first
+            problem = _source_problem(engine, store)
+            if problem is None:
+                raise
+            raise problem from None
+    return wrapped
+
+
+def _source_problem(engine: Engine, store: str) -> StoreError | None:
+    """Why the store's source cannot be read as at build (table gone or renamed, a column gone), or None."""
+    try:
+        info = load(engine, store)
+    except TilliteError:
+        return None
+    label = f"{'files' if info.source.files else 'table'} {info.source.label}"
+    try:
+        described = engine.describe(info.source)
+    except SourceError as err:
+        return StoreError(f"store {store}: its source {label} cannot be read (renamed or dropped?): {err}; nothing was changed")
+    specs = store_categories(info)
+    within = info.settings.get("within")
+    read = [*_numeric_columns(info.columns, specs), *(c.column for c in specs), *info.partition.columns, *([within] if within else [])]
+    there = [n for n, _ in described]
+    missing = [c for c in dict.fromkeys(read) if c not in there]
+    if not missing:
+        return None
+    return StoreError(f"store {store}: {'column' if len(missing) == 1 else 'columns'} {', '.join(missing)} of its source "
+                      f"{label} not found (renamed or dropped?); columns there: {', '.join(there)}; nothing was changed")
+
+
+@_names_its_source
 def regrid(engine: Engine, store: str, progress: ProgressFn = quiet_progress, new_segment_shift: float = 3.0) -> Model:
     """Rebuild a store with a new grid from a new profile: every partition is rescanned.
 
@@ -1069,6 +1111,7 @@ def _drop_store_statements(name: str, cells_table: str) -> list:
 # ----------------------------------------------------------------------------- refresh
 
 
+@_names_its_source
 def refresh(
     engine: Engine,
     store: str,

@@ -14,7 +14,7 @@ from typing import Any, Mapping, Sequence
 
 from . import sqlgen
 from .engines import Engine
-from .errors import EngineError, ParameterError
+from .errors import EngineError, ParameterError, SourceError
 
 __all__ = ["NamedValue", "named_values", "value_terms", "unmatched_note"]
 
@@ -64,6 +64,8 @@ def value_terms(engine: Engine, named: Sequence[NamedValue], types: Mapping[str,
     """
     terms = []
     for name in dict.fromkeys(n for _, n, _ in named):
+        if name not in types:  # the store's refresh names the column gone from its source
+            raise SourceError(f"partition column {name} not found in the source")
         values = [v for _, n, v in named if n == name]
         kind = sqlgen.exp.DataType.build(types[name], dialect=engine.target.name)
         casts = [_typed(v, kind) for v in values if v is not None]

@@ -115,14 +115,17 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
 
 def open_store_database(location: str, writable: bool = False) -> Engine:
     """The database keeping a store (engines.open_database: a DuckDB file, or PostgreSQL by its
-    postgresql:// URL). A DuckDB file another process is writing (a refresh running) gives StoreBusy.
+    postgresql:// URL). A DuckDB file another process holds open for writing (a refresh running, a duckdb
+    shell, any program) gives StoreBusy.
     """
     try:
         return open_database(location, writable=writable)
-    except DatabaseLocked as err:
+    except DatabaseLocked:
         if not writable:
             raise
-        raise store_api.StoreBusy(f"another refresh is running; nothing was changed ({err})") from None
+        raise store_api.StoreBusy(f"the database file {location} is locked by another process (maybe a refresh, or a "
+                                  "program such as a duckdb shell holding it open); nothing was changed: run again "
+                                  "once it is closed") from None
 
 
 @store_group.command("status")
