@@ -547,6 +547,20 @@ def test_a_refresh_after_the_source_table_or_a_column_went_names_the_store_and_w
         assert store_snapshot(con, info) == before
 
 
+def test_store_build_and_status_list_the_same_tables(demo_db):
+    built = CliRunner().invoke(main, ["store", "build", str(demo_db), "-t", "meter_days", "-c", ",".join(COLS),
+                                      "--partition-by", "day", "--k", "2", "-q"])
+    assert built.exit_code == 0, built.output
+    status = CliRunner().invoke(main, ["store", "status", str(demo_db), "--store", "meter_days"])
+    assert status.exit_code == 0, status.output
+    listed = [ln for ln in status.output.splitlines() if ln.startswith("store meter_days: cells in")]
+    assert listed == [built.output.splitlines()[0]]
+    # reference: DuckDB's own list of the tillite_ tables in the file
+    with duckdb.connect(str(demo_db), read_only=True) as con:
+        there = {t for (t,) in con.execute("SELECT table_name FROM information_schema.tables WHERE table_name LIKE 'tillite%'").fetchall()}
+    assert set(listed[0].replace("store meter_days: cells in ", "").replace("; registry in", ",").split(", ")) == there
+
+
 def test_a_file_store_is_named_after_its_folder(tmp_path):
     folder = tmp_path / "days"
     write_demo_parquet(folder, rows=3_000, days=3, seed=5)

@@ -264,7 +264,8 @@ def store_tables(engine: Engine, store: str | None = None) -> list[str]:
         return []
     where = sqlgen.equals_all({"store": store}) if store is not None else None
     cells = [r["cells_table"] for r in _rows(engine.query(sqlgen.select_where(STORES, where, ["cells_table"])))]
-    return [STORES, PARTS, LABELS, *sorted(cells)]
+    registry = [STORES, PARTS, LABELS, *([store_history.HISTORY] if store_history.HISTORY in known else [])]
+    return [*registry, *sorted(cells)]
 
 
 def default_store_name(source: Source) -> str:
@@ -1618,6 +1619,7 @@ def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, 
         "k": info.model.k,
         "settings": info.settings,
         "cells_table": info.cells_table,
+        "tables": store_tables(engine, store),  # the list `store build` prints
         "segment_ids": info.model.segment_ids(),
         **store_groups.status_fields(info.model),
         "warnings": warnings_,

@@ -160,8 +160,8 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
         click.echo(f"settings kept by refreshes: k={kept.get('k')}, method {kept.get('method', 'kmeans')}, refine passes {kept.get('refine_passes')}, "
                    f"restarts {kept.get('n_init')}, seed {kept.get('seed')}, scaling {kept.get('scaling')}"
                    + (f", within {kept['within']}" if kept.get("within") else ""))
-        click.echo(f"tables: {st['cells_table']} (cells), {store_api.STORES}, {store_api.PARTS}, {store_api.LABELS}, "
-                   f"{store_api.store_history.HISTORY}")
+        click.echo(f"store {st['store']}: cells in {st['cells_table']}; registry in "
+                   f"{', '.join(t for t in st['tables'] if t != st['cells_table'])}")
         _echo_history(source, store_name)
         for w in st["warnings"]:
             click.echo(f"warning: {w}", err=True)
