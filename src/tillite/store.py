@@ -1052,9 +1052,9 @@ def _names_its_source(run: Callable[..., Any]) -> Callable[..., Any]:
     def wrapped(engine: Engine, store: str, *args: Any, **kw: Any) -> Any:
         try:
             return run(engine, store, *args, **kw)
-        except (TransactionConflict, StoreBusy):
+        except (TransactionConflict, StoreError, ParameterError):
             raise
-        except TilliteError:  # the database's error, or a check that met the changed source first
+        except (EngineError, SourceError, InputError):  # the database's error, or a check that met the changed source
             problem = _source_problem(engine, store)
             if problem is None:
                 raise
