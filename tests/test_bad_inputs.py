@@ -87,6 +87,54 @@ def test_segment_option_out_of_range_is_one_error_line_naming_the_option(tmp_pat
     assert not (tmp_path / "m.json").exists()
 
 
+OTHER_METHOD_CASES = [
+    (["--k", 3, "--noise", "drop"], ["--noise", "--method density", "not --method kmeans"]),
+    (["--k", 3, "--noise", "attach"], ["--noise", "--method density"]),  # given, even at its default, is not ignored
+    (["--k", 3, "--min-count", 5], ["--min-count", "--method density"]),
+    (["--k", 3, "--method", "ward", "--adjacency", "distance"], ["--adjacency", "--method density", "not --method ward"]),
+    (["--method", "density", "--radius", 0.5], ["--radius", "--adjacency distance"]),
+    (["--method", "density", "--k", 0], ["--k", "--method density"]),
+    (["--method", "density", "--restarts", 3], ["--restarts", "--method kmeans or ward"]),
+    (["--method", "density", "--k-rule", "bic"], ["--k-rule", "--method kmeans or ward"]),
+    (["--method", "density", "--leaf-capacity", 10], ["--leaf-capacity", "--method kmeans or ward"]),
+    (["--method", "density", "--keep-outliers"], ["--keep-outliers", "--method kmeans or ward"]),
+    (["--method", "density", "--within", "part"], ["--within", "--method kmeans or ward"]),
+]
+
+
+@pytest.mark.parametrize("options,needles", OTHER_METHOD_CASES, ids=[" ".join(map(str, o)) for o, _ in OTHER_METHOD_CASES])
+def test_an_option_of_another_method_is_refused_naming_the_option_and_its_method(tmp_path, bad_inputs_db, options, needles):
+    res = run_cli("segment", bad_inputs_db, "-t", "points", "-c", "a,b,c", "-o", tmp_path / "m.json", "-q", *options)
+    assert_one_error_line(res, *needles)
+    assert not (tmp_path / "m.json").exists()
+
+
+#: A valid value away from the default for every parameter that names its methods.
+NOT_DEFAULT = {"k_rule": "bic", "n_init": 3, "tree_budget": 10, "threshold": 0.5, "branching": 3, "leaf_capacity": 3,
+               "criterion": "radius", "keep_outliers": True, "min_count": 5.0, "adjacency": "distance", "radius": 0.5,
+               "noise": "drop", "within": "part"}
+
+
+def test_every_method_specific_parameter_is_refused_by_the_api_with_another_method():
+    from tillite.errors import ParameterError
+    from tillite.settings import METHODS, PARAMETERS, Settings
+
+    specific = {n for n, p in PARAMETERS.items() if p.methods and n != "k"}
+    assert specific == set(NOT_DEFAULT)  # a new method-specific parameter needs a value here
+    for name, value in NOT_DEFAULT.items():
+        for method in set(METHODS) - set(PARAMETERS[name].methods):
+            with pytest.raises(ParameterError, match=name) as err:
+                Settings(k=0 if method == "density" else 2, method=method, **{name: value}).check(["a"])
+            assert "method" in err.value.parameters
+    Settings(k=0, method="density", adjacency="distance", radius=0.5, noise="drop", min_count=5.0).check(["a"])
+
+
+def test_store_build_help_lists_only_the_methods_a_store_takes():
+    res = run_cli("store", "build", "--help")
+    assert res.exit_code == 0
+    assert "[kmeans|ward]" in res.output and "density|" not in res.output and "|density" not in res.output
+
+
 def test_store_build_with_a_negative_seed_is_one_error_line(tmp_path, bad_inputs_db):
     res = run_cli("store", "build", bad_inputs_db, "-t", "points", "-c", "a,b", "--partition-by", "part", "--k", 3, "--seed", -1,
               "--store", "s_bad", "-q")

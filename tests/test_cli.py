@@ -382,6 +382,46 @@ def test_sql_unknown_dialect_is_a_usage_error_naming_it(blobs_db_copy):
 # ----------------------------------------------------------------------------- errors
 
 
+@pytest.mark.parametrize("relation, sample_rows, kind", [
+    ("t", 5_000, "whole"),  # at most twice the sample: the whole table
+    ("v", 100, "seeded"),  # a view: the engine's seeded TABLESAMPLE
+    ("t", 100, "block"),  # a large DuckDB base table: the two-stage block sample
+])
+def test_sql_stage_profile_prints_the_statements_segment_runs(tmp_path, monkeypatch, relation, sample_rows, kind):
+    from tillite.engines import DuckDBEngine
+    from tillite.pipeline import Settings, run_profile
+    from tillite.sqlgen import Source, render
+    from tillite.stages import profile_sample_kind
+
+    db = tmp_path / "p.duckdb"
+    with duckdb.connect(str(db)) as con:
+        con.execute("CREATE TABLE t AS SELECT (range * 7919 % 10007)::DOUBLE AS a, (range % 97)::DOUBLE AS b "
+                    f"FROM range({3_000 if kind == 'whole' else 200_000})")
+        con.execute("CREATE VIEW v AS SELECT * FROM t")
+    printed = run_cli("sql", db, "--table", relation, "-c", "a,b", "--stage", "profile", "--seed", 7,
+                      "--sample-rows", sample_rows)
+    assert printed.exit_code == 0, printed.output
+    # reference: the statements DuckDB is given while the profile of `segment` runs
+    ran = []
+    real_query = DuckDBEngine.query
+    monkeypatch.setattr(DuckDBEngine, "query", lambda self, st: ran.append(st) or real_query(self, st))
+    settings = Settings(k=2, seed=7, sample_rows=sample_rows)
+    with DuckDBEngine(str(db), read_only=True) as engine:
+        run_profile(engine, Source.of_table(relation), ["a", "b"], settings)
+        assert profile_sample_kind(engine, Source.of_table(relation), int(engine.con.execute("SELECT count(*) FROM t").fetchone()[0]),
+                                   settings) == kind
+    ran = [st for st in ran if relation in {t.name for t in st.find_all(sqlglot.exp.Table)}]  # not the catalog or settings
+    assert printed.stdout == "".join(render(st, "duckdb", pretty=True) + ";\n" for st in ran)
+
+
+@pytest.mark.parametrize("source, said, other", [("postgresql://me@db.example/warehouse", "a PostgreSQL URL", "postgres"),
+                                                 ("local[2]", "a Spark master URL", "spark")])
+def test_engine_duckdb_with_a_url_of_another_engine_says_duckdb_cannot_open_it(source, said, other):
+    res = run_cli("segment", "--engine", "duckdb", source, "--table", "t", "-c", "a", "--k", 2)
+    line = assert_one_error_line(res, source, said, "--engine duckdb cannot open", f"--engine {other}")
+    assert "does not exist" not in line
+
+
 @pytest.mark.parametrize(
     "command",
     [

@@ -9,6 +9,9 @@ rows.  The tests skip loudly when Spark cannot start, and fail when CI=true.
 from __future__ import annotations
 
 import json
+import os
+import subprocess
+import sys
 
 import duckdb
 import numpy as np
@@ -47,7 +50,8 @@ from engine_checks import (
     write_duckdb,
     write_parquet,
 )
-from throwaway_servers import start_spark
+from conftest import assert_one_error_line, run_cli
+from throwaway_servers import start_spark, unavailable
 
 SETTINGS = dict(k=5, width=0.5, seed=0, cell_budget=2_000)
 REGISTERED = "points_table"
@@ -388,3 +392,51 @@ def test_segment_within_with_a_categorical_column_and_its_labels_equal_duckdb(sp
     assert_same_within_model(got, ref)
     label(sparks, src, ref, "band_groups")
     assert_same_within_labels(ordered_rows(sparks, "band_groups"), want, engine_rows)
+
+
+@pytest.mark.parametrize("source, said", [
+    ("duckdb-file", "is a DuckDB database file"),
+    ("postgresql://me@db.example/warehouse", "is a PostgreSQL URL"),
+    ("no-such-master", "neither a Spark master URL nor a Parquet/JSON path"),
+])
+def test_engine_spark_refuses_a_source_that_is_no_master_or_file_source_before_starting_java(
+        source, said, tmp_path, monkeypatch):
+    if source == "duckdb-file":
+        source = str(duckdb_file_with_one_table(tmp_path / "t.duckdb"))
+    started = []
+    monkeypatch.setattr("tillite.engines.SparkEngine", lambda *a, **k: started.append(1))
+    result = run_cli("segment", "--engine", "spark", source, "--table", "t", "--columns", "x", "--k", "2")
+    assert_one_error_line(result, source, said, "--engine spark", "master URL")
+    assert not started
+
+
+def duckdb_file_with_one_table(path):
+    con = duckdb.connect(str(path))
+    con.execute("CREATE TABLE t AS SELECT range::DOUBLE AS x FROM range(10)")
+    con.close()
+    return path
+
+
+def test_a_spark_session_tillite_starts_is_quiet_and_leaves_no_warehouse_folder(tmp_path):
+    """--quiet: stderr holds at most the JVM launcher's own module notice; the warehouse was a scratch folder."""
+    pytest.importorskip("pyspark", reason="pyspark is not installed")
+    if not os.environ.get("JAVA_HOME") and not __import__("shutil").which("java"):
+        unavailable("no Java runtime (java on PATH or JAVA_HOME) for Spark")
+    con = duckdb.connect()
+    con.execute(f"COPY (SELECT range::DOUBLE AS x, (range % 7)::DOUBLE AS y FROM range(200)) TO '{tmp_path / 'p.parquet'}' (FORMAT PARQUET)")
+    con.close()
+    scratch = tmp_path / "tmp"
+    scratch.mkdir()
+    env = {**os.environ, "TMPDIR": str(scratch), "PYTHONPATH": os.pathsep.join(sys.path)}
+    done = subprocess.run([sys.executable, "-m", "tillite.cli", "segment", "--engine", "spark", "p.parquet",
+                           "--columns", "x,y", "--k", "2", "--quiet", "--out", "m.json",
+                           "--spark-conf", "spark.master=local[1]"],
+                          cwd=tmp_path, env=env, capture_output=True, text=True, timeout=600)
+    if done.returncode != 0 and "cannot start Spark" in done.stderr:
+        unavailable(f"cannot start a local SparkSession: {done.stderr.strip()}")
+    assert done.returncode == 0, done.stderr
+    # the JVM launcher's notice about incubator modules is not a log line; nothing else may show
+    lines = [ln for ln in done.stderr.splitlines() if ln.strip() and not ln.startswith("WARNING: Using incubator modules")]
+    assert lines == []
+    assert not (tmp_path / "spark-warehouse").exists()
+    assert list(scratch.glob("tillite-spark-*")) == []  # the scratch folder (log settings, warehouse) went with the session

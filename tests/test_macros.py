@@ -427,6 +427,16 @@ def test_cli_errors_are_one_line_messages_naming_the_path(tmp_path):
     assert run_macros_cli("show", "--model", tmp_path / "none.json", "--name", "w").exit_code == 1
 
 
+@pytest.mark.parametrize("source, said", [("postgresql://me@db.example/warehouse", "a PostgreSQL URL"),
+                                          ("spark://master:7077", "a Spark master URL")])
+def test_macros_install_into_a_url_of_another_engine_says_macros_go_into_duckdb_files_only(source, said):
+    result = run_macros_cli("install", source)
+    assert result.exit_code == 1 and "Traceback" not in result.output
+    lines = result.output.strip().splitlines()
+    assert len(lines) == 1 and source in lines[0] and said in lines[0] and "DuckDB database files only" in lines[0], lines
+    assert "does not exist" not in lines[0]
+
+
 # ----------------------------------------------------------------------------- a real console
 
 

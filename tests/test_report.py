@@ -542,6 +542,27 @@ def test_demo_ends_by_writing_its_report_beside_the_database_and_says_where(tmp_
     page = tmp_path / "tillite-demo-report.html"
     assert page.exists() and f"report written to {page.resolve()}" in got.output
     assert 'id="chart-breakdown-0"' in page.read_text(encoding="utf-8")
+    assert "probable leak" in page.read_text(encoding="utf-8")  # the demo's own caution (demo.REPORT_CAUTION)
+
+
+def test_a_tables_report_carries_the_general_caution_and_no_demo_wording(tmp_path, blobs_600_4d_5c):
+    x, _ = blobs_600_4d_5c
+    db = tmp_path / "t.duckdb"
+    with duckdb.connect(str(db)) as con:
+        frame = {"a": x[:, 0], "b": x[:, 1]}  # noqa: F841
+        con.execute("CREATE SCHEMA s1")
+        con.execute("CREATE TABLE s1.t AS SELECT * FROM frame")
+    runner = CliRunner()
+    model = tmp_path / "m.json"
+    assert runner.invoke(main, ["segment", str(db), "--table", "s1.t", "-c", "a,b", "--k", "3", "-o", str(model), "-q"]).exit_code == 0
+    for fmt in ("html", "md"):
+        out = tmp_path / f"r.{fmt}"
+        got = runner.invoke(main, ["report", str(db), "--table", "s1.t", "--model", str(model), "--format", fmt,
+                                   "--out", str(out), "-q"])
+        assert got.exit_code == 0, got.output
+        page = out.read_text(encoding="utf-8")
+        assert "statistical grouping" in page and "usual procedures of the field" in page
+        assert "meters" not in page and "inspection" not in page and "leak" not in page
 
 
 def test_report_of_an_outlier_model_counts_the_rows_its_label_view_gives_each_segment(tmp_path):

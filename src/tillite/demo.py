@@ -121,6 +121,13 @@ DEMO_TABLE_COLUMNS: tuple[tuple[str, str], ...] = (
 )
 METERS_TABLE_COLUMNS: tuple[tuple[str, str], ...] = (("meter_id", "INTEGER"), ("district", "VARCHAR"), ("kind", "VARCHAR"))
 
+#: The demo report's caution: the general one (report.CAUTION), then what it means for this demo.
+REPORT_CAUTION = (
+    "A segment is a statistical grouping of rows that look alike on the chosen columns, not a diagnosis. "
+    "In this demo, a segment named, say, 'probable leak' lists meters for the co-operative's usual inspection "
+    "procedure to confirm; it does not show that any one of them leaks."
+)
+
 _FAIL_NULL_LITRES = 0.0015  # share of rows with NULL litres
 _FAIL_NAN_NIGHT = 0.0005  # share of rows with NaN night_share
 

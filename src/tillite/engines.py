@@ -15,6 +15,7 @@ import importlib
 import os
 import re
 import shutil
+import tempfile
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -438,7 +439,7 @@ def open_source(
             return OpenedSource(DuckDBEngine(database, read_only=not writable), Source.of_files(location, reader))
         return OpenedSource(DuckDBEngine(":memory:"), Source.of_files(location, reader))
     if not os.path.exists(location):
-        raise SourceError(f"database {location} does not exist (give a .duckdb file, or a Parquet/CSV path)")
+        raise SourceError(_not_duckdb_source(location))
     if not table:
         raise SourceError(f"--table is needed to read the database {location}")
     return OpenedSource(DuckDBEngine(location, read_only=not writable), Source.of_table(table))
@@ -741,6 +742,22 @@ SPARK_LOCAL_DEFAULTS = {
     "spark.log.level": "FATAL",  # our errors carry the first line; Spark would add a JSON stack dump
 }
 
+#: The driver's log4j settings while a session starts (spark.log.level takes over once it runs):
+#: errors only, so a start prints no profile, hostname or native-library lines. Spark's own
+#: logger is set too: a level of its own equal to the root's keeps Spark from announcing
+#: (to stderr) that it changes the default level for a Python session.
+SPARK_STARTUP_LOG4J = """\
+rootLogger.level = error
+rootLogger.appenderRef.stderr.ref = console
+appender.console.type = Console
+appender.console.name = console
+appender.console.target = SYSTEM_ERR
+appender.console.layout.type = PatternLayout
+appender.console.layout.pattern = %p %c{1}: %m%n
+logger.spark.name = org.apache.spark
+logger.spark.level = error
+"""
+
 
 @dataclass
 class SparkEngine(StatementRunner):
@@ -774,6 +791,7 @@ class SparkEngine(StatementRunner):
 
         self._errors_caught = (PySparkException, Py4JError)
         self._owns_session = False
+        self._scratch: str | None = None
         if self.session is None:
             from pyspark.sql import SparkSession
 
@@ -789,14 +807,32 @@ class SparkEngine(StatementRunner):
         master = conf.pop("spark.master", None) or self.master
         if master:
             builder = builder.master(master)
-        if master and master.startswith("local"):
-            conf = {**SPARK_LOCAL_DEFAULTS, **conf}
+        conf = {**self._session_defaults(local=bool(master and master.startswith("local")), given=conf), **conf}
         for key, value in conf.items():
             builder = builder.config(key, value)
         try:
             return builder.getOrCreate()
         except Exception as err:  # a JVM that cannot start shows as several exception types
             raise SourceError(f"cannot start Spark with master {master}: {first_line(err)}") from None
+
+    def _session_defaults(self, local: bool, given: Mapping[str, str]) -> dict[str, str]:
+        """Settings for a session this engine starts, in a scratch folder removed on close.
+
+        The driver logs errors only while it starts (unless --spark-conf sets its Java
+        options); a local session keeps its warehouse (tables written by ``label --into
+        ... --materialize``, gone with the session's in-memory catalog anyway) in the
+        scratch folder rather than ``spark-warehouse/`` in the current folder, unless
+        --spark-conf sets ``spark.sql.warehouse.dir``.
+        """
+        self._scratch = tempfile.mkdtemp(prefix="tillite-spark-")
+        log4j = Path(self._scratch) / "log4j2.properties"
+        log4j.write_text(SPARK_STARTUP_LOG4J)
+        out = dict(SPARK_LOCAL_DEFAULTS) if local else {}
+        if "spark.driver.extraJavaOptions" not in given:
+            out["spark.driver.extraJavaOptions"] = f"-Dlog4j2.configurationFile={log4j.as_uri()}"
+        if local and "spark.sql.warehouse.dir" not in given:
+            out["spark.sql.warehouse.dir"] = str(Path(self._scratch) / "warehouse")
+        return out
 
     @property
     def spark(self) -> Any:
@@ -944,6 +980,9 @@ class SparkEngine(StatementRunner):
         if self._owns_session and self.session is not None:
             self.session.stop()
             self.session = None
+        if getattr(self, "_scratch", None):
+            shutil.rmtree(self._scratch, ignore_errors=True)
+            self._scratch = None
 
 
 def _is_create(statement: exp.Expression, kind: str) -> bool:
@@ -963,6 +1002,8 @@ def _open_spark(location: str, table: str | None, conf: dict[str, str]) -> tuple
     reader = file_reader_for(location)
     is_dir = reader is None and os.path.isdir(location)
     if reader is None and not is_dir:
+        if not SPARK_MASTER.match(location):
+            raise SourceError(_not_spark_source(location))
         if not table:
             raise SourceError(f"--table is needed to read from Spark at {location}")
         return SparkEngine(master=location, conf=conf), Source.of_table(table)
@@ -973,3 +1014,36 @@ def _open_spark(location: str, table: str | None, conf: dict[str, str]) -> tuple
     if local and not any(ch in location for ch in "*?[") and not os.path.exists(location):
         raise SourceError(f"data file {location} does not exist")
     return SparkEngine(master=conf.get("spark.master", "local[*]"), conf=conf), Source.of_files(location, reader)
+
+
+def _not_duckdb_source(location: str) -> str:
+    """Why DuckDB cannot open SOURCE: a URL of another engine (given with --engine duckdb), or no such file."""
+    other = "postgres" if POSTGRES_URL.match(location) else "spark" if SPARK_MASTER.match(location) else None
+    if other:
+        what = "a PostgreSQL URL" if other == "postgres" else "a Spark master URL"
+        return (f"SOURCE {location} is {what}, which --engine duckdb cannot open (it reads DuckDB files and "
+                f"Parquet/CSV paths); leave out --engine or give --engine {other}")
+    return f"database {location} does not exist (give a .duckdb file, or a Parquet/CSV path)"
+
+
+def _not_spark_source(location: str) -> str:
+    """Why --engine spark refuses SOURCE, said before a JVM starts (Spark would print its stack trace)."""
+    if POSTGRES_URL.match(location):
+        what = "a PostgreSQL URL"
+    elif _is_duckdb_file(location):
+        what = "a DuckDB database file (read it with --engine duckdb)"
+    elif os.path.isfile(location):
+        what = "a file that is not Parquet or JSON"
+    else:
+        what = "neither a Spark master URL nor a Parquet/JSON path"
+    return (f"SOURCE {location} is {what}; --engine spark reads a master URL (local[*], spark://host:7077, "
+            f"yarn, k8s://..., mesos://...) with --table, or Parquet/JSON files")
+
+
+def _is_duckdb_file(location: str) -> bool:
+    """A DuckDB database file: its header holds DUCK at byte 8."""
+    try:
+        with open(location, "rb") as f:
+            return f.read(12)[8:12] == b"DUCK"
+    except OSError:
+        return False

@@ -32,7 +32,7 @@ import duckdb
 from sqlglot import exp
 
 from . import __version__, sqlgen
-from .engines import connect_duckdb, duckdb_transaction
+from .engines import POSTGRES_URL, SPARK_MASTER, connect_duckdb, duckdb_transaction
 from .errors import MacroError  # noqa: F401  (re-exported here)
 from .model import Model
 from .targets import DuckDB
@@ -491,6 +491,9 @@ def open_database(path: str | os.PathLike) -> duckdb.DuckDBPyConnection:
     journal is refused with a message naming the path.
     """
     path = os.fspath(path)
+    if POSTGRES_URL.match(path) or SPARK_MASTER.match(path):
+        what = "a PostgreSQL URL" if POSTGRES_URL.match(path) else "a Spark master URL"
+        raise MacroError(f"{path} is {what}; macros are DuckDB macros and go into DuckDB database files only")
     if not os.path.exists(path):
         raise MacroError(f"database {path} does not exist; macros go into an existing DuckDB file")
     if os.path.isdir(path):

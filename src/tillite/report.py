@@ -79,10 +79,11 @@ TOP_CATEGORIES = 20
 #: Raster of the map: cells of one segment on the same spot of a MAP_BINS x MAP_BINS grid are one dot.
 MAP_BINS = 64
 
+#: The caution every report carries (the demo's report adds its own example: demo.REPORT_CAUTION).
 CAUTION = (
-    "A segment is a statistical grouping of rows that look alike on the chosen columns, not a diagnosis. "
-    "A segment named, say, 'probable leak' lists meters for the utility's usual inspection procedure to confirm; "
-    "it does not show that any one of them leaks."
+    "A segment is a statistical grouping of rows that look alike on the chosen columns, not a diagnosis "
+    "or a finding about any one row. What a segment seems to show is for the usual procedures of the field "
+    "to confirm before anyone acts on it."
 )
 
 #: Okabe & Ito's colour-blind-safe categorical palette (their "Color Universal Design" set, from memory).
@@ -607,14 +608,24 @@ def _say(progress: Any, stage: str, message: str) -> None:
 
 
 def report_of_model(
-    engine: Engine, source: Source, model: Model, by: Sequence[str] = (), progress: Any = None, labels: str | None = None
+    engine: Engine, source: Source, model: Model, by: Sequence[str] = (), progress: Any = None, labels: str | None = None,
+    caution: str = CAUTION,
 ) -> dict[str, Any]:
     """The report of a model over its source: one scan for statistics and breakdowns, the quartiles from a
     seeded sample, the map from the model file (a cell pass for older model files).
 
     ``labels``: a labels table made by `tillite label --materialize` with this model; its segment column
     is read instead of assigning every row again (the rows are then those of the table).
+    ``caution``: the report's caution (the demo gives one naming its own example).
     """
+    content = _report_of_model(engine, source, model, by, progress, labels)
+    content["header"]["caution"] = caution
+    return content
+
+
+def _report_of_model(
+    engine: Engine, source: Source, model: Model, by: Sequence[str], progress: Any, labels: str | None
+) -> dict[str, Any]:
     import time
 
     from .stages import check_columns, check_model_columns, model_source

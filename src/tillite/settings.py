@@ -16,7 +16,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field, fields
 from numbers import Real
-from typing import Any, Sequence
+from typing import Any, Iterable, Sequence
 
 from .errors import ParameterError
 
@@ -30,6 +30,8 @@ __all__ = [
     "OPTION_NAMES",
     "MAX_WEIGHT",
     "MAX_SEED",
+    "METHODS",
+    "STORE_METHODS",
     "check_range",
     "check_refresh_options",
 ]
@@ -40,6 +42,13 @@ MAX_WEIGHT = 1e6
 #: Seeds are passed to every engine's sampler: keep them in a 32-bit signed range.
 MAX_SEED = 2**31 - 1
 
+#: The second-phase methods, and those a summary store takes (density's cell map would miss rows in new cells).
+METHODS = ("kmeans", "ward", "density")
+STORE_METHODS = ("kmeans", "ward")
+#: Shorthands for the parameter table's ``methods`` column.
+CENTROID_METHODS = ("kmeans", "ward")
+DENSITY = ("density",)
+
 
 @dataclass(frozen=True)
 class Parameter:
@@ -49,6 +58,9 @@ class Parameter:
     ``high``: the highest (inclusive). ``option``: the command-line option
     (None: the parameter has no option of its own); ``model_key``: the name
     under which the model file's ``params`` records it (None: not recorded).
+    ``methods``: the second-phase methods that use it (empty: every method);
+    given with another method it is refused, not ignored. ``needs``: (parameter,
+    value) it is used with, e.g. --radius only with --adjacency distance.
     """
 
     help: str
@@ -62,6 +74,8 @@ class Parameter:
     option: str | None = "--"  # "--": the name with dashes
     short: str | None = None
     model_key: str | None = None
+    methods: tuple[str, ...] = ()
+    needs: tuple[str, str] | None = None
 
     @property
     def option_name(self) -> str | None:
@@ -93,11 +107,13 @@ class Settings:
 
     k: int = field(metadata={"parameter": Parameter(
         help="Number of segments, 'auto' (1..12, one segment when no split beats it) or a range like 2..8 "
-             "chosen on the CFs (not needed for --method density).", short="-k", low=1, kind="parsed")})
+             "chosen on the CFs (not needed for --method density).", short="-k", low=1, kind="parsed",
+        methods=CENTROID_METHODS)})
     method: str = setting("kmeans", "Second phase: k-means++, Ward agglomeration, or density-connected cells "
-                                    "(non-convex shapes).", choices=("kmeans", "ward", "density"))
+                                    "(non-convex shapes).", choices=METHODS)
     k_rule: str = setting("calinski_harabasz", "How --k auto/range picks k: largest Calinski-Harabasz, or smallest "
-                                               "spherical-Gaussian BIC.", choices=("calinski_harabasz", "bic"))
+                                               "spherical-Gaussian BIC.", choices=("calinski_harabasz", "bic"),
+                           methods=CENTROID_METHODS)
     scaling: str = setting("zscore", "zscore: columns in standard deviations; none: original units (still centred).",
                            choices=("zscore", "none"))
     weights: dict[str, float] = setting({}, "Column multipliers after scaling, e.g. litres=2,zero_hours=0.5.")
@@ -107,7 +123,8 @@ class Settings:
     refine_passes: int = setting(3, "Most refine passes over the rows (0 for none).", low=0, model_key="refine_passes")
     tolerance: float = setting(1e-4, "Stop refining when a pass improves SSE by less than this share.", low=0,
                                model_key="tolerance")
-    n_init: int = setting(10, "k-means++ restarts on the cells.", low=1, option="--restarts", model_key="restarts")
+    n_init: int = setting(10, "k-means++ restarts on the cells (kmeans; ward uses them to choose --k auto/lo..hi).",
+                          low=1, option="--restarts", model_key="restarts", methods=CENTROID_METHODS)
     seed: int = setting(0, "Seed of the profile sample, k-means++ and the CF tree (0 to 2147483647); the same data, "
                            "options and seed give the same model.", low=0, high=MAX_SEED, model_key="seed")
     sample_rows: int = setting(50_000, "Rows the profile sample aims for.", low=2, model_key="sample_rows")
@@ -118,20 +135,26 @@ class Settings:
     k_candidates: tuple[int, ...] = setting((), "Choose k among these on the CFs (then k is ignored); "
                                                 "the command line's --k auto or lo..hi.", option=None)
     tree_budget: int | None = setting(None, "Condense the cells with a CF tree when there are more than this "
-                                            "(default: the cell budget; 0: never).", low=0)
-    threshold: float | None = setting(None, "CF tree threshold T (default: chosen from the cells).", low=0)
-    branching: int = setting(50, "CF tree branching factor B.", low=2)
-    leaf_capacity: int = setting(50, "CF tree leaf capacity L.", low=2)
-    criterion: str = setting("diameter", "What the threshold T bounds.", choices=("diameter", "radius"))
-    keep_outliers: bool = setting(False, "Keep every cell; no outlier group (segment -1).")
-    min_count: float | None = setting(None, "density: rows a cell needs to be dense (default from the data).", low=0)
+                                            "(default: the cell budget; 0: never).", low=0,
+                                  methods=CENTROID_METHODS)
+    threshold: float | None = setting(None, "CF tree threshold T (default: chosen from the cells).", low=0,
+                                      methods=CENTROID_METHODS)
+    branching: int = setting(50, "CF tree branching factor B.", low=2, methods=CENTROID_METHODS)
+    leaf_capacity: int = setting(50, "CF tree leaf capacity L.", low=2, methods=CENTROID_METHODS)
+    criterion: str = setting("diameter", "What the threshold T bounds.", choices=("diameter", "radius"),
+                             methods=CENTROID_METHODS)
+    keep_outliers: bool = setting(False, "Keep every cell; no outlier group (segment -1).", methods=CENTROID_METHODS)
+    min_count: float | None = setting(None, "density: rows a cell needs to be dense (default from the data).", low=0,
+                                      methods=DENSITY)
     adjacency: str = setting("face", "density: join cells sharing a grid face, or with centroids within --radius.",
-                             choices=("face", "distance"))
-    radius: float | None = setting(None, "density: joining distance for --adjacency distance.", low=0, bound="above")
+                             choices=("face", "distance"), methods=DENSITY)
+    radius: float | None = setting(None, "density: joining distance for --adjacency distance.", low=0, bound="above",
+                                   methods=DENSITY, needs=("adjacency", "distance"))
     noise: str = setting("attach", "density: sparse cells join the nearest segment, or stay noise (segment -1).",
-                         choices=("attach", "drop"))
+                         choices=("attach", "drop"), methods=DENSITY)
     within: str | None = setting(None, "Segment each group of this column separately (k per group; NULL is a group of "
-                                       "its own), all groups from the same scans; at most 1,000 groups.", kind="str")
+                                       "its own), all groups from the same scans; at most 1,000 groups.", kind="str",
+                                methods=CENTROID_METHODS)
     categorical: tuple[str, ...] = setting((), "Categorical columns, comma-separated (repeatable): each becomes indicators of its "
                                                "top categories, weighing as much as one scaled numeric column "
                                                "(--weights COLUMN=w applies to the whole column).", kind="parsed")
@@ -154,16 +177,44 @@ class Settings:
         for p in rows:
             if not p.choices:
                 p.check(getattr(self, p.name))
+        self.check_methods()
         self._check_weights(columns)
+
+    def given(self) -> set[str]:
+        """The parameters set away from their defaults."""
+        return {p.name for p in PARAMETERS.values() if getattr(self, p.name) != p.default}
+
+    def check_methods(self, given: Iterable[str] | None = None) -> None:
+        """Refuse a parameter given with a method that does not use it, or without the value it needs.
+
+        ``given``: the parameters the caller set (the command line's options, even at their
+        defaults); None: those away from their defaults. k has its own check (_check_k).
+        """
+        named = self.given() - {"k"} if given is None else set(given)
+        for name in (n for n in PARAMETERS if n in named):
+            p = PARAMETERS[name]
+            if p.methods and self.method not in p.methods:
+                raise self._not_used(name)
+            if p.needs and getattr(self, p.needs[0]) != p.needs[1]:
+                raise ParameterError(f"{{{name}}} is used only with {{{p.needs[0]}}} {p.needs[1]}; add "
+                                     f"{{{p.needs[0]}}} {p.needs[1]} or leave {{{name}}} out", name, p.needs[0])
 
     def _check_k(self) -> None:
         if self.method == "density" and (self.k or self.k_candidates):
-            raise ParameterError("{k} is not used by {method} density, which finds the number of segments itself; "
-                                 "leave {k} out", "k", "method")
+            raise self._not_used("k")
         if any(c < 1 for c in self.k_candidates):
             raise ParameterError(f"{{k}} candidates must be at least 1, got {list(self.k_candidates)}", "k")
         if not self.k_candidates and self.method != "density" and self.k < 1:
             raise ParameterError(f"{{k}} must be at least 1, got {self.k}", "k")
+
+    def _not_used(self, name: str) -> ParameterError:
+        """The refusal of a parameter that this run's method does not use."""
+        if name == "k":
+            return ParameterError("{k} is not used by {method} density, which finds the number of segments itself; "
+                                  "leave {k} out", "k", "method")
+        methods = " or ".join(PARAMETERS[name].methods)
+        return ParameterError(f"{{{name}}} applies to {{method}} {methods} only, not {{method}} {self.method}; "
+                              f"leave {{{name}}} out", name, "method")
 
     def _check_weights(self, columns: Sequence[str]) -> None:
         unknown = [c for c in self.weights if c not in columns and c not in self.categorical]

@@ -30,6 +30,8 @@ from .segmenters import WARD_ENTRIES, KMeansResult, kmeans
 from .sqlgen import Assignment, Grid, Source
 
 if TYPE_CHECKING:
+    from sqlglot import exp
+
     from .settings import Settings
 
 #: What a run tells its caller as it goes: (stage, message).
@@ -162,7 +164,7 @@ def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings
     rows = count_rows(engine, source)
     d = len(columns)
     target = settings.sample_rows
-    if rows > 2 * target and block_sample_pays(engine, source, min(100.0, 150.0 * target / rows)):
+    if profile_sample_kind(engine, source, rows, settings) == "block":
         sample = _block_sample(engine, source, columns, 150.0 * target / rows, settings.seed, 4 * target)
     else:
         sample = seeded_sample(
@@ -173,6 +175,39 @@ def run_profile(engine: Engine, source: Source, columns: Sequence[str], settings
     center, scale = center_and_scale(sample, settings.scaling, columns)
     repeats = sample_promise(engine, rows, settings)
     return Profile(rows=rows, sample=sample, center=center, scale=scale, seconds=time.perf_counter() - t0, repeats=repeats)
+
+
+def profile_sample_kind(engine: Engine | None, source: Source, rows: int, settings: Settings) -> str:
+    """How the profile samples ``rows`` rows: "whole" (at most twice the sample), "block" (DuckDB's two-stage
+    block sample, ``block_sample_pays``) or "seeded" (the engine's TABLESAMPLE, ``seeded_sample``)."""
+    target = settings.sample_rows
+    if rows <= 2 * target:
+        return "whole"
+    if engine is not None and block_sample_pays(engine, source, min(100.0, 150.0 * target / rows)):
+        return "block"
+    return "seeded"
+
+
+def profile_statements(engine: Engine | None, source: Source, columns: Sequence[str], settings: Settings,
+                       target: Any, rows: int | None = None) -> list[exp.Expression]:
+    """The statements ``run_profile`` runs, for `tillite sql --stage profile`: the row count, then the sample
+    that ``rows`` rows (counted through ``engine`` when not given) call for, with the same seed and size.
+
+    Not shown: the BERNOULLI statement ``seeded_sample`` runs after a TABLESAMPLE that brought back under a
+    tenth of the sample, and the single thread DuckDB's block sample runs on.
+    """
+    rows = count_rows(engine, source) if rows is None else rows
+    n = settings.sample_rows
+    count = sqlgen.count_statement(source)
+    same = engine is not None and sqlgen.target_for(target).name == engine.target.name  # else no DuckDB block sample
+    kind = profile_sample_kind(engine if same else None, source, rows, settings)
+    if kind == "whole":
+        return [count, sqlgen.sample_statement(source, columns, target)]
+    if kind == "block":
+        return [count, sqlgen.block_sample_statement(source, columns, 150.0 * n / rows, settings.seed, limit=4 * n)]
+    first = sqlgen.target_for(target).first_sample_method
+    return [count, sqlgen.sample_statement(source, columns, target, percent=min(100.0, 150.0 * n / rows), method=first,
+                                           limit=4 * n, seed=settings.seed)]
 
 
 def count_rows(engine: Engine, source: Source) -> int:

@@ -27,10 +27,12 @@ cells stored with them.
 
 from __future__ import annotations
 
+import functools
 import json
 import os
 import re
 import time
+import warnings
 from dataclasses import dataclass, field, replace as with_fields
 from datetime import datetime, timezone
 from pathlib import Path
@@ -40,11 +42,12 @@ import numpy as np
 
 from . import categorical as cat
 from . import features as F
-from . import sqlgen, store_history
+from . import sqlgen, store_history, store_named
 from .lazy import lazy_module
 from .engines import Engine, result_rows
 from .errors import (  # noqa: F401  (StoreError, StoreBusy, StoreExists are re-exported here)
-    EngineError, InputError, ParameterError, StoreBusy, StoreError, StoreExists, TransactionConflict,
+    EngineError, InputError, ParameterError, SourceError, StoreBusy, StoreError, StoreExists, TilliteError,
+    TransactionConflict,
 )
 from .features import CF
 from .model import Model
@@ -267,7 +270,8 @@ def store_tables(engine: Engine, store: str | None = None) -> list[str]:
         return []
     where = sqlgen.equals_all({"store": store}) if store is not None else None
     cells = [r["cells_table"] for r in engine.query_rows(sqlgen.select_where(STORES, where, ["cells_table"]))]
-    return [STORES, PARTS, LABELS, *sorted(cells)]
+    registry = [STORES, PARTS, LABELS, *([store_history.HISTORY] if store_history.HISTORY in known else [])]
+    return [*registry, *sorted(cells)]
 
 
 def default_store_name(source: Source) -> str:
@@ -1038,6 +1042,46 @@ def _check_partition_count(engine: Engine, source: Source, partition: PartitionS
     return []
 
 
+def _names_its_source(run: Callable[..., Any]) -> Callable[..., Any]:
+    """A refresh or regrid that failed on its source says so in one line naming the store, its source
+    and the missing table or column, instead of the database's own error (the transaction has rolled back)."""
+    @functools.wraps(run)
+    def wrapped(engine: Engine, store: str, *args: Any, **kw: Any) -> Any:
+        try:
+            return run(engine, store, *args, **kw)
+        except (TransactionConflict, StoreError, ParameterError):
+            raise
+        except (EngineError, SourceError, InputError):  # the database's error, or a check that met the changed source
+            problem = _source_problem(engine, store)
+            if problem is None:
+                raise
+            raise problem from None
+    return wrapped
+
+
+def _source_problem(engine: Engine, store: str) -> StoreError | None:
+    """Why the store's source cannot be read as at build (table gone or renamed, a column gone), or None."""
+    try:
+        info = load(engine, store)
+    except TilliteError:
+        return None
+    label = f"{'files' if info.source.files else 'table'} {info.source.label}"
+    try:
+        described = engine.describe(info.source)
+    except SourceError as err:
+        return StoreError(f"store {store}: its source {label} cannot be read (renamed or dropped?): {err}; nothing was changed")
+    specs = store_categories(info)
+    within = info.settings.get("within")
+    read = [*_numeric_columns(info.columns, specs), *(c.column for c in specs), *info.partition.columns, *([within] if within else [])]
+    there = [n for n, _ in described]
+    missing = [c for c in dict.fromkeys(read) if c not in there]
+    if not missing:
+        return None
+    return StoreError(f"store {store}: {'column' if len(missing) == 1 else 'columns'} {', '.join(missing)} of its source "
+                      f"{label} not found (renamed or dropped?); columns there: {', '.join(there)}; nothing was changed")
+
+
+@_names_its_source
 def regrid(engine: Engine, store: str, progress: ProgressFn = quiet_progress, new_segment_shift: float = 3.0) -> Model:
     """Rebuild a store with a new grid from a new profile: every partition is rescanned.
 
@@ -1065,6 +1109,7 @@ def _drop_store_statements(name: str, cells_table: str) -> list:
 # ----------------------------------------------------------------------------- refresh
 
 
+@_names_its_source
 def refresh(
     engine: Engine,
     store: str,
@@ -1126,6 +1171,8 @@ def refresh(
             report.unchanged = len(current) - len(new) - len(changed)
             report.new, report.changed = _shown(info, current, new), _shown(info, current, changed)
             report.vanished = _shown(info, stored, vanished)
+            if partitions:  # said, not silent: a value that matched nothing is often a typo
+                _warn_unmatched(engine, info, partitions, types, [f.values for f in current.values()] + [stored[p].values for p in in_scope])
             progress("fingerprints", f"{len(current):,} partitions{' (named)' if predicate is not None else ''}: {len(new)} new, {len(changed)} changed, {len(vanished)} vanished, {report.seconds['fingerprints']:.2f} s")
             recompute = new + changed
             if not (recompute or vanished or touched_meta or force or settings_moved):
@@ -1249,23 +1296,17 @@ def named_partitions_predicate(
         except ValueError as err:
             raise ParameterError(f"{{where}} {where!r}: {err}", "where") from None
     types = types or dict(engine.describe(info.source))
-    by_lower = {n.lower(): n for n in names}
-    wanted: dict[str, list[str]] = {}
-    for item in partitions or ():
-        name, eq, value = item.partition("=")
-        if not eq or name.strip().lower() not in by_lower:
-            raise ParameterError(f"{{partitions}} {item!r}: give COLUMN=VALUE with a partition column ({', '.join(names)})", "partitions")
-        wanted.setdefault(by_lower[name.strip().lower()], []).append(value)
-    terms = []
-    for name, values in wanted.items():
-        kind = sqlgen.exp.DataType.build(types[name], dialect=engine.target.name)
-        casts = [sqlgen.exp.cast(sqlgen.exp.Literal.string(v), kind) for v in values]
-        try:  # each value must read as the column's type: one tiny query, no table
-            engine.query(sqlgen.exp.select(*[sqlgen.exp.alias_(c.copy(), f"v{i}", quoted=True) for i, c in enumerate(casts)]))
-        except EngineError:
-            raise ParameterError(f"{{partitions}}: a value of {name} ({', '.join(values)}) does not read as {types[name]}", "partitions") from None
-        terms.append(sqlgen.exp.In(this=sqlgen.col(name), expressions=casts))
-    return sqlgen.all_of(terms)
+    return sqlgen.all_of(store_named.value_terms(engine, store_named.named_values(partitions or (), names), types))
+
+
+def _warn_unmatched(engine: Engine, info: StoreInfo, partitions: Sequence[str] | str, types: dict[str, str] | None,
+                    found: list[list[str | None]]) -> None:
+    """A warning line naming each --partitions item that matched no partition."""
+    items = [p for p in partitions.split(",") if p] if isinstance(partitions, str) else list(partitions)
+    named = store_named.named_values(items, info.partition.columns)
+    note = store_named.unmatched_note(engine, named, types or dict(engine.describe(info.source)), info.partition.columns, found)
+    if note:
+        warnings.warn(note, UserWarning, stacklevel=3)
 
 
 def _fingerprints_where(engine: Engine, scan: Source, info: StoreInfo, predicate: Any) -> dict[str, Fingerprint]:
@@ -1590,6 +1631,7 @@ def status(engine: Engine, store: str, outside_warn: float = 0.01) -> dict[str, 
         "k": info.model.k,
         "settings": info.settings,
         "cells_table": info.cells_table,
+        "tables": store_tables(engine, store),  # the list `store build` prints
         "segment_ids": info.model.segment_ids(),
         **store_groups.status_fields(info.model),
         "warnings": warnings_,

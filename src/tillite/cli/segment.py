@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import time
 import warnings
@@ -177,15 +178,25 @@ def show_command(model_path, as_json) -> None:
 @click.option("--dialect", "target", default="duckdb", show_default=True, callback=_check_dialect,
               help="SQL dialect to render (any sqlglot dialect name).")
 @parameter_option("cell_budget", help="About how many grid cells the cells stage aims for (without --model).")
-def sql_command(source, table, columns, stage, model_path, target, cell_budget) -> None:
+@parameter_option("seed", default=None, show_default=False,
+                  help="Seed of the profile sample, as `segment --seed` [default: the model's, else 0].")
+@parameter_option("sample_rows", default=None, show_default=False,
+                  help="Rows the profile sample aims for, as `segment --sample-rows` [default: the model's, else 50000].")
+def sql_command(source, table, columns, stage, model_path, target, cell_budget, seed, sample_rows) -> None:
     """Print the SQL a stage would run, without running it.
 
     Without SOURCE nothing is connected to: give --table, and --model for the
     cells, refine and label stages (the label select then lists the model's
     columns only, as the source's other columns are unknown).
+
+    --stage profile prints what `segment` runs: the row count, then the seeded sample
+    that the count calls for (the whole table up to twice --sample-rows; else a
+    TABLESAMPLE of about 150 x --sample-rows / rows percent). Without SOURCE the count is
+    unknown, and the sample is shown for a table of 100 x --sample-rows rows.
     """
     with user_errors():
         model = Model.read(model_path) if model_path else None
+        profile = _profile_settings(model, seed, sample_rows)
         cols = list(model.columns) if model else split_columns(columns)
         if not cols:
             raise click.UsageError("give --columns or --model")
@@ -199,7 +210,10 @@ def sql_command(source, table, columns, stage, model_path, target, cell_budget) 
             except ValueError as err:
                 raise click.BadParameter(str(err), param_hint="--table") from None
             src = _model_source(src, model, target)
-            statements = _stage_statements(None, src, cols, cols, stage, model, target, cell_budget)
+            if stage == "profile":
+                click.echo(f"-- without SOURCE the row count is unknown: the sample shown is for a table of "
+                           f"{PRINTED_ROWS_PER_SAMPLE * profile.sample_rows:,} rows")
+            statements = _stage_statements(None, src, cols, cols, stage, model, target, cell_budget, profile)
         else:
             from ..stages import check_columns, resolve_columns
 
@@ -207,9 +221,23 @@ def sql_command(source, table, columns, stage, model_path, target, cell_budget) 
                 cols = cols if model else resolve_columns(engine, src, cols)  # as the engine reads typed names
                 src = _model_source(src, model, target)
                 source_columns = [c for c in check_columns(engine, src, cols) if c not in src.derived_names()]
-                statements = _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget)
+                statements = _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget, profile)
         for st in statements:
             click.echo(sqlgen.render(st, target, pretty=True) + ";")
+
+
+#: `sql --stage profile` without SOURCE: the sample shown is for a table of this many times --sample-rows rows.
+PRINTED_ROWS_PER_SAMPLE = 100
+
+
+def _profile_settings(model, seed, sample_rows) -> Settings:
+    """The profile's seed and sample size: the options, else the model's, else segment's defaults."""
+    params = model.params if model is not None else {}
+    given = {"seed": params.get("seed") if seed is None else seed,
+             "sample_rows": params.get("sample_rows") if sample_rows is None else sample_rows}
+    settings = Settings(k=1, **{name: value for name, value in given.items() if value is not None})
+    settings.check([])
+    return settings
 
 
 def _model_source(src, model, target):
@@ -228,16 +256,17 @@ def _within_partition(model):
     return sqlgen.Partitioning.of_columns([model.within["column"]])
 
 
-def _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget):
-    from ..stages import grid_for_profile
+def _stage_statements(engine, src, cols, source_columns, stage, model, target, cell_budget, profile):
+    from ..stages import grid_for_profile, profile_statements
 
-    if stage == "profile":
-        return [sqlgen.count_statement(src), sqlgen.sample_statement(src, cols, target, percent=1.0, limit=100_000)]
+    if stage == "profile":  # the statements segment runs, for the rows there are (or PRINTED_ROWS_PER_SAMPLE x)
+        rows = None if engine is not None else PRINTED_ROWS_PER_SAMPLE * profile.sample_rows
+        return profile_statements(engine, src, cols, profile, target, rows=rows)
     if stage == "cells":
         if model is not None and model.grid:
             grid = sqlgen.Grid.from_dict(model.grid)
         else:
-            settings = Settings(k=1, cell_budget=cell_budget)
+            settings = dataclasses.replace(profile, cell_budget=cell_budget)  # the grid segment would choose
             settings.check(cols)
             grid = grid_for_profile(run_profile(engine, src, cols, settings), settings)
         if model is not None and model.categorical:  # keyed by the numeric grid and each category, as segment runs it
@@ -338,7 +367,7 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
             click.echo(report.crosstab(engine, "meter_day_segments", demo.METERS_TABLE, "meter_id", "kind"))
             click.echo("")
             click.echo(demo.within_district_example(engine, src, progress=progress))
-            written = report.write_report(report.report_of_model(engine, src, model, ["district"], progress), page)
+            written = report.write_report(report.report_of_model(engine, src, model, ["district"], progress, caution=demo.REPORT_CAUTION), page)
         click.echo("")
         click.echo(f"model written to {out}; labels in view meter_day_segments of {db_path}.")
         click.echo(f"report written to {Path(written).resolve()} (open it in a browser; no network needed).")

@@ -254,4 +254,18 @@ def settings_from_options(**kw: Any) -> Settings:
     if kw.get("method", "kmeans") != "density" and k_text is None:
         raise click.UsageError("give --k (a number, 'auto' or a range like 2..12)")
     categorical = categorical_columns(kw.pop("categorical", None))
-    return Settings(k=k_value, k_candidates=candidates, weights=parse_weights(kw.pop("weights")), categorical=categorical, **kw)
+    settings = Settings(k=k_value, k_candidates=candidates, weights=parse_weights(kw.pop("weights")),
+                        categorical=categorical, **kw)
+    settings.check_methods(given_options() | settings.given() - {"k"})
+    return settings
+
+
+def given_options() -> set[str]:
+    """The parameters named on this command's line (or in the environment), even at their defaults."""
+    from click.core import ParameterSource
+
+    ctx = click.get_current_context(silent=True)
+    if ctx is None:
+        return set()
+    return {name for name in ctx.params
+            if ctx.get_parameter_source(name) in (ParameterSource.COMMANDLINE, ParameterSource.ENVIRONMENT)}

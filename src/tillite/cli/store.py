@@ -11,6 +11,7 @@ from typing import TYPE_CHECKING
 from ..errors import DatabaseLocked
 from ..lazy import lazy_module, lazy_name
 from ..outputs import MODEL_FILE
+from ..settings import STORE_METHODS
 from .shared import check_output, source_inputs, categorical_columns, parameter_option, parse_weights, progress_printer, refuse_table_for_files, split_columns, user_errors
 
 if TYPE_CHECKING:
@@ -56,8 +57,9 @@ def store_group() -> None:
 @click.option("--db", "database", help="For a Parquet/CSV SOURCE: the DuckDB file that keeps the store (created if missing).")
 @parameter_option("k", type=str, callback=_store_k, required=True,
                   help="Number of segments (one number: a store keeps it, so refreshes keep segment ids).")
-@parameter_option("method", help="Second phase on the merged cells: kmeans or ward, as in `tillite segment`; refreshes keep "
-                                 "it. density is refused (its cell map would miss rows arriving in new cells).")
+@parameter_option("method", type=click.Choice(STORE_METHODS),
+                  help="Second phase on the merged cells, as in `tillite segment`; refreshes keep it. (A store takes no "
+                       "density-connected segments: their cell map would miss rows arriving in new cells.)")
 @parameter_option("scaling", help="Put columns on a common scale (z-scores) before measuring distances, or use them as they are.")
 @parameter_option("weights", help="Column multipliers after scaling, e.g. litres=2.")
 @parameter_option("cell_budget", help="About how many grid cells the frozen grid aims for.")
@@ -117,14 +119,17 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
 
 def open_store_database(location: str, writable: bool = False) -> Engine:
     """The database keeping a store (engines.open_database: a DuckDB file, or PostgreSQL by its
-    postgresql:// URL). A DuckDB file another process is writing (a refresh running) gives StoreBusy.
+    postgresql:// URL). A DuckDB file another process holds open for writing (a refresh running, a duckdb
+    shell, any program) gives StoreBusy.
     """
     try:
         return open_database(location, writable=writable)
-    except DatabaseLocked as err:
+    except DatabaseLocked:
         if not writable:
             raise
-        raise store_api.StoreBusy(f"another refresh is running; nothing was changed ({err})") from None
+        raise store_api.StoreBusy(f"the database file {location} is locked by another process (maybe a refresh, or a "
+                                  "program such as a duckdb shell holding it open); nothing was changed: run again "
+                                  "once it is closed") from None
 
 
 @store_group.command("status")
@@ -159,8 +164,8 @@ def status_command(source, store_name, outside_warn, as_json) -> None:
         click.echo(f"settings kept by refreshes: k={kept.get('k')}, method {kept.get('method', 'kmeans')}, refine passes {kept.get('refine_passes')}, "
                    f"restarts {kept.get('n_init')}, seed {kept.get('seed')}, scaling {kept.get('scaling')}"
                    + (f", within {kept['within']}" if kept.get("within") else ""))
-        click.echo(f"tables: {st['cells_table']} (cells), {store_api.STORES}, {store_api.PARTS}, {store_api.LABELS}, "
-                   f"{store_api.store_history.HISTORY}")
+        click.echo(f"store {st['store']}: cells in {st['cells_table']}; registry in "
+                   f"{', '.join(t for t in st['tables'] if t != st['cells_table'])}")
         _echo_history(source, store_name)
         for w in st["warnings"]:
             click.echo(f"warning: {w}", err=True)
@@ -184,7 +189,8 @@ def _shown_columns(st: dict) -> list[str]:
 @click.option("--partitions", "partitions", multiple=True,
               help="Refresh only these partitions, skipping the fingerprint pass over the others: COLUMN=VALUE items, "
                    "comma-separated (e.g. day=2026-01-15,day=2026-01-16); values of one column are alternatives, "
-                   "different columns must all match.")
+                   "different columns must all match. Write values as `store status --json` lists them: NULL is SQL "
+                   "NULL, \"NULL\" (or 'NULL') the text. A value that matches no partition is said in a warning.")
 @click.option("--where", "where", help="Refresh only the partitions whose rows satisfy this SQL predicate on the "
               "partition columns alone (e.g. \"day >= DATE '2026-01-15'\"); no other column, function or subquery.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines.")
