@@ -66,6 +66,7 @@ from .sqlgen import (
     case_when,
     col,
     comment_of_statement,
+    join_table_name,
     describe_statement,
     greatest_of,
     least_of,
@@ -530,7 +531,7 @@ def _check_demos_own(con: duckdb.DuckDBPyConnection, path: Path, name: str, tabl
     """Refuse to replace ``name`` unless it is the demo's own table: marked DEMO_MARK, or unmarked from a version
     before the mark, recognised by ``_built_before_the_mark``."""
     kind = con.execute(list_tables_statement(named=name).sql(dialect="duckdb")).fetchall()[0][2]
-    comment = con.execute(comment_of_statement(name, "duckdb").sql(dialect="duckdb")).fetchall()
+    comment = con.execute(comment_of_statement(join_table_name([name]), "duckdb").sql(dialect="duckdb")).fetchall()
     if "VIEW" not in kind.upper() and comment and comment[0][0] == DEMO_MARK:
         return
     if "VIEW" not in kind.upper() and _built_before_the_mark(con, table):
@@ -628,7 +629,7 @@ def _build_demo_tables(path: Path, table: str, rows: int, days: int, seed: int, 
                 expression=_meters_table_select(meters, seed),
                 replace=True,
             ),
-            *(mark_statement(name, "table", DEMO_MARK, "duckdb") for name in (table, METERS_TABLE)),
+            *(mark_statement(join_table_name([name]), "table", DEMO_MARK, "duckdb") for name in (table, METERS_TABLE)),
         ]
         from .engines import duckdb_transaction
 
