@@ -388,3 +388,11 @@ def test_segment_within_with_a_categorical_column_and_its_labels_equal_duckdb(sp
     assert_same_within_model(got, ref)
     label(sparks, src, ref, "band_groups")
     assert_same_within_labels(ordered_rows(sparks, "band_groups"), want, engine_rows)
+
+
+def test_spark_finds_table_and_columns_in_any_case_and_the_model_keeps_their_own_names(sparks, duck, data):
+    """Spark resolves names case-insensitively by default (spark.sql.caseSensitive=false, from its documentation)."""
+    got = segment(sparks, Source.of_table(REGISTERED.upper()), [c.upper() for c in COLUMNS], Settings(**SETTINGS))
+    assert got.source == REGISTERED and list(got.columns) == COLUMNS
+    # reference: DuckDB on the same rows under their own names
+    assert_same_model(got, segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS)))
