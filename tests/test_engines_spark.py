@@ -440,3 +440,11 @@ def test_a_spark_session_tillite_starts_is_quiet_and_leaves_no_warehouse_folder(
     assert lines == []
     assert not (tmp_path / "spark-warehouse").exists()
     assert list(scratch.glob("tillite-spark-*")) == []  # the scratch folder (log settings, warehouse) went with the session
+
+
+def test_spark_finds_table_and_columns_in_any_case_and_the_model_keeps_their_own_names(sparks, duck, data):
+    """Spark resolves names case-insensitively by default (spark.sql.caseSensitive=false, from its documentation)."""
+    got = segment(sparks, Source.of_table(REGISTERED.upper()), [c.upper() for c in COLUMNS], Settings(**SETTINGS))
+    assert got.source == REGISTERED and list(got.columns) == COLUMNS
+    # reference: DuckDB on the same rows under their own names
+    assert_same_model(got, segment(duck, DUCK_SRC, COLUMNS, Settings(**SETTINGS)))

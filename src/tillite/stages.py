@@ -96,8 +96,13 @@ def resolve_table(engine: Engine, source: Source) -> Source:
     listed = {sqlgen.split_table_name(t) for t in engine.tables()}
     if source.table in listed:
         return source
-    candidates = {t[-n:] for t in listed if len(t) == n} or {t[-1:] for t in listed if n == 1 and len(t) == 2}
-    found = {t for t in candidates if all(target.resolve_name(g, [a]) is not None for g, a in zip(source.table, t))}
+
+    def matches(candidates: set[tuple[str, ...]]) -> set[tuple[str, ...]]:
+        return {t for t in candidates if all(target.resolve_name(g, [a]) is not None for g, a in zip(source.table, t))}
+
+    # a name as listed (DuckDB's main and PostgreSQL's public tables unqualified), else one in the listing's
+    # only schema (Spark lists the current database's tables as database.table)
+    found = matches({t for t in listed if len(t) == n}) or matches({t[-1:] for t in listed if n == 1 and len(t) == 2})
     return replace(source, table=found.pop()) if len(found) == 1 else source
 
 
