@@ -323,8 +323,7 @@ def _source_from_dict(data: dict) -> Source:
     return Source.of_files(data["files"], data["reader"])
 
 
-def _rows(got: dict[str, np.ndarray]) -> list[dict[str, Any]]:
-    return result_rows(got)
+_rows = result_rows  # a query's columns as rows of Python values
 
 
 # ----------------------------------------------------------------------------- partitions
