@@ -1209,8 +1209,6 @@ def refine_statement(
     per segment and category code (see ``CodeLookup``).
     """
     target = target_for(target)
-    if cell_map is not None:
-        return _refine_through_map(source, columns, assign, target, cell_map, lookups)
     inner, seg, best, v, norm = _assignment_layers(source, columns, assign, target, keep_source=False, cell_map=cell_map,
                                              lookups=lookups)
     codes = [internal(f"q{g}") for g in range(len(lookups))]
@@ -1223,75 +1221,6 @@ def refine_statement(
         fresh_select(fresh_alias(col(seg), "segment", quoted=True), *aggs)
         .from_(subquery(inner, internal("d")), copy=False)
         .group_by(col(seg), *[col(q) for q in codes], copy=False)  # no deep copy of an inline cell map
-    )
-
-
-def _refine_through_map(
-    source: Source, columns: Sequence[str], assign: Assignment, target: Target, cell_map: CellMap,
-    lookups: Sequence["CodeLookup"],
-) -> exp.Select:
-    """``refine_statement`` through a cell map: the rows are summed per (nearest centroid, cell code) first,
-    and only those sums meet the map.
-
-    Rows nearer the centroids than any mapped cell (``_keyed_rows``) have no code and fall into one
-    group per centroid, so the first GROUP BY has a few groups per mapped cell at most.  A join per
-    row cost DuckDB about as much as the whole pass again, mostly in handing on its output
-    (benchmarks/bench_cell_map.py); the sums join a few thousand rows.  A group whose cell maps to
-    segment m takes the sum of the distances to centroid m, summed in the first pass only when the
-    map holds a segment other than -1.
-    """
-    scored = _scored_rows(source, columns, assign, target, False, cell_map, True, lookups)
-    ids = assign.segment_ids()
-    carried = [*scored.codes, *scored.v, internal("ok"), *scored.score, internal("best"), internal("nearest"), internal("nrm")]
-    keyed = _keyed_rows(scored, cell_map, assign, target, carried, skip_near=not lookups)
-    map_names = cell_map.column_names()
-    keys = [internal(f"c{a}") for a in range(len(map_names) - 1)]
-    nearest, nrm = internal("segment"), col(internal("nrm"))
-    to_segment = any(sid >= 0 for sid in cell_map.segments)
-    sums = [
-        fresh_alias(scored.pick, nearest, quoted=True),
-        *[col(q) for q in scored.codes],
-        *[col(c) for c in keys],
-        fresh_alias(exp.Count(this=exp.Star()), "n", quoted=True),
-        *[fresh_alias(float_sum(col(n), target), f"ls{j}", quoted=True) for j, n in enumerate(scored.v)],
-        fresh_alias(float_sum(exp.Add(this=col(internal("best")), expression=nrm.copy()), target), "dist", quoted=True),
-        *([fresh_alias(float_sum(exp.Add(this=col(s_), expression=nrm.copy()), target), f"d{i}", quoted=True)
-           for i, s_ in enumerate(scored.score)] if to_segment else []),
-    ]
-    per_cell = (
-        fresh_select(*sums)
-        .from_(subquery(keyed, internal("k")), copy=False)
-        .group_by(exp.Literal.number(1), *[exp.Literal.number(2 + g) for g in range(len(scored.codes) + len(keys))], copy=False)
-    )
-    mseg = col(internal("mseg"))
-    unmapped = col(nearest) if cell_map.unmapped == "nearest" else num(-1)
-    segment = case_when(exp.Not(this=exp.Is(this=col(nearest), expression=exp.Null())),
-                        exp.Coalesce(this=mseg, expressions=[unmapped]))
-    # the summed distance to the segment each group lands in: NULL for -1 (the outlier group, noise)
-    nearest_known = exp.Not(this=exp.Is(this=col(nearest), expression=exp.Null()))
-    dist = exp.Case(
-        ifs=[exp.If(this=all_of([exp.Is(this=mseg.copy(), expression=exp.Null()), nearest_known.copy()]),
-                    true=col("dist") if cell_map.unmapped == "nearest" else exp.Null()),
-             *([exp.If(this=exp.EQ(this=mseg.copy(), expression=num(sid)), true=col(f"d{i}")) for i, sid in enumerate(ids)]
-               if to_segment else [])]
-    )
-    on = all_of([exp.EQ(this=col(c, internal("p")), expression=col(mn, internal("m"))) for c, mn in zip(keys, map_names)])
-    mapped = (
-        fresh_select(fresh_alias(segment, "segment", quoted=True), *[col(q) for q in scored.codes], col("n"),
-                   *[col(f"ls{j}") for j in range(len(scored.v))], fresh_alias(dist, "dist", quoted=True))
-        .from_(subquery(per_cell, internal("p")), copy=False)
-        .join(cell_map.relation(), on=on, join_type="LEFT", copy=False)
-    )
-    totals = [
-        *[fresh_alias(col(q), f"q{g}", quoted=True) for g, q in enumerate(scored.codes)],
-        fresh_alias(exp.cast(exp.Sum(this=col("n")), exp.DataType.build(exp.DataType.Type.BIGINT)), "n", quoted=True),
-        *[fresh_alias(float_sum(col(f"ls{j}"), target), f"ls{j}", quoted=True) for j in range(len(scored.v))],
-        fresh_alias(float_sum(col("dist"), target), "dist", quoted=True),
-    ]
-    return (
-        fresh_select(col("segment"), *totals)
-        .from_(subquery(mapped, internal("d")), copy=False)
-        .group_by(col("segment"), *[col(q) for q in scored.codes], copy=False)  # no deep copy of an inline cell map
     )
 
 
