@@ -404,7 +404,7 @@ def sample_statement(
     ).from_(rel)
     if by_filter is not None:
         inner = inner.where(by_filter)
-    outer = exp.select(*[col(n) for n in names + texts]).from_(subquery(inner, internal("s")), copy=False).where(usable_rows(names, target))
+    outer = exp.select(*[col(n) for n in names + texts]).from_(subquery(inner, internal("s"))).where(usable_rows(names, target))
     if limit is not None:
         outer = outer.limit(num(int(limit)))
     return outer
@@ -557,11 +557,11 @@ def cells_statement(
         v = u
     stage2 = exp.select(
         *[c.copy() for c in part_cols], *[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *summed
-    ).from_(subquery(stage1, internal("a")), copy=False)
+    ).from_(subquery(stage1, internal("a")))
     part_text = [exp.alias_(partition.key(), "part", quoted=True)] if partition is not None else []
     part_text += [col(f"q{i}") for i in range(len(extra_keys))]
     group = [*part_cols, *[col(n) for n in names]]
-    return exp.select(*part_text, *[col(n) for n in names], *_sums(v, target)).from_(subquery(stage2, internal("b")), copy=False).group_by(
+    return exp.select(*part_text, *[col(n) for n in names], *_sums(v, target)).from_(subquery(stage2, internal("b"))).group_by(
         *[c.copy() for c in group]
     )
 
@@ -591,7 +591,7 @@ def fingerprint_statement(
         inner = inner.where(where)
     return exp.select(
         exp.alias_(partition.key(), "part", quoted=True), *partition.value_columns(), col("rows"), col("fingerprint")
-    ).from_(subquery(inner, internal("f")), copy=False)
+    ).from_(subquery(inner, internal("f")))
 
 
 #: Dialects whose 64-bit row hash ``row_hash`` builds.
@@ -633,7 +633,7 @@ def row_text(columns: Sequence[str]) -> exp.Expression:
 def distinct_count_statement(source: Source, columns: Sequence[str], limit: int) -> exp.Select:
     """How many distinct combinations of ``columns`` the source holds, counting no further than ``limit``."""
     distinct = exp.select(*[col(c) for c in columns]).from_(source.relation()).distinct().limit(num(int(limit)))
-    return exp.select(exp.alias_(exp.Count(this=exp.Star()), "partitions", quoted=True)).from_(subquery(distinct, internal("d")), copy=False)
+    return exp.select(exp.alias_(exp.Count(this=exp.Star()), "partitions", quoted=True)).from_(subquery(distinct, internal("d")))
 
 
 #: Expression kinds a partition predicate (``refresh --where``) may hold: comparisons, logic,
@@ -1373,7 +1373,7 @@ def sample_by_filter(statement: exp.Expression) -> exp.Expression:
             continue
         table.set("sample", None)
         keep = exp.LT(this=exp.Rand(), expression=exp.Div(this=sample.args["percent"].copy(), expression=num(100.0)))
-        select.where(keep, copy=False)
+        select.where(keep)
     return out
 
 
@@ -1447,7 +1447,7 @@ def segment_names_column(select: exp.Select, segment: str, names: dict[int, str]
         cased = exp.case(col(segment))
         for sid, name in sorted(names.items()):
             cased = cased.when(num(int(sid)), exp.Literal.string(str(name)))
-    return exp.select(exp.Star(), exp.alias_(cased, alias, quoted=True)).from_(subquery(select, internal("n")), copy=False)
+    return exp.select(exp.Star(), exp.alias_(cased, alias, quoted=True)).from_(subquery(select, internal("n")))
 
 
 # --------------------------------------------------------------------------- the report in one scan
@@ -1475,7 +1475,7 @@ def report_rows_select(
     keep = list(dict.fromkeys(list(columns) + list(by)))
     return exp.select(
         *[col(c) for c in keep], exp.alias_(exp.cast(col(seg), exp.DataType.build(exp.DataType.Type.INT)), seg, quoted=True)
-    ).from_(subquery(inner, internal("d")), copy=False)
+    ).from_(subquery(inner, internal("d")))
 
 
 def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence[str]) -> exp.Select:
@@ -1502,7 +1502,7 @@ def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence
             exp.alias_(exp.Min(this=x.copy()), f"min{j}"),
             exp.alias_(exp.Max(this=x.copy()), f"max{j}"),
         ]
-    select = exp.select(*projections).from_(subquery(rows, internal("r")), copy=False)
+    select = exp.select(*projections).from_(subquery(rows, internal("r")))
     if len(by) <= 1:
         return select.group_by(seg.copy(), *[col(c) for c in by])
     sets = exp.GroupingSets(expressions=[exp.Tuple(expressions=[seg.copy(), col(c)]) for c in by])
@@ -1541,7 +1541,7 @@ def quartile_statement(rows: exp.Select, columns: Sequence[str], target: TargetL
         projections += [
             exp.alias_(sample_quantile(x.copy(), q, target), f"q{int(round(q * 100))}_{j}") for q in QUARTILES
         ]
-    return exp.select(*projections).from_(subquery(rows, internal("r")), copy=False).group_by(seg.copy())
+    return exp.select(*projections).from_(subquery(rows, internal("r"))).group_by(seg.copy())
 
 
 def sample_quantile(e: exp.Expression, q: float, target: TargetLike) -> exp.Expression:
