@@ -409,7 +409,7 @@ def sample_statement(
     ).from_(rel)
     if by_filter is not None:
         inner = inner.where(by_filter)
-    outer = exp.select(*[col(n) for n in names + texts]).from_(subquery(inner, internal("s")), copy=False).where(usable_rows(names, target))
+    outer = exp.select(*[col(n) for n in names + texts]).from_(subquery(inner, internal("s"))).where(usable_rows(names, target))
     if limit is not None:
         outer = outer.limit(num(int(limit)))
     return outer
@@ -562,11 +562,11 @@ def cells_statement(
         v = u
     stage2 = exp.select(
         *[c.copy() for c in part_cols], *[exp.alias_(k, n, quoted=True) for k, n in zip(keys, names)], *summed
-    ).from_(subquery(stage1, internal("a")), copy=False)
+    ).from_(subquery(stage1, internal("a")))
     part_text = [exp.alias_(partition.key(), "part", quoted=True)] if partition is not None else []
     part_text += [col(f"q{i}") for i in range(len(extra_keys))]
     group = [*part_cols, *[col(n) for n in names]]
-    return exp.select(*part_text, *[col(n) for n in names], *_sums(v, target)).from_(subquery(stage2, internal("b")), copy=False).group_by(
+    return exp.select(*part_text, *[col(n) for n in names], *_sums(v, target)).from_(subquery(stage2, internal("b"))).group_by(
         *[c.copy() for c in group]
     )
 
@@ -596,7 +596,7 @@ def fingerprint_statement(
         inner = inner.where(where)
     return exp.select(
         exp.alias_(partition.key(), "part", quoted=True), *partition.value_columns(), col("rows"), col("fingerprint")
-    ).from_(subquery(inner, internal("f")), copy=False)
+    ).from_(subquery(inner, internal("f")))
 
 
 #: Dialects whose 64-bit row hash ``row_hash`` builds.
@@ -638,7 +638,7 @@ def row_text(columns: Sequence[str]) -> exp.Expression:
 def distinct_count_statement(source: Source, columns: Sequence[str], limit: int) -> exp.Select:
     """How many distinct combinations of ``columns`` the source holds, counting no further than ``limit``."""
     distinct = exp.select(*[col(c) for c in columns]).from_(source.relation()).distinct().limit(num(int(limit)))
-    return exp.select(exp.alias_(exp.Count(this=exp.Star()), "partitions", quoted=True)).from_(subquery(distinct, internal("d")), copy=False)
+    return exp.select(exp.alias_(exp.Count(this=exp.Star()), "partitions", quoted=True)).from_(subquery(distinct, internal("d")))
 
 
 #: Expression kinds a partition predicate (``refresh --where``) may hold: comparisons, logic,
@@ -1226,8 +1226,6 @@ def refine_statement(
     per segment and category code (see ``CodeLookup``).
     """
     target = target_for(target)
-    if cell_map is not None:
-        return _refine_through_map(source, columns, assign, target, cell_map, lookups)
     inner, seg, best, v, norm = _assignment_layers(source, columns, assign, target, keep_source=False, cell_map=cell_map,
                                              lookups=lookups)
     codes = [internal(f"q{g}") for g in range(len(lookups))]
@@ -1241,76 +1239,6 @@ def refine_statement(
         fresh_select(fresh_alias(col(seg), "segment", quoted=True), *aggs)
         .from_(subquery(inner, internal("d")), copy=False)
         .group_by(col(seg), *[col(q) for q in codes], copy=False)  # no deep copy of an inline cell map
-    )
-
-
-def _refine_through_map(
-    source: Source, columns: Sequence[str], assign: Assignment, target: Target, cell_map: CellMap,
-    lookups: Sequence["CodeLookup"],
-) -> exp.Select:
-    """``refine_statement`` through a cell map: the rows are summed per (nearest centroid, cell code) first,
-    and only those sums meet the map.
-
-    Rows nearer the centroids than any mapped cell (``_keyed_rows``) have no code and fall into one
-    group per centroid, so the first GROUP BY has a few groups per mapped cell at most.  A join per
-    row cost DuckDB about as much as the whole pass again, mostly in handing on its output
-    (benchmarks/bench_cell_map.py); the sums join a few thousand rows.  A group whose cell maps to
-    segment m takes the sum of the distances to centroid m, summed in the first pass only when the
-    map holds a segment other than -1.
-    """
-    scored = _scored_rows(source, columns, assign, target, False, cell_map, True, lookups)
-    ids = assign.segment_ids()
-    carried = [*scored.codes, *scored.v, internal("ok"), *scored.score, internal("best"), internal("nearest"), internal("nrm")]
-    keyed = _keyed_rows(scored, cell_map, assign, target, carried, skip_near=not lookups)
-    map_names = cell_map.column_names()
-    keys = [internal(f"c{a}") for a in range(len(map_names) - 1)]
-    nearest, nrm = internal("segment"), col(internal("nrm"))
-    to_segment = any(sid >= 0 for sid in cell_map.segments)
-    sums = [
-        fresh_alias(scored.pick, nearest, quoted=True),
-        *[col(q) for q in scored.codes],
-        *[col(c) for c in keys],
-        fresh_alias(exp.Count(this=exp.Star()), "n", quoted=True),
-        *[fresh_alias(float_sum(exp.Mul(this=col(n), expression=num(float(s_))), target), f"ls{j}", quoted=True)
-          for j, (n, s_) in enumerate(zip(scored.v, assign.inv_scale))],
-        fresh_alias(float_sum(exp.Add(this=col(internal("best")), expression=nrm.copy()), target), "dist", quoted=True),
-        *([fresh_alias(float_sum(exp.Add(this=col(s_), expression=nrm.copy()), target), f"d{i}", quoted=True)
-           for i, s_ in enumerate(scored.score)] if to_segment else []),
-    ]
-    per_cell = (
-        fresh_select(*sums)
-        .from_(subquery(keyed, internal("k")), copy=False)
-        .group_by(exp.Literal.number(1), *[exp.Literal.number(2 + g) for g in range(len(scored.codes) + len(keys))], copy=False)
-    )
-    mseg = col(internal("mseg"))
-    unmapped = col(nearest) if cell_map.unmapped == "nearest" else num(-1)
-    segment = case_when(exp.Not(this=exp.Is(this=col(nearest), expression=exp.Null())),
-                        exp.Coalesce(this=mseg, expressions=[unmapped]))
-    # the summed distance to the segment each group lands in: NULL for -1 (the outlier group, noise)
-    nearest_known = exp.Not(this=exp.Is(this=col(nearest), expression=exp.Null()))
-    dist = exp.Case(
-        ifs=[exp.If(this=all_of([exp.Is(this=mseg.copy(), expression=exp.Null()), nearest_known.copy()]),
-                    true=col("dist") if cell_map.unmapped == "nearest" else exp.Null()),
-             *([exp.If(this=exp.EQ(this=mseg.copy(), expression=num(sid)), true=col(f"d{i}")) for i, sid in enumerate(ids)]
-               if to_segment else [])]
-    )
-    on = all_of([exp.EQ(this=col(c, internal("p")), expression=col(mn, internal("m"))) for c, mn in zip(keys, map_names)])
-    mapped = (
-        fresh_select(fresh_alias(segment, "segment", quoted=True), *[col(q) for q in scored.codes], col("n"),
-                   *[col(f"ls{j}") for j in range(len(scored.v))], fresh_alias(dist, "dist", quoted=True))
-        .from_(subquery(per_cell, internal("p")), copy=False)
-        .join(cell_map.relation(), on=on, join_type="LEFT", copy=False)
-    )
-    totals = [
-        *[fresh_alias(col(q), f"q{g}", quoted=True) for g, q in enumerate(scored.codes)],
-        fresh_alias(exp.cast(exp.Sum(this=col("n")), exp.DataType.build(exp.DataType.Type.BIGINT)), "n", quoted=True),
-        *[fresh_alias(float_sum(col(f"ls{j}"), target), f"ls{j}", quoted=True) for j in range(len(scored.v))],
-        fresh_alias(float_sum(col("dist"), target), "dist", quoted=True),
-    ]
-    return (
-        fresh_select(col("segment"), *totals)
-        .from_(subquery(mapped, internal("d")), copy=False)
-        .group_by(col("segment"), *[col(q) for q in scored.codes], copy=False)  # no deep copy of an inline cell map
     )
 
 
@@ -1464,7 +1392,7 @@ def sample_by_filter(statement: exp.Expression) -> exp.Expression:
             continue
         table.set("sample", None)
         keep = exp.LT(this=exp.Rand(), expression=exp.Div(this=sample.args["percent"].copy(), expression=num(100.0)))
-        select.where(keep, copy=False)
+        select.where(keep)
     return out
 
 
@@ -1538,7 +1466,7 @@ def segment_names_column(select: exp.Select, segment: str, names: dict[int, str]
         cased = exp.case(col(segment))
         for sid, name in sorted(names.items()):
             cased = cased.when(num(int(sid)), exp.Literal.string(str(name)))
-    return exp.select(exp.Star(), exp.alias_(cased, alias, quoted=True)).from_(subquery(select, internal("n")), copy=False)
+    return exp.select(exp.Star(), exp.alias_(cased, alias, quoted=True)).from_(subquery(select, internal("n")))
 
 
 # --------------------------------------------------------------------------- the report in one scan
@@ -1566,7 +1494,7 @@ def report_rows_select(
     keep = list(dict.fromkeys(list(columns) + list(by)))
     return exp.select(
         *[col(c) for c in keep], exp.alias_(exp.cast(col(seg), exp.DataType.build(exp.DataType.Type.INT)), seg, quoted=True)
-    ).from_(subquery(inner, internal("d")), copy=False)
+    ).from_(subquery(inner, internal("d")))
 
 
 def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence[str], center: Sequence[float] = (),
@@ -1599,7 +1527,7 @@ def report_scan_statement(rows: exp.Select, columns: Sequence[str], by: Sequence
             exp.alias_(exp.Min(this=x.copy()), f"min{j}"),
             exp.alias_(exp.Max(this=x.copy()), f"max{j}"),
         ]
-    select = exp.select(*projections).from_(subquery(rows, internal("r")), copy=False)
+    select = exp.select(*projections).from_(subquery(rows, internal("r")))
     if len(by) <= 1:
         return select.group_by(seg.copy(), *[col(c) for c in by])
     sets = exp.GroupingSets(expressions=[exp.Tuple(expressions=[seg.copy(), col(c)]) for c in by])
@@ -1638,7 +1566,7 @@ def quartile_statement(rows: exp.Select, columns: Sequence[str], target: TargetL
         projections += [
             exp.alias_(sample_quantile(x.copy(), q, target), f"q{int(round(q * 100))}_{j}") for q in QUARTILES
         ]
-    return exp.select(*projections).from_(subquery(rows, internal("r")), copy=False).group_by(seg.copy())
+    return exp.select(*projections).from_(subquery(rows, internal("r"))).group_by(seg.copy())
 
 
 def sample_quantile(e: exp.Expression, q: float, target: TargetLike) -> exp.Expression:
