@@ -99,6 +99,7 @@ OTHER_METHOD_CASES = [
     (["--method", "density", "--leaf-capacity", 10], ["--leaf-capacity", "--method kmeans or ward"]),
     (["--method", "density", "--keep-outliers"], ["--keep-outliers", "--method kmeans or ward"]),
     (["--method", "density", "--within", "part"], ["--within", "--method kmeans or ward"]),
+    (["--k", 3, "--k-rule", "bic"], ["--k-rule", "--k auto", "--k 3"]),  # a fixed k leaves nothing to choose
 ]
 
 
@@ -127,6 +128,16 @@ def test_every_method_specific_parameter_is_refused_by_the_api_with_another_meth
                 Settings(k=0 if method == "density" else 2, method=method, **{name: value}).check(["a"])
             assert "method" in err.value.parameters
     Settings(k=0, method="density", adjacency="distance", radius=0.5, noise="drop", min_count=5.0).check(["a"])
+
+
+def test_k_rule_is_refused_with_a_fixed_k_and_taken_with_candidates():
+    from tillite.errors import ParameterError
+    from tillite.settings import Settings
+
+    with pytest.raises(ParameterError, match="nothing to choose") as err:
+        Settings(k=3, k_rule="bic").check(["a"])
+    assert err.value.parameters[0] == "k_rule"
+    Settings(k=0, k_candidates=(2, 3, 4), k_rule="bic").check(["a"])
 
 
 def test_store_build_help_lists_only_the_methods_a_store_takes():

@@ -198,6 +198,9 @@ class Settings:
             if p.needs and getattr(self, p.needs[0]) != p.needs[1]:
                 raise ParameterError(f"{{{name}}} is used only with {{{p.needs[0]}}} {p.needs[1]}; add "
                                      f"{{{p.needs[0]}}} {p.needs[1]} or leave {{{name}}} out", name, p.needs[0])
+        if "k_rule" in named and self.method != "density" and not self.k_candidates:
+            raise ParameterError(f"{{k_rule}} chooses among several k ({{k}} auto or a range like 2..8); with {{k}} "
+                                 f"{self.k} there is nothing to choose: leave {{k_rule}} out", "k_rule", "k")
 
     def _check_k(self) -> None:
         if self.method == "density" and (self.k or self.k_candidates):
