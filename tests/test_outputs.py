@@ -157,6 +157,26 @@ def test_store_build_out_refuses_the_database_and_the_db_file(sources, tmp_path)
     assert not store_db.exists()  # refused before anything was made
 
 
+def test_outputs_refuse_a_pipe_and_a_device_without_opening_them(sources, tmp_path):
+    pipe = tmp_path / "pipe"
+    os.mkfifo(pipe)
+    result = run_cli("segment", sources["db"], "-t", "points", *SEGMENT, "--out", pipe)  # opening it would block
+    assert_one_error_line(result, "--out", str(pipe), "not a regular file")
+    assert_one_error_line(run_cli("report", sources["db"], "-t", "points", "--model", sources["model"], "--out", pipe),
+                          "--out", str(pipe), "not a regular file")
+    with pytest.raises(outputs.OutputRefused, match="not a regular file"):
+        outputs.check_output("/dev/null", "--out", outputs.MODEL_FILE)  # refused before anything touches it
+    assert os.path.exists("/dev/null") and not os.path.isfile("/dev/null")
+
+
+def test_store_build_db_refuses_a_file_that_is_not_duckdb(sources):
+    for not_duckdb in (sources["parquet"], sources["csv"]):
+        before = unchanged([not_duckdb])
+        result = run_cli("store", "build", sources["parquet"], "--db", not_duckdb, "--columns", "a,b", "--k", "2", "-q")
+        assert_one_error_line(result, "--db", str(not_duckdb), "not a DuckDB database")
+        assert unchanged([not_duckdb]) == before
+
+
 # ----------------------------------------------------------------------------- demo
 
 
@@ -195,6 +215,24 @@ def test_demo_rebuild_refuses_a_users_table_naming_it_and_keeps_its_row(tmp_path
     result = run_cli("demo", "--db", db, *DEMO, "--rebuild", "--out", tmp_path / "m.json")
     assert_one_error_line(result, "--db", str(db), "table meter_days", "not made by the demo")
     assert fetch_rows(db, "SELECT * FROM meter_days") == [(1,)]  # DuckDB read straight from the file
+
+
+def test_demo_without_rebuild_refuses_a_users_table_instead_of_reusing_it(tmp_path):
+    db = tmp_path / "user.duckdb"
+    with duckdb_file(db) as con:
+        con.execute("CREATE TABLE meter_days (precious INTEGER); INSERT INTO meter_days VALUES (1)")
+    result = run_cli("demo", "--db", db, *DEMO, "--out", tmp_path / "m.json")
+    assert_one_error_line(result, "--db", str(db), "table meter_days", "not made by the demo")
+    assert fetch_rows(db, "SELECT * FROM meter_days") == [(1,)]
+
+
+def test_demo_builds_its_tables_in_a_database_that_holds_neither(tmp_path):
+    db = tmp_path / "other.duckdb"
+    with duckdb_file(db) as con:
+        con.execute("CREATE SCHEMA s; CREATE TABLE s.meter_days (a INTEGER)")
+    assert run_cli("demo", "--db", db, *DEMO, "--out", tmp_path / "m.json").exit_code == 0
+    assert fetch_rows(db, "SELECT count(*) FROM meter_days") == [(2_000,)]
+    assert fetch_rows(db, "SELECT count(*) FROM s.meter_days") == [(0,)]  # the user's table in another schema untouched
 
 
 def test_demo_rebuild_replaces_its_own_tables(tmp_path):

@@ -618,3 +618,20 @@ def test_sse_without_a_refine_pass_is_labelled_a_cell_based_estimate_not_row_lev
     u = (np.column_stack([rows["a"], rows["b"]]) - np.asarray(refined.center)) / np.asarray(refined.scale)
     own = np.asarray(refined.centroids_scaled)[[refined.segment_ids().index(s) for s in seg]]
     assert float(((u - own) ** 2).sum()) == pytest.approx(refined.sse, rel=1e-9)
+
+
+def test_a_segment_whose_rows_all_hold_one_value_reads_exactly_that_mean_and_a_zero_sd(tmp_path, open_engine):
+    """Means come back from centred, scaled sums; a segment of constant rows must not read the round-off
+    (centre + (-centre / scale) * scale is about 1e-13 off).  Reference: numpy's mean and sd of the same rows."""
+    rng = np.random.default_rng(3)
+    zeros = np.column_stack([rng.normal(0, 1, 300), np.zeros(300)])
+    busy = np.column_stack([rng.normal(40, 1, 300), rng.normal(7.3, 2.1, 300)])
+    x = np.vstack([zeros, busy])
+    path = write_table(tmp_path / "z.duckdb", "points", columns_of(x, ["a", "hours"]))
+    engine = open_engine(path)
+    src = Source.of_table("points")
+    model = segment(engine, src, ["a", "hours"], Settings(k=2, seed=0))
+    stats = R.segment_statistics(engine, src, model)
+    flat = [st["columns"]["hours"] for st in stats.values() if st["columns"]["hours"]["max"] == 0.0]
+    assert len(flat) == 1
+    assert flat[0]["mean"] == np.zeros(300).mean() == 0.0 and flat[0]["sd"] == np.zeros(300).std() == 0.0

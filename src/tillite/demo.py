@@ -59,6 +59,7 @@ import duckdb
 from sqlglot import exp
 
 from .errors import EngineError, ParameterError
+from .outputs import DUCKDB_MAGIC
 from .sqlgen import (
     OWNED_MARK,
     Source,
@@ -80,6 +81,7 @@ from .sqlgen import (
 )
 
 __all__ = [
+    "demo_tables_present",
     "DEMO_COLUMNS",
     "DISTRICTS",
     "KINDS",
@@ -522,7 +524,7 @@ def check_demo_database_file(path: str | os.PathLike[str]) -> None:
             header = fh.read(12)
     except OSError as err:
         raise ParameterError(f"{{path}} {path} cannot be read: {err.strerror}", "path") from None
-    if header[8:12] != b"DUCK":  # DuckDB's magic bytes follow the 8-byte checksum of its main header
+    if header[8:12] != DUCKDB_MAGIC:  # DuckDB's magic bytes follow the 8-byte checksum of its main header
         raise ParameterError(f"{{path}} {path} exists and is not a DuckDB database; the demo builds its tables only in a "
                              "DuckDB file and never writes over another file: give another {path}", "path")
 
@@ -603,6 +605,28 @@ def build_demo_database(
             return _build_demo_tables(path, table, rows, days, seed, meters, replace)
     except EngineError as err:  # DuckDB's own line (a damaged file, a full disk), said with the file it is about
         raise type(err)(f"demo database {path}: {err}", err.sqlstate) from None
+
+
+def demo_tables_present(path: str | os.PathLike[str], table: str = "meter_days") -> bool:
+    """Whether the DuckDB file at ``path`` already holds the demo's own tables (both), so a run may reuse them.
+
+    False when it holds neither (the demo builds them).  A table of either name that the demo did not make
+    is refused in one line naming it, as ``--rebuild`` refuses it; so is one table without the other.
+    """
+    path = Path(path)
+    if not path.exists():
+        return False
+    con = _connect(str(path))
+    try:
+        existing = [name for name in (table, METERS_TABLE) if _table_exists(con, name)]
+        for name in existing:
+            _check_demos_own(con, path, name, table)
+    finally:
+        con.close()
+    if len(existing) == 1:
+        raise ParameterError(f"{{path}} {path} holds the demo's table {existing[0]} without its partner; "
+                             "give --rebuild to make both again", "path")
+    return bool(existing)
 
 
 def _build_demo_tables(path: Path, table: str, rows: int, days: int, seed: int, meters: int, replace: bool) -> DemoSummary:

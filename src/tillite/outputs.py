@@ -26,7 +26,7 @@ from typing import Sequence
 
 from .errors import InputError
 
-__all__ = ["MODEL_FILE", "REPORT", "REPORT_MARKER", "OutputRefused", "check_output", "kind_of_file", "is_input"]
+__all__ = ["MODEL_FILE", "REPORT", "REPORT_MARKER", "OutputRefused", "check_output", "check_duckdb_file", "kind_of_file", "is_input"]
 
 MODEL_FILE = "model file"
 REPORT = "report"
@@ -43,6 +43,9 @@ _OLD_HTML_HEAD = '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
 _OLD_HTML_TAIL = "no row left it.</small></p></body></html>"
 _OLD_MD_HEAD = "# Segments of "
 _OLD_MD_SECTION = "Profile (segment mean; sd from the overall mean)"
+
+#: DuckDB's magic bytes, after the 8-byte checksum at the start of its database files.
+DUCKDB_MAGIC = b"DUCK"
 
 #: How much of a file's start and end is read to recognise a report by its marker.
 _PEEK = 4096
@@ -75,11 +78,32 @@ def check_output(path: str | os.PathLike[str], option: str, kind: str,
         raise OutputRefused(f"folder {folder} for {option} {path} does not exist")
     if not path.exists() and not path.is_symlink():
         return
+    if path.exists() and not path.is_file():  # a device, pipe or socket: never opened, never replaced by a file
+        raise OutputRefused(f"{option} {path} is not a regular file (a device, pipe or socket); give a file name")
     found = kind_of_file(path)
     if found != kind and found != "empty":
         said = f"a tillite {found}" if found else f"not a {kind} tillite wrote"
         raise OutputRefused(f"{option} {path} exists and is {said}; tillite replaces only its own earlier {kind}s: "
                             f"choose another {option} (or move that file away)")
+
+
+def check_duckdb_file(path: str | os.PathLike[str], option: str) -> None:
+    """Refuse, in one line naming ``option``, an existing ``path`` that is not a DuckDB database file (its
+    header's magic bytes): tillite keeps what it writes there (a store) only in DuckDB files.  A missing file
+    is fine (DuckDB creates it)."""
+    path = Path(path)
+    if not path.exists():
+        return
+    if not path.is_file():
+        raise OutputRefused(f"{option} {path} is not a file; give a DuckDB database file")
+    try:
+        with path.open("rb") as fh:
+            header = fh.read(12)
+    except OSError as err:
+        raise OutputRefused(f"{option} {path} cannot be read: {err.strerror}") from None
+    if header[8:12] != DUCKDB_MAGIC:
+        raise OutputRefused(f"{option} {path} exists and is not a DuckDB database; tillite writes only into DuckDB "
+                            f"database files and never over another file: give another {option}")
 
 
 def kind_of_file(path: str | os.PathLike[str]) -> str | None:

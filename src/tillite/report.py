@@ -184,14 +184,19 @@ def _pooled_statistics(got: dict[str, np.ndarray], model: Model, rows: Sequence[
             mean = np.array([_float(got[f"mean{j}"][i]) for i in idx], dtype=np.float64)
             sd = np.array([_float(got[f"sd{j}"][i]) for i in idx], dtype=np.float64)
             mu, spread = pooled_mean_sd(n, mean, sd)
-            per[name] = {
-                "mean": float(model.center[j]) + mu * float(model.scale[j]),
-                "sd": spread * float(model.scale[j]),
-                "min": min(_float(got[f"min{j}"][i]) for i in idx),
-                "max": max(_float(got[f"max{j}"][i]) for i in idx),
-            }
+            lo, hi = min(_float(got[f"min{j}"][i]) for i in idx), max(_float(got[f"max{j}"][i]) for i in idx)
+            per[name] = {"mean": _within(float(model.center[j]) + mu * float(model.scale[j]), lo, hi),
+                         "sd": 0.0 if lo == hi else spread * float(model.scale[j]), "min": lo, "max": hi}
         out[int(sid)] = {"n": int(total), "columns": per}
     return out
+
+
+def _within(mean: float, lo: float | None, hi: float | None) -> float:
+    """A mean moved back to the column's units, kept inside the rows' own min and max: a segment whose rows are
+    all 0 reads 0, not the round-off of centre + (-centre / scale) * scale (about 1e-13)."""
+    if lo is None or hi is None:
+        return mean
+    return min(max(mean, lo), hi)
 
 
 def _ranked_breakdown(

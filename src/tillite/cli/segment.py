@@ -351,7 +351,7 @@ def demo_command(db_path, rows, days, seed, k, out, rebuild, report_path, quiet)
         check_output(page, "--report", REPORT, [("the database (--db)", db_path), ("the model file (--out)", out)])
         demo.check_demo_database_file(db_path)
         progress = progress_printer(quiet)
-        if rebuild or not Path(db_path).exists():
+        if rebuild or not demo.demo_tables_present(db_path):
             t0 = time.perf_counter()
             info = demo.build_demo_database(db_path, rows=rows, days=days, seed=seed, replace=True)
             progress("demo", f"built {db_path}: {info.rows:,} meter-days of {info.meters:,} meters, {time.perf_counter() - t0:.2f} s")

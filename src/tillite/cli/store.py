@@ -10,7 +10,7 @@ from typing import TYPE_CHECKING
 
 from ..errors import DatabaseLocked
 from ..lazy import lazy_module, lazy_name
-from ..outputs import MODEL_FILE
+from ..outputs import MODEL_FILE, check_duckdb_file
 from ..settings import STORE_METHODS
 from .shared import check_output, source_inputs, categorical_columns, parameter_option, parse_weights, progress_printer, refuse_table_for_files, split_columns, user_errors
 
@@ -99,6 +99,8 @@ def build_command(source, table, columns, partition_by, store_name, database, k,
         refuse_table_for_files(source, table)
         if is_file_source(source) and not database:
             raise click.UsageError("a store over files needs --db, the DuckDB file that keeps it")
+        if database:
+            check_duckdb_file(database, "--db")
         if out:
             check_output(out, "--out", MODEL_FILE, [*source_inputs(source), ("the database that keeps the store (--db)", database)])
         with open_source(source, table, writable=True, database=database) as (engine, src):
