@@ -18,7 +18,7 @@ import pytest
 from sklearn.datasets import make_blobs
 
 
-from conftest import altered_copy, assert_one_error_line, run_cli, write_table
+from conftest import altered_copy, assert_one_error_line, duckdb_file, run_cli, write_table
 
 
 @pytest.fixture(scope="module")
@@ -402,3 +402,36 @@ def test_a_group_without_a_command_still_shows_its_help_not_an_error_line(args):
     res = run_cli(*args)
     shown = res.stdout + res.stderr
     assert "Usage:" in shown and "Commands:" in shown and "Error:" not in shown
+
+
+def test_sql_stage_refine_of_a_density_model_is_refused_in_one_line(bad_inputs_db, tmp_path):
+    out = tmp_path / "dens.json"
+    assert run_cli("segment", bad_inputs_db, "-t", "points", "-c", "a,b", "--method", "density", "-o", out, "-q").exit_code == 0
+    res = run_cli("sql", bad_inputs_db, "-t", "points", "--model", out, "--stage", "refine")
+    assert_one_error_line(res, "--stage refine", "density", "no refine pass")
+    assert run_cli("sql", bad_inputs_db, "-t", "points", "--model", out, "--stage", "label").exit_code == 0
+
+
+def test_report_by_a_missing_column_lists_the_tables_columns_not_tillites_derived_ones(bad_inputs_db, tmp_path):
+    with duckdb_file(bad_inputs_db) as con:
+        con.execute("CREATE OR REPLACE TABLE zoned AS SELECT *, CASE WHEN id % 2 = 0 THEN 'n' ELSE 's' END AS zone FROM points")
+    out = tmp_path / "cat.json"
+    assert run_cli("segment", bad_inputs_db, "-t", "zoned", "-c", "a,b", "--categorical", "zone", "--k", 2, "-o", out, "-q").exit_code == 0
+    res = run_cli("report", bad_inputs_db, "-t", "zoned", "--model", out, "--by", "nosuch", "--out", tmp_path / "r.html")
+    assert_one_error_line(res, "--by", "nosuch", "columns there: id, a, b, c, part, zone")
+    assert "zone=" not in res.output and "__tillite" not in res.output
+
+
+@pytest.mark.parametrize("into,needles", [
+    ("a.b.c", ["--into a.b.c", "schema b of database a does not exist"]),
+    ("a.b.c.d", ["--into a.b.c.d", "4 parts"]),
+])
+def test_label_into_a_missing_database_or_too_many_parts_is_one_line(bad_inputs_db, model, into, needles):
+    assert_one_error_line(run_cli("label", bad_inputs_db, "-t", "points", "--model", model, "--into", into), *needles)
+
+
+def test_label_into_database_schema_name_works(bad_inputs_db, model):
+    res = run_cli("label", bad_inputs_db, "-t", "points", "--model", model, "--into", "bad.main.three_part_labels", "-q")
+    assert res.exit_code == 0, res.output
+    with duckdb_file(bad_inputs_db) as con:  # DuckDB's catalog read straight from the file
+        assert con.execute("SELECT count(*) FROM main.three_part_labels").fetchone()[0] == 900

@@ -388,11 +388,15 @@ def check_into_schema(engine: Engine, into: str) -> None:
     """A schema.name --into whose schema does not exist: said naming --into, before any database error
     (targets whose information_schema.schemata lists them; Spark's catalog answers for itself)."""
     parts = sqlgen.split_table_name(into)
-    if len(parts) != 2 or not engine.target.lists_schemata:
+    if len(parts) > 3:
+        raise ParameterError(f"{{into}} {into} has {len(parts)} parts; give name, schema.name or database.schema.name", "into")
+    if len(parts) == 1 or not engine.target.lists_schemata:
         return
-    got = engine.query(sqlgen.schema_count_statement(parts[0], fold_case=engine.target.folds_schema_names))
+    catalog = parts[0] if len(parts) == 3 else None
+    got = engine.query(sqlgen.schema_count_statement(parts[-2], fold_case=engine.target.folds_schema_names, catalog=catalog))
     if not int(got["n"][0]):
-        raise ParameterError(f"{{into}} {into}: schema {parts[0]} does not exist; create it first or choose another {{into}}",
+        where = f"schema {parts[1]} of database {parts[0]}" if catalog is not None else f"schema {parts[0]}"
+        raise ParameterError(f"{{into}} {into}: {where} does not exist; create it first or choose another {{into}}",
                              "into")
 
 

@@ -191,6 +191,14 @@ def _pooled_statistics(got: dict[str, np.ndarray], model: Model, rows: Sequence[
     return out
 
 
+def refuse_missing_by(by: Sequence[str], present: Sequence[str], source: Source, label: str) -> None:
+    """One line naming the --by columns the source lacks, listing its own columns (not the ones tillite derives)."""
+    missing = [c for c in by if c not in present]
+    if missing:
+        shown = [c for c in present if c not in source.derived_names()]
+        raise TilliteError(f"--by column {', '.join(missing)} not found in {label}; columns there: {', '.join(shown)}")
+
+
 def _within(mean: float, lo: float | None, hi: float | None) -> float:
     """A mean moved back to the column's units, kept inside the rows' own min and max: a segment whose rows are
     all 0 reads 0, not the round-off of centre + (-centre / scale) * scale (about 1e-13)."""
@@ -639,9 +647,7 @@ def _report_of_model(
     source = model_source(engine, source, model)  # categorical columns: their indicators' means are the shares
     present = check_columns(engine, source, list(model.columns), chosen=False)
     by = breakdown_columns(engine, by, present)
-    missing = [c for c in by if c not in present]
-    if missing:
-        raise TilliteError(f"--by column {', '.join(missing)} not found in {source.label}; columns there: {', '.join(present)}")
+    refuse_missing_by(by, present, source, source.label)
     if model.within:
         if labels:
             raise TilliteError("--labels is not taken with a model of segments within groups (segment --within) yet; "
@@ -699,9 +705,7 @@ def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress
     source = model_source(engine, info.source, info.model)  # categorical columns: their indicators' means are the shares
     present = check_columns(engine, source, list(info.model.columns), chosen=False)
     by = breakdown_columns(engine, by, present)
-    missing = [c for c in by if c not in present]
-    if missing:
-        raise TilliteError(f"--by column {', '.join(missing)} not found in {info.source.label}; columns there: {', '.join(present)}")
+    refuse_missing_by(by, present, source, info.source.label)
     if info.model.within:  # one section per group, each with the map its refresh kept, as `segment --within`'s file
         content = within_report(engine, info.source, info.model, by, progress)
         content["header"]["store"] = store

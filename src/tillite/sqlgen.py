@@ -745,18 +745,24 @@ def select_where(table: str, where: exp.Expression | None = None, columns: Seque
     return sel.where(where) if where is not None else sel
 
 
-def schema_count_statement(schema: str, fold_case: bool) -> exp.Select:
-    """SELECT count(*) AS n of information_schema.schemata named ``schema``.
+def schema_count_statement(schema: str, fold_case: bool, catalog: str | None = None) -> exp.Select:
+    """SELECT count(*) AS n of information_schema.schemata named ``schema`` (in ``catalog``, when given).
 
     ``fold_case`` (DuckDB): compared case-insensitively, as DuckDB resolves names, and an attached
     database's name counts too (DuckDB reads ``db.name`` as that database's default schema).
     """
-    value: exp.Expression = exp.Literal.string(schema)
-    if not fold_case:
-        where: exp.Expression = exp.EQ(this=exp.column("schema_name"), expression=value)
+    def same(column: str, text: str) -> exp.Expression:
+        value: exp.Expression = exp.Literal.string(text)
+        if fold_case:
+            return exp.EQ(this=exp.Lower(this=exp.column(column)), expression=exp.Lower(this=value))
+        return exp.EQ(this=exp.column(column), expression=value)
+
+    if catalog is not None:
+        where: exp.Expression = exp.and_(same("catalog_name", catalog), same("schema_name", schema))
+    elif not fold_case:
+        where = same("schema_name", schema)
     else:
-        where = exp.or_(*(exp.EQ(this=exp.Lower(this=exp.column(c)), expression=exp.Lower(this=value.copy()))
-                          for c in ("schema_name", "catalog_name")))
+        where = exp.or_(same("schema_name", schema), same("catalog_name", schema))
     return (exp.select(exp.Count(this=exp.Star()).as_("n"))
             .from_(exp.table_("schemata", db="information_schema"))
             .where(where))

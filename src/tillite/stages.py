@@ -46,9 +46,11 @@ def quiet_progress(stage: str, message: str) -> None:
 # ----------------------------------------------------------------------------- checks
 
 
-def columns_there(described: Sequence[tuple[str, str]]) -> str:
-    """A source's columns with their types, as error lines list them: "a (DOUBLE), district (VARCHAR)"."""
-    return ", ".join(f"{n} ({t})" for n, t in described)
+def columns_there(described: Sequence[tuple[str, str]], source: Source | None = None) -> str:
+    """A source's columns with their types, as error lines list them: "a (DOUBLE), district (VARCHAR)";
+    without the columns tillite derives on the way (``source``'s indicators and category codes)."""
+    hidden = set(source.derived_names()) if source is not None else set()
+    return ", ".join(f"{n} ({t})" for n, t in described if n not in hidden)
 
 
 def check_columns(engine: Engine, source: Source, columns: Sequence[str], chosen: bool = True) -> list[str]:
@@ -67,7 +69,7 @@ def check_columns(engine: Engine, source: Source, columns: Sequence[str], chosen
     missing = [c for c in columns if c not in types]
     if missing:
         raise SourceError(f"{'column' if len(missing) == 1 else 'columns'} {', '.join(missing)} not found in {source.label}; "
-                          f"columns there: {columns_there(described)}")
+                          f"columns there: {columns_there(described, source)}")
     for c in columns:
         if not is_numeric_type(types[c]) and source.files and not engine_has_rows(engine, source):
             raise InputError(f"{source.label} has no rows (a header only?)")
@@ -1248,7 +1250,7 @@ def check_model_columns(engine: Engine, source: Source, model: Model, where: str
         needed.append((model.within["column"], "--within group"))
     for column, role in needed:
         if engine.target.resolve_name(column, names, typed=False) is None:
-            raise SourceError(f"{role} column {column} of {where} not found in {source.label}; columns there: {columns_there(described)}")
+            raise SourceError(f"{role} column {column} of {where} not found in {source.label}; columns there: {columns_there(described, source)}")
     for spec in model.categorical:  # its categories are cast to the model's type, then compared with the column
         cat.check_sql_type(spec["type"], f"categorical column {spec['column']}")
         have = types[engine.target.resolve_name(spec["column"], names, typed=False)]

@@ -73,7 +73,7 @@ def check_within(engine: Engine, source: Source, columns: Sequence[str], within:
     described = engine.describe(source)
     types = dict(described)
     if within not in types:
-        raise SourceError(f"--within column {within} not found in {source.label}; columns there: {columns_there(described)}")
+        raise SourceError(f"--within column {within} not found in {source.label}; columns there: {columns_there(described, source)}")
     return types[within]
 
 

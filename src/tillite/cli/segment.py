@@ -281,6 +281,11 @@ def _stage_statements(engine, src, cols, source_columns, stage, model, target, c
     if model is None:
         raise click.UsageError(f"--stage {stage} needs --model")
     model.refuse_within(f"tillite sql --stage {stage}")
+    if stage == "refine" and model.method == "density":
+        from ..model import ModelError
+
+        raise ModelError("--stage refine: a --method density model runs no refine pass (its segments come from "
+                         "its cells); --stage label prints how its rows are labelled")
     assign, lookups = model.assignment(), []
     if model.categorical:  # the numeric columns' scores plus one lookup per categorical column, as segment and label run them
         from ..categorical import code_names, indicator_positions, specs_of
