@@ -59,7 +59,7 @@ import duckdb
 from sqlglot import exp
 
 from .errors import EngineError, ParameterError
-from .outputs import DUCKDB_MAGIC
+from .outputs import has_duckdb_header
 from .sqlgen import (
     OWNED_MARK,
     Source,
@@ -520,11 +520,10 @@ def check_demo_database_file(path: str | os.PathLike[str]) -> None:
     if not path.exists():
         return
     try:
-        with path.open("rb") as fh:
-            header = fh.read(12)
+        duckdb_file = has_duckdb_header(path)
     except OSError as err:
         raise ParameterError(f"{{path}} {path} cannot be read: {err.strerror}", "path") from None
-    if header[8:12] != DUCKDB_MAGIC:  # DuckDB's magic bytes follow the 8-byte checksum of its main header
+    if not duckdb_file:
         raise ParameterError(f"{{path}} {path} exists and is not a DuckDB database; the demo builds its tables only in a "
                              "DuckDB file and never writes over another file: give another {path}", "path")
 

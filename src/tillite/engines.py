@@ -26,6 +26,7 @@ from sqlglot import exp
 
 from . import sqlgen
 from .errors import DatabaseLocked, EngineError, MissingExtraError, SourceError, TilliteError, TransactionConflict
+from .outputs import has_duckdb_header
 from .sqlgen import Source
 from .targets import Target, target_for
 
@@ -1043,7 +1044,6 @@ def _not_spark_source(location: str) -> str:
 def _is_duckdb_file(location: str) -> bool:
     """A DuckDB database file: its header holds DUCK at byte 8."""
     try:
-        with open(location, "rb") as f:
-            return f.read(12)[8:12] == b"DUCK"
+        return has_duckdb_header(location)
     except OSError:
         return False

@@ -26,7 +26,7 @@ from typing import Sequence
 
 from .errors import InputError
 
-__all__ = ["MODEL_FILE", "REPORT", "REPORT_MARKER", "OutputRefused", "check_output", "check_duckdb_file", "kind_of_file", "is_input"]
+__all__ = ["MODEL_FILE", "REPORT", "REPORT_MARKER", "OutputRefused", "check_output", "check_duckdb_file", "has_duckdb_header", "kind_of_file", "is_input"]
 
 MODEL_FILE = "model file"
 REPORT = "report"
@@ -87,6 +87,13 @@ def check_output(path: str | os.PathLike[str], option: str, kind: str,
                             f"choose another {option} (or move that file away)")
 
 
+def has_duckdb_header(path: str | os.PathLike[str]) -> bool:
+    """Whether the file at ``path`` starts as a DuckDB database does (DUCKDB_MAGIC after the 8-byte checksum of
+    its main header).  OSError when it cannot be read."""
+    with open(path, "rb") as fh:
+        return fh.read(12)[8:12] == DUCKDB_MAGIC
+
+
 def check_duckdb_file(path: str | os.PathLike[str], option: str) -> None:
     """Refuse, in one line naming ``option``, an existing ``path`` that is not a DuckDB database file (its
     header's magic bytes): tillite keeps what it writes there (a store) only in DuckDB files.  A missing file
@@ -97,11 +104,10 @@ def check_duckdb_file(path: str | os.PathLike[str], option: str) -> None:
     if not path.is_file():
         raise OutputRefused(f"{option} {path} is not a file; give a DuckDB database file")
     try:
-        with path.open("rb") as fh:
-            header = fh.read(12)
+        duckdb_file = has_duckdb_header(path)
     except OSError as err:
         raise OutputRefused(f"{option} {path} cannot be read: {err.strerror}") from None
-    if header[8:12] != DUCKDB_MAGIC:
+    if not duckdb_file:
         raise OutputRefused(f"{option} {path} exists and is not a DuckDB database; tillite writes only into DuckDB "
                             f"database files and never over another file: give another {option}")
 

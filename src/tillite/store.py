@@ -323,7 +323,6 @@ def _source_from_dict(data: dict) -> Source:
     return Source.of_files(data["files"], data["reader"])
 
 
-_rows = result_rows  # a query's columns as rows of Python values
 
 
 # ----------------------------------------------------------------------------- partitions
@@ -386,7 +385,7 @@ def part_label(values: Sequence[str | None], names: Sequence[str], key: str = ""
 
 def _fingerprints_of(got: dict[str, np.ndarray], width: int, files: dict[str, Fingerprint] | None = None) -> dict[str, Fingerprint]:
     out = {}
-    for r in _rows(got):
+    for r in result_rows(got):
         part = str(r["part"])
         base = (files or {}).get(part)
         out[part] = Fingerprint(
@@ -630,7 +629,7 @@ def _other_rows(engine: Engine, cells_table: str, specs: Sequence[cat.Categorica
             sqlgen.exp.EQ(this=sqlgen.col(f"q{i}"), expression=sqlgen.num(len(spec.values) + 1)), sqlgen.col("n"))), f"o{i}", quoted=True)
         for i, spec in enumerate(specs)
     ]
-    got = _rows(engine.query(sqlgen.exp.select(*sums).from_(sqlgen.table_name(cells_table)).where(sqlgen.in_list("part", parts))))
+    got = engine.query_rows(sqlgen.exp.select(*sums).from_(sqlgen.table_name(cells_table)).where(sqlgen.in_list("part", parts)))
     return {spec.column: {"rows": int(got[0][f"o{i}"] or 0), "listed": len(spec.values), "partitions": len(parts)}
             for i, spec in enumerate(specs)}
 
@@ -1544,7 +1543,7 @@ def subtract_rows(engine: Engine, store: str, part: str, rows: np.ndarray) -> in
         _claim(engine, info)
         for i in range(len(uniq)):
             where = sqlgen.equals_all({"part": part, **{k: float(v) for k, v in zip(names, uniq[i])}})
-            got = _rows(engine.query(sqlgen.select_where(info.cells_table, where)))
+            got = result_rows(engine.query(sqlgen.select_where(info.cells_table, where)))
             if not got or got[0]["n"] < delta.n[i]:
                 raise StoreError(f"partition {part} of store {store} does not hold the rows being subtracted")
             cur = got[0]
