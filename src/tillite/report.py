@@ -191,14 +191,6 @@ def _pooled_statistics(got: dict[str, np.ndarray], model: Model, rows: Sequence[
     return out
 
 
-def refuse_missing_by(by: Sequence[str], present: Sequence[str], source: Source, label: str) -> None:
-    """One line naming the --by columns the source lacks, listing its own columns (not the ones tillite derives)."""
-    missing = [c for c in by if c not in present]
-    if missing:
-        shown = [c for c in present if c not in source.derived_names()]
-        raise TilliteError(f"--by column {', '.join(missing)} not found in {label}; columns there: {', '.join(shown)}")
-
-
 def _within(mean: float, lo: float | None, hi: float | None) -> float:
     """A mean moved back to the column's units, kept inside the rows' own min and max: a segment whose rows are
     all 0 reads 0, not the round-off of centre + (-centre / scale) * scale (about 1e-13)."""
@@ -646,8 +638,7 @@ def _report_of_model(
     check_model_columns(engine, source, model)
     source = model_source(engine, source, model)  # categorical columns: their indicators' means are the shares
     present = check_columns(engine, source, list(model.columns), chosen=False)
-    by = breakdown_columns(engine, by, present)
-    refuse_missing_by(by, present, source, source.label)
+    by = breakdown_columns(engine, by, present, source, source.label)
     if model.within:
         if labels:
             raise TilliteError("--labels is not taken with a model of segments within groups (segment --within) yet; "
@@ -671,11 +662,17 @@ def _report_of_model(
                     figure=figure, sampled=sampled)
 
 
-def breakdown_columns(engine: Engine, by: Sequence[str], present: Sequence[str]) -> list[str]:
-    """The --by columns as the engine resolves them against the table's (``Target.resolve_name``), each once."""
+def breakdown_columns(engine: Engine, by: Sequence[str], present: Sequence[str], source: Source, label: str) -> list[str]:
+    """The --by columns as the engine resolves them against the table's (``Target.resolve_name``), each once;
+    one line naming those the source (``label``) lacks, listing its own columns (not the ones tillite derives)."""
     if isinstance(by, str):
         raise ParameterError(f"{{by}} must be a list of column names, e.g. [{by!r}], not the text {by!r}", "by")
-    return list(dict.fromkeys(engine.target.resolve_name(c, present) or c for c in by))
+    by = list(dict.fromkeys(engine.target.resolve_name(c, present) or c for c in by))
+    missing = [c for c in by if c not in present]
+    if missing:
+        shown = [c for c in present if c not in source.derived_names()]
+        raise TilliteError(f"--by column {', '.join(missing)} not found in {label}; columns there: {', '.join(shown)}")
+    return by
 
 
 def _labels_table(engine: Engine, labels: str, model: Model, by: Sequence[str]) -> Source:
@@ -704,8 +701,7 @@ def report_of_store(engine: Engine, store: str, by: Sequence[str] = (), progress
     info = S.load(engine, store)
     source = model_source(engine, info.source, info.model)  # categorical columns: their indicators' means are the shares
     present = check_columns(engine, source, list(info.model.columns), chosen=False)
-    by = breakdown_columns(engine, by, present)
-    refuse_missing_by(by, present, source, info.source.label)
+    by = breakdown_columns(engine, by, present, source, info.source.label)
     if info.model.within:  # one section per group, each with the map its refresh kept, as `segment --within`'s file
         content = within_report(engine, info.source, info.model, by, progress)
         content["header"]["store"] = store
